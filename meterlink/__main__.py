@@ -1,0 +1,5 @@
+"""Allow ``python -m meterlink``."""
+
+from meterlink.cli import main
+
+raise SystemExit(main())

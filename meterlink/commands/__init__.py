@@ -1,0 +1,1 @@
+"""Sub-commands of the CLI, one module each (see meterlink.cli)."""
