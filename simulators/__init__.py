@@ -1,0 +1,1 @@
+"""The simulated meter: scene physics, instrument models and firmware emulation served on a pty."""
