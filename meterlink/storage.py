@@ -1,0 +1,427 @@
+"""SQLite storage for sessions, raw readings, spectra, status and link events (docs/schema.md).
+
+The one module that talks to SQLite, through sqlite-utils. Raw device counts are stored as they
+arrived, so a later certificate can be re-applied. The schema carries a version in ``meta`` and
+is brought up to date by ``MIGRATIONS`` when a file is opened.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable, Iterable, Mapping
+
+import numpy as np
+import sqlite_utils
+
+from meterlink import __version__
+from meterlink.errors import MeterlinkError
+
+APP_ID = "meterlink"
+SCHEMA_VERSION = 1
+SEVERITIES = ("info", "warning", "error")
+READING_COLUMNS = ("boot", "seq", "tick_ms", "t_utc", "raw_x", "raw_y", "raw_z", "flags", "range_index")
+
+
+class StorageError(MeterlinkError):
+    """A database file that cannot be created, opened or written."""
+
+
+def _schema_v1(db: sqlite_utils.Database) -> None:
+    db["meta"].create({"key": str, "value": str}, pk="key")
+    db["meta"].insert({"key": "app", "value": APP_ID})
+    db["devices"].create({"id": int, "model": str, "serial": str, "probe_serial": str, "cert_ref": str,
+                          "sensor_kind": int, "fw_version": str, "protocol_version": str,
+                          "first_seen_utc": float}, pk="id")
+    db["devices"].create_index(["model", "serial", "probe_serial", "cert_ref", "sensor_kind", "fw_version",
+                                "protocol_version"], unique=True)
+    db["sessions"].create({"id": int, "kind": str, "device_id": int, "port": str, "started_utc": float,
+                           "ended_utc": float, "interval_ms": int, "freq_hz": float, "band_lo_hz": float,
+                           "band_hi_hz": float, "clock_boot": int, "clock_tick0_ms": int,
+                           "clock_utc0_s": float, "clock_rate_ratio": float, "software_version": str,
+                           "notes": str}, pk="id", foreign_keys=[("device_id", "devices", "id")],
+                          not_null=["kind", "started_utc"])
+    db["readings"].create({"id": int, "session_id": int, "boot": int, "seq": int, "tick_ms": int,
+                           "t_utc": float, "raw_x": int, "raw_y": int, "raw_z": int, "flags": int,
+                           "range_index": int}, pk="id", foreign_keys=[("session_id", "sessions", "id")],
+                          not_null=["session_id", "boot", "seq", "tick_ms", "t_utc", "raw_x", "raw_y", "raw_z"])
+    db["readings"].create_index(["session_id", "boot", "seq"], unique=True)
+    db["readings"].create_index(["session_id", "t_utc"])
+    db["spectra"].create({"id": int, "session_id": int, "boot": int, "seq": int, "tick_ms": int,
+                          "t_utc": float, "orientation": int, "sweep": int}, pk="id",
+                         foreign_keys=[("session_id", "sessions", "id")], not_null=["session_id", "boot", "seq"])
+    db["spectra"].create_index(["session_id", "boot", "seq"], unique=True)
+    db["spectra"].create_index(["session_id", "t_utc"])
+    db["spectrum_lines"].create({"id": int, "spectrum_id": int, "freq_hz": float, "level_dbuv": float},
+                                pk="id", foreign_keys=[("spectrum_id", "spectra", "id")])
+    db["spectrum_lines"].create_index(["spectrum_id"])
+    db["status"].create({"id": int, "session_id": int, "boot": int, "seq": int, "tick_ms": int,
+                         "t_utc": float, "battery_mv": int, "battery_pct": int, "temperature_degc": float,
+                         "flags": int, "interval_ms": int}, pk="id",
+                        foreign_keys=[("session_id", "sessions", "id")])
+    db["status"].create_index(["session_id", "t_utc"])
+    db["events"].create({"id": int, "session_id": int, "t_utc": float, "kind": str, "severity": str,
+                         "message": str, "detail": str}, pk="id",
+                        foreign_keys=[("session_id", "sessions", "id")], not_null=["kind", "severity", "t_utc"])
+    db["events"].create_index(["session_id", "t_utc"])
+    db["events"].create_index(["session_id", "kind"])
+    db["calibrations"].create({"id": int, "session_id": int, "certificate_name": str,
+                               "certificate_sha256": str, "certificate_text": str, "applied_utc": float,
+                               "freq_hz": float, "band_lo_hz": float, "band_hi_hz": float,
+                               "software_version": str}, pk="id",
+                              foreign_keys=[("session_id", "sessions", "id")])
+    db["field_values"].create({"reading_id": int, "calibration_id": int, "e_v_per_m": float,
+                               "ex_v_per_m": float, "ey_v_per_m": float, "ez_v_per_m": float,
+                               "h_a_per_m": float, "s_w_per_m2": float, "u_expanded_db": float, "flags": int},
+                              pk=("reading_id", "calibration_id"),
+                              foreign_keys=[("reading_id", "readings", "id"),
+                                            ("calibration_id", "calibrations", "id")])
+    db["spectrum_values"].create({"spectrum_line_id": int, "calibration_id": int, "e_v_per_m": float,
+                                  "u_expanded_db": float, "flags": int},
+                                 pk=("spectrum_line_id", "calibration_id"),
+                                 foreign_keys=[("spectrum_line_id", "spectrum_lines", "id"),
+                                               ("calibration_id", "calibrations", "id")])
+
+
+# version -> function bringing the schema from version-1 up to it; applied in order, in one transaction each
+MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1}
+
+
+@dataclass(frozen=True)
+class ReadingArrays:
+    """Readings of one session as arrays, ordered by time: raw counts are (N, 3) [x, y, z]."""
+
+    ids: np.ndarray
+    boot: np.ndarray
+    seq: np.ndarray
+    tick_ms: np.ndarray
+    t_utc: np.ndarray
+    raw: np.ndarray
+    flags: np.ndarray
+    range_index: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.ids.size)
+
+
+class Store:
+    """A meterlink database file: open (creating or migrating it) and read/write through methods."""
+
+    def __init__(self, path: str | Path):
+        self.path = Path(path)
+        self._lock = threading.RLock()
+        try:
+            if self.path.is_dir():
+                raise StorageError(f"database path {str(self.path)!r} is a directory")
+            conn = sqlite3.connect(str(self.path), check_same_thread=False, timeout=10.0)
+        except sqlite3.Error as exc:
+            raise StorageError(f"cannot open database {str(self.path)!r}: {exc}") from None
+        try:
+            self.db = sqlite_utils.Database(conn)
+            self._prepare()
+        except sqlite3.DatabaseError as exc:
+            conn.close()
+            raise StorageError(f"cannot use database {str(self.path)!r}: {exc}") from None
+        except MeterlinkError:
+            conn.close()
+            raise
+
+    # -- schema --------------------------------------------------------------------------------
+    def _prepare(self) -> None:
+        db = self.db
+        tables = set(db.table_names())
+        if tables and "meta" not in tables:
+            raise StorageError(f"{str(self.path)!r} is an SQLite file but not a meterlink database")
+        version = 0
+        if "meta" in tables:
+            meta = {r["key"]: r["value"] for r in db["meta"].rows}
+            if meta.get("app") != APP_ID:
+                raise StorageError(f"{str(self.path)!r} is an SQLite file but not a meterlink database")
+            version = int(meta.get("schema_version", 0))
+            if version > SCHEMA_VERSION:
+                raise StorageError(f"{str(self.path)!r} has schema version {version}, newer than this "
+                                   f"meterlink ({SCHEMA_VERSION}): upgrade meterlink")
+        db.enable_wal()
+        db.execute("PRAGMA synchronous=NORMAL")
+        db.execute("PRAGMA foreign_keys=ON")
+        for v in sorted(MIGRATIONS):
+            if v <= version:
+                continue
+            with db.atomic():
+                MIGRATIONS[v](db)
+                db["meta"].upsert({"key": "schema_version", "value": str(v)}, pk="key")
+
+    @property
+    def schema_version(self) -> int:
+        return int(self.db["meta"].get("schema_version")["value"])
+
+    @property
+    def journal_mode(self) -> str:
+        return self.db.journal_mode
+
+    def close(self) -> None:
+        with self._lock:
+            self.db.close()
+
+    def __enter__(self) -> "Store":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    # -- devices and sessions ------------------------------------------------------------------
+    def device_id(self, model: str, serial: str, probe_serial: str = "", cert_ref: str = "",
+                  sensor_kind: int | None = None, fw_version: str = "", protocol_version: str = "") -> int:
+        """Id of the device row with these identity fields, creating it on first sight."""
+        row = {"model": model, "serial": serial, "probe_serial": probe_serial, "cert_ref": cert_ref,
+               "sensor_kind": sensor_kind, "fw_version": fw_version, "protocol_version": protocol_version}
+        with self._lock, self.db.atomic():
+            where = " and ".join(f"{k} is ?" for k in row)
+            found = list(self.db["devices"].rows_where(where, list(row.values()), limit=1))
+            if found:
+                return int(found[0]["id"])
+            return int(self.db["devices"].insert({**row, "first_seen_utc": time.time()}).last_pk)
+
+    def begin_session(self, kind: str, port: str = "", device_id: int | None = None, interval_ms: int | None = None,
+                      freq_hz: float | None = None, band_lo_hz: float | None = None,
+                      band_hi_hz: float | None = None, notes: str = "", started_utc: float | None = None) -> int:
+        """Create a session row and return its id."""
+        row = {"kind": kind, "port": port, "device_id": device_id, "interval_ms": interval_ms,
+               "freq_hz": freq_hz, "band_lo_hz": band_lo_hz, "band_hi_hz": band_hi_hz, "notes": notes,
+               "started_utc": time.time() if started_utc is None else started_utc,
+               "software_version": __version__}
+        with self._lock, self.db.atomic():
+            return int(self.db["sessions"].insert(row).last_pk)
+
+    def update_session(self, session_id: int, **fields: Any) -> None:
+        """Set session columns (device_id, interval_ms, clock_*, notes, ...)."""
+        with self._lock, self.db.atomic():
+            self.db["sessions"].update(session_id, fields)
+
+    def end_session(self, session_id: int, ended_utc: float | None = None, **fields: Any) -> None:
+        self.update_session(session_id, ended_utc=time.time() if ended_utc is None else ended_utc, **fields)
+
+    def sessions(self) -> list[dict]:
+        with self._lock:
+            return list(self.db["sessions"].rows_where(order_by="id"))
+
+    def session(self, session_id: int) -> dict:
+        """One session row joined with its device's fields (device_model, ...); StorageError if absent."""
+        with self._lock:
+            rows = list(self.db.query(
+                "select s.*, d.model as device_model, d.serial as device_serial, d.probe_serial as "
+                "device_probe_serial, d.cert_ref as device_cert_ref, d.sensor_kind as device_sensor_kind, "
+                "d.fw_version as device_fw_version, d.protocol_version as device_protocol_version "
+                "from sessions s left join devices d on d.id = s.device_id where s.id = ?", [session_id]))
+        if not rows:
+            raise StorageError(f"no session {session_id} in {str(self.path)!r}")
+        return rows[0]
+
+    # -- hot path ------------------------------------------------------------------------------
+    def add_readings(self, session_id: int, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Insert readings (dicts with READING_COLUMNS) in one transaction; returns rows actually new."""
+        return self.write_batch(session_id, readings=rows)
+
+    def add_reading(self, session_id: int, row: Mapping[str, Any]) -> int:
+        return self.add_readings(session_id, [row])
+
+    def add_status(self, session_id: int, row: Mapping[str, Any]) -> None:
+        self.write_batch(session_id, statuses=[row])
+
+    def add_spectrum(self, session_id: int, row: Mapping[str, Any]) -> None:
+        """row: boot, seq, tick_ms, t_utc, orientation, sweep, lines [(freq_hz, level_dbuv), ...]."""
+        self.write_batch(session_id, spectra=[row])
+
+    def add_event(self, session_id: int | None, kind: str, severity: str, message: str,
+                  t_utc: float | None = None, **detail: Any) -> None:
+        self.write_batch(session_id, events=[event_row(kind, severity, message, t_utc, **detail)])
+
+    def write_batch(self, session_id: int | None, readings: Iterable[Mapping] = (), statuses: Iterable[Mapping] = (),
+                    spectra: Iterable[Mapping] = (), events: Iterable[Mapping] = ()) -> int:
+        """Write everything in one transaction; a bad row becomes an event instead. Returns new readings."""
+        readings, statuses, spectra, events = list(readings), list(statuses), list(spectra), list(events)
+        bad: list[dict] = []
+        with self._lock:
+            conn = self.db.conn
+            with self.db.atomic():
+                new = self._insert_readings(conn, session_id, readings, bad)
+                for st in statuses:
+                    try:
+                        conn.execute("insert into status (session_id, boot, seq, tick_ms, t_utc, battery_mv, "
+                                     "battery_pct, temperature_degc, flags, interval_ms) values (?,?,?,?,?,?,?,?,?,?)",
+                                     (session_id, st["boot"], st["seq"], st["tick_ms"], st["t_utc"], st["battery_mv"],
+                                      st.get("battery_pct"), st["temperature_degc"], st["flags"], st["interval_ms"]))
+                    except (KeyError, TypeError, sqlite3.Error) as exc:
+                        bad.append(event_row("bad_row", "error", f"status row not stored: {exc}", table="status"))
+                for sp in spectra:
+                    self._insert_spectrum(conn, session_id, sp, bad)
+                for ev in events + bad:
+                    conn.execute("insert into events (session_id, t_utc, kind, severity, message, detail) "
+                                 "values (?,?,?,?,?,?)", (session_id, ev["t_utc"], ev["kind"], ev["severity"],
+                                                          ev["message"], ev["detail"]))
+        return new
+
+    def _insert_readings(self, conn: sqlite3.Connection, session_id, rows: list, bad: list) -> int:
+        if not rows:
+            return 0
+        sql = ("insert or ignore into readings (session_id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z, flags, "
+               "range_index) values (?,?,?,?,?,?,?,?,?,?)")
+        try:
+            tuples = [(session_id, *(r[c] for c in READING_COLUMNS)) for r in rows]
+            before = conn.total_changes
+            conn.executemany(sql, tuples)
+            new = conn.total_changes - before
+        except (KeyError, TypeError, sqlite3.Error):
+            new = 0  # find the bad rows one by one; the good ones still go in
+            n_bad = 0
+            for r in rows:
+                try:
+                    before = conn.total_changes
+                    conn.execute(sql, (session_id, *(r[c] for c in READING_COLUMNS)))
+                    new += conn.total_changes - before
+                except (KeyError, TypeError, sqlite3.Error) as exc:
+                    n_bad += 1
+                    bad.append(event_row("bad_row", "error", f"reading not stored: {exc}", table="readings",
+                                         seq=r.get("seq") if isinstance(r, Mapping) else None))
+        else:
+            n_bad = 0
+        dup = len(rows) - new - n_bad
+        if dup > 0:
+            bad.append(event_row("duplicate_reading", "info", f"{dup} reading(s) already stored, ignored", count=dup))
+        return new
+
+    def _insert_spectrum(self, conn: sqlite3.Connection, session_id, sp: Mapping, bad: list) -> None:
+        try:
+            cur = conn.execute("insert or ignore into spectra (session_id, boot, seq, tick_ms, t_utc, orientation, "
+                               "sweep) values (?,?,?,?,?,?,?)", (session_id, sp["boot"], sp["seq"], sp["tick_ms"],
+                                                                 sp["t_utc"], sp["orientation"], sp["sweep"]))
+            if cur.rowcount != 1:
+                bad.append(event_row("duplicate_reading", "info", "spectrum already stored, ignored", count=1))
+                return
+            sid = cur.lastrowid
+            conn.executemany("insert into spectrum_lines (spectrum_id, freq_hz, level_dbuv) values (?,?,?)",
+                             [(sid, float(f), float(lv)) for f, lv in sp["lines"]])
+        except (KeyError, TypeError, ValueError, sqlite3.Error) as exc:
+            bad.append(event_row("bad_row", "error", f"spectrum not stored: {exc}", table="spectra"))
+
+    # -- queries -------------------------------------------------------------------------------
+    def readings(self, session_id: int, t0: float | None = None, t1: float | None = None) -> ReadingArrays:
+        """Readings of a session with t0 <= t_utc < t1 (either bound optional), ordered by t_utc."""
+        where, params = "session_id = ?", [session_id]
+        if t0 is not None:
+            where, params = where + " and t_utc >= ?", params + [t0]
+        if t1 is not None:
+            where, params = where + " and t_utc < ?", params + [t1]
+        with self._lock:
+            rows = self.db.execute(f"select id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z, flags, range_index "
+                                   f"from readings where {where} order by t_utc, id", params).fetchall()
+        cols = list(zip(*rows)) if rows else [()] * 10
+
+        def ints(i: int) -> np.ndarray:
+            return np.array([0 if v is None else v for v in cols[i]], dtype=np.int64)
+
+        return ReadingArrays(ids=ints(0), boot=ints(1), seq=ints(2), tick_ms=ints(3),
+                             t_utc=np.array(cols[4], dtype=float),
+                             raw=np.stack([ints(5), ints(6), ints(7)], axis=1).reshape(-1, 3),
+                             flags=ints(8), range_index=ints(9))
+
+    def events(self, session_id: int | None = None, kind: str | None = None) -> list[dict]:
+        """Events (detail decoded from JSON), in time order."""
+        clauses, params = [], []
+        if session_id is not None:
+            clauses, params = ["session_id = ?"], [session_id]
+        if kind is not None:
+            clauses.append("kind = ?")
+            params.append(kind)
+        with self._lock:
+            rows = list(self.db["events"].rows_where(" and ".join(clauses) or None, params, order_by="t_utc, id"))
+        for r in rows:
+            r["detail"] = json.loads(r["detail"]) if r["detail"] else {}
+        return rows
+
+    def count(self, table: str, session_id: int) -> int:
+        if table not in ("readings", "spectra", "status", "events"):
+            raise StorageError(f"unknown table {table!r}")
+        with self._lock:
+            return int(self.db.execute(f"select count(*) from {table} where session_id = ?", [session_id]).fetchone()[0])
+
+
+def event_row(kind: str, severity: str, message: str, t_utc: float | None = None, **detail: Any) -> dict:
+    """An event as a row dict; severity is info, warning or error; detail is stored as JSON."""
+    if severity not in SEVERITIES:
+        raise ValueError(f"severity {severity!r} is not one of {SEVERITIES}")
+    return {"kind": kind, "severity": severity, "message": message,
+            "t_utc": time.time() if t_utc is None else float(t_utc),
+            "detail": json.dumps(detail, default=str, sort_keys=True) if detail else None}
+
+
+class BatchWriter:
+    """Buffers rows for one session and commits them by size or at most max_age_s after the first."""
+
+    def __init__(self, store: Store, session_id: int, max_rows: int = 500, max_age_s: float = 1.0):
+        self.store, self.session_id = store, session_id
+        self.max_rows, self.max_age_s = max_rows, max_age_s
+        self._lock = threading.Lock()
+        self._buf: dict[str, list] = {"readings": [], "statuses": [], "spectra": [], "events": []}
+        self._first: float | None = None
+        self.new_readings = 0
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def _add(self, key: str, row: Mapping) -> None:
+        with self._lock:
+            self._buf[key].append(row)
+            if self._first is None:
+                self._first = time.monotonic()
+            n = sum(len(v) for v in self._buf.values())
+        if n >= self.max_rows:
+            self.flush()
+
+    def add_reading(self, row: Mapping) -> None:
+        self._add("readings", row)
+
+    def add_status(self, row: Mapping) -> None:
+        self._add("statuses", row)
+
+    def add_spectrum(self, row: Mapping) -> None:
+        self._add("spectra", row)
+
+    def add_event(self, kind: str, severity: str, message: str, t_utc: float | None = None, **detail: Any) -> None:
+        self._add("events", event_row(kind, severity, message, t_utc, **detail))
+
+    def due(self) -> bool:
+        with self._lock:
+            return self._first is not None and time.monotonic() - self._first >= self.max_age_s
+
+    def flush_if_due(self) -> None:
+        if self.due():
+            self.flush()
+
+    def flush(self) -> None:
+        """Commit everything buffered now."""
+        with self._lock:
+            buf = self._buf
+            self._buf = {k: [] for k in buf}
+            self._first = None
+        if any(buf.values()):
+            self.new_readings += self.store.write_batch(self.session_id, **buf)
+
+    def start(self) -> "BatchWriter":
+        """Flush on a background thread every max_age_s / 4 (optional: a loop may call flush_if_due)."""
+        self._thread = threading.Thread(target=self._run, name="meterlink-batch-writer", daemon=True)
+        self._thread.start()
+        return self
+
+    def _run(self) -> None:
+        while not self._stop.wait(self.max_age_s / 4):
+            self.flush_if_due()
+
+    def close(self) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join()
+        self.flush()

@@ -1,0 +1,176 @@
+"""Byte transports for the meter link: the one module that imports pyserial.
+
+A port string picks the transport the way pyserial does: a device path (``/dev/ttyACM0``,
+``COM3``) or a URL (``socket://host:port``, ``rfc2217://host:port``, ``loop://``,
+``spy://PORT`` for a hex dump of all traffic).
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+from meterlink.errors import LinkError
+
+DEFAULT_BAUD = 115200
+
+
+class Link:
+    """A byte stream to a device: open, read with a timeout, write, close."""
+
+    port: str = ""
+
+    def open(self) -> None:
+        raise NotImplementedError
+
+    def read(self, max_bytes: int = 4096, timeout_s: float = 0.1) -> bytes:
+        import serial
+
+        ser = self._require()
+        try:
+            waiting = ser.in_waiting
+            if waiting:
+                return ser.read(min(waiting, max_bytes))
+            timeout_s = max(0.0, round(timeout_s, 3))
+            if timeout_s != self._timeout_s:  # a change reconfigures the port: only when needed
+                ser.timeout = self._timeout_s = timeout_s
+            data = ser.read(1)
+            if data and max_bytes > 1:
+                waiting = ser.in_waiting
+                if waiting:
+                    data += ser.read(min(waiting, max_bytes - 1))
+            return data
+        except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
+            # TypeError/AttributeError: pyserial internals after the descriptor vanished under it
+            self._drop()
+            raise LinkError(f"port {self.port!r} lost: {_one_line(exc)}") from None
+
+    def write(self, data: bytes) -> None:
+        raise NotImplementedError
+
+    def close(self) -> None:
+        raise NotImplementedError
+
+    @property
+    def is_open(self) -> bool:
+        raise NotImplementedError
+
+    def __enter__(self) -> "Link":
+        self.open()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def _one_line(exc: BaseException) -> str:
+    return " ".join(str(exc).split()) or type(exc).__name__
+
+
+class SerialLink(Link):
+    """A pyserial port or URL; every failure is a LinkError naming the port."""
+
+    def __init__(self, port: str, baudrate: int = DEFAULT_BAUD):
+        if not port or not str(port).strip():
+            raise LinkError("no serial port given")
+        self.port = str(port)
+        self.baudrate = baudrate
+        self._ser = None
+        self._timeout_s = 0.0
+
+    def open(self) -> None:
+        import serial
+
+        if self.is_open:
+            return
+        try:
+            self._ser = serial.serial_for_url(self.port, baudrate=self.baudrate, timeout=0,
+                                              write_timeout=2.0)
+            self._timeout_s = 0.0
+        except (serial.SerialException, OSError, ValueError) as exc:
+            self._ser = None
+            raise LinkError(f"cannot open port {self.port!r}: {_one_line(exc)}") from None
+
+    def read(self, max_bytes: int = 4096, timeout_s: float = 0.1) -> bytes:
+        import serial
+
+        ser = self._require()
+        try:
+            data = ser.read(ser.in_waiting or 0) if ser.in_waiting else b""
+            if data:
+                return data[:max_bytes] if len(data) <= max_bytes else data
+            ser.timeout = max(0.0, timeout_s)
+            data = ser.read(1)
+            if data and ser.in_waiting:
+                data += ser.read(min(ser.in_waiting, max_bytes - 1))
+            return data
+        except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
+            # TypeError/AttributeError: pyserial internals after the fd vanished under it
+            self._drop()
+            raise LinkError(f"port {self.port!r} lost: {_one_line(exc)}") from None
+
+    def write(self, data: bytes) -> None:
+        import serial
+
+        ser = self._require()
+        try:
+            ser.write(data)
+            ser.flush()
+        except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
+            self._drop()
+            raise LinkError(f"port {self.port!r} lost: {_one_line(exc)}") from None
+
+    def close(self) -> None:
+        self._drop()
+
+    @property
+    def is_open(self) -> bool:
+        return self._ser is not None and bool(self._ser.is_open)
+
+    def _require(self):
+        if self._ser is None:
+            raise LinkError(f"port {self.port!r} is not open")
+        return self._ser
+
+    def _drop(self) -> None:
+        ser, self._ser = self._ser, None
+        if ser is not None:
+            try:
+                ser.close()
+            except Exception:  # closing a port that already vanished: nothing left to do
+                pass
+
+
+@dataclass(frozen=True)
+class PortInfo:
+    """One serial port as the operating system reports it."""
+
+    device: str
+    description: str
+    hwid: str
+
+
+def list_ports() -> list[PortInfo]:
+    """Serial ports pyserial can see on this machine, sorted by device name."""
+    from serial.tools import list_ports as lp
+
+    return sorted((PortInfo(p.device, p.description or "", p.hwid or "") for p in lp.comports()),
+                  key=lambda p: p.device)
+
+
+def open_link(port: str, baudrate: int = DEFAULT_BAUD) -> SerialLink:
+    """Open a SerialLink on a device path or URL; LinkError if it cannot be opened."""
+    link = SerialLink(port, baudrate)
+    link.open()
+    return link
+
+
+def wait_readable(link: Link, deadline: float, max_bytes: int = 4096) -> bytes:
+    """Read until some bytes arrive or the monotonic deadline passes."""
+    while True:
+        left = deadline - time.monotonic()
+        if left <= 0:
+            return b""
+        data = link.read(max_bytes, min(left, 0.1))
+        if data:
+            return data
