@@ -1,0 +1,113 @@
+"""``meterlink limits FREQUENCY``: the reference levels that apply at one frequency."""
+
+from __future__ import annotations
+
+HELP = "show the exposure reference levels of the packaged standards at one frequency"
+
+PERCENT_NOTE = ("Field and power-density percentages differ: a field at 50 % of its E level "
+                "is at 25 % of the S level (S goes with E squared).")
+DERIVED_NOTE = "~ derived: plane-wave equivalent through Z0 (from S) or H = B/mu_0, not printed in the standard."
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("frequency", metavar="FREQUENCY", help="e.g. 900MHz, 2.45GHz or 100e6 (Hz)")
+    parser.add_argument("--standard", metavar="ID", help="one standard (default: all that cover FREQUENCY)")
+    parser.add_argument("--tier", metavar="TIER", help="public or occupational (default: both)")
+    parser.add_argument("--kind", metavar="KIND", help="whole_body, local or peak (default: all)")
+    parser.add_argument("--json", action="store_true", help="print machine-readable JSON")
+
+
+def select_levels(freq_hz: float, standard: str | None, tier: str | None, kind: str | None) -> list:
+    """The levels to show; a LimitsError naming the problem when nothing applies."""
+    from meterlink import limits
+    from meterlink.units import format_frequency
+
+    if kind is not None and kind not in limits.KINDS:
+        raise limits.LimitsError(f"unknown kind {kind!r} (use whole_body, local or peak)")
+    levels = [lv for lv in limits.reference_levels_at(freq_hz, standard, tier)
+              if kind is None or lv.kind == kind]
+    if levels:
+        return levels
+    if standard is not None:  # let the lookup explain exactly why
+        limits.reference_level(standard, tier or limits.describe_standard(standard)["coverage"][0]["tier"],
+                               freq_hz, kind or "whole_body")
+    raise limits.LimitsError(f"no packaged standard gives {kind or 'any'} levels at {format_frequency(freq_hz)}")
+
+
+def _num(value: float | None, derived: bool) -> str:
+    if value is None:
+        return "-"
+    text = f"{value:.4g}" if value < 1e5 else f"{value:.3e}"
+    return ("~" + text) if derived else text
+
+
+def _avg(seconds: float | None) -> str:
+    if seconds is None:
+        return "none (peak)"
+    if seconds >= 60:
+        return f"{seconds / 60:.3g} min"
+    return f"{seconds:.3g} s"
+
+
+def render_table(levels: list, freq_hz: float):
+    """A rich Table of the levels (pure: builds, does not print)."""
+    from rich.table import Table
+
+    from meterlink.units import format_frequency
+
+    table = Table(title=f"Reference levels at {format_frequency(freq_hz)}", title_justify="left",
+                  header_style="bold", show_lines=False, pad_edge=False)
+    for name, justify in (("standard", "left"), ("tier", "left"), ("kind", "left"),
+                          ("band", "left"), ("E V/m", "right"), ("H A/m", "right"),
+                          ("S W/m2", "right"), ("averaging", "right"), ("status", "left"),
+                          ("source", "left")):
+        table.add_column(name, justify=justify, overflow="fold")
+    colour = {"verified": "green", "partly verified": "yellow", "from memory": "red"}
+    for lv in levels:
+        s_text = _num(lv.s_w_per_m2, lv.s_derived)
+        if lv.s_h_w_per_m2 is not None and lv.s_h_w_per_m2 != lv.s_w_per_m2:
+            s_text += f" (H: {_num(lv.s_h_w_per_m2, False)})"
+        band = f"{format_frequency(lv.band_lo_hz)}-{format_frequency(lv.band_hi_hz)}"
+        table.add_row(lv.standard, lv.tier_label, lv.kind.replace("_", " "), band,
+                      _num(lv.e_v_per_m, lv.e_derived), _num(lv.h_a_per_m, lv.h_derived), s_text,
+                      _avg(lv.averaging_time_s), f"[{colour[lv.status]}]{lv.status}[/]", lv.source)
+    return table
+
+
+def levels_to_json(levels: list, freq_hz: float) -> dict:
+    """JSON-ready dict of the levels with the cautions."""
+    from dataclasses import asdict
+
+    from meterlink.cli import SAFETY_LINE
+
+    return {"frequency_hz": freq_hz, "levels": [asdict(lv) for lv in levels],
+            "note": PERCENT_NOTE, "safety": SAFETY_LINE}
+
+
+def run(args) -> int:
+    import json
+    import shutil
+
+    from rich.console import Console
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.limits import LimitsError
+    from meterlink.units import parse_frequency_hz
+
+    try:
+        freq_hz = parse_frequency_hz(args.frequency)
+    except ValueError as exc:
+        raise LimitsError(str(exc)) from None
+    levels = select_levels(freq_hz, args.standard, args.tier, args.kind)
+    if args.json:
+        print(json.dumps(levels_to_json(levels, freq_hz), indent=2))
+        return 0
+    console = Console(width=max(shutil.get_terminal_size((160, 24)).columns, 100), highlight=False)
+    console.print(render_table(levels, freq_hz))
+    if any(lv.e_derived or lv.h_derived or lv.s_derived for lv in levels):
+        console.print(DERIVED_NOTE)
+    if any(lv.status != "verified" for lv in levels):
+        console.print("Rows not marked verified should be checked against the primary document.")
+    console.print(PERCENT_NOTE)
+    console.print(SAFETY_LINE)
+    return 0
