@@ -1,0 +1,352 @@
+"""Byte-level emulation of the meter firmware (docs/protocol.md), transport-free.
+
+feed(data) takes host bytes; poll(now_ms) returns what the device has sent by device time now_ms
+(milliseconds since the simulation started; the frames' TICK restarts at 0 on every reset).
+Readings due in the past are produced in order with their own ticks.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from meterlink.errors import ProtocolError
+from meterlink.protocol import (
+    AXIS_OVER_X, AXIS_UNDER_X, MAX_TEXT, PROTOCOL_MAJOR, PROTOCOL_MINOR, STATUS_BATTERY_LOW, STATUS_CLOCK_SET,
+    STATUS_OVERRANGE, STATUS_STREAMING, STATUS_UNDERRANGE, U32_MOD, Ack, Axes, Boot, Echo, Fault, FaultCode,
+    FrameReader, FrameType, Ident, SensorKind, Setting, SettingKey, Spectrum, Status, encode_message,
+    parse_payload,
+)
+from simulators.instruments import probe_counts, receiver_levels_dbuv
+
+STATUS_PERIOD_MS = 5000  # unsolicited STATUS while streaming (the spec asks for at least every 10 s)
+_FIXED_LEN = {FrameType.WHO: 0, FrameType.START: 0, FrameType.STOP: 0, FrameType.STATUS_QUERY: 0,
+              FrameType.SET_INTERVAL: 4, FrameType.SETTING_GET: 1, FrameType.CLOCK_SET: 6}
+_HOST_TYPES = {FrameType.WHO, FrameType.START, FrameType.STOP, FrameType.SET_INTERVAL, FrameType.STATUS_QUERY,
+               FrameType.SETTING_GET, FrameType.SETTING_PUT, FrameType.CLOCK_SET, FrameType.PING}
+_READING_TYPES = {FrameType.AXES, FrameType.SPECTRUM, FrameType.STATUS}
+DEFAULT_FAULTS = {"drop": 0.0, "corrupt": 0.0, "garbage": 0.0, "garbage_max_bytes": 8, "frames": "readings",
+                  "schedule": ()}
+# Rule-breaking switches for conformance checks of the host; all off by default.
+DEFAULT_QUIRKS = {"seq_step": 1, "bad_crc": 0.0, "silent_unknown": False, "no_boot": False}
+
+
+class Firmware:
+    """The device state machine: one meter of a scenario with a probe or a dipole receiver."""
+
+    def __init__(self, scenario, *, meter: int = 0, sensor: str = "probe", rng: np.random.Generator | None = None,
+                 faults: dict | None = None, quirks: dict | None = None, truth=None, start_tick_ms: int = 0):
+        if sensor not in ("probe", "dipole"):
+            raise ValueError(f"sensor {sensor!r}: expected 'probe' or 'dipole'")
+        if not 0 <= meter < len(scenario.meters):
+            raise ValueError(f"meter {meter}: scenario {scenario.name} has {len(scenario.meters)} meter(s)")
+        self.sc, self.spec, self.sensor = scenario, scenario.meters[meter], sensor
+        rng = rng if rng is not None else np.random.default_rng(0)
+        self._rng, self._frng = rng, rng.spawn(1)[0]  # measurement noise and fault decisions kept apart
+        self.faults = {**DEFAULT_FAULTS, **scenario.faults, **(faults or {})}
+        unknown = set(self.faults) - set(DEFAULT_FAULTS)
+        if unknown:
+            raise ValueError(f"unknown fault switch {sorted(unknown)[0]!r}")
+        self.quirks = {**DEFAULT_QUIRKS, **(quirks or {})}
+        self.truth = truth
+        self.link_up = True
+        dev = scenario.device
+        self.min_interval_ms, self.max_interval_ms = int(dev["min_interval_ms"]), int(dev["max_interval_ms"])
+        info = scenario.probe_info if sensor == "probe" else scenario.receiver_info
+        self.texts = {SettingKey.PROBE_SERIAL: str(info.get("serial", "")), SettingKey.CERT_REF: str(info.get("cert_ref", "")),
+                      SettingKey.ASSET_TAG: self.spec.asset_tag}
+        self._restarts = sorted(float(e["at_s"]) * 1000 for e in self.faults["schedule"] if e.get("kind") == "restart")
+        self.stats = {"frames_sent": 0, "frames_dropped": 0, "frames_corrupted": 0, "frames_unplugged": 0,
+                      "garbage_bytes": 0, "commands_received": 0, "bad_crcs_seen": 0, "boots": 0}
+        self.boot_count = int(dev.get("boot_count", 1)) - 1
+        self.now_ms = 0
+        self._out = bytearray()
+        self._reset(0, cause=0, tick_base=start_tick_ms)
+
+    # ----------------------------------------------------------------- state
+    def _reset(self, now_ms: int, cause: int, tick_base: int = 0) -> None:
+        dev = self.sc.device
+        self.boot_count = (self.boot_count + 1) & 0xFFFF
+        self.boot_world_ms, self.tick_base, self.seq = now_ms, tick_base, 0
+        self.streaming = False
+        self.interval_ms = int(dev.get("interval_ms", 1000))
+        self.averaging = int(dev.get("device_averaging", 1))
+        self.clock = None  # (utc_ms, world_ms) once CLOCK_SET; lost at reset (no backed-up RTC)
+        self.reader, self._crc_base = FrameReader(), 0
+        self._inbox: list = []
+        self._next_end = self._next_status = None
+        self._sweep, self._orient = 0, 0
+        self._last_flags = None
+        self._range_flags = 0
+        self.stats["boots"] += 1
+        if self.truth:
+            self.truth.write({"event": "boot", "boot": self.boot_count, "t_s": now_ms / 1000, "cause": cause})
+        if not self.quirks["no_boot"]:
+            self._send(Boot(self.boot_count, cause), now_ms)
+
+    def tick_ms(self, now_ms: int | None = None) -> int:
+        """The device's TICK at device time now_ms (default: the last poll)."""
+        now = self.now_ms if now_ms is None else now_ms
+        return (now - self.boot_world_ms + self.tick_base) % U32_MOD
+
+    def restart(self, now_ms: int, cause: int = 3) -> None:
+        """Device reset at device time now_ms: seq and tick back to 0, BOOT, not streaming."""
+        self._catch_up(now_ms)
+        self._reset(now_ms, cause)
+
+    # ----------------------------------------------------------------- I/O
+    def feed(self, data: bytes) -> None:
+        """Host bytes arriving; complete frames are acted on at the next poll."""
+        frames = [f for f in self.reader.feed(data) if not hasattr(f, "kind")]
+        self.stats["bad_crcs_seen"] = self._crc_base + self.reader.stats.crc_errors
+        self._inbox.extend(frames)
+
+    def poll(self, now_ms: int) -> bytes:
+        """Advance the device to now_ms; return the bytes it sent meanwhile."""
+        now_ms = max(int(now_ms), self.now_ms)
+        self._catch_up(now_ms)
+        inbox, self._inbox = self._inbox, []
+        for frame in inbox:
+            self.stats["commands_received"] += 1
+            self._command(frame, now_ms)
+        self.now_ms = now_ms
+        out, self._out = bytes(self._out), bytearray()
+        return out
+
+    def _catch_up(self, now_ms: int) -> None:
+        """Produce every reading, periodic STATUS and scheduled restart due by now_ms, in time order."""
+        while True:
+            cands = []
+            if self.streaming:
+                cands += [(self._next_end, 0), (self._next_status, 1)]
+            if self._restarts:
+                cands.append((self._restarts[0], 2))
+            if not cands:
+                return
+            t, what = min(cands)
+            if t > now_ms:
+                return
+            t = int(t)
+            if what == 0:
+                self._reading(t)
+                self._next_end = t + self.interval_ms
+            elif what == 1:
+                self._send_status(t)
+            else:
+                self._restarts.pop(0)
+                self._reset(t, cause=1)
+
+    def _send(self, msg, world_ms: int, ftype: int | None = None, tick_ms: int | None = None) -> str:
+        """Frame and emit one message through the fault switches; returns its fate."""
+        t = ftype if ftype is not None else msg.TYPE
+        tick = self.tick_ms(world_ms) if tick_ms is None else tick_ms
+        frame = bytearray(encode_message(msg, self.seq, tick, t))
+        self.seq = (self.seq + int(self.quirks["seq_step"])) % U32_MOD
+        f, r = self.faults, self._frng
+        applies = f["frames"] == "all" or t in _READING_TYPES
+        if not self.link_up:
+            self.stats["frames_unplugged"] += 1
+            return "unplugged"
+        if applies and f["drop"] and r.random() < f["drop"]:
+            self.stats["frames_dropped"] += 1
+            return "dropped"
+        fate = "sent"
+        if applies and f["corrupt"] and r.random() < f["corrupt"]:
+            i = int(r.integers(2, len(frame)))
+            frame[i] ^= int(r.integers(1, 256))
+            self.stats["frames_corrupted"] += 1
+            fate = "corrupted"
+        elif self.quirks["bad_crc"] and r.random() < self.quirks["bad_crc"]:
+            frame[-1] ^= 0x5A
+            self.stats["frames_corrupted"] += 1
+            fate = "corrupted"
+        if applies and f["garbage"] and r.random() < f["garbage"]:
+            n = int(r.integers(1, int(f["garbage_max_bytes"]) + 1))
+            junk = r.integers(0, 0xA6, n, dtype=np.uint8).tobytes()  # never 0xA7: no false sync start
+            self._out += junk
+            self.stats["garbage_bytes"] += n
+        self._out += frame
+        self.stats["frames_sent"] += 1
+        return fate
+
+    # ----------------------------------------------------------------- environment
+    def _temp_c(self, t_s: float) -> float:
+        site = self.sc.site
+        h = float(site.get("start_time_of_day_h", 0.0)) + t_s / 3600
+        return float(site.get("temp_mean_c", 20.0)) + float(site.get("temp_daily_amp_c", 0.0)) * math.cos(
+            2 * math.pi * (h - 15.0) / 24)
+
+    def _status(self, world_ms: int) -> Status:
+        dev = self.sc.device
+        if self.spec.mains_powered:
+            mv, pct = 5000, 255
+        else:
+            full, empty = float(dev.get("battery_full_mv", 4150)), float(dev.get("battery_empty_mv", 3300))
+            mv = max(empty, full - float(dev.get("battery_drain_mv_per_h", 0.0)) * world_ms / 3.6e6)
+            pct = int(round(100 * (mv - empty) / (full - empty)))
+        flags = self._range_flags
+        flags |= STATUS_STREAMING if self.streaming else 0
+        flags |= STATUS_CLOCK_SET if self.clock else 0
+        flags |= STATUS_BATTERY_LOW if pct < 15 else 0
+        temp = int(round(self._temp_c(world_ms / 1000) * 100))
+        return Status(int(mv), pct, temp, flags, self.interval_ms, self.boot_count)
+
+    def _send_status(self, world_ms: int) -> None:
+        st = self._status(world_ms)
+        self._last_flags = st.flags
+        self._next_status = world_ms + STATUS_PERIOD_MS
+        self._send(st, world_ms)
+
+    def _flags_changed(self, world_ms: int) -> None:
+        if self._status(world_ms).flags != self._last_flags:
+            self._send_status(world_ms)
+
+    # ----------------------------------------------------------------- readings
+    def _reading(self, end_ms: int) -> None:
+        mid_ms = end_ms - self.interval_ms // 2  # TICK of a reading = middle of its integration time
+        t_s = mid_ms / 1000
+        scene = self.spec.scene
+        freq, e_axes = scene.field(t_s)
+        temp = self._temp_c(t_s)
+        tick, seq = self.tick_ms(mid_ms), self.seq
+        rec = {"event": "reading", "boot": self.boot_count, "seq": seq, "tick_ms": tick, "t_s": t_s}
+        if self.sensor == "probe":
+            pm = self.sc.probe
+            counts, over = probe_counts(pm, e_axes, freq, temp, self._rng, self.averaging)
+            sig = np.abs(counts - np.asarray(pm.offset_counts))
+            under = sig < 2 * pm.noise_counts_rms
+            flags = sum(AXIS_OVER_X << i for i in range(3) if over[i]) + sum(AXIS_UNDER_X << i for i in range(3) if under[i])
+            msg = Axes(flags, 0, int(counts[0]), int(counts[1]), int(counts[2]))
+            self._range_flags = (STATUS_OVERRANGE if over.any() else 0) | (STATUS_UNDERRANGE if under.all() else 0)
+            rec.update(type="AXES", counts=[int(c) for c in counts], axis_flags=flags)
+        else:
+            o = self._orient
+            levels = receiver_levels_dbuv(self.sc.receiver, np.abs(e_axes[:, o]), freq, self._rng)
+            idx = [i for i in np.argsort(-np.nan_to_num(levels, nan=-1e9)) if not np.isnan(levels[i])][:Spectrum.MAX_PAIRS]
+            pairs = tuple(sorted((int(round(freq[i] / 1000)), int(np.clip(round(levels[i] * 100), -32768, 32767)))
+                                 for i in idx))
+            msg = Spectrum(o, self._sweep & 0xFFFF, pairs)
+            rec.update(type="SPECTRUM", orientation=o, sweep=self._sweep & 0xFFFF, n_pairs=len(pairs))
+            self._orient = (o + 1) % 3
+            if self._orient == 0:
+                self._sweep += 1
+        e_src = np.sqrt(np.sum(e_axes**2, axis=1))
+        names = [tx.name for tx in getattr(scene, "transmitters", ())] or [f"source{i}" for i in range(len(freq))]
+        path = getattr(scene, "path", None)
+        rec.update(e_total_v_per_m=float(np.sqrt(np.sum(e_axes**2))),
+                   e_axes_v_per_m=[float(v) for v in np.sqrt(np.sum(e_axes**2, axis=0))],
+                   sources=[{"name": n, "freq_hz": float(f), "e_v_per_m": float(e)} for n, f, e in zip(names, freq, e_src)],
+                   position_m=[float(v) for v in path.position(t_s)] if path is not None else None,
+                   temp_c=temp)
+        rec["fate"] = self._send(msg, end_ms, tick_ms=tick)
+        if self.truth:
+            self.truth.write(rec)
+        self._flags_changed(end_ms)
+
+    # ----------------------------------------------------------------- commands
+    def _fault(self, code: int, frame, now_ms: int, text: str) -> None:
+        self._send(Fault(code, frame.type & 0xFF, frame.seq, text[:MAX_TEXT]), now_ms)
+
+    def _command(self, frame, now_ms: int) -> None:
+        if frame.version != PROTOCOL_MAJOR:
+            return self._fault(FaultCode.BAD_VERSION, frame, now_ms, f"version {frame.version}")
+        if frame.type not in _HOST_TYPES:
+            if not self.quirks["silent_unknown"]:
+                self._fault(FaultCode.UNKNOWN_TYPE, frame, now_ms, "type")
+            return None
+        ft = FrameType(frame.type)
+        if ft in _FIXED_LEN and len(frame.payload) != _FIXED_LEN[ft]:
+            return self._fault(FaultCode.BAD_LENGTH, frame, now_ms, "length")
+        try:
+            msg = parse_payload(frame)
+        except ProtocolError:
+            code = FaultCode.BAD_VALUE if ft == FrameType.CLOCK_SET else FaultCode.BAD_FRAME
+            return self._fault(code, frame, now_ms, "payload")
+        ack = Ack(frame.type, frame.seq)
+        if ft == FrameType.WHO:
+            self._send(self._ident(), now_ms)
+        elif ft == FrameType.START:
+            if not self.streaming:
+                self.streaming = True
+                self._next_end, self._next_status = now_ms + self.interval_ms, now_ms + STATUS_PERIOD_MS
+            self._send(ack, now_ms)
+            self._flags_changed(now_ms)
+        elif ft == FrameType.STOP:
+            self.streaming = False
+            self._send(ack, now_ms)
+            self._flags_changed(now_ms)
+        elif ft == FrameType.SET_INTERVAL:
+            if self._set_interval(msg.interval_ms, now_ms):
+                self._send(ack, now_ms)
+            else:
+                self._fault(FaultCode.BAD_VALUE, frame, now_ms, "interval")
+        elif ft == FrameType.STATUS_QUERY:
+            self._send(self._status(now_ms), now_ms)
+        elif ft == FrameType.SETTING_GET:
+            v = self._setting(msg.key, now_ms)
+            if v is None:
+                return self._fault(FaultCode.UNKNOWN_KEY, frame, now_ms, f"key {msg.key}")
+            self._send(Setting(msg.key, v), now_ms)
+        elif ft == FrameType.SETTING_PUT:
+            self._setting_put(frame, msg, now_ms)
+        elif ft == FrameType.CLOCK_SET:
+            self.clock = (msg.utc_s * 1000 + msg.utc_ms, now_ms)
+            self._send(ack, now_ms)
+            self._flags_changed(now_ms)
+        elif ft == FrameType.PING:
+            self._send(Echo(msg.data), now_ms, FrameType.PONG)
+        return None
+
+    def _ident(self) -> Ident:
+        dev = self.sc.device
+        fw = tuple(int(v) for v in dev.get("fw", (1, 0, 0)))
+        kind = SensorKind.E_PROBE if self.sensor == "probe" else SensorKind.DIPOLE_RX
+        model = str(dev.get("model", "SIM")) + ("" if self.sensor == "probe" else "-RX")
+        return Ident(PROTOCOL_MAJOR, PROTOCOL_MINOR, *fw, kind, self.boot_count, self.min_interval_ms,
+                     self.max_interval_ms, model, self.spec.serial, self.texts[SettingKey.PROBE_SERIAL],
+                     self.texts[SettingKey.CERT_REF])
+
+    def _set_interval(self, interval_ms: int, now_ms: int) -> bool:
+        if not self.min_interval_ms <= interval_ms <= self.max_interval_ms:
+            return False
+        self.interval_ms = int(interval_ms)
+        if self.streaming:
+            self._next_end = now_ms + self.interval_ms
+        return True
+
+    def _setting(self, key: int, now_ms: int):
+        if key == SettingKey.INTERVAL_MS:
+            return self.interval_ms
+        if key == SettingKey.DEVICE_AVERAGING:
+            return self.averaging
+        if key in self.texts:
+            return self.texts[key]
+        if key == SettingKey.CLOCK_UTC_MS:
+            return 0 if not self.clock else (self.clock[0] + now_ms - self.clock[1]) // 1000 % U32_MOD
+        return None
+
+    def _setting_put(self, frame, msg, now_ms: int) -> None:
+        key, v = msg.key, msg.value
+        if self._setting(key, now_ms) is None:
+            return self._fault(FaultCode.UNKNOWN_KEY, frame, now_ms, f"key {key}")
+        if key == SettingKey.CLOCK_UTC_MS:
+            return self._fault(FaultCode.READ_ONLY, frame, now_ms, "clock: use CLOCK_SET")
+        if key in self.texts:
+            if not isinstance(v, str):
+                return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "text expected")
+            self.texts[key] = v
+        elif isinstance(v, str):
+            return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "number expected")
+        elif key == SettingKey.INTERVAL_MS:
+            if not self._set_interval(v, now_ms):
+                return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "interval")
+        elif key == SettingKey.DEVICE_AVERAGING:
+            if not 1 <= v <= 64:
+                return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "averaging 1..64")
+            self.averaging = int(v)
+        self._send(Setting(key, self._setting(key, now_ms)), now_ms)
+        return None
+
+
+__all__ = ["Firmware", "DEFAULT_FAULTS", "DEFAULT_QUIRKS", "STATUS_PERIOD_MS"]
