@@ -1,0 +1,78 @@
+"""The ``meterlink limits`` command, through meterlink.cli.main and once as a subprocess.
+
+Expected numbers are from ICNIRP 2020 Table 5 (public, 400-2000 MHz, verified) and
+47 CFR 1.1310 Table 1 (B) (verified), as in tests/test_limits.py.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+from meterlink.cli import SAFETY_LINE, main
+
+
+def _flat(text: str) -> str:
+    return " ".join(text.split())
+
+
+def test_table_output_carries_values_and_cautions(capsys):
+    assert main(["limits", "900MHz", "--standard", "icnirp-2020", "--tier", "public"]) == 0
+    out = _flat(capsys.readouterr().out)
+    assert "41.25" in out and "4.5" in out and "30 min" in out  # ICNIRP 2020 Table 5, V
+    assert _flat(SAFETY_LINE) in out
+    assert "50 % of its E level is at 25 %" in out
+
+
+def test_derived_cells_are_marked(capsys):
+    # 47 CFR 1.1310 Table 1 (B) gives only S = 1.0 mW/cm2 at 1900 MHz; E is sqrt(10*Z0) = 61.38 V/m.
+    assert main(["limits", "1.9GHz", "--standard", "fcc-1310", "--tier", "public"]) == 0
+    out = _flat(capsys.readouterr().out)
+    assert "~61.38" in out and "derived" in out and "general population/uncontrolled" in out
+
+
+def test_json_all_standards(capsys):
+    assert main(["limits", "2.45GHz", "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert data["frequency_hz"] == 2.45e9 and data["safety"] == SAFETY_LINE
+    by = {(lv["standard"], lv["tier"], lv["kind"]): lv for lv in data["levels"]}
+    assert by[("icnirp-2020", "public", "whole_body")]["s_w_per_m2"] == 10  # ICNIRP 2020 T5, V
+    assert by[("fcc-1310", "occupational", "whole_body")]["s_w_per_m2"] == 50  # CFR Table 1 (A), V
+    assert by[("icnirp-2020", "public", "local")]["s_w_per_m2"] == 40  # ICNIRP 2020 T6, V
+    assert all(lv["kind"] != "brief_energy" for lv in data["levels"])
+
+
+def test_kind_filter(capsys):
+    assert main(["limits", "1MHz", "--kind", "peak", "--json"]) == 0
+    levels = json.loads(capsys.readouterr().out)["levels"]
+    assert levels and {lv["kind"] for lv in levels} == {"peak"}
+    assert {(lv["standard"], lv["tier"], lv["e_v_per_m"]) for lv in levels} >= {("icnirp-2020", "public", 83)}
+
+
+@pytest.mark.parametrize("argv,fragment", [
+    (["limits", "banana"], "not a frequency"),
+    (["limits", "1GHz", "--standard", "nope"], "unknown standard"),
+    (["limits", "1kHz", "--standard", "icnirp-2020"], "is outside"),
+    (["limits", "200GHz", "--standard", "fcc-1310"], "is outside"),
+    (["limits", "1GHz", "--tier", "workers"], "unknown tier"),
+    (["limits", "1GHz", "--kind", "brief"], "unknown kind"),
+    (["limits", "1GHz", "--standard", "eu-1999", "--tier", "occupational"], "no whole_body table"),
+])
+def test_bad_input_is_one_line_exit_2(capsys, argv, fragment):
+    assert main(argv) == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""
+    lines = captured.err.strip().splitlines()
+    assert len(lines) == 1 and fragment in lines[0] and lines[0].startswith("meterlink limits: error:")
+
+
+def test_subprocess_json():
+    proc = subprocess.run([sys.executable, "-m", "meterlink", "limits", "900MHz", "--json"],
+                          capture_output=True, text=True, timeout=60, check=False)
+    assert proc.returncode == 0, proc.stderr
+    data = json.loads(proc.stdout)
+    lv = next(x for x in data["levels"] if (x["standard"], x["tier"], x["kind"]) == ("icnirp-2020", "public", "whole_body"))
+    assert lv["e_v_per_m"] == pytest.approx(41.25) and lv["source"].endswith("Table 5")
