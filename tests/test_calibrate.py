@@ -232,3 +232,54 @@ def test_spectrum_near_field_and_expired():
     r = calibrate_spectrum(_dipole(), [100e6], [50.0], "y", near_field=True, today=dt.date(2028, 1, 1))
     assert np.isnan(r.s_w_per_m2[0]) and np.isfinite(r.e_v_per_m[0])
     assert r.flags[0] & NEAR_FIELD and r.flags[0] & EXPIRED and "expired" in r.warnings[0]
+
+
+# --- the demo certificates against the simulated instruments they were derived from ---------------
+
+def _demo_models():
+    import tomllib
+    from importlib import resources
+
+    from simulators import instruments as sim
+    sc = tomllib.loads(resources.files("simulators.scenarios").joinpath("demo.toml").read_text(encoding="utf-8"))
+    return sim, sim.ProbeModel.from_dict(sc["probe"]), sim.ReceiverModel.from_dict(sc["receiver"])
+
+
+def test_demo_probe_certificate_recovers_simulated_fields_within_u():
+    from meterlink.certificate import load_certificate
+    sim, probe, _ = _demo_models()
+    cert = load_certificate("demo-probe")
+    rng = np.random.default_rng(11)
+    errs, us, naive = [], [], []
+    for _ in range(120):
+        f = float(np.exp(rng.uniform(np.log(40e6), np.log(5.5e9))))
+        d = np.abs(rng.normal(size=3))
+        e = float(np.exp(rng.uniform(np.log(0.5), np.log(15.0)))) * d / np.linalg.norm(d)
+        temp = float(rng.uniform(10, 35))
+        counts, over = sim.probe_counts(probe, e[None, :], [f], temp, rng, n_average=4)
+        assert not over.any()
+        r = calibrate_axes(cert, counts[None, :], f, temp_c=temp, today=TODAY)
+        assert r.flags[0] == 0
+        errs.append(20 * np.log10(r.e_v_per_m[0] / np.linalg.norm(e)))
+        us.append(r.u_expanded_db[0])
+        raw = calibrate_axes(identity_certificate(counts_per_v2m2=probe.counts_per_v2m2), counts[None, :], f)
+        naive.append(20 * np.log10(raw.e_v_per_m[0] / np.linalg.norm(e)))
+    errs, us = np.abs(errs), np.array(us)
+    assert np.mean(errs <= us) >= 0.95 and np.all(errs <= 1.5 * us)
+    assert np.median(errs) < 0.4 and np.median(np.abs(naive)) > 2 * np.median(errs)
+
+
+def test_demo_dipole_certificate_recovers_simulated_fields_within_u():
+    from meterlink.certificate import load_certificate
+    sim, _, rx = _demo_models()
+    cert = load_certificate("demo-dipole")
+    rng = np.random.default_rng(12)
+    f = np.geomspace(40e6, 5.5e9, 25)
+    e_xyz = np.abs(rng.normal(size=(25, 3))) * 0.05           # V/m per orientation, incoherent
+    rs = [calibrate_spectrum(cert, f, sim.receiver_levels_dbuv(rx, e_xyz[:, i], f, rng), o, today=TODAY)
+          for i, o in enumerate("xyz")]
+    tot = combine_orientations(rs)
+    err = np.abs(20 * np.log10(tot.e_v_per_m / np.linalg.norm(e_xyz, axis=1)))
+    assert not np.any(tot.flags & (FREQ_OUT | ABOVE_RANGE))
+    ok = ~(tot.flags & BELOW_RANGE).astype(bool)
+    assert ok.mean() > 0.9 and np.all(err[ok] <= tot.u_expanded_db[ok])

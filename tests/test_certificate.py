@@ -145,3 +145,14 @@ def test_replace_keeps_validation_on_load():
     bad = dataclasses.replace(identity_certificate(), due_date=dt.date(1990, 1, 1))
     with pytest.raises(CertificateError, match="not after"):
         parse_certificate(dump_certificate(bad), "mem.toml")
+
+
+def test_committed_demo_certificates_are_what_the_lab_script_derives():
+    import importlib.util
+    from pathlib import Path
+    folder = Path(__file__).resolve().parent.parent / "calibration"
+    spec = importlib.util.spec_from_file_location("derive_demo_certificates", folder / "derive_demo_certificates.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    for name, text in mod.derive().items():
+        assert (folder / name).read_text(encoding="utf-8") == text, f"{name}: rerun the script and commit"
