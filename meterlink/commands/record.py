@@ -1,0 +1,115 @@
+"""``meterlink record``: store a meter's raw readings, status and link events in SQLite."""
+
+from __future__ import annotations
+
+import math
+
+HELP = "record a meter's raw readings, status and link events into a database"
+
+DEFAULT_DB = "meterlink.db"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("--port", metavar="PORT",
+                        help="serial device or pyserial URL (socket://, rfc2217://, loop://, spy://)")
+    parser.add_argument("--db", metavar="FILE", default=DEFAULT_DB,
+                        help=f"database file, created if missing (default: {DEFAULT_DB} in the current directory)")
+    parser.add_argument("--duration", metavar="S", help="stop after S seconds of DEVICE time, i.e. when the "
+                        "readings span S s by the meter's own clock (default: until Ctrl-C); a host-time "
+                        "safety timeout of 2*S+30 s also applies")
+    parser.add_argument("--interval-ms", metavar="N", default="1000", help="reading interval to ask for (default 1000)")
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument("--freq", metavar="F", help="frequency the operator declares for a broadband probe, e.g. 900MHz")
+    group.add_argument("--band", metavar="LO:HI", help="band the operator declares, e.g. 800MHz:1GHz")
+    parser.add_argument("--notes", metavar="TEXT", default="", help="free text stored with the session")
+    parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+
+def _positive(text: str, what: str, integer: bool = False) -> float:
+    from meterlink.errors import MeterlinkError
+
+    try:
+        value = int(text) if integer else float(text)
+    except (TypeError, ValueError):
+        raise MeterlinkError(f"{what} {text!r} is not a {'whole ' if integer else ''}number") from None
+    if not math.isfinite(value) or value <= 0:
+        raise MeterlinkError(f"{what} {text!r} must be positive")
+    return value
+
+
+def parse_band(text: str) -> tuple[float, float]:
+    """'800MHz:1GHz' -> (8e8, 1e9); MeterlinkError if malformed or empty."""
+    from meterlink.errors import MeterlinkError
+    from meterlink.units import parse_frequency_hz
+
+    lo, sep, hi = str(text).partition(":")
+    try:
+        if not sep:
+            raise ValueError("expected LO:HI")
+        band = parse_frequency_hz(lo.strip()), parse_frequency_hz(hi.strip())
+    except ValueError as exc:
+        raise MeterlinkError(f"--band {text!r}: {exc}") from None
+    if band[0] >= band[1]:
+        raise MeterlinkError(f"--band {text!r}: the low edge must be below the high edge")
+    return band
+
+
+def run(args) -> int:
+    import json
+
+    from meterlink.errors import MeterlinkError
+    from meterlink.recorder import Recorder
+    from meterlink.storage import Store
+    from meterlink.units import parse_frequency_hz
+
+    if not args.port:
+        raise MeterlinkError("no --port given (see 'meterlink ports')")
+    duration = _positive(args.duration, "--duration") if args.duration is not None else None
+    interval = int(_positive(args.interval_ms, "--interval-ms", integer=True))
+    freq = None
+    if args.freq is not None:
+        try:
+            freq = parse_frequency_hz(args.freq)
+        except ValueError as exc:
+            raise MeterlinkError(f"--freq: {exc}") from None
+    band = parse_band(args.band) if args.band is not None else None
+    with Store(args.db) as store:
+        rec = Recorder(store, args.port, interval_ms=interval, duration_s=duration, freq_hz=freq, band_hz=band,
+                       notes=args.notes)
+        summary = rec.run()
+    if args.json:
+        print(json.dumps(summary.as_dict(), indent=2, sort_keys=True))
+    else:
+        print_summary(summary)
+    return 0
+
+
+def summary_table(s):
+    """A rich Table of a RecordSummary (pure: no terminal needed)."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    from meterlink.link import safe_text
+
+    t = Table(title=f"recording, session {s.session_id}", show_header=False)
+    t.add_column("what", style="bold")
+    t.add_column("value")
+    inst = " ".join(x for x in (safe_text(s.model), f"serial {safe_text(s.serial)}" if s.serial else "",
+                                f"probe {safe_text(s.probe_serial)}" if s.probe_serial else "",
+                                f"firmware {s.firmware}" if s.firmware else "") if x)
+    rows = [("instrument", inst or "(no handshake)"), ("port", safe_text(s.port)), ("database", s.db_path),
+            ("readings", str(s.readings)), ("spectra", str(s.spectra)), ("status reports", str(s.statuses)),
+            ("frames lost (seq gaps)", str(s.lost_frames)),
+            ("device time span", f"{s.device_span_s:.3f} s"), ("host time", f"{s.host_elapsed_s:.3f} s"),
+            ("device clock / host clock", "n/a" if s.clock_rate_ratio is None else f"{s.clock_rate_ratio:.6g}"),
+            ("events", ", ".join(f"{k} {n}" for k, n in s.events_by_kind.items()) or "none"),
+            ("stopped", s.stop_reason)]
+    for k, v in rows:
+        t.add_row(k, escape(v))
+    return t
+
+
+def print_summary(s) -> None:
+    from rich.console import Console
+
+    Console().print(summary_table(s))

@@ -1,0 +1,462 @@
+"""The meter link: handshake, one reader thread, sequence and restart checks, reconnection.
+
+``MeterLink`` owns a transport and a background thread that deframes, parses and checks every
+frame, then hands typed items (Connected, Reading, SpectrumReading, StatusReport, LinkEvent) to
+consumers through a queue. A frame with a bad CRC or a malformed payload is never delivered as
+a reading; it becomes a LinkEvent. Device strings are untrusted data.
+"""
+
+from __future__ import annotations
+
+import queue
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+from meterlink.clock import HALF_TICK, ClockMapping, DeviceClock
+from meterlink.errors import LinkError, ProtocolError
+from meterlink.protocol import (Ack, Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident,
+                                Junk, PROTOCOL_MAJOR, SetInterval, Spectrum, Status, encode_message,
+                                parse_payload, seq_delta)
+from meterlink.transport import Link, SerialLink
+
+RESTART_SEQ_MAX = 64  # seq this close to 0 with the tick going back = the device restarted
+
+
+def safe_text(s: str) -> str:
+    """A device string made safe to print: control and non-ASCII characters escaped."""
+    return repr(str(s))[1:-1]
+
+
+@dataclass(frozen=True)
+class Connected:
+    """A handshake completed: who the device is and how its clock maps to UTC."""
+
+    ident: Ident
+    status: Status | None
+    boot: int
+    interval_ms: int
+    mapping: ClockMapping
+    port: str
+
+
+@dataclass(frozen=True)
+class Reading:
+    """One three-axis reading, timed by the device clock (tick_ms unwrapped, t_utc epoch s)."""
+
+    boot: int
+    seq: int
+    tick_ms: int
+    t_utc: float
+    axes: Axes
+
+
+@dataclass(frozen=True)
+class SpectrumReading:
+    boot: int
+    seq: int
+    tick_ms: int
+    t_utc: float
+    spectrum: Spectrum
+
+
+@dataclass(frozen=True)
+class StatusReport:
+    boot: int
+    seq: int
+    tick_ms: int
+    t_utc: float
+    status: Status
+
+
+@dataclass(frozen=True)
+class LinkEvent:
+    """Something the link noticed: kind (crc_error, seq_gap, ...), severity info|warning|error."""
+
+    kind: str
+    severity: str
+    message: str
+    t_utc: float
+    detail: dict = field(default_factory=dict)
+
+
+@dataclass
+class LinkStats:
+    frames: int = 0
+    readings: int = 0
+    spectra: int = 0
+    statuses: int = 0
+    crc_errors: int = 0
+    length_errors: int = 0
+    garbage_bytes: int = 0
+    gaps: int = 0
+    lost_frames: int = 0
+    duplicates: int = 0
+    restarts: int = 0
+    faults: int = 0
+    malformed: int = 0
+    port_losses: int = 0
+    reconnects: int = 0
+    handshakes: int = 0
+    unsynced: int = 0
+    queue_overflow: int = 0
+
+
+class _Restart(Exception):
+    """Internal: the device restarted; handshake again."""
+
+
+class _Fatal(Exception):
+    """Internal: the device cannot be used (wrong protocol major version)."""
+
+
+class MeterLink:
+    """Acquire from one meter on a background thread; consumers call get()."""
+
+    def __init__(self, port: str | None = None, interval_ms: int = 1000, *,
+                 link_factory: Callable[[], Link] | None = None, max_reconnects: int | None = None,
+                 backoff_initial_s: float = 0.1, backoff_max_s: float = 5.0, who_retries: int = 5,
+                 reply_timeout_s: float = 0.5, min_silence_s: float = 3.0, drift_report_s: float = 10.0,
+                 queue_max: int = 200_000):
+        if link_factory is None:
+            if not port:
+                raise LinkError("no serial port given")
+            link_factory = lambda: SerialLink(port)  # noqa: E731
+        self.port = port or ""
+        self.interval_ms = int(interval_ms)
+        self._factory = link_factory
+        self.max_reconnects = max_reconnects
+        self.backoff_initial_s, self.backoff_max_s = backoff_initial_s, backoff_max_s
+        self.who_retries, self.reply_timeout_s = who_retries, reply_timeout_s
+        self.min_silence_s, self.drift_report_s = min_silence_s, drift_report_s
+        self.queue: queue.Queue = queue.Queue(maxsize=queue_max)
+        self.stats = LinkStats()
+        self.clock = DeviceClock()
+        self.ident: Ident | None = None
+        self._link: Link | None = None
+        self._reader = FrameReader()
+        self._host_seq = 0
+        self._boot: int | None = None
+        self._last_seq: int | None = None
+        self._last_tick: int | None = None
+        self._last_frame_mono = time.monotonic()
+        self._restart_pending = False
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self.finished = threading.Event()  # set when the reader thread has ended
+
+    # -- public --------------------------------------------------------------------------------
+    def start(self, require_open: bool = True) -> "MeterLink":
+        """Start the reader thread; with require_open the port is opened first and LinkError raised here."""
+        if require_open:
+            link = self._factory()
+            link.open()
+            self._link = link
+        self._thread = threading.Thread(target=self._run, name=f"meterlink-link-{self.port}", daemon=True)
+        self._thread.start()
+        return self
+
+    def stop(self, timeout_s: float = 5.0) -> None:
+        """Stop the thread, tell the device to stop streaming (best effort) and close the port."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout_s)
+
+    def get(self, timeout_s: float = 0.1):
+        """Next item from the link, or None if nothing arrived within timeout_s."""
+        try:
+            return self.queue.get(timeout=timeout_s)
+        except queue.Empty:
+            return None
+
+    def __enter__(self) -> "MeterLink":
+        return self.start()
+
+    def __exit__(self, *exc) -> None:
+        self.stop()
+
+    # -- thread --------------------------------------------------------------------------------
+    def _run(self) -> None:
+        attempts, delay = 0, self.backoff_initial_s
+        next_drift = time.monotonic() + self.drift_report_s
+        try:
+            while not self._stop.is_set():
+                try:
+                    if self._link is None or not self._link.is_open:
+                        link = self._factory()
+                        link.open()
+                        self._link, self._reader = link, FrameReader()
+                    self._handshake()
+                    if attempts:
+                        self.stats.reconnects += 1
+                        self._event("reconnected", "info", f"link to {self.port} re-established after "
+                                    f"{attempts} attempt(s)", attempts=attempts)
+                    attempts, delay = 0, self.backoff_initial_s
+                    while not self._stop.is_set():
+                        try:
+                            self._pump()
+                        except _Restart:
+                            self._handshake()
+                        if time.monotonic() >= next_drift:
+                            next_drift = time.monotonic() + self.drift_report_s
+                            self._report_drift()
+                except LinkError as exc:
+                    self._close_link()
+                    if self._stop.is_set():
+                        break
+                    attempts += 1
+                    if attempts == 1:
+                        self.stats.port_losses += 1
+                        self._event("port_lost", "error", str(exc), port=self.port)
+                    if self.max_reconnects is not None and attempts > self.max_reconnects:
+                        self._event("gave_up", "error", f"no link to {self.port} after {attempts - 1} "
+                                    f"reconnection attempt(s)", attempts=attempts - 1)
+                        break
+                    self._stop.wait(delay)
+                    delay = min(delay * 2, self.backoff_max_s)
+        except _Fatal as exc:
+            self._event("handshake", "error", str(exc))
+        except Exception as exc:  # a bug must not kill acquisition silently
+            self._event("internal_error", "error", f"link thread stopped: {type(exc).__name__}: {exc}")
+        finally:
+            self._report_drift()
+            self._say_stop()
+            self._close_link()
+            self.finished.set()
+
+    def _close_link(self) -> None:
+        if self._link is not None:
+            self._link.close()
+        self._link = None
+
+    def _say_stop(self) -> None:
+        if self._link is not None and self._link.is_open:
+            try:
+                self._send(FrameType.STOP, Empty())
+            except LinkError:
+                pass
+
+    # -- frames in -----------------------------------------------------------------------------
+    def _pump(self, timeout_s: float = 0.05) -> list[tuple[Frame, Any]]:
+        """Read once, handle everything that arrived; return (frame, message) pairs handled."""
+        assert self._link is not None
+        data = self._link.read(4096, timeout_s)
+        now = time.monotonic()
+        if not data:
+            silence = now - self._last_frame_mono
+            ratio = self.clock.rate_ratio() or 1.0
+            limit = max(self.min_silence_s, 30.0 / max(ratio, 1.0))  # STATUS comes at least every 10 s device time
+            if silence > limit:
+                self._event("port_silent", "warning", f"no frames from {self.port} for {silence:.1f} s",
+                            silence_s=round(silence, 3))
+                raise LinkError(f"port {self.port!r} silent for {silence:.1f} s")
+            return []
+        junk: dict[str, int] = {}
+        handled = []
+        for item in self._reader.feed(data):
+            if isinstance(item, Junk):
+                junk[item.kind] = junk.get(item.kind, 0) + item.n_bytes
+                if item.kind == "crc":
+                    self.stats.crc_errors += 1
+                elif item.kind == "length":
+                    self.stats.length_errors += 1
+                else:
+                    self.stats.garbage_bytes += item.n_bytes
+                continue
+            self._last_frame_mono = now
+            msg = self._handle(item, now)
+            if msg is not None:
+                handled.append((item, msg))
+        for kind, n in junk.items():
+            name = {"crc": "crc_error", "length": "length_error"}.get(kind, "garbage")
+            self._event(name, "warning", f"{n} byte(s) skipped ({kind})", n_bytes=n)
+        if self._restart_pending:
+            self._restart_pending = False
+            raise _Restart
+        return handled
+
+    def _handle(self, frame: Frame, now: float):
+        """Check one frame's sequence and deliver it; returns the parsed message or None."""
+        self.stats.frames += 1
+        try:
+            msg = parse_payload(frame)
+        except ProtocolError as exc:
+            self.stats.malformed += 1
+            self._event("malformed", "warning", f"frame type 0x{frame.type:02x} seq {frame.seq}: {exc}",
+                        type=frame.type, seq=frame.seq)
+            self._track_seq(frame)
+            return None
+        if isinstance(msg, Boot):
+            self._on_restart(f"device sent BOOT (boot count {msg.boot_count}, reset cause {msg.reset_cause})",
+                             boot=msg.boot_count, reset_cause=msg.reset_cause)
+            self._boot = msg.boot_count
+            self._last_seq, self._last_tick = frame.seq, frame.tick_ms
+            return msg
+        if self._looks_restarted(frame):
+            self._on_restart(f"sequence fell back from {self._last_seq} to {frame.seq} and the device "
+                             "clock went back", seq=frame.seq, prev_seq=self._last_seq)
+            self._last_seq, self._last_tick = frame.seq, frame.tick_ms
+            if isinstance(msg, Ident):
+                self._boot = msg.boot_count
+            return msg
+        self._track_seq(frame)
+        if isinstance(msg, Fault):
+            self._on_fault(msg)
+        elif isinstance(msg, (Axes, Spectrum, Status)):
+            self._deliver_data(frame, msg, now)
+        return msg
+
+    def _looks_restarted(self, frame: Frame) -> bool:
+        if self._last_seq is None or self._last_tick is None:
+            return False
+        delta = seq_delta(self._last_seq, frame.seq)
+        back = (self._last_tick - frame.tick_ms) % (1 << 32)
+        return delta > HALF_TICK and frame.seq < RESTART_SEQ_MAX and 0 < back < HALF_TICK
+
+    def _track_seq(self, frame: Frame) -> None:
+        if self._last_seq is not None:
+            delta = seq_delta(self._last_seq, frame.seq)
+            if delta == 0:
+                self.stats.duplicates += 1
+                self._event("duplicate_frame", "warning", f"frame seq {frame.seq} repeated", seq=frame.seq)
+            elif 1 < delta <= HALF_TICK:
+                self.stats.gaps += 1
+                self.stats.lost_frames += delta - 1
+                self._event("seq_gap", "warning", f"{delta - 1} frame(s) lost between seq {self._last_seq} and "
+                            f"{frame.seq}", lost=delta - 1, prev_seq=self._last_seq, seq=frame.seq)
+            elif delta > HALF_TICK:
+                self._event("seq_backward", "warning", f"frame seq {frame.seq} arrived after {self._last_seq}",
+                            seq=frame.seq, prev_seq=self._last_seq)
+                return
+        self._last_seq, self._last_tick = frame.seq, frame.tick_ms
+
+    def _on_restart(self, message: str, **detail) -> None:
+        self._restart_pending = True
+        self.stats.restarts += 1
+        self.clock.restart()
+        self._event("device_restart", "warning", message, **detail)
+
+    def _on_fault(self, f: Fault) -> None:
+        self.stats.faults += 1
+        try:
+            name = FaultCode(f.code).name
+        except ValueError:
+            name = f"code {f.code}"
+        sev = "error" if f.code == FaultCode.SENSOR else "warning"
+        self._event("fault", sev, f"device FAULT {name} (command 0x{f.cmd_type:02x} seq {f.cmd_seq}): "
+                    f"{safe_text(f.text)}", code=f.code, name=name, cmd_type=f.cmd_type, cmd_seq=f.cmd_seq,
+                    text=f.text)
+
+    def _deliver_data(self, frame: Frame, msg, now: float) -> None:
+        if self.clock.mapping is None or self._boot is None:
+            self.stats.unsynced += 1
+            if self.stats.unsynced == 1:
+                self._event("unsynced", "warning", "data frame before the handshake ignored", seq=frame.seq)
+            return
+        tick = self.clock.unwrap(frame.tick_ms)
+        t_utc = self.clock.utc_of(tick)
+        if isinstance(msg, Axes):
+            self.stats.readings += 1
+            self.clock.observe(now, tick)
+            self._put(Reading(self._boot, frame.seq, tick, t_utc, msg))
+        elif isinstance(msg, Spectrum):
+            self.stats.spectra += 1
+            self.clock.observe(now, tick)
+            self._put(SpectrumReading(self._boot, frame.seq, tick, t_utc, msg))
+        else:
+            self.stats.statuses += 1
+            self._put(StatusReport(self._boot, frame.seq, tick, t_utc, msg))
+
+    # -- commands ------------------------------------------------------------------------------
+    def _send(self, ftype: int, msg) -> int:
+        assert self._link is not None
+        seq = self._host_seq
+        self._host_seq = (self._host_seq + 1) % (1 << 32)
+        self._link.write(encode_message(msg, seq, 0, ftype))
+        return seq
+
+    def _command(self, ftype: int, msg, want: type, timeout_s: float | None = None):
+        """Send one command and wait for its reply; a FAULT for it is returned too. None on timeout."""
+        seq = self._send(ftype, msg)
+        deadline = time.monotonic() + (timeout_s or self.reply_timeout_s)
+        while time.monotonic() < deadline and not self._stop.is_set():
+            for frame, reply in self._pump(min(0.05, max(0.0, deadline - time.monotonic()))):
+                if isinstance(reply, Fault) and reply.cmd_seq == seq:
+                    return reply
+                if isinstance(reply, want) and (not isinstance(reply, Ack) or reply.cmd_seq == seq):
+                    return reply
+        return None
+
+    def _handshake(self) -> None:
+        """WHO -> IDENT (retried), STATUS_QUERY, SET_INTERVAL, START -> ACK; restarts on BOOT."""
+        for _ in range(5):
+            try:
+                self._handshake_once()
+                return
+            except _Restart:
+                continue
+        raise LinkError(f"device on {self.port!r} keeps restarting during the handshake")
+
+    def _handshake_once(self) -> None:
+        self._last_frame_mono = time.monotonic()
+        ident = None
+        for _ in range(self.who_retries):
+            if self._stop.is_set():
+                return
+            ident = self._command(FrameType.WHO, Empty(), Ident)
+            if isinstance(ident, Ident):
+                break
+        if not isinstance(ident, Ident):
+            raise LinkError(f"no IDENT from the device on {self.port!r} after {self.who_retries} WHO")
+        t_utc = time.time()
+        if ident.proto_major != PROTOCOL_MAJOR:
+            raise _Fatal(f"device speaks protocol {ident.proto_major}.{ident.proto_minor}, this host {PROTOCOL_MAJOR}")
+        ident_tick = self._last_tick if self._last_tick is not None else 0
+        new_boot = self._boot != ident.boot_count or self.clock.mapping is None
+        if new_boot:
+            self.clock.sync(ident.boot_count, ident_tick, t_utc)
+        self._boot = ident.boot_count
+        self.ident = ident
+        status = self._command(FrameType.STATUS_QUERY, Empty(), Status)
+        if self._stop.is_set():
+            return
+        interval = min(max(self.interval_ms, ident.min_interval_ms), ident.max_interval_ms)
+        if interval != self.interval_ms:
+            self._event("interval_clamped", "warning", f"interval {self.interval_ms} ms outside the device's "
+                        f"{ident.min_interval_ms}..{ident.max_interval_ms} ms; using {interval} ms",
+                        requested_ms=self.interval_ms, used_ms=interval)
+        reply = self._command(FrameType.SET_INTERVAL, SetInterval(interval), Ack)
+        if not isinstance(reply, Ack):
+            self._event("handshake", "warning", f"SET_INTERVAL {interval} ms not accepted", interval_ms=interval)
+            interval = status.interval_ms if isinstance(status, Status) else interval
+        reply = self._command(FrameType.START, Empty(), Ack)
+        if self._stop.is_set():
+            return
+        if reply is None:
+            raise LinkError(f"device on {self.port!r} did not acknowledge START")
+        self.stats.handshakes += 1
+        assert self.clock.mapping is not None
+        self._event("handshake", "info", f"connected to {safe_text(ident.model)} serial {safe_text(ident.serial)} "
+                    f"on {self.port} (boot {ident.boot_count}, interval {interval} ms)",
+                    boot=ident.boot_count, interval_ms=interval, new_boot=new_boot)
+        self._put(Connected(ident, status if isinstance(status, Status) else None, ident.boot_count, interval,
+                            self.clock.mapping, self.port))
+
+    # -- out -----------------------------------------------------------------------------------
+    def _report_drift(self) -> None:
+        ratio = self.clock.rate_ratio()
+        if ratio is None:
+            return
+        self._event("clock_drift", "info", f"device clock runs at {ratio:.6g} x host time "
+                    f"({(ratio - 1) * 1e6:+.1f} ppm) over {self.clock.n_pairs} readings",
+                    rate_ratio=ratio, drift_ppm=(ratio - 1) * 1e6, n_pairs=self.clock.n_pairs)
+
+    def _event(self, kind: str, severity: str, message: str, **detail) -> None:
+        self._put(LinkEvent(kind, severity, message, time.time(), detail))
+
+    def _put(self, item) -> None:
+        try:
+            self.queue.put_nowait(item)
+        except queue.Full:
+            self.stats.queue_overflow += 1

@@ -1,0 +1,191 @@
+"""Record a meter's stream into the database: every raw reading, status and link event.
+
+The link thread acquires; this loop consumes its queue and writes through a BatchWriter
+(commits at most one second apart). The duration is measured on the device clock: the time
+span of the readings stored, not host time. A host-time safety timeout bounds the run.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections import Counter
+from dataclasses import dataclass, field
+from typing import Callable
+
+from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
+from meterlink.protocol import SensorKind
+from meterlink.storage import BatchWriter, Store
+from meterlink.transport import Link
+
+
+@dataclass(frozen=True)
+class RecordSummary:
+    """What one recording produced."""
+
+    session_id: int
+    db_path: str
+    port: str
+    model: str
+    serial: str
+    probe_serial: str
+    firmware: str
+    readings: int
+    spectra: int
+    statuses: int
+    events_by_kind: dict = field(default_factory=dict)
+    lost_frames: int = 0
+    device_span_s: float = 0.0
+    host_elapsed_s: float = 0.0
+    clock_rate_ratio: float | None = None
+    stop_reason: str = ""
+
+    def as_dict(self) -> dict:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+
+def reading_row(r: Reading) -> dict:
+    a = r.axes
+    return {"boot": r.boot, "seq": r.seq, "tick_ms": r.tick_ms, "t_utc": r.t_utc, "raw_x": a.x, "raw_y": a.y,
+            "raw_z": a.z, "flags": a.flags, "range_index": a.range_index}
+
+
+def status_row(s: StatusReport) -> dict:
+    st = s.status
+    return {"boot": s.boot, "seq": s.seq, "tick_ms": s.tick_ms, "t_utc": s.t_utc, "battery_mv": st.battery_mv,
+            "battery_pct": None if st.battery_pct > 100 else st.battery_pct,
+            "temperature_degc": st.temp_centi_c / 100.0, "flags": st.flags, "interval_ms": st.interval_ms}
+
+
+def spectrum_row(s: SpectrumReading) -> dict:
+    sp = s.spectrum
+    return {"boot": s.boot, "seq": s.seq, "tick_ms": s.tick_ms, "t_utc": s.t_utc, "orientation": sp.orientation,
+            "sweep": sp.sweep, "lines": [(khz * 1000.0, centi / 100.0) for khz, centi in sp.pairs]}
+
+
+class Recorder:
+    """Consume a MeterLink into a Store session until a device-time duration, a host timeout or stop()."""
+
+    def __init__(self, store: Store, port: str, *, interval_ms: int = 1000, duration_s: float | None = None,
+                 host_timeout_s: float | None = None, kind: str = "record", freq_hz: float | None = None,
+                 band_hz: tuple[float, float] | None = None, notes: str = "",
+                 link_factory: Callable[[], Link] | None = None, on_item: Callable[[object], None] | None = None,
+                 **link_options):
+        self.store, self.port = store, port
+        self.duration_s = duration_s
+        if host_timeout_s is None and duration_s is not None:
+            host_timeout_s = 2.0 * duration_s + 30.0  # a device clock at the host's rate needs duration_s
+        self.host_timeout_s = host_timeout_s
+        self.session_args = dict(kind=kind, port=port, interval_ms=interval_ms, freq_hz=freq_hz, notes=notes,
+                                 band_lo_hz=band_hz[0] if band_hz else None, band_hi_hz=band_hz[1] if band_hz else None)
+        self.link = MeterLink(port, interval_ms, link_factory=link_factory, **link_options)
+        self.on_item = on_item
+        self.stop_event = threading.Event()
+        self.session_id: int | None = None
+        self._ident = None
+        self._t_first: float | None = None
+        self._t_last: float | None = None
+        self._counts = Counter()
+        self._ratio: float | None = None
+
+    def stop(self) -> None:
+        self.stop_event.set()
+
+    def run(self) -> RecordSummary:
+        """Open the port (LinkError if it cannot), record, and return the summary."""
+        self.link.start(require_open=True)
+        self.session_id = self.store.begin_session(**self.session_args)
+        writer = BatchWriter(self.store, self.session_id)
+        t0 = time.monotonic()
+        reason = "stopped"
+        try:
+            while True:
+                if self.stop_event.is_set():
+                    break
+                if self.host_timeout_s is not None and time.monotonic() - t0 > self.host_timeout_s:
+                    reason = "host safety timeout"
+                    writer.add_event("host_timeout", "warning", f"stopped by the host safety timeout of "
+                                     f"{self.host_timeout_s:g} s before {self.duration_s} s of device time")
+                    break
+                item = self.link.get(0.1)
+                if item is None:
+                    if self.link.finished.is_set() and self.link.queue.empty():
+                        reason = "link ended"
+                        break
+                else:
+                    self._consume(item, writer)
+                    if self._span_reached():
+                        reason = "duration reached"
+                        break
+                writer.flush_if_due()
+        except KeyboardInterrupt:
+            reason = "interrupted"
+        finally:
+            self.link.stop()
+            while (item := self.link.get(0.0)) is not None:  # never drop what was acquired
+                self._consume(item, writer)
+            writer.close()
+            self.store.end_session(self.session_id, clock_rate_ratio=self._ratio)
+        return self._summary(reason, time.monotonic() - t0)
+
+    def _span_reached(self) -> bool:
+        if self.duration_s is None or self._t_first is None or self._t_last is None:
+            return False
+        return self._t_last - self._t_first >= self.duration_s
+
+    def _consume(self, item, writer: BatchWriter) -> None:
+        if isinstance(item, Reading):
+            writer.add_reading(reading_row(item))
+            self._counts["readings"] += 1
+            self._span(item.t_utc)
+        elif isinstance(item, SpectrumReading):
+            writer.add_spectrum(spectrum_row(item))
+            self._counts["spectra"] += 1
+            self._span(item.t_utc)
+        elif isinstance(item, StatusReport):
+            writer.add_status(status_row(item))
+            self._counts["statuses"] += 1
+        elif isinstance(item, LinkEvent):
+            writer.add_event(item.kind, item.severity, item.message, item.t_utc, **item.detail)
+            if item.kind == "clock_drift":
+                self._ratio = item.detail.get("rate_ratio")
+        elif isinstance(item, Connected):
+            self._on_connected(item, writer)
+        if self.on_item is not None:
+            self.on_item(item)
+
+    def _span(self, t: float) -> None:
+        self._t_first = t if self._t_first is None else min(self._t_first, t)
+        self._t_last = t if self._t_last is None else max(self._t_last, t)
+
+    def _on_connected(self, c: Connected, writer: BatchWriter) -> None:
+        writer.flush()
+        i = c.ident
+        self._ident = i
+        dev = self.store.device_id(i.model, i.serial, i.probe_serial, i.cert_ref, i.sensor_kind,
+                                   f"{i.fw_major}.{i.fw_minor}.{i.fw_patch}", f"{i.proto_major}.{i.proto_minor}")
+        self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
+                                  clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
+
+    def _summary(self, reason: str, host_s: float) -> RecordSummary:
+        sid = self.session_id
+        events = self.store.events(sid)
+        by_kind = Counter(e["kind"] for e in events)
+        lost = sum(int(e["detail"].get("lost", 0)) for e in events if e["kind"] == "seq_gap")
+        i = self._ident
+        span = (self._t_last - self._t_first) if self._t_first is not None else 0.0
+        return RecordSummary(
+            session_id=sid, db_path=str(self.store.path), port=self.port,
+            model=i.model if i else "", serial=i.serial if i else "", probe_serial=i.probe_serial if i else "",
+            firmware=f"{i.fw_major}.{i.fw_minor}.{i.fw_patch}" if i else "",
+            readings=self.store.count("readings", sid), spectra=self.store.count("spectra", sid),
+            statuses=self.store.count("status", sid), events_by_kind=dict(sorted(by_kind.items())),
+            lost_frames=lost, device_span_s=span, host_elapsed_s=host_s, clock_rate_ratio=self._ratio,
+            stop_reason=reason)
+
+
+def sensor_name(kind: int) -> str:
+    try:
+        return SensorKind(kind).name.lower()
+    except ValueError:
+        return f"kind {kind}"
