@@ -1,0 +1,136 @@
+"""Alarm rules on a running average: threshold, hysteresis, minimum duration (pure state machine).
+
+A rule compares the running average over its window (complete windows only) with a threshold in
+V/m, percent of the field reference level (100 E / E_ref) or percent of the power-density
+reference level (100 S / S_ref with the plane-wave S = E^2 / Z0). An episode starts when the value
+has stayed at or above ``threshold`` for ``min_duration_s`` (its start time is the first crossing),
+and ends at the first value below ``clear`` (<= threshold: the hysteresis band). Incomplete windows
+change nothing. Each episode yields three events: start, peak and end.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+from dataclasses import dataclass
+
+from meterlink.station import AlarmRule
+from meterlink.units import Z0_OHM
+
+IDLE, PENDING, ACTIVE = "idle", "pending", "active"
+UNIT_LABEL = {"v_per_m": "V/m", "pct_field": "% of E ref", "pct_power": "% of S ref"}
+
+
+def rule_value(unit: str, e_v_per_m: float, e_ref_v_per_m: float | None, s_ref_w_per_m2: float | None) -> float:
+    """The running-average field expressed in a rule's unit."""
+    if unit == "v_per_m":
+        return e_v_per_m
+    if unit == "pct_field":
+        return 100.0 * e_v_per_m / e_ref_v_per_m
+    if unit == "pct_power":
+        return 100.0 * (e_v_per_m * e_v_per_m / Z0_OHM) / s_ref_w_per_m2
+    raise ValueError(f"unknown alarm unit {unit!r}")
+
+
+@dataclass(frozen=True)
+class AlarmEvent:
+    """One episode event: kind is 'start', 'peak' or 'end'; times are UTC seconds."""
+
+    kind: str
+    rule: str
+    meter: str
+    band: str
+    t_utc: float
+    value: float
+    unit: str
+    threshold: float
+    clear: float
+    window_s: float
+    episode_start_utc: float
+    peak_t_utc: float
+    peak_value: float
+
+    def message(self) -> str:
+        u = UNIT_LABEL[self.unit]
+        if self.kind == "start":
+            return (f"alarm {self.rule} on {self.meter}: {self.window_s:g} s average {self.value:.4g} {u} "
+                    f">= {self.threshold:g} {u}")
+        if self.kind == "peak":
+            return f"alarm {self.rule} on {self.meter}: peak {self.peak_value:.4g} {u}"
+        return (f"alarm {self.rule} on {self.meter}: cleared, {self.value:.4g} {u} < {self.clear:g} {u} "
+                f"after {self.t_utc - self.episode_start_utc:.0f} s")
+
+    def detail(self) -> dict:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+    def environment(self) -> dict[str, str]:
+        """The event as METERLINK_ALARM_* environment variables for an external command."""
+        return {f"METERLINK_ALARM_{k.upper()}": (f"{v:.9g}" if isinstance(v, float) else str(v))
+                for k, v in self.detail().items()}
+
+
+class AlarmMachine:
+    """State of one rule on one series; ``update`` takes each running-average value in order."""
+
+    def __init__(self, rule: AlarmRule, meter: str, band: str = "total"):
+        self.rule, self.meter, self.band = rule, meter, band
+        self.state = IDLE
+        self.t_on: float | None = None
+        self.peak_t: float | None = None
+        self.peak_v: float | None = None
+        self.last_t: float | None = None
+
+    def _event(self, kind: str, t: float, v: float) -> AlarmEvent:
+        r = self.rule
+        return AlarmEvent(kind, r.name, self.meter, self.band, t, v, r.unit, r.threshold, r.clear, r.window_s,
+                          self.t_on, self.peak_t, self.peak_v)
+
+    def update(self, t_utc: float, value: float, complete: bool = True) -> list[AlarmEvent]:
+        """Feed one value (in the rule's unit) at time t_utc; returns the episode events it causes."""
+        if self.last_t is not None and t_utc <= self.last_t:
+            return []
+        self.last_t = t_utc
+        if not complete or value != value:
+            return []
+        r = self.rule
+        if self.state == IDLE:
+            if value < r.threshold:
+                return []
+            self.state, self.t_on, self.peak_t, self.peak_v = PENDING, t_utc, t_utc, value
+        elif self.state == PENDING:
+            if value < r.threshold:
+                self.state = IDLE
+                self.t_on = self.peak_t = self.peak_v = None
+                return []
+        if value > self.peak_v:
+            self.peak_t, self.peak_v = t_utc, value
+        if self.state == PENDING:
+            if t_utc - self.t_on >= r.min_duration_s:
+                self.state = ACTIVE
+                return [self._event("start", t_utc, value)]
+            return []
+        if value < r.clear:            # ACTIVE
+            out = [self._event("peak", self.peak_t, self.peak_v), self._event("end", t_utc, value)]
+            self.state = IDLE
+            self.t_on = self.peak_t = self.peak_v = None
+            return out
+        return []
+
+    def snapshot(self) -> tuple:
+        """(state, t_on, peak_t, peak_value, last_t) for persistence."""
+        return (self.state, self.t_on, self.peak_t, self.peak_v, self.last_t)
+
+    def restore(self, state: str, t_on, peak_t, peak_v, last_t) -> None:
+        self.state, self.t_on, self.peak_t, self.peak_v, self.last_t = state, t_on, peak_t, peak_v, last_t
+
+
+def run_command(argv: tuple[str, ...], ev: AlarmEvent) -> subprocess.Popen | None:
+    """Start an external command for an event: argv plus kind, rule, meter, time, value as arguments,
+    everything also as METERLINK_ALARM_* variables. No shell is involved. Returns the process."""
+    if not argv:
+        return None
+    args = [*argv, ev.kind, ev.rule, ev.meter, f"{ev.t_utc:.3f}", f"{ev.value:.6g}", ev.unit]
+    env = dict(os.environ)
+    env.update(ev.environment())
+    return subprocess.Popen(args, env=env, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, close_fds=True, start_new_session=True)

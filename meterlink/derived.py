@@ -1,0 +1,257 @@
+"""Derived series kept up to date as readings arrive: fixed 6-minute blocks and running averages.
+
+Everything is in the power domain: a field E is accumulated as the integral of E^2 dt and the
+root is taken only when a value is read out (RMS over time). The sampling model is that of
+:mod:`meterlink.averaging`: a sample holds its value until the next sample, never longer than
+``hold_s`` (3 nominal intervals); uncovered time is a gap, never a zero. The tables live next to
+the Store's own (``CREATE TABLE IF NOT EXISTS``; docs/monitoring.md) and are written in the same
+transaction as the readings they come from, so a crash leaves them consistent.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from dataclasses import dataclass, field
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS mon_station (
+    id INTEGER PRIMARY KEY, name TEXT NOT NULL UNIQUE, config_path TEXT, config_text TEXT,
+    standard TEXT, tier TEXT, convention TEXT, block_s REAL, windows_s TEXT,
+    latitude_deg REAL, longitude_deg REAL, elevation_m REAL, timezone TEXT,
+    created_utc REAL, started_utc REAL, heartbeat_utc REAL, pid INTEGER, state TEXT, runs INTEGER DEFAULT 0);
+CREATE TABLE IF NOT EXISTS mon_meter (
+    station_id INTEGER NOT NULL, meter TEXT NOT NULL, session_id INTEGER, port TEXT, certificate TEXT,
+    freq_hz REAL, band_lo_hz REAL, band_hi_hz REAL, e_ref_v_per_m REAL, s_ref_w_per_m2 REAL,
+    cert_due TEXT, last_seen_utc REAL, link_state TEXT, battery_pct REAL, temperature_degc REAL,
+    drift_ppm REAL, last_e_v_per_m REAL, u_expanded_db REAL,
+    PRIMARY KEY (station_id, meter));
+CREATE TABLE IF NOT EXISTS mon_block (
+    station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, t_start_utc REAL NOT NULL,
+    block_s REAL NOT NULL, energy REAL NOT NULL, covered_s REAL NOT NULL, n INTEGER NOT NULL,
+    e_rms_v_per_m REAL, e_max_v_per_m REAL, complete INTEGER NOT NULL,
+    PRIMARY KEY (station_id, meter, band, t_start_utc));
+CREATE TABLE IF NOT EXISTS mon_running (
+    station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, window_s REAL NOT NULL,
+    t_start_utc REAL NOT NULL, e_end_v_per_m REAL, coverage_end REAL, e_max_v_per_m REAL, t_max_utc REAL,
+    PRIMARY KEY (station_id, meter, band, window_s, t_start_utc));
+CREATE TABLE IF NOT EXISTS mon_alarm (
+    station_id INTEGER NOT NULL, rule TEXT NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL,
+    state TEXT NOT NULL, t_on_utc REAL, peak_t_utc REAL, peak_value REAL, last_t_utc REAL,
+    PRIMARY KEY (station_id, rule, meter, band));
+"""
+
+
+def ensure_schema(conn) -> None:
+    """Create the monitoring tables if they do not exist (idempotent)."""
+    for stmt in SCHEMA.split(";"):
+        if stmt.strip():
+            conn.execute(stmt)
+
+
+class SlidingWindow:
+    """Energy and covered time of held segments within (t_end - window_s, t_end]."""
+
+    def __init__(self, window_s: float):
+        self.window_s = float(window_s)
+        self._segs: deque[tuple[float, float, float]] = deque()
+        self._energy = 0.0
+        self._covered = 0.0
+        self._adds = 0
+
+    def add(self, t0: float, t1: float, p: float) -> None:
+        """Add the segment [t0, t1) holding power-like value p (E^2 or S)."""
+        if t1 <= t0:
+            return
+        self._segs.append((t0, t1, p))
+        self._energy += p * (t1 - t0)
+        self._covered += t1 - t0
+        self._adds += 1
+        if self._adds % 20000 == 0:      # re-sum now and then so rounding never accumulates
+            self._energy = sum(s[2] * (s[1] - s[0]) for s in self._segs)
+            self._covered = sum(s[1] - s[0] for s in self._segs)
+
+    def value(self, t_end: float) -> tuple[float, float]:
+        """(mean of p over the covered time, coverage 0..1) of the window ending at t_end."""
+        cut = t_end - self.window_s
+        segs = self._segs
+        while segs and segs[0][1] <= cut:
+            t0, t1, p = segs.popleft()
+            self._energy -= p * (t1 - t0)
+            self._covered -= t1 - t0
+        energy, covered = self._energy, self._covered
+        if segs and segs[0][0] < cut:    # the oldest segment straddles the window start
+            t0, _, p = segs[0]
+            energy -= p * (cut - t0)
+            covered -= cut - t0
+        if covered <= 1e-9:
+            return math.nan, 0.0
+        return max(energy, 0.0) / covered, min(covered / self.window_s, 1.0)
+
+
+@dataclass
+class Block:
+    """Accumulator of one fixed block [t_start, t_start + block_s)."""
+
+    t_start: float
+    block_s: float
+    energy: float = 0.0
+    covered_s: float = 0.0
+    n: int = 0
+    e_max: float = -math.inf
+    run_end: dict = field(default_factory=dict)    # window_s -> (e_rms at block end, coverage)
+    run_max: dict = field(default_factory=dict)    # window_s -> (max complete e_rms, t)
+
+    def e_rms(self) -> float:
+        return math.sqrt(self.energy / self.covered_s) if self.covered_s > 0 else math.nan
+
+    def coverage(self) -> float:
+        return min(self.covered_s / self.block_s, 1.0)
+
+
+@dataclass(frozen=True)
+class RunningSample:
+    """A running average of window_s seconds ending at t_end (RMS field, coverage, complete)."""
+
+    window_s: float
+    t_end: float
+    e_rms_v_per_m: float
+    coverage: float
+    complete: bool
+
+
+class Series:
+    """Incremental blocks and running averages of one field series (one meter, one band)."""
+
+    def __init__(self, hold_s: float, block_s: float = 360.0, windows_s=(360.0, 1800.0, 86400.0),
+                 min_coverage: float = 0.9):
+        self.hold_s, self.block_s, self.min_coverage = float(hold_s), float(block_s), float(min_coverage)
+        self.windows = {float(w): SlidingWindow(w) for w in windows_s}
+        self.last: tuple[float, float] | None = None     # (t, E^2) of the latest sample, hold not yet added
+        self.frontier = -math.inf                        # no segment will ever start before this
+        self.open: dict[int, Block] = {}
+
+    def _block(self, k: int) -> Block:
+        b = self.open.get(k)
+        if b is None:
+            b = self.open[k] = Block(k * self.block_s, self.block_s)
+        return b
+
+    def _segment(self, t0: float, t1: float, p: float) -> None:
+        """Add a held segment, split at block edges; evaluate running averages at each block end."""
+        while t1 > t0:
+            k = math.floor(t0 / self.block_s)
+            edge = (k + 1) * self.block_s
+            t_cut = min(t1, edge)
+            b = self._block(k)
+            b.energy += p * (t_cut - t0)
+            b.covered_s += t_cut - t0
+            for w in self.windows.values():
+                w.add(t0, t_cut, p)
+            if t_cut == edge:
+                for ws, w in self.windows.items():
+                    b.run_end[ws] = w.value(edge)
+            t0 = t_cut
+
+    def push(self, t: float, e_v_per_m: float) -> tuple[list[Block], list[RunningSample]]:
+        """Add a sample; returns blocks now final and the running averages ending at t."""
+        if not (t > self.frontier and math.isfinite(e_v_per_m) and e_v_per_m >= 0):
+            return [], []
+        if self.last is not None:
+            t0, p0 = self.last
+            self._segment(t0, min(t, t0 + self.hold_s), p0)
+        self.last = (t, e_v_per_m * e_v_per_m)
+        self.frontier = t
+        b = self._block(math.floor(t / self.block_s))
+        b.n += 1
+        b.e_max = max(b.e_max, e_v_per_m)
+        runs = []
+        for ws, w in self.windows.items():
+            mean, cov = w.value(t)
+            ok = cov >= self.min_coverage - 1e-9
+            e = math.sqrt(mean) if mean == mean else math.nan
+            runs.append(RunningSample(ws, t, e, cov, ok))
+            if ok:
+                kb = math.floor((t - 1e-9) / self.block_s)   # an end exactly on an edge closes the earlier block
+                bb = self.open.get(kb)
+                if bb is not None and (ws not in bb.run_max or e > bb.run_max[ws][0]):
+                    bb.run_max[ws] = (e, t)
+        return self._final(), runs
+
+    def close_gap(self, now: float) -> list[Block]:
+        """The device has been silent past the hold: add the last sample's full hold, finish blocks."""
+        if self.last is None or now <= self.last[0] + self.hold_s:
+            return []
+        t0, p0 = self.last
+        self._segment(t0, t0 + self.hold_s, p0)
+        self.last = None
+        self.frontier = t0 + self.hold_s
+        return self._final()
+
+    def _final(self) -> list[Block]:
+        done = [k for k, b in self.open.items() if b.t_start + self.block_s <= self.frontier]
+        return [self.open.pop(k) for k in sorted(done)]
+
+    def flush_all(self) -> list[Block]:
+        """Every open block, final or not (end of a record, for tests and exports)."""
+        out = [self.open[k] for k in sorted(self.open)]
+        return out
+
+
+def block_row(station_id: int, meter: str, band: str, b: Block, min_coverage: float) -> tuple:
+    e = b.e_rms()
+    return (station_id, meter, band, b.t_start, b.block_s, b.energy, b.covered_s, b.n,
+            None if math.isnan(e) else e, None if b.e_max == -math.inf else b.e_max,
+            int(b.coverage() >= min_coverage - 1e-9))
+
+
+def save_blocks(conn, station_id: int, meter: str, band: str, blocks, min_coverage: float) -> None:
+    """Upsert final blocks and their running-average summaries (idempotent, safe on replay)."""
+    if not blocks:
+        return
+    conn.executemany("INSERT OR REPLACE INTO mon_block VALUES (?,?,?,?,?,?,?,?,?,?,?)",
+                     [block_row(station_id, meter, band, b, min_coverage) for b in blocks])
+    rows = []
+    for b in blocks:
+        for ws in set(b.run_end) | set(b.run_max):
+            e_end, cov = b.run_end.get(ws, (math.nan, 0.0))
+            e_max, t_max = b.run_max.get(ws, (None, None))
+            rows.append((station_id, meter, band, ws, b.t_start, None if e_end != e_end else math.sqrt(e_end),
+                         cov, e_max, t_max))
+    conn.executemany("INSERT OR REPLACE INTO mon_running VALUES (?,?,?,?,?,?,?,?,?)", rows)
+
+
+def last_final_block_end(conn, station_id: int, meter: str) -> float | None:
+    """End time of the newest stored block of a meter (replay after a restart starts before it)."""
+    r = conn.execute("SELECT max(t_start_utc + block_s) FROM mon_block WHERE station_id=? AND meter=?",
+                     (station_id, meter)).fetchone()
+    return r[0]
+
+
+def blocks(conn, station_id: int, meter: str | None = None, band: str = "total",
+           t0: float | None = None, t1: float | None = None) -> list[dict]:
+    """Stored blocks as dicts, oldest first, optionally filtered by meter and time."""
+    q = "SELECT * FROM mon_block WHERE station_id=? AND band=?"
+    p: list = [station_id, band]
+    if meter is not None:
+        q, p = q + " AND meter=?", p + [meter]
+    if t0 is not None:
+        q, p = q + " AND t_start_utc >= ?", p + [t0]
+    if t1 is not None:
+        q, p = q + " AND t_start_utc < ?", p + [t1]
+    cur = conn.execute(q + " ORDER BY meter, t_start_utc", p)
+    cols = [c[0] for c in cur.description]
+    return [dict(zip(cols, r)) for r in cur.fetchall()]
+
+
+def running(conn, station_id: int, meter: str, band: str = "total", t0=None, t1=None) -> list[dict]:
+    """Running-average summaries per block (value at the block end, largest complete value inside)."""
+    q = "SELECT * FROM mon_running WHERE station_id=? AND meter=? AND band=?"
+    p: list = [station_id, meter, band]
+    if t0 is not None:
+        q, p = q + " AND t_start_utc >= ?", p + [t0]
+    if t1 is not None:
+        q, p = q + " AND t_start_utc < ?", p + [t1]
+    cur = conn.execute(q + " ORDER BY window_s, t_start_utc", p)
+    cols = [c[0] for c in cur.description]
+    return [dict(zip(cols, r)) for r in cur.fetchall()]
