@@ -91,7 +91,7 @@ def test_commands_faults_and_settings():
         h.send(FrameType.SETTING_PUT, SettingPut(SettingKey.ASSET_TAG, "LAB-7"))
         h.ser.write(encode_frame(0x3E, h.seq, 0)); h.seq += 1
         h.ser.write(encode_frame(FrameType.WHO, h.seq, 0, version=2)); h.seq += 1
-        h.send(FrameType.PING, None) if False else h.ser.write(encode_frame(FrameType.PING, h.seq, 0, b"abc"))
+        h.ser.write(encode_frame(FrameType.PING, h.seq, 0, b"abc"))
         h.wait_for(lambda fs: any(f.type == FrameType.PONG for f in fs))
         faults = [parse_payload(f) for f in h.of(FrameType.FAULT)]
         assert [(x.code, x.cmd_seq) for x in faults] == [
@@ -108,7 +108,7 @@ def test_bad_crc_from_host_is_ignored_and_counted():
         bad = bytearray(encode_message(Empty(), 0, 0, FrameType.WHO))
         bad[-1] ^= 0xFF
         h.ser.write(bytes(bad))
-        h.send(FrameType.PING, None) if False else h.ser.write(encode_frame(FrameType.PING, 1, 0, b"x"))
+        h.ser.write(encode_frame(FrameType.PING, 1, 0, b"x"))
         h.wait_for(lambda fs: any(f.type == FrameType.PONG for f in fs))
         assert not h.of(FrameType.IDENT)
         assert m.stats["bad_crcs_seen"] >= 1
@@ -137,7 +137,7 @@ def test_drop_corrupt_garbage_visible_on_the_wire(tmp_path):
 def test_disconnect_vanishes_and_returns_at_same_path():
     with SimulatedMeter("demo", speed=50) as m:
         port = m.port
-        target = os.readlink(port)
+        assert os.readlink(port).startswith("/dev/")
         h = Host(port)
         h.send(FrameType.START)
         h.wait_for(lambda fs: any(f.type == FrameType.AXES for f in fs))
@@ -155,7 +155,7 @@ def test_disconnect_vanishes_and_returns_at_same_path():
         h2 = Host(port)
         n0 = m.stats["frames_unplugged"]
         h2.wait_for(lambda fs: any(f.type == FrameType.AXES for f in fs))  # still streaming after replug
-        assert n0 >= 1 and os.readlink(port) != "" and target
+        assert n0 >= 1  # the device kept measuring while unplugged; those frames were lost
         h2.close()
 
 
@@ -166,8 +166,7 @@ def test_restart_sends_boot_with_seq_zero_and_stops_streaming():
         h.wait_for(lambda fs: sum(f.type == FrameType.AXES for f in fs) >= 3)
         assert h.of(FrameType.AXES)[0].tick_ms > 5_000_000
         m.restart()
-        h.wait_for(lambda fs: fs[-1].type == FrameType.BOOT or any(f.type == FrameType.BOOT and f.seq == 0
-                                                                   and f is not fs[0] for f in fs))
+        h.wait_for(lambda fs: sum(f.type == FrameType.BOOT for f in fs) >= 2)  # the power-up BOOT, then ours
         boot = [f for f in h.frames if f.type == FrameType.BOOT][-1]
         assert boot.seq == 0 and boot.tick_ms < 1000 and parse_payload(boot) == Boot(2, 3)
         n = len(h.frames)

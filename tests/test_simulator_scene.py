@@ -80,3 +80,18 @@ def test_station_excursion_drives_mast_foot_probe_into_overrange():
     assert not axes[0].flags & 0b111 and axes[-1].flags & 0b111
     over_status = [m for m in msgs if isinstance(m, Status) and m.flags & STATUS_OVERRANGE]
     assert over_status  # a STATUS goes out when the overrange flag changes
+
+
+def test_scheduled_restart_and_seq_quirk():
+    sc = load_scenario("demo")
+    fw = Firmware(sc, rng=np.random.default_rng(0), faults={"schedule": [{"at_s": 3.0, "kind": "restart"}]},
+                  quirks={"seq_step": 2})
+    fw.feed(encode_message(Empty(), 0, 0, FrameType.START))
+    data = fw.poll(0) + fw.poll(5000)
+    frames = [f for f in FrameReader().feed(data) if isinstance(f, Frame)]
+    types = [f.type for f in frames]
+    boots = [f for f in frames if f.type == FrameType.BOOT]
+    assert len(boots) == 2 and boots[1].seq == 0 and boots[1].tick_ms == 0
+    assert FrameType.AXES not in types[types.index(FrameType.BOOT, 1):]  # not streaming after the reset
+    seqs = [f.seq for f in frames[: types.index(FrameType.BOOT, 1)]]
+    assert all(b - a == 2 for a, b in zip(seqs, seqs[1:]))  # the rule-breaking step is on the wire
