@@ -41,7 +41,7 @@ def flag_names(flags: int) -> list[str]:
 class AxisResult:
     """Calibrated isotropic-probe readings: per-axis and total field, H and S, U and flags."""
 
-    axes_v_per_m: np.ndarray     # (N, 3)
+    axes_v_per_m: np.ndarray     # (N, 3); plane-wave equivalent (NaN in the near field) for an H probe
     e_v_per_m: np.ndarray        # (N,)
     h_a_per_m: np.ndarray        # (N,) plane-wave equivalent; NaN in the near field
     s_w_per_m2: np.ndarray       # (N,) plane-wave equivalent; NaN in the near field
@@ -170,8 +170,9 @@ def calibrate_axes(cert: ProbeCertificate, counts, freq_hz, temp_c=None, near_fi
         e, h = total, units.e_to_h(total)
     s = units.e_to_s(e)
     nf = np.broadcast_to(np.asarray(near_field, dtype=bool), (n,))
-    if cert.quantity == "H":
+    if cert.quantity == "H":     # E of an H probe is only a plane-wave equivalent
         e = np.where(nf, np.nan, e)
+        axes = np.where(nf[:, None], np.nan, axes)
     else:
         h = np.where(nf, np.nan, h)
     s = np.where(nf, np.nan, s)

@@ -283,3 +283,14 @@ def test_demo_dipole_certificate_recovers_simulated_fields_within_u():
     assert not np.any(tot.flags & (FREQ_OUT | ABOVE_RANGE))
     ok = ~(tot.flags & BELOW_RANGE).astype(bool)
     assert ok.mean() > 0.9 and np.all(err[ok] <= tot.u_expanded_db[ok])
+
+
+def test_h_probe_gives_h_and_plane_wave_equivalent_e():
+    # quantity H: the tables hold A/m; E = Z0*H and S = Z0*H^2 (plane wave, CODATA Z0)
+    cert = dataclasses.replace(identity_certificate(level_range_v_per_m=(0.001, 1.0)), quantity="H")
+    counts = np.array([[1000 * 0.05**2, 0, 0], [1000 * 0.05**2, 0, 0]])
+    r = calibrate_axes(cert, counts, 1e9, near_field=[False, True], today=TODAY)
+    assert r.h_a_per_m == pytest.approx([0.05, 0.05])
+    assert r.e_v_per_m[0] == pytest.approx(0.05 * units.Z0_OHM) and np.isnan(r.e_v_per_m[1])
+    assert r.s_w_per_m2[0] == pytest.approx(units.Z0_OHM * 0.05**2) and np.isnan(r.s_w_per_m2[1])
+    assert np.isnan(r.axes_v_per_m[1]).all()
