@@ -287,6 +287,12 @@ class MeterLink:
                         type=frame.type, seq=frame.seq)
             self._track_seq(frame)
             return None
+        if isinstance(msg, Boot) and self.ident is None:
+            self._event("device_boot", "info", f"device booted (boot count {msg.boot_count}, reset cause "
+                        f"{msg.reset_cause})", boot=msg.boot_count, reset_cause=msg.reset_cause)
+            self._boot = msg.boot_count
+            self._last_seq, self._last_tick = frame.seq, frame.tick_ms
+            return msg
         if isinstance(msg, Boot):
             self._on_restart(f"device sent BOOT (boot count {msg.boot_count}, reset cause {msg.reset_cause})",
                              boot=msg.boot_count, reset_cause=msg.reset_cause)

@@ -7,7 +7,6 @@ A port string picks the transport the way pyserial does: a device path (``/dev/t
 
 from __future__ import annotations
 
-import time
 from dataclasses import dataclass
 
 from meterlink.errors import LinkError
@@ -24,26 +23,8 @@ class Link:
         raise NotImplementedError
 
     def read(self, max_bytes: int = 4096, timeout_s: float = 0.1) -> bytes:
-        import serial
-
-        ser = self._require()
-        try:
-            waiting = ser.in_waiting
-            if waiting:
-                return ser.read(min(waiting, max_bytes))
-            timeout_s = max(0.0, round(timeout_s, 3))
-            if timeout_s != self._timeout_s:  # a change reconfigures the port: only when needed
-                ser.timeout = self._timeout_s = timeout_s
-            data = ser.read(1)
-            if data and max_bytes > 1:
-                waiting = ser.in_waiting
-                if waiting:
-                    data += ser.read(min(waiting, max_bytes - 1))
-            return data
-        except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
-            # TypeError/AttributeError: pyserial internals after the descriptor vanished under it
-            self._drop()
-            raise LinkError(f"port {self.port!r} lost: {_one_line(exc)}") from None
+        """Up to max_bytes, returning early with whatever arrived once timeout_s has passed."""
+        raise NotImplementedError
 
     def write(self, data: bytes) -> None:
         raise NotImplementedError
@@ -77,6 +58,7 @@ class SerialLink(Link):
         self.baudrate = baudrate
         self._ser = None
         self._timeout_s = 0.0
+        self._extra = bytearray()
 
     def open(self) -> None:
         import serial
@@ -95,19 +77,31 @@ class SerialLink(Link):
         import serial
 
         ser = self._require()
-        try:
-            data = ser.read(ser.in_waiting or 0) if ser.in_waiting else b""
-            if data:
-                return data[:max_bytes] if len(data) <= max_bytes else data
-            ser.timeout = max(0.0, timeout_s)
-            data = ser.read(1)
-            if data and ser.in_waiting:
-                data += ser.read(min(ser.in_waiting, max_bytes - 1))
-            return data
-        except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
-            # TypeError/AttributeError: pyserial internals after the fd vanished under it
-            self._drop()
-            raise LinkError(f"port {self.port!r} lost: {_one_line(exc)}") from None
+        if not self._extra:
+            try:
+                self._extra += self._read_some(ser, max_bytes, timeout_s)
+            except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
+                # TypeError/AttributeError: pyserial internals after the descriptor vanished under it
+                self._drop()
+                raise LinkError(f"port {self.port!r} lost: {_one_line(exc)}") from None
+        # some URL handlers (loop://) hand back more than asked for: keep the rest for the next read
+        data = bytes(self._extra[:max_bytes])
+        del self._extra[:max_bytes]
+        return data
+
+    def _read_some(self, ser, max_bytes: int, timeout_s: float) -> bytes:
+        waiting = ser.in_waiting
+        if waiting:
+            return ser.read(min(waiting, max_bytes))
+        timeout_s = max(0.0, round(timeout_s, 3))
+        if timeout_s != self._timeout_s:  # a change reconfigures the port: only when needed
+            ser.timeout = self._timeout_s = timeout_s
+        data = ser.read(1)
+        if data and max_bytes > 1:
+            waiting = ser.in_waiting
+            if waiting:
+                data += ser.read(min(waiting, max_bytes - 1))
+        return data
 
     def write(self, data: bytes) -> None:
         import serial
@@ -133,6 +127,7 @@ class SerialLink(Link):
         return self._ser
 
     def _drop(self) -> None:
+        self._extra.clear()
         ser, self._ser = self._ser, None
         if ser is not None:
             try:
@@ -164,13 +159,3 @@ def open_link(port: str, baudrate: int = DEFAULT_BAUD) -> SerialLink:
     link.open()
     return link
 
-
-def wait_readable(link: Link, deadline: float, max_bytes: int = 4096) -> bytes:
-    """Read until some bytes arrive or the monotonic deadline passes."""
-    while True:
-        left = deadline - time.monotonic()
-        if left <= 0:
-            return b""
-        data = link.read(max_bytes, min(left, 0.1))
-        if data:
-            return data

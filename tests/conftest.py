@@ -1,0 +1,29 @@
+"""Shared test helpers: waiting on a condition with a monotonic deadline, and leak checks."""
+
+import threading
+import time
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def wait_until(predicate, timeout_s: float = 5.0, poll_s: float = 0.01) -> bool:
+    """True as soon as predicate() holds; False once timeout_s (monotonic) has passed."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        if predicate():
+            return True
+        if time.monotonic() >= deadline:
+            return False
+        time.sleep(poll_s)
+
+
+@pytest.fixture(autouse=True)
+def no_leaked_link_threads():
+    """Fail a test that leaves a meterlink reader or writer thread running."""
+    yield
+    alive = lambda: [t.name for t in threading.enumerate() if t.name.startswith("meterlink-")]  # noqa: E731
+    if not wait_until(lambda: not alive(), 5.0):
+        pytest.fail(f"leaked threads: {alive()}")
