@@ -84,7 +84,7 @@ class SettingKey(IntEnum):
     PROBE_SERIAL = 3  # text
     CERT_REF = 4  # text
     ASSET_TAG = 5  # text
-    CLOCK_UTC_MS = 6  # u32 pair read-only here: seconds, milliseconds (set with CLOCK_SET)
+    CLOCK_UTC = 6  # u32 seconds since 1970, 0 = not set; read only (set with CLOCK_SET)
 
 
 STATUS_OVERRANGE = 1 << 0

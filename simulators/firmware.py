@@ -322,7 +322,7 @@ class Firmware:
             return self.averaging
         if key in self.texts:
             return self.texts[key]
-        if key == SettingKey.CLOCK_UTC_MS:
+        if key == SettingKey.CLOCK_UTC:
             return 0 if not self.clock else (self.clock[0] + now_ms - self.clock[1]) // 1000 % U32_MOD
         return None
 
@@ -330,7 +330,7 @@ class Firmware:
         key, v = msg.key, msg.value
         if self._setting(key, now_ms) is None:
             return self._fault(FaultCode.UNKNOWN_KEY, frame, now_ms, f"key {key}")
-        if key == SettingKey.CLOCK_UTC_MS:
+        if key == SettingKey.CLOCK_UTC:
             return self._fault(FaultCode.READ_ONLY, frame, now_ms, "clock: use CLOCK_SET")
         if key in self.texts:
             if not isinstance(v, str):

@@ -87,7 +87,7 @@ def test_commands_faults_and_settings():
         h = Host(m.port)
         s_bad = h.send(FrameType.SET_INTERVAL, SetInterval(10))  # below min_interval_ms
         h.send(FrameType.SETTING_GET, SettingGet(99))
-        h.send(FrameType.SETTING_PUT, SettingPut(SettingKey.CLOCK_UTC_MS, 5))
+        h.send(FrameType.SETTING_PUT, SettingPut(SettingKey.CLOCK_UTC, 5))
         h.send(FrameType.SETTING_PUT, SettingPut(SettingKey.ASSET_TAG, "LAB-7"))
         h.ser.write(encode_frame(0x3E, h.seq, 0)); h.seq += 1
         h.ser.write(encode_frame(FrameType.WHO, h.seq, 0, version=2)); h.seq += 1
