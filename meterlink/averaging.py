@@ -132,6 +132,7 @@ class _Held:
 
         ``i`` may give the index of the last sample at or before each q (skips the search)."""
         t, n = self.t, self.n
+        at_samples = i is not None      # q[k] == t[i[k]]: nothing of sample i held yet
         if i is None:
             # Search only the stretch of t that the sorted queries can fall in: far faster.
             a0 = max(int(np.searchsorted(t, q[0], side="right")) - 1, 0)
@@ -167,18 +168,21 @@ class _Held:
                 j = ii - s0
                 ti = t[ii]
                 blk = ii // _BLOCK
-            part = q[k:kend] - ti
-            np.clip(part, 0.0, d[j], out=part)
             hi[k:kend] = self.off_hi[blk]
             r = rest[k:kend]
-            np.multiply(p[j], part, out=r)
-            r += loc[j]
-            r += self.off_lo[blk]
             c = cov[k:kend]
             np.subtract(ti, t[0], out=c)
+            if at_samples:
+                np.add(loc[j], self.off_lo[blk], out=r)
+            else:
+                part = q[k:kend] - ti
+                np.clip(part, 0.0, d[j], out=part)
+                np.multiply(p[j], part, out=r)
+                r += loc[j]
+                r += self.off_lo[blk]
+                c += part
             if self.gap_idx.size:
                 c -= self.gap_cum[np.searchsorted(self.gap_idx, ii, side="left")]
-            c += part
             k = kend
         hi[before] = 0.0
         rest[before] = 0.0
