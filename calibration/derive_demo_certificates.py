@@ -79,13 +79,17 @@ def measure_probe(model: sim.ProbeModel, rng, serial: str, number: str) -> Probe
     zero = np.round(zero, 1)
     lin = []
     for a in range(3):
-        counts = [_mean_counts(model, rng, _applied(e) * _unit(a), ref)[a] - zero[a] for e in PROBE_LEVELS_V_PER_M]
+        counts = [_mean_counts(model, rng, _applied(e) * _unit(a), ref)[a] - zero[a]
+                  for e in PROBE_LEVELS_V_PER_M]
         lin.append(AxisCalibration("xyz"[a], float(zero[a]), tuple(float(round(c)) for c in counts),
                                    PROBE_LEVELS_V_PER_M, (ref / 10, ref * 10), (0.0, 0.0)))
     # linearity check at levels between the table points
     check = np.sqrt(np.multiply(PROBE_LEVELS_V_PER_M[:-1], PROBE_LEVELS_V_PER_M[1:]))
-    dev = [abs(20 * math.log10(linearise(lin[a], [_mean_counts(model, rng, _applied(e) * _unit(a), ref)[a]])[0][0] / e))
-           for a in range(3) for e in check]
+    dev = []
+    for a in range(3):
+        for e in check:
+            got = linearise(lin[a], [_mean_counts(model, rng, _applied(e) * _unit(a), ref)[a]])[0][0]
+            dev.append(abs(20 * math.log10(got / e)))
     axes = []
     for a in range(3):
         corr = []

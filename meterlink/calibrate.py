@@ -161,7 +161,7 @@ def calibrate_axes(cert: ProbeCertificate, counts, freq_hz, temp_c=None, near_fi
     flags = np.full(n, fflags | exp_flag, dtype=np.int64)
     flags |= np.bitwise_or.reduce(axis_flags & ABOVE_RANGE, axis=1)
     lo, hi = cert.level_range
-    flags[total < lo] |= BELOW_RANGE
+    flags[(total < lo) | np.all(axis_flags & BELOW_RANGE, axis=1)] |= BELOW_RANGE  # all clamped: only a bound
     flags[total > hi] |= ABOVE_RANGE
     if cert.quantity == "H":
         h, e = total, units.h_to_e(total)

@@ -119,8 +119,12 @@ def test_zero_and_below_range_and_above_range():
     assert e[0] == 0 and e[1] == 0 and flags[0] & BELOW_RANGE and flags[1] & BELOW_RANGE
     assert e[2] == ax.field[0] and flags[2] & BELOW_RANGE       # clamped to the lowest calibrated field
     assert np.isnan(e[3]) and flags[3] & ABOVE_RANGE             # never an understated clamp above
-    three = np.array([[ZERO[0], ZERO[1], ZERO[2]], [ZERO[0] + 1e9, ZERO[1], ZERO[2]]])
+    three = np.array([[ZERO[0], ZERO[1], ZERO[2]], [ZERO[0] + 1e9, ZERO[1], ZERO[2]],
+                      true_counts([0.03, 0.03, 0.03], REF_HZ), true_counts([5.0, 0.03, 0.03], REF_HZ)])
+    cert = dataclasses.replace(cert, level_range=(0.05, 300.0))     # valid from the table's first point
     r = calibrate_axes(cert, three, REF_HZ, today=TODAY)
+    assert r.flags[2] & BELOW_RANGE and r.e_v_per_m[2] > cert.level_range[0]   # every axis only a bound
+    assert not r.flags[3] & BELOW_RANGE and r.e_v_per_m[3] == pytest.approx(5.0, rel=1e-3)
     assert r.e_v_per_m[0] == 0 and r.flags[0] & BELOW_RANGE
     assert np.isnan(r.e_v_per_m[1]) and r.flags[1] & ABOVE_RANGE
     assert "above range" in flag_names(r.flags[1])
