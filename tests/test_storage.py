@@ -1,0 +1,180 @@
+"""Store and BatchWriter on real SQLite files in tmp_path."""
+
+import os
+import sqlite3
+import time
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings, strategies as st
+
+from meterlink.storage import SCHEMA_VERSION, BatchWriter, Store, StorageError
+
+TABLES = {"meta", "devices", "sessions", "readings", "spectra", "spectrum_lines", "status", "events",
+          "calibrations", "field_values", "spectrum_values"}
+
+
+def reading(seq, boot=1, t0=1_700_000_000.0, x=None):
+    return {"boot": boot, "seq": seq, "tick_ms": 1000 * seq, "t_utc": t0 + seq, "raw_x": seq if x is None else x,
+            "raw_y": -seq, "raw_z": 2 * seq, "flags": seq % 4, "range_index": 0}
+
+
+@pytest.fixture
+def store(tmp_path):
+    with Store(tmp_path / "m.db") as s:
+        yield s
+
+
+def test_empty_file_is_migrated_to_current_schema_with_wal(tmp_path):
+    path = tmp_path / "new.db"
+    path.touch()  # an empty file is a valid, empty SQLite database
+    with Store(path) as s:
+        assert s.schema_version == SCHEMA_VERSION
+        assert TABLES <= set(s.db.table_names())
+        assert s.journal_mode == "wal"
+        assert s.db.execute("pragma synchronous").fetchone()[0] == 1  # 1 = NORMAL (SQLite pragma docs)
+    with Store(path) as s:  # reopening does not migrate twice
+        assert s.schema_version == SCHEMA_VERSION
+
+
+def test_indexes_suit_time_range_queries(store):
+    plan = store.db.execute("explain query plan select * from readings where session_id = 1 and t_utc >= 0 "
+                            "and t_utc < 10").fetchall()
+    assert any("USING INDEX" in row[-1] for row in plan)
+
+
+def test_batch_insert_and_unique_protection(store):
+    sid = store.begin_session("record", port="loop://")
+    assert store.add_readings(sid, [reading(i) for i in range(100)]) == 100
+    assert store.add_readings(sid, [reading(i, x=999) for i in range(90, 110)]) == 10
+    r = store.readings(sid)
+    assert len(r) == 110 and np.array_equal(r.seq, np.arange(110))
+    assert r.raw[95, 0] == 95  # the first copy was kept, the duplicate ignored
+    dup = store.events(sid, kind="duplicate_reading")
+    assert len(dup) == 1 and dup[0]["detail"]["count"] == 10
+    # the same seq after a device restart (another boot) is a new reading
+    assert store.add_reading(sid, reading(5, boot=2)) == 1
+    with pytest.raises(sqlite3.IntegrityError):  # the database itself enforces it for other writers
+        store.db.execute("insert into readings (session_id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z) "
+                         "values (?, 1, 5, 0, 0, 0, 0, 0)", [sid])
+
+
+def test_bad_row_becomes_an_event_and_good_rows_are_kept(store):
+    sid = store.begin_session("record")
+    bad = reading(3)
+    del bad["raw_x"]
+    assert store.add_readings(sid, [reading(1), bad, reading(2)]) == 2
+    ev = store.events(sid, kind="bad_row")
+    assert len(ev) == 1 and ev[0]["severity"] == "error" and ev[0]["detail"]["seq"] == 3
+
+
+def test_time_range_query_and_arrays(store):
+    sid = store.begin_session("record")
+    other = store.begin_session("record")
+    store.add_readings(sid, [reading(i) for i in range(10)])
+    store.add_readings(other, [reading(i) for i in range(3)])
+    r = store.readings(sid, t0=1_700_000_002.0, t1=1_700_000_005.0)
+    assert r.seq.tolist() == [2, 3, 4]
+    assert r.raw.shape == (3, 3) and r.raw[:, 1].tolist() == [-2, -3, -4]
+    assert r.t_utc.dtype == float and r.flags.tolist() == [2, 3, 0]
+    empty = store.readings(sid, t0=0, t1=1)
+    assert len(empty) == 0 and empty.raw.shape == (0, 3)
+
+
+def test_sessions_devices_status_spectra_events(store):
+    dev = store.device_id("MODEL-A", "SN1", "P1", "CAL-1", 1, "2.3.1", "1.0")
+    assert store.device_id("MODEL-A", "SN1", "P1", "CAL-1", 1, "2.3.1", "1.0") == dev
+    assert store.device_id("MODEL-A", "SN1", "P1", "CAL-2", 1, "2.3.1", "1.0") != dev
+    sid = store.begin_session("survey", port="/dev/x", device_id=dev, interval_ms=500, band_lo_hz=8e8,
+                              band_hi_hz=1e9, notes="roof")
+    store.add_status(sid, {"boot": 1, "seq": 9, "tick_ms": 130000, "t_utc": 5.0, "battery_mv": 3910,
+                           "battery_pct": 78, "temperature_degc": 24.5, "flags": 16, "interval_ms": 500})
+    store.add_spectrum(sid, {"boot": 1, "seq": 40, "tick_ms": 60000, "t_utc": 6.0, "orientation": 1, "sweep": 12,
+                             "lines": [(98.5e6, 61.23), (936.2e6, 44.07)]})
+    store.add_event(sid, "seq_gap", "warning", "2 lost", lost=2, prev_seq=3, seq=6)
+    store.end_session(sid, clock_rate_ratio=1.00001)
+    s = store.session(sid)
+    assert s["device_model"] == "MODEL-A" and s["kind"] == "survey" and s["band_hi_hz"] == 1e9
+    assert s["ended_utc"] is not None and s["clock_rate_ratio"] == 1.00001
+    lines = store.db.execute("select freq_hz, level_dbuv from spectrum_lines order by freq_hz").fetchall()
+    assert lines == [(98.5e6, 61.23), (936.2e6, 44.07)]
+    assert store.count("status", sid) == 1
+    assert store.events(sid)[0]["detail"] == {"lost": 2, "prev_seq": 3, "seq": 6}
+    with pytest.raises(ValueError):
+        store.add_event(sid, "x", "fatal", "bad severity")
+    with pytest.raises(StorageError):
+        store.session(999)
+
+
+def test_derived_tables_exist_empty_with_keys(store):
+    cols = {c.name for c in store.db["field_values"].columns}
+    assert {"reading_id", "calibration_id", "e_v_per_m", "h_a_per_m", "s_w_per_m2", "u_expanded_db"} <= cols
+    assert store.db["field_values"].pks == ["reading_id", "calibration_id"]
+    assert store.db["calibrations"].count == 0 and store.db["spectrum_values"].count == 0
+
+
+def test_unwritable_or_foreign_files_are_clear_errors(tmp_path):
+    with pytest.raises(StorageError, match="cannot open database"):
+        Store(tmp_path / "missing-dir" / "x.db")
+    with pytest.raises(StorageError, match="is a directory"):
+        Store(tmp_path)
+    junk = tmp_path / "junk.db"
+    junk.write_bytes(b"this is not sqlite at all, just text" * 100)
+    with pytest.raises(StorageError, match="junk.db"):
+        Store(junk)
+    foreign = tmp_path / "foreign.db"
+    sqlite3.connect(foreign).execute("create table t (a)").connection.close()
+    with pytest.raises(StorageError, match="not a meterlink database"):
+        Store(foreign)
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root ignores file permissions")
+def test_read_only_directory(tmp_path):
+    ro = tmp_path / "ro"
+    ro.mkdir()
+    ro.chmod(0o500)
+    try:
+        with pytest.raises(StorageError):
+            Store(ro / "x.db")
+    finally:
+        ro.chmod(0o700)
+
+
+def test_batch_writer_flushes_by_size_and_by_age(tmp_path):
+    path = tmp_path / "b.db"
+    with Store(path) as s:
+        sid = s.begin_session("record")
+        w = BatchWriter(s, sid, max_rows=50, max_age_s=0.2)
+        other = Store(path)  # a second reader sees only committed rows
+        for i in range(49):
+            w.add_reading(reading(i))
+        assert other.count("readings", sid) == 0
+        w.add_reading(reading(49))
+        assert other.count("readings", sid) == 50  # size triggered a commit
+        w.add_reading(reading(50))
+        w.start()  # background flushing by age
+        deadline = time.monotonic() + 2.0
+        while other.count("readings", sid) < 51 and time.monotonic() < deadline:
+            time.sleep(0.01)
+        assert other.count("readings", sid) == 51
+        w.add_event("garbage", "warning", "3 bytes", n_bytes=3)
+        w.close()
+        assert other.count("events", sid) == 1 and w.new_readings == 51
+        other.close()
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.tuples(st.integers(0, 3), st.integers(0, 2**32 - 1), st.integers(-2**31, 2**31 - 1),
+                          st.integers(-2**31, 2**31 - 1), st.integers(-2**31, 2**31 - 1),
+                          st.floats(0, 4e9, allow_nan=False)), max_size=60,
+                unique_by=lambda t: (t[0], t[1])))
+def test_round_trip_of_any_readings(tmp_path, rows):
+    with Store(tmp_path / "rt.db") as s:
+        sid = s.begin_session("record")
+        dicts = [{"boot": b, "seq": q, "tick_ms": q, "t_utc": t, "raw_x": x, "raw_y": y, "raw_z": z, "flags": 0,
+                  "range_index": 0} for b, q, x, y, z, t in rows]
+        assert s.add_readings(sid, dicts) == len(rows)
+        r = s.readings(sid)
+        got = sorted(zip(r.boot.tolist(), r.seq.tolist(), r.raw[:, 0].tolist(), r.raw[:, 1].tolist(),
+                         r.raw[:, 2].tolist(), r.t_utc.tolist()))
+        assert got == sorted((b, q, x, y, z, t) for b, q, x, y, z, t in rows)
