@@ -332,7 +332,7 @@ def _value(v) -> str:
     if isinstance(v, float):
         return "nan" if math.isnan(v) else ("inf" if v > 0 else "-inf") if math.isinf(v) else repr(v)
     if isinstance(v, str):
-        return json.dumps(v, ensure_ascii=False)
+        return json.dumps(v, ensure_ascii=False).replace("\x7f", "\\u007f")   # TOML forbids raw DEL
     if isinstance(v, _dt.date):
         return v.isoformat()
     if isinstance(v, (list, tuple)):
