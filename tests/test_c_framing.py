@@ -271,3 +271,37 @@ def test_c_host_command_parser_agrees_with_python(vt):
         elif f.type == T.PING:
             assert (bytes.fromhex(rest[0]) if rest[0] != "-" else b"") == msg.data
     assert n_ok > 1000  # most cases are well formed: the comparison above did run
+
+
+def test_guide_snippets_compile_and_give_the_documented_bytes(tmp_path):
+    # firmware/GUIDE.md's C snippets, with stub hardware, must build strictly and produce the "ACK of
+    # that command" worked example of docs/protocol.md and the catalogue CRC check value.
+    import re
+
+    blocks = re.findall(r"```c\n(.*?)```", (FIRMWARE / "GUIDE.md").read_text(), re.S)
+    assert len(blocks) >= 3
+    src = ('#include "mlframe.h"\nstatic int streaming;\n' + "\n".join(blocks) + """
+uint32_t millis(void) { return 0; }
+static uint8_t sent[4096]; static size_t n_sent;
+void uart_write(const uint8_t *p, size_t n) { memcpy(sent + n_sent, p, n); n_sent += n; }
+int main(void) {
+    uint8_t f[MLF_MAX_FRAME], start[] = {0xa7,0x3c,0x01,0x02,0x00,0,0,0,0,0,0,0,0,0x00,0x00};
+    size_t i, n = mlf_encode_ack(f, sizeof f, 2, 1520, MLF_SET_INTERVAL, 1);
+    const uint8_t ack[] = {0xa7,0x3c,0x01,0x42,0x05,0x02,0,0,0,0xf0,0x05,0,0,0x04,0x01,0,0,0,0x99,0x0a};
+    uint16_t crc = mlf_crc16(start + 2, 11);
+    start[13] = (uint8_t)(crc & 0xFF); start[14] = (uint8_t)(crc >> 8);  /* a START from the host */
+    link_init(); send_boot(1, 0);
+    for (i = 0; i < sizeof start; i++) uart_rx_isr(start[i]);
+    link_poll();
+    /* BOOT (18 bytes) then the ACK of START (20 bytes), and streaming on */
+    return !(n == 20 && memcmp(f, ack, 20) == 0 && mlf_crc16((const uint8_t *)"123456789", 9) == 0x29B1
+             && streaming == 1 && n_sent == 38 && sent[18 + 3] == MLF_ACK && sent[18 + 13] == MLF_START);
+}
+""")
+    (tmp_path / "guide.c").write_text("#include <string.h>\n" + src)
+    exe = tmp_path / "guide"
+    res = subprocess.run([CC, "-std=c99", "-Wall", "-Wextra", "-Werror", "-pedantic", f"-I{FIRMWARE}", "-o", str(exe),
+                          str(tmp_path / "guide.c"), str(FIRMWARE / "mlframe.c")], capture_output=True, text=True,
+                         timeout=60)
+    assert res.returncode == 0, res.stderr
+    assert subprocess.run([str(exe)], timeout=10).returncode == 0
