@@ -384,3 +384,16 @@ def test_python_codec_reproduces_vector(v):
     assert crc16_bitwise(raw[2:-2]) == int(v["crc_hex"], 16) == int.from_bytes(raw[-2:], "little")
     assert p.decode_frame(raw) == p.Frame(v["type"], v["seq"], v["tick_ms"], payload)
     p.parse_payload(p.decode_frame(raw))  # every valid vector carries a well-formed payload
+
+
+def test_bogus_header_in_garbage_delays_a_frame_by_at_most_one_frame_length():
+    # A stray "A7 3C .. LEN 240" makes the reader wait for 255 bytes before it can reject the span
+    # (docs/protocol.md, Resynchronisation): the real frame after it is late, never lost.
+    ack = p.encode_frame(p.FrameType.ACK, 2, 1520, p.Ack(4, 1).pack())
+    bogus = p.SYNC + bytes([1, 0x41, 240])
+    reader = p.FrameReader()
+    assert frames_of(reader.feed(bogus + ack)) == []  # held back: the span is not complete yet
+    assert reader.pending == len(bogus) + len(ack)
+    filler_needed = p.MAX_FRAME - len(bogus) - len(ack)
+    assert frames_of(reader.feed(bytes(filler_needed - 1))) == []
+    assert frames_of(reader.feed(b"\x00")) == [p.decode_frame(ack)]
