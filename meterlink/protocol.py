@@ -218,6 +218,19 @@ class FrameReader:
         else:
             out.append(Junk(kind, n))
 
+    def drop_pending(self) -> list[Frame | Junk]:
+        """Give up on a partial frame held back (call when the line has gone quiet).
+
+        A stray sync pair with a large length field would otherwise hold the frames after it
+        until 255 bytes had arrived; dropping one byte and rescanning releases them at once.
+        """
+        if not self._buf:
+            return []
+        out: list[Frame | Junk] = []
+        self._junk(out, "length", 1)
+        del self._buf[:1]
+        return out + self.feed(b"")
+
     @property
     def pending(self) -> int:
         """Bytes held back waiting for the rest of a frame."""
@@ -421,6 +434,8 @@ class Spectrum:
         if len(raw) < 4:
             raise ProtocolError("SPECTRUM: payload too short")
         orient, sweep, n = struct.unpack_from("<BHB", raw)
+        if n > cls.MAX_PAIRS:
+            raise ProtocolError(f"SPECTRUM: {n} pairs exceed {cls.MAX_PAIRS}")
         if len(raw) != 4 + 6 * n:
             raise ProtocolError(f"SPECTRUM: {n} pairs do not match {len(raw)} bytes")
         pairs = tuple(struct.iter_unpack("<Ih", raw[4:]))

@@ -397,3 +397,16 @@ def test_bogus_header_in_garbage_delays_a_frame_by_at_most_one_frame_length():
     filler_needed = p.MAX_FRAME - len(bogus) - len(ack)
     assert frames_of(reader.feed(bytes(filler_needed - 1))) == []
     assert frames_of(reader.feed(b"\x00")) == [p.decode_frame(ack)]
+
+
+def test_drop_pending_releases_frames_held_behind_a_stray_header():
+    """A stray sync pair claiming 240 bytes holds later frames; drop_pending frees them unharmed."""
+    from meterlink.protocol import FrameReader, encode_frame
+
+    good = encode_frame(0x45, 1, 2, b"x" * 14)
+    stray = b"\xa7\x3c\x01\x45\xf0" + b"\0" * 8
+    reader = FrameReader()
+    assert reader.feed(stray + good) == []
+    released = [item for item in reader.drop_pending() if hasattr(item, "seq")]
+    assert [(f.seq, f.payload) for f in released] == [(1, b"x" * 14)]
+    assert reader.pending == 0
