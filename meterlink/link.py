@@ -330,7 +330,8 @@ class MeterLink:
                 self.stats.gaps += 1
                 self.stats.lost_frames += delta - 1
                 self._event("seq_gap", "warning", f"{delta - 1} frame(s) lost between seq {self._last_seq} and "
-                            f"{frame.seq}", lost=delta - 1, prev_seq=self._last_seq, seq=frame.seq)
+                            f"{frame.seq}", lost=delta - 1, prev_seq=self._last_seq, seq=frame.seq,
+                            boot=self._boot)
             elif delta > HALF_TICK:
                 self._event("seq_backward", "warning", f"frame seq {frame.seq} arrived after {self._last_seq}",
                             seq=frame.seq, prev_seq=self._last_seq)
