@@ -61,7 +61,9 @@ class AlarmEvent:
                 f"after {self.t_utc - self.episode_start_utc:.0f} s")
 
     def detail(self) -> dict:
-        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+        """Fields for an event's detail ('kind' is named 'phase', 't_utc' 'at_utc')."""
+        ren = {"kind": "phase", "t_utc": "at_utc"}
+        return {ren.get(k, k): getattr(self, k) for k in self.__dataclass_fields__}
 
     def environment(self) -> dict[str, str]:
         """The event as METERLINK_ALARM_* environment variables for an external command."""

@@ -29,7 +29,7 @@ CREATE TABLE IF NOT EXISTS mon_meter (
 CREATE TABLE IF NOT EXISTS mon_block (
     station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, t_start_utc REAL NOT NULL,
     block_s REAL NOT NULL, energy REAL NOT NULL, covered_s REAL NOT NULL, n INTEGER NOT NULL,
-    e_rms_v_per_m REAL, e_max_v_per_m REAL, complete INTEGER NOT NULL,
+    e_rms_v_per_m REAL, e_max_v_per_m REAL, complete INTEGER NOT NULL, n_overrange INTEGER NOT NULL,
     PRIMARY KEY (station_id, meter, band, t_start_utc));
 CREATE TABLE IF NOT EXISTS mon_running (
     station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, window_s REAL NOT NULL,
@@ -99,6 +99,7 @@ class Block:
     covered_s: float = 0.0
     n: int = 0
     e_max: float = -math.inf
+    n_over: int = 0                                # samples at overrange (value is a lower bound)
     run_end: dict = field(default_factory=dict)    # window_s -> (e_rms at block end, coverage)
     run_max: dict = field(default_factory=dict)    # window_s -> (max complete e_rms, t)
 
@@ -153,8 +154,8 @@ class Series:
                     b.run_end[ws] = w.value(edge)
             t0 = t_cut
 
-    def push(self, t: float, e_v_per_m: float) -> tuple[list[Block], list[RunningSample]]:
-        """Add a sample; returns blocks now final and the running averages ending at t."""
+    def push(self, t: float, e_v_per_m: float, over: bool = False) -> tuple[list[Block], list[RunningSample]]:
+        """Add a sample (over: an overrange lower bound); returns final blocks and running averages at t."""
         if not (t > self.frontier and math.isfinite(e_v_per_m) and e_v_per_m >= 0):
             return [], []
         if self.last is not None:
@@ -164,6 +165,7 @@ class Series:
         self.frontier = t
         b = self._block(math.floor(t / self.block_s))
         b.n += 1
+        b.n_over += int(over)
         b.e_max = max(b.e_max, e_v_per_m)
         runs = []
         for ws, w in self.windows.items():
@@ -202,14 +204,14 @@ def block_row(station_id: int, meter: str, band: str, b: Block, min_coverage: fl
     e = b.e_rms()
     return (station_id, meter, band, b.t_start, b.block_s, b.energy, b.covered_s, b.n,
             None if math.isnan(e) else e, None if b.e_max == -math.inf else b.e_max,
-            int(b.coverage() >= min_coverage - 1e-9))
+            int(b.coverage() >= min_coverage - 1e-9), b.n_over)
 
 
 def save_blocks(conn, station_id: int, meter: str, band: str, blocks, min_coverage: float) -> None:
     """Upsert final blocks and their running-average summaries (idempotent, safe on replay)."""
     if not blocks:
         return
-    conn.executemany("INSERT OR REPLACE INTO mon_block VALUES (?,?,?,?,?,?,?,?,?,?,?)",
+    conn.executemany("INSERT OR REPLACE INTO mon_block VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
                      [block_row(station_id, meter, band, b, min_coverage) for b in blocks])
     rows = []
     for b in blocks:

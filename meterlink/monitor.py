@@ -1,0 +1,524 @@
+"""The monitoring daemon: acquire from every meter of a station, store, derive, alarm, watch health.
+
+One ``MeterLink`` reader thread per meter (reconnecting for ever with back-off) feeds a queue;
+one ingest thread (``Monitor.run``) calibrates in batches, updates the derived series and alarm
+machines and commits readings, events, derived rows and alarm state in ONE transaction at most
+``commit_s`` apart, so after a crash or power loss everything stored is mutually consistent and
+the loss is bounded by the last unfinished batch. On start it resumes the station record and
+replays recent raw readings to rebuild the in-memory windows. See docs/monitoring.md.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import math
+import os
+import threading
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from meterlink import calibrate, derived
+from meterlink.alarms import AlarmMachine, rule_value, run_command
+from meterlink.certificate import certificate_status, load_certificate
+from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
+from meterlink.limits import reference_level
+from meterlink.station import MeterConfig, Station
+from meterlink.storage import BatchWriter, Store, event_row
+from meterlink.units import Z0_OHM
+
+SEVERITY_OF = {"warning": "warning", "error": "error"}
+
+
+def band_reference(standard: str, tier: str, freq) -> tuple[float, float]:
+    """(E_ref, S_ref) at a frequency, or the most stringent over a band (lowest level inside it)."""
+    if isinstance(freq, tuple):
+        fs = np.geomspace(freq[0], freq[1], 64)
+    else:
+        fs = [float(freq)]
+    levels = [reference_level(standard, tier, float(f)) for f in fs]
+    return (min(r.e_v_per_m for r in levels if r.e_v_per_m is not None),
+            min(r.s_w_per_m2 for r in levels if r.s_w_per_m2 is not None))
+
+
+@dataclass
+class Persist:
+    """A condition that becomes an event once it has held for hold_s (data time), and again on ending."""
+
+    kind: str
+    hold_s: float
+    since: float | None = None
+    active: bool = False
+
+    def update(self, t: float, cond: bool) -> str | None:
+        if cond:
+            if self.since is None:
+                self.since = t
+            if not self.active and t - self.since >= self.hold_s:
+                self.active = True
+                return "start"
+        else:
+            self.since = None
+            if self.active:
+                self.active = False
+                return "end"
+        return None
+
+
+@dataclass
+class MeterState:
+    """Everything the monitor keeps for one meter."""
+
+    cfg: MeterConfig
+    cert: object
+    freq: object
+    e_ref: float
+    s_ref: float
+    session_id: int
+    e_top: float = math.nan                          # top of the calibrated range, V/m
+    link: MeterLink | None = None
+    writer: BatchWriter | None = None
+    series: dict = field(default_factory=dict)       # band -> derived.Series
+    alarms: list = field(default_factory=list)
+    pending: list = field(default_factory=list)      # Reading items not yet calibrated
+    blocks_out: list = field(default_factory=list)   # (band, final blocks) not yet committed
+    session_update: dict = field(default_factory=dict)
+    last_t: float | None = None
+    last_counts: tuple | None = None
+    boot_map: dict = field(default_factory=dict)     # boot -> (tick0_ms, utc0) when time_scale != 1
+    checks: dict = field(default_factory=dict)
+    status: dict = field(default_factory=dict)
+    link_state: str = "connecting"
+    last_e: float | None = None
+    last_u_db: float | None = None
+    drift_ppm: float | None = None
+    drift_flagged: bool = False
+    battery_flagged: bool = False
+    temp_flagged: bool = False
+
+
+class Monitor:
+    """Run a station until ``stop()``; ``time_scale`` > 1 only for an accelerated simulator."""
+
+    def __init__(self, station: Station, *, time_scale: float = 1.0, log=None, commit_s: float = 0.5,
+                 backoff_max_s: float = 30.0, link_factory=None):
+        self.st, self.time_scale, self.commit_s = station, float(time_scale), commit_s
+        self.log = log or (lambda line: None)
+        self._stop = threading.Event()
+        self._mono0, self._utc0 = time.monotonic(), time.time()
+        self.store = Store(station.database)
+        self.conn = self.store.db.conn
+        with self.store.db.atomic():
+            derived.ensure_schema(self.conn)
+        self.station_id, prev = self._station_record()
+        self.procs: list = []
+        self.meters = [self._meter(m) for m in station.meters]
+        self._backoff_max_s, self._link_factory = backoff_max_s, link_factory
+        self._station_events: list[dict] = []
+        if prev and prev["state"] == "running":
+            hb = prev["heartbeat_utc"]
+            self._event(None, "unclean_shutdown", "warning", f"previous run (pid {prev['pid']}) ended without a "
+                        f"clean stop; last heartbeat {_iso(hb)}", t=hb, last_heartbeat_utc=hb)
+        self._event(None, "monitor_started", "info", f"monitor of {station.name} started (run {prev['runs'] + 1 if prev else 1})",
+                    pid=os.getpid())
+        self._retention_next = time.monotonic() + 5.0
+        self._retention_todo: list = []
+        self._day_checked: str | None = None
+
+    # -- setup ---------------------------------------------------------------------------------
+    def _station_record(self):
+        st = self.st
+        row = self.conn.execute("SELECT * FROM mon_station WHERE name=?", (st.name,)).fetchone()
+        prev = None
+        text = st.path.read_text(encoding="utf-8") if st.path.exists() else ""
+        with self.store.db.atomic():
+            if row is None:
+                self.conn.execute("INSERT INTO mon_station (name, created_utc, runs) VALUES (?,?,0)",
+                                  (st.name, time.time()))
+            else:
+                cols = [c[0] for c in self.conn.execute("SELECT * FROM mon_station LIMIT 0").description]
+                prev = dict(zip(cols, row))
+            self.conn.execute(
+                "UPDATE mon_station SET config_path=?, config_text=?, standard=?, tier=?, convention=?, block_s=?, "
+                "windows_s=?, latitude_deg=?, longitude_deg=?, elevation_m=?, timezone=?, started_utc=?, "
+                "heartbeat_utc=?, pid=?, state='running', runs=runs+1 WHERE name=?",
+                (str(st.path), text, st.standard, st.tier, st.convention, st.block_s, json.dumps(st.windows_s),
+                 st.latitude_deg, st.longitude_deg, st.elevation_m, st.timezone, time.time(), time.time(),
+                 os.getpid(), st.name))
+        sid = self.conn.execute("SELECT id FROM mon_station WHERE name=?", (st.name,)).fetchone()[0]
+        return sid, prev
+
+    def _meter(self, m: MeterConfig) -> MeterState:
+        st = self.st
+        cert = load_certificate(m.certificate)
+        freq = st.meter_freq(m)
+        e_ref, s_ref = band_reference(st.standard, st.tier, freq)
+        row = self.conn.execute("SELECT session_id FROM mon_meter WHERE station_id=? AND meter=?",
+                                (self.station_id, m.name)).fetchone()
+        lo, hi = (freq if isinstance(freq, tuple) else (None, None))
+        if row is None or row[0] is None:
+            sid = self.store.begin_session("monitor", m.port, interval_ms=int(round(m.interval_s * 1000)),
+                                           freq_hz=None if isinstance(freq, tuple) else freq, band_lo_hz=lo,
+                                           band_hi_hz=hi, notes=f"station {st.name}, meter {m.name}")
+        else:
+            sid = int(row[0])
+        with self.store.db.atomic():
+            self.conn.execute("INSERT OR IGNORE INTO mon_meter (station_id, meter) VALUES (?,?)",
+                              (self.station_id, m.name))
+            self.conn.execute("UPDATE mon_meter SET session_id=?, port=?, certificate=?, freq_hz=?, band_lo_hz=?, "
+                              "band_hi_hz=?, e_ref_v_per_m=?, s_ref_w_per_m2=?, cert_due=?, link_state=? "
+                              "WHERE station_id=? AND meter=?",
+                              (sid, m.port, m.certificate, None if isinstance(freq, tuple) else freq, lo, hi, e_ref,
+                               s_ref, cert.due_date.isoformat(), "connecting", self.station_id, m.name))
+        top = cert.level_range[1] * (Z0_OHM if cert.quantity == "H" else 1.0)
+        ms = MeterState(m, cert, freq, e_ref, s_ref, sid, top)
+        hold = 3.0 * m.interval_s
+        for band in ("total", *(b[0] for b in m.bands)):
+            ms.series[band] = derived.Series(hold, st.block_s, st.windows_s, st.min_coverage)
+        for rule in st.alarms:
+            if not rule.meters or m.name in rule.meters:
+                ms.alarms.append(AlarmMachine(rule, m.name))
+        h = st.health
+        ms.checks = {"noise_floor": Persist("stuck_noise_floor", h.stuck_s),
+                     "overrange": Persist("stuck_overrange", h.stuck_s),
+                     "frozen": Persist("stuck_frozen", h.stuck_s)}
+        self._replay(ms)
+        return ms
+
+    def _replay(self, ms: MeterState) -> None:
+        """Rebuild windows, blocks in progress and alarm state from stored readings."""
+        last_end = derived.last_final_block_end(self.conn, self.station_id, ms.cfg.name)
+        t0 = None if last_end is None else last_end - max(self.st.windows_s) - 3.0 * ms.cfg.interval_s
+        arr = self.store.readings(ms.session_id, t0=t0)
+        saved = {(r[0]): r[1:] for r in self.conn.execute(
+            "SELECT rule, state, t_on_utc, peak_t_utc, peak_value, last_t_utc FROM mon_alarm "
+            "WHERE station_id=? AND meter=? AND band='total'", (self.station_id, ms.cfg.name))}
+        for am in ms.alarms:
+            if am.rule.name in saved:
+                am.restore(*saved[am.rule.name])
+        if len(arr):
+            res = calibrate.calibrate_axes(ms.cert, arr.raw, ms.freq)
+            self._feed(ms, arr.t_utc, res.e_v_per_m, res.flags, arr.raw, replay=True)
+            ms.last_t = float(arr.t_utc[-1])
+        last = self.conn.execute("SELECT max(t_utc) FROM readings WHERE session_id=?", (ms.session_id,)).fetchone()[0]
+        if last is not None:
+            ms.last_t = float(last)
+
+    # -- helpers -------------------------------------------------------------------------------
+    def now_utc(self) -> float:
+        """Host UTC, accelerated by time_scale for simulators."""
+        if self.time_scale == 1.0:
+            return time.time()
+        return self._utc0 + (time.monotonic() - self._mono0) * self.time_scale
+
+    def _event(self, ms: MeterState | None, kind: str, severity: str, message: str, t: float | None = None,
+               **detail) -> None:
+        t = self.now_utc() if t is None else t
+        who = f"[{ms.cfg.name}] " if ms else ""
+        self.log(f"{_iso(t)} {severity.upper():7s} {who}{kind}: {message}")
+        if ms is not None:
+            detail.setdefault("meter", ms.cfg.name)
+        row = event_row(kind, severity, message, t, station=self.st.name, **detail)
+        if ms is not None and ms.writer is not None:
+            ms.writer._add("events", row)
+        else:
+            self._station_events.append((ms.session_id if ms else None, row))
+
+    def stop(self) -> None:
+        """Ask run() to finish (safe from a signal handler)."""
+        self._stop.set()
+
+    # -- ingest --------------------------------------------------------------------------------
+    def _t_of(self, ms: MeterState, item) -> float:
+        if self.time_scale == 1.0:
+            return item.t_utc
+        m = ms.boot_map.get(item.boot)
+        if m is None:
+            m = ms.boot_map[item.boot] = (item.tick_ms, self.now_utc())
+        return m[1] + (item.tick_ms - m[0]) / 1000.0
+
+    def _handle(self, ms: MeterState, item) -> None:
+        if isinstance(item, Reading):
+            t = self._t_of(ms, item)
+            a = item.axes
+            ms.writer._add("readings", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms, "t_utc": t,
+                                        "raw_x": a.x, "raw_y": a.y, "raw_z": a.z, "flags": a.flags,
+                                        "range_index": a.range_index})
+            ms.pending.append((t, a.x, a.y, a.z))
+        elif isinstance(item, StatusReport):
+            self._status(ms, item)
+        elif isinstance(item, Connected):
+            ms.link_state = "streaming"
+            if self.time_scale != 1.0 and item.boot not in ms.boot_map:
+                ms.boot_map[item.boot] = (item.mapping.tick0_ms, self.now_utc())
+            ident = item.ident
+            dev = self.store.device_id(ident.model, ident.serial, ident.probe_serial, ident.cert_ref,
+                                       int(ident.sensor_kind), f"{ident.fw_major}.{ident.fw_minor}.{ident.fw_patch}",
+                                       f"{ident.proto_major}.{ident.proto_minor}")
+            ms.session_update = {"device_id": dev, "interval_ms": item.interval_ms, "clock_boot": item.boot,
+                                 "clock_tick0_ms": item.mapping.tick0_ms, "clock_utc0_s": item.mapping.utc0_s}
+        elif isinstance(item, SpectrumReading):
+            ms.writer._add("spectra", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms,
+                                       "t_utc": self._t_of(ms, item), "orientation": item.spectrum.orientation,
+                                       "sweep": item.spectrum.sweep,
+                                       "lines": [(f * 1000.0, lv / 100.0) for f, lv in item.spectrum.pairs]})
+        elif isinstance(item, LinkEvent):
+            self._link_event(ms, item)
+
+    def _link_event(self, ms: MeterState, ev: LinkEvent) -> None:
+        if ev.kind == "clock_drift":
+            ratio = ev.detail.get("rate_ratio")
+            if ratio:
+                ms.drift_ppm = (ratio / self.time_scale - 1.0) * 1e6
+                high = abs(ms.drift_ppm) > self.st.health.drift_max_ppm
+                if high != ms.drift_flagged:
+                    ms.drift_flagged = high
+                    self._event(ms, "clock_drift_high" if high else "clock_drift_ok", "warning" if high else "info",
+                                f"device clock {ms.drift_ppm:+.1f} ppm against the host (limit "
+                                f"{self.st.health.drift_max_ppm:g} ppm)", drift_ppm=ms.drift_ppm)
+            return
+        if ev.kind in ("port_lost", "port_silent", "gave_up"):
+            ms.link_state = "disconnected"
+        elif ev.kind in ("handshake", "reconnected") and ev.severity == "info":
+            ms.link_state = "streaming"
+        self._event(ms, ev.kind, ev.severity, ev.message, **ev.detail)
+
+    def _status(self, ms: MeterState, item: StatusReport) -> None:
+        s = item.status
+        t = self._t_of(ms, item)
+        temp = s.temp_centi_c / 100.0
+        ms.writer._add("statuses", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms, "t_utc": t,
+                                    "battery_mv": s.battery_mv, "battery_pct": s.battery_pct,
+                                    "temperature_degc": temp, "flags": s.flags, "interval_ms": s.interval_ms})
+        ms.status = {"battery_pct": None if s.battery_pct == 255 else s.battery_pct, "temperature_degc": temp,
+                     "battery_mv": s.battery_mv, "flags": s.flags}
+        h = self.st.health
+        low = s.battery_pct != 255 and s.battery_pct < h.battery_low_pct
+        if low != ms.battery_flagged:
+            ms.battery_flagged = low
+            self._event(ms, "battery_low" if low else "battery_ok", "warning" if low else "info",
+                        f"battery {s.battery_pct} % ({s.battery_mv} mV)", t=t, battery_pct=s.battery_pct)
+        bad = not (h.temp_min_c <= temp <= h.temp_max_c)
+        if bad != ms.temp_flagged:
+            ms.temp_flagged = bad
+            self._event(ms, "temperature_out_of_range" if bad else "temperature_ok", "warning" if bad else "info",
+                        f"device temperature {temp:.1f} degC (allowed {h.temp_min_c:g}..{h.temp_max_c:g})",
+                        t=t, temperature_degc=temp)
+
+    def _calibrate_pending(self, ms: MeterState) -> None:
+        if not ms.pending:
+            return
+        arr = np.array(ms.pending, dtype=float)
+        ms.pending = []
+        temp = ms.status.get("temperature_degc")
+        res = calibrate.calibrate_axes(ms.cert, arr[:, 1:4].astype(np.int64), ms.freq, temp_c=temp)
+        ms.last_u_db = float(res.u_expanded_db[-1])
+        self._feed(ms, arr[:, 0], res.e_v_per_m, res.flags, arr[:, 1:4])
+
+    def _feed(self, ms: MeterState, t, e, flags, raw, replay: bool = False) -> None:
+        """Push calibrated samples through the health checks, series and alarm machines."""
+        gap_s = self.st.health.max_gap_s
+        for i in range(len(t)):
+            ti, ei, fi = float(t[i]), float(e[i]), int(flags[i])
+            if not replay:
+                if ms.last_t is not None and ti - ms.last_t > gap_s:
+                    self._event(ms, "gap", "warning", f"no readings from {_iso(ms.last_t)} to {_iso(ti)} "
+                                f"({ti - ms.last_t:.0f} s)", t=ti, start_utc=ms.last_t, end_utc=ti,
+                                duration_s=ti - ms.last_t)
+                ms.last_t = ti if ms.last_t is None else max(ms.last_t, ti)
+                counts = tuple(int(c) for c in raw[i])
+                for name, cond in (("noise_floor", bool(fi & calibrate.BELOW_RANGE)),
+                                   ("overrange", bool(fi & calibrate.ABOVE_RANGE) or not math.isfinite(ei)),
+                                   ("frozen", counts == ms.last_counts)):
+                    p = ms.checks[name]
+                    what = p.update(ti, cond)
+                    if what:
+                        self._event(ms, p.kind if what == "start" else p.kind + "_end",
+                                    "warning" if what == "start" else "info",
+                                    f"sensor {name.replace('_', ' ')} since {_iso(p.since or ti)}" if what == "start"
+                                    else f"sensor no longer {name.replace('_', ' ')}", t=ti)
+                ms.last_counts = counts
+                if math.isfinite(ei):
+                    ms.last_e = ei
+            # an overrange reading (NaN from calibrate) enters as the top of the calibrated range: a lower
+            # bound of the field, so blocks and alarms understate nothing they can know; blocks count them
+            over = bool(fi & calibrate.ABOVE_RANGE) and not math.isfinite(ei)
+            if over:
+                ei = ms.e_top
+            blocks, runs = ms.series["total"].push(ti, ei, over)
+            if blocks:
+                ms.blocks_out.append(("total", blocks))
+            for am in ms.alarms:
+                for r in runs:
+                    if r.window_s == am.rule.window_s:
+                        if replay and am.last_t is not None and ti <= am.last_t:
+                            continue
+                        v = rule_value(am.rule.unit, r.e_rms_v_per_m, ms.e_ref, ms.s_ref)
+                        for ev in am.update(ti, v, r.complete):
+                            self._alarm_event(ms, ev)
+
+    def _alarm_event(self, ms: MeterState, ev) -> None:
+        sev = "warning" if ev.kind != "end" else "info"
+        self._event(ms, f"alarm_{ev.kind}", sev, ev.message(), t=ev.t_utc, **ev.detail())
+        for am in ms.alarms:
+            if am.rule.name == ev.rule and am.rule.command:
+                try:
+                    self.procs.append(run_command(am.rule.command, ev))
+                except OSError as exc:
+                    self._event(ms, "alarm_command_failed", "error", f"{am.rule.command[0]}: {exc.strerror}")
+
+    # -- commit --------------------------------------------------------------------------------
+    def _commit(self) -> None:
+        """One transaction: buffered readings/status/events of every meter, derived rows, alarm state."""
+        now = time.time()
+        with self.store._lock, self.store.db.atomic():
+            for ms in self.meters:
+                ms.writer.flush()
+                for band, blocks in ms.blocks_out:
+                    derived.save_blocks(self.conn, self.station_id, ms.cfg.name, band, blocks, self.st.min_coverage)
+                ms.blocks_out = []
+                if ms.session_update:
+                    sets = ", ".join(f"{k}=?" for k in ms.session_update)
+                    self.conn.execute(f"UPDATE sessions SET {sets} WHERE id=?",
+                                      (*ms.session_update.values(), ms.session_id))
+                    ms.session_update = {}
+                for am in ms.alarms:
+                    self.conn.execute("INSERT OR REPLACE INTO mon_alarm VALUES (?,?,?,?,?,?,?,?,?)",
+                                      (self.station_id, am.rule.name, ms.cfg.name, am.band, *am.snapshot()))
+                self.conn.execute("UPDATE mon_meter SET last_seen_utc=?, link_state=?, battery_pct=?, "
+                                  "temperature_degc=?, drift_ppm=?, last_e_v_per_m=?, u_expanded_db=? "
+                                  "WHERE station_id=? AND meter=?",
+                                  (ms.last_t, ms.link_state, ms.status.get("battery_pct"),
+                                   ms.status.get("temperature_degc"), ms.drift_ppm, ms.last_e, ms.last_u_db,
+                                   self.station_id, ms.cfg.name))
+            if self._station_events:
+                for sid, row in self._station_events:
+                    self.store.write_batch(sid, events=[row])
+                self._station_events = []
+            self.conn.execute("UPDATE mon_station SET heartbeat_utc=? WHERE id=?", (now, self.station_id))
+
+    def _certificates(self) -> None:
+        today = _dt.date.fromtimestamp(self.now_utc())
+        if self._day_checked == today.isoformat():
+            return
+        self._day_checked = today.isoformat()
+        for ms in self.meters:
+            days = (ms.cert.due_date - today).days
+            if days < 0:
+                self._event(ms, "certificate_expired", "error", "; ".join(certificate_status(ms.cert, today)),
+                            due_date=ms.cert.due_date.isoformat())
+            elif days <= self.st.health.cert_warn_days:
+                self._event(ms, "certificate_due_soon", "warning", f"certificate due on "
+                            f"{ms.cert.due_date.isoformat()} ({days} days)", due_date=ms.cert.due_date.isoformat())
+
+    def _retention(self) -> None:
+        """Thin raw readings older than the retention period, a chunk at a time, never past the derived record."""
+        if not self._retention_todo:
+            if time.monotonic() < self._retention_next:
+                return
+            self._retention_next = time.monotonic() + self.st.retention.check_every_s
+            cutoff = self.now_utc() - self.st.retention.raw_days * 86400.0
+            for ms in self.meters:
+                end = derived.last_final_block_end(self.conn, self.station_id, ms.cfg.name)
+                if end is not None:
+                    safe = min(cutoff, end - max(self.st.windows_s) - 3.0 * ms.cfg.interval_s)
+                    self._retention_todo.append((ms, safe, 0))
+            return
+        ms, before, done = self._retention_todo[0]
+        n = thin_readings(self.store, ms.session_id, before, self.st.retention.chunk_rows)
+        if n < self.st.retention.chunk_rows:
+            self._retention_todo.pop(0)
+            if done + n:
+                self._event(ms, "retention", "info", f"{done + n} raw reading(s) before {_iso(before)} thinned "
+                            "to the derived series", removed=done + n, before_utc=before)
+        else:
+            self._retention_todo[0] = (ms, before, done + n)
+
+    # -- main loop -----------------------------------------------------------------------------
+    def run(self) -> None:
+        """Acquire until stop(); commits at most commit_s apart; always leaves a consistent database."""
+        for ms in self.meters:
+            ms.writer = BatchWriter(self.store, ms.session_id, max_rows=10**9, max_age_s=self.commit_s)
+            factory = None if self._link_factory is None else (lambda p=ms.cfg.port: self._link_factory(p))
+            ms.link = MeterLink(ms.cfg.port, int(round(ms.cfg.interval_s * 1000)), link_factory=factory,
+                                backoff_max_s=self._backoff_max_s)
+            ms.link.start(require_open=False)
+        next_commit = time.monotonic() + self.commit_s
+        try:
+            while not self._stop.is_set():
+                busy = False
+                for ms in self.meters:
+                    for _ in range(2000):
+                        item = ms.link.get(0.0 if busy else 0.02 / len(self.meters))
+                        if item is None:
+                            break
+                        busy = True
+                        self._guard(self._handle, ms, item)
+                if time.monotonic() >= next_commit:
+                    self._guard(self._tick)
+                    next_commit = time.monotonic() + self.commit_s
+        finally:
+            for ms in self.meters:
+                ms.link.stop()
+            for ms in self.meters:
+                while (item := ms.link.get(0.0)) is not None:
+                    self._handle(ms, item)
+            self._tick(closing=True)
+            self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
+            self._commit()
+            with self.store.db.atomic():
+                self.conn.execute("UPDATE mon_station SET state='stopped' WHERE id=?", (self.station_id,))
+            for p in self.procs:
+                try:
+                    p.wait(timeout=5)
+                except Exception:  # noqa: BLE001 - a hung alarm command must not block shutdown
+                    p.kill()
+                    p.wait()
+            self.store.close()
+
+    def _guard(self, fn, *args) -> None:
+        """Run one step; a bug becomes an event and acquisition goes on."""
+        try:
+            fn(*args)
+        except Exception as exc:  # noqa: BLE001 - the daemon must keep recording
+            if self.conn.in_transaction:
+                self.conn.rollback()
+            self._event(None, "internal_error", "error", f"{type(exc).__name__}: {exc}")
+
+    def _tick(self, closing: bool = False) -> None:
+        now_data = self.now_utc()
+        for ms in self.meters:
+            self._calibrate_pending(ms)
+            if not closing:
+                silent = ms.last_t is not None and now_data - ms.last_t > max(self.st.health.max_gap_s,
+                                                                              3 * ms.cfg.interval_s) * 2
+                if silent:
+                    blocks = ms.series["total"].close_gap(ms.last_t + 3.0 * ms.cfg.interval_s + 1e-6)
+                    if blocks:
+                        ms.blocks_out.append(("total", blocks))
+        self._certificates()
+        self._commit()
+        self.procs = [p for p in self.procs if p.poll() is None]
+        if not closing:
+            self._retention()
+
+
+def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) -> int:
+    """Delete up to ``limit`` raw readings of a session older than before_utc (and their field values)."""
+    conn = store.db.conn
+    with store._lock, store.db.atomic():
+        ids = [r[0] for r in conn.execute("SELECT id FROM readings WHERE session_id=? AND t_utc < ? LIMIT ?",
+                                          (session_id, before_utc, limit))]
+        if ids:
+            marks = ",".join("?" * len(ids))
+            conn.execute(f"DELETE FROM field_values WHERE reading_id IN ({marks})", ids)
+            conn.execute(f"DELETE FROM readings WHERE id IN ({marks})", ids)
+    return len(ids)
+
+
+def _iso(t: float | None) -> str:
+    if t is None:
+        return "-"
+    return _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
