@@ -7,6 +7,7 @@ as a replugged USB adapter would. A background thread runs the firmware on an ac
 
 from __future__ import annotations
 
+import dataclasses
 import errno
 import os
 import select
@@ -29,10 +30,14 @@ class SimulatedMeter:
     """Run one simulated meter of a scenario on a pty; use as a context manager."""
 
     def __init__(self, scenario="demo", *, sensor="probe", meter=0, seed=0, speed=1.0,
-                 faults=None, quirks=None, truth_path=None, start_tick_ms=0):
+                 faults=None, quirks=None, truth_path=None, start_tick_ms=0, scene=None):
         if not speed > 0:
             raise ValueError(f"speed {speed}: must be positive")
         sc = load_scenario(scenario) if isinstance(scenario, str) else scenario
+        if scene is not None and 0 <= meter < len(sc.meters):  # lab mode: the meter sits in a scene the caller controls (simulators/lab.py)
+            specs = list(sc.meters)
+            specs[meter] = dataclasses.replace(specs[meter], scene=scene)
+            sc = dataclasses.replace(sc, meters=tuple(specs))
         self.speed = float(speed)
         self._truth = TruthLog(truth_path) if truth_path else None
         self.fw = Firmware(sc, meter=meter, sensor=sensor, rng=np.random.default_rng(seed), faults=faults,
@@ -94,6 +99,10 @@ class SimulatedMeter:
         """The device's current TICK (ms since its last boot, wrapping at 2^32)."""
         with self._lock:
             return self.fw.tick_ms(self._now_ms())
+
+    def sim_time_s(self) -> float:
+        """Simulated seconds since start(): the time at which scenes are evaluated."""
+        return self._now_ms() / 1000
 
     @property
     def connected(self) -> bool:

@@ -1,0 +1,1 @@
+"""Calibration-lab checks of a probe: session model, procedures, analysis, budget, certificates."""

@@ -1,0 +1,202 @@
+"""A lab session: probe under test, field method, orientation convention, ambient, steps (pure).
+
+Orientation convention (documented in docs/lab.md): the probe's handle axis is the direction
+(1, 1, 1)/sqrt(3) of its sensor frame, the three sensors being equally inclined (54.7 deg) to the
+handle, a common design. On the rotator the handle points along the bench's +z axis; at
+rotator angle 0 and tilt 0 the sensor X axis lies in the bench x-z plane, towards +x. The rotator
+turns the probe about the handle (bench z) by `rotator_deg`, right-handed; `tilt_deg` first tips
+the handle about the bench y axis. The applied field direction is given in bench coordinates.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from meterlink.errors import MeterlinkError
+from meterlink.lab.fieldgen import FieldMethod
+
+PROCEDURES = ("zero", "linearity", "frequency", "isotropy", "check")
+AXES = ("x", "y", "z")
+
+
+class LabError(MeterlinkError):
+    """A lab session file, import or step that cannot be used."""
+
+
+def _rot(axis: np.ndarray, angle_rad: float) -> np.ndarray:
+    """Rodrigues rotation matrix about a unit axis."""
+    k = axis / np.linalg.norm(axis)
+    kx = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
+    return np.eye(3) + math.sin(angle_rad) * kx + (1 - math.cos(angle_rad)) * kx @ kx
+
+
+def _mount() -> np.ndarray:
+    """Columns: the sensor axes in bench coordinates at rotator 0, tilt 0 (handle (1,1,1) -> bench z)."""
+    a = np.ones(3) / math.sqrt(3.0)
+    z = np.array([0.0, 0.0, 1.0])
+    m = _rot(np.cross(a, z), math.acos(float(a @ z)))
+    # then turn about bench z so that sensor X lies in the x-z plane towards +x
+    x = m[:, 0]
+    return _rot(z, -math.atan2(x[1], x[0])) @ m
+
+
+MOUNT = _mount()
+
+
+def orientation_matrix(rotator_deg: float = 0.0, tilt_deg: float = 0.0) -> np.ndarray:
+    """Columns are the probe's sensor axes in bench coordinates for a rotator angle and tilt."""
+    rz = _rot(np.array([0.0, 0.0, 1.0]), math.radians(rotator_deg))
+    ry = _rot(np.array([0.0, 1.0, 0.0]), math.radians(tilt_deg))
+    return rz @ ry @ MOUNT
+
+
+def axis_direction_world(axis: str) -> tuple[float, float, float]:
+    """Bench direction of the field that lies along one sensor axis at rotator 0, tilt 0."""
+    v = MOUNT[:, AXES.index(axis)]
+    return tuple(float(x) for x in v)
+
+
+def diagonal_direction_world() -> tuple[float, float, float]:
+    """A field direction equally shared by the three sensors: along the handle (bench +z)."""
+    return (0.0, 0.0, 1.0)
+
+
+@dataclass(frozen=True)
+class Step:
+    """One set-up of the bench: what the lab applies and what it takes as the reference field."""
+
+    procedure: str
+    freq_hz: float
+    e_ref_v_per_m: float
+    direction_world: tuple[float, float, float] = (1.0, 0.0, 0.0)
+    rotator_deg: float = 0.0
+    tilt_deg: float = 0.0
+    axis: str = ""            # "x", "y", "z" for a per-axis step, "" for the total field
+    role: str = ""            # linearity: "table" (builds the certificate) or "check" (tests it)
+    net_power_w: float = float("nan")
+
+
+@dataclass(frozen=True)
+class StepResult:
+    """The repeated raw readings (counts, shape (n, 3)) taken at one step."""
+
+    step: Step
+    counts: np.ndarray
+
+
+@dataclass(frozen=True)
+class Ambient:
+    temp_c: float = 23.0
+    humidity_pct: float = 45.0
+
+
+@dataclass(frozen=True)
+class ProbeSpec:
+    """The probe's specification tolerances (half-widths, dB) for the conformity statement."""
+
+    frequency_response_db: float = 1.0
+    isotropy_db: float = 1.0
+    linearity_db: float = 0.5
+
+
+@dataclass(frozen=True)
+class LabSession:
+    """Everything recorded about a calibration besides the readings."""
+
+    probe_model: str
+    probe_serial: str
+    lab: str
+    certificate_number: str
+    cal_date: _dt.date
+    due_date: _dt.date
+    method: FieldMethod = field(default_factory=FieldMethod)
+    ambient: Ambient = field(default_factory=Ambient)
+    spec: ProbeSpec = field(default_factory=ProbeSpec)
+    ref_freq_hz: float = 1e9
+    operator: str = ""
+    decision_rule: str = "guarded"
+    budget: dict = field(default_factory=dict)   # overrides of meterlink.lab.budget.DEFAULTS
+    orientation: str = "handle = sensor (1,1,1); rotator about the handle; see docs/lab.md"
+
+    def reference_field(self, e_ref_v_per_m: float, net_power_w: float) -> float:
+        """The step's reference field: entered if given, else computed from the net power."""
+        if math.isfinite(e_ref_v_per_m):
+            return float(e_ref_v_per_m)
+        if math.isfinite(net_power_w):
+            return self.method.e_from_power(net_power_w)
+        raise LabError("a step needs its reference field or a net power")
+
+
+def _num(where, d, key, default=None):
+    v = d.get(key, default)
+    if v is None:
+        raise LabError(f"{where}: missing key '{key}'")
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        raise LabError(f"{where}: '{key}' must be a finite number, got {v!r}")
+    return float(v)
+
+
+def _str(where, d, key, default=None):
+    v = d.get(key, default)
+    if v is None or not isinstance(v, str) or not v.strip():
+        raise LabError(f"{where}: '{key}' must be a non-empty string")
+    return v
+
+
+def _date(where, d, key, default):
+    v = d.get(key, default)
+    if isinstance(v, str):
+        try:
+            v = _dt.date.fromisoformat(v)
+        except ValueError:
+            raise LabError(f"{where}: '{key}' is not a date (YYYY-MM-DD): {v!r}") from None
+    if not isinstance(v, _dt.date) or isinstance(v, _dt.datetime):
+        raise LabError(f"{where}: '{key}' must be a date (YYYY-MM-DD)")
+    return v
+
+
+def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
+    """Build a session from a parsed TOML document; LabError names the key on any problem."""
+    probe, cal = d.get("probe", {}), d.get("calibration", {})
+    m, amb, spec = d.get("method", {}), d.get("ambient", {}), d.get("spec", {})
+    for name, t in (("probe", probe), ("calibration", cal), ("method", m), ("ambient", amb), ("spec", spec)):
+        if not isinstance(t, dict):
+            raise LabError(f"{where}: '{name}' must be a table")
+    cal_date = _date(where, cal, "date", _dt.date.today())
+    due = _date(where, cal, "due", cal_date + _dt.timedelta(days=365))
+    if due <= cal_date:
+        raise LabError(f"{where}: due date {due} is not after calibration date {cal_date}")
+    method = FieldMethod(kind=_str(where, m, "kind", "tem-cell"), impedance_ohm=_num(where, m, "impedance_ohm", 50.0),
+                         spacing_m=_num(where, m, "spacing_m", 0.15), gain_dbi=_num(where, m, "gain_dbi", 0.0),
+                         distance_m=_num(where, m, "distance_m", 1.0), description=str(m.get("description", "")))
+    budget = d.get("budget", {})
+    if not isinstance(budget, dict) or any(not isinstance(v, (int, float)) or isinstance(v, bool)
+                                           for v in budget.values()):
+        raise LabError(f"{where}: 'budget' must be a table of numbers")
+    return LabSession(
+        probe_model=_str(where, probe, "model"), probe_serial=_str(where, probe, "serial"),
+        lab=_str(where, cal, "lab"), certificate_number=_str(where, cal, "certificate_number"),
+        cal_date=cal_date, due_date=due, method=method,
+        ambient=Ambient(_num(where, amb, "temp_c", 23.0), _num(where, amb, "humidity_pct", 45.0)),
+        spec=ProbeSpec(_num(where, spec, "frequency_response_db", 1.0), _num(where, spec, "isotropy_db", 1.0),
+                       _num(where, spec, "linearity_db", 0.5)),
+        ref_freq_hz=_num(where, d, "ref_freq_hz", 1e9), operator=str(d.get("operator", "")),
+        decision_rule=str(d.get("decision_rule", "guarded")), budget={k: float(v) for k, v in budget.items()})
+
+
+def load_session(path) -> LabSession:
+    """Read a session TOML file (see docs/lab.md)."""
+    p = Path(path)
+    try:
+        doc = tomllib.loads(p.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise LabError(f"{p}: cannot read session file ({exc.strerror})") from None
+    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise LabError(f"{p}: not a valid TOML session file ({exc})".replace("\n", " ")) from None
+    return session_from_dict(doc, str(p))
