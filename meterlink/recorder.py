@@ -14,7 +14,6 @@ from dataclasses import dataclass, field
 from typing import Callable
 
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
-from meterlink.protocol import SensorKind
 from meterlink.storage import BatchWriter, Store
 from meterlink.transport import Link
 
@@ -183,9 +182,3 @@ class Recorder:
             lost_frames=lost, device_span_s=span, host_elapsed_s=host_s, clock_rate_ratio=self._ratio,
             stop_reason=reason)
 
-
-def sensor_name(kind: int) -> str:
-    try:
-        return SensorKind(kind).name.lower()
-    except ValueError:
-        return f"kind {kind}"
