@@ -350,6 +350,81 @@ class Store:
             return int(self.db.execute(f"select count(*) from {table} where session_id = ?", [session_id]).fetchone()[0])
 
 
+    # -- derived values: calibrations with provenance ------------------------------------------
+    def status_temperatures(self, session_id: int) -> list[float]:
+        """Temperatures (degC) the device reported during a session, in time order."""
+        with self._lock:
+            return [r[0] for r in self.db.execute(
+                "select temperature_degc from status where session_id = ? order by t_utc", [session_id])]
+
+    def add_calibration(self, row: Mapping[str, Any]) -> int:
+        """Record that a certificate was applied to a session (provenance); returns the calibration id."""
+        with self._lock, self.db.atomic():
+            return int(self.db["calibrations"].insert(dict(row)).last_pk)
+
+    def calibrations(self, session_id: int) -> list[dict]:
+        """Calibrations applied to a session, oldest first."""
+        with self._lock:
+            return list(self.db["calibrations"].rows_where("session_id = ?", [session_id], order_by="id"))
+
+    def add_field_values(self, calibration_id: int, reading_ids, e_v_per_m, axes_v_per_m, h_a_per_m,
+                         s_w_per_m2, u_expanded_db, flags) -> None:
+        """Store one calibration's values for many readings in one transaction (NaN stored as NULL)."""
+        def f(x):
+            x = float(x)
+            return x if x == x else None
+
+        rows = [(int(i), calibration_id, f(e), f(a[0]), f(a[1]), f(a[2]), f(h), f(s_), f(u), int(fl))
+                for i, e, a, h, s_, u, fl in zip(reading_ids, e_v_per_m, axes_v_per_m, h_a_per_m, s_w_per_m2,
+                                                 u_expanded_db, flags)]
+        with self._lock, self.db.atomic():
+            self.db.conn.executemany(
+                "insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
+                "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)", rows)
+
+    def field_values(self, calibration_id: int) -> dict[str, np.ndarray]:
+        """One calibration's values joined with reading times, ordered by time (NULL -> NaN)."""
+        with self._lock:
+            rows = self.db.execute(
+                "select v.reading_id, r.t_utc, v.e_v_per_m, v.ex_v_per_m, v.ey_v_per_m, v.ez_v_per_m, "
+                "v.h_a_per_m, v.s_w_per_m2, v.u_expanded_db, v.flags from field_values v "
+                "join readings r on r.id = v.reading_id where v.calibration_id = ? order by r.t_utc, r.id",
+                [calibration_id]).fetchall()
+        a = np.array(rows, dtype=float).reshape(-1, 10)
+        return {"reading_id": a[:, 0].astype(np.int64), "t_utc": a[:, 1], "e_v_per_m": a[:, 2],
+                "axes_v_per_m": a[:, 3:6], "h_a_per_m": a[:, 6], "s_w_per_m2": a[:, 7],
+                "u_expanded_db": a[:, 8], "flags": a[:, 9].astype(np.int64)}
+
+    def spectrum_lines(self, session_id: int) -> dict[str, np.ndarray]:
+        """All stored receiver lines of a session: line id, frequency (Hz) and level (dBuV)."""
+        with self._lock:
+            rows = self.db.execute(
+                "select l.id, l.freq_hz, l.level_dbuv from spectrum_lines l join spectra s on s.id = l.spectrum_id "
+                "where s.session_id = ? order by s.t_utc, s.id, l.id", [session_id]).fetchall()
+        a = np.array(rows, dtype=float).reshape(-1, 3)
+        return {"line_id": a[:, 0].astype(np.int64), "freq_hz": a[:, 1], "level_dbuv": a[:, 2]}
+
+    def add_spectrum_values(self, calibration_id: int, line_ids, e_v_per_m, u_expanded_db, flags) -> None:
+        """Store one calibration's field per receiver line (NaN stored as NULL)."""
+        rows = [(int(i), calibration_id, float(e) if e == e else None, float(u), int(fl))
+                for i, e, u, fl in zip(line_ids, e_v_per_m, u_expanded_db, flags)]
+        with self._lock, self.db.atomic():
+            self.db.conn.executemany("insert into spectrum_values (spectrum_line_id, calibration_id, e_v_per_m, "
+                                     "u_expanded_db, flags) values (?,?,?,?,?)", rows)
+
+    def spectrum_values(self, calibration_id: int) -> dict[str, np.ndarray]:
+        """One calibration's line values with their sweep, boot, orientation, frequency and time."""
+        with self._lock:
+            rows = self.db.execute(
+                "select s.boot, s.sweep, s.orientation, s.t_utc, l.freq_hz, v.e_v_per_m, v.u_expanded_db, v.flags "
+                "from spectrum_values v join spectrum_lines l on l.id = v.spectrum_line_id "
+                "join spectra s on s.id = l.spectrum_id where v.calibration_id = ? order by s.t_utc, s.id, l.id",
+                [calibration_id]).fetchall()
+        a = np.array(rows, dtype=float).reshape(-1, 8)
+        return {"boot": a[:, 0].astype(np.int64), "sweep": a[:, 1].astype(np.int64),
+                "orientation": a[:, 2].astype(np.int64), "t_utc": a[:, 3], "freq_hz": a[:, 4],
+                "e_v_per_m": a[:, 5], "u_expanded_db": a[:, 6], "flags": a[:, 7].astype(np.int64)}
+
 def event_row(kind: str, severity: str, message: str, t_utc: float | None = None, **detail: Any) -> dict:
     """An event as a row dict; severity is info, warning or error; detail is stored as JSON."""
     if severity not in SEVERITIES:
