@@ -21,6 +21,7 @@ import numpy as np
 
 from simulators.firmware import Firmware
 from simulators.scenario import load_scenario
+from simulators.scene import Path
 from simulators.truth import TruthLog
 
 _MAX_PENDING = 1 << 16  # bytes kept for a host that does not read; beyond this output is lost
@@ -103,6 +104,21 @@ class SimulatedMeter:
     def sim_time_s(self) -> float:
         """Simulated seconds since start(): the time at which scenes are evaluated."""
         return self._now_ms() / 1000
+
+    def move_to(self, position_m=None) -> None:
+        """Hold the probe at position_m (x, y, z in site metres) from now on, as a technician would;
+        None resumes the scenario's walk. Readings already due keep the old position."""
+        with self._lock:
+            out = self.fw.poll(self._now_ms())
+            if self._master is not None:
+                self._pending += out
+            spec = self.fw.spec
+            if not hasattr(spec.scene, "path"):
+                raise ValueError("move_to: this meter's scene has no probe position")
+            base = getattr(self, "_walk", None) or spec.scene.path
+            self._walk = base
+            path = base if position_m is None else Path.fixed([float(v) for v in position_m])
+            self.fw.spec = dataclasses.replace(spec, scene=dataclasses.replace(spec.scene, path=path))
 
     @property
     def connected(self) -> bool:
