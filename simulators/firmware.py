@@ -29,7 +29,18 @@ _READING_TYPES = {FrameType.AXES, FrameType.SPECTRUM, FrameType.STATUS}
 DEFAULT_FAULTS = {"drop": 0.0, "corrupt": 0.0, "garbage": 0.0, "garbage_max_bytes": 8, "frames": "readings",
                   "schedule": ()}
 # Rule-breaking switches for conformance checks of the host; all off by default.
-DEFAULT_QUIRKS = {"seq_step": 1, "bad_crc": 0.0, "silent_unknown": False, "no_boot": False}
+#   seq_step: seq advance per frame; bad_crc: fraction of frames sent with a broken CRC;
+#   silent_unknown: no FAULT for an unknown type; no_boot: no BOOT frame after reset;
+#   wrong_fault_code: every FAULT carries a wrong code; no_status: no periodic STATUS while streaming;
+#   interval_error: readings come every interval * (1 + e); interval_jitter_ms: rms random spread
+#   of the reading period; ignore_stop: STOP is acknowledged but streaming goes on;
+#   ident_model / ident_kind / ident_proto_major: replace those IDENT fields;
+#   deaf_after_garbage_ms: after any junk bytes from the host, ignore its frames for that long;
+#   pong_alter: PONG returns the PING bytes with the last one changed.
+DEFAULT_QUIRKS = {"seq_step": 1, "bad_crc": 0.0, "silent_unknown": False, "no_boot": False,
+                  "wrong_fault_code": False, "no_status": False, "interval_error": 0.0, "interval_jitter_ms": 0.0,
+                  "ignore_stop": False, "ident_model": None, "ident_kind": None, "ident_proto_major": None,
+                  "deaf_after_garbage_ms": 0, "pong_alter": False}
 
 
 class Firmware:
@@ -49,6 +60,9 @@ class Firmware:
         if unknown:
             raise ValueError(f"unknown fault switch {sorted(unknown)[0]!r}")
         self.quirks = {**DEFAULT_QUIRKS, **(quirks or {})}
+        unknown = set(self.quirks) - set(DEFAULT_QUIRKS)
+        if unknown:
+            raise ValueError(f"unknown quirk {sorted(unknown)[0]!r}")
         self.truth = truth
         self.link_up = True
         dev = scenario.device
@@ -74,6 +88,7 @@ class Firmware:
         self.averaging = int(dev.get("device_averaging", 1))
         self.clock = None  # (utc_ms, world_ms) once CLOCK_SET; lost at reset (no backed-up RTC)
         self.reader, self._crc_base = FrameReader(), 0
+        self._deaf_until = -1
         self._inbox: list = []
         self._next_end = self._next_status = None
         self._sweep, self._orient = 0, 0
@@ -98,9 +113,14 @@ class Firmware:
     # ----------------------------------------------------------------- I/O
     def feed(self, data: bytes) -> None:
         """Host bytes arriving; complete frames are acted on at the next poll."""
-        frames = [f for f in self.reader.feed(data) if not hasattr(f, "kind")]
+        deaf_ms = int(self.quirks["deaf_after_garbage_ms"])
+        for item in self.reader.feed(data):
+            if hasattr(item, "kind"):
+                if deaf_ms:
+                    self._deaf_until = self.now_ms + deaf_ms
+            elif self.now_ms >= self._deaf_until:
+                self._inbox.append(item)
         self.stats["bad_crcs_seen"] = self._crc_base + self.reader.stats.crc_errors
-        self._inbox.extend(frames)
 
     def poll(self, now_ms: int) -> bytes:
         """Advance the device to now_ms; return the bytes it sent meanwhile."""
@@ -130,12 +150,23 @@ class Firmware:
             t = int(t)
             if what == 0:
                 self._reading(t)
-                self._next_end = t + self.interval_ms
+                self._next_end = t + self._period_ms()
             elif what == 1:
-                self._send_status(t)
+                if self.quirks["no_status"]:
+                    self._next_status = t + STATUS_PERIOD_MS
+                else:
+                    self._send_status(t)
             else:
                 self._restarts.pop(0)
                 self._reset(t, cause=1)
+
+    def _period_ms(self) -> int:
+        """Time to the next reading: the interval, unless a quirk bends it."""
+        q = self.quirks
+        p = self.interval_ms * (1.0 + float(q["interval_error"]))
+        if q["interval_jitter_ms"]:
+            p += float(q["interval_jitter_ms"]) * float(self._frng.standard_normal())
+        return max(1, int(round(p)))
 
     def _send(self, msg, world_ms: int, ftype: int | None = None, tick_ms: int | None = None) -> str:
         """Frame and emit one message through the fault switches; returns its fate."""
@@ -246,6 +277,8 @@ class Firmware:
 
     # ----------------------------------------------------------------- commands
     def _fault(self, code: int, frame, now_ms: int, text: str) -> None:
+        if self.quirks["wrong_fault_code"]:
+            code = FaultCode.UNKNOWN_TYPE if code == FaultCode.BAD_FRAME else FaultCode.BAD_FRAME
         self._send(Fault(code, frame.type & 0xFF, frame.seq, text[:MAX_TEXT]), now_ms)
 
     def _command(self, frame, now_ms: int) -> None:
@@ -269,11 +302,11 @@ class Firmware:
         elif ft == FrameType.START:
             if not self.streaming:
                 self.streaming = True
-                self._next_end, self._next_status = now_ms + self.interval_ms, now_ms + STATUS_PERIOD_MS
+                self._next_end, self._next_status = now_ms + self._period_ms(), now_ms + STATUS_PERIOD_MS
             self._send(ack, now_ms)
             self._flags_changed(now_ms)
         elif ft == FrameType.STOP:
-            self.streaming = False
+            self.streaming = self.streaming and bool(self.quirks["ignore_stop"])
             self._send(ack, now_ms)
             self._flags_changed(now_ms)
         elif ft == FrameType.SET_INTERVAL:
@@ -295,7 +328,10 @@ class Firmware:
             self._send(ack, now_ms)
             self._flags_changed(now_ms)
         elif ft == FrameType.PING:
-            self._send(Echo(msg.data), now_ms, FrameType.PONG)
+            data = msg.data
+            if self.quirks["pong_alter"] and data:
+                data = data[:-1] + bytes([data[-1] ^ 0x20])
+            self._send(Echo(data), now_ms, FrameType.PONG)
         return None
 
     def _ident(self) -> Ident:
@@ -303,7 +339,11 @@ class Firmware:
         fw = tuple(int(v) for v in dev.get("fw", (1, 0, 0)))
         kind = SensorKind.E_PROBE if self.sensor == "probe" else SensorKind.DIPOLE_RX
         model = str(dev.get("model", "SIM")) + ("" if self.sensor == "probe" else "-RX")
-        return Ident(PROTOCOL_MAJOR, PROTOCOL_MINOR, *fw, kind, self.boot_count, self.min_interval_ms,
+        q = self.quirks
+        kind = kind if q["ident_kind"] is None else int(q["ident_kind"])
+        model = model if q["ident_model"] is None else str(q["ident_model"])
+        major = PROTOCOL_MAJOR if q["ident_proto_major"] is None else int(q["ident_proto_major"])
+        return Ident(major, PROTOCOL_MINOR, *fw, kind, self.boot_count, self.min_interval_ms,
                      self.max_interval_ms, model, self.spec.serial, self.texts[SettingKey.PROBE_SERIAL],
                      self.texts[SettingKey.CERT_REF])
 
