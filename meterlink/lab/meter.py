@@ -1,0 +1,69 @@
+"""A bench made of a lab controller (signal generator, rotator) and a meter read over its serial link.
+
+The controller's apply(...) returns the device tick (ms) from which readings see the new set-up
+(None if it cannot tell: then `settle_readings` readings are discarded). Only readings whose
+whole integration time lies after that tick are kept.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from meterlink.errors import LinkError
+from meterlink.lab.session import LabError
+from meterlink.link import Connected, LinkEvent, MeterLink, Reading
+from meterlink.protocol import AXIS_OVER_X
+
+OVER_ANY = AXIS_OVER_X | (AXIS_OVER_X << 1) | (AXIS_OVER_X << 2)
+
+
+class MeterBench:
+    """apply() sets the lab's controller; read(n) takes n fresh readings from the MeterLink."""
+
+    def __init__(self, controller, link: MeterLink, timeout_s: float = 10.0, settle_readings: int = 2):
+        self.controller, self.link = controller, link
+        self.timeout_s, self.settle_readings = float(timeout_s), int(settle_readings)
+        self.interval_ms: int | None = None
+        self._after_tick: float | None = None
+        self._skip = 0
+
+    def wait_connected(self) -> Connected:
+        """Wait for the link's handshake; LinkError on timeout or a link error."""
+        deadline = time.monotonic() + self.timeout_s
+        while time.monotonic() < deadline:
+            item = self.link.get(0.05)
+            if isinstance(item, Connected):
+                self.interval_ms = item.interval_ms
+                return item
+            if isinstance(item, LinkEvent) and item.severity == "error":
+                raise LinkError(f"lab meter: {item.message}")
+        raise LinkError(f"lab meter on {self.link.port}: no handshake within {self.timeout_s:g} s")
+
+    def apply(self, freq_hz, e_v_per_m, direction_world, rotator_deg, tilt_deg) -> None:
+        tick = self.controller.apply(freq_hz, e_v_per_m, direction_world, rotator_deg, tilt_deg)
+        self._after_tick = None if tick is None else float(tick) + (self.interval_ms or 0) / 2
+        self._skip = self.settle_readings if tick is None else 0
+
+    def read(self, n: int) -> np.ndarray:
+        out = []
+        deadline = time.monotonic() + self.timeout_s
+        while len(out) < n:
+            if time.monotonic() >= deadline:
+                raise LinkError(f"lab meter on {self.link.port}: only {len(out)} of {n} readings within "
+                                f"{self.timeout_s:g} s")
+            item = self.link.get(0.05)
+            if isinstance(item, Connected):
+                self.interval_ms = item.interval_ms
+            if not isinstance(item, Reading):
+                continue
+            if self._after_tick is not None and item.tick_ms < self._after_tick:
+                continue
+            if self._skip:
+                self._skip -= 1
+                continue
+            if item.axes.flags & OVER_ANY:
+                raise LabError(f"meter over range at this step (counts {item.axes.x}, {item.axes.y}, {item.axes.z})")
+            out.append((item.axes.x, item.axes.y, item.axes.z))
+        return np.array(out, dtype=float)
