@@ -1,0 +1,46 @@
+"""meterlink export: the 6-minute series and summaries for publication, as CSV or JSON."""
+
+HELP = "export a station's 6-minute series and period summaries (CSV or JSON) for publication"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("--db", required=True, metavar="FILE", help="station database written by 'meterlink monitor'")
+    parser.add_argument("--from", dest="t_from", metavar="DATE", help="start, ISO date or time (UTC)")
+    parser.add_argument("--to", dest="t_to", metavar="DATE", help="end, exclusive (default: now)")
+    parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
+    parser.add_argument("--out", metavar="FILE", help="write here instead of standard output")
+
+
+def run(args) -> int:
+    import sqlite3
+    import sys
+    from pathlib import Path
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.commands.stats import span
+    from meterlink.errors import MeterlinkError
+    from meterlink.publish import header_lines, series_rows, station_info, statistics, to_csv, to_json
+
+    if not Path(args.db).is_file():
+        raise MeterlinkError(f"{args.db}: no such database file")
+    conn = sqlite3.connect(f"file:{args.db}?mode=ro", uri=True)
+    try:
+        station_info(conn)
+        t0, t1 = span(conn, args)
+        st, rows = series_rows(conn, t0, t1)
+        if args.format == "csv":
+            text = to_csv(st, rows, SAFETY_LINE)
+        else:
+            doc = {"about": header_lines(st, SAFETY_LINE), "caution": SAFETY_LINE,
+                   "summaries": statistics(conn, t0, t1), "series_6min": rows}
+            text = to_json(doc)
+    finally:
+        conn.close()
+    if args.out:
+        try:
+            Path(args.out).write_text(text, encoding="utf-8")
+        except OSError as exc:
+            raise MeterlinkError(f"{args.out}: cannot write: {exc.strerror}") from None
+    else:
+        sys.stdout.write(text)
+    return 0

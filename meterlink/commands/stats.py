@@ -1,0 +1,84 @@
+"""meterlink stats: day, week and month statistics of a station's 6-minute series."""
+
+HELP = "statistics of a monitoring station per day, week and month (coverage, max/min, median, p95, profiles)"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("--db", required=True, metavar="FILE", help="station database written by 'meterlink monitor'")
+    parser.add_argument("--from", dest="t_from", metavar="DATE", help="start, ISO date or time (UTC; default: first block)")
+    parser.add_argument("--to", dest="t_to", metavar="DATE", help="end, exclusive (default: now)")
+    parser.add_argument("--json", action="store_true", help="print the statistics as JSON")
+
+
+def parse_when(text, what):
+    import datetime as dt
+
+    from meterlink.errors import MeterlinkError
+    try:
+        d = dt.datetime.fromisoformat(text.replace("Z", "+00:00"))
+    except ValueError:
+        raise MeterlinkError(f"{what} {text!r}: expected an ISO date like 2025-03-01 or 2025-03-01T12:00") from None
+    if d.tzinfo is None:
+        d = d.replace(tzinfo=dt.timezone.utc)
+    return d.timestamp()
+
+
+def span(conn, args):
+    import time
+    first = conn.execute("SELECT min(t_start_utc) FROM mon_block").fetchone()[0]
+    t0 = parse_when(args.t_from, "--from") if args.t_from else (first or time.time())
+    t1 = parse_when(args.t_to, "--to") if args.t_to else time.time() + 1.0
+    if not t1 > t0:
+        from meterlink.errors import MeterlinkError
+        raise MeterlinkError("--to must be later than --from")
+    return t0, t1
+
+
+def run(args) -> int:
+    import sqlite3
+    from pathlib import Path
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.publish import station_info, statistics, to_json
+    from meterlink.stats import sparkline
+
+    if not Path(args.db).is_file():
+        raise MeterlinkError(f"{args.db}: no such database file")
+    conn = sqlite3.connect(f"file:{args.db}?mode=ro", uri=True)
+    try:
+        station_info(conn)
+        t0, t1 = span(conn, args)
+        doc = statistics(conn, t0, t1)
+    finally:
+        conn.close()
+    doc["caution"] = SAFETY_LINE
+    if args.json:
+        print(to_json(doc))
+        return 0
+    from rich.console import Console
+    from rich.table import Table
+
+    con = Console()
+    con.print(f"[bold]{doc['station']}[/bold] {doc['from_utc']} .. {doc['to_utc']}; percentiles: "
+              f"{doc['percentile_method']}")
+    f = lambda v, spec=".3g": "-" if v is None else format(v, spec)  # noqa: E731
+    for m in doc["meters"]:
+        con.print(f"[bold]{m['meter']}[/bold]: {m['label']} (E_ref {m['e_ref_v_per_m']:.4g} V/m, "
+                  f"S_ref {m['s_ref_w_per_m2']:.4g} W/m2)")
+        for period in ("day", "week", "month"):
+            t = Table(period, "coverage", "max %", "min %", "median %", "p95 %", "max V/m",
+                      *(k.replace("_max_e_v_per_m", "").replace("running_", "run ") + " max %"
+                        for k in (m[period][0] if m[period] else {}) if k.endswith("_max_e_v_per_m")))
+            for r in m[period]:
+                runs = [f(r[k.replace("_e_v_per_m", "_pct")]) for k in r if k.endswith("s_max_e_v_per_m")]
+                t.add_row(r["period"], f"{r['coverage']:.1%}", f(r.get("max_pct")), f(r.get("min_pct")),
+                          f(r.get("median_pct")), f(r.get("p95_pct")), f(r.get("max_e_v_per_m")), *runs)
+            con.print(t)
+        hours = [h["mean_pct"] for h in m["hour_of_day"]]
+        con.print(f"hour-of-day profile (mean % of reference, 00..23): |{sparkline(hours)}|  peak "
+                  f"{f(max((h for h in hours if h is not None), default=None))} %")
+        ww = m["weekday_weekend"]
+        con.print(f"weekday mean {f(ww['weekday']['mean_pct'])} %, weekend mean {f(ww['weekend']['mean_pct'])} %")
+    con.print(SAFETY_LINE)
+    return 0

@@ -1,0 +1,53 @@
+"""meterlink status: the current state of a monitoring station from its database."""
+
+HELP = "show a monitoring station's current state (links, last values, health, alarms, recent events)"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("--db", required=True, metavar="FILE", help="station database written by 'meterlink monitor'")
+    parser.add_argument("--json", action="store_true", help="print the state as JSON")
+
+
+def run(args) -> int:
+    import sqlite3
+    import time
+    from pathlib import Path
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.publish import current_state, to_json
+
+    if not Path(args.db).is_file():
+        raise MeterlinkError(f"{args.db}: no such database file")
+    conn = sqlite3.connect(f"file:{args.db}?mode=ro", uri=True)
+    try:
+        s = current_state(conn, time.time())
+    finally:
+        conn.close()
+    s["caution"] = SAFETY_LINE
+    if args.json:
+        print(to_json(s))
+        return 0
+    from rich.console import Console
+    from rich.table import Table
+    from rich.markup import escape
+
+    con = Console()
+    age = s["heartbeat_age_s"]
+    con.print(f"[bold]{escape(s['station'])}[/bold]  state {s['state']}, run {s['runs']}, heartbeat "
+              f"{s['heartbeat_utc']} ({'-' if age is None else f'{age:.0f} s ago'}); "
+              f"{s['standard']} {s['tier']}, convention {s['convention']}")
+    t = Table("meter", "link", "last seen", "E V/m", "U dB", "% E ref", "cov 24h", "battery", "temp C",
+              "drift ppm", "cert due", "alarms")
+    f = lambda v, spec: "-" if v is None else format(v, spec)  # noqa: E731
+    for m in s["meters"]:
+        t.add_row(escape(m["meter"]), m["link"] or "-", m["last_seen_utc"] or "-", f(m["last_e_v_per_m"], ".3g"),
+                  f(m["u_expanded_db"], ".2f"), f(m["last_pct_field"], ".1f"), f(m["coverage_24h"], ".0%"),
+                  "mains" if m["battery_pct"] is None else f"{m['battery_pct']:.0f} %", f(m["temperature_degc"], ".1f"),
+                  f(m["drift_ppm"], "+.0f"), f"{m['certificate_due']} ({m['certificate_days_left']} d)",
+                  ", ".join(a["rule"] for a in m["active_alarms"]) or "none")
+    con.print(t)
+    for ev in s["recent_events"]:
+        con.print(f"  {ev['t_utc']} {ev['severity']:7s} {escape(ev['kind'])}: {escape(ev['message'])}")
+    con.print(SAFETY_LINE)
+    return 0
