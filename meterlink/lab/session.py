@@ -172,9 +172,15 @@ def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
     due = _date(where, cal, "due", cal_date + _dt.timedelta(days=365))
     if due <= cal_date:
         raise LabError(f"{where}: due date {due} is not after calibration date {cal_date}")
-    method = FieldMethod(kind=_str(where, m, "kind", "tem-cell"), impedance_ohm=_num(where, m, "impedance_ohm", 50.0),
-                         spacing_m=_num(where, m, "spacing_m", 0.15), gain_dbi=_num(where, m, "gain_dbi", 0.0),
-                         distance_m=_num(where, m, "distance_m", 1.0), description=str(m.get("description", "")))
+    try:
+        method = FieldMethod(kind=_str(where, m, "kind", "tem-cell"),
+                             impedance_ohm=_num(where, m, "impedance_ohm", 50.0),
+                             spacing_m=_num(where, m, "spacing_m", 0.15), gain_dbi=_num(where, m, "gain_dbi", 0.0),
+                             distance_m=_num(where, m, "distance_m", 1.0), description=str(m.get("description", "")))
+    except LabError:
+        raise
+    except MeterlinkError as exc:
+        raise LabError(f"{where}: {exc}") from None
     budget = d.get("budget", {})
     if not isinstance(budget, dict) or any(not isinstance(v, (int, float)) or isinstance(v, bool)
                                            for v in budget.values()):
