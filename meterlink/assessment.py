@@ -169,8 +169,10 @@ def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, b
 def assess_spectrum(series, standard: str, tier: str, rule: str, *, near_field: bool = False) -> Assessment:
     """Assess frequency-selective (dipole) sweeps: per-frequency power-domain mean, standard's sum rule."""
     r = get_rule(rule)
-    p = np.where(np.isfinite(series.e_v_per_m), series.e_v_per_m, 0.0) ** 2
-    seen = np.isfinite(series.e_v_per_m).any(axis=0)
+    full = series.orientations == series.orientations.max() if series.orientations.size else []
+    e_sw = series.e_v_per_m[full]          # only sweeps that saw every orientation the receiver uses
+    p = np.where(np.isfinite(e_sw), e_sw, 0.0) ** 2
+    seen = np.isfinite(e_sw).any(axis=0)
     if not seen.any():
         raise MeterlinkError(f"session {series.session_id} has no emitter above the receiver's floor")
     e_mean = np.sqrt(p.mean(axis=0))[seen]
@@ -179,37 +181,34 @@ def assess_spectrum(series, standard: str, tier: str, rule: str, *, near_field: 
     total = float(mf.total)
     u = float(np.max(series.u_expanded_db[seen]))
     verdict = decide_ratio(total, u, r)
-    terms = {}
-    for term in mf.terms:
-        terms.setdefault(term.index, term) if hasattr(term, "index") else None
-    emitters = []
-    for i, f in enumerate(freqs):
-        emitters.append(Emitter(float(f), float(e_mean[i]), float(mf.emitter_ratio[i]),
-                                _term_quantity(mf, i), float(mf.share[i])))
+    emitters = [Emitter(float(f), float(e_mean[i]), float(mf.emitter_ratio[i]), _term_quantity(mf, float(f)),
+                        float(mf.share[i])) for i, f in enumerate(freqs)]
     emitters.sort(key=lambda em: -em.share)
     notes = list(series.warnings) + list(mf.messages)
-    ipk = int(np.nanargmax(np.nanmax(np.nan_to_num(series.e_v_per_m, nan=0.0), axis=0)))
-    peak = float(np.nanmax(series.e_v_per_m))
+    peak = float(np.sqrt(p.sum(axis=1)).max())      # largest total (all emitters) of one sweep
     window = None
     try:
         window = reference_level(standard, tier, float(freqs[np.argmax(e_mean)]), WHOLE_BODY).averaging_time_s
     except MeterlinkError:
         pass
-    span = float(np.nanmax(series.t_utc) - np.nanmin(series.t_utc)) if series.t_utc.size > 1 else 0.0
+    t_sw = series.t_utc[full]
+    span = float(np.nanmax(t_sw) - np.nanmin(t_sw)) if t_sw.size > 1 else 0.0
     complete = bool(window and span >= window)
     if not complete:
         notes.append("sweeps cover less than the averaging time: the mean over the recorded sweeps is judged")
     rms_total = float(np.sqrt(np.sum(e_mean**2)))
     return Assessment(series.session_id, standard, tier, _tier_label(standard, tier, freqs), r.name,
-                      "frequency-selective", f"{freqs.size} emitters found by the receiver", window, peak,
+                      "frequency-selective", f"{freqs.size} emitters in {int(np.count_nonzero(full))} sweeps",
+                      window, peak,
                       None, rms_total, float(np.nanmax(series.t_utc)) if series.t_utc.size else None, complete,
                       min(1.0, span / window) if window else 0.0, None, False, total, u, verdict, mf.source,
-                      mf.status, series.certificate_name, int(series.t_utc.size), tuple(emitters), tuple(notes))
+                      mf.status, series.certificate_name, int(np.count_nonzero(full)), tuple(emitters), tuple(notes))
 
 
-def _term_quantity(mf, i: int) -> str:
+def _term_quantity(mf, freq_hz: float) -> str:
+    """The ratio an emitter's term uses in the governing sum, e.g. 'S/S_L'."""
     for term in mf.terms:
-        if getattr(term, "emitter", None) == i:
+        if term.freq_hz == freq_hz and (term.effect, term.group) == mf.governing:
             return term.quantity
     return ""
 

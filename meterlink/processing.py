@@ -179,3 +179,42 @@ def spectrum_series(store: Store, session_id: int, calibration_id: int | None = 
     e_total = np.where(seen, np.sqrt(p), np.nan)
     return SpectrumSeries(session_id, cal["id"], cal["certificate_name"], freqs, t, e_total, u, flags,
                           np.array([len(o) for o in orient]), _warnings_of(cal))
+
+
+def certificate_for_session(store: Store, session_id: int):
+    """The packaged certificate whose serial matches the session's probe, or None."""
+    from meterlink.certificate import packaged_certificates
+
+    s = store.session(session_id)
+    serial = (s.get("device_probe_serial") or "").strip()
+    if not serial:
+        return None
+    for name in packaged_certificates():
+        cert = load_certificate(name)
+        if cert.serial == serial:
+            return cert
+    return None
+
+
+def calibrated_series(store: Store, session_id: int, certificate=None, *, freq_hz=None, band=None,
+                      near_field: bool = False):
+    """A session's calibrated series: with `certificate` apply it anew; else reuse the latest
+    calibration; else apply the packaged certificate matching the probe serial."""
+    if certificate is not None:
+        return apply_certificate(store, session_id, certificate, freq_hz=freq_hz, band=band, near_field=near_field)
+    is_dipole = session_sensor_kind(store, session_id) == SensorKind.DIPOLE_RX
+    if store.calibrations(session_id) and freq_hz is None and band is None and not near_field:
+        return spectrum_series(store, session_id) if is_dipole else field_series(store, session_id)
+    cert = certificate_for_session(store, session_id)
+    if cert is None:
+        raise MeterlinkError(f"session {session_id} has no calibration and no packaged certificate matches its "
+                             f"probe: give --certificate FILE")
+    return apply_certificate(store, session_id, cert, freq_hz=freq_hz, band=band, near_field=near_field)
+
+
+def latest_session(store: Store, kinds: tuple[str, ...] | None = None) -> int:
+    """Id of the newest session (of the given kinds); MeterlinkError if there is none."""
+    rows = [s for s in store.sessions() if kinds is None or s["kind"] in kinds]
+    if not rows:
+        raise MeterlinkError(f"no sessions in {str(store.path)!r}")
+    return int(rows[-1]["id"])

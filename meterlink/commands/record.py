@@ -22,6 +22,9 @@ def add_arguments(parser) -> None:
     group.add_argument("--freq", metavar="F", help="frequency the operator declares for a broadband probe, e.g. 900MHz")
     group.add_argument("--band", metavar="LO:HI", help="band the operator declares, e.g. 800MHz:1GHz")
     parser.add_argument("--notes", metavar="TEXT", default="", help="free text stored with the session")
+    parser.add_argument("--certificate", metavar="FILE",
+                        help="certificate to calibrate the readings with afterwards (default: the packaged "
+                             "certificate matching the probe serial, if any); raw counts are stored either way")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
 
 
@@ -77,11 +80,55 @@ def run(args) -> int:
         rec = Recorder(store, args.port, interval_ms=interval, duration_s=duration, freq_hz=freq, band_hz=band,
                        notes=args.notes)
         summary = rec.run()
+        field, field_error = None, None
+        if summary.readings or summary.spectra:
+            from meterlink.processing import calibrated_series
+
+            try:
+                field = calibrated_series(store, summary.session_id, args.certificate, freq_hz=freq, band=band)
+            except MeterlinkError as exc:     # the raw record is safe; say why no field values
+                field_error = str(exc)
     if args.json:
-        print(json.dumps(summary.as_dict(), indent=2, sort_keys=True))
+        out = summary.as_dict()
+        out["calibrated"] = _field_dict(field) if field is not None else {"error": field_error}
+        print(json.dumps(out, indent=2, sort_keys=True))
     else:
         print_summary(summary)
+        from rich.console import Console
+
+        from meterlink.processing import FieldSeries
+        from meterlink.render import field_summary_renderable
+
+        if isinstance(field, FieldSeries):
+            Console().print(field_summary_renderable(field))
+        elif field is not None:
+            Console().print(f"{field.t_utc.size} sweeps calibrated with {field.certificate_name}; "
+                            f"see 'meterlink assess' for the emitters")
+        elif field_error:
+            Console(stderr=True).print(f"[yellow]no calibrated values:[/] {field_error}")
     return 0
+
+
+def _field_dict(series) -> dict:
+    """JSON summary of a calibrated series (probe: E/H/S statistics; dipole: sweeps and frequencies)."""
+    import numpy as np
+
+    from meterlink.processing import FieldSeries
+
+    d = {"certificate": series.certificate_name, "calibration_id": series.calibration_id,
+         "warnings": list(series.warnings)}
+    e = np.asarray(series.e_v_per_m, dtype=float)
+    ok = np.isfinite(e)
+    if isinstance(series, FieldSeries):
+        d.update(values=int(ok.sum()), e_min_v_per_m=float(e[ok].min()) if ok.any() else None,
+                 e_max_v_per_m=float(e[ok].max()) if ok.any() else None,
+                 e_rms_v_per_m=float(np.sqrt(np.mean(e[ok] ** 2))) if ok.any() else None,
+                 h_max_a_per_m=float(np.nanmax(series.h_a_per_m)) if np.isfinite(series.h_a_per_m).any() else None,
+                 s_max_w_per_m2=float(np.nanmax(series.s_w_per_m2)) if np.isfinite(series.s_w_per_m2).any() else None,
+                 u_expanded_db=float(np.nanmax(series.u_expanded_db)) if ok.any() else None, k=2)
+    else:
+        d.update(sweeps=int(series.t_utc.size), freq_hz=[float(f) for f in series.freq_hz])
+    return d
 
 
 def summary_table(s):

@@ -1,0 +1,87 @@
+"""``meterlink assess``: judge a recorded session against a standard, with its uncertainty."""
+
+from __future__ import annotations
+
+HELP = "assess a recorded session: time-averaged exposure, percent of the reference level, verdict"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("--db", metavar="FILE", default="meterlink.db", help="database (default meterlink.db)")
+    parser.add_argument("--session", metavar="ID", type=int, help="session id (default: the newest)")
+    parser.add_argument("--standard", metavar="NAME", required=True,
+                        help="reference-level set, e.g. icnirp-2020, fcc-1310 (see 'meterlink limits')")
+    parser.add_argument("--tier", choices=("public", "occupational"), required=True)
+    parser.add_argument("--rule", metavar="NAME", default="guarded",
+                        help="decision rule, recorded before the assessment: simple, guarded (default), conservative")
+    parser.add_argument("--certificate", metavar="FILE", help="apply this certificate first (a new calibration)")
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument("--freq", metavar="F", help="frequency of a broadband measurement, e.g. 936MHz")
+    group.add_argument("--band", metavar="LO:HI", help="band of a broadband measurement, e.g. 790MHz:960MHz")
+    parser.add_argument("--near-field", action="store_true",
+                        help="the probe was in the near field: E alone is insufficient, no S is derived")
+    parser.add_argument("--json", action="store_true", help="print the result as JSON")
+
+
+def run(args) -> int:
+    import json
+
+    from meterlink.assessment import assess_field, assess_spectrum
+    from meterlink.commands.record import parse_band
+    from meterlink.errors import MeterlinkError
+    from meterlink.limits import standards
+    from meterlink.processing import FieldSeries, calibrated_series, latest_session
+    from meterlink.storage import Store
+    from meterlink.units import parse_frequency_hz
+    from meterlink.verdict import get_rule
+
+    if args.standard not in standards():
+        raise MeterlinkError(f"unknown standard {args.standard!r} (known: {', '.join(standards())})")
+    rule = get_rule(args.rule)
+    freq = None
+    if args.freq:
+        try:
+            freq = parse_frequency_hz(args.freq)
+        except ValueError as exc:
+            raise MeterlinkError(f"--freq: {exc}") from None
+    band = parse_band(args.band) if args.band else None
+    from pathlib import Path
+
+    if not Path(args.db).is_file():
+        raise MeterlinkError(f"no database at {args.db!r}")
+    with Store(args.db) as store:
+        sid = args.session if args.session is not None else latest_session(store)
+        session = store.session(sid)
+        # the rule is recorded before anything is computed, so it cannot be chosen after the fact
+        store.add_event(sid, "assessment_rule", "info", f"decision rule {rule.name} chosen for {args.standard} "
+                        f"{args.tier}", rule=rule.name, standard=args.standard, tier=args.tier)
+        series = calibrated_series(store, sid, args.certificate, freq_hz=freq, band=band, near_field=args.near_field)
+        if isinstance(series, FieldSeries):
+            from meterlink.certificate import parse_certificate
+
+            cal = store.calibrations(sid)[-1]
+            cert = parse_certificate(cal["certificate_text"], "stored calibration")
+            result = assess_field(series, args.standard, args.tier, rule.name,
+                                  freq_hz=freq or cal.get("freq_hz") or session.get("freq_hz"),
+                                  band=band or _band(cal) or _band(session), fallback_range=cert.freq_range_hz,
+                                  near_field=args.near_field, has_h=cert.quantity == "H")
+        else:
+            result = assess_spectrum(series, args.standard, args.tier, rule.name, near_field=args.near_field)
+        store.add_event(sid, "assessment", "info", result.verdict.statement, outcome=result.verdict.outcome,
+                        standard=args.standard, tier=args.tier, rule=rule.name,
+                        exposure_ratio_power=result.total_exposure_ratio, u_expanded_db=result.u_expanded_db)
+    if args.json:
+        from meterlink.render import assessment_dict
+
+        print(json.dumps(assessment_dict(result), indent=2, default=float))
+    else:
+        from rich.console import Console
+
+        from meterlink.render import assessment_renderable
+
+        Console().print(assessment_renderable(result))
+    return 0
+
+
+def _band(row):
+    lo, hi = row.get("band_lo_hz"), row.get("band_hi_hz")
+    return (lo, hi) if lo and hi else None

@@ -1,0 +1,133 @@
+"""Pure rendering of results for the terminal (rich renderables) and for scripts (plain dicts).
+
+Nothing here prints; callers hand the renderables to a Console. Device and user text is escaped.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+
+from rich.console import Group
+from rich.markup import escape
+from rich.panel import Panel
+from rich.table import Table
+from rich.text import Text
+
+from meterlink.cli import SAFETY_LINE
+from meterlink.units import format_frequency
+
+#: Our own palette for outcomes: the word is always printed too, colour is never the only cue.
+OUTCOME_STYLE = {"compliant": "bold white on dark_green", "not compliant": "bold white on red3",
+                 "undecided": "bold black on gold1"}
+
+
+def utc_text(t_s: float | None) -> str:
+    """ISO-like UTC time for a POSIX timestamp, or a dash."""
+    if t_s is None or not math.isfinite(t_s):
+        return "-"
+    return _dt.datetime.fromtimestamp(t_s, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+
+
+def bar(fraction: float, width: int = 30) -> Text:
+    """A horizontal gauge of a fraction of a limit (1.0 = the reference level), marked at 100 %."""
+    f = max(0.0, fraction) if math.isfinite(fraction) else 0.0
+    filled = min(width, int(round(f * width)))
+    style = "green" if f < 0.5 else ("yellow" if f < 1.0 else "red")
+    t = Text("▕")
+    t.append("█" * filled, style=style)
+    t.append("·" * (width - filled), style="grey50")
+    t.append("▏" + ("▶" if f > 1.0 else " "))
+    return t
+
+
+def assessment_renderable(a) -> Panel:
+    """A panel with the assessment's figures, both percent terms, the verdict and the cautions."""
+    t = Table(show_header=False, box=None, pad_edge=False)
+    t.add_column(style="bold cyan", no_wrap=True)
+    t.add_column()
+    t.add_row("standard", escape(f"{a.standard}, {a.tier_label} ({a.tier})"))
+    t.add_row("source", escape(f"{a.source} [{a.status}]"))
+    t.add_row("mode", escape(f"{a.mode}: {a.frequency_note}"))
+    t.add_row("certificate", escape(a.certificate))
+    if a.limit_v_per_m:
+        t.add_row("reference level", f"{a.limit_v_per_m:.4g} V/m" + (" (derived from S)" if a.limit_derived else ""))
+    if a.window_s:
+        t.add_row("averaging time", f"{a.window_s / 60:g} min")
+    t.add_row("peak", f"{a.peak_v_per_m:.4g} V/m at {utc_text(a.t_peak_utc)}" if a.t_peak_utc else f"{a.peak_v_per_m:.4g} V/m")
+    label = "max running average" if a.value_complete else "record mean (window incomplete)"
+    t.add_row(label, f"{a.value_v_per_m:.4g} V/m (coverage {100 * a.coverage:.0f} %)")
+    t.add_row("expanded uncertainty", f"U = {a.u_expanded_db:.2f} dB (k = 2)")
+    t.add_row("exposure, field terms", Text.assemble(bar(a.percent_field / 100), f" {a.percent_field:.1f} % of the field level"))
+    t.add_row("exposure, power terms", Text.assemble(bar(a.percent_power / 100), f" {a.percent_power:.1f} % of the power-density level"))
+    parts = [t]
+    if a.emitters:
+        et = Table(title="emitters (largest share first)", title_justify="left")
+        et.add_column("frequency", justify="right")
+        et.add_column("E V/m", justify="right")
+        et.add_column("term", justify="right")
+        et.add_column("uses")
+        et.add_column("share")
+        for em in a.emitters[:12]:
+            et.add_row(format_frequency(em.freq_hz), f"{em.e_v_per_m:.3g}", f"{em.term_ratio:.3g}", escape(em.quantity),
+                       Text.assemble(bar(em.share, 20), f" {100 * em.share:.1f} %"))
+        parts.append(et)
+    outcome = Text(f" {a.verdict.outcome.upper()} ", style=OUTCOME_STYLE.get(a.verdict.outcome, "bold"))
+    parts.append(Text.assemble("verdict ", outcome, f"  rule: {a.rule}"))
+    parts.append(Text(a.verdict.statement))
+    for n in a.notes:
+        parts.append(Text("note: " + n, style="yellow"))
+    parts.append(Text(SAFETY_LINE, style="italic"))
+    return Panel(Group(*parts), title=f"assessment of session {a.session_id}", title_align="left")
+
+
+def assessment_dict(a) -> dict:
+    """JSON-ready form of an Assessment; every number labelled with its quantity and unit."""
+    return {
+        "session_id": a.session_id, "standard": a.standard, "tier": a.tier, "tier_label": a.tier_label,
+        "decision_rule": a.rule, "mode": a.mode, "frequency_note": a.frequency_note,
+        "source": a.source, "status": a.status, "certificate": a.certificate,
+        "reference_level_e_v_per_m": a.limit_v_per_m, "reference_level_derived": a.limit_derived,
+        "averaging_time_s": a.window_s, "peak_e_v_per_m": a.peak_v_per_m, "t_peak_utc": a.t_peak_utc,
+        "averaged_e_v_per_m": a.value_v_per_m, "averaged_window_complete": a.value_complete,
+        "coverage": a.coverage, "t_averaged_end_utc": a.t_value_end_utc,
+        "exposure_ratio_power": a.total_exposure_ratio, "percent_of_field_level": a.percent_field,
+        "percent_of_power_density_level": a.percent_power, "u_expanded_db": a.u_expanded_db, "k": 2,
+        "outcome": a.verdict.outcome, "statement": a.verdict.statement,
+        "emitters": [{"freq_hz": e.freq_hz, "e_v_per_m": e.e_v_per_m, "term_ratio": e.term_ratio,
+                      "quantity": e.quantity, "share": e.share} for e in a.emitters],
+        "notes": list(a.notes), "caution": SAFETY_LINE,
+    }
+
+
+def field_summary_renderable(series, title: str = "calibrated field") -> Table:
+    """Min / mean (power domain) / max of a calibrated probe series with its uncertainty."""
+    import numpy as np
+
+    e = np.asarray(series.e_v_per_m, dtype=float)
+    ok = np.isfinite(e)
+    t = Table(title=title, show_header=True)
+    for col in ("quantity", "min", "rms mean", "max", "unit"):
+        t.add_column(col, justify="right" if col not in ("quantity", "unit") else "left")
+    if ok.any():
+        def row(name, v, unit):
+            v = np.asarray(v, dtype=float)[ok]
+            if not np.isfinite(v).any():
+                t.add_row(name, "-", "-", "-", unit + " (not derived)")
+                return
+            t.add_row(name, f"{np.nanmin(v):.4g}", f"{math.sqrt(np.nanmean(v * v)):.4g}", f"{np.nanmax(v):.4g}", unit)
+
+        row("E", e, "V/m")
+        row("H (plane-wave equiv.)", series.h_a_per_m, "A/m")
+        s = np.asarray(series.s_w_per_m2, dtype=float)[ok]
+        if np.isfinite(s).any():
+            t.add_row("S (plane-wave equiv.)", f"{np.nanmin(s):.4g}", f"{np.nanmean(s):.4g}", f"{np.nanmax(s):.4g}", "W/m²")
+    u = np.asarray(series.u_expanded_db, dtype=float)
+    u = u[np.isfinite(u)]
+    if u.size:
+        from meterlink.units import db_to_ratio_field
+        t.caption = (f"{int(ok.sum())} values; expanded uncertainty U = {u.max():.2f} dB (k = 2), "
+                     f"+{100 * (float(db_to_ratio_field(u.max())) - 1):.0f} % / "
+                     f"-{100 * (1 - float(db_to_ratio_field(-u.max()))):.0f} % in field; "
+                     f"certificate {escape(series.certificate_name)}")
+    return t
