@@ -1,0 +1,519 @@
+"""Conformance check of a connected meter against docs/protocol.md: the items as data, results with evidence.
+
+observe() drives one session over a Link (identify, read settings, stream, stop, send bad commands,
+ping, send a garbage burst) and keeps every frame with its arrival time; evaluate() turns those
+observations into one Result per item, each with the numbers behind it. Thresholds for the
+interval are this project's acceptance choice, not figures from the protocol.
+"""
+
+from __future__ import annotations
+
+import struct
+import time
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from meterlink.clock import HALF_TICK, TickUnwrapper
+from meterlink.commander import Commander, DeviceFault, NoReply, Received
+from meterlink.errors import MeterlinkError
+from meterlink.protocol import (MAX_PAYLOAD, PROTOCOL_MAJOR, STATUS_STREAMING, U32_MOD, Boot, Fault, FaultCode,
+                                FrameType, Ident, ReaderStats, SensorKind, SettingKey, SettingPut, Status,
+                                parse_payload, seq_delta)
+
+STATUS_MAX_GAP_MS = 10_000  # protocol: unsolicited STATUS at least every 10 s of device time while streaming
+INTERVAL_MEAN_TOL = 0.005  # our acceptance: mean reading step within 0.5 % of the interval asked for
+JITTER_MIN_MS, JITTER_REL = 2.0, 0.01  # our acceptance: rms jitter at most max(2 ms, 1 % of the interval)
+MIN_DURATION_S = 12.0  # the stream must outlast one 10 s STATUS period
+RESET_CAUSES = {0, 1, 2, 3, 255}
+RESTART_SEQ_MAX = 64
+_READINGS = (FrameType.AXES, FrameType.SPECTRUM)
+_NUMBER_KEYS = {SettingKey.INTERVAL_MS, SettingKey.DEVICE_AVERAGING, SettingKey.CLOCK_UTC}
+
+
+@dataclass(frozen=True)
+class Item:
+    """One conformance item: a key, a short title and the rule checked."""
+
+    key: str
+    title: str
+    rule: str
+
+
+ITEMS: tuple[Item, ...] = (
+    Item("ident", "identification", "IDENT: sensor kind 1-3, texts printable ASCII (0..32 bytes), model and "
+         "serial not empty, 0 < min_interval <= max_interval"),
+    Item("version", "protocol version", f"IDENT proto_major and every frame's VER equal {PROTOCOL_MAJOR}"),
+    Item("framing", "CRC and sequence", "no CRC, length or garbage errors; SEQ +1 per frame within a boot"),
+    Item("interval", "sample interval", "reading TICK steps: mean within 0.5 % of the interval, rms jitter "
+         "at most max(2 ms, 1 %)"),
+    Item("start_stop", "start and stop", "readings follow START's ACK; no reading sent after STOP's ACK"),
+    Item("status", "status frames", "STATUS on request; unsolicited at least every 10 s of device time "
+         "while streaming"),
+    Item("faults", "bad commands", "malformed or unknown commands get FAULT with the documented code, "
+         "cmd_type and cmd_seq"),
+    Item("ping", "PING and PONG", "PONG carries the PING bytes unchanged (0, 1, 32 and 240 bytes)"),
+    Item("settings", "settings", "SETTING_GET of keys 1-6 answers SETTING with the key and value type "
+         "of the table, consistent with IDENT and STATUS"),
+    Item("boot", "BOOT", "a BOOT is seq 0 with a documented reset cause and IDENT's boot_count; "
+         "no restart without BOOT"),
+    Item("garbage", "recovery after garbage", "after a burst of random bytes the device still answers WHO"),
+)
+
+
+@dataclass(frozen=True)
+class Probe:
+    """A bad command sent to provoke a FAULT, and what came back."""
+
+    name: str
+    ftype: int
+    seq: int
+    expected: int
+    reply: Fault | None
+    other: str = ""  # what came instead of a FAULT, if anything
+
+
+@dataclass
+class Observations:
+    """Everything seen in one session; evaluate() reads only this."""
+
+    frames: list[Received] = field(default_factory=list)
+    reader: ReaderStats = field(default_factory=ReaderStats)
+    wait_boot_s: float = 0.0
+    errors: dict[str, str] = field(default_factory=dict)
+    ident: Ident | None = None
+    ident_index: int = -1
+    status_idle: Status | None = None
+    settings: dict[int, object] = field(default_factory=dict)
+    interval_ms: int = 0
+    start_ack: Received | None = None
+    stop_ack: Received | None = None
+    stream_status: Received | None = None
+    stop_wait_ms: int = 0
+    stop_end: int = 0
+    probes: list[Probe] = field(default_factory=list)
+    pings: list[tuple[bytes, bytes | None]] = field(default_factory=list)
+    garbage_bytes: int = 0
+    garbage_reply: Ident | None = None
+    garbage_s: float = 0.0
+
+
+@dataclass(frozen=True)
+class Result:
+    """The outcome of one item: status 'pass', 'fail' or 'skip', and the evidence for it."""
+
+    key: str
+    title: str
+    status: str
+    evidence: str
+
+
+@dataclass(frozen=True)
+class Report:
+    port: str
+    results: tuple[Result, ...]
+    ident: dict | None
+    elapsed_s: float
+
+    @property
+    def passed(self) -> bool:
+        return all(r.status != "fail" for r in self.results)
+
+    @property
+    def failed(self) -> set[str]:
+        return {r.key for r in self.results if r.status == "fail"}
+
+    def to_dict(self) -> dict:
+        return {"port": self.port, "passed": self.passed, "elapsed_s": round(self.elapsed_s, 3),
+                "ident": self.ident, "results": [asdict(r) for r in self.results]}
+
+
+# ------------------------------------------------------------------------------- observing
+def _index(c: Commander, rx: Received) -> int:
+    return next(i for i in range(len(c.frames) - 1, -1, -1) if c.frames[i] is rx)
+
+
+def _after(ref_tick: int, tick: int) -> int:
+    """Device milliseconds from ref_tick to tick (negative if tick is earlier)."""
+    d = (tick - ref_tick) % U32_MOD
+    return d - U32_MOD if d >= HALF_TICK else d
+
+
+def _phase(obs: Observations, name: str, fn) -> None:
+    try:
+        fn()
+    except (MeterlinkError, ValueError) as exc:  # NoReply, DeviceFault, ProtocolError, LinkError
+        obs.errors[name] = str(exc)
+
+
+def fault_probes(ident: Ident | None) -> list[tuple[str, int, bytes, int, int]]:
+    """(name, frame type, payload, VER, expected fault code) of each bad command sent."""
+    probes = [
+        ("unknown type 0x3E", 0x3E, b"", PROTOCOL_MAJOR, FaultCode.UNKNOWN_TYPE),
+        ("SET_INTERVAL of 2 bytes", FrameType.SET_INTERVAL, b"\x10\x27", PROTOCOL_MAJOR, FaultCode.BAD_LENGTH),
+        ("SETTING_GET key 250", FrameType.SETTING_GET, b"\xfa", PROTOCOL_MAJOR, FaultCode.UNKNOWN_KEY),
+        ("SETTING_PUT clock_utc", FrameType.SETTING_PUT, SettingPut(SettingKey.CLOCK_UTC, 0).pack(),
+         PROTOCOL_MAJOR, FaultCode.READ_ONLY),
+        ("SETTING_PUT value type 9", FrameType.SETTING_PUT, bytes([SettingKey.ASSET_TAG, 9]), PROTOCOL_MAJOR,
+         FaultCode.BAD_FRAME),
+        ("CLOCK_SET 1000 ms", FrameType.CLOCK_SET, struct.pack("<IH", 0, 1000), PROTOCOL_MAJOR, FaultCode.BAD_VALUE),
+        ("WHO with VER 2", FrameType.WHO, b"", PROTOCOL_MAJOR + 1, FaultCode.BAD_VERSION),
+    ]
+    if ident is not None and ident.max_interval_ms < U32_MOD - 1:
+        probes.append((f"SET_INTERVAL {ident.max_interval_ms + 1} ms", FrameType.SET_INTERVAL,
+                       struct.pack("<I", ident.max_interval_ms + 1), PROTOCOL_MAJOR, FaultCode.BAD_VALUE))
+    return probes
+
+
+def _probe(c: Commander, name: str, ftype: int, payload: bytes, version: int, expected: int) -> Probe:
+    """Send a bad command (twice at most) and take the first ACK or command FAULT that follows."""
+    def reply(f) -> bool:
+        if f.type == FrameType.FAULT:
+            return len(f.payload) >= 6 and f.payload[0] != FaultCode.SENSOR
+        return f.type in (FrameType.ACK, FrameType.IDENT)
+
+    seq = -1
+    for _ in range(2):
+        start = len(c.frames)
+        seq = c.send(ftype, payload, version=version)
+        rx = c.wait_for(reply, c.reply_timeout_s, start)
+        if rx is None:
+            continue
+        try:
+            msg = parse_payload(rx.frame)
+        except MeterlinkError as exc:
+            return Probe(name, ftype, seq, expected, None, f"malformed reply ({exc})")
+        if isinstance(msg, Fault):
+            return Probe(name, ftype, seq, expected, msg)
+        return Probe(name, ftype, seq, expected, None, f"{FrameType(rx.frame.type).name} instead of FAULT")
+    return Probe(name, ftype, seq, expected, None, "no reply (silence)")
+
+
+def observe(c: Commander, *, duration_s: float = MIN_DURATION_S, interval_ms: int = 200,
+            wait_boot_s: float = 0.0, rng: np.random.Generator | None = None) -> Observations:
+    """Run the check session over an open Commander and return what was seen."""
+    rng = rng if rng is not None else np.random.default_rng(0)
+    obs = Observations(frames=c.frames, reader=c.reader.stats, wait_boot_s=wait_boot_s)
+    if wait_boot_s > 0:
+        c.wait_for(lambda f: f.type == FrameType.BOOT, wait_boot_s)
+    c.drain(0.05)
+
+    def ident():
+        obs.ident = c.who()
+        obs.ident_index = len(c.frames) - 1
+        obs.status_idle = c.status()
+        if obs.status_idle.flags & STATUS_STREAMING:
+            c.command(FrameType.STOP)
+    _phase(obs, "ident", ident)
+
+    for key in SettingKey:
+        try:
+            obs.settings[key] = c.get_setting(key)
+        except DeviceFault as exc:
+            obs.settings[key] = exc.fault
+        except MeterlinkError as exc:
+            obs.settings[key] = str(exc)
+
+    lo, hi = (obs.ident.min_interval_ms, obs.ident.max_interval_ms) if obs.ident else (interval_ms, interval_ms)
+    obs.interval_ms = iv = int(min(max(interval_ms, lo), hi)) or 1
+
+    def stream():
+        c.set_interval(iv)
+        obs.start_ack = start = c.command(FrameType.START)
+        obs.stream_status = c.request(FrameType.STATUS_QUERY)
+        dur_ms = int(duration_s * 1000)
+        got = c.wait_for(lambda f: 0 <= _after(start.frame.tick_ms, f.tick_ms) < HALF_TICK // 2
+                         and _after(start.frame.tick_ms, f.tick_ms) >= dur_ms, 2 * duration_s + 10,
+                         _index(c, start))
+        if got is None:
+            raise NoReply(f"device time did not reach {duration_s:g} s after START within {2 * duration_s + 10:g} s")
+        obs.stop_ack = stop = c.command(FrameType.STOP)
+        want_ms = max(3 * iv, 1000)
+        deadline = time.monotonic() + want_ms / 1000 * 2 + 5
+        while time.monotonic() < deadline:
+            obs.stop_wait_ms = _after(stop.frame.tick_ms, c.ping(b"").frame.tick_ms)
+            if obs.stop_wait_ms >= want_ms:
+                break
+            c.pump(0.05)
+        obs.stop_end = len(c.frames)
+    _phase(obs, "stream", stream)
+
+    for args in fault_probes(obs.ident):
+        obs.probes.append(_probe(c, *args))
+
+    for n in (0, 1, 32, MAX_PAYLOAD):
+        data = rng.integers(0, 256, n, dtype=np.uint8).tobytes()
+        try:
+            obs.pings.append((data, c.ping(data).frame.payload))
+        except MeterlinkError:
+            obs.pings.append((data, None))
+
+    burst = rng.integers(0, 256, 64, dtype=np.uint8).tobytes() + bytes(255)  # zeros end any false frame
+    obs.garbage_bytes = len(burst)
+    t0 = time.monotonic()
+    c.send_raw(burst)
+    try:
+        obs.garbage_reply = c.who()
+    except MeterlinkError as exc:
+        obs.errors["garbage"] = str(exc)
+    obs.garbage_s = time.monotonic() - t0
+    c.drain(0.02)
+    return obs
+
+
+# ------------------------------------------------------------------------------- evaluating
+def _printable(s: str) -> bool:
+    return all(0x20 <= ord(ch) <= 0x7E for ch in s)
+
+
+def _eval_ident(o: Observations):
+    i = o.ident
+    if i is None:
+        return False, f"no IDENT: {o.errors.get('ident', 'WHO not answered')}"
+    bad = []
+    if i.sensor_kind not in SensorKind._value2member_map_:
+        bad.append(f"unknown sensor kind {i.sensor_kind}")
+    for name in ("model", "serial", "probe_serial", "cert_ref"):
+        if not _printable(getattr(i, name)):
+            bad.append(f"{name} not printable ASCII")
+    for name in ("model", "serial"):
+        if not getattr(i, name):
+            bad.append(f"{name} empty")
+    if not 0 < i.min_interval_ms <= i.max_interval_ms:
+        bad.append(f"interval range {i.min_interval_ms}..{i.max_interval_ms} ms")
+    lens = "/".join(str(len(getattr(i, n))) for n in ("model", "serial", "probe_serial", "cert_ref"))
+    ok = f"kind {i.sensor_kind} ({SensorKind(i.sensor_kind).name})" if not bad or "unknown sensor" not in bad[0] else ""
+    if bad:
+        return False, "; ".join(bad)
+    return True, f"{ok}, text lengths {lens} bytes, intervals {i.min_interval_ms}..{i.max_interval_ms} ms"
+
+
+def _eval_version(o: Observations):
+    vers = {}
+    for r in o.frames:
+        vers[r.frame.version] = vers.get(r.frame.version, 0) + 1
+    others = {v: n for v, n in vers.items() if v != PROTOCOL_MAJOR}
+    if o.ident is None:
+        return False, "no IDENT to read the version from"
+    ok = o.ident.proto_major == PROTOCOL_MAJOR and not others
+    ev = f"IDENT {o.ident.proto_major}.{o.ident.proto_minor}; {sum(vers.values())} frames"
+    ev += f", VER {others} seen" if others else f" all VER {PROTOCOL_MAJOR}"
+    return ok, ev
+
+
+def _segments(frames: list[Received]) -> tuple[list[list[Received]], int]:
+    """Split frames at BOOT or at a restart without BOOT; also count the latter."""
+    segs: list[list[Received]] = [[]]
+    silent = 0
+    for r in frames:
+        prev = segs[-1][-1].frame if segs[-1] else None
+        if r.frame.type == FrameType.BOOT:
+            segs.append([r])
+            continue
+        if prev is not None and seq_delta(prev.seq, r.frame.seq) != 1 and r.frame.seq < RESTART_SEQ_MAX \
+                and _after(prev.tick_ms, r.frame.tick_ms) < 0:
+            silent += 1
+            segs.append([r])
+            continue
+        segs[-1].append(r)
+    return [s for s in segs if s], silent
+
+
+def _eval_framing(o: Observations):
+    segs, _ = _segments(o.frames)
+    steps: dict[int, int] = {}
+    for s in segs:
+        for a, b in zip(s, s[1:]):
+            d = seq_delta(a.frame.seq, b.frame.seq)
+            steps[d] = steps.get(d, 0) + 1
+    st = o.reader
+    n_steps = sum(steps.values())
+    ok = st.crc_errors == 0 and st.length_errors == 0 and st.garbage_bytes == 0 and set(steps) <= {1} and n_steps > 0
+    seq = f"seq +1 each time ({n_steps} steps)" if set(steps) <= {1} else \
+        "seq steps " + ", ".join(f"+{d} x{n}" if d < HALF_TICK else f"-{U32_MOD - d} x{n}" for d, n in sorted(steps.items()))
+    return ok, (f"{len(o.frames)} frames, {st.crc_errors} CRC errors, {st.length_errors} length errors, "
+                f"{st.garbage_bytes} garbage bytes, {seq}")
+
+
+def _stream_readings(o: Observations) -> list[Received]:
+    if o.start_ack is None or o.stop_ack is None:
+        return []
+    a, b = o.start_ack.frame.seq, o.stop_ack.frame.seq
+    span = seq_delta(a, b)
+    return [r for r in o.frames if r.frame.type in _READINGS and 0 < seq_delta(a, r.frame.seq) < span]
+
+
+def _eval_interval(o: Observations):
+    rd = _stream_readings(o)
+    if len(rd) < 3:
+        return False, f"only {len(rd)} readings while streaming ({o.errors.get('stream', '')})".rstrip(" ()")
+    un = TickUnwrapper()
+    ticks = np.array([un.unwrap(r.frame.tick_ms) for r in rd], dtype=float)
+    d = np.diff(ticks)
+    n = np.rint(d / o.interval_ms)
+    one = d[n == 1]
+    if one.size < 2:
+        return False, f"{len(rd)} readings, no consecutive pair at the {o.interval_ms} ms interval"
+    mean, jitter = float(one.mean()), float(one.std())
+    host = np.array([r.host_s for r in rd])
+    rate = (ticks[-1] - ticks[0]) / 1000 / (host[-1] - host[0]) if host[-1] > host[0] else float("nan")
+    ok = abs(mean - o.interval_ms) <= INTERVAL_MEAN_TOL * o.interval_ms and \
+        jitter <= max(JITTER_MIN_MS, JITTER_REL * o.interval_ms)
+    missed = int(np.sum(n != 1))
+    return ok, (f"interval {o.interval_ms} ms: mean {mean:.1f} ms, jitter {jitter:.1f} ms rms over {one.size} "
+                f"steps by device ticks" + (f" ({missed} steps skipped as gaps)" if missed else "")
+                + f"; device clock ran {rate:.3g}x host time")
+
+
+def _eval_start_stop(o: Observations):
+    if o.start_ack is None or o.stop_ack is None:
+        return False, f"no ACK for {'START' if o.start_ack is None else 'STOP'}: {o.errors.get('stream', '')}"
+    n_stream = len(_stream_readings(o))
+    stop = o.stop_ack
+    i0 = next(i for i, r in enumerate(o.frames) if r is stop)
+    later = [r for r in o.frames[i0 + 1:o.stop_end] if r.frame.type in _READINGS]
+    after = [r for r in later if 0 < seq_delta(stop.frame.seq, r.frame.seq) < HALF_TICK]
+    ok = n_stream >= 2 and not after and o.stop_wait_ms >= max(3 * o.interval_ms, 1000)
+    return ok, (f"{n_stream} readings after START's ACK; {len(after)} sent after STOP's ACK in the next "
+                f"{o.stop_wait_ms} ms of device time ({len(later) - len(after)} in flight)")
+
+
+def _eval_status(o: Observations):
+    parts, ok = [], True
+    if o.status_idle is None:
+        ok = False
+        parts.append("no STATUS on request")
+    st = None
+    if o.stream_status is not None:
+        try:
+            st = parse_payload(o.stream_status.frame)
+        except MeterlinkError:
+            st = None
+    if not isinstance(st, Status) or not st.flags & STATUS_STREAMING:
+        ok = False
+        parts.append("STATUS on request while streaming missing or without the streaming flag")
+    else:
+        parts.append("STATUS on request idle and streaming")
+    if o.start_ack is None or o.stop_ack is None:
+        return False, "; ".join(parts + ["no stream to watch"])
+    t0, t1 = o.start_ack.frame.tick_ms, o.stop_ack.frame.tick_ms
+    sq = {o.stream_status.frame.seq} if o.stream_status else set()
+    ticks = [r.frame.tick_ms for r in o.frames if r.frame.type == FrameType.STATUS and r.frame.seq not in sq
+             and 0 <= _after(t0, r.frame.tick_ms) <= _after(t0, t1)]
+    marks = [0] + sorted(_after(t0, t) for t in ticks) + [_after(t0, t1)]
+    gap = max(b - a for a, b in zip(marks, marks[1:]))
+    if marks[-1] < STATUS_MAX_GAP_MS or gap > STATUS_MAX_GAP_MS:
+        ok = False
+    parts.append(f"{len(ticks)} unsolicited over {marks[-1] / 1000:.1f} s of streaming, longest gap {gap / 1000:.1f} s")
+    return ok, "; ".join(parts)
+
+
+def _eval_faults(o: Observations):
+    bad = []
+    for p in o.probes:
+        f = p.reply
+        if f is None:
+            bad.append(f"{p.name}: {p.other}")
+        elif f.code != p.expected or f.cmd_type != (p.ftype & 0xFF) or f.cmd_seq != p.seq:
+            bad.append(f"{p.name}: FAULT code {f.code} type 0x{f.cmd_type:02x} seq {f.cmd_seq}, expected "
+                       f"{FaultCode(p.expected).name} ({int(p.expected)}) 0x{p.ftype & 0xFF:02x} seq {p.seq}")
+    if bad:
+        return False, f"{len(o.probes) - len(bad)}/{len(o.probes)} right; " + "; ".join(bad)
+    codes = ", ".join(sorted({FaultCode(p.expected).name for p in o.probes}))
+    return True, f"{len(o.probes)}/{len(o.probes)} bad commands answered by the right FAULT ({codes})"
+
+
+def _eval_ping(o: Observations):
+    bad = [f"{len(d)} bytes: " + ("no PONG" if e is None else f"PONG of {len(e)} bytes differs")
+           for d, e in o.pings if e != d]
+    if bad or not o.pings:
+        return False, "; ".join(bad) or "no PING sent"
+    return True, f"{len(o.pings)} PINGs of {', '.join(str(len(d)) for d, _ in o.pings)} bytes echoed exactly"
+
+
+def _eval_settings(o: Observations):
+    bad = []
+    for key in SettingKey:
+        v = o.settings.get(key)
+        if isinstance(v, Fault):
+            bad.append(f"{key.name.lower()}: FAULT {v.code}")
+        elif key in _NUMBER_KEYS and not isinstance(v, int):
+            bad.append(f"{key.name.lower()}: " + ("number expected" if isinstance(v, str) and o.settings else "no reply"))
+        elif key not in _NUMBER_KEYS and not (isinstance(v, str) and _printable(v)):
+            bad.append(f"{key.name.lower()}: printable text expected")
+    s = o.settings
+    if isinstance(s.get(SettingKey.DEVICE_AVERAGING), int) and not 1 <= s[SettingKey.DEVICE_AVERAGING] <= 64:
+        bad.append(f"device_averaging {s[SettingKey.DEVICE_AVERAGING]} outside 1..64")
+    if o.status_idle is not None and s.get(SettingKey.INTERVAL_MS) != o.status_idle.interval_ms:
+        bad.append(f"interval_ms {s.get(SettingKey.INTERVAL_MS)!r} but STATUS says {o.status_idle.interval_ms}")
+    if o.ident is not None:
+        for key, name in ((SettingKey.PROBE_SERIAL, "probe_serial"), (SettingKey.CERT_REF, "cert_ref")):
+            if isinstance(s.get(key), str) and s[key] != getattr(o.ident, name):
+                bad.append(f"{name} differs from IDENT")
+    if bad:
+        return False, "; ".join(bad)
+    return True, (f"{len(SettingKey)} keys read, types as documented; interval {s[SettingKey.INTERVAL_MS]} ms, "
+                  f"averaging {s[SettingKey.DEVICE_AVERAGING]}, clock_utc {s[SettingKey.CLOCK_UTC]}")
+
+
+def _eval_boot(o: Observations):
+    boots = [r for r in o.frames if r.frame.type == FrameType.BOOT]
+    _, silent = _segments(o.frames)
+    bad = []
+    for r in boots:
+        try:
+            b = Boot.unpack(r.frame.payload)
+        except MeterlinkError as exc:
+            bad.append(str(exc))
+            continue
+        if r.frame.seq != 0:
+            bad.append(f"BOOT with seq {r.frame.seq}")
+        if b.reset_cause not in RESET_CAUSES:
+            bad.append(f"reset cause {b.reset_cause} undocumented")
+    if boots and o.ident is not None and o.ident_index >= 0:
+        before = [r for r in boots if o.frames.index(r) < o.ident_index]
+        if before and Boot.unpack(before[-1].frame.payload).boot_count != o.ident.boot_count:
+            bad.append("BOOT boot_count differs from IDENT's")
+    if silent:
+        bad.append(f"{silent} restart(s) without BOOT")
+    if not boots and o.wait_boot_s > 0:
+        bad.append(f"no BOOT within {o.wait_boot_s:g} s (reset the meter while waiting)")
+    if bad:
+        return False, "; ".join(bad)
+    if not boots:
+        return None, "no reset during the check; use --wait-boot and reset the meter to observe BOOT"
+    causes = ", ".join(str(Boot.unpack(r.frame.payload).reset_cause) for r in boots)
+    return True, f"{len(boots)} BOOT frame(s), seq 0, reset cause {causes}, boot_count as IDENT"
+
+
+def _eval_garbage(o: Observations):
+    if o.garbage_reply is None:
+        return False, f"{o.garbage_bytes} junk bytes sent, then {o.errors.get('garbage', 'no IDENT')}"
+    return True, f"{o.garbage_bytes} junk bytes sent (64 random, 255 zero), WHO answered in {o.garbage_s * 1000:.0f} ms"
+
+
+_EVAL = {"ident": _eval_ident, "version": _eval_version, "framing": _eval_framing, "interval": _eval_interval,
+         "start_stop": _eval_start_stop, "status": _eval_status, "faults": _eval_faults, "ping": _eval_ping,
+         "settings": _eval_settings, "boot": _eval_boot, "garbage": _eval_garbage}
+
+
+def evaluate(o: Observations) -> list[Result]:
+    """One Result per item of ITEMS, in order."""
+    out = []
+    for item in ITEMS:
+        ok, ev = _EVAL[item.key](o)
+        out.append(Result(item.key, item.title, "skip" if ok is None else ("pass" if ok else "fail"), ev))
+    return out
+
+
+def run_checks(link, *, duration_s: float = MIN_DURATION_S, interval_ms: int = 200, wait_boot_s: float = 0.0,
+               seed: int = 0) -> Report:
+    """Observe and evaluate a meter on an open Link."""
+    if duration_s < MIN_DURATION_S:
+        raise MeterlinkError(f"duration {duration_s:g} s: at least {MIN_DURATION_S:g} s of device time is needed")
+    t0 = time.monotonic()
+    c = Commander(link)
+    obs = observe(c, duration_s=duration_s, interval_ms=interval_ms, wait_boot_s=wait_boot_s,
+                  rng=np.random.default_rng(seed))
+    ident = asdict(obs.ident) if obs.ident else None
+    return Report(link.port, tuple(evaluate(obs)), ident, time.monotonic() - t0)
