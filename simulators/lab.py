@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from meterlink.lab.session import orientation_matrix
+from meterlink.lab.session import LabError, orientation_matrix
 from simulators.instruments import probe_counts
 from simulators.pty_meter import SimulatedMeter
 from simulators.scenario import load_scenario
@@ -135,8 +135,13 @@ class InProcessLab:
     def read(self, n: int) -> np.ndarray:
         """n readings of the probe in the current set-up, counts (n, 3)."""
         f, e = self.bench.field(self._t)
-        return np.array([probe_counts(self.scenario.probe, e, f, self.temp_c, self._rng, self.averaging)[0]
-                         for _ in range(int(n))], dtype=float)
+        out = []
+        for _ in range(int(n)):
+            c, over = probe_counts(self.scenario.probe, e, f, self.temp_c, self._rng, self.averaging)
+            if over.any():   # as the meter flags it; the lab cannot use the step
+                raise LabError(f"meter over range at this step (counts {', '.join(str(int(x)) for x in c)})")
+            out.append(c)
+        return np.array(out, dtype=float)
 
 
 __all__ = ["BenchState", "LabBench", "LabMeter", "InProcessLab", "lab_scenario"]

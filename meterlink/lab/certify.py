@@ -13,7 +13,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from meterlink.calibrate import calibrate_axes, frequency_correction_db
+from meterlink.calibrate import calibrate_axes
 from meterlink.certificate import FORMAT, KIND_PROBE, ProbeCertificate
 from meterlink.lab import analysis as an
 from meterlink.lab.budget import FIELD_STANDARD, LabBudget, calibration_budget
@@ -96,7 +96,7 @@ class FreqComparison:
     as_found_db: float            # total field error with the previous certificate, 20 log10(E_ind / E_ref)
     as_left_db: float             # the same readings with the new certificate
     as_found_axes_db: tuple[float, float, float]
-    drift_db: tuple[float, float, float]   # new minus previous correction, per axis
+    drift_db: tuple[float, float, float]   # per axis: as-found minus as-left indication (dB)
     as_found: str
     as_left: str
 
@@ -137,9 +137,11 @@ def compare(cal: Calibration, previous: ProbeCertificate, results) -> Comparison
         axes_found = tuple(err(previous, an.of(results, "frequency", freq_hz=f, axis=a)[0], i)
                            for i, a in enumerate(AXES))
         found = err(previous, tot[0]) if tot else max(axes_found, key=abs)
-        left = err(new, tot[0]) if tot else max((err(new, an.of(results, "frequency", freq_hz=f, axis=a)[0], i)
-                                                 for i, a in enumerate(AXES)), key=abs)
-        drift = frequency_correction_db(new, f)[0] - frequency_correction_db(previous, f)[0]
+        left = err(new, tot[0]) if tot else None
+        axes_left = tuple(err(new, an.of(results, "frequency", freq_hz=f, axis=a)[0], i) for i, a in enumerate(AXES))
+        drift = np.subtract(axes_found, axes_left)   # change of each sensor's response since the previous cert
+        if left is None:
+            left = max(axes_left, key=abs)
         worst_found = max((found, *axes_found), key=abs)
         rows.append(FreqComparison(f, found, left, axes_found, tuple(float(d) for d in drift),
                                    decide_tolerance(worst_found, tol, u, rule), decide_tolerance(left, tol, u, rule)))

@@ -1,0 +1,132 @@
+"""Synthetic truth: the simulator's lab mode applies known fields to a probe with known imperfections."""
+
+import datetime as dt
+import math
+
+import numpy as np
+import pytest
+
+from meterlink.calibrate import calibrate_axes, linearise
+from meterlink.certificate import dump_certificate, load_certificate
+from meterlink.lab import certify
+from meterlink.lab import procedures as pr
+from meterlink.lab.meter import MeterBench
+from meterlink.lab.session import LabError, LabSession, orientation_matrix
+from meterlink.link import MeterLink
+from simulators.instruments import axis_gain_db, detector_counts_float
+from simulators.lab import InProcessLab, LabMeter
+
+FIELD_ERROR_DB = 0.2   # the bench's field-standard error, unknown to the lab
+SESSION = LabSession("ML-EP3 (simulated)", "EP-4417", "Test lab (invented)", "LAB-T1", dt.date(2027, 6, 1),
+                     dt.date(2028, 6, 1))
+
+
+@pytest.fixture(scope="module")
+def lab_run():
+    lab = InProcessLab(field_error_db=FIELD_ERROR_DB, seed=11)
+    res = pr.run_plan(pr.full_plan(SESSION, iso_freqs=(1e9, 2.45e9)), lab, repeats=5)
+    return lab, res, certify.analyse(SESSION, res)
+
+
+def test_per_axis_factors_recovered_within_u(lab_run):
+    lab, _, cal = lab_run
+    model, u = lab.scenario.probe, cal.budget.u_expanded_db
+    f = cal.response.freq_hz
+    # the probe's true correction is minus its gain change against the reference frequency
+    truth = -(axis_gain_db(model, f) - axis_gain_db(model, model.ref_freq_hz))
+    err = cal.response.cf_axes_db - truth
+    assert np.max(np.abs(err)) <= u
+    assert np.max(np.abs(err)) < 0.05          # and in fact far inside it (noise only)
+    assert np.abs(truth).max() > 0.5            # the probe really has a response to recover
+    # the total factor, field along the handle, is the power mean of the three axes' factors
+    tot_truth = 1 / np.sqrt(np.mean(10 ** (-truth / 10), axis=1))
+    assert np.allclose(cal.response.cf_total_db, 20 * np.log10(tot_truth), atol=0.05)
+
+
+def test_linearity_and_detector_law_recovered(lab_run):
+    lab, _, cal = lab_run
+    model = lab.scenario.probe
+    factor = 10 ** (FIELD_ERROR_DB / 20)
+    for i, li in enumerate(cal.linearity):
+        g = 10 ** (model.sensitivity_db[i] / 20) * factor
+        # fitted knee in the lab's field scale: knee / (axis gain x bench error)
+        assert li.fit.knee_v_per_m == pytest.approx(model.knee_v_per_m[i] / g, rel=0.03)
+        assert li.fit.a_counts_per_v2m2 == pytest.approx(model.counts_per_v2m2 * g * g, rel=0.03)
+        ax = cal.certificate.axes[i]
+        for e, dev, ua in zip(li.levels_v_per_m, li.deviation_db, li.u_a_db):
+            e_axes = np.zeros((1, 3))
+            e_axes[0, i] = e * factor
+            c = detector_counts_float(model, e_axes, [model.ref_freq_hz], 23.0)
+            truth = 20 * math.log10(linearise(ax, [c[i]])[0][0] / e)
+            assert abs(dev - truth) <= max(4 * ua, 0.01)
+        assert li.max_abs_db <= cal.certificate.uncertainties[1].value
+
+
+def test_isotropy_recovered_in_both_conventions(lab_run):
+    lab, _, cal = lab_run
+    model = lab.scenario.probe
+    for iso in cal.isotropy:
+        e_true = []
+        for ang in iso.angles_deg:
+            e_probe = (np.array([5.0, 0, 0]) * 10 ** (FIELD_ERROR_DB / 20)) @ orientation_matrix(ang, iso.tilt_deg)
+            c = detector_counts_float(model, e_probe[None, :], [iso.freq_hz], 23.0)
+            e_true.append(calibrate_axes(cal.certificate, c[None, :], iso.freq_hz, today=SESSION.cal_date).e_v_per_m[0])
+        e_true = np.array(e_true)
+        pm = float(np.max(np.abs(20 * np.log10(e_true / e_true.mean()))))
+        mm = float(20 * np.log10(e_true.max() / e_true.min()))
+        assert iso.plus_minus_db == pytest.approx(pm, abs=0.02)
+        assert iso.max_min_db == pytest.approx(mm, abs=0.03)
+        assert iso.plus_minus_db <= iso.max_min_db + 1e-12
+    assert cal.certificate.isotropy_db >= max(i.plus_minus_db for i in cal.isotropy)
+
+
+def test_as_found_in_tolerance_probe_gives_no_notice(lab_run):
+    _, _, cal = lab_run
+    again = InProcessLab(field_error_db=FIELD_ERROR_DB, seed=12)
+    res = pr.run_plan(pr.full_plan(SESSION), again, repeats=5)
+    cmp = certify.compare(certify.analyse(SESSION, res), cal.certificate, res)
+    assert cmp.as_found == "compliant" and cmp.notice == ""
+    assert max(abs(r.as_found_db) for r in cmp.rows) < 0.1
+    assert "guarded acceptance" in cmp.statement and "ILAC-G8:2019" in cmp.statement
+
+
+def test_as_found_drifted_probe_gives_out_of_tolerance_notice(lab_run):
+    lab, _, cal = lab_run
+    sens = list(lab.scenario.probe.sensitivity_db)
+    sens[0] += 3.0                                   # the x sensor lost 3 dB since its last calibration
+    drifted = InProcessLab(field_error_db=FIELD_ERROR_DB, seed=13, probe_overrides={"sensitivity_db": tuple(sens)})
+    with pytest.raises(LabError, match="over range"):      # 3 dB more: the top levels overrange now
+        pr.run_plan(pr.linearity_plan(SESSION, levels=(20.0, 30.0)), drifted, repeats=2)
+    res = pr.run_plan(pr.full_plan(SESSION, levels=pr.TABLE_LEVELS_V_PER_M[:-3]), drifted, repeats=5)
+    new = certify.analyse(SESSION, res)
+    cmp = certify.compare(new, cal.certificate, res)
+    assert cmp.as_found == "not compliant" and cmp.as_left == "compliant"
+    assert cmp.notice.startswith("OUT-OF-TOLERANCE NOTICE") and cal.certificate.certificate_number in cmp.notice
+    assert all(abs(r.drift_db[0] - 3.0) < 0.05 for r in cmp.rows)   # drift per frequency: +3 dB on x
+    assert all(abs(r.drift_db[1]) < 0.05 for r in cmp.rows)
+
+
+def test_end_to_end_over_the_pty(tmp_path):
+    """A calibration run over the real pty (pyserial), its certificate loaded by the host and used."""
+    plan = pr.full_plan(SESSION, freqs=(1e8, 5e8, 1e9, 3e9), levels=(0.2, 0.5, 1, 3, 10, 30), iso_step_deg=45)
+    with LabMeter(field_error_db=FIELD_ERROR_DB, seed=21, speed=100) as lm:
+        with MeterLink(lm.port, interval_ms=100) as link:
+            bench = MeterBench(lm, link)
+            bench.wait_connected()
+            res = pr.run_plan(plan, bench, repeats=4)
+            cal = certify.analyse(SESSION, res)
+            path = tmp_path / "cert.toml"
+            path.write_text(dump_certificate(cal.certificate))
+            cert = load_certificate(path)
+            assert cert == cal.certificate
+            # the host measures a new set-up with the loaded certificate
+            e_true, f = 4.0, 7e8
+            bench.apply(f, e_true / 10 ** (FIELD_ERROR_DB / 20), (0.3, 0.5, 0.8), 30.0, 0.0)
+            counts = bench.read(8)
+    r = calibrate_axes(cert, counts, f, temp_c=23.0, today=SESSION.cal_date)
+    assert r.flags.max() == 0
+    err_db = 20 * np.log10(np.mean(r.e_v_per_m) / e_true)
+    # the lab's field error (the bench made 0.2 dB more than it believed) is inherited as a -0.2 dB
+    # reading error, plus interpolation across this sparse 4-frequency plan; all inside U of the reading
+    assert abs(err_db) <= r.u_expanded_db[0]
+    assert abs(err_db + FIELD_ERROR_DB) < 0.3
