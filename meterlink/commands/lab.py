@@ -1,0 +1,147 @@
+"""meterlink lab: calibrate a probe (simulated bench over its pty, or hand readings), budgets, as found / as left."""
+
+from __future__ import annotations
+
+HELP = "calibration lab: run procedures, import readings, show the budget, write certificates"
+
+
+def add_arguments(parser) -> None:
+    sub = parser.add_subparsers(dest="action", required=True, metavar="ACTION")
+    run = sub.add_parser("run", help="run zero, linearity, frequency and isotropy on the simulated lab bench")
+    imp = sub.add_parser("import", help="build a certificate from readings taken by hand (CSV)")
+    imp.add_argument("csv", help="readings file (columns in docs/lab.md)")
+    bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method")
+    bud.add_argument("--type-a-db", type=float, default=0.02, help="Type A part to show (default 0.02 dB)")
+    for p in (run, imp, bud):
+        p.add_argument("--session", metavar="TOML", help="lab session file (default: an invented demo session)")
+        p.add_argument("--json", action="store_true", help="print the result as JSON")
+    for p in (run, imp):
+        p.add_argument("--out", default="lab-out", help="folder for certificate.toml/.html, readings.csv")
+        p.add_argument("--previous", metavar="CERT", help="previous certificate: as-found / as-left comparison")
+    run.add_argument("--speed", type=float, default=100.0, help="simulated device ms per real ms (default 100)")
+    run.add_argument("--seed", type=int, default=0)
+    run.add_argument("--repeats", type=int, default=5, help="readings per step (default 5)")
+    run.add_argument("--quick", action="store_true", help="fewer frequencies, levels and angles")
+    run.add_argument("--drift-db", type=float, default=0.0, help="simulate a sensitivity change of axis x (dB)")
+
+
+def _session(path):
+    import datetime as dt
+
+    from meterlink.lab.session import LabSession, load_session
+    if path:
+        return load_session(path)
+    today = dt.date.today()
+    return LabSession("ML-EP3 three-axis E-field probe (simulated)", "EP-4417",
+                      "Harrowgate Field Metrology Laboratory (invented)", f"LAB-{today:%Y%m%d}-EP-4417", today,
+                      today + dt.timedelta(days=365), operator="demo")
+
+
+def _simulated(session, args):
+    from rich.progress import Progress
+
+    from meterlink.lab import procedures as pr
+    from meterlink.lab.meter import MeterBench
+    from meterlink.link import MeterLink
+    from simulators.lab import LabMeter
+    if args.quick:
+        plan = pr.full_plan(session, freqs=(3e7, 1e8, 3e8, 1e9, 3e9, 6e9), levels=(0.1, 0.3, 1, 3, 10, 20),
+                            iso_step_deg=30)
+    else:
+        plan = pr.full_plan(session, levels=pr.TABLE_LEVELS_V_PER_M[:-2])
+    over = None
+    if args.drift_db:
+        from simulators.scenario import load_scenario
+        sens = list(load_scenario("demo").probe.sensitivity_db)
+        sens[0] += args.drift_db
+        over = {"sensitivity_db": tuple(sens)}
+    with LabMeter(seed=args.seed, speed=args.speed, temp_c=session.ambient.temp_c, probe_overrides=over) as lm:
+        with MeterLink(lm.port, interval_ms=100) as link:
+            bench = MeterBench(lm, link)
+            bench.wait_connected()
+            with Progress(transient=True, disable=args.json) as prog:
+                task = prog.add_task("calibrating", total=len(plan))
+
+                def tick(i, n, st):
+                    prog.update(task, completed=i, description=f"{st.procedure} {st.freq_hz / 1e6:g} MHz")
+                return pr.run_plan(plan, bench, repeats=args.repeats, progress=tick)
+
+
+def _budget_table(b):
+    from rich.table import Table
+    t = Table(title="Uncertainty budget of a calibration factor (JCGM 100:2008)")
+    for h in ("component", "value (dB)", "distribution", "divisor", "c", "u (dB)", "note"):
+        t.add_column(h)
+    for r, n in zip(b.budget.rows, b.notes):
+        t.add_row(r.name, f"{r.value:.3f}", r.distribution, f"{r.divisor:.3f}", f"{r.sensitivity:g}",
+                  f"{r.u_db:.3f}", n)
+    t.add_row("combined u_c", "", "", "", "", f"{b.budget.u_c_db:.3f}", "root sum of squares (5.1.2)")
+    t.add_row("expanded U, k = 2", "", "", "", "", f"{b.u_expanded_db:.3f}", "about 95 % (6.2.1)")
+    return t
+
+
+def run(args) -> int:
+    import json
+    from pathlib import Path
+
+    from rich.console import Console
+
+    from meterlink.certificate import dump_certificate, load_certificate
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.lab import certify, html, procedures as pr
+    from meterlink.lab.budget import calibration_budget
+
+    console = Console()
+    session = _session(args.session)
+    if args.action == "budget":
+        b = calibration_budget(session, args.type_a_db)
+        if args.json:
+            print(json.dumps({"rows": [{"name": r.name, "value_db": r.value, "distribution": r.distribution,
+                                        "divisor": r.divisor, "sensitivity": r.sensitivity, "u_db": r.u_db,
+                                        "note": n} for r, n in zip(b.budget.rows, b.notes)],
+                              "u_c_db": b.budget.u_c_db, "k": b.budget.k, "u_expanded_db": b.u_expanded_db}))
+        else:
+            console.print(_budget_table(b))
+        return 0
+    previous = load_certificate(args.previous) if args.previous else None
+    if args.action == "run":
+        if not args.speed > 0 or args.repeats < 2:
+            raise MeterlinkError("--speed must be > 0 and --repeats at least 2 (Type A needs repeats)")
+        results = _simulated(session, args)
+    else:
+        results = pr.import_csv(args.csv, session)
+    cal = certify.analyse(session, results, previous)
+    cmp = certify.compare(cal, previous, results) if previous else None
+    out = Path(args.out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        (out / "certificate.toml").write_text(dump_certificate(cal.certificate), encoding="utf-8")
+        (out / "certificate.html").write_text(html.render(cal, cmp, SAFETY_LINE), encoding="utf-8")
+        pr.export_csv(results, out / "readings.csv")
+    except OSError as exc:
+        raise MeterlinkError(f"{out}: cannot write the outputs ({exc.strerror})") from None
+    summary = {"certificate": str(out / "certificate.toml"), "report": str(out / "certificate.html"),
+               "u_expanded_db": cal.budget.u_expanded_db, "isotropy_db": cal.certificate.isotropy_db,
+               "isotropy": [{"freq_hz": i.freq_hz, "tilt_deg": i.tilt_deg, "plus_minus_db": i.plus_minus_db,
+                             "max_min_db": i.max_min_db} for i in cal.isotropy],
+               "linearity_db": cal.certificate.uncertainties[1].value,
+               "cf_db": {"freq_hz": cal.response.freq_hz.tolist(), "axes": cal.response.cf_axes_db.tolist(),
+                         "total": cal.response.cf_total_db.tolist()},
+               "as_found": cmp.as_found if cmp else None, "as_left": cmp.as_left if cmp else None,
+               "statement": cmp.statement if cmp else None, "notice": cmp.notice if cmp else "",
+               "safety": SAFETY_LINE}
+    if args.json:
+        print(json.dumps(summary))
+    else:
+        console.print(_budget_table(cal.budget))
+        console.print(f"certificate {summary['certificate']}, report {summary['report']}")
+        console.print(f"isotropy +/- {cal.certificate.isotropy_db:.2f} dB about the mean; "
+                      + "; ".join(f"{i.freq_hz / 1e6:g} MHz: max/min {i.max_min_db:.2f} dB" for i in cal.isotropy),
+                      markup=False)
+        if cmp:
+            console.print(cmp.statement, markup=False)
+            if cmp.notice:
+                console.print(cmp.notice, style="bold red", markup=False)
+        console.print(SAFETY_LINE, markup=False)
+    return 1 if cmp and cmp.notice else 0
