@@ -14,7 +14,8 @@ from dataclasses import dataclass
 
 from meterlink.errors import LinkError, MeterlinkError, ProtocolError
 from meterlink.protocol import (PROTOCOL_MAJOR, Ack, ClockSet, Echo, Fault, FaultCode, Frame, FrameReader,
-                                FrameType, Ident, Junk, SetInterval, Setting, SettingGet, SettingPut, Status,
+                                FrameType, Ident, Junk, SetInterval, Setting, SettingGet, SettingKey,
+                                SettingPut, Status,
                                 encode_frame, parse_payload)
 from meterlink.transport import Link
 
@@ -181,7 +182,8 @@ class Commander:
         return self._setting(FrameType.SETTING_PUT, SettingPut(key, value), key)
 
     def _setting(self, ftype: int, msg, key: int) -> int | str:
-        reply = self.call(ftype, msg, f"setting {key}")
+        name = SettingKey(key).name.lower() if key in SettingKey._value2member_map_ else str(key)
+        reply = self.call(ftype, msg, f"{FrameType(ftype).name} {name}")
         if not isinstance(reply, Setting) or reply.key != key:
             raise ProtocolError(f"setting {key}: reply for another key or of another type")
         return reply.value

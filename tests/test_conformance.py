@@ -1,0 +1,90 @@
+"""Conformance check against the simulated meter on a pty: clean passes, each rule-breaking switch fails its item.
+
+The rules are those of docs/protocol.md (meterlink wire protocol 1.0); the interval tolerances are
+this project's own acceptance choice (meterlink.conformance), not figures of a standard.
+"""
+
+import json
+
+import pytest
+
+from meterlink.cli import main
+from meterlink.conformance import ITEMS, run_checks
+from meterlink.transport import open_link
+from simulators.pty_meter import SimulatedMeter
+
+SPEED = 200
+
+
+def check(quirks=None, **kw):
+    """Run the check with a reset after the port is open, so a BOOT is there to be checked."""
+    with SimulatedMeter("demo", speed=SPEED, seed=1, quirks=quirks) as m:
+        link = open_link(m.port)
+        try:
+            m.restart()
+            return run_checks(link, wait_boot_s=0.5, **kw)
+        finally:
+            link.close()
+
+
+def test_clean_meter_passes_every_item_with_evidence():
+    rep = check()
+    assert [r.key for r in rep.results] == [i.key for i in ITEMS]
+    assert {r.status for r in rep.results} == {"pass"}, [(r.key, r.evidence) for r in rep.results]
+    ev = {r.key: r.evidence for r in rep.results}
+    assert "0 CRC errors" in ev["framing"] and "seq +1 each time" in ev["framing"]
+    assert "interval 200 ms: mean 200.0 ms, jitter 0.0 ms" in ev["interval"]
+    assert "0 sent after STOP's ACK" in ev["start_stop"]
+    assert rep.passed and rep.elapsed_s < 10
+
+
+# quirk -> the one item it must fail (docs/protocol.md clause in the comment)
+QUIRKS = [
+    ({"seq_step": 2}, "framing"),  # Frame layout: SEQ +1 per frame sent
+    ({"bad_crc": 0.03}, "framing"),  # CRC-16/IBM-3740 over VER..payload
+    ({"silent_unknown": True}, "faults"),  # every command answered by exactly one frame
+    ({"wrong_fault_code": True}, "faults"),  # FAULT codes table
+    ({"no_status": True}, "status"),  # STATUS unsolicited at least every 10 s while streaming
+    ({"interval_error": 0.05}, "interval"),
+    ({"interval_jitter_ms": 20.0}, "interval"),
+    ({"ignore_stop": True}, "start_stop"),  # STOP: ACK; readings stop
+    ({"ident_model": "ML\x07SIM"}, "ident"),  # Text fields are ASCII (printable, for display)
+    ({"ident_kind": 9}, "ident"),  # sensor_kind 1..3
+    ({"ident_proto_major": 2}, "version"),  # Version rule
+    ({"deaf_after_garbage_ms": 600_000}, "garbage"),  # Resynchronisation
+    ({"pong_alter": True}, "ping"),  # PING -> PONG with the same bytes
+    ({"no_boot": True}, "boot"),  # BOOT sent once after reset
+]
+
+
+@pytest.mark.parametrize("quirks,item", QUIRKS, ids=[next(iter(q)) for q, _ in QUIRKS])
+def test_each_rule_breaking_switch_fails_exactly_its_item(quirks, item):
+    rep = check(quirks)
+    assert rep.failed == {item}, [(r.key, r.status, r.evidence) for r in rep.results]
+    assert not rep.passed
+
+
+def test_cli_json_and_exit_codes(capsys):
+    with SimulatedMeter("demo", speed=SPEED, quirks={"ident_kind": 9}) as m:
+        rc = main(["check-device", "--port", m.port, "--json"])
+    out = json.loads(capsys.readouterr().out)
+    assert rc == 1 and out["passed"] is False
+    status = {r["key"]: r["status"] for r in out["results"]}
+    assert status["ident"] == "fail" and status["framing"] == "pass"
+    assert out["ident"]["sensor_kind"] == 9
+
+
+def test_cli_table_escapes_device_text_and_passes(capsys):
+    with SimulatedMeter("demo", speed=SPEED, quirks={"ident_model": "[bold]M"}) as m:
+        rc = main(["check-device", "--port", m.port])
+    out = capsys.readouterr().out
+    assert rc == 0  # brackets are printable ASCII: allowed, but shown literally
+    assert "[bold]M" in out and "all items conform" in out
+
+
+def test_cli_usage_errors_exit_2(capsys):
+    assert main(["check-device", "--port", "/nonexistent/meter0"]) == 2
+    err = capsys.readouterr().err
+    assert "cannot open port" in err and len(err.strip().splitlines()) == 1
+    assert main(["check-device", "--port", "loop://", "--duration", "5"]) == 2
+    assert "--duration '5' must be at least 12" in capsys.readouterr().err
