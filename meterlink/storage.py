@@ -22,7 +22,7 @@ from meterlink import __version__
 from meterlink.errors import MeterlinkError
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 SEVERITIES = ("info", "warning", "error")
 READING_COLUMNS = ("boot", "seq", "tick_ms", "t_utc", "raw_x", "raw_y", "raw_z", "flags", "range_index")
 
@@ -87,8 +87,52 @@ def _schema_v1(db: sqlite_utils.Database) -> None:
                                                ("calibration_id", "calibrations", "id")])
 
 
+def _schema_v2_survey(db: sqlite_utils.Database) -> None:
+    """Walk-around survey tables (docs/schema.md, "Survey tables"; written by meterlink.survey.store)."""
+    db["survey"].create({"session_id": int, "title": str, "site_json": str, "standard": str, "tier": str,
+                         "decision_rule": str, "certificate_name": str, "certificate_number": str,
+                         "certificate_due": str, "certificate_sha256": str, "sensor": str,
+                         "freq_hz": float, "band_lo_hz": float, "band_hi_hz": float,
+                         "e_ref_v_per_m": float, "e_ref_freq_hz": float, "averaging_time_s": float,
+                         "followup_v_per_m": float, "followup_percent": float, "plan_text": str,
+                         "plan_path": str, "created_utc": float, "ended_utc": float, "software_version": str},
+                        pk="session_id", foreign_keys=[("session_id", "sessions", "id")],
+                        not_null=["standard", "tier", "decision_rule", "created_utc"])
+    db.execute("CREATE TRIGGER survey_choices_fixed BEFORE UPDATE OF standard, tier, decision_rule, "
+               "certificate_sha256 ON survey BEGIN SELECT RAISE(ABORT, 'survey standard, tier, decision "
+               "rule and certificate are fixed once measuring starts'); END")
+    db["survey_sources"].create({"id": int, "session_id": int, "name": str, "freq_hz": float, "technology": str,
+                                 "power_w": float, "max_power_w": float, "notes": str}, pk="id",
+                                foreign_keys=[("session_id", "survey", "session_id")])
+    db["survey_points"].create({
+        "id": int, "session_id": int, "point_no": int, "label": str, "mode": str, "scheme": str,
+        "x_m": float, "y_m": float, "lat_deg": float, "lon_deg": float, "height_m": float, "notes": str,
+        "near_field": int, "duration_s": float, "t_start_utc": float, "t_end_utc": float, "n_readings": int,
+        "e_v_per_m": float, "e_max_v_per_m": float, "ex_v_per_m": float, "ey_v_per_m": float,
+        "ez_v_per_m": float, "u_expanded_db": float, "coverage": float, "complete": int, "flags": int,
+        "warnings": str, "e_limit_v_per_m": float, "percent_field": float, "percent_power": float,
+        "exposure_ratio": float, "verdict": str, "statement": str, "followup": int,
+        "e_extrapolated_v_per_m": float, "exposure_ratio_extrapolated": float,
+        "percent_power_extrapolated": float, "verdict_extrapolated": str}, pk="id",
+        foreign_keys=[("session_id", "survey", "session_id")], not_null=["session_id", "label", "mode"])
+    db["survey_points"].create_index(["session_id", "point_no"], unique=True)
+    db["survey_samples"].create({"id": int, "point_id": int, "sample_no": int, "height_m": float, "x_m": float,
+                                 "y_m": float, "e_v_per_m": float, "e_max_v_per_m": float,
+                                 "u_expanded_db": float, "n_readings": int, "coverage": float,
+                                 "t_start_utc": float, "t_end_utc": float}, pk="id",
+                                foreign_keys=[("point_id", "survey_points", "id")])
+    db["survey_emitters"].create({"id": int, "point_id": int, "name": str, "freq_hz": float, "e_v_per_m": float,
+                                  "e_extrapolated_v_per_m": float, "ratio": float, "share": float}, pk="id",
+                                 foreign_keys=[("point_id", "survey_points", "id")])
+    db["survey_trace"].create({"id": int, "session_id": int, "point_no": int, "sample_no": int, "boot": int,
+                               "seq": int, "t_utc": float, "t_device_s": float, "e_v_per_m": float,
+                               "x_m": float, "y_m": float, "z_m": float, "used": int}, pk="id",
+                              foreign_keys=[("session_id", "survey", "session_id")])
+    db["survey_trace"].create_index(["session_id", "t_utc"])
+
+
 # version -> function bringing the schema from version-1 up to it; applied in order, in one transaction each
-MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1}
+MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey}
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,152 @@
+"""From captured samples to an assessed point: limit, percent in both terms, verdict, extrapolation,
+follow-up flag (pure; uses limits, exposure and verdict)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from meterlink.errors import MeterlinkError
+from meterlink.exposure import multi_frequency, percent_of_limit
+from meterlink.limits import reference_level
+from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
+from meterlink.survey.spatial import spatial_average
+from meterlink.verdict import decide_field, decide_ratio
+
+#: An emitter matches a listed source when their frequencies agree within this fraction.
+MATCH_REL = 0.005
+MIN_COVERAGE = 0.9
+
+
+@dataclass(frozen=True)
+class Broadband:
+    """The E reference level a broadband value is compared with: the lowest over the band."""
+
+    e_v_per_m: float
+    freq_hz: float
+    averaging_time_s: float
+    band_hz: tuple[float, float]
+    source: str
+
+
+def broadband_reference(standard: str, tier: str, band_hz: tuple[float, float] | float) -> Broadband:
+    """Lowest whole-body E reference level over a band (or at one frequency): a broadband probe
+    cannot tell frequencies apart, so the most restrictive level applies (common practice)."""
+    if np.ndim(band_hz) == 0:
+        lo = hi = float(band_hz)
+        grid = np.array([lo])
+    else:
+        lo, hi = float(band_hz[0]), float(band_hz[1])
+        grid = np.unique(np.concatenate([np.geomspace(lo, hi, 400), [lo, hi]]))
+    best, edges = None, set()
+
+    def consider(f):
+        nonlocal best
+        try:
+            lv = reference_level(standard, tier, float(f))
+        except MeterlinkError:
+            return
+        edges.update(x for x in (lv.band_lo_hz, lv.band_hi_hz) if lo <= x <= hi)
+        if lv.e_v_per_m is not None and (best is None or lv.e_v_per_m < best.e_v_per_m):
+            best = lv
+    for f in grid:
+        consider(f)
+    for f in sorted(edges):    # a monotone law between table rows is lowest at a row edge
+        consider(f)
+    if best is None:
+        raise MeterlinkError(f"{standard} {tier}: no E reference level between {lo:g} and {hi:g} Hz")
+    return Broadband(float(best.e_v_per_m), float(best.freq_hz), float(best.averaging_time_s or 360.0),
+                     (lo, hi), best.source)
+
+
+def source_factor(sources: tuple[Source, ...], freq_hz: float | None = None) -> float:
+    """Field extrapolation factor: of the matching source for a frequency, or for a broadband value
+    the largest of all sources (worst case: all the field from the source with most headroom)."""
+    fac = [(s, s.extrapolation_factor) for s in sources if s.extrapolation_factor]
+    if freq_hz is not None:
+        m = [f for s, f in fac if abs(s.freq_hz - freq_hz) <= MATCH_REL * s.freq_hz]
+        return m[0] if m else 1.0
+    return max([f for _, f in fac], default=1.0)
+
+
+def _name(sources, f):
+    m = [s.name for s in sources if abs(s.freq_hz - f) <= MATCH_REL * s.freq_hz]
+    return m[0] if m else f"{f / 1e6:.3f} MHz"
+
+
+def _emitters(plan: SurveyPlan, samples: tuple[Sample, ...], near_field: bool):
+    """Per-frequency E averaged over the samples in power, the summation-rule totals, measured and
+    extrapolated; None without frequency-selective data."""
+    if not any(s.emitters for s in samples):
+        return None
+    power: dict[float, float] = {}
+    for s in samples:
+        for _, f, e in s.emitters:
+            power[f] = power.get(f, 0.0) + e * e / len(samples)
+    freqs = np.array(sorted(power))
+    e = np.sqrt([power[f] for f in freqs])
+    fac = np.array([source_factor(plan.sources, f) for f in freqs])
+    names = [_name(plan.sources, f) for f in freqs]
+    res = multi_frequency(freqs, standard=plan.standard, tier=plan.tier, e_v_per_m=e, labels=names,
+                          near_field=near_field)
+    res_x = multi_frequency(freqs, standard=plan.standard, tier=plan.tier, e_v_per_m=e * fac, labels=names,
+                            near_field=near_field)
+    ems = tuple(Emitter(n, float(f), float(v), float(v * k), float(r), float(sh))
+                for n, f, v, k, r, sh in zip(names, freqs, e, fac, res.emitter_ratio, res.share))
+    return ems, res, res_x
+
+
+def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Broadband, *,
+           interrupted: bool = False, shortened: bool = False, warnings: tuple[str, ...] = ()) -> PointResult:
+    """Combine a point's samples (power domain) and judge the result by the plan's decision rule."""
+    if not samples:
+        raise MeterlinkError(f"point {point.label!r}: no readings were captured")
+    e_s = np.array([s.e_v_per_m for s in samples])
+    e = spatial_average(e_s) if len(samples) > 1 else float(e_s[0])
+    u = max(s.u_expanded_db for s in samples)
+    axes = tuple(float(spatial_average([s.axes_v_per_m[i] for s in samples])) for i in range(3))
+    n = sum(s.n_readings for s in samples)
+    cov = min(s.coverage for s in samples)
+    complete = not interrupted and cov >= MIN_COVERAGE
+    warn = list(warnings)
+    if interrupted:
+        warn.append("interrupted: the average is incomplete")
+    elif cov < MIN_COVERAGE:
+        warn.append(f"coverage {100 * cov:.0f} % of the time: incomplete")
+    if shortened:
+        warn.append(f"shorter than the standard's averaging time of {ref.averaging_time_s / 60:g} min")
+    sel = _emitters(plan, samples, point.near_field)
+    ratio = ratio_x = None
+    ems = ()
+    if sel is not None:
+        ems, res, res_x = sel
+        ratio, ratio_x = float(res.total), float(res_x.total)
+        ver = decide_ratio(ratio, u, plan.rule)
+        ver_x = decide_ratio(ratio_x, u, plan.rule)
+        e_x = float(np.sqrt(sum(m.e_extrapolated_v_per_m ** 2 for m in ems)))
+        pct_f, pct_p, pct_px = ver.percent_field, ver.percent_power, ver_x.percent_power
+        warn += list(res.messages)
+    else:
+        e_x = e * source_factor(plan.sources)
+        ver = decide_field(e, ref.e_v_per_m, u, plan.rule)
+        ver_x = decide_field(e_x, ref.e_v_per_m, u, plan.rule)
+        pol = percent_of_limit(e, ref.e_v_per_m, "e")
+        pct_f, pct_p = pol.percent_field, pol.percent_power
+        pct_px = percent_of_limit(e_x, ref.e_v_per_m, "e").percent_power
+    thr = plan.followup.threshold_v_per_m(ref.e_v_per_m)
+    follow = sel is None and thr is not None and e >= thr
+    flags = 0
+    for s in samples:
+        flags |= s.flags
+    return PointResult(
+        point=point, scheme=point.scheme.name if point.scheme else point.mode, e_v_per_m=float(e),
+        e_max_v_per_m=float(max(s.e_max_v_per_m for s in samples)), axes_v_per_m=axes, u_expanded_db=float(u),
+        n_readings=int(n), coverage=float(cov), complete=complete, flags=int(flags), warnings=tuple(warn),
+        samples=tuple(samples), e_limit_v_per_m=ref.e_v_per_m, percent_field=float(pct_f),
+        percent_power=float(pct_p), verdict=ver.outcome, statement=ver.statement, followup=bool(follow),
+        e_extrapolated_v_per_m=float(e_x), percent_power_extrapolated=float(pct_px),
+        verdict_extrapolated=ver_x.outcome, exposure_ratio=ratio, exposure_ratio_extrapolated=ratio_x,
+        emitters=ems, t_start_utc=min(s.t_start_utc for s in samples),
+        t_end_utc=max(s.t_end_utc for s in samples),
+        duration_s=float(sum(s.t_end_utc - s.t_start_utc for s in samples)))

@@ -1,0 +1,189 @@
+"""Survey plan files (TOML, docs/survey.md): loading and validation into a SurveyPlan.
+
+Every problem raises PlanError with one line naming the file and the entry at fault.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from pathlib import Path
+
+from meterlink.errors import MeterlinkError
+from meterlink.survey.model import MODES, FollowUp, Point, Site, Source, SurveyPlan
+from meterlink.survey.spatial import SCHEMES, scheme_from
+
+_TOP = {"survey", "site", "source", "point"}
+_SURVEY = {"title", "standard", "tier", "rule", "certificate", "interval_ms", "freq_hz", "band_hz",
+           "followup_v_per_m", "followup_percent", "settle_s", "spot_s", "sweep_s"}
+_SITE = {"name", "address", "operator", "technician", "latitude_deg", "longitude_deg", "notes"}
+_SOURCE = {"name", "freq_hz", "technology", "power_w", "max_power_w", "notes"}
+_POINT = {"label", "mode", "height_m", "x_m", "y_m", "lat_deg", "lon_deg", "notes", "near_field",
+          "duration_s", "scheme", "n", "heights_m", "walk_m"}
+
+
+class PlanError(MeterlinkError):
+    """A survey plan that cannot be used."""
+
+
+class _Ctx:
+    def __init__(self, where: str):
+        self.where = where
+
+    def fail(self, what: str, problem: str):
+        raise PlanError(f"plan {self.where}: {what}: {problem}")
+
+    def known(self, d, allowed, what):
+        if not isinstance(d, dict):
+            self.fail(what, "expected a table")
+        extra = sorted(set(d) - allowed)
+        if extra:
+            self.fail(what, f"unknown key {extra[0]!r} (known: {', '.join(sorted(allowed))})")
+
+    def text(self, d, key, what, required=False, default=""):
+        if key not in d:
+            if required:
+                self.fail(what, f"missing {key!r}")
+            return default
+        v = d[key]
+        if not isinstance(v, str) or (required and not v.strip()):
+            self.fail(what, f"{key} must be {'non-empty ' if required else ''}text, got {v!r}")
+        return v
+
+    def num(self, d, key, what, *, default=None, lo=None, hi=None, positive=False):
+        if key not in d:
+            return default
+        v = d[key]
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            self.fail(what, f"{key} must be a number, got {v!r}")
+        if (positive and v <= 0) or (lo is not None and v < lo) or (hi is not None and v > hi):
+            rng = "positive" if positive else f"between {lo} and {hi}"
+            self.fail(what, f"{key} = {v!r} must be {rng}")
+        return float(v)
+
+
+def _read(path_or_dict) -> tuple[dict, str, str]:
+    if isinstance(path_or_dict, dict):
+        return path_or_dict, "<dict>", ""
+    p = Path(path_or_dict)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise PlanError(f"plan {p}: cannot read ({exc.strerror or exc})") from None
+    except UnicodeDecodeError:
+        raise PlanError(f"plan {p}: not UTF-8 text") from None
+    try:
+        return tomllib.loads(text), str(p), text
+    except tomllib.TOMLDecodeError as exc:
+        raise PlanError(f"plan {p}: not valid TOML ({exc})") from None
+
+
+def _point(c: _Ctx, d: dict, i: int) -> Point:
+    what = f"point {i}"
+    c.known(d, _POINT, what)
+    label = c.text(d, "label", what, required=True)
+    what = f"point {i} ({label!r})"
+    mode = c.text(d, "mode", what, default="spot")
+    if mode not in MODES:
+        c.fail(what, f"mode {mode!r} is not one of {', '.join(MODES)}")
+    scheme = None
+    if mode == "spatial":
+        name = c.text(d, "scheme", what, default="three-heights")
+        if name not in SCHEMES:
+            c.fail(what, f"scheme {name!r} is not one of {', '.join(SCHEMES)}")
+        heights = d.get("heights_m")
+        if name == "custom" and (not isinstance(heights, list) or not heights):
+            c.fail(what, "a custom scheme needs heights_m = [...]")
+        n = d.get("n")
+        if n is not None and (isinstance(n, bool) or not isinstance(n, int) or n < 2 or n > 50):
+            c.fail(what, f"n = {n!r} must be a whole number from 2 to 50")
+        try:
+            scheme = scheme_from(name, n, heights)
+        except MeterlinkError as exc:
+            c.fail(what, str(exc))
+    elif any(k in d for k in ("scheme", "n", "heights_m")):
+        c.fail(what, "scheme, n and heights_m belong to mode 'spatial'")
+    walk = d.get("walk_m", [])
+    if walk and mode != "sweep":
+        c.fail(what, "walk_m belongs to mode 'sweep'")
+    if not isinstance(walk, list) or not all(
+            isinstance(w, list) and len(w) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                                         for v in w) for w in walk):
+        c.fail(what, "walk_m must be a list of [x, y] pairs in metres")
+    near = d.get("near_field", False)
+    if not isinstance(near, bool):
+        c.fail(what, f"near_field must be true or false, got {near!r}")
+    x, y = c.num(d, "x_m", what), c.num(d, "y_m", what)
+    if (x is None) != (y is None):
+        c.fail(what, "give both x_m and y_m, or neither")
+    return Point(label=label, mode=mode, height_m=c.num(d, "height_m", what, default=1.5, lo=0.0, hi=10.0),
+                 x_m=x, y_m=y, lat_deg=c.num(d, "lat_deg", what, lo=-90, hi=90),
+                 lon_deg=c.num(d, "lon_deg", what, lo=-180, hi=180), notes=c.text(d, "notes", what),
+                 near_field=near, duration_s=c.num(d, "duration_s", what, positive=True), scheme=scheme,
+                 walk_m=tuple((float(a), float(b)) for a, b in walk))
+
+
+def load_plan(path_or_dict) -> SurveyPlan:
+    """Load and check a plan (a TOML file path or an already parsed dict)."""
+    from meterlink.limits import reference_level
+    from meterlink.verdict import get_rule
+
+    doc, where, text = _read(path_or_dict)
+    c = _Ctx(where)
+    c.known(doc, _TOP, "top level")
+    sv, st = doc.get("survey", {}), doc.get("site", {})
+    c.known(sv, _SURVEY, "[survey]")
+    c.known(st, _SITE, "[site]")
+    std = c.text(sv, "standard", "[survey]", required=True)
+    tier = c.text(sv, "tier", "[survey]", default="public")
+    rule = c.text(sv, "rule", "[survey]", required=True)
+    try:
+        reference_level(std, tier, 1e9)
+        get_rule(rule)
+    except MeterlinkError as exc:
+        c.fail("[survey]", str(exc))
+    band = sv.get("band_hz")
+    if band is not None:
+        if (not isinstance(band, list) or len(band) != 2 or not all(isinstance(v, (int, float)) for v in band)
+                or not 0 < band[0] < band[1]):
+            c.fail("[survey]", f"band_hz must be [low, high] with 0 < low < high, got {band!r}")
+        band = (float(band[0]), float(band[1]))
+    freq = c.num(sv, "freq_hz", "[survey]", positive=True)
+    if freq is not None and band is not None:
+        c.fail("[survey]", "give freq_hz or band_hz, not both")
+    site = Site(name=c.text(st, "name", "[site]", required=True), address=c.text(st, "address", "[site]"),
+                operator=c.text(st, "operator", "[site]"), technician=c.text(st, "technician", "[site]"),
+                latitude_deg=c.num(st, "latitude_deg", "[site]", lo=-90, hi=90),
+                longitude_deg=c.num(st, "longitude_deg", "[site]", lo=-180, hi=180),
+                notes=c.text(st, "notes", "[site]"))
+    sources = []
+    for i, s in enumerate(doc.get("source", []), 1):
+        what = f"source {i}"
+        c.known(s, _SOURCE, what)
+        f = c.num(s, "freq_hz", what, positive=True)
+        if f is None:
+            c.fail(what, "missing 'freq_hz'")
+        p, pm = c.num(s, "power_w", what, positive=True), c.num(s, "max_power_w", what, positive=True)
+        if p is not None and pm is not None and pm < p:
+            c.fail(what, f"max_power_w {pm:g} is below power_w {p:g}")
+        sources.append(Source(c.text(s, "name", what, required=True), f, c.text(s, "technology", what), p, pm,
+                              c.text(s, "notes", what)))
+    raw_points = doc.get("point", [])
+    if not isinstance(raw_points, list):
+        c.fail("point", "use [[point]] tables")
+    points = tuple(_point(c, p, i) for i, p in enumerate(raw_points, 1))
+    labels = [p.label for p in points]
+    dup = next((lb for lb in labels if labels.count(lb) > 1), None)
+    if dup is not None:
+        c.fail("points", f"label {dup!r} is used twice")
+    interval = c.num(sv, "interval_ms", "[survey]", default=1000, lo=10, hi=3_600_000)
+    return SurveyPlan(
+        site=site, standard=std, tier=tier, rule=rule,
+        certificate=c.text(sv, "certificate", "[survey]", required=True), points=points, sources=tuple(sources),
+        title=c.text(sv, "title", "[survey]"), interval_ms=int(interval), freq_hz=freq, band_hz=band,
+        followup=FollowUp(c.num(sv, "followup_v_per_m", "[survey]", positive=True),
+                          c.num(sv, "followup_percent", "[survey]", positive=True)),
+        settle_s=c.num(sv, "settle_s", "[survey]", default=2.0, lo=0.0, hi=600.0),
+        spot_s=c.num(sv, "spot_s", "[survey]", default=5.0, positive=True),
+        sweep_s=c.num(sv, "sweep_s", "[survey]", default=60.0, positive=True),
+        source_text=text, source_path=where if where != "<dict>" else "")

@@ -1,0 +1,202 @@
+"""Run a survey: open the link, fix the plan's choices in the database, then measure each point
+(place the probe, let it settle, capture, assess, store) with an optional live readout."""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import threading
+import time
+from typing import Callable
+
+from meterlink.certificate import DipoleCertificate, load_certificate
+from meterlink.errors import LinkError, MeterlinkError
+from meterlink.link import Connected, MeterLink
+from meterlink.protocol import SensorKind
+from meterlink.storage import BatchWriter, Store
+from meterlink.survey import store as sstore
+from meterlink.survey.assess import assess, broadband_reference
+from meterlink.survey.capture import Capture, View
+from meterlink.survey.model import Point, PointResult, SurveyPlan
+from meterlink.survey.plan import load_plan
+
+CONNECT_TIMEOUT_S = 15.0
+
+
+def walk_path(waypoints, fallback):
+    """frac (0..1 of the sweep) and height -> (x, y, z) along a polyline at constant speed."""
+    pts = [tuple(map(float, w)) for w in waypoints] or ([fallback[:2]] if fallback else [])
+    if not pts:
+        return None
+    seg = [math.dist(a, b) for a, b in zip(pts, pts[1:])]
+    total = sum(seg)
+
+    def at(frac: float, height_m: float):
+        if total <= 0:
+            return (pts[0][0], pts[0][1], float(height_m))
+        d, i = max(0.0, min(1.0, frac)) * total, 0
+        while i < len(seg) - 1 and d > seg[i]:
+            d -= seg[i]
+            i += 1
+        f = d / seg[i] if seg[i] else 0.0
+        (x0, y0), (x1, y1) = pts[i], pts[i + 1]
+        return (x0 + f * (x1 - x0), y0 + f * (y1 - y0), float(height_m))
+    return at
+
+
+class Survey:
+    """One survey session over one meter; use as a context manager, then measure() points."""
+
+    def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
+                 on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
+                 link_factory=None, **link_options):
+        self.store, self.port, self.plan = store, port, plan
+        self.cert = load_certificate(plan.certificate)
+        self.dipole = isinstance(self.cert, DipoleCertificate)
+        band = plan.freq_hz if plan.freq_hz is not None else (plan.band_hz or self.cert.freq_range_hz)
+        self.ref = broadband_reference(plan.standard, plan.tier, band)
+        self.mover, self.ready = mover, ready
+        self.on_view = on_view
+        self.link = MeterLink(port, plan.interval_ms, link_factory=link_factory, **link_options)
+        self.session_id: int | None = None
+        self.results: list[PointResult] = []
+        self.interrupt_event = threading.Event()
+        self._writer = None
+        self.capture: Capture | None = None
+
+    def interrupt(self) -> None:
+        """Stop the point being measured; it is kept, marked incomplete."""
+        self.interrupt_event.set()
+
+    # -- lifecycle -----------------------------------------------------------------------------
+    def __enter__(self) -> "Survey":
+        plan = self.plan
+        self.link.start(require_open=True)
+        try:
+            self.session_id = self.store.begin_session(
+                "survey", self.port, interval_ms=plan.interval_ms, freq_hz=plan.freq_hz,
+                band_lo_hz=plan.band_hz[0] if plan.band_hz else None,
+                band_hi_hz=plan.band_hz[1] if plan.band_hz else None, notes=plan.title or plan.site.name)
+            self._writer = BatchWriter(self.store, self.session_id)
+            names = {s.freq_hz: s.name for s in plan.sources}
+            self.capture = Capture(
+                self.link, self._writer, self.cert, standard=plan.standard, tier=plan.tier,
+                e_ref_v_per_m=self.ref.e_v_per_m, freq_hz=plan.freq_hz, band_hz=plan.band_hz,
+                settle_s=plan.settle_s, on_view=self.on_view, stop_event=self.interrupt_event,
+                names=lambda f: next((n for sf, n in names.items() if abs(sf - f) <= 0.005 * sf),
+                                     f"{f / 1e6:.1f} MHz"),
+                followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m))
+            self._connect()
+            sstore.create_survey(self.store, self.session_id, plan, self.cert, self.ref,
+                                 "dipole" if self.dipole else "probe")
+        except BaseException:
+            self.__exit__(None, None, None)
+            raise
+        return self
+
+    def _connect(self) -> None:
+        deadline = time.monotonic() + CONNECT_TIMEOUT_S
+        while self.capture.connected is None:
+            if time.monotonic() > deadline or (self.link.finished.is_set() and self.link.queue.empty()):
+                raise LinkError(f"no handshake with the meter on {self.port} within {CONNECT_TIMEOUT_S:g} s")
+            item = self.link.get(0.1)
+            if item is not None:
+                self.capture._item(item)
+        c: Connected = self.capture.connected
+        i = c.ident
+        dev = self.store.device_id(i.model, i.serial, i.probe_serial, i.cert_ref, i.sensor_kind,
+                                   f"{i.fw_major}.{i.fw_minor}.{i.fw_patch}", f"{i.proto_major}.{i.proto_minor}")
+        self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
+                                  clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
+        if (i.sensor_kind == SensorKind.DIPOLE_RX) != self.dipole:
+            raise MeterlinkError(f"certificate {self.plan.certificate!r} is for a "
+                                 f"{'dipole receiver' if self.dipole else 'probe'} but the meter on {self.port} "
+                                 f"reports sensor kind {i.sensor_kind}")
+
+    def __exit__(self, *exc) -> None:
+        self.link.stop()
+        if self._writer is not None:
+            if self.capture is not None:
+                self.capture.drain()
+            self._writer.close()
+        if self.session_id is not None:
+            self.store.end_session(self.session_id)
+            if "survey" in self.store.db.table_names() and self.store.db["survey"].count_where(
+                    "session_id = ?", [self.session_id]):
+                sstore.end_survey(self.store, self.session_id)
+
+    # -- points --------------------------------------------------------------------------------
+    def _duration(self, p: Point) -> float:
+        if p.duration_s is not None:
+            return p.duration_s
+        return {"spot": self.plan.spot_s, "spatial": self.plan.spot_s, "sweep": self.plan.sweep_s,
+                "average": self.ref.averaging_time_s}[p.mode]
+
+    def measure(self, p: Point) -> PointResult:
+        """Place, settle and capture every height of the point, then assess and store it."""
+        cap = self.capture
+        self.interrupt_event.clear()
+        no = len(self.results) + 1
+        heights = p.scheme.heights_m if p.mode == "spatial" and p.scheme else (p.height_m,)
+        dur = self._duration(p)
+        samples, interrupted = [], False
+        cap.trace = []
+        for k, h in enumerate(heights):
+            base = {"label": p.label, "mode": p.mode, "height_m": h,
+                    "sample": f"height {k + 1} of {len(heights)}" if len(heights) > 1 else ""}
+            cap.position = p.position_m(h)
+            if cap.position is not None and self.mover is not None:
+                self.mover(cap.position)
+            elif self.ready is not None:
+                self.ready(p, h)
+            cap.settle(base, no, k, host_timeout_s=2 * self.plan.settle_s + 30)
+            walk = walk_path(p.walk_m, cap.position) if p.mode == "sweep" else None
+            s, interrupted = cap.collect(dur, base, no, k, height_m=h, walk=walk,
+                                         mover=self.mover if walk else None)
+            if p.mode == "sweep":
+                s = self._max_hold(s, no, k)
+            samples.append(s)
+            if interrupted:
+                break
+        if not any(s.n_readings for s in samples):
+            raise MeterlinkError(f"point {p.label!r}: no readings arrived from {self.port}")
+        samples = [s for s in samples if s.n_readings]
+        res = assess(self.plan, p, tuple(samples), self.ref, interrupted=interrupted,
+                     shortened=p.mode == "average" and dur < self.ref.averaging_time_s - 1e-9,
+                     warnings=("sweep: maximum hold of single readings, not an average",) if p.mode == "sweep" else ())
+        self._writer.flush()
+        sstore.add_point(self.store, self.session_id, no, res, cap.trace)
+        cap.trace = []
+        self.results.append(res)
+        return res
+
+    def _max_hold(self, s, no, k):
+        used = [t for t in self.capture.trace if t["point_no"] == no and t["sample_no"] == k and t["used"]
+                and t["e_v_per_m"] is not None and math.isfinite(t["e_v_per_m"])]
+        if not used:
+            return s
+        best = max(used, key=lambda t: t["e_v_per_m"])
+        pos = (best["x_m"], best["y_m"], best["z_m"]) if best["x_m"] is not None else s.position_m
+        return dataclasses.replace(s, e_v_per_m=s.e_max_v_per_m, position_m=pos)
+
+
+def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Callable | None = None,
+             on_view: Callable[[View], None] | None = None, **link_options) -> int:
+    """Measure every point of a plan against the meter on port; returns the survey session id.
+
+    mover(position_m) is called to place the probe (the simulated meter's move_to); console
+    (a rich Console) shows the live readout and one line per point."""
+    plan = load_plan(plan_path_or_dict)
+    from meterlink.survey.readout import LiveReadout
+
+    with Store(db_path) as store, LiveReadout(console, on_view) as live:
+        with Survey(store, port, plan, mover=mover, on_view=live.update, **link_options) as sv:
+            for p in plan.points:
+                try:
+                    res = sv.measure(p)
+                except KeyboardInterrupt:
+                    break
+                live.point_done(res)
+                if not res.complete and sv.interrupt_event.is_set():
+                    break
+            return int(sv.session_id)

@@ -1,0 +1,101 @@
+"""Survey rows in a meterlink database (tables of schema migration 2, docs/schema.md)."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import time
+from dataclasses import asdict
+
+from meterlink import __version__
+from meterlink.storage import Store, StorageError
+from meterlink.survey.model import PointResult, SurveyPlan
+
+
+def _num(v):
+    return None if v is None or (isinstance(v, float) and not math.isfinite(v)) else v
+
+
+def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, sensor: str) -> None:
+    """Record the plan's fixed choices (standard, tier, rule, certificate) before measuring."""
+    from meterlink.certificate import dump_certificate
+
+    sha = hashlib.sha256(dump_certificate(cert).encode()).hexdigest()
+    row = {"session_id": session_id, "title": plan.title, "site_json": json.dumps(asdict(plan.site)),
+           "standard": plan.standard, "tier": plan.tier, "decision_rule": plan.rule,
+           "certificate_name": plan.certificate, "certificate_number": cert.certificate_number,
+           "certificate_due": cert.due_date.isoformat(), "certificate_sha256": sha, "sensor": sensor,
+           "freq_hz": plan.freq_hz, "band_lo_hz": ref.band_hz[0], "band_hi_hz": ref.band_hz[1],
+           "e_ref_v_per_m": ref.e_v_per_m, "e_ref_freq_hz": ref.freq_hz, "averaging_time_s": ref.averaging_time_s,
+           "followup_v_per_m": plan.followup.v_per_m, "followup_percent": plan.followup.percent_field,
+           "plan_text": plan.source_text, "plan_path": plan.source_path, "created_utc": time.time(),
+           "software_version": __version__}
+    with store._lock, store.db.atomic():
+        store.db["survey"].insert(row)
+        store.db["survey_sources"].insert_all(
+            [{"session_id": session_id, "name": s.name, "freq_hz": s.freq_hz, "technology": s.technology,
+              "power_w": s.power_w, "max_power_w": s.max_power_w, "notes": s.notes} for s in plan.sources])
+
+
+def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trace: list[dict]) -> int:
+    """Store one assessed point with its samples, emitters and reading trace, in one transaction."""
+    p = r.point
+    row = {"session_id": session_id, "point_no": point_no, "label": p.label, "mode": p.mode, "scheme": r.scheme,
+           "x_m": p.x_m, "y_m": p.y_m, "lat_deg": p.lat_deg, "lon_deg": p.lon_deg, "height_m": p.height_m,
+           "notes": p.notes, "near_field": int(p.near_field), "duration_s": r.duration_s,
+           "t_start_utc": _num(r.t_start_utc), "t_end_utc": _num(r.t_end_utc), "n_readings": r.n_readings,
+           "e_v_per_m": _num(r.e_v_per_m), "e_max_v_per_m": _num(r.e_max_v_per_m),
+           "ex_v_per_m": _num(r.axes_v_per_m[0]), "ey_v_per_m": _num(r.axes_v_per_m[1]),
+           "ez_v_per_m": _num(r.axes_v_per_m[2]), "u_expanded_db": r.u_expanded_db, "coverage": r.coverage,
+           "complete": int(r.complete), "flags": r.flags, "warnings": json.dumps(list(r.warnings)),
+           "e_limit_v_per_m": r.e_limit_v_per_m, "percent_field": _num(r.percent_field),
+           "percent_power": _num(r.percent_power), "exposure_ratio": _num(r.exposure_ratio),
+           "verdict": r.verdict, "statement": r.statement, "followup": int(r.followup),
+           "e_extrapolated_v_per_m": _num(r.e_extrapolated_v_per_m),
+           "exposure_ratio_extrapolated": _num(r.exposure_ratio_extrapolated),
+           "percent_power_extrapolated": _num(r.percent_power_extrapolated),
+           "verdict_extrapolated": r.verdict_extrapolated}
+    with store._lock, store.db.atomic():
+        pid = int(store.db["survey_points"].insert(row).last_pk)
+        store.db["survey_samples"].insert_all(
+            [{"point_id": pid, "sample_no": i, "height_m": s.height_m,
+              "x_m": s.position_m[0] if s.position_m else None, "y_m": s.position_m[1] if s.position_m else None,
+              "e_v_per_m": _num(s.e_v_per_m), "e_max_v_per_m": _num(s.e_max_v_per_m),
+              "u_expanded_db": s.u_expanded_db, "n_readings": s.n_readings, "coverage": s.coverage,
+              "t_start_utc": _num(s.t_start_utc), "t_end_utc": _num(s.t_end_utc)} for i, s in enumerate(r.samples)])
+        store.db["survey_emitters"].insert_all(
+            [{"point_id": pid, "name": m.name, "freq_hz": m.freq_hz, "e_v_per_m": m.e_v_per_m,
+              "e_extrapolated_v_per_m": m.e_extrapolated_v_per_m, "ratio": m.ratio, "share": m.share}
+             for m in r.emitters])
+        store.db["survey_trace"].insert_all([{**t, "session_id": session_id, "e_v_per_m": _num(t["e_v_per_m"])}
+                                             for t in trace])
+    return pid
+
+
+def end_survey(store: Store, session_id: int) -> None:
+    with store._lock, store.db.atomic():
+        store.db["survey"].update(session_id, {"ended_utc": time.time()})
+
+
+def load_survey(store: Store, session_id: int) -> dict:
+    """The survey row, its sources, points (each with samples and emitters) and trace."""
+    db = store.db
+    with store._lock:
+        if "survey" not in db.table_names():
+            raise StorageError(f"{str(store.path)!r} holds no surveys")
+        rows = list(db["survey"].rows_where("session_id = ?", [session_id]))
+        if not rows:
+            raise StorageError(f"session {session_id} in {str(store.path)!r} is not a survey")
+        sv = rows[0]
+        sv["site"] = json.loads(sv["site_json"] or "{}")
+        sv["sources"] = list(db["survey_sources"].rows_where("session_id = ?", [session_id], order_by="id"))
+        pts = list(db["survey_points"].rows_where("session_id = ?", [session_id], order_by="point_no"))
+        for p in pts:
+            p["warnings"] = json.loads(p["warnings"] or "[]")
+            p["samples"] = list(db["survey_samples"].rows_where("point_id = ?", [p["id"]], order_by="sample_no"))
+            p["emitters"] = list(db["survey_emitters"].rows_where("point_id = ?", [p["id"]], order_by="freq_hz"))
+        sv["points"] = pts
+        sv["trace"] = list(db["survey_trace"].rows_where("session_id = ?", [session_id], order_by="t_utc, id"))
+    sv["session"] = store.session(session_id)
+    return sv
