@@ -73,10 +73,17 @@ EXCURSIONS = [(36000.0, 37200.0), (50400.0, 51300.0), (115200.0, 118800.0)]
 def _faults(days: float, seed: int) -> dict:
     rng = np.random.default_rng(seed)
     sched = []
+
+    def when(d):
+        # keep faults an hour clear of the excursions: at this speed a reconnection costs device hours
+        while True:
+            at = float(rng.uniform(0.05, 0.95) * 86400 + d * 86400)
+            if all(not (a - 3600 <= at % (2 * 86400) <= b + 3600) for a, b in EXCURSIONS):
+                return at
     for d in range(int(math.ceil(days))):
-        for at in rng.uniform(0.05, 0.95, 2) * 86400 + d * 86400:
-            sched.append({"kind": "disconnect", "at_s": float(at), "down_s": float(rng.uniform(120, 900))})
-        sched.append({"kind": "restart", "at_s": float(rng.uniform(0.1, 0.9) * 86400 + d * 86400)})
+        for _ in range(2):
+            sched.append({"kind": "disconnect", "at_s": when(d), "down_s": float(rng.uniform(120, 900))})
+        sched.append({"kind": "restart", "at_s": when(d)})
     return {"corrupt": 0.003, "garbage": 0.002, "schedule": sched}
 
 
