@@ -1,0 +1,73 @@
+"""meterlink lab: import hand readings -> certificate + HTML; budget JSON; one-line errors."""
+
+import json
+import subprocess
+import sys
+import datetime as dt
+
+import pytest
+
+from meterlink.certificate import load_certificate
+from meterlink.cli import SAFETY_LINE, main
+from meterlink.lab import procedures as pr
+from meterlink.lab.session import LabSession
+from simulators.lab import InProcessLab
+from tests.conftest import ROOT
+
+SESSION_TOML = """
+operator = "A <b>Tester</b> & co"
+[probe]
+model = "ML-EP3 (simulated)"
+serial = "EP-4417"
+[calibration]
+lab = "Test lab (invented)"
+certificate_number = "LAB-CLI-1"
+date = 2027-06-01
+due = 2028-06-01
+[method]
+kind = "tem-cell"
+spacing_m = 0.15
+"""
+
+
+def _readings(tmp_path):
+    s = LabSession("m", "s", "l", "n", dt.date(2027, 6, 1), dt.date(2028, 6, 1))
+    res = pr.run_plan(pr.full_plan(s, freqs=(1e8, 1e9, 3e9), levels=(0.2, 1, 5, 20), iso_step_deg=45),
+                      InProcessLab(seed=5), repeats=3)
+    pr.export_csv(res, tmp_path / "hand.csv")
+    (tmp_path / "session.toml").write_text(SESSION_TOML)
+
+
+def test_import_writes_loadable_certificate_and_escaped_html(tmp_path, capsys):
+    _readings(tmp_path)
+    out = tmp_path / "out"
+    rc = main(["lab", "import", str(tmp_path / "hand.csv"), "--session", str(tmp_path / "session.toml"),
+               "--out", str(out), "--json"])
+    assert rc == 0
+    summary = json.loads(capsys.readouterr().out)
+    cert = load_certificate(out / "certificate.toml")
+    assert cert.certificate_number == "LAB-CLI-1" and cert.freq_range_hz == (1e8, 3e9)
+    assert summary["u_expanded_db"] > 0 and summary["safety"] == SAFETY_LINE
+    page = (out / "certificate.html").read_text()
+    assert "A &lt;b&gt;Tester&lt;/b&gt; &amp; co" in page and "<b>Tester" not in page
+    assert page.count("data:image/png;base64,") == 3
+    assert "+/- dB about the mean" in page and "max/min ratio (dB)" in page
+
+
+def test_budget_json(tmp_path, capsys):
+    (tmp_path / "session.toml").write_text(SESSION_TOML)
+    assert main(["lab", "budget", "--session", str(tmp_path / "session.toml"), "--json"]) == 0
+    b = json.loads(capsys.readouterr().out)
+    assert b["u_expanded_db"] == pytest.approx(2 * b["u_c_db"])
+    assert {r["name"] for r in b["rows"]} >= {"power measurement", "mismatch", "septum spacing", "repeatability"}
+
+
+def test_bad_csv_is_one_line_error_naming_the_file(tmp_path):
+    bad = tmp_path / "bad.csv"
+    bad.write_text("procedure,freq_hz,counts_x\nzero,1e9,3\n")
+    p = subprocess.run([sys.executable, "-m", "meterlink", "lab", "import", str(bad), "--out", str(tmp_path / "o")],
+                       capture_output=True, text=True, cwd=ROOT, timeout=60)
+    assert p.returncode == 2
+    lines = p.stderr.strip().splitlines()
+    assert len(lines) == 1 and str(bad) in lines[0] and "missing column(s) counts_y, counts_z" in lines[0]
+    assert "Traceback" not in p.stderr
