@@ -84,13 +84,21 @@ def governing_level(standard: str, tier: str, freq_hz=None, band=None, fallback_
     lo, hi = band if band else (fallback_range or (None, None))
     if not lo or not hi:
         raise MeterlinkError("no frequency declared and no band known: give --freq or --band")
-    grid = np.unique(np.concatenate([np.geomspace(lo, hi, 241), [lo, hi]]))
+    def scan(freqs):
+        found = []
+        for f in freqs:
+            try:
+                found.append(reference_level(standard, tier, float(f), WHOLE_BODY))
+            except MeterlinkError:
+                continue
+        return found
+
+    levels = scan(np.geomspace(lo, hi, 241))
+    # tables step at their breakpoints: look just either side of every edge inside the band
+    edges = {e for rl in levels for e in (rl.band_lo_hz, rl.band_hi_hz) if lo < e < hi}
+    levels += scan([e * (1 + s) for e in edges for s in (-1e-9, 1e-9)])
     best = None
-    for f in grid:
-        try:
-            rl = reference_level(standard, tier, float(f), WHOLE_BODY)
-        except MeterlinkError:
-            continue
+    for rl in levels:
         if rl.e_v_per_m and (best is None or rl.e_v_per_m < best.e_v_per_m):
             best = rl
     if best is None:
@@ -185,6 +193,15 @@ def assess_spectrum(series, standard: str, tier: str, rule: str, *, near_field: 
                         float(mf.share[i])) for i, f in enumerate(freqs)]
     emitters.sort(key=lambda em: -em.share)
     notes = list(series.warnings) + list(mf.messages)
+    over = freqs[(series.flags[seen] & ABOVE_RANGE) != 0]
+    if over.size:
+        notes.append("receiver above its calibrated level range at " + ", ".join(units.format_frequency(f) for f in over)
+                     + ": those emitters are lower bounds")
+        if verdict.outcome == "compliant":
+            verdict = Verdict("undecided", r.name, verdict.ratio_field, verdict.ratio_power, verdict.percent_field,
+                              verdict.percent_power, u, verdict.k, verdict.acceptance_limit_ratio,
+                              "Undecided: the receiver was overloaded at some emitters, so the measurement cannot "
+                              "show compliance as it stands; add attenuation and measure again.")
     peak = float(np.sqrt(p.sum(axis=1)).max())      # largest total (all emitters) of one sweep
     window = None
     try:

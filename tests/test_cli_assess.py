@@ -1,0 +1,80 @@
+"""assess, recalibrate, record-with-calibration and demo, through the CLI entry point."""
+
+import json
+import sqlite3
+
+import pytest
+
+from meterlink.cli import SAFETY_LINE, main
+from meterlink.recorder import Recorder
+from meterlink.storage import Store
+from simulators.pty_meter import SimulatedMeter
+
+
+@pytest.fixture(scope="module")
+def recorded_db(tmp_path_factory):
+    db = tmp_path_factory.mktemp("cli") / "m.db"
+    with SimulatedMeter("demo", sensor="probe", seed=3, speed=100.0) as sim, Store(db) as store:
+        Recorder(store, sim.port, interval_ms=1000, duration_s=120.0, host_timeout_s=30.0, freq_hz=101.8e6).run()
+    return db
+
+
+def test_assess_json_labels_both_percent_terms_and_records_the_rule(recorded_db, capsys):
+    assert main(["assess", "--db", str(recorded_db), "--standard", "icnirp-2020", "--tier", "public", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["decision_rule"] == "guarded"
+    assert out["reference_level_e_v_per_m"] == pytest.approx(27.7)   # ICNIRP 2020 Table 5, 30-400 MHz public
+    assert out["percent_of_power_density_level"] == pytest.approx(out["percent_of_field_level"] ** 2 / 100)
+    assert out["outcome"] in ("compliant", "undecided", "not compliant")
+    assert out["caution"] == SAFETY_LINE
+    with Store(recorded_db) as store:
+        kinds = [e["kind"] for e in store.events(1)]
+    assert kinds.index("assessment_rule") < kinds.index("assessment")
+
+
+def test_assess_table_carries_the_cautions(recorded_db, capsys):
+    assert main(["assess", "--db", str(recorded_db), "--standard", "fcc-1310", "--tier", "occupational"]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "energised antennas" in out and "power-density level" in out
+
+
+@pytest.mark.parametrize("argv, needle", [
+    (["--standard", "no-such"], "unknown standard"),
+    (["--standard", "icnirp-2020", "--rule", "lenient"], "unknown decision rule"),
+    (["--standard", "icnirp-2020", "--freq", "fast"], "--freq"),
+    (["--standard", "icnirp-2020", "--session", "99"], "no session 99"),
+])
+def test_assess_bad_input_is_one_line(recorded_db, capsys, argv, needle):
+    code = main(["assess", "--db", str(recorded_db), "--tier", "public", *argv])
+    err = capsys.readouterr().err
+    assert code == 2 and needle in err and len(err.strip().splitlines()) == 1 and "Traceback" not in err
+
+
+def test_recalibrate_keeps_earlier_calibrations(recorded_db, capsys):
+    assert main(["recalibrate", "--db", str(recorded_db), "--certificate", "demo-probe", "--json"]) == 0
+    first = json.loads(capsys.readouterr().out)
+    assert main(["recalibrate", "--db", str(recorded_db), "--certificate", "demo-probe", "--json"]) == 0
+    second = json.loads(capsys.readouterr().out)
+    assert len(second["calibrations"]) == len(first["calibrations"]) + 1
+    assert second["e_rms_v_per_m"] == pytest.approx(first["e_rms_v_per_m"])
+    con = sqlite3.connect(recorded_db)
+    n_values = con.execute("select count(*) from field_values").fetchone()[0]
+    n_readings = con.execute("select count(*) from readings").fetchone()[0]
+    assert n_values == n_readings * len(second["calibrations"])
+
+
+def test_recalibrate_with_a_broken_certificate_is_one_line(recorded_db, tmp_path, capsys):
+    bad = tmp_path / "bad.toml"
+    bad.write_text('format = "meterlink-cert/1"\nkind = "isotropic-probe"\n')
+    assert main(["recalibrate", "--db", str(recorded_db), "--certificate", str(bad)]) == 2
+    err = capsys.readouterr().err
+    assert str(bad) in err and len(err.strip().splitlines()) == 1
+
+
+def test_demo_runs_end_to_end(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path / "d"), "--minutes", "2", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert [s["assessment"]["mode"] for s in out["sessions"]][:2] == ["broadband", "frequency-selective"]
+    assert out["sessions"][0]["readings"] >= 110
+    assert out["sessions"][1]["assessment"]["emitters"]
+    assert (tmp_path / "d" / "demo.db").is_file()
