@@ -211,8 +211,8 @@ def observe(c: Commander, *, duration_s: float = MIN_DURATION_S, interval_ms: in
             obs.settings[key] = c.get_setting(key)
         except DeviceFault as exc:
             obs.settings[key] = exc.fault
-        except MeterlinkError as exc:
-            obs.settings[key] = str(exc)
+        except MeterlinkError as exc:  # no reply or a malformed one: the key stays absent
+            obs.errors[f"setting {key.name.lower()}"] = str(exc)
 
     lo, hi = (obs.ident.min_interval_ms, obs.ident.max_interval_ms) if obs.ident else (interval_ms, interval_ms)
     obs.interval_ms = iv = int(min(max(interval_ms, lo), hi)) or 1
@@ -222,8 +222,7 @@ def observe(c: Commander, *, duration_s: float = MIN_DURATION_S, interval_ms: in
         obs.start_ack = start = c.command(FrameType.START)
         obs.stream_status = c.request(FrameType.STATUS_QUERY)
         dur_ms = int(duration_s * 1000)
-        got = c.wait_for(lambda f: 0 <= _after(start.frame.tick_ms, f.tick_ms) < HALF_TICK // 2
-                         and _after(start.frame.tick_ms, f.tick_ms) >= dur_ms, 2 * duration_s + 10,
+        got = c.wait_for(lambda f: _after(start.frame.tick_ms, f.tick_ms) >= dur_ms, 2 * duration_s + 10,
                          _index(c, start))
         if got is None:
             raise NoReply(f"device time did not reach {duration_s:g} s after START within {2 * duration_s + 10:g} s")
@@ -281,11 +280,11 @@ def _eval_ident(o: Observations):
             bad.append(f"{name} empty")
     if not 0 < i.min_interval_ms <= i.max_interval_ms:
         bad.append(f"interval range {i.min_interval_ms}..{i.max_interval_ms} ms")
-    lens = "/".join(str(len(getattr(i, n))) for n in ("model", "serial", "probe_serial", "cert_ref"))
-    ok = f"kind {i.sensor_kind} ({SensorKind(i.sensor_kind).name})" if not bad or "unknown sensor" not in bad[0] else ""
     if bad:
         return False, "; ".join(bad)
-    return True, f"{ok}, text lengths {lens} bytes, intervals {i.min_interval_ms}..{i.max_interval_ms} ms"
+    lens = "/".join(str(len(getattr(i, n))) for n in ("model", "serial", "probe_serial", "cert_ref"))
+    return True, (f"kind {i.sensor_kind} ({SensorKind(i.sensor_kind).name}), text lengths {lens} bytes, "
+                  f"intervals {i.min_interval_ms}..{i.max_interval_ms} ms")
 
 
 def _eval_version(o: Observations):
@@ -435,10 +434,12 @@ def _eval_settings(o: Observations):
     bad = []
     for key in SettingKey:
         v = o.settings.get(key)
-        if isinstance(v, Fault):
+        if key not in o.settings:
+            bad.append(f"{key.name.lower()}: {o.errors.get(f'setting {key.name.lower()}', 'no reply')}")
+        elif isinstance(v, Fault):
             bad.append(f"{key.name.lower()}: FAULT {v.code}")
         elif key in _NUMBER_KEYS and not isinstance(v, int):
-            bad.append(f"{key.name.lower()}: " + ("number expected" if isinstance(v, str) and o.settings else "no reply"))
+            bad.append(f"{key.name.lower()}: number expected")
         elif key not in _NUMBER_KEYS and not (isinstance(v, str) and _printable(v)):
             bad.append(f"{key.name.lower()}: printable text expected")
     s = o.settings

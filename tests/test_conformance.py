@@ -88,3 +88,20 @@ def test_cli_usage_errors_exit_2(capsys):
     assert "cannot open port" in err and len(err.strip().splitlines()) == 1
     assert main(["check-device", "--port", "loop://", "--duration", "5"]) == 2
     assert "--duration '5' must be at least 12" in capsys.readouterr().err
+
+
+def test_restart_without_boot_is_caught_from_seq_and_tick():
+    """docs/protocol.md Sequence numbers: a restart shows as SEQ near zero with TICK going back."""
+    from meterlink.commander import Received
+    from meterlink.conformance import Observations, evaluate
+    from meterlink.protocol import Frame, FrameType
+
+    def frames(seqs_ticks):
+        return [Received(Frame(FrameType.AXES, s, t, bytes(14)), 0.0) for s, t in seqs_ticks]
+
+    before = [(s, 5000 + 100 * s) for s in range(10, 20)]
+    obs = Observations(frames=frames(before + [(0, 40), (1, 140)]))
+    res = {r.key: r for r in evaluate(obs)}
+    assert res["boot"].status == "fail" and "1 restart(s) without BOOT" in res["boot"].evidence
+    obs = Observations(frames=frames(before))
+    assert {r.key: r.status for r in evaluate(obs)}["boot"] == "skip"

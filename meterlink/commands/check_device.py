@@ -2,7 +2,7 @@
 
 Exit codes: 0 every item passed (or could not be observed), 1 at least one item failed, 2 usage
 error or a port that cannot be opened. With the default 12 s of device streaming a real meter
-at 1x takes about 15-20 s; the simulated meter at --speed 100 takes well under a second.
+at 1x takes about 15 s; the simulated meter at --speed 100 takes well under a second.
 """
 
 from __future__ import annotations
