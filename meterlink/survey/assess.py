@@ -12,7 +12,8 @@ from meterlink.exposure import multi_frequency, percent_of_limit
 from meterlink.limits import reference_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
-from meterlink.verdict import decide_field, decide_ratio
+from meterlink.calibrate import ABOVE_RANGE
+from meterlink.verdict import NOT_COMPLIANT, UNDECIDED, decide_field, decide_ratio
 
 #: An emitter matches a listed source when their frequencies agree within this fraction.
 MATCH_REL = 0.005
@@ -52,8 +53,10 @@ def broadband_reference(standard: str, tier: str, band_hz: tuple[float, float] |
             best = lv
     for f in grid:
         consider(f)
-    for f in sorted(edges):    # a monotone law between table rows is lowest at a row edge
-        consider(f)
+    for f in sorted(edges):    # a monotone law between table rows is lowest at (either side of) a row edge
+        for g in (f * (1 - 1e-9), f, f * (1 + 1e-9)):
+            if lo <= g <= hi:
+                consider(g)
     if best is None:
         raise MeterlinkError(f"{standard} {tier}: no E reference level between {lo:g} and {hi:g} Hz")
     return Broadband(float(best.e_v_per_m), float(best.freq_hz), float(best.averaging_time_s or 360.0),
@@ -134,19 +137,27 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
         pol = percent_of_limit(e, ref.e_v_per_m, "e")
         pct_f, pct_p = pol.percent_field, pol.percent_power
         pct_px = percent_of_limit(e_x, ref.e_v_per_m, "e").percent_power
-    thr = plan.followup.threshold_v_per_m(ref.e_v_per_m)
-    follow = sel is None and thr is not None and e >= thr
     flags = 0
     for s in samples:
         flags |= s.flags
+    verdict, statement, verdict_x = ver.outcome, ver.statement, ver_x.outcome
+    if flags & ABOVE_RANGE:    # a reading or a line beyond the instrument's range: the value is a lower bound
+        complete = False
+        warn.append("above the instrument's range: the value is a lower bound")
+        verdict = verdict if verdict == NOT_COMPLIANT else UNDECIDED
+        verdict_x = verdict_x if verdict_x == NOT_COMPLIANT else UNDECIDED
+        statement = ("Undecided: part of the field was above the instrument's calibrated range, so the value "
+                     "is only a lower bound. " + statement)
+    thr = plan.followup.threshold_v_per_m(ref.e_v_per_m)
+    follow = sel is None and thr is not None and e >= thr
     return PointResult(
         point=point, scheme=point.scheme.name if point.scheme else point.mode, e_v_per_m=float(e),
         e_max_v_per_m=float(max(s.e_max_v_per_m for s in samples)), axes_v_per_m=axes, u_expanded_db=float(u),
         n_readings=int(n), coverage=float(cov), complete=complete, flags=int(flags), warnings=tuple(warn),
         samples=tuple(samples), e_limit_v_per_m=ref.e_v_per_m, percent_field=float(pct_f),
-        percent_power=float(pct_p), verdict=ver.outcome, statement=ver.statement, followup=bool(follow),
+        percent_power=float(pct_p), verdict=verdict, statement=statement, followup=bool(follow),
         e_extrapolated_v_per_m=float(e_x), percent_power_extrapolated=float(pct_px),
-        verdict_extrapolated=ver_x.outcome, exposure_ratio=ratio, exposure_ratio_extrapolated=ratio_x,
+        verdict_extrapolated=verdict_x, exposure_ratio=ratio, exposure_ratio_extrapolated=ratio_x,
         emitters=ems, t_start_utc=min(s.t_start_utc for s in samples),
         t_end_utc=max(s.t_end_utc for s in samples),
         duration_s=float(sum(s.t_end_utc - s.t_start_utc for s in samples)))

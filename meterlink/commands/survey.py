@@ -1,0 +1,64 @@
+"""``meterlink survey``: a walk-around survey from a plan file, or interactively at the terminal."""
+
+from __future__ import annotations
+
+HELP = "walk-around survey: guided point measurements with a live readout, from a plan or interactively"
+
+DEFAULT_DB = "meterlink.db"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("--port", metavar="PORT", help="serial device or pyserial URL of the meter")
+    parser.add_argument("--plan", metavar="FILE", help="survey plan (TOML, see docs/survey.md); without it "
+                        "the survey is entered point by point at the terminal")
+    parser.add_argument("--db", metavar="FILE", default=DEFAULT_DB,
+                        help=f"database file, created if missing (default: {DEFAULT_DB})")
+    parser.add_argument("--json", action="store_true", help="no live readout; print the point results as JSON")
+
+
+def result_dict(r) -> dict:
+    """A PointResult as plain JSON-able data."""
+    return {"label": r.point.label, "mode": r.point.mode, "scheme": r.scheme, "e_v_per_m": r.e_v_per_m,
+            "e_max_v_per_m": r.e_max_v_per_m, "u_expanded_db": r.u_expanded_db, "n_readings": r.n_readings,
+            "complete": r.complete, "percent_field": r.percent_field, "percent_power": r.percent_power,
+            "verdict": r.verdict, "followup": r.followup, "e_extrapolated_v_per_m": r.e_extrapolated_v_per_m,
+            "verdict_extrapolated": r.verdict_extrapolated, "exposure_ratio": r.exposure_ratio,
+            "heights_m": [s.height_m for s in r.samples], "warnings": list(r.warnings)}
+
+
+def run(args) -> int:
+    import json
+    import math
+
+    from rich.console import Console
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.storage import Store
+    from meterlink.survey.store import load_survey
+
+    if not args.port:
+        raise MeterlinkError("no --port given (see 'meterlink ports')")
+    console = None if args.json else Console()
+    if args.plan:
+        from meterlink.survey.run import run_plan
+        sid = run_plan(args.port, args.plan, args.db, console=console)
+    else:
+        if args.json:
+            raise MeterlinkError("--json needs --plan (the interactive survey asks at the terminal)")
+        from meterlink.survey.interactive import run_interactive
+        sid = run_interactive(args.port, args.db, console=console)
+    with Store(args.db) as store:
+        sv = load_survey(store, sid)
+    if args.json:
+        clean = lambda v: None if isinstance(v, float) and not math.isfinite(v) else v  # noqa: E731
+        pts = [{k: clean(v) for k, v in p.items() if k not in ("samples", "emitters")} | {
+            "heights_m": [s["height_m"] for s in p["samples"]]} for p in sv["points"]]
+        print(json.dumps({"session_id": sid, "db": str(args.db), "standard": sv["standard"], "tier": sv["tier"],
+                          "decision_rule": sv["decision_rule"], "points": pts, "safety": SAFETY_LINE},
+                         indent=2, default=str))
+    else:
+        console.print(f"survey session {sid} stored in {args.db}: {len(sv['points'])} point(s); "
+                      f"'meterlink report --db {args.db} --session {sid} --out DIR' writes the report")
+        console.print(SAFETY_LINE, style="bold")
+    return 0

@@ -1,0 +1,97 @@
+"""Interactive survey at the terminal: the choices first, then point after point (rich.prompt).
+
+``ask(prompt, default=None, choices=None) -> str`` is passed in so the dialogue can be scripted in
+tests; by default it is rich.prompt.Prompt.ask on the given console.
+"""
+
+from __future__ import annotations
+
+from meterlink.errors import MeterlinkError
+from meterlink.survey.model import MODES
+from meterlink.survey.plan import PlanError, _Ctx, _point, load_plan
+from meterlink.survey.spatial import SCHEMES
+
+
+def rich_ask(console):
+    from rich.prompt import Prompt
+
+    def ask(prompt, default=None, choices=None):
+        return Prompt.ask(prompt, default=default, choices=choices, console=console)
+    return ask
+
+
+def ask_plan(ask) -> dict:
+    """The survey header (site, standard, tier, rule, certificate, follow-up) as a plan dict."""
+    from meterlink.certificate import packaged_certificates
+    from meterlink.limits import standards
+    from meterlink.verdict import RULES
+
+    site = ask("Site name")
+    tech = ask("Technician", default="")
+    std = ask("Standard", default="icnirp-2020", choices=standards())
+    tier = ask("Tier", default="public", choices=["public", "occupational"])
+    rule = ask("Decision rule (fixed for the whole survey)", default="guarded", choices=list(RULES))
+    certs = packaged_certificates()
+    cert = ask("Certificate (name or file)", default=certs[0] if certs else None)
+    follow = ask("Follow-up threshold, percent of the E reference level", default="20")
+    doc = {"survey": {"standard": std, "tier": tier, "rule": rule, "certificate": cert},
+           "site": {"name": site, "technician": tech}}
+    try:
+        doc["survey"]["followup_percent"] = float(follow)
+    except ValueError:
+        raise PlanError(f"interactive entry: follow-up threshold {follow!r} is not a number") from None
+    return doc
+
+
+def ask_point(ask, n: int, console=None):
+    """The next point, or None when the technician is done; re-asks after a bad entry."""
+    while True:
+        label = ask(f"Point {n} label (empty to finish)", default="")
+        if not label.strip():
+            return None
+        d = {"label": label, "mode": ask("Mode", default="spot", choices=list(MODES))}
+        try:
+            d["height_m"] = float(ask("Height above ground (m)", default="1.5"))
+            if d["mode"] == "spatial":
+                d["scheme"] = ask("Scheme", default="three-heights", choices=list(SCHEMES))
+                if d["scheme"] == "vertical-line":
+                    d["n"] = int(ask("Number of heights from 0.2 to 1.8 m", default="5"))
+                elif d["scheme"] == "custom":
+                    d["heights_m"] = [float(x) for x in ask("Heights (m), comma separated").split(",")]
+            dur = ask("Duration in device seconds (empty: the mode's default)", default="")
+            if dur.strip():
+                d["duration_s"] = float(dur)
+            notes = ask("Notes", default="")
+            if notes:
+                d["notes"] = notes
+            return _point(_Ctx("interactive entry"), d, n)
+        except ValueError:
+            msg = "interactive entry: expected a number"
+        except MeterlinkError as exc:
+            msg = str(exc)
+        if console is not None:
+            console.print(f"[red]{msg}[/red]")
+
+
+def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, **link_options) -> int:
+    """Ask for the survey's choices, then measure points until an empty label; returns the session id."""
+    from meterlink.storage import Store
+    from meterlink.survey.readout import LiveReadout
+    from meterlink.survey.run import Survey
+
+    ask = ask or rich_ask(console)
+    plan = load_plan(ask_plan(ask))
+
+    def ready(point, height_m):
+        ask(f"Hold the probe at {point.label!r}, {height_m:.2f} m, then press Enter", default="")
+
+    with Store(db_path) as store:
+        with Survey(store, port, plan, mover=mover, ready=ready, **link_options) as sv:
+            n = 1
+            while (p := ask_point(ask, n, console)) is not None:
+                with LiveReadout(console) as live:
+                    sv.capture.on_view = live.update
+                    res = sv.measure(p)
+                live.point_done(res)
+                n += 1
+            return int(sv.session_id)
