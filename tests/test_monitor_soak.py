@@ -75,10 +75,13 @@ def _faults(days: float, seed: int) -> dict:
     sched = []
 
     def when(d):
-        # keep faults an hour clear of the excursions: at this speed a reconnection costs device hours
+        # keep faults an hour clear of the excursions and six hours from each other: at this speed a
+        # reconnection costs device hours on a busy machine, and a fault while the host is already
+        # reconnecting could not be seen as a separate event
         while True:
             at = float(rng.uniform(0.05, 0.95) * 86400 + d * 86400)
-            if all(not (a - 3600 <= at % (2 * 86400) <= b + 3600) for a, b in EXCURSIONS):
+            if (all(not (a - 3600 <= at % (2 * 86400) <= b + 3600) for a, b in EXCURSIONS)
+                    and all(abs(at - e["at_s"]) >= 6 * 3600 for e in sched)):
                 return at
     for d in range(int(math.ceil(days))):
         for _ in range(2):
