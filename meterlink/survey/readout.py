@@ -50,7 +50,7 @@ def gauge(ratio_power: float, width: int = 30) -> Text:
 def render_view(v: View) -> Panel:
     """The whole readout for one moment (pure)."""
     head = Text()
-    head.append(f"{escape(v.label)}", style="bold")
+    head.append(v.label, style="bold")
     head.append(f"  {v.mode}")
     if v.height_m is not None:
         head.append(f"  at {v.height_m:.2f} m")
@@ -103,7 +103,7 @@ def render_emitters(emitters) -> Table:
 def render_result(r) -> Text:
     """One line per finished point: value, U, both percents, verdict, warnings."""
     t = Text()
-    t.append(f"{escape(r.point.label)}", style="bold")
+    t.append(r.point.label, style="bold")
     t.append(f"  {r.scheme}: {_fmt(r.e_v_per_m).strip()} (U {r.u_expanded_db:.2f} dB)  ")
     t.append(f"{r.percent_field:.1f} % field / {r.percent_power:.1f} % power  ", style=band_style(r.percent_power / 100))
     t.append(r.verdict, style="green" if r.verdict == "compliant" else "bold red")
