@@ -52,7 +52,7 @@ def walk_plot(trace: list[dict], points: list[dict], e_ref_v_per_m: float, follo
 
 def points_plot(points: list[dict]) -> bytes:
     """Per point: percent of the reference level in power terms, measured and extrapolated."""
-    fig = Figure(figsize=(8.0, 0.5 + 0.42 * max(1, len(points))), layout="constrained")
+    fig = Figure(figsize=(8.0, 1.1 + 0.42 * max(1, len(points))), layout="constrained")
     ax = fig.add_subplot()
     labels = [_safe(p["label"]) for p in points][::-1]
     meas = [p["percent_power"] or 0.0 for p in points][::-1]
@@ -64,7 +64,7 @@ def points_plot(points: list[dict]) -> bytes:
     ax.set_yticks(list(y), labels, fontsize=8)
     ax.set_xlabel("percent of the reference level, power terms (%)")
     ax.set_xlim(0, max(110.0, *(v * 1.1 for v in meas + extra if math.isfinite(v))))
-    ax.legend(fontsize=7, loc="lower right")
+    fig.legend(fontsize=7, loc="outside lower center", ncol=3)
     return _png(fig)
 
 
