@@ -153,3 +153,20 @@ def test_interactive_survey_scripted_answers(tmp_path):
     assert sv["decision_rule"] == "simple" and sv["followup_percent"] == 25
     (p,) = sv["points"]
     assert p["label"] == "walk-in point" and p["notes"] == "by the gate" and p["n_readings"] >= 3
+
+
+def test_survey_command_json_with_a_plan_file(tmp_path, capsys):
+    import json
+
+    from meterlink.cli import SAFETY_LINE, main
+
+    plan = tmp_path / "plan.toml"
+    plan.write_text('[survey]\nstandard = "icnirp-2020"\nrule = "conservative"\ncertificate = "demo-probe"\n'
+                    'spot_s = 3\nsettle_s = 1\n[site]\nname = "Brannock Tor transmitting site"\n'
+                    '[[point]]\nlabel = "stile"\nmode = "spot"\n')
+    with SimulatedMeter("demo", seed=6, speed=SPEED) as sim:
+        rc = main(["survey", "--port", sim.port, "--plan", str(plan), "--db", str(tmp_path / "c.db"), "--json"])
+    out = json.loads(capsys.readouterr().out)
+    assert rc == 0 and out["decision_rule"] == "conservative" and out["safety"] == SAFETY_LINE
+    (p,) = out["points"]
+    assert p["label"] == "stile" and p["n_readings"] == 3 and p["verdict"] in ("compliant", "not compliant")

@@ -41,8 +41,18 @@ def run(args) -> int:
         raise MeterlinkError("no --port given (see 'meterlink ports')")
     console = None if args.json else Console()
     if args.plan:
+        import sys
+
         from meterlink.survey.run import run_plan
-        sid = run_plan(args.port, args.plan, args.db, console=console)
+        ready = None
+        if console is not None and sys.stdin.isatty():   # a technician at the terminal moves the probe
+            from meterlink.survey.interactive import rich_ask
+            ask = rich_ask(console)
+
+            def ready(point, height_m):
+                where = f" at x {point.x_m:g} m, y {point.y_m:g} m" if point.x_m is not None else ""
+                ask(f"Hold the probe at {point.label!r}{where}, {height_m:.2f} m, then press Enter", default="")
+        sid = run_plan(args.port, args.plan, args.db, console=console, ready=ready)
     else:
         if args.json:
             raise MeterlinkError("--json needs --plan (the interactive survey asks at the terminal)")

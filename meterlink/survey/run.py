@@ -181,16 +181,18 @@ class Survey:
 
 
 def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Callable | None = None,
-             on_view: Callable[[View], None] | None = None, **link_options) -> int:
+             on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
+             **link_options) -> int:
     """Measure every point of a plan against the meter on port; returns the survey session id.
 
-    mover(position_m) is called to place the probe (the simulated meter's move_to); console
-    (a rich Console) shows the live readout and one line per point."""
+    mover(position_m) is called to place the probe (the simulated meter's move_to); without it,
+    ready(point, height_m) (e.g. a prompt) waits for the technician; console (a rich Console)
+    shows the live readout and one line per point."""
     plan = load_plan(plan_path_or_dict)
     from meterlink.survey.readout import LiveReadout
 
     with Store(db_path) as store, LiveReadout(console, on_view) as live:
-        with Survey(store, port, plan, mover=mover, on_view=live.update, **link_options) as sv:
+        with Survey(store, port, plan, mover=mover, on_view=live.update, ready=ready, **link_options) as sv:
             for p in plan.points:
                 try:
                     res = sv.measure(p)
