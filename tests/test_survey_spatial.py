@@ -87,3 +87,10 @@ def test_assess_guarded_rule_near_the_limit_is_undecided_and_interrupted_is_inco
     assert r.verdict == "undecided"
     assert not r.complete and any("interrupted" in w for w in r.warnings)
     assert any("averaging time" in w for w in r.warnings)
+
+
+def test_near_field_point_carries_the_warning():
+    plan = _plan()
+    ref = broadband_reference("icnirp-1998", "public", (30e6, 6e9))
+    r = assess(plan, Point("n", near_field=True), (_sample(3.0),), ref)
+    assert any("near field" in w and "H was not measured" in w for w in r.warnings)

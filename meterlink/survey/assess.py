@@ -8,7 +8,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink.errors import MeterlinkError
-from meterlink.exposure import multi_frequency, percent_of_limit
+from meterlink.exposure import multi_frequency, near_field_check, percent_of_limit
 from meterlink.limits import reference_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
@@ -119,6 +119,9 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
         warn.append(f"coverage {100 * cov:.0f} % of the time: incomplete")
     if shortened:
         warn.append(f"shorter than the standard's averaging time of {ref.averaging_time_s / 60:g} min")
+    if point.near_field:
+        nf = near_field_check(ref.freq_hz, has_e=True, has_h=False, near_field=True)
+        warn.append(nf.message if nf else "marked near field")
     sel = _emitters(plan, samples, point.near_field)
     ratio = ratio_x = None
     ems = ()

@@ -4,12 +4,13 @@
 from __future__ import annotations
 
 import dataclasses
+import datetime
 import math
 import threading
 import time
 from typing import Callable
 
-from meterlink.certificate import DipoleCertificate, load_certificate
+from meterlink.certificate import DipoleCertificate, certificate_status, load_certificate
 from meterlink.errors import LinkError, MeterlinkError
 from meterlink.link import Connected, MeterLink
 from meterlink.protocol import SensorKind
@@ -161,9 +162,11 @@ class Survey:
         if not any(s.n_readings for s in samples):
             raise MeterlinkError(f"point {p.label!r}: no readings arrived from {self.port}")
         samples = [s for s in samples if s.n_readings]
+        warn = list(certificate_status(self.cert, datetime.date.today()))
+        if p.mode == "sweep":
+            warn.append("sweep: maximum hold of single readings, not an average")
         res = assess(self.plan, p, tuple(samples), self.ref, interrupted=interrupted,
-                     shortened=p.mode == "average" and dur < self.ref.averaging_time_s - 1e-9,
-                     warnings=("sweep: maximum hold of single readings, not an average",) if p.mode == "sweep" else ())
+                     shortened=p.mode == "average" and dur < self.ref.averaging_time_s - 1e-9, warnings=tuple(warn))
         self._writer.flush()
         sstore.add_point(self.store, self.session_id, no, res, cap.trace)
         cap.trace = []
