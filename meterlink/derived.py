@@ -131,11 +131,13 @@ class Series:
         self.last: tuple[float, float] | None = None     # (t, E^2) of the latest sample, hold not yet added
         self.frontier = -math.inf                        # no segment will ever start before this
         self.open: dict[int, Block] = {}
+        self._next_end = math.inf                        # earliest end of an open block (skip _final before it)
 
     def _block(self, k: int) -> Block:
         b = self.open.get(k)
         if b is None:
             b = self.open[k] = Block(k * self.block_s, self.block_s)
+            self._next_end = min(self._next_end, b.t_start + self.block_s)
         return b
 
     def _segment(self, t0: float, t1: float, p: float) -> None:
@@ -158,26 +160,37 @@ class Series:
         """Add a sample (over: an overrange lower bound); returns final blocks and running averages at t."""
         if not (t > self.frontier and math.isfinite(e_v_per_m) and e_v_per_m >= 0):
             return [], []
-        if self.last is not None:
-            t0, p0 = self.last
+        last = self.last
+        if last is not None:
+            t0, p0 = last
             self._segment(t0, min(t, t0 + self.hold_s), p0)
         self.last = (t, e_v_per_m * e_v_per_m)
         self.frontier = t
-        b = self._block(math.floor(t / self.block_s))
+        bs = self.block_s
+        b = self._block(math.floor(t / bs))
         b.n += 1
-        b.n_over += int(over)
-        b.e_max = max(b.e_max, e_v_per_m)
+        if over:
+            b.n_over += 1
+        if e_v_per_m > b.e_max:
+            b.e_max = e_v_per_m
         runs = []
+        ok_min = self.min_coverage - 1e-9
+        bb = None
+        looked = False
         for ws, w in self.windows.items():
             mean, cov = w.value(t)
-            ok = cov >= self.min_coverage - 1e-9
+            ok = cov >= ok_min
             e = math.sqrt(mean) if mean == mean else math.nan
             runs.append(RunningSample(ws, t, e, cov, ok))
             if ok:
-                kb = math.floor((t - 1e-9) / self.block_s)   # an end exactly on an edge closes the earlier block
-                bb = self.open.get(kb)
-                if bb is not None and (ws not in bb.run_max or e > bb.run_max[ws][0]):
-                    bb.run_max[ws] = (e, t)
+                if not looked:   # an end exactly on an edge closes the earlier block
+                    bb, looked = self.open.get(math.floor((t - 1e-9) / bs)), True
+                if bb is not None:
+                    rm = bb.run_max.get(ws)
+                    if rm is None or e > rm[0]:
+                        bb.run_max[ws] = (e, t)
+        if t < self._next_end:
+            return [], runs
         return self._final(), runs
 
     def close_gap(self, now: float) -> list[Block]:
@@ -192,7 +205,9 @@ class Series:
 
     def _final(self) -> list[Block]:
         done = [k for k, b in self.open.items() if b.t_start + self.block_s <= self.frontier]
-        return [self.open.pop(k) for k in sorted(done)]
+        out = [self.open.pop(k) for k in sorted(done)]
+        self._next_end = min((b.t_start + self.block_s for b in self.open.values()), default=math.inf)
+        return out
 
     def flush_all(self) -> list[Block]:
         """Every open block, final or not (end of a record, for tests and exports)."""
