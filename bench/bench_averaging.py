@@ -1,24 +1,20 @@
 """Time meterlink.averaging.running_average over N days of 1 Hz data against a plain numpy
 cumulative-sum running mean of E^2 (the baseline), on the same data in the same run.
 
-Usage: python bench/bench_averaging.py [--days N] [--window S]
+Usage: python bench/bench_averaging.py [--quick] [--days N] [--window S] [--json]
 The baseline assumes regular, gap-free sampling and keeps no coverage; running_average handles
 irregular sampling, gaps and coverage and keeps full precision over long records.
 """
 
 from __future__ import annotations
 
-import argparse
-import pathlib
-import sys
 import time
 import tracemalloc
 
 import numpy as np
 
-sys.path.insert(0, str(pathlib.Path(__file__).resolve().parents[1]))
-
-from meterlink.averaging import running_average  # noqa: E402
+import _common
+from meterlink.averaging import running_average
 
 
 def baseline(e_v_per_m: np.ndarray, n_window: int) -> np.ndarray:
@@ -37,12 +33,13 @@ def _timed(fn, *args, **kw):
     return out, dt, peak
 
 
-def main(argv=None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--days", type=float, default=365.0, help="record length in days (default 365)")
+def main(argv=None) -> dict:
+    ap = _common.parser(__doc__)
+    ap.add_argument("--days", type=float, default=None, help="record length in days (default 365; 30 with --quick)")
     ap.add_argument("--window", type=float, default=360.0, help="averaging window in s (default 360)")
     args = ap.parse_args(argv)
-    n = int(args.days * 86400)
+    days = args.days if args.days is not None else (30.0 if args.quick else 365.0)
+    n = int(days * 86400)
     rng = np.random.default_rng(20240601)
     t = np.arange(n, dtype=np.float64) + 1.7e9
     e = 2.0 + 0.5 * rng.standard_normal(n) ** 2   # invented positive field, V/m
@@ -52,14 +49,15 @@ def main(argv=None) -> int:
     ours, t_ours, m_ours = _timed(running_average, t, e, args.window)
     # Windows ending at sample k (k >= nw) hold samples k-nw .. k-1: the baseline's entry k-nw.
     diff = np.max(np.abs(ours.e_rms_v_per_m[nw:] - base[:n - nw])) if n > nw else float("nan")
-    print(f"samples: {n:,} ({args.days:g} days at 1 Hz), window {args.window:g} s")
-    print(f"baseline cumsum running mean: {t_base:8.3f} s, peak {m_base / 2**20:8.1f} MiB")
-    print(f"running_average:              {t_ours:8.3f} s, peak {m_ours / 2**20:8.1f} MiB "
-          "(outputs included, inputs excluded)")
-    print(f"ratio running_average / baseline: {t_ours / t_base:.2f}x time, "
-          f"{m_ours / max(m_base, 1):.2f}x memory; max |difference| {diff:.3g} V/m")
-    return 0
+    ratio = t_ours / t_base
+    return _common.report(
+        "averaging", f"running_average of {n:,} samples ({days:g} days at 1 Hz, window {args.window:g} s) in "
+        f"{t_ours:.2f} s, peak traced {m_ours / 2**20:.0f} MiB (outputs included, inputs excluded)",
+        f"numpy cumulative-sum running mean {t_base:.2f} s, peak traced {m_base / 2**20:.0f} MiB",
+        ratio, f"{ratio:.2f}x the baseline's time, {m_ours / max(m_base, 1):.2f}x its memory; max |difference| "
+        f"{diff:.3g} V/m", "<= 3x the cumulative-sum time and < 1 GiB allocated by running_average (one year)",
+        (ratio <= 3.0 and m_ours < 2**30) if days >= 365 else None, args.json, days=days, traced_peak_mib=m_ours / 2**20)
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    main()
