@@ -235,6 +235,15 @@ def observe(c: Commander, *, duration_s: float = MIN_DURATION_S, interval_ms: in
                 break
             c.pump(0.05)
         obs.stop_end = len(c.frames)
+        still = [r for r in c.frames[obs.stop_end - 20:obs.stop_end] if r.frame.type in _READINGS
+                 and 0 < seq_delta(stop.frame.seq, r.frame.seq) < HALF_TICK]
+        if still:
+            # the device ignored STOP: slow it to its longest interval so that a flood of readings
+            # does not spoil the items checked after this one (the start/stop item fails on its own)
+            try:
+                c.set_interval(obs.ident.max_interval_ms if obs.ident else 3_600_000)
+            except MeterlinkError:
+                pass
     _phase(obs, "stream", stream)
 
     for args in fault_probes(obs.ident):

