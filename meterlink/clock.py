@@ -76,12 +76,18 @@ class DeviceClock:
         self.mapping: ClockMapping | None = None
         self._unwrap = TickUnwrapper()
         self._pairs: deque[tuple[float, float]] = deque(maxlen=window)
+        self._latest_utc = float("-inf")
 
     def sync(self, boot: int, tick_u32: int, utc_s: float) -> ClockMapping:
-        """Fix the mapping for a new handshake: tick_u32 was taken at utc_s (host UTC)."""
+        """Fix the mapping for a new handshake: tick_u32 was taken at utc_s (host UTC).
+
+        A new boot's mapping never starts before the last time already given out, so the readings
+        of one session stay in time order across restarts, even from a device whose clock ran fast
+        (or a simulator running faster than real time).
+        """
         self._unwrap = TickUnwrapper()
         self._pairs.clear()
-        self.mapping = ClockMapping(boot, self._unwrap.unwrap(tick_u32), float(utc_s))
+        self.mapping = ClockMapping(boot, self._unwrap.unwrap(tick_u32), max(float(utc_s), self._latest_utc))
         return self.mapping
 
     def restart(self) -> None:
@@ -98,7 +104,10 @@ class DeviceClock:
         """UTC epoch seconds of an unwrapped device tick; ValueError before sync()."""
         if self.mapping is None:
             raise ValueError("device clock not synchronised")
-        return self.mapping.utc0_s + (tick_ms - self.mapping.tick0_ms) / 1000.0
+        t = self.mapping.utc0_s + (tick_ms - self.mapping.tick0_ms) / 1000.0
+        if t > self._latest_utc:
+            self._latest_utc = t
+        return t
 
     def observe(self, host_monotonic_s: float, tick_ms: int) -> None:
         """Record that unwrapped tick_ms arrived at host_monotonic_s, for the drift estimate."""

@@ -90,3 +90,18 @@ def test_restart_resets_mapping_and_pairs():
         c.utc_of(0)
     c.sync(2, 10, 500.0)
     assert c.mapping.boot == 2 and c.utc_of(c.unwrap(1010)) == pytest.approx(501.0)
+
+
+def test_new_boot_never_maps_before_times_already_given_out():
+    """After a restart of a fast-running device, the session's reading times stay in order."""
+    from meterlink.clock import DeviceClock
+
+    clock = DeviceClock()
+    clock.sync(1, 0, 1000.0)
+    last = clock.utc_of(clock.unwrap(500_000))       # device says 500 s later: 1500 s
+    clock.restart()
+    m = clock.sync(2, 10, 1100.0)                    # host time is only 1100 s
+    assert m.utc0_s == last == 1500.0
+    assert clock.utc_of(clock.unwrap(1010)) == 1501.0
+    fresh = DeviceClock()
+    assert fresh.sync(1, 0, 1000.0).utc0_s == 1000.0  # nothing given out yet: host time as it is
