@@ -20,7 +20,37 @@ def rich_ask(console):
     return ask
 
 
-def ask_plan(ask) -> dict:
+def matching_certificate(ident) -> str | None:
+    """Name of the packaged certificate for the meter's probe serial, else one of its sensor kind."""
+    from meterlink.certificate import KIND_DIPOLE, load_certificate, packaged_certificates
+    from meterlink.protocol import SensorKind
+
+    certs = [(name, load_certificate(name)) for name in packaged_certificates()]
+    for name, cert in certs:
+        if ident is not None and cert.serial == ident.probe_serial:
+            return name
+    want_dipole = ident is not None and ident.sensor_kind == SensorKind.DIPOLE_RX
+    for name, cert in certs:
+        if (cert.kind == KIND_DIPOLE) == want_dipole:
+            return name
+    return None
+
+
+def identify(port: str):
+    """The meter's IDENT, asked once before the dialogue so defaults can fit it (None if no answer)."""
+    from meterlink.commander import Commander
+    from meterlink.transport import open_link
+
+    link = open_link(port)
+    try:
+        return Commander(link).who()
+    except MeterlinkError:
+        return None
+    finally:
+        link.close()
+
+
+def ask_plan(ask, ident=None) -> dict:
     """The survey header (site, standard, tier, rule, certificate, follow-up) as a plan dict."""
     from meterlink.certificate import packaged_certificates
     from meterlink.limits import standards
@@ -32,7 +62,7 @@ def ask_plan(ask) -> dict:
     tier = ask("Tier", default="public", choices=["public", "occupational"])
     rule = ask("Decision rule (fixed for the whole survey)", default="guarded", choices=list(RULES))
     certs = packaged_certificates()
-    cert = ask("Certificate (name or file)", default=certs[0] if certs else None)
+    cert = ask("Certificate (name or file)", default=matching_certificate(ident) or (certs[0] if certs else None))
     follow = ask("Follow-up threshold, percent of the E reference level", default="20")
     doc = {"survey": {"standard": std, "tier": tier, "rule": rule, "certificate": cert},
            "site": {"name": site, "technician": tech}}
@@ -80,7 +110,12 @@ def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, *
     from meterlink.survey.run import Survey
 
     ask = ask or rich_ask(console)
-    plan = load_plan(ask_plan(ask))
+    ident = identify(port)
+    if console is not None and ident is not None:
+        from rich.markup import escape
+
+        console.print(f"meter: {escape(ident.model)} serial {escape(ident.serial)}, probe {escape(ident.probe_serial)}")
+    plan = load_plan(ask_plan(ask, ident))
 
     def ready(point, height_m):
         ask(f"Hold the probe at {point.label!r}, {height_m:.2f} m, then press Enter", default="")
