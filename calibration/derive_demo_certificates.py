@@ -25,7 +25,7 @@ from meterlink.certificate import AxisCalibration, DipoleCertificate, ProbeCerti
 from meterlink.uncertainty import Component  # noqa: E402
 from simulators import instruments as sim  # noqa: E402
 
-LAB = "Harrowgate Field Metrology Laboratory (invented)"
+LAB = "Quillmoor Field Metrology Laboratory (invented)"
 CAL_DATE, DUE_DATE = dt.date(2026, 6, 15), dt.date(2027, 6, 15)
 SEED = 20260615
 REPEATS = 10

@@ -33,7 +33,7 @@ def _session(path):
         return load_session(path)
     today = dt.date.today()
     return LabSession("ML-EP3 three-axis E-field probe (simulated)", "EP-4417",
-                      "Harrowgate Field Metrology Laboratory (invented)", f"LAB-{today:%Y%m%d}-EP-4417", today,
+                      "Quillmoor Field Metrology Laboratory (invented)", f"LAB-{today:%Y%m%d}-EP-4417", today,
                       today + dt.timedelta(days=365), operator="demo")
 
 
