@@ -22,9 +22,10 @@ import numpy as np
 
 from meterlink import calibrate, derived
 from meterlink.alarms import AlarmMachine, rule_value, run_command
-from meterlink.certificate import certificate_status, load_certificate
+from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
 from meterlink.limits import reference_level
+from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
 from meterlink.storage import BatchWriter, Store, event_row
 from meterlink.units import Z0_OHM
@@ -79,6 +80,7 @@ class MeterState:
     session_id: int
     e_top: float = math.nan                          # top of the calibrated range, V/m
     link: MeterLink | None = None
+    sweeps: SweepAssembler | None = None             # a dipole meter: orientation spectra -> band values
     writer: BatchWriter | None = None
     series: dict = field(default_factory=dict)       # band -> derived.Series
     alarms: list = field(default_factory=list)
@@ -126,6 +128,7 @@ class Monitor:
         self._retention_next = time.monotonic() + 5.0
         self._retention_todo: list = []
         self._day_checked: str | None = None
+        self._heartbeat_next = 0.0                       # host time of the next heartbeat write
 
     # -- setup ---------------------------------------------------------------------------------
     def _station_record(self):
@@ -172,11 +175,16 @@ class Monitor:
                               "WHERE station_id=? AND meter=?",
                               (sid, m.port, m.certificate, None if isinstance(freq, tuple) else freq, lo, hi, e_ref,
                                s_ref, cert.due_date.isoformat(), "connecting", self.station_id, m.name))
-        top = cert.level_range[1] * (Z0_OHM if cert.quantity == "H" else 1.0)
+        dipole = cert.kind == KIND_DIPOLE
+        top = math.nan if dipole else cert.level_range[1] * (Z0_OHM if cert.quantity == "H" else 1.0)
         ms = MeterState(m, cert, freq, e_ref, s_ref, sid, top)
-        hold = 3.0 * m.interval_s
-        for band in ("total", *(b[0] for b in m.bands)):
+        # a dipole meter reports one orientation per interval: a value per sweep of three
+        hold = 3.0 * m.interval_s * (3 if dipole else 1)
+        names = ("total", *(b[0] for b in m.bands), *((RATIO_BAND,) if dipole else ()))
+        for band in names:
             ms.series[band] = derived.Series(hold, st.block_s, st.windows_s, st.min_coverage)
+        if dipole:
+            ms.sweeps = SweepAssembler(cert, m.bands, st.standard, st.tier)
         for rule in st.alarms:
             if not rule.meters or m.name in rule.meters:
                 ms.alarms.append(AlarmMachine(rule, m.name))
@@ -198,13 +206,35 @@ class Monitor:
         for am in ms.alarms:
             if am.rule.name in saved:
                 am.restore(*saved[am.rule.name])
-        if len(arr):
+        if ms.sweeps is not None:
+            self._replay_spectra(ms, t0)
+        elif len(arr):
             res = calibrate.calibrate_axes(ms.cert, arr.raw, ms.freq)
             self._feed(ms, arr.t_utc, res.e_v_per_m, res.flags, arr.raw, replay=True)
             ms.last_t = float(arr.t_utc[-1])
-        last = self.conn.execute("SELECT max(t_utc) FROM readings WHERE session_id=?", (ms.session_id,)).fetchone()[0]
+        if last_end is not None:   # blocks already stored stay as they are (the replay's first one is partial)
+            ms.blocks_out = [(band, kept) for band, bl in ms.blocks_out
+                             if (kept := [b for b in bl if b.t_start + b.block_s > last_end + 1e-6])]
+        table = "spectra" if ms.sweeps is not None else "readings"
+        last = self.conn.execute(f"SELECT max(t_utc) FROM {table} WHERE session_id=?", (ms.session_id,)).fetchone()[0]
         if last is not None:
             ms.last_t = float(last)
+
+    def _replay_spectra(self, ms: MeterState, t0: float | None) -> None:
+        rows = self.conn.execute(
+            "SELECT s.id, s.boot, s.sweep, s.orientation, s.t_utc, l.freq_hz, l.level_dbuv FROM spectra s "
+            "JOIN spectrum_lines l ON l.spectrum_id = s.id WHERE s.session_id=? AND s.t_utc >= ? "
+            "ORDER BY s.t_utc, s.id, l.id", (ms.session_id, -math.inf if t0 is None else t0)).fetchall()
+        i = 0
+        while i < len(rows):
+            j = i
+            while j < len(rows) and rows[j][0] == rows[i][0]:
+                j += 1
+            _, boot, sweep, o, t, *_ = rows[i]
+            v = ms.sweeps.add(boot, sweep, o, t, [r[5] for r in rows[i:j]], [r[6] for r in rows[i:j]])
+            if v is not None:
+                self._feed_sweep(ms, v, replay=True)
+            i = j
 
     # -- helpers -------------------------------------------------------------------------------
     def now_utc(self) -> float:
@@ -260,10 +290,16 @@ class Monitor:
             ms.session_update = {"device_id": dev, "interval_ms": item.interval_ms, "clock_boot": item.boot,
                                  "clock_tick0_ms": item.mapping.tick0_ms, "clock_utc0_s": item.mapping.utc0_s}
         elif isinstance(item, SpectrumReading):
+            sp = item.spectrum
+            t = self._t_of(ms, item)
+            lines = [(f * 1000.0, lv / 100.0) for f, lv in sp.pairs]
             ms.writer._add("spectra", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms,
-                                       "t_utc": self._t_of(ms, item), "orientation": item.spectrum.orientation,
-                                       "sweep": item.spectrum.sweep,
-                                       "lines": [(f * 1000.0, lv / 100.0) for f, lv in item.spectrum.pairs]})
+                                       "t_utc": t, "orientation": sp.orientation, "sweep": sp.sweep, "lines": lines})
+            if ms.sweeps is not None:
+                v = ms.sweeps.add(item.boot, sp.sweep, sp.orientation, t, [x[0] for x in lines],
+                                  [x[1] for x in lines])
+                if v is not None:
+                    self._feed_sweep(ms, v)
         elif isinstance(item, LinkEvent):
             self._link_event(ms, item)
 
@@ -347,17 +383,49 @@ class Monitor:
             over = bool(fi & calibrate.ABOVE_RANGE) and not math.isfinite(ei)
             if over:
                 ei = ms.e_top
-            blocks, runs = ms.series["total"].push(ti, ei, over)
+            self._push_total(ms, ti, ei, over, replay)
+
+    def _push_total(self, ms: MeterState, ti: float, ei: float, over: bool, replay: bool) -> None:
+        blocks, runs = ms.series["total"].push(ti, ei, over)
+        if blocks:
+            ms.blocks_out.append(("total", blocks))
+        for am in ms.alarms:
+            for r in runs:
+                if r.window_s == am.rule.window_s:
+                    if replay and am.last_t is not None and ti <= am.last_t:
+                        continue
+                    v = rule_value(am.rule.unit, r.e_rms_v_per_m, ms.e_ref, ms.s_ref)
+                    for ev in am.update(ti, v, r.complete):
+                        self._alarm_event(ms, ev)
+
+    def _feed_sweep(self, ms: MeterState, v: SweepValue, replay: bool = False) -> None:
+        """A complete dipole sweep: per-band series, the exposure-ratio series, then the total as a probe's."""
+        ti = v.t_utc
+        if not replay:
+            gap_s = max(self.st.health.max_gap_s, 3.0 * ms.cfg.interval_s)
+            if ms.last_t is not None and ti - ms.last_t > gap_s:
+                self._event(ms, "gap", "warning", f"no sweeps from {_iso(ms.last_t)} to {_iso(ti)} "
+                            f"({ti - ms.last_t:.0f} s)", t=ti, start_utc=ms.last_t, end_utc=ti,
+                            duration_s=ti - ms.last_t)
+            ms.last_t = ti if ms.last_t is None else max(ms.last_t, ti)
+            p = ms.checks["noise_floor"]
+            what = p.update(ti, v.n_lines == 0)
+            if what:
+                self._event(ms, p.kind if what == "start" else p.kind + "_end", "warning" if what == "start"
+                            else "info", "receiver: no line above its noise floor" if what == "start"
+                            else "receiver lines above the noise floor again", t=ti)
+            ms.last_e, ms.last_u_db = v.total_v_per_m, (v.u_expanded_db if v.n_lines else ms.last_u_db)
+        for name, e in v.band_v_per_m.items():
+            blocks, _ = ms.series[name].push(ti, e, v.band_over[name])
             if blocks:
-                ms.blocks_out.append(("total", blocks))
-            for am in ms.alarms:
-                for r in runs:
-                    if r.window_s == am.rule.window_s:
-                        if replay and am.last_t is not None and ti <= am.last_t:
-                            continue
-                        v = rule_value(am.rule.unit, r.e_rms_v_per_m, ms.e_ref, ms.s_ref)
-                        for ev in am.update(ti, v, r.complete):
-                            self._alarm_event(ms, ev)
+                ms.blocks_out.append((name, blocks))
+        if v.exposure_ratio is not None:
+            # the ratio is a sum of power-like terms: its square root enters the power-domain series,
+            # so a block's energy / covered_s is the time-mean ratio
+            blocks, _ = ms.series[RATIO_BAND].push(ti, math.sqrt(v.exposure_ratio), v.over)
+            if blocks:
+                ms.blocks_out.append((RATIO_BAND, blocks))
+        self._push_total(ms, ti, v.total_v_per_m, v.over, replay)
 
     def _alarm_event(self, ms: MeterState, ev) -> None:
         sev = "warning" if ev.kind != "end" else "info"
@@ -397,7 +465,9 @@ class Monitor:
                 for sid, row in self._station_events:
                     self.store.write_batch(sid, events=[row])
                 self._station_events = []
-            self.conn.execute("UPDATE mon_station SET heartbeat_utc=? WHERE id=?", (now, self.station_id))
+            if now >= self._heartbeat_next:              # every station.heartbeat_s (host time)
+                self.conn.execute("UPDATE mon_station SET heartbeat_utc=? WHERE id=?", (now, self.station_id))
+                self._heartbeat_next = now + self.st.heartbeat_s
 
     def _certificates(self) -> None:
         today = _dt.date.fromtimestamp(self.now_utc())
@@ -469,7 +539,8 @@ class Monitor:
             self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
             self._commit()
             with self.store.db.atomic():
-                self.conn.execute("UPDATE mon_station SET state='stopped' WHERE id=?", (self.station_id,))
+                self.conn.execute("UPDATE mon_station SET state='stopped', heartbeat_utc=? WHERE id=?",
+                                  (time.time(), self.station_id))
             for p in self.procs:
                 try:
                     p.wait(timeout=5)
@@ -495,9 +566,10 @@ class Monitor:
                 silent = ms.last_t is not None and now_data - ms.last_t > max(self.st.health.max_gap_s,
                                                                               3 * ms.cfg.interval_s) * 2
                 if silent:
-                    blocks = ms.series["total"].close_gap(ms.last_t + 3.0 * ms.cfg.interval_s + 1e-6)
-                    if blocks:
-                        ms.blocks_out.append(("total", blocks))
+                    for band, series in ms.series.items():
+                        blocks = series.close_gap(ms.last_t + series.hold_s + 1e-6)
+                        if blocks:
+                            ms.blocks_out.append((band, blocks))
         self._certificates()
         self._commit()
         self.procs = [p for p in self.procs if p.poll() is None]
@@ -506,7 +578,7 @@ class Monitor:
 
 
 def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) -> int:
-    """Delete up to ``limit`` raw readings of a session older than before_utc (and their field values)."""
+    """Delete up to ``limit`` raw readings and spectra of a session older than before_utc (with their values)."""
     conn = store.db.conn
     with store._lock, store.db.atomic():
         ids = [r[0] for r in conn.execute("SELECT id FROM readings WHERE session_id=? AND t_utc < ? LIMIT ?",
@@ -515,7 +587,16 @@ def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) 
             marks = ",".join("?" * len(ids))
             conn.execute(f"DELETE FROM field_values WHERE reading_id IN ({marks})", ids)
             conn.execute(f"DELETE FROM readings WHERE id IN ({marks})", ids)
-    return len(ids)
+        left = limit - len(ids)
+        sp = [r[0] for r in conn.execute("SELECT id FROM spectra WHERE session_id=? AND t_utc < ? LIMIT ?",
+                                         (session_id, before_utc, left))] if left > 0 else []
+        if sp:
+            marks = ",".join("?" * len(sp))
+            conn.execute(f"DELETE FROM spectrum_values WHERE spectrum_line_id IN (SELECT id FROM spectrum_lines "
+                         f"WHERE spectrum_id IN ({marks}))", sp)
+            conn.execute(f"DELETE FROM spectrum_lines WHERE spectrum_id IN ({marks})", sp)
+            conn.execute(f"DELETE FROM spectra WHERE id IN ({marks})", sp)
+    return len(ids) + len(sp)
 
 
 def _iso(t: float | None) -> str:
