@@ -131,3 +131,48 @@ def field_summary_renderable(series, title: str = "calibrated field") -> Table:
                      f"-{100 * (1 - float(db_to_ratio_field(-u.max()))):.0f} % in field; "
                      f"certificate {escape(series.certificate_name)}")
     return t
+
+
+_EIGHTHS = " ▁▂▃▄▅▆▇█"
+
+
+def field_trace(t_s, e_v_per_m, limit_v_per_m: float | None, width: int = 60, rows: int = 5) -> Text:
+    """A small chart of the field against time: each column the rms of its time bin, in percent of
+    the field reference level (top row = 100 %); a column above the level ends in '▲'."""
+    import numpy as np
+
+    t = np.asarray(t_s, dtype=float)
+    e = np.asarray(e_v_per_m, dtype=float)
+    ok = np.isfinite(t) & np.isfinite(e)
+    t, e = t[ok], e[ok]
+    out = Text()
+    if e.size == 0:
+        return Text("(no values)")
+    top = float(limit_v_per_m) if limit_v_per_m else float(e.max()) or 1.0
+    width = max(1, min(width, e.size))
+    edges = np.linspace(t.min(), t.max() + 1e-9, width + 1)
+    idx = np.clip(np.searchsorted(edges, t, side="right") - 1, 0, width - 1)
+    p = np.bincount(idx, weights=e * e, minlength=width)
+    n = np.bincount(idx, minlength=width)
+    col = np.where(n > 0, np.sqrt(p / np.maximum(n, 1)), np.nan) / top      # fraction of the level
+    for r in range(rows, 0, -1):
+        label = f"{100 * r / rows:>4.0f} % ┤" if r in (rows, (rows + 1) // 2) else "       │"
+        out.append(label, style="grey50")
+        for c in col:
+            if not np.isfinite(c):
+                out.append(" ")
+                continue
+            level = c * rows - (r - 1)            # how much of this row the column fills
+            if r == rows and c > 1.0:
+                out.append("▲", style="red")
+            elif level >= 1:
+                out.append("█", style="green" if c < 0.5 else ("yellow" if c < 1.0 else "red"))
+            elif level > 0:
+                out.append(_EIGHTHS[max(1, int(level * 8))], style="green" if c < 0.5 else "yellow")
+            else:
+                out.append(" ")
+        out.append("\n")
+    out.append("     0 ┴" + "─" * width + "\n", style="grey50")
+    out.append(f"        {utc_text(float(t.min()))}  →  {utc_text(float(t.max()))}   (rms per column, "
+               f"percent of {top:.4g} V/m)", style="grey50")
+    return out

@@ -78,7 +78,12 @@ def run(args) -> int:
 
         from meterlink.render import assessment_renderable
 
-        Console().print(assessment_renderable(result))
+        con = Console()
+        if isinstance(series, FieldSeries):
+            from meterlink.render import field_trace
+
+            con.print(field_trace(series.t_utc, series.e_v_per_m, result.limit_v_per_m))
+        con.print(assessment_renderable(result))
     return 0
 
 

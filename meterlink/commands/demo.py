@@ -114,6 +114,9 @@ def _run_steps(con, db, out, args, rule):
         con.print(f"probe session {probe.session_id}: {escape(probe.model)} serial {escape(probe.serial)}, "
                   f"probe {escape(probe.probe_serial)}: {probe.readings} readings, {n_events[probe.session_id]} events")
         con.print(field_summary_renderable(fs, "calibrated field along the walk"))
+        from meterlink.render import field_trace
+
+        con.print(field_trace(fs.t_utc, fs.e_v_per_m, a_probe.limit_v_per_m))
         con.print(assessment_renderable(a_probe))
         con.print(f"dipole session {dipole.session_id}: {escape(dipole.model)}, antenna {escape(dipole.probe_serial)}: "
                   f"{dipole.spectra} spectra, {n_events[dipole.session_id]} events")

@@ -76,9 +76,12 @@ def run(args) -> int:
         except ValueError as exc:
             raise MeterlinkError(f"--freq: {exc}") from None
     band = parse_band(args.band) if args.band is not None else None
-    with Store(args.db) as store:
+    import sys
+
+    show = not args.json and sys.stderr.isatty()
+    with Store(args.db) as store, _progress(show, duration) as on_item:
         rec = Recorder(store, args.port, interval_ms=interval, duration_s=duration, freq_hz=freq, band_hz=band,
-                       notes=args.notes)
+                       notes=args.notes, on_item=on_item)
         summary = rec.run()
         field, field_error = None, None
         if summary.readings or summary.spectra:
@@ -129,6 +132,43 @@ def _field_dict(series) -> dict:
     else:
         d.update(sweeps=int(series.t_utc.size), freq_hz=[float(f) for f in series.freq_hz])
     return d
+
+
+class _progress:
+    """Context giving an on_item callback that shows device time recorded (rich, on stderr)."""
+
+    def __init__(self, show: bool, duration_s: float | None):
+        self.show, self.duration_s = show, duration_s
+        self.first = None
+
+    def __enter__(self):
+        if not self.show:
+            return None
+        from rich.console import Console
+        from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+        self.bar = Progress(TextColumn("recording"), BarColumn(), TextColumn("{task.fields[what]}"),
+                            TimeElapsedColumn(), console=Console(stderr=True), transient=True)
+        self.bar.start()
+        self.task = self.bar.add_task("rec", total=self.duration_s, what="")
+        self.n = 0
+        return self.on_item
+
+    def on_item(self, item) -> None:
+        from meterlink.link import Reading, SpectrumReading
+
+        if not isinstance(item, (Reading, SpectrumReading)):
+            return
+        t = item.t_utc
+        self.n += 1
+        if self.first is None:
+            self.first = t
+        done = t - self.first
+        self.bar.update(self.task, completed=done, what=f"{done:.0f} s device time, {self.n} readings")
+
+    def __exit__(self, *exc) -> None:
+        if self.show:
+            self.bar.stop()
 
 
 def summary_table(s):
