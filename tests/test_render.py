@@ -1,0 +1,42 @@
+"""Pure rendering: the field chart and the assessment panel, rendered to text without a terminal."""
+
+import numpy as np
+from rich.console import Console
+
+from meterlink.assessment import assess_field
+from meterlink.processing import FieldSeries
+from meterlink.render import assessment_dict, assessment_renderable, field_trace
+
+
+def text_of(renderable, width=100) -> str:
+    import io
+
+    con = Console(width=width, record=True, file=io.StringIO())
+    con.print(renderable)
+    return con.export_text()
+
+
+def test_trace_fills_rows_in_proportion_to_the_level_and_marks_excess():
+    t = np.arange(120.0)
+    e = np.r_[np.full(60, 13.75), np.full(60, 30.0)]       # 50 % of 27.5 V/m, then 109 %
+    lines = text_of(field_trace(t, e, 27.5, width=20, rows=4)).splitlines()
+    body = [ln.split("┤")[-1].split("│")[-1] for ln in lines[:4]]
+    assert body[0][:10].strip() == "" and set(body[0][10:20]) == {"▲"}      # top row: only the excess
+    assert set(body[3][:10]) == {"█"} and set(body[2][:10]) == {"█"}        # 50 % fills two of four rows
+    assert body[1][:10].strip() == ""
+    assert "percent of 27.5 V/m" in lines[-1]
+
+
+def test_assessment_panel_shows_both_terms_the_verdict_and_the_cautions():
+    n = 2400
+    e = np.full(n, 13.85)       # half of 27.7 V/m, ICNIRP 2020 Table 5 public, 30-400 MHz
+    s = FieldSeries(1, 1, "cert <b>x</b>", np.arange(n), 1.8e9 + np.arange(n, dtype=float), e, np.zeros((n, 3)),
+                    e / 376.73, e * e / 376.73, np.full(n, 1.0), np.zeros(n, np.int64), ())
+    a = assess_field(s, "icnirp-2020", "public", "guarded", freq_hz=100e6)
+    out = " ".join(text_of(assessment_renderable(a), 120).split())
+    assert "50.0 % of the field level" in out and "25.0 % of the power-density level" in out
+    assert "COMPLIANT" in out and "energised antennas" in out
+    assert "cert <b>x</b>" in out      # shown literally, never interpreted as markup
+    d = assessment_dict(a)
+    assert d["percent_of_field_level"] == 50.0 or abs(d["percent_of_field_level"] - 50.0) < 1e-9
+    assert d["outcome"] == "compliant"
