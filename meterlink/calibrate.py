@@ -105,7 +105,9 @@ def expected_counts(ax: AxisCalibration, field) -> np.ndarray:
 
 def _corr_at(ax: AxisCalibration, freq_hz) -> np.ndarray:
     """Frequency correction (dB), linear in log-frequency, clamped to the table ends."""
-    return np.interp(np.log10(freq_hz), np.log10(ax.freq_hz), ax.correction_db)
+    # clip first: the same clamped result, and no log of zero or of a negative (absurd) frequency
+    f = np.clip(np.asarray(freq_hz, dtype=float), ax.freq_hz[0], ax.freq_hz[-1])
+    return np.interp(np.log10(f), np.log10(ax.freq_hz), ax.correction_db)
 
 
 def _band_grid(cert, band) -> np.ndarray:
