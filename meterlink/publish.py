@@ -18,6 +18,7 @@ import numpy as np
 from meterlink import derived
 from meterlink.errors import MeterlinkError
 from meterlink.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
+from meterlink.units import Z0_OHM
 
 
 def _rows(conn, sql, params=()):
@@ -42,13 +43,30 @@ def iso(t) -> str | None:
     return None if t is None else _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
+def heartbeat_s(st: dict) -> float:
+    """The station file's heartbeat interval as recorded with the station (10 s when not given)."""
+    import tomllib
+    try:
+        v = tomllib.loads(st.get("config_text") or "").get("station", {}).get("heartbeat_s", 10.0)
+    except tomllib.TOMLDecodeError:
+        return 10.0
+    return float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) and v > 0 else 10.0
+
+
 def current_state(conn, now_utc: float, recent_events: int = 10) -> dict:
-    """What `meterlink status` shows: station, heartbeat, each meter's link, last value, health, alarms."""
+    """What `meterlink status` shows: station, heartbeat, each meter's link, last value, health, alarms.
+
+    ``stale``: the station is recorded as running but its heartbeat is older than 3 heartbeat intervals
+    (the monitor hangs or was killed). Percentages follow the station's convention (``last_pct``)."""
     st, meters = station_info(conn)
+    conv = st["convention"] or "power"
+    hb = heartbeat_s(st)
+    age = None if st["heartbeat_utc"] is None else now_utc - st["heartbeat_utc"]
     out = {"station": st["name"], "state": st["state"], "runs": st["runs"], "pid": st["pid"],
-           "heartbeat_utc": iso(st["heartbeat_utc"]),
-           "heartbeat_age_s": None if st["heartbeat_utc"] is None else now_utc - st["heartbeat_utc"],
-           "standard": st["standard"], "tier": st["tier"], "convention": st["convention"], "meters": []}
+           "heartbeat_utc": iso(st["heartbeat_utc"]), "heartbeat_age_s": age, "heartbeat_s": hb,
+           "stale": st["state"] == "running" and (age is None or age > 3 * hb),
+           "standard": st["standard"], "tier": st["tier"], "convention": conv,
+           "pct_label": "% S ref" if conv == "power" else "% E ref", "meters": []}
     for m in meters:
         active = _rows(conn, "SELECT rule, t_on_utc, peak_value FROM mon_alarm WHERE station_id=? AND meter=? "
                        "AND state='active'", (st["id"], m["meter"]))
@@ -57,10 +75,12 @@ def current_state(conn, now_utc: float, recent_events: int = 10) -> dict:
         e = m["last_e_v_per_m"]
         due = m["cert_due"]
         days = None if not due else (_dt.date.fromisoformat(due) - _dt.date.fromtimestamp(now_utc)).days
+        pct_f = None if e is None else 100 * e / m["e_ref_v_per_m"]
+        pct_p = None if e is None else 100 * (e * e / Z0_OHM) / m["s_ref_w_per_m2"]
         out["meters"].append({
             "meter": m["meter"], "port": m["port"], "link": m["link_state"], "last_seen_utc": iso(m["last_seen_utc"]),
             "last_e_v_per_m": e, "u_expanded_db": m["u_expanded_db"],
-            "last_pct_field": None if e is None else 100 * e / m["e_ref_v_per_m"],
+            "last_pct": pct_p if conv == "power" else pct_f, "last_pct_field": pct_f, "last_pct_power": pct_p,
             "coverage_24h": min(day / 86400.0, 1.0), "battery_pct": m["battery_pct"],
             "temperature_degc": m["temperature_degc"], "drift_ppm": m["drift_ppm"],
             "certificate": m["certificate"], "certificate_due": due, "certificate_days_left": days,

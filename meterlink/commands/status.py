@@ -37,12 +37,15 @@ def run(args) -> int:
     con.print(f"[bold]{escape(s['station'])}[/bold]  state {s['state']}, run {s['runs']}, heartbeat "
               f"{s['heartbeat_utc']} ({'-' if age is None else f'{age:.0f} s ago'}); "
               f"{s['standard']} {s['tier']}, convention {s['convention']}")
-    t = Table("meter", "link", "last seen", "E V/m", "U dB", "% E ref", "cov 24h", "battery", "temp C",
+    if s["stale"]:
+        con.print(f"[bold red]stale[/bold red]: recorded as running but no heartbeat for more than "
+                  f"{3 * s['heartbeat_s']:g} s (heartbeat every {s['heartbeat_s']:g} s); is the monitor still alive?")
+    t = Table("meter", "link", "last seen", "E V/m", "U dB", s["pct_label"], "cov 24h", "battery", "temp C",
               "drift ppm", "cert due", "alarms")
     f = lambda v, spec: "-" if v is None else format(v, spec)  # noqa: E731
     for m in s["meters"]:
         t.add_row(escape(m["meter"]), m["link"] or "-", m["last_seen_utc"] or "-", f(m["last_e_v_per_m"], ".3g"),
-                  f(m["u_expanded_db"], ".2f"), f(m["last_pct_field"], ".1f"), f(m["coverage_24h"], ".0%"),
+                  f(m["u_expanded_db"], ".2f"), f(m["last_pct"], ".1f"), f(m["coverage_24h"], ".0%"),
                   "mains" if m["battery_pct"] is None else f"{m['battery_pct']:.0f} %", f(m["temperature_degc"], ".1f"),
                   f(m["drift_ppm"], "+.0f"), f"{m['certificate_due']} ({m['certificate_days_left']} d)",
                   ", ".join(a["rule"] for a in m["active_alarms"]) or "none")
