@@ -394,6 +394,26 @@ class Store:
             return int(self.db.execute(f"select count(*) from {table} where session_id = ?", [session_id]).fetchone()[0])
 
 
+    def session_overview(self) -> list[dict]:
+        """One row per session with its device, span and counts of readings, spectra, events by
+        severity and calibrations, and the outcome of its latest assessment (if any)."""
+        sql = """
+            select s.id, s.kind, s.port, s.started_utc, s.ended_utc, s.notes, s.freq_hz, s.band_lo_hz, s.band_hi_hz,
+                   d.model, d.serial, d.probe_serial, d.sensor_kind,
+                   (select count(*) from readings r where r.session_id = s.id) as readings,
+                   (select count(*) from spectra p where p.session_id = s.id) as spectra,
+                   (select min(t_utc) from readings r where r.session_id = s.id) as first_utc,
+                   (select max(t_utc) from readings r where r.session_id = s.id) as last_utc,
+                   (select count(*) from events e where e.session_id = s.id) as events,
+                   (select count(*) from events e where e.session_id = s.id and e.severity = 'warning') as warnings,
+                   (select count(*) from events e where e.session_id = s.id and e.severity = 'error') as errors,
+                   (select count(*) from calibrations c where c.session_id = s.id) as calibrations,
+                   (select json_extract(e.detail, '$.outcome') from events e where e.session_id = s.id
+                      and e.kind = 'assessment' order by e.t_utc desc, e.id desc limit 1) as last_outcome
+            from sessions s left join devices d on d.id = s.device_id order by s.id"""
+        with self._lock:
+            return list(self.db.query(sql))
+
     # -- derived values: calibrations with provenance ------------------------------------------
     def status_temperatures(self, session_id: int) -> list[float]:
         """Temperatures (degC) the device reported during a session, in time order."""

@@ -1,0 +1,99 @@
+"""``meterlink sessions``: what a database holds: sessions, their instruments, counts and events."""
+
+from __future__ import annotations
+
+HELP = "list the sessions in a database, or one session's events (find the id for assess, report, recalibrate)"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("--db", metavar="FILE", default="meterlink.db", help="database (default meterlink.db)")
+    parser.add_argument("--events", metavar="ID", type=int, help="list the events of session ID instead")
+    parser.add_argument("--kind", metavar="KIND", help="with --events: only events of this kind (e.g. seq_gap)")
+    parser.add_argument("--json", action="store_true", help="print JSON")
+
+
+def run(args) -> int:
+    import json
+    from pathlib import Path
+
+    from meterlink.errors import MeterlinkError
+    from meterlink.storage import Store
+
+    if not Path(args.db).is_file():
+        raise MeterlinkError(f"no database at {args.db!r}")
+    with Store(args.db) as store:
+        if args.events is not None:
+            store.session(args.events)          # one-line error if there is no such session
+            rows = store.events(args.events, args.kind)
+        else:
+            rows = store.session_overview()
+    if args.json:
+        print(json.dumps(rows, indent=2, default=str))
+        return 0
+    from rich.console import Console
+
+    con = Console()
+    con.print(_events_table(rows, args.events) if args.events is not None else _sessions_table(rows, args.db))
+    return 0
+
+
+_SENSOR = {1: "E probe", 2: "H probe", 3: "dipole + receiver"}
+_OUTCOME_STYLE = {"compliant": "green", "not compliant": "red", "undecided": "yellow"}
+
+
+def _short_time(t):
+    import datetime as dt
+
+    if t is None:
+        return "-"
+    return dt.datetime.fromtimestamp(t, dt.timezone.utc).strftime("%Y-%m-%d %H:%M")
+
+
+def _sessions_table(rows, db):
+    from rich.markup import escape
+    from rich.table import Table
+
+    from meterlink.units import format_frequency
+
+    from rich import box
+
+    t = Table(title=f"sessions in {escape(str(db))}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False,
+              padding=(0, 1, 0, 0))
+    for col, just in (("id", "right"), ("kind", "left"), ("instrument", "left"), ("start UTC", "left"),
+                      ("span", "right"), ("data", "right"), ("events", "right"), ("verdict", "left")):
+        t.add_column(col, justify=just, no_wrap=col != "instrument", min_width=17 if col == "instrument" else None)
+    for r in rows:
+        inst = escape(r["model"] or "(no handshake)")
+        if r["sensor_kind"]:
+            inst += f"\n{_SENSOR.get(r['sensor_kind'], '?')} {escape(r['probe_serial'] or '')}"
+        if r["freq_hz"]:
+            inst += f"\nat {format_frequency(r['freq_hz'])}"
+        elif r["band_lo_hz"] and r["band_hi_hz"]:
+            inst += f"\n{format_frequency(r['band_lo_hz'])}-{format_frequency(r['band_hi_hz'])}"
+        span = (r["last_utc"] - r["first_utc"]) if r["first_utc"] is not None else None
+        data = f"{r['readings']} rd" if r["readings"] else (f"{r['spectra']} sp" if r["spectra"] else "-")
+        data += f"\n{r['calibrations']} cal" if r["calibrations"] else ""
+        ev = str(r["events"]) + (f"\n[yellow]{r['warnings']} warn[/]" if r["warnings"] else "") + \
+            (f"\n[red]{r['errors']} err[/]" if r["errors"] else "")
+        outcome = r["last_outcome"] or "-"
+        t.add_row(str(r["id"]), r["kind"], inst, _short_time(r["first_utc"] or r["started_utc"]).replace(" ", "\n"),
+                  "-" if span is None else f"{span / 60:.1f} min", data, ev,
+                  f"[{_OUTCOME_STYLE.get(outcome, 'default')}]{escape(outcome)}[/]")
+    t.caption = ("rd readings, sp spectra, cal calibrations applied; times by each device's clock.\n"
+                 "A session's events: meterlink sessions --events ID")
+    return t
+
+
+def _events_table(rows, sid):
+    from rich.markup import escape
+    from rich.table import Table
+
+    t = Table(title=f"events of session {sid}", title_justify="left")
+    for col in ("time", "severity", "kind", "message"):
+        t.add_column(col)
+    style = {"warning": "yellow", "error": "red"}
+    for e in rows:
+        sev = e["severity"]
+        t.add_row(_short_time(e["t_utc"]), f"[{style.get(sev, 'default')}]{escape(sev)}[/]", escape(e["kind"]),
+                  escape(e["message"] or ""))
+    return t

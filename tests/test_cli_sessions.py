@@ -1,0 +1,39 @@
+"""meterlink sessions: listing what a database holds, and one session's events."""
+
+import json
+
+from meterlink.cli import main
+from meterlink.recorder import Recorder
+from meterlink.storage import Store
+from simulators.pty_meter import SimulatedMeter
+
+
+def test_sessions_lists_counts_and_last_verdict_and_events(tmp_path, capsys):
+    db = tmp_path / "m.db"
+    with SimulatedMeter("demo", sensor="probe", seed=4, speed=100.0, faults={"drop": 0.05}) as sim, Store(db) as store:
+        summary = Recorder(store, sim.port, interval_ms=1000, duration_s=60.0, host_timeout_s=30.0,
+                           freq_hz=101.8e6).run()
+    assert main(["assess", "--db", str(db), "--standard", "icnirp-2020", "--tier", "public", "--json"]) == 0
+    outcome = json.loads(capsys.readouterr().out)["outcome"]
+    assert main(["sessions", "--db", str(db), "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert len(rows) == 1
+    row = rows[0]
+    assert row["readings"] == summary.readings and row["calibrations"] == 1
+    assert row["last_outcome"] == outcome and row["probe_serial"] == "EP-4417"
+    assert main(["sessions", "--db", str(db), "--events", str(row["id"]), "--kind", "seq_gap", "--json"]) == 0
+    gaps = json.loads(capsys.readouterr().out)
+    assert gaps and all(e["kind"] == "seq_gap" for e in gaps)       # 5 % of frames dropped on purpose
+    assert main(["sessions", "--db", str(db)]) == 0
+    text = capsys.readouterr().out
+    assert "EP-4417" in text and outcome in text
+
+
+def test_sessions_bad_input_is_one_line(tmp_path, capsys):
+    assert main(["sessions", "--db", str(tmp_path / "none.db")]) == 2
+    assert "no database" in capsys.readouterr().err
+    db = tmp_path / "e.db"
+    Store(db).close()
+    assert main(["sessions", "--db", str(db), "--events", "7"]) == 2
+    err = capsys.readouterr().err
+    assert "no session 7" in err and len(err.strip().splitlines()) == 1
