@@ -7,9 +7,7 @@ running-average summaries of three windows. Prints the time and peak memory of t
 
 from __future__ import annotations
 
-import resource
 import sqlite3
-import sys
 import tempfile
 import time
 import tracemalloc
@@ -17,10 +15,9 @@ from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-
-from meterlink import derived  # noqa: E402
-from meterlink.publish import statistics  # noqa: E402
+import _common
+from meterlink import derived
+from meterlink.publish import statistics
 
 T0 = 1_704_067_200.0  # 2024-01-01T00:00:00Z
 
@@ -50,25 +47,40 @@ def build(path: Path, rng) -> None:
     conn.close()
 
 
-def main() -> None:
+BASELINE_SQL = ("SELECT meter, CAST((t_start_utc - ?) / 86400 AS INT) AS day, sqrt(sum(energy) / sum(covered_s)), "
+                "max(e_max_v_per_m), count(*) FROM mon_block WHERE station_id = 1 AND band = 'total' AND "
+                "t_start_utc >= ? AND t_start_utc < ? GROUP BY meter, day")
+
+
+def main(argv=None) -> dict:
+    """Month statistics (meterlink.publish.statistics) vs one plain SQL aggregate of the same blocks by day."""
+    args = _common.parser(__doc__).parse_args(argv)
     rng = np.random.default_rng(0)
+    t0, t1 = T0 + 181 * 86400.0, T0 + 212 * 86400.0   # July 2024
     with tempfile.TemporaryDirectory() as d:
         path = Path(d) / "year.db"
         t = time.perf_counter()
         build(path, rng)
-        print(f"built a year of 6-minute blocks for 2 meters in {time.perf_counter() - t:.1f} s "
-              f"({path.stat().st_size / 1e6:.1f} MB)")
+        t_build = time.perf_counter() - t
         conn = sqlite3.connect(path)
         tracemalloc.start()
         t = time.perf_counter()
-        doc = statistics(conn, T0 + 181 * 86400.0, T0 + 212 * 86400.0)   # July 2024
+        doc = statistics(conn, t0, t1)
         dt = time.perf_counter() - t
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
-        days = len(doc["meters"][0]["day"])
-        print(f"month statistics (2 meters, {days} days, weeks, month, profiles): {dt * 1000:.0f} ms; "
-              f"peak Python memory {peak / 1e6:.1f} MB; process max RSS "
-              f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
+        t = time.perf_counter()
+        base_rows = conn.execute(BASELINE_SQL, (t0, t0, t1)).fetchall()
+        t_base = time.perf_counter() - t
+        size_mb = path.stat().st_size / 1e6
+    days = len(doc["meters"][0]["day"])
+    assert len(base_rows) == 2 * days
+    return _common.report(
+        "stats", f"month statistics (2 meters, {days} days, weeks, month, profiles) from a year of 6-minute blocks "
+        f"({size_mb:.0f} MB, built in {t_build:.0f} s): {dt * 1000:.0f} ms, peak traced {peak / 2**20:.1f} MiB",
+        f"one plain SQL aggregate by meter and day over the same blocks {t_base * 1000:.1f} ms", dt / t_base,
+        f"{dt / t_base:.1f}x the plain aggregate's time", "none set (report only)", None, args.json,
+        stats_s=dt, baseline_s=t_base)
 
 
 if __name__ == "__main__":
