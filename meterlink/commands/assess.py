@@ -26,24 +26,17 @@ def run(args) -> int:
     import json
 
     from meterlink.assessment import assess_field, assess_spectrum
-    from meterlink.commands.record import parse_band
+    from meterlink.commands.record import parse_declared
     from meterlink.errors import MeterlinkError
     from meterlink.limits import standards
     from meterlink.processing import FieldSeries, calibrated_series, latest_session
     from meterlink.storage import Store
-    from meterlink.units import parse_frequency_hz
     from meterlink.verdict import get_rule
 
     if args.standard not in standards():
         raise MeterlinkError(f"unknown standard {args.standard!r} (known: {', '.join(standards())})")
     rule = get_rule(args.rule)
-    freq = None
-    if args.freq:
-        try:
-            freq = parse_frequency_hz(args.freq)
-        except ValueError as exc:
-            raise MeterlinkError(f"--freq: {exc}") from None
-    band = parse_band(args.band) if args.band else None
+    freq, band = parse_declared(args.freq, args.band)
     from pathlib import Path
 
     if not Path(args.db).is_file():

@@ -23,22 +23,15 @@ def run(args) -> int:
     import numpy as np
 
     from meterlink.certificate import load_certificate
-    from meterlink.commands.record import parse_band
+    from meterlink.commands.record import parse_declared
     from meterlink.errors import MeterlinkError
     from meterlink.processing import FieldSeries, apply_certificate, latest_session
     from meterlink.storage import Store
-    from meterlink.units import parse_frequency_hz
 
     if not Path(args.db).is_file():
         raise MeterlinkError(f"no database at {args.db!r}")
     cert = load_certificate(args.certificate)
-    freq = None
-    if args.freq:
-        try:
-            freq = parse_frequency_hz(args.freq)
-        except ValueError as exc:
-            raise MeterlinkError(f"--freq: {exc}") from None
-    band = parse_band(args.band) if args.band else None
+    freq, band = parse_declared(args.freq, args.band)
     with Store(args.db) as store:
         sid = args.session if args.session is not None else latest_session(store)
         before = store.calibrations(sid)

@@ -57,25 +57,32 @@ def parse_band(text: str) -> tuple[float, float]:
     return band
 
 
+def parse_declared(freq_text: str | None, band_text: str | None) -> tuple[float | None, tuple[float, float] | None]:
+    """The --freq / --band pair of a command as (freq_hz, band); MeterlinkError naming the option."""
+    from meterlink.errors import MeterlinkError
+    from meterlink.units import parse_frequency_hz
+
+    freq = None
+    if freq_text is not None:
+        try:
+            freq = parse_frequency_hz(freq_text)
+        except ValueError as exc:
+            raise MeterlinkError(f"--freq: {exc}") from None
+    return freq, parse_band(band_text) if band_text is not None else None
+
+
 def run(args) -> int:
     import json
 
     from meterlink.errors import MeterlinkError
     from meterlink.recorder import Recorder
     from meterlink.storage import Store
-    from meterlink.units import parse_frequency_hz
 
     if not args.port:
         raise MeterlinkError("no --port given (see 'meterlink ports')")
     duration = _positive(args.duration, "--duration") if args.duration is not None else None
     interval = int(_positive(args.interval_ms, "--interval-ms", integer=True))
-    freq = None
-    if args.freq is not None:
-        try:
-            freq = parse_frequency_hz(args.freq)
-        except ValueError as exc:
-            raise MeterlinkError(f"--freq: {exc}") from None
-    band = parse_band(args.band) if args.band is not None else None
+    freq, band = parse_declared(args.freq, args.band)
     import sys
 
     show = not args.json and sys.stderr.isatty()
