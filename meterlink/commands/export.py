@@ -6,7 +6,7 @@ HELP = "export a station's 6-minute series and period summaries (CSV or JSON) fo
 def add_arguments(parser) -> None:
     parser.add_argument("--db", required=True, metavar="FILE", help="station database written by 'meterlink monitor'")
     parser.add_argument("--from", dest="t_from", metavar="DATE", help="start, ISO date or time (UTC)")
-    parser.add_argument("--to", dest="t_to", metavar="DATE", help="end, exclusive (default: now)")
+    parser.add_argument("--to", dest="t_to", metavar="DATE", help="end, exclusive (default: the end of the newest block)")
     parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
     parser.add_argument("--out", metavar="FILE", help="write here instead of standard output")
 

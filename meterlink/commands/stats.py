@@ -6,7 +6,7 @@ HELP = "statistics of a monitoring station per day, week and month (coverage, ma
 def add_arguments(parser) -> None:
     parser.add_argument("--db", required=True, metavar="FILE", help="station database written by 'meterlink monitor'")
     parser.add_argument("--from", dest="t_from", metavar="DATE", help="start, ISO date or time (UTC; default: first block)")
-    parser.add_argument("--to", dest="t_to", metavar="DATE", help="end, exclusive (default: now)")
+    parser.add_argument("--to", dest="t_to", metavar="DATE", help="end, exclusive (default: the end of the newest block)")
     parser.add_argument("--json", action="store_true", help="print the statistics as JSON")
 
 
@@ -25,9 +25,11 @@ def parse_when(text, what):
 
 def span(conn, args):
     import time
-    first = conn.execute("SELECT min(t_start_utc) FROM mon_block").fetchone()[0]
+    # defaults: the first block's start and the newest block's end (an accelerated simulator run lies
+    # in the future, so "now" would cut it off)
+    first, last = conn.execute("SELECT min(t_start_utc), max(t_start_utc + block_s) FROM mon_block").fetchone()
     t0 = parse_when(args.t_from, "--from") if args.t_from else (first or time.time())
-    t1 = parse_when(args.t_to, "--to") if args.t_to else time.time() + 1.0
+    t1 = parse_when(args.t_to, "--to") if args.t_to else (last or time.time() + 1.0)
     if not t1 > t0:
         from meterlink.errors import MeterlinkError
         raise MeterlinkError("--to must be later than --from")

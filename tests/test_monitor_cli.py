@@ -1,0 +1,168 @@
+"""meterlink status, stats and export through meterlink.cli.main on a database of a short accelerated run.
+
+Reference level: ICNIRP 2020, Health Phys 118(5), Table 5, whole body, general public: the most
+stringent level between 80 MHz and 4 GHz is that of >30-400 MHz, E = 27.7 V/m, S = 2 W/m^2.
+Power convention: percent = 100 (E^2/Z0) / S_ref, Z0 from scipy.constants.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import sqlite3
+import threading
+import time
+
+import pytest
+from scipy.constants import physical_constants
+
+from meterlink.cli import SAFETY_LINE, main
+from meterlink.monitor import Monitor
+from meterlink.station import parse_station
+from simulators.pty_meter import SimulatedMeter
+
+Z0 = physical_constants["characteristic impedance of vacuum"][0]
+STATION = """
+format = "meterlink-station/1"
+[station]
+name = "Brannock Tor report station"
+database = "report.db"
+[assessment]
+standard = "icnirp-2020"
+tier = "public"
+band = ["80 MHz", "4 GHz"]
+convention = "power"
+interval_s = 10
+windows_s = [360, 1800]
+[[meter]]
+name = "mast-foot"
+port = "PORT"
+certificate = "demo-probe"
+[health]
+drift_max_ppm = 1e9
+max_gap_s = 35
+"""
+
+
+@pytest.fixture(scope="module")
+def db(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("report")
+    speed = 2000.0
+    with SimulatedMeter("station", meter=1, seed=8, speed=speed) as sim:
+        st = parse_station(STATION.replace("PORT", sim.port), tmp / "station.toml")
+        mon = Monitor(st, time_scale=speed, backoff_max_s=0.5)
+        th = threading.Thread(target=mon.run)
+        th.start()
+        conn = sqlite3.connect(st.database, timeout=10)
+        deadline = time.monotonic() + 30
+        try:
+            while conn.execute("SELECT count(*) FROM mon_block WHERE complete=1").fetchone()[0] < 8:
+                assert time.monotonic() < deadline and th.is_alive()
+                th.join(0.1)
+        finally:
+            conn.close()
+            mon.stop()
+            th.join(30)
+    return st.database
+
+
+def _refs(db):
+    c = sqlite3.connect(db)
+    r = c.execute("SELECT e_ref_v_per_m, s_ref_w_per_m2 FROM mon_meter").fetchone()
+    c.close()
+    return r
+
+
+def _blocks(db):
+    c = sqlite3.connect(db)
+    rows = c.execute("SELECT t_start_utc, e_rms_v_per_m, complete FROM mon_block WHERE band='total' "
+                     "ORDER BY t_start_utc").fetchall()
+    c.close()
+    return rows
+
+
+def test_reference_level_recorded(db):
+    c = sqlite3.connect(db)
+    e_ref, s_ref = c.execute("SELECT e_ref_v_per_m, s_ref_w_per_m2 FROM mon_meter").fetchone()
+    # ICNIRP 2020 Table 5: S_ref = 2 W/m^2 up to 400 MHz and f/200 = 2 W/m^2 just above it. E: 27.7 V/m up
+    # to 400 MHz, 1.375 f^0.5 = 27.5 V/m just above; the monitor samples the band on a 64-point grid and
+    # finds 27.57 V/m (a known approximation of band_reference, at most 0.3 % here)
+    assert s_ref == pytest.approx(2.0, rel=1e-3)
+    assert 27.5 <= e_ref <= 27.7
+
+
+def test_export_csv(db, capsys):
+    E_REF, S_REF = _refs(db)
+    assert main(["export", "--db", str(db), "--format", "csv"]) == 0
+    out = capsys.readouterr().out
+    head = [ln[2:] for ln in out.splitlines() if ln.startswith("# ")]
+    assert "limit set: icnirp-2020 public (whole-body reference levels)" in head
+    assert any(h.startswith("convention: percent of the power-density reference level") for h in head)
+    assert f"caution: {SAFETY_LINE}" in head
+    rows = list(csv.DictReader(io.StringIO("\n".join(ln for ln in out.splitlines() if not ln.startswith("#")))))
+    blocks = _blocks(db)
+    # by default the export runs to the end of the data, though an accelerated run lies in the future
+    assert len(rows) == len(blocks) and blocks[-1][0] > time.time() + 1800
+    for r, (t0, e, ok) in zip(rows, blocks):
+        assert r["complete"] == str(bool(ok))
+        if e is not None:
+            assert float(r["percent_of_reference"]) == pytest.approx(100 * e * e / Z0 / S_REF, rel=1e-3, abs=1e-4)
+
+
+def test_export_json_to_file(db, tmp_path, capsys):
+    out = tmp_path / "pub.json"
+    assert main(["export", "--db", str(db), "--format", "json", "--out", str(out)]) == 0
+    doc = json.loads(out.read_text())
+    assert doc["caution"] == SAFETY_LINE and any(SAFETY_LINE in a for a in doc["about"])
+    s = doc["summaries"]
+    assert (s["standard"], s["tier"], s["convention"]) == ("icnirp-2020", "public", "power")
+    assert len(doc["series_6min"]) == len(_blocks(db))
+
+
+def test_stats_json_and_table(db, capsys):
+    E_REF, S_REF = _refs(db)
+    assert main(["stats", "--db", str(db), "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["caution"] == SAFETY_LINE and doc["convention"] == "power"
+    m, = doc["meters"]
+    assert "icnirp-2020 public" in m["label"] and "S/S_ref" in m["label"]
+    complete = [e for _, e, ok in _blocks(db) if ok and e is not None]
+    n = sum(d.get("n_blocks", 0) for d in m["day"])
+    assert n == len(complete)                       # every complete block, the future ones included
+    top = max(d["max_pct"] for d in m["day"] if d.get("n_blocks"))
+    assert top == pytest.approx(100 * max(complete) ** 2 / Z0 / S_REF, rel=1e-9)
+    assert main(["stats", "--db", str(db)]) == 0
+    text = " ".join(capsys.readouterr().out.split())       # rich wraps long lines
+    assert "power density (S/S_ref, S = E^2/Z0) reference level" in text and SAFETY_LINE in text
+
+
+def test_status_uses_station_convention(db, capsys, monkeypatch):
+    monkeypatch.setenv("COLUMNS", "250")                   # a wide terminal: rich keeps headers whole
+    E_REF, S_REF = _refs(db)
+    assert main(["status", "--db", str(db), "--json"]) == 0
+    s = json.loads(capsys.readouterr().out)
+    assert s["convention"] == "power" and s["pct_label"] == "% S ref" and s["state"] == "stopped"
+    m, = s["meters"]
+    assert m["last_pct"] == pytest.approx(100 * m["last_e_v_per_m"] ** 2 / Z0 / S_REF)
+    assert m["last_pct_field"] == pytest.approx(100 * m["last_e_v_per_m"] / E_REF)
+    assert main(["status", "--db", str(db)]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert "% S ref" in text and "% E ref" not in text and SAFETY_LINE in text
+
+
+@pytest.mark.parametrize("argv,msg", [
+    (["status", "--db", "DIR/absent.db"], "no such database file"),
+    (["stats", "--db", "DB", "--from", "yesterday"], "--from 'yesterday': expected an ISO date"),
+    (["stats", "--db", "DB", "--from", "2030-01-02", "--to", "2030-01-01"], "--to must be later than --from"),
+    (["export", "--db", "EMPTY"], "no monitoring station record"),
+    (["export", "--db", "DB", "--out", "DIR/no/such/dir/x.csv"], "cannot write"),
+])
+def test_bad_input_is_one_line(db, tmp_path, capsys, argv, msg):
+    empty = tmp_path / "empty.db"
+    sqlite3.connect(empty).execute("CREATE TABLE t (x)").connection.close()
+    argv = [a.replace("DIR", str(tmp_path)).replace("EMPTY", str(empty)).replace("DB", str(db)) for a in argv]
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and msg in err and "Traceback" not in err
