@@ -16,7 +16,7 @@ from meterlink.averaging import running_average
 from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_ASSUMED, FREQ_OUT
 from meterlink.errors import MeterlinkError
 from meterlink.exposure import multi_frequency, near_field_check
-from meterlink.limits import ReferenceLevel, reference_level
+from meterlink.limits import ReferenceLevel, most_restrictive_level, reference_level
 from meterlink.verdict import Verdict, decide_field, decide_ratio, get_rule
 
 WHOLE_BODY = "whole_body"
@@ -84,26 +84,7 @@ def governing_level(standard: str, tier: str, freq_hz=None, band=None, fallback_
     lo, hi = band if band else (fallback_range or (None, None))
     if not lo or not hi:
         raise MeterlinkError("no frequency declared and no band known: give --freq or --band")
-    def scan(freqs):
-        found = []
-        for f in freqs:
-            try:
-                found.append(reference_level(standard, tier, float(f), WHOLE_BODY))
-            except MeterlinkError:
-                continue
-        return found
-
-    levels = scan(np.geomspace(lo, hi, 241))
-    # tables step at their breakpoints: look just either side of every edge inside the band
-    edges = {e for rl in levels for e in (rl.band_lo_hz, rl.band_hi_hz) if lo < e < hi}
-    levels += scan([e * (1 + s) for e in edges for s in (-1e-9, 1e-9)])
-    best = None
-    for rl in levels:
-        if rl.e_v_per_m and (best is None or rl.e_v_per_m < best.e_v_per_m):
-            best = rl
-    if best is None:
-        raise MeterlinkError(f"{standard} gives no E reference level between {units.format_frequency(lo)} "
-                             f"and {units.format_frequency(hi)}")
+    best = most_restrictive_level(standard, tier, lo, hi, WHOLE_BODY)
     how = "declared band" if band else "no frequency declared: certificate range"
     return best, (f"{how} {units.format_frequency(lo)}-{units.format_frequency(hi)}; most restrictive level "
                   f"at {units.format_frequency(best.freq_hz)}")

@@ -404,6 +404,41 @@ def reference_level(standard: str, tier: str, freq_hz: float, kind: str = "whole
     return _level(table, _covering_row(table, freq_hz), freq_hz)
 
 
+_QUANTITY_FIELD = {"e": "e_v_per_m", "h": "h_a_per_m", "s": "s_w_per_m2"}
+
+
+def most_restrictive_level(standard: str, tier: str, lo_hz: float, hi_hz: float, kind: str = "whole_body",
+                           quantity: str = "e") -> ReferenceLevel:
+    """The level with the lowest E (or H, or S) anywhere in [lo_hz, hi_hz]: what a broadband probe,
+    which cannot tell frequencies apart, must be judged against (common practice).
+
+    Tables step at their breakpoints (ICNIRP 2020 public: 27.7 V/m up to 400 MHz, then
+    1.375*sqrt(f_M) = 27.5 V/m just above), so both sides of every edge inside the band are
+    examined as well as a dense log grid.
+    """
+    attr = _QUANTITY_FIELD[quantity]
+    lo, hi = float(min(lo_hz, hi_hz)), float(max(lo_hz, hi_hz))
+    n = 1 if lo == hi else 401
+    grid = [lo * (hi / lo) ** (i / max(1, n - 1)) for i in range(n)] + [hi]
+    found: list[ReferenceLevel] = []
+
+    def scan(freqs):
+        for f in freqs:
+            if lo <= f <= hi:
+                try:
+                    found.append(reference_level(standard, tier, f, kind))
+                except MeterlinkError:
+                    pass
+
+    scan(grid)
+    edges = {x for r in found for x in (r.band_lo_hz, r.band_hi_hz) if lo < x < hi}
+    scan([x * (1 + d) for x in sorted(edges) for d in (-1e-9, 0.0, 1e-9)])
+    usable = [r for r in found if getattr(r, attr) is not None]
+    if not usable:
+        raise LimitsError(f"{standard} {tier}: no {quantity.upper()} reference level between "
+                          f"{format_frequency(lo)} and {format_frequency(hi)}")
+    return min(usable, key=lambda r: getattr(r, attr))
+
 def reference_levels_at(freq_hz: float, standard: str | None = None,
                         tier: str | None = None) -> list[ReferenceLevel]:
     """All levels (every kind except brief_energy) covering freq_hz, optionally filtered."""

@@ -24,7 +24,7 @@ from meterlink import calibrate, derived
 from meterlink.alarms import AlarmMachine, rule_value, run_command
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
-from meterlink.limits import reference_level
+from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
 from meterlink.storage import BatchWriter, Store, event_row
@@ -35,13 +35,9 @@ SEVERITY_OF = {"warning": "warning", "error": "error"}
 
 def band_reference(standard: str, tier: str, freq) -> tuple[float, float]:
     """(E_ref, S_ref) at a frequency, or the most stringent over a band (lowest level inside it)."""
-    if isinstance(freq, tuple):
-        fs = np.geomspace(freq[0], freq[1], 64)
-    else:
-        fs = [float(freq)]
-    levels = [reference_level(standard, tier, float(f)) for f in fs]
-    return (min(r.e_v_per_m for r in levels if r.e_v_per_m is not None),
-            min(r.s_w_per_m2 for r in levels if r.s_w_per_m2 is not None))
+    lo, hi = freq if isinstance(freq, tuple) else (float(freq), float(freq))
+    return (most_restrictive_level(standard, tier, lo, hi, quantity="e").e_v_per_m,
+            most_restrictive_level(standard, tier, lo, hi, quantity="s").s_w_per_m2)
 
 
 @dataclass

@@ -78,3 +78,21 @@ def test_demo_runs_end_to_end(tmp_path, capsys):
     assert out["sessions"][0]["readings"] >= 110
     assert out["sessions"][1]["assessment"]["emitters"]
     assert (tmp_path / "d" / "demo.db").is_file()
+
+
+def test_report_of_a_recorded_session_uses_its_assessment_and_escapes_text(tmp_path, capsys):
+    db = tmp_path / "r.db"
+    with SimulatedMeter("demo", sensor="probe", seed=9, speed=100.0) as sim, Store(db) as store:
+        Recorder(store, sim.port, interval_ms=1000, duration_s=60.0, host_timeout_s=30.0, freq_hz=101.8e6,
+                 notes="<script>alert(1)</script> north gate").run()
+    assert main(["report", "--db", str(db), "--session", "1", "--out", str(tmp_path / "rep")]) == 2
+    assert "has not been assessed" in capsys.readouterr().err
+    assert main(["assess", "--db", str(db), "--standard", "fcc-1310", "--tier", "occupational", "--json"]) == 0
+    verdict = json.loads(capsys.readouterr().out)
+    assert main(["report", "--db", str(db), "--session", "1", "--out", str(tmp_path / "rep"), "--json"]) == 0
+    html = (tmp_path / "rep" / "report.html").read_text()
+    assert "<script>alert" not in html and "&lt;script&gt;alert(1)&lt;/script&gt; north gate" in html
+    assert "fcc-1310" in html and verdict["outcome"] in html and "energised antennas" in html
+    assert "61.4 V/m" in html          # FCC 47 CFR 1.1310 Table 1 (A), 30-300 MHz occupational
+    rows = (tmp_path / "rep" / "values.csv").read_text().splitlines()
+    assert rows[0].startswith("reading_id,t_utc,e_v_per_m") and len(rows) >= 60

@@ -381,3 +381,18 @@ def test_breakpoint_belongs_to_lower_band_unless_inclusive():
     # ICNIRP 2020 Table 6: 300 GHz exactly has its own row (20 W/m2, not 55/300^0.177).
     assert limits.reference_level("icnirp-2020", "public", 300e9, "local").band_lo_hz == 300e9
     assert limits.reference_level("icnirp-2020", "public", 299.9e9, "local").s_w_per_m2 == pytest.approx(55 / 299.9**0.177)
+
+
+def test_most_restrictive_level_finds_the_step_at_a_breakpoint():
+    """ICNIRP 2020 Table 5 public (partly verified): 27.7 V/m over 30-400 MHz, 1.375*sqrt(f_M) above,
+    i.e. 27.5 V/m just above 400 MHz; S is 2 W/m2 on both sides (f_M/200 at 400 MHz)."""
+    from meterlink.limits import most_restrictive_level
+
+    rl = most_restrictive_level("icnirp-2020", "public", 80e6, 4e9)
+    assert rl.e_v_per_m == pytest.approx(27.5, rel=1e-6) and rl.freq_hz > 400e6
+    assert most_restrictive_level("icnirp-2020", "public", 80e6, 4e9, quantity="s").s_w_per_m2 == pytest.approx(2.0)
+    assert most_restrictive_level("icnirp-2020", "public", 100e6, 300e6).e_v_per_m == pytest.approx(27.7)
+    # FCC 47 CFR 1.1310 Table 1 (B): only S is tabulated above 300 MHz; 1.0 mW/cm2 = 10 W/m2 above 1.5 GHz
+    assert most_restrictive_level("fcc-1310", "public", 2e9, 6e9, quantity="s").s_w_per_m2 == pytest.approx(10.0)
+    with pytest.raises(MeterlinkError):
+        most_restrictive_level("icnirp-2020", "public", 400e9, 500e9)   # beyond the table's 300 GHz

@@ -87,10 +87,9 @@ def test_reference_level_recorded(db):
     c = sqlite3.connect(db)
     e_ref, s_ref = c.execute("SELECT e_ref_v_per_m, s_ref_w_per_m2 FROM mon_meter").fetchone()
     # ICNIRP 2020 Table 5: S_ref = 2 W/m^2 up to 400 MHz and f/200 = 2 W/m^2 just above it. E: 27.7 V/m up
-    # to 400 MHz, 1.375 f^0.5 = 27.5 V/m just above; the monitor samples the band on a 64-point grid and
-    # finds 27.57 V/m (a known approximation of band_reference, at most 0.3 % here)
-    assert s_ref == pytest.approx(2.0, rel=1e-3)
-    assert 27.5 <= e_ref <= 27.7
+    # to 400 MHz, 1.375 f^0.5 = 27.5 V/m just above: the band's most restrictive E is found at that edge
+    assert s_ref == pytest.approx(2.0, rel=1e-6)
+    assert e_ref == pytest.approx(1.375 * 400 ** 0.5, rel=1e-6)
 
 
 def test_export_csv(db, capsys):

@@ -1,14 +1,17 @@
-"""``meterlink report``: the survey report (self-contained HTML and CSV files) of a stored survey."""
+"""``meterlink report``: a self-contained HTML report with CSV files, for a survey or any recorded session."""
 
 from __future__ import annotations
 
-HELP = "write the HTML and CSV report of a survey session"
+HELP = "write the HTML and CSV report of a survey, or of any recorded session that has been assessed"
 
 
 def add_arguments(parser) -> None:
     parser.add_argument("--db", metavar="FILE", required=True, help="database file holding the survey")
-    parser.add_argument("--session", metavar="ID", required=True, help="survey session id")
+    parser.add_argument("--session", metavar="ID", required=True, help="session id (see 'meterlink sessions')")
     parser.add_argument("--out", metavar="DIR", required=True, help="directory for report.html and the CSV files")
+    parser.add_argument("--standard", metavar="NAME", help="for a recorded session: standard (default: its last assessment's)")
+    parser.add_argument("--tier", choices=("public", "occupational"), help="for a recorded session: tier")
+    parser.add_argument("--rule", metavar="NAME", help="for a recorded session: decision rule")
     parser.add_argument("--json", action="store_true", help="print the files written as JSON")
 
 
@@ -23,7 +26,20 @@ def run(args) -> int:
         sid = int(args.session)
     except ValueError:
         raise MeterlinkError(f"--session {args.session!r} is not a whole number") from None
-    html = write_report(args.db, sid, args.out)
+    from pathlib import Path
+
+    from meterlink.storage import Store
+
+    if not Path(args.db).is_file():
+        raise MeterlinkError(f"database {args.db!r} does not exist")
+    with Store(args.db) as store:
+        kind = store.session(sid)["kind"]
+    if kind == "survey":
+        html = write_report(args.db, sid, args.out)
+    else:
+        from meterlink.session_report import write_session_report
+
+        html = write_session_report(args.db, sid, args.out, standard=args.standard, tier=args.tier, rule=args.rule)
     files = sorted(str(p) for p in html.parent.glob("*.csv"))
     if args.json:
         print(json.dumps({"html": str(html), "csv": files}, indent=2))

@@ -2,35 +2,25 @@
 
 from __future__ import annotations
 
-import base64
-import html
-import io
-
 import numpy as np
 
+from meterlink.htmlpage import CSS, figure_png, img, table
+from meterlink.htmlpage import e as _e
 from meterlink.lab.certify import Calibration, Comparison
 
-_CSS = ("body{font-family:sans-serif;max-width:60em;margin:2em auto;color:#222}table{border-collapse:collapse;"
-        "margin:.5em 0 1.5em}td,th{border:1px solid #bbb;padding:.2em .5em;text-align:right}th{background:#eee}"
-        ".notice{border:2px solid #b00;padding:.5em;color:#b00;font-weight:bold}.caution{font-size:.9em;color:#555}")
-
-
-def _e(x) -> str:
-    return html.escape(str(x), quote=True)
+_CSS = CSS + "td,th{text-align:right}"
 
 
 def _table(head, rows) -> str:
-    h = "".join(f"<th>{_e(c)}</th>" for c in head)
-    b = "".join("<tr>" + "".join(f"<td>{_e(c)}</td>" for c in r) + "</tr>" for r in rows)
-    return f"<table><tr>{h}</tr>{b}</table>"
+    return table(head, [[_e(c) for c in r] for r in rows])
 
 
 def _png(fig) -> str:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
     import matplotlib.pyplot as plt
+
+    png = figure_png(fig, dpi=90)
     plt.close(fig)
-    return f'<img alt="plot" src="data:image/png;base64,{base64.b64encode(buf.getvalue()).decode("ascii")}">'
+    return img(png, "plot")
 
 
 def _plots(cal: Calibration) -> list[str]:

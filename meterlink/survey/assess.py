@@ -9,7 +9,7 @@ import numpy as np
 
 from meterlink.errors import MeterlinkError
 from meterlink.exposure import multi_frequency, near_field_check, percent_of_limit
-from meterlink.limits import reference_level
+from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
 from meterlink.calibrate import ABOVE_RANGE
@@ -36,29 +36,9 @@ def broadband_reference(standard: str, tier: str, band_hz: tuple[float, float] |
     cannot tell frequencies apart, so the most restrictive level applies (common practice)."""
     if np.ndim(band_hz) == 0:
         lo = hi = float(band_hz)
-        grid = np.array([lo])
     else:
         lo, hi = float(band_hz[0]), float(band_hz[1])
-        grid = np.unique(np.concatenate([np.geomspace(lo, hi, 400), [lo, hi]]))
-    best, edges = None, set()
-
-    def consider(f):
-        nonlocal best
-        try:
-            lv = reference_level(standard, tier, float(f))
-        except MeterlinkError:
-            return
-        edges.update(x for x in (lv.band_lo_hz, lv.band_hi_hz) if lo <= x <= hi)
-        if lv.e_v_per_m is not None and (best is None or lv.e_v_per_m < best.e_v_per_m):
-            best = lv
-    for f in grid:
-        consider(f)
-    for f in sorted(edges):    # a monotone law between table rows is lowest at (either side of) a row edge
-        for g in (f * (1 - 1e-9), f, f * (1 + 1e-9)):
-            if lo <= g <= hi:
-                consider(g)
-    if best is None:
-        raise MeterlinkError(f"{standard} {tier}: no E reference level between {lo:g} and {hi:g} Hz")
+    best = most_restrictive_level(standard, tier, lo, hi)
     return Broadband(float(best.e_v_per_m), float(best.freq_hz), float(best.averaging_time_s or 360.0),
                      (lo, hi), best.source)
 

@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-import io
 import math
 
-from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+
+from meterlink.htmlpage import figure_png
 
 _ACCENT, _MUTED, _LIMIT = "#2b6f77", "#b9c3c6", "#b3261e"
 
@@ -16,11 +16,7 @@ def _safe(s) -> str:
     return str(s).replace("$", r"\$")
 
 
-def _png(fig: Figure) -> bytes:
-    FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110)
-    return buf.getvalue()
+_png = figure_png
 
 
 def walk_plot(trace: list[dict], points: list[dict], e_ref_v_per_m: float, followup_v_per_m=None) -> bytes:

@@ -6,14 +6,13 @@ spreadsheet would run as a formula are prefixed with a quote.
 
 from __future__ import annotations
 
-import base64
-import csv
 import datetime as _dt
 import math
-from html import escape
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError
+from meterlink.htmlpage import CSS, csv_cell, e, img, num, table, utc, verdict
+from meterlink.htmlpage import write_csv as write_rows
 
 CAUTIONS = (
     "The values in this report describe the field at the listed points, at the time of measurement and, "
@@ -25,48 +24,8 @@ CAUTIONS = (
     "value is compared with the most restrictive reference level in its band. Keep clear of energised "
     "antennas and observe the site's access rules, barriers and signage at all times.")
 
-_CSS = """
-body{font-family:system-ui,sans-serif;margin:2rem auto;max-width:64rem;color:#1d2a2e;line-height:1.4}
-h1{font-weight:600;border-bottom:3px solid #2b6f77;padding-bottom:.3rem}
-h2{color:#2b6f77;margin-top:2rem;font-weight:600}
-table{border-collapse:collapse;width:100%;font-size:.88rem;margin:.5rem 0}
-th,td{border-bottom:1px solid #d5dcde;padding:.25rem .45rem;text-align:left;vertical-align:top}
-th{background:#eef3f4;font-weight:600}
-td.n{text-align:right;font-variant-numeric:tabular-nums}
-.ok{color:#1e6b34;font-weight:600}.bad{color:#b3261e;font-weight:700}.und{color:#8a5a00;font-weight:600}
-.caution{border-left:5px solid #b3261e;background:#fbf1f0;padding:.6rem 1rem}
-.note{color:#55666b;font-size:.85rem}
-img{max-width:100%}
-"""
-
-
-def _e(v) -> str:
-    return escape("" if v is None else str(v), quote=True)
-
-
-def _f(v, fmt="{:.3f}") -> str:
-    return "–" if v is None or (isinstance(v, float) and not math.isfinite(v)) else fmt.format(v)
-
-
-def _utc(t) -> str:
-    return "–" if t is None else _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
-
-
-def _verdict(v: str) -> str:
-    cls = {"compliant": "ok", "not compliant": "bad"}.get(v, "und")
-    return f'<span class="{cls}">{_e(v)}</span>'
-
-
-def _table(head, rows, numeric=()) -> str:
-    out = ["<table><tr>" + "".join(f"<th>{_e(h)}</th>" for h in head) + "</tr>"]
-    for r in rows:
-        out.append("<tr>" + "".join(f'<td class="n">{c}</td>' if i in numeric else f"<td>{c}</td>"
-                                    for i, c in enumerate(r)) + "</tr>")
-    return "\n".join(out) + "</table>"
-
-
-def _img(png: bytes, alt: str) -> str:
-    return f'<img alt="{_e(alt)}" src="data:image/png;base64,{base64.b64encode(png).decode()}">'
+_CSS = CSS
+_e, _f, _utc, _verdict, _table, _img = e, num, utc, verdict, table, img
 
 
 def render_html(sv: dict, figures: dict[str, bytes]) -> str:
@@ -176,18 +135,7 @@ def _heights(p) -> str:
     return ", ".join(f"{x:.2f}" for x in hs) if len(hs) > 1 else _f(p["height_m"], "{:.2f}")
 
 
-def _cell(v):
-    if isinstance(v, str) and v[:1] in ("=", "+", "-", "@", "\t", "\r"):
-        return "'" + v
-    return v
-
-
-def _csv(path: Path, head, rows) -> None:
-    with open(path, "w", newline="", encoding="utf-8") as f:
-        w = csv.writer(f)
-        w.writerow(head)
-        for r in rows:
-            w.writerow([_cell(v) for v in r])
+_cell, _csv = csv_cell, write_rows
 
 
 def write_csv(sv: dict, out: Path) -> list[Path]:

@@ -1,0 +1,154 @@
+"""Report of a recorded (non-survey) session: instrument, calibration, assessment, field plot, events.
+
+The standard, tier and decision rule are those recorded by the session's latest assessment (the
+rule is fixed before the assessment, see `meterlink assess`), unless the caller names them.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from meterlink import htmlpage as H
+from meterlink.errors import MeterlinkError
+
+CAUTIONS = (
+    "These results describe the field at the probe's position during the recording. They support, and do "
+    "not replace, an exposure assessment by a qualified person under the regulations that apply at the "
+    "site; local codes and licensed practice come first. Reference levels assume far-field, plane-wave "
+    "conditions: close to an antenna, or below 30 MHz, E and H must both be measured. A broadband probe "
+    "cannot tell sources apart. Keep clear of energised antennas and observe the site's access rules.")
+
+
+def _choices(store, sid, standard, tier, rule):
+    if standard and tier and rule:
+        return standard, tier, rule
+    for ev in reversed(store.events(sid, "assessment")):
+        d = ev["detail"]
+        return standard or d.get("standard"), tier or d.get("tier"), rule or d.get("rule")
+    raise MeterlinkError(f"session {sid} has not been assessed: run 'meterlink assess' first, or give "
+                         f"--standard, --tier and --rule")
+
+
+def _field_plot(series, a) -> bytes:
+    from matplotlib.figure import Figure
+
+    from meterlink.averaging import running_average
+
+    t = np.asarray(series.t_utc)
+    e = np.asarray(series.e_v_per_m, dtype=float)
+    ok = np.isfinite(e)
+    fig = Figure(figsize=(8, 3.2))
+    ax = fig.add_subplot()
+    t0 = t[ok][0] if ok.any() else 0.0
+    ax.plot((t[ok] - t0) / 60, e[ok], color="#b9c3c6", lw=0.8, label="E (each reading)")
+    if a.window_s and ok.sum() > 2:
+        ra = running_average(t[ok], e[ok], a.window_s)
+        if np.any(ra.complete):
+            y = np.where(ra.complete, ra.e_rms_v_per_m, np.nan)
+            ax.plot((ra.t_end_s - t0) / 60, y, color="#2b6f77", lw=1.8,
+                    label=f"{a.window_s / 60:g}-min running average")
+    if a.limit_v_per_m:
+        ax.axhline(a.limit_v_per_m, color="#b3261e", ls="--", lw=1.2, label=f"reference level {a.limit_v_per_m:.4g} V/m")
+    ax.set(xlabel="minutes from the first reading (device clock)", ylabel="E (V/m)")
+    ax.set_ylim(bottom=0)
+    ax.grid(alpha=0.3)
+    ax.legend(loc="best", fontsize=8)
+    return H.figure_png(fig)
+
+
+def _shares_plot(a) -> bytes:
+    from matplotlib.figure import Figure
+
+    from meterlink.units import format_frequency
+
+    em = list(a.emitters)[:12]
+    fig = Figure(figsize=(8, 0.35 * len(em) + 1.2))
+    ax = fig.add_subplot()
+    ax.barh([format_frequency(x.freq_hz) for x in em][::-1], [100 * x.share for x in em][::-1], color="#2b6f77")
+    ax.set(xlabel="share of the total exposure ratio (%)")
+    ax.grid(axis="x", alpha=0.3)
+    return H.figure_png(fig)
+
+
+def write_session_report(db_path, session_id: int, out_dir, *, standard=None, tier=None, rule=None) -> Path:
+    """Write report.html and values.csv for a recorded session; returns the HTML path."""
+    from meterlink.assessment import assess_field, assess_spectrum
+    from meterlink.certificate import parse_certificate
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.processing import FieldSeries, calibrated_series
+    from meterlink.storage import Store
+
+    if not Path(db_path).is_file():
+        raise MeterlinkError(f"database {str(db_path)!r} does not exist")
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
+    with Store(db_path) as store:
+        s = store.session(session_id)
+        standard, tier, rule = _choices(store, session_id, standard, tier, rule)
+        series = calibrated_series(store, session_id)
+        cal = store.calibrations(session_id)[-1]
+        cert = parse_certificate(cal["certificate_text"], "stored calibration")
+        if isinstance(series, FieldSeries):
+            band = (s["band_lo_hz"], s["band_hi_hz"]) if s.get("band_lo_hz") and s.get("band_hi_hz") else None
+            a = assess_field(series, standard, tier, rule, freq_hz=s.get("freq_hz"), band=band,
+                             fallback_range=cert.freq_range_hz, has_h=cert.quantity == "H")
+        else:
+            a = assess_spectrum(series, standard, tier, rule)
+        events = store.events(session_id)
+    kinds: dict[str, int] = {}
+    for ev in events:
+        kinds[ev["kind"]] = kinds.get(ev["kind"], 0) + 1
+    body = [f"<h1>Exposure record, session {session_id}</h1>",
+            f'<p class="caution"><b>Safety.</b> {H.e(SAFETY_LINE)}</p>',
+            "<h2>Instrument and calibration</h2>",
+            H.table(("item", "value"), [(H.e(k), H.e(v)) for k, v in (
+                ("meter", f"{s.get('device_model')} serial {s.get('device_serial')}"),
+                ("probe or antenna", s.get("device_probe_serial")),
+                ("firmware / protocol", f"{s.get('device_fw_version')} / {s.get('device_protocol_version')}"),
+                ("port", s.get("port")), ("session notes", s.get("notes")),
+                ("certificate applied", cal["certificate_name"]), ("certificate due", cert.due_date),
+                ("certificate SHA-256", cal["certificate_sha256"]),
+                ("recorded", f"{H.utc(float(np.nanmin(series.t_utc)))} to {H.utc(float(np.nanmax(series.t_utc)))} "
+                             f"(device clock)" if len(series.t_utc) else "-"))]),
+            "<h2>Assessment</h2>",
+            H.table(("item", "value"), [(H.e(k), v) for k, v in (
+                ("standard", H.e(f"{a.standard}, {a.tier_label}: {a.source} [{a.status}]")),
+                ("decision rule", H.e(a.rule)), ("mode", H.e(f"{a.mode}: {a.frequency_note}")),
+                ("reference level", H.e(f"{H.num(a.limit_v_per_m, '{:.4g}')} V/m" + (" (derived)" if a.limit_derived else ""))),
+                ("averaging time", H.e(f"{a.window_s / 60:g} min" if a.window_s else "-")),
+                ("peak", H.e(f"{a.peak_v_per_m:.4g} V/m")),
+                ("time-averaged value", H.e(f"{a.value_v_per_m:.4g} V/m" + ("" if a.value_complete else
+                                                                          " (window incomplete: record mean)"))),
+                ("expanded uncertainty", H.e(f"U = {a.u_expanded_db:.2f} dB (k = 2)")),
+                ("percent of the field level", H.e(f"{a.percent_field:.1f} %")),
+                ("percent of the power-density level", H.e(f"{a.percent_power:.1f} %")),
+                ("outcome", H.verdict(a.verdict.outcome)))]),
+            f"<p>{H.e(a.verdict.statement)}</p>"]
+    body += [f'<p class="note">note: {H.e(n)}</p>' for n in a.notes]
+    if isinstance(series, FieldSeries):
+        body += ["<h2>Field against time</h2>", H.img(_field_plot(series, a), "field against time")]
+        H.write_csv(out / "values.csv", ("reading_id", "t_utc", "e_v_per_m", "ex_v_per_m", "ey_v_per_m", "ez_v_per_m",
+                                         "u_expanded_db", "flags"),
+                    ([int(i), f"{t:.3f}", f"{v:.6g}", *(f"{x:.6g}" for x in ax), f"{u:.3f}", int(fl)]
+                     for i, t, v, ax, u, fl in zip(series.reading_ids, series.t_utc, series.e_v_per_m,
+                                                    series.axes_v_per_m, series.u_expanded_db, series.flags)))
+    else:
+        body += ["<h2>Emitters</h2>", H.img(_shares_plot(a), "emitter shares"),
+                 H.table(("frequency (Hz)", "E (V/m)", "term", "uses", "share"),
+                         [(H.num(x.freq_hz, "{:.0f}"), H.num(x.e_v_per_m, "{:.4g}"), H.num(x.term_ratio, "{:.4g}"),
+                           H.e(x.quantity), H.num(100 * x.share, "{:.1f} %")) for x in a.emitters], numeric=(0, 1, 2, 4))]
+        H.write_csv(out / "values.csv", ("freq_hz", "e_v_per_m", "term_ratio", "quantity", "share"),
+                    ([x.freq_hz, x.e_v_per_m, x.term_ratio, x.quantity, x.share] for x in a.emitters))
+    body += ["<h2>Events</h2>", H.table(("kind", "count"), [(H.e(k), str(n)) for k, n in sorted(kinds.items())],
+                                        numeric=(1,)),
+             "<h2>Cautions</h2>", f'<p class="caution">{H.e(CAUTIONS)}</p>',
+             f'<p class="note">Assessment details as JSON: {H.e(json.dumps({"outcome": a.verdict.outcome, "exposure_ratio_power": a.total_exposure_ratio}))}</p>']
+    html = out / "report.html"
+    html.write_text(H.page(f"Exposure record, session {session_id}", "\n".join(body)), encoding="utf-8")
+    return html
