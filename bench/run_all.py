@@ -15,8 +15,8 @@ import time
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-BENCHES = ["bench_parse", "bench_ingest", "bench_averaging", "bench_stats", "bench_monitor", "bench_many_meters",
-           "bench_cli"]
+BENCHES = ["bench_parse", "bench_ingest", "bench_averaging", "bench_stats", "bench_report", "bench_monitor",
+           "bench_many_meters", "bench_cli"]
 TAG = "BENCH_JSON "
 
 
