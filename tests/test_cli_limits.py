@@ -76,3 +76,22 @@ def test_subprocess_json():
     data = json.loads(proc.stdout)
     lv = next(x for x in data["levels"] if (x["standard"], x["tier"], x["kind"]) == ("icnirp-2020", "public", "whole_body"))
     assert lv["e_v_per_m"] == pytest.approx(41.25) and lv["source"].endswith("Table 5")
+
+
+def test_brief_exposure_energy_density(capsys):
+    """ICNIRP 2020 Table 7 (from memory), public 2-6 GHz: U = 40 K(t) kJ/m2 with
+    K(t) = 0.36 (0.05 + 0.95 sqrt(t/360)); at t = 60 s, 6.305 kJ/m2; at 360 s it is Table 6's 40 W/m2 x 360 s."""
+    import json
+    import math
+
+    from meterlink.cli import main
+
+    assert main(["limits", "3.5GHz", "--standard", "icnirp-2020", "--tier", "public", "--brief", "60", "--json"]) == 0
+    brief = json.loads(capsys.readouterr().out)["brief_exposure"]
+    k = 0.36 * (0.05 + 0.95 * math.sqrt(60 / 360))
+    assert brief[0]["u_j_per_m2"] == pytest.approx(40e3 * k, rel=1e-9)
+    assert main(["limits", "3.5GHz", "--standard", "icnirp-2020", "--tier", "public", "--brief", "360", "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["brief_exposure"][0]["u_j_per_m2"] == pytest.approx(40 * 360)
+    assert main(["limits", "3.5GHz", "--brief", "900"]) == 2
+    err = capsys.readouterr().err
+    assert "outside 0 < t <= 360 s" in err and len(err.strip().splitlines()) == 1

@@ -14,6 +14,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--standard", metavar="ID", help="one standard (default: all that cover FREQUENCY)")
     parser.add_argument("--tier", metavar="TIER", help="public or occupational (default: both)")
     parser.add_argument("--kind", metavar="KIND", help="whole_body, local or peak (default: all)")
+    parser.add_argument("--brief", metavar="SECONDS", type=float,
+                        help="also show the brief-exposure incident energy density for an exposure this long "
+                             "(0 < t <= 360 s; standards that give one, e.g. icnirp-2020 Table 7)")
     parser.add_argument("--json", action="store_true", help="print machine-readable JSON")
 
 
@@ -84,6 +87,27 @@ def levels_to_json(levels: list, freq_hz: float) -> dict:
             "note": PERCENT_NOTE, "safety": SAFETY_LINE}
 
 
+def brief_levels(freq_hz: float, duration_s: float, standard: str | None, tier: str | None) -> list[dict]:
+    """Brief-exposure energy-density limits at freq_hz for every standard/tier that gives one."""
+    from meterlink import limits
+
+    out = []
+    for std in [standard] if standard else limits.standards():
+        for tr in [tier] if tier else list(limits.TIERS):
+            try:
+                u = limits.brief_exposure_energy_j_per_m2(std, tr, freq_hz, duration_s)
+            except limits.LimitsError as exc:
+                if "outside 0 < t" in str(exc):
+                    raise
+                continue
+            out.append({"standard": std, "tier": tr, "duration_s": duration_s, "u_j_per_m2": u,
+                        "mean_s_w_per_m2": u / duration_s})
+    if not out:
+        raise limits.LimitsError(f"no packaged standard gives a brief-exposure level at this frequency"
+                                 f"{' for ' + standard if standard else ''}")
+    return out
+
+
 def run(args) -> int:
     import json
     import shutil
@@ -99,8 +123,12 @@ def run(args) -> int:
     except ValueError as exc:
         raise LimitsError(str(exc)) from None
     levels = select_levels(freq_hz, args.standard, args.tier, args.kind)
+    brief = brief_levels(freq_hz, args.brief, args.standard, args.tier) if args.brief is not None else None
     if args.json:
-        print(json.dumps(levels_to_json(levels, freq_hz), indent=2))
+        doc = levels_to_json(levels, freq_hz)
+        if brief is not None:
+            doc["brief_exposure"] = brief
+        print(json.dumps(doc, indent=2))
         return 0
     console = Console(width=max(shutil.get_terminal_size((160, 24)).columns, 100), highlight=False)
     console.print(render_table(levels, freq_hz))
@@ -108,6 +136,16 @@ def run(args) -> int:
         console.print(DERIVED_NOTE)
     if any(lv.status != "verified" for lv in levels):
         console.print("Rows not marked verified should be checked against the primary document.")
+    if brief:
+        from rich.table import Table
+
+        bt = Table(title=f"Brief exposure of {args.brief:g} s (incident energy density, local)", title_justify="left",
+                   pad_edge=False)
+        for name in ("standard", "tier", "U J/m2", "same as a mean S over the exposure, W/m2"):
+            bt.add_column(name, justify="right" if "/" in name else "left")
+        for b in brief:
+            bt.add_row(b["standard"], b["tier"], f"{b['u_j_per_m2']:.4g}", f"{b['mean_s_w_per_m2']:.4g}")
+        console.print(bt)
     console.print(PERCENT_NOTE)
     console.print(SAFETY_LINE)
     return 0
