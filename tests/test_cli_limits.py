@@ -95,3 +95,13 @@ def test_brief_exposure_energy_density(capsys):
     assert main(["limits", "3.5GHz", "--brief", "900"]) == 2
     err = capsys.readouterr().err
     assert "outside 0 < t <= 360 s" in err and len(err.strip().splitlines()) == 1
+
+
+def test_chart_is_written_as_png(tmp_path, capsys):
+    from meterlink.cli import main
+
+    out = tmp_path / "levels.png"
+    assert main(["limits", "900MHz", "--standard", "fcc-1310", "--chart", str(out), "--json"]) == 0
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and out.stat().st_size > 10_000
+    assert main(["limits", "900MHz", "--chart", str(tmp_path / "no" / "dir.png")]) == 2
+    assert "cannot write chart" in capsys.readouterr().err

@@ -17,6 +17,8 @@ def add_arguments(parser) -> None:
     parser.add_argument("--brief", metavar="SECONDS", type=float,
                         help="also show the brief-exposure incident energy density for an exposure this long "
                              "(0 < t <= 360 s; standards that give one, e.g. icnirp-2020 Table 7)")
+    parser.add_argument("--chart", metavar="PNG", help="also draw the whole-body E levels of the standards against "
+                        "frequency (100 kHz to 300 GHz) into this PNG file, FREQUENCY marked")
     parser.add_argument("--json", action="store_true", help="print machine-readable JSON")
 
 
@@ -92,7 +94,8 @@ def brief_levels(freq_hz: float, duration_s: float, standard: str | None, tier: 
     from meterlink import limits
 
     out = []
-    for std in [standard] if standard else limits.standards():
+    colours = ["#1b6f7a", "#b3261e", "#6a3d9a", "#e08a00", "#2e7d32", "#5d6d7e", "#c2185b", "#8d6e63"]
+    for i, std in enumerate([standard] if standard else limits.standards()):
         for tr in [tier] if tier else list(limits.TIERS):
             try:
                 u = limits.brief_exposure_energy_j_per_m2(std, tr, freq_hz, duration_s)
@@ -106,6 +109,43 @@ def brief_levels(freq_hz: float, duration_s: float, standard: str | None, tier: 
         raise limits.LimitsError(f"no packaged standard gives a brief-exposure level at this frequency"
                                  f"{' for ' + standard if standard else ''}")
     return out
+
+
+def draw_chart(path: str, freq_hz: float, standard: str | None, tier: str | None) -> None:
+    """PNG of each standard's whole-body E reference level (plane-wave equivalent where derived)."""
+    import numpy as np
+    from matplotlib.figure import Figure
+
+    from meterlink import limits
+    from meterlink.errors import MeterlinkError
+    from meterlink.htmlpage import figure_png
+    from meterlink.units import format_frequency
+
+    f = np.geomspace(1e5, 3e11, 900)
+    fig = Figure(figsize=(9, 5))
+    ax = fig.add_subplot()
+    colours = ["#1b6f7a", "#b3261e", "#6a3d9a", "#e08a00", "#2e7d32", "#5d6d7e", "#c2185b", "#8d6e63"]
+    for i, std in enumerate([standard] if standard else limits.standards()):
+        for tr in [tier] if tier else list(limits.TIERS):
+            y = []
+            for fi in f:
+                try:
+                    y.append(limits.reference_level(std, tr, float(fi)).e_v_per_m or np.nan)
+                except MeterlinkError:
+                    y.append(np.nan)
+            if np.isfinite(y).any():
+                ax.loglog(f, y, lw=1.4, ls="-" if tr == "public" else "--", color=colours[i % len(colours)],
+                          label=f"{std} {tr}")
+    ax.axvline(freq_hz, color="k", lw=0.8)
+    ax.set(xlabel="frequency (Hz)", ylabel="E reference level, whole body (V/m)",
+           title=f"whole-body E reference levels (marked: {format_frequency(freq_hz)}); dashed: occupational")
+    ax.grid(True, which="both", alpha=0.25)
+    ax.legend(fontsize=7, ncol=2)
+    try:
+        with open(path, "wb") as fh:
+            fh.write(figure_png(fig))
+    except OSError as exc:
+        raise limits.LimitsError(f"cannot write chart {path!r}: {exc.strerror}") from None
 
 
 def run(args) -> int:
@@ -124,6 +164,8 @@ def run(args) -> int:
         raise LimitsError(str(exc)) from None
     levels = select_levels(freq_hz, args.standard, args.tier, args.kind)
     brief = brief_levels(freq_hz, args.brief, args.standard, args.tier) if args.brief is not None else None
+    if args.chart:
+        draw_chart(args.chart, freq_hz, args.standard, args.tier)
     if args.json:
         doc = levels_to_json(levels, freq_hz)
         if brief is not None:
