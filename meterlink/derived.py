@@ -13,6 +13,9 @@ from __future__ import annotations
 import math
 from collections import deque
 from dataclasses import dataclass, field
+from itertools import islice
+
+import numpy as np
 
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS mon_station (
@@ -71,6 +74,58 @@ class SlidingWindow:
             self._energy = sum(s[2] * (s[1] - s[0]) for s in self._segs)
             self._covered = sum(s[1] - s[0] for s in self._segs)
 
+    def _extend(self, a, b, p, x, t_last: float) -> tuple[np.ndarray, np.ndarray]:
+        """Add segments (sorted, after all held ones) and give value() at each x as if added in order."""
+        cut = t_last - self.window_s
+        segs = self._segs
+        q = list(islice(segs, 0, _count_before(segs, cut)))   # old segments the batch's windows leave
+        qa = np.array([s[0] for s in q], float)
+        qb = np.array([s[1] for s in q], float)
+        qp = np.array([s[2] for s in q], float)
+        aa, ab, ap = np.concatenate((qa, a)), np.concatenate((qb, b)), np.concatenate((qp, p))
+        ce = np.concatenate(([0.0], np.cumsum(ap * (ab - aa))))
+        cc = np.concatenate(([0.0], np.cumsum(ab - aa)))
+        nq = len(q)
+        base_e, base_c = self._energy - ce[nq], self._covered - cc[nq]
+
+        def upto(y):  # integral of held p and of covered time from the earliest segment to y
+            if not aa.size:
+                return np.zeros_like(y), np.zeros_like(y)
+            i = np.searchsorted(aa, y, side="right") - 1
+            j = np.maximum(i, 0)
+            d = np.clip(y - aa[j], 0.0, ab[j] - aa[j])
+            return np.where(i < 0, 0.0, ce[j] + ap[j] * d), np.where(i < 0, 0.0, cc[j] + d)
+
+        e1, c1 = upto(x)
+        e0, c0 = upto(x - self.window_s)
+        energy = base_e + e1 - e0
+        covered = base_c + c1 - c0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.where(covered <= 1e-9, np.nan, np.maximum(energy, 0.0) / covered)
+        cov = np.where(covered <= 1e-9, 0.0, np.minimum(covered / self.window_s, 1.0))
+        # the state a push loop leaves: new segments held, those ending at or before the last cut dropped
+        n_old = len(segs)
+        add_e, add_c = ce[-1] - ce[nq], cc[-1] - cc[nq]
+        drop = int(np.searchsorted(ab, cut, side="right"))
+        if drop > nq and n_old > nq:
+            drop = nq                                          # later old segments still in the window
+        self._energy += add_e - ce[drop]
+        self._covered += add_c - cc[drop]
+        if drop <= n_old:
+            for _ in range(drop):
+                segs.popleft()
+            segs.extend(zip(a.tolist(), b.tolist(), p.tolist()))
+        else:
+            segs.clear()
+            k = drop - n_old
+            segs.extend(zip(a[k:].tolist(), b[k:].tolist(), p[k:].tolist()))
+        before = self._adds
+        self._adds += a.size
+        if self._adds // 20000 != before // 20000:
+            self._energy = sum(s[2] * (s[1] - s[0]) for s in segs)
+            self._covered = sum(s[1] - s[0] for s in segs)
+        return mean, cov
+
     def value(self, t_end: float) -> tuple[float, float]:
         """(mean of p over the covered time, coverage 0..1) of the window ending at t_end."""
         cut = t_end - self.window_s
@@ -87,6 +142,37 @@ class SlidingWindow:
         if covered <= 1e-9:
             return math.nan, 0.0
         return max(energy, 0.0) / covered, min(covered / self.window_s, 1.0)
+
+
+def _split(a, b, p, bs):
+    """Segments [a, b) holding p cut at multiples of bs as _segment cuts them: starts, ends, p, block, end-on-edge."""
+    outs = []
+    while a.size:
+        keep = b > a
+        a, b, p = a[keep], b[keep], p[keep]
+        k = np.floor(a / bs)
+        edge = (k + 1) * bs
+        c = np.minimum(b, edge)
+        outs.append((a, c, p, k, c == edge))
+        a = c
+    if not outs:
+        z = np.zeros(0)
+        return z, z, z, z, np.zeros(0, bool)
+    if len(outs) == 1:
+        return outs[0]
+    cat = [np.concatenate(x) for x in zip(*outs)]
+    order = np.argsort(cat[0], kind="stable")
+    return tuple(x[order] for x in cat)
+
+
+def _count_before(segs: deque, cut: float) -> int:
+    """How many leading segments start before cut (they may leave the window during a batch)."""
+    n = 0
+    for s in segs:
+        if s[0] >= cut:
+            break
+        n += 1
+    return n
 
 
 @dataclass
@@ -108,6 +194,23 @@ class Block:
 
     def coverage(self) -> float:
         return min(self.covered_s / self.block_s, 1.0)
+
+
+@dataclass(frozen=True)
+class RunningBatch:
+    """Running averages at each accepted sample of a push_many: rows follow windows_s, columns t_end."""
+
+    windows_s: tuple[float, ...]
+    t_end: np.ndarray
+    e_rms_v_per_m: np.ndarray   # (W, M)
+    coverage: np.ndarray        # (W, M)
+    complete: np.ndarray        # (W, M) bool
+
+    def samples(self) -> list["RunningSample"]:
+        """The same values as RunningSample objects, in the order a push loop returns them."""
+        t, e, c, ok = self.t_end.tolist(), self.e_rms_v_per_m.T.tolist(), self.coverage.T.tolist(), self.complete.T.tolist()
+        return [RunningSample(ws, t[j], e[j][i], c[j][i], ok[j][i]) for j in range(len(t))
+                for i, ws in enumerate(self.windows_s)]
 
 
 @dataclass(frozen=True)
@@ -192,6 +295,104 @@ class Series:
         if t < self._next_end:
             return [], runs
         return self._final(), runs
+
+    def push_many(self, t, e_v_per_m, over=None) -> tuple[list[Block], RunningBatch]:
+        """As push() for each sample in turn (same blocks, same running values to rounding), in numpy."""
+        t = np.asarray(t, dtype=float).ravel()
+        e = np.asarray(e_v_per_m, dtype=float).ravel()
+        over = np.zeros(t.shape, bool) if over is None else np.asarray(over, dtype=bool).ravel()
+        with np.errstate(invalid="ignore"):
+            valid = np.isfinite(e) & (e >= 0) & ~np.isnan(t)
+        # a sample is taken when it is later than every sample taken before it (push's frontier test)
+        front = np.maximum.accumulate(np.concatenate(([self.frontier], np.where(valid, t, -np.inf))))
+        take = valid & (t > front[:-1])
+        ts, es, ov = t[take], e[take], over[take]
+        wins = tuple(self.windows)
+        m = ts.size
+        if m == 0:
+            z = np.zeros((len(wins), 0))
+            return [], RunningBatch(wins, ts, z, z, z.astype(bool))
+        ps = es * es
+        bs, hold = self.block_s, self.hold_s
+        if self.last is not None:
+            t_all, p_all = np.concatenate(([self.last[0]], ts)), np.concatenate(([self.last[1]], ps))
+        else:
+            t_all, p_all = ts, ps
+        a, p = t_all[:-1], p_all[:-1]
+        b = np.minimum(t_all[1:], a + hold)
+        pa, pb, pp, pk, hit = _split(a, b, p, bs)        # held segments cut at block edges, in time order
+        sk = np.floor(ts / bs)
+        blocks = self._touch(np.concatenate((pk, sk)))
+        if pa.size:
+            keys, inv = np.unique(pk, return_inverse=True)
+            en = np.bincount(inv, weights=pp * (pb - pa))
+            cov = np.bincount(inv, weights=pb - pa)
+            for kk, x, c in zip(keys.tolist(), en.tolist(), cov.tolist()):
+                bl = blocks[kk]
+                bl.energy += x
+                bl.covered_s += c
+        starts = np.flatnonzero(np.r_[True, sk[1:] != sk[:-1]])
+        for kk, n, no, mx in zip(sk[starts].tolist(), np.diff(np.r_[starts, m]).tolist(),
+                                 np.add.reduceat(ov.astype(np.int64), starts).tolist(),
+                                 np.maximum.reduceat(es, starts).tolist()):
+            bl = blocks[kk]
+            bl.n += n
+            bl.n_over += no
+            if mx > bl.e_max:
+                bl.e_max = mx
+        edges = pb[hit]
+        edge_k = pk[hit].tolist()
+        ok_min = self.min_coverage - 1e-9
+        front_before = np.concatenate(([self.frontier], ts[:-1]))
+        kb = np.floor((ts - 1e-9) / bs)
+        open_b = ((kb + 1) * bs > front_before) & np.isin(kb, np.fromiter(blocks, float, len(blocks)))
+        e_rows, c_rows, ok_rows = [], [], []
+        for ws, w in self.windows.items():
+            mean, cv = w._extend(pa, pb, pp, np.concatenate((ts, edges)), ts[-1])
+            with np.errstate(invalid="ignore"):
+                er = np.sqrt(mean)
+            for kk, x, c in zip(edge_k, mean[m:].tolist(), cv[m:].tolist()):
+                blocks[kk].run_end[ws] = (x, c)
+            er, cv = er[:m], cv[:m]
+            ok = cv >= ok_min
+            e_rows.append(er)
+            c_rows.append(cv)
+            ok_rows.append(ok)
+            sel = np.flatnonzero(ok & open_b)
+            if sel.size:
+                self._run_max(ws, kb[sel], er[sel], ts[sel])
+        self.last = (float(ts[-1]), float(ps[-1]))
+        self.frontier = float(ts[-1])
+        self._next_end = min((bl.t_start + bs for bl in self.open.values()), default=math.inf)
+        final = self._final() if self.frontier >= self._next_end else []
+        return final, RunningBatch(wins, ts, np.array(e_rows), np.array(c_rows), np.array(ok_rows))
+
+    def _touch(self, ks: np.ndarray) -> dict[float, Block]:
+        """The open blocks of these indices (created as push would), keyed by the float index."""
+        out = {}
+        for kk in np.unique(ks).tolist():
+            out[kk] = self._block(math.floor(kk))
+        for k, bl in self.open.items():
+            out.setdefault(float(k), bl)
+        return out
+
+    def _run_max(self, ws: float, kb: np.ndarray, e: np.ndarray, t: np.ndarray) -> None:
+        """Largest complete running value per block (the earliest of equals), as push keeps it."""
+        starts = np.flatnonzero(np.r_[True, kb[1:] != kb[:-1]])
+        ends = np.r_[starts[1:], kb.size]
+        for s0, s1 in zip(starts.tolist(), ends.tolist()):
+            bl = self.open[math.floor(kb[s0])]
+            rm = bl.run_max.get(ws)
+            i0 = s0
+            if rm is None:
+                rm = bl.run_max[ws] = (float(e[s0]), float(t[s0]))
+                i0 = s0 + 1
+            if i0 >= s1 or rm[0] != rm[0]:
+                continue
+            seg = np.where(np.isnan(e[i0:s1]), -np.inf, e[i0:s1])
+            i = i0 + int(np.argmax(seg))
+            if e[i] > rm[0]:
+                bl.run_max[ws] = (float(e[i]), float(t[i]))
 
     def close_gap(self, now: float) -> list[Block]:
         """The device has been silent past the hold: add the last sample's full hold, finish blocks."""
