@@ -11,7 +11,9 @@ incomplete, and its value is still the average over the covered time.
 
 Speed and precision: one O(n) pass builds cumulative integrals of p*dt (p = E^2 or S); window
 averages are differences of that integral located with ``np.searchsorted``, done in chunks so
-memory stays bounded by the outputs. The cumulative sum restarts every ``_BLOCK`` samples and
+memory stays bounded by the outputs. Windows ending at the samples themselves share one pass
+over the samples both ends span, and on regular stretches the window start is a constant index
+offset (checked, no search). The cumulative sum restarts every ``_BLOCK`` samples and
 the block offsets are carried as a compensated (two-float) sum, so a window far into a year-long
 record loses no digits to the size of the running total. What remains is the rounding of a
 cumulative sum inside one block: the absolute error of a window's mean of p is a few float64
@@ -159,7 +161,9 @@ class _Held:
             loc = np.zeros_like(w)
             np.cumsum(w[:, :-1], axis=1, out=loc[:, 1:])
             loc = loc.ravel()
-            if b - a + 1 == ii.size:        # consecutive samples: slices instead of gathers
+            # Consecutive samples: slices instead of gathers. Sorted indices spanning size-1 are
+            # consecutive only without repeats ([3, 3, 5] spans 3 too).
+            if b - a + 1 == ii.size and (ii.size < 2 or bool(np.all(ii[1:] != ii[:-1]))):
                 j = slice(a - s0, b - s0 + 1)
                 ti = t[a:b + 1]
                 blk = np.repeat(np.arange(a // _BLOCK, b // _BLOCK + 1), _BLOCK)
@@ -188,6 +192,85 @@ class _Held:
         rest[before] = 0.0
         cov[before] = 0.0
         return hi, rest, cov
+
+    def sample_windows(self, k0: int, k1: int, window_s: float):
+        """(energy, covered) of the windows (t_k - window_s, t_k] for samples k0..k1-1, or None.
+
+        Both window ends share one pass over the samples they span. On a regular stretch the
+        start index is a constant offset (checked with slices, no search). None when the span
+        is too long for bounded memory: use ``between``."""
+        t, n, B = self.t, self.n, _BLOCK
+        tk = t[k0:k1]
+        q0 = tk - window_s
+        i00 = int(np.searchsorted(t, q0[0], side="right")) - 1
+        m = k0 - i00
+        regular = (i00 >= 0 and k1 - m < n and np.all(t[i00:k1 - m] <= q0)
+                   and np.all(q0 < t[i00 + 1:k1 - m + 1]))
+        if regular:
+            i0 = None
+            lo = i00
+        else:
+            a0 = max(i00, 0)
+            a1 = int(np.searchsorted(t, q0[-1], side="right"))
+            i0 = np.searchsorted(t[a0:a1], q0, side="right") + (a0 - 1)
+            lo = max(int(i0[0]), 0)
+        s0 = (lo // B) * B
+        e0 = min(((k1 - 1) // B + 1) * B, n)
+        if e0 - s0 > _SPAN:
+            return None
+        nb = -(-(e0 - s0) // B)
+        d = self._hold(s0, e0)
+        p = self._p(s0, e0)
+        w = np.zeros(nb * B)
+        np.multiply(p, d, out=w[:e0 - s0])
+        w = w.reshape(nb, B)
+        loc = np.empty_like(w)
+        loc[:, 0] = 0.0
+        np.cumsum(w[:, :-1], axis=1, out=loc[:, 1:])
+        del w
+        b0 = s0 // B
+        oh = np.empty_like(loc)
+        oh[...] = self.off_hi[b0:b0 + nb, None]
+        ol = np.empty_like(loc)
+        ol[...] = self.off_lo[b0:b0 + nb, None]
+        loc, oh, ol = loc.ravel(), oh.ravel(), ol.ravel()
+        j1 = slice(k0 - s0, k1 - s0)
+        if regular:
+            j0 = slice(i00 - s0, k1 - m - s0)
+            ti0 = t[i00:k1 - m]
+        else:
+            before = i0 < 0
+            ic = np.maximum(i0, 0)
+            j0 = ic - s0
+            ti0 = t[ic]
+        # Start of each window: the part of sample i0 held after q0 (as in integrals()).
+        part = q0
+        part -= ti0
+        np.clip(part, 0.0, d[j0], out=part)
+        r0 = p[j0] * part
+        r0 += loc[j0]
+        r0 += ol[j0]
+        h0 = oh[j0]
+        c0 = np.subtract(ti0, t[0])
+        c0 += part
+        if self.gap_idx.size:
+            c0 -= self.gap_cum[np.searchsorted(self.gap_idx, np.arange(i00, k1 - m) if regular else ic,
+                                               side="left")]
+        if not regular:
+            h0[before] = 0.0
+            r0[before] = 0.0
+            c0[before] = 0.0
+        energy = np.subtract(oh[j1], h0)
+        r1 = np.add(loc[j1], ol[j1])
+        r1 -= r0
+        energy += r1
+        np.maximum(energy, 0.0, out=energy)
+        c1 = np.subtract(tk, t[0])
+        if self.gap_idx.size:
+            c1 -= self.gap_cum[np.searchsorted(self.gap_idx, np.arange(k0, k1), side="left")]
+        c1 -= c0
+        c1[c1 <= self.cover_eps] = 0.0
+        return energy, c1
 
     def between(self, q0: np.ndarray, q1: np.ndarray, i1: np.ndarray | None = None):
         """Integral of p and covered seconds over [q0, q1] (both sorted; i1 as in integrals)."""
@@ -233,8 +316,11 @@ def _window_chunks(held: _Held, ends_sorted: np.ndarray, window_s: float, at_sam
     for k0 in range(0, ends_sorted.size, _QCHUNK):
         k1 = min(k0 + _QCHUNK, ends_sorted.size)
         q1 = ends_sorted[k0:k1]
-        i1 = np.arange(k0, k1) if at_samples else None
-        energy, covered = held.between(q1 - window_s, q1, i1)
+        got = held.sample_windows(k0, k1, window_s) if at_samples else None
+        if got is None:
+            i1 = np.arange(k0, k1) if at_samples else None
+            got = held.between(q1 - window_s, q1, i1)
+        energy, covered = got
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = np.where(covered > 0, energy / covered, np.nan)
         yield k0, k1, mean, np.minimum(covered / window_s, 1.0)

@@ -7,6 +7,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from meterlink import averaging
 from meterlink.averaging import (
     block_averages,
     block_averages_s,
@@ -182,3 +183,67 @@ def test_property_bounded_by_max_and_jensen(rec, window):
         # a few ulps of max(E)^2 times (record span / window) (float64 eps, numpy finfo).
         tol = 64 * np.finfo(float).eps * e.max() ** 2 * (ends[-1] - t[0]) / window
         assert r.e_rms_v_per_m[k] ** 2 >= mean_field**2 * (1 - 1e-9) - tol
+
+
+def _reference_running(t, e, window, hold, last_hold):
+    """Straightforward O(n^2) reference: each sample holds min(next - t, hold) (the last one
+    last_hold); a window's mean E^2 is the overlap-weighted sum over the covered seconds."""
+    ends = np.append(np.minimum(t[1:], t[:-1] + hold), t[-1] + last_hold)
+    mean, cov = np.full(t.size, np.nan), np.zeros(t.size)
+    for k, t1 in enumerate(t):
+        ov = np.clip(np.minimum(ends, t1) - np.maximum(t, t1 - window), 0.0, None)
+        covered = ov.sum()
+        if covered > 0:
+            mean[k] = np.sum(e * e * ov) / covered
+        cov[k] = min(covered / window, 1.0)
+    return mean, cov
+
+
+_stretches = st.lists(st.tuples(st.integers(1, 40), st.floats(0.5, 5.0), st.floats(0.0, 60.0),
+                                st.booleans()), min_size=1, max_size=6)
+
+
+@settings(max_examples=120, deadline=None)
+@given(_stretches, st.floats(1.0, 200.0), st.integers(0, 2**32 - 1))
+def test_property_matches_reference_on_irregular_records_with_gaps(stretches, window, seed):
+    # Regular stretches (the index-offset fast path) joined by gaps, some jittered (the search
+    # path); both the sample-time path and the general at_s path against the explicit sum.
+    rng = np.random.default_rng(seed)
+    steps = []
+    for count, dt, gap, jitter in stretches:
+        s = np.full(count, dt)
+        if jitter:
+            s = s * rng.uniform(0.5, 1.5, count)
+        s[0] += gap
+        steps.append(s)
+    t = 100.0 + np.concatenate(([0.0], np.cumsum(np.concatenate(steps))))
+    e = rng.uniform(0.0, 30.0, t.size)
+    e[rng.random(t.size) < 0.1] = 0.0
+    med = float(np.median(np.diff(t)))
+    hold = 3.0 * med                     # the module's documented default (HOLD_FACTOR)
+    mean_ref, cov_ref = _reference_running(t, e, window, hold, min(med, hold))
+    # Rounding bound of a cumulative integral: a few ulps of max(E^2) times span / window
+    # (float64 eps from numpy finfo), as in the Jensen property above.
+    tol = 64 * np.finfo(float).eps * max(e.max() ** 2, 1e-300) * (t[-1] - t[0] + hold) / window
+    ok = cov_ref > 1e-6
+    # Small evaluation chunks put chunks wholly inside regular stretches, as in long records.
+    for chunk in (averaging._QCHUNK, 8, 3):
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(averaging, "_QCHUNK", chunk)
+            runs = (running_average(t, e, window), running_average(t, e, window, at_s=t))
+            rs = running_average_s(t, e * e, window)
+        for r in runs:
+            assert r.coverage == pytest.approx(cov_ref, abs=1e-9)
+            assert np.all(np.isnan(r.e_rms_v_per_m[cov_ref == 0.0]))
+            np.testing.assert_allclose(r.e_rms_v_per_m[ok] ** 2, mean_ref[ok], rtol=1e-9, atol=tol)
+        np.testing.assert_allclose(rs.s_w_per_m2[ok], mean_ref[ok], rtol=1e-9, atol=tol)
+
+
+def test_window_starts_that_repeat_and_skip_samples():
+    # Window starts 3.2, 3.5, 5.5 fall in samples 3, 3, 5 (a repeat and a skip in one pass).
+    # By hand, E = k V/m held over [k, k+1): (3.2,4.2] -> 0.8*9 + 0.2*16 = 10.4 V^2/m^2;
+    # (3.5,4.5] -> 0.5*9 + 0.5*16 = 12.5; (5.5,6.5] -> 0.5*25 + 0.5*36 = 30.5.
+    t = np.arange(10.0)
+    r = running_average(t, t.copy(), 1.0, at_s=[4.2, 4.5, 6.5])
+    np.testing.assert_allclose(r.e_rms_v_per_m ** 2, [10.4, 12.5, 30.5], rtol=1e-12)
+    assert r.coverage == pytest.approx([1.0, 1.0, 1.0])
