@@ -303,40 +303,83 @@ class Store:
                         bad.append(event_row("bad_row", "error", f"status row not stored: {exc}", table="status"))
                 for sp in spectra:
                     self._insert_spectrum(conn, session_id, sp, bad)
-                for ev in events + bad:
-                    conn.execute("insert into events (session_id, t_utc, kind, severity, message, detail) "
-                                 "values (?,?,?,?,?,?)", (session_id, ev["t_utc"], ev["kind"], ev["severity"],
-                                                          ev["message"], ev["detail"]))
+                self._insert_events(conn, session_id, events + bad)
         return new
+
+    def add_reading_arrays(self, session_id: int, boot, seq, tick_ms, t_utc, raw, flags, range_index) -> int:
+        """Insert readings given as arrays (raw is (N, 3)) in one transaction; returns rows actually new.
+
+        Same rules as write_batch: a reading already stored (session, boot, seq) is skipped and
+        reported as one duplicate_reading event.
+        """
+        raw = np.asarray(raw).reshape(-1, 3)
+        n = raw.shape[0]
+        cols = [np.broadcast_to(np.asarray(c), (n,)).tolist() for c in (boot, seq, tick_ms, t_utc)]
+        cols += [raw[:, 0].tolist(), raw[:, 1].tolist(), raw[:, 2].tolist()]
+        cols += [np.broadcast_to(np.asarray(c), (n,)).tolist() for c in (flags, range_index)]
+        tuples = list(zip([session_id] * n, *cols))
+        bad: list[dict] = []
+        with self._lock:
+            conn = self.db.conn
+            with self.db.atomic():
+                new = self._insert_tuples(conn, tuples, bad)
+                self._insert_events(conn, session_id, bad)
+        return new
+
+    _READING_SQL = ("insert or ignore into readings (session_id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z, "
+                    "flags, range_index) values (?,?,?,?,?,?,?,?,?,?)")
 
     def _insert_readings(self, conn: sqlite3.Connection, session_id, rows: list, bad: list) -> int:
         if not rows:
             return 0
-        sql = ("insert or ignore into readings (session_id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z, flags, "
-               "range_index) values (?,?,?,?,?,?,?,?,?,?)")
         try:
             tuples = [(session_id, *(r[c] for c in READING_COLUMNS)) for r in rows]
+        except (KeyError, TypeError):
+            tuples = []  # find the bad rows one by one; the good ones still go in
+            for r in rows:
+                try:
+                    tuples.append((session_id, *(r[c] for c in READING_COLUMNS)))
+                except (KeyError, TypeError) as exc:
+                    bad.append(event_row("bad_row", "error", f"reading not stored: {exc}", table="readings",
+                                         seq=r.get("seq") if isinstance(r, Mapping) else None))
+        return self._insert_tuples(conn, tuples, bad)
+
+    def _insert_tuples(self, conn: sqlite3.Connection, tuples: list, bad: list) -> int:
+        """The one insert of readings (write_batch and add_reading_arrays): duplicates skipped and counted."""
+        if not tuples:
+            return 0
+        sql = self._READING_SQL
+        n_bad = 0
+        conn.execute("savepoint ml_readings")  # a failing executemany may have stored some rows: undo them
+        try:
             before = conn.total_changes
             conn.executemany(sql, tuples)
             new = conn.total_changes - before
-        except (KeyError, TypeError, sqlite3.Error):
+            conn.execute("release ml_readings")
+        except (TypeError, sqlite3.Error):
+            conn.execute("rollback to ml_readings")
+            conn.execute("release ml_readings")
             new = 0  # find the bad rows one by one; the good ones still go in
-            n_bad = 0
-            for r in rows:
+            for t in tuples:
                 try:
                     before = conn.total_changes
-                    conn.execute(sql, (session_id, *(r[c] for c in READING_COLUMNS)))
+                    conn.execute(sql, t)
                     new += conn.total_changes - before
-                except (KeyError, TypeError, sqlite3.Error) as exc:
+                except (TypeError, sqlite3.Error) as exc:
                     n_bad += 1
                     bad.append(event_row("bad_row", "error", f"reading not stored: {exc}", table="readings",
-                                         seq=r.get("seq") if isinstance(r, Mapping) else None))
-        else:
-            n_bad = 0
-        dup = len(rows) - new - n_bad
+                                         seq=t[2] if len(t) > 2 else None))
+        dup = len(tuples) - new - n_bad
         if dup > 0:
             bad.append(event_row("duplicate_reading", "info", f"{dup} reading(s) already stored, ignored", count=dup))
         return new
+
+    @staticmethod
+    def _insert_events(conn: sqlite3.Connection, session_id, events: list) -> None:
+        for ev in events:
+            conn.execute("insert into events (session_id, t_utc, kind, severity, message, detail) "
+                         "values (?,?,?,?,?,?)", (session_id, ev["t_utc"], ev["kind"], ev["severity"],
+                                                  ev["message"], ev["detail"]))
 
     def _insert_spectrum(self, conn: sqlite3.Connection, session_id, sp: Mapping, bad: list) -> None:
         try:

@@ -97,3 +97,52 @@ def test_push_many_six_minute_blocks_of_a_steady_field():
     assert [b.t_start for b in blocks] == [360.0 * k for k in range(9)]
     assert all(abs(b.e_rms() - 2.0) < 1e-12 and b.n == 360 and b.coverage() == 1.0 for b in blocks)
     assert runs.e_rms_v_per_m.shape == (3, 3600) and runs.complete[0, 360:].all() and not runs.complete[0, :300].any()
+
+
+def _arrays(seqs, boot=1, t0=1_700_000_000.0):
+    seq = np.asarray(seqs, dtype=np.int64)
+    raw = np.stack([seq * 3, -seq, seq + 7], axis=1)
+    return dict(boot=np.full(seq.size, boot), seq=seq, tick_ms=seq * 1000, t_utc=t0 + seq * 0.5, raw=raw,
+                flags=seq % 8, range_index=np.zeros(seq.size, np.int64))
+
+
+def _dicts(a):
+    return [{"boot": int(b), "seq": int(s), "tick_ms": int(k), "t_utc": float(t), "raw_x": int(r[0]),
+             "raw_y": int(r[1]), "raw_z": int(r[2]), "flags": int(f), "range_index": int(ri)}
+            for b, s, k, t, r, f, ri in zip(a["boot"], a["seq"], a["tick_ms"], a["t_utc"], a["raw"], a["flags"],
+                                            a["range_index"])]
+
+
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.lists(st.integers(0, 60), max_size=40), min_size=1, max_size=5))
+def test_add_reading_arrays_stores_and_reports_as_write_batch(tmp_path, batches):
+    with Store(tmp_path / "a.db") as sa, Store(tmp_path / "b.db") as sb:
+        ia, ib = sa.begin_session("record", started_utc=0.0), sb.begin_session("record", started_utc=0.0)
+        for seqs in batches:
+            a = _arrays(seqs)
+            assert sa.add_reading_arrays(ia, **a) == sb.write_batch(ib, readings=_dicts(a))
+        ra, rb = sa.readings(ia), sb.readings(ib)
+        for f in ("ids", "boot", "seq", "tick_ms", "t_utc", "raw", "flags", "range_index"):
+            assert np.array_equal(getattr(ra, f), getattr(rb, f))
+        da, db = sa.events(ia, kind="duplicate_reading"), sb.events(ib, kind="duplicate_reading")
+        assert [e["detail"]["count"] for e in da] == [e["detail"]["count"] for e in db]
+    (tmp_path / "a.db").unlink()
+    (tmp_path / "b.db").unlink()
+
+
+def test_add_reading_arrays_duplicates_and_a_bad_row(tmp_path):
+    with Store(tmp_path / "m.db") as s:
+        sid = s.begin_session("record")
+        assert s.add_reading_arrays(sid, **_arrays(range(100))) == 100
+        assert s.add_reading_arrays(sid, **_arrays(range(90, 110))) == 10
+        dup = s.events(sid, kind="duplicate_reading")
+        assert len(dup) == 1 and dup[0]["detail"]["count"] == 10
+        assert s.add_reading_arrays(sid, **_arrays(range(5), boot=2)) == 5  # another boot: new readings
+        assert s.count("readings", sid) == 115
+        # a row SQLite cannot bind becomes an event; the others still go in
+        a = _arrays([200, 201, 202])
+        a["t_utc"] = np.array([1.0, 2.0, 3.0], dtype=object)
+        a["t_utc"][1] = {"not": "a number"}
+        assert s.add_reading_arrays(sid, **a) == 2
+        bad = s.events(sid, kind="bad_row")
+        assert len(bad) == 1 and bad[0]["detail"]["seq"] == 201
