@@ -15,7 +15,7 @@ import numpy as np
 import _common
 from meterlink import calibrate, derived
 from meterlink.certificate import load_certificate
-from meterlink.protocol import Axes, FrameReader, encode_message, parse_payload
+from meterlink.protocol import AXES_FRAME_LEN, Axes, AxesBatch, FrameReader, encode_message
 from meterlink.storage import READING_COLUMNS, Store
 
 CHUNK = 5000
@@ -23,31 +23,24 @@ INSERT = ("INSERT INTO readings (session_id, " + ", ".join(READING_COLUMNS) + ")
 
 
 def full_path(d: Path, wire: bytes, cert, n: int) -> float:
+    """The library's batched path: feed_batched -> calibrate_axes -> Series.push_many -> add_reading_arrays."""
     store = Store(d / "ml.db")
     derived.ensure_schema(store.db.conn)
     sid = store.begin_session("bench")
     series = derived.Series(3.0)
     t = time.perf_counter()
     reader = FrameReader()
-    rows = []
-    for k in range(0, len(wire), 4096):
-        for fr in reader.feed(wire[k:k + 4096]):
-            a = parse_payload(fr)
-            rows.append({"boot": 1, "seq": fr.seq, "tick_ms": fr.tick_ms, "t_utc": fr.tick_ms / 1000, "raw_x": a.x,
-                         "raw_y": a.y, "raw_z": a.z, "flags": a.flags, "range_index": a.range_index})
-    for k in range(0, n, CHUNK):
-        chunk = rows[k:k + CHUNK]
-        raw = np.array([[r["raw_x"], r["raw_y"], r["raw_z"]] for r in chunk])
-        res = calibrate.calibrate_axes(cert, raw, 94.3e6)
-        out = []
-        push = series.push
-        for r, e in zip(chunk, res.e_v_per_m.tolist()):
-            b, _ = push(r["t_utc"], e)
-            if b:
-                out += b
-        with store.db.atomic():
-            store.write_batch(sid, readings=chunk)
-            derived.save_blocks(store.db.conn, 1, "m", "total", out, 0.9)
+    for k in range(0, len(wire), CHUNK * AXES_FRAME_LEN):
+        for item in reader.feed_batched(wire[k:k + CHUNK * AXES_FRAME_LEN]):
+            if not isinstance(item, AxesBatch):
+                continue  # the bench stream holds AXES frames only
+            t_utc = item.tick_ms / 1000
+            res = calibrate.calibrate_axes(cert, item.raw, 94.3e6)
+            blocks, _ = series.push_many(t_utc, res.e_v_per_m)
+            with store.db.atomic():
+                store.add_reading_arrays(sid, 1, item.seq, item.tick_ms, t_utc, item.raw, item.flags,
+                                         item.range_index)
+                derived.save_blocks(store.db.conn, 1, "m", "total", blocks, 0.9)
     dt = time.perf_counter() - t
     assert store.count("readings", sid) == n
     store.close()
@@ -90,14 +83,16 @@ def main(argv=None) -> dict:
         full = full_path(d, wire, cert, n)
         bare = plain(d / "plain.db", tuples, same_schema=False)
         same = plain(d / "same.db", tuples, same_schema=True)
-    speed = bare / full  # ours as a fraction of the baseline's speed
+    speed = bare / full  # ours as a fraction of the baseline's speed (the issue's target)
+    speed_same = same / full
     return _common.report(
         "ingest", f"decode+calibrate+derive+store {n:,} readings in {full:.2f} s ({n / full:,.0f}/s)",
         f"plain executemany, bare table {bare:.2f} s ({n / bare:,.0f}/s); into the Store schema {same:.2f} s "
         f"({n / same:,.0f}/s)", speed,
-        f"{speed:.2f}x the baseline's speed ({full / bare:.1f}x its time; {full / same:.1f}x the same-schema insert)",
-        ">= 0.5x the speed of plain executemany", speed >= 0.5, args.json, readings=n,
-        full_s=full, bare_s=bare, same_schema_s=same)
+        f"{speed:.2f}x the bare-table baseline's speed ({full / bare:.1f}x its time); "
+        f"{speed_same:.2f}x the same-schema insert's speed ({full / same:.1f}x its time)",
+        ">= 0.5x the speed of plain executemany into a bare table", speed >= 0.5, args.json, readings=n,
+        full_s=full, bare_s=bare, same_schema_s=same, ratio_same_schema=speed_same)
 
 
 if __name__ == "__main__":

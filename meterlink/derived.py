@@ -121,9 +121,10 @@ class SlidingWindow:
             segs.extend(zip(a[k:].tolist(), b[k:].tolist(), p[k:].tolist()))
         before = self._adds
         self._adds += a.size
-        if self._adds // 20000 != before // 20000:
-            self._energy = sum(s[2] * (s[1] - s[0]) for s in segs)
-            self._covered = sum(s[1] - s[0] for s in segs)
+        if self._adds // 20000 != before // 20000 and segs:   # the loop's periodic re-sum, in numpy
+            g = np.array(segs, dtype=float)
+            self._energy = float(np.sum(g[:, 2] * (g[:, 1] - g[:, 0])))
+            self._covered = float(np.sum(g[:, 1] - g[:, 0]))
         return mean, cov
 
     def value(self, t_end: float) -> tuple[float, float]:
