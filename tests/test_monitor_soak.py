@@ -79,7 +79,7 @@ def _faults(days: float, seed: int) -> dict:
         # reconnection costs device hours on a busy machine, and a fault while the host is already
         # reconnecting could not be seen as a separate event
         while True:
-            at = float(rng.uniform(0.05, 0.95) * 86400 + d * 86400)
+            at = float(rng.uniform(0.15, 0.95) * 86400 + d * 86400)   # after the monitor is up
             if (all(not (a - 3600 <= at % (2 * 86400) <= b + 3600) for a, b in EXCURSIONS)
                     and all(abs(at - e["at_s"]) >= 6 * 3600 for e in sched)):
                 return at
