@@ -118,7 +118,7 @@ class MeterLink:
                  link_factory: Callable[[], Link] | None = None, max_reconnects: int | None = None,
                  backoff_initial_s: float = 0.1, backoff_max_s: float = 5.0, who_retries: int = 5,
                  reply_timeout_s: float = 0.5, min_silence_s: float = 3.0, drift_report_s: float = 10.0,
-                 queue_max: int = 200_000):
+                 queue_max: int = 200_000, read_timeout_s: float = 0.25, wake: threading.Event | None = None):
         if link_factory is None:
             if not port:
                 raise LinkError("no serial port given")
@@ -131,6 +131,10 @@ class MeterLink:
         self.who_retries, self.reply_timeout_s = who_retries, reply_timeout_s
         self.min_silence_s, self.drift_report_s = min_silence_s, drift_report_s
         self.queue: queue.Queue = queue.Queue(maxsize=queue_max)
+        # A streaming read returns as soon as bytes arrive; the timeout only bounds how long an
+        # idle port goes unchecked (stop request, silence watchdog), so it need not be short.
+        self.read_timeout_s = read_timeout_s
+        self._wake = wake           # set after every item queued (and at the end), if given
         self.stats = LinkStats()
         self.clock = DeviceClock()
         self.ident: Ident | None = None
@@ -195,7 +199,7 @@ class MeterLink:
                     attempts, delay = 0, self.backoff_initial_s
                     while not self._stop.is_set():
                         try:
-                            self._pump()
+                            self._pump(self.read_timeout_s)
                         except _Restart:
                             self._handshake()
                         if time.monotonic() >= next_drift:
@@ -224,6 +228,8 @@ class MeterLink:
             self._say_stop()
             self._close_link()
             self.finished.set()
+            if self._wake is not None:
+                self._wake.set()
 
     def _close_link(self) -> None:
         if self._link is not None:
@@ -467,3 +473,5 @@ class MeterLink:
             self.queue.put_nowait(item)
         except queue.Full:
             self.stats.queue_overflow += 1
+        if self._wake is not None:
+            self._wake.set()

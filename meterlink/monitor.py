@@ -81,6 +81,7 @@ class MeterState:
     series: dict = field(default_factory=dict)       # band -> derived.Series
     alarms: list = field(default_factory=list)
     pending: list = field(default_factory=list)      # Reading items not yet calibrated
+    pending_mono: float = 0.0                        # host monotonic time of the oldest pending reading
     blocks_out: list = field(default_factory=list)   # (band, final blocks) not yet committed
     session_update: dict = field(default_factory=dict)
     last_t: float | None = None
@@ -101,8 +102,12 @@ class Monitor:
     """Run a station until ``stop()``; ``time_scale`` > 1 only for an accelerated simulator."""
 
     def __init__(self, station: Station, *, time_scale: float = 1.0, log=None, commit_s: float = 0.5,
-                 backoff_max_s: float = 30.0, link_factory=None):
+                 backoff_max_s: float = 30.0, link_factory=None, calibrate_s: float = 1.0):
         self.st, self.time_scale, self.commit_s = station, float(time_scale), commit_s
+        # Readings are calibrated in batches at most calibrate_s of device time old: a call has a
+        # fixed cost (interpolants, budget) that dominates the monitor's CPU at a few readings/s.
+        self.calibrate_s = calibrate_s
+        self._wake = threading.Event()      # set by the links when an item is queued, and by stop()
         self.log = log or (lambda line: None)
         self._stop = threading.Event()
         self._mono0, self._utc0 = time.monotonic(), time.time()
@@ -255,6 +260,7 @@ class Monitor:
     def stop(self) -> None:
         """Ask run() to finish (safe from a signal handler)."""
         self._stop.set()
+        self._wake.set()
 
     # -- ingest --------------------------------------------------------------------------------
     def _t_of(self, ms: MeterState, item) -> float:
@@ -272,8 +278,11 @@ class Monitor:
             ms.writer._add("readings", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms, "t_utc": t,
                                         "raw_x": a.x, "raw_y": a.y, "raw_z": a.z, "flags": a.flags,
                                         "range_index": a.range_index})
+            if not ms.pending:
+                ms.pending_mono = time.monotonic()
             ms.pending.append((t, a.x, a.y, a.z))
         elif isinstance(item, StatusReport):
+            self._calibrate_pending(ms)     # readings before it keep the temperature they were taken at
             self._status(ms, item)
         elif isinstance(item, Connected):
             ms.link_state = "streaming"
@@ -509,19 +518,25 @@ class Monitor:
             ms.writer = BatchWriter(self.store, ms.session_id, max_rows=10**9, max_age_s=self.commit_s)
             factory = None if self._link_factory is None else (lambda p=ms.cfg.port: self._link_factory(p))
             ms.link = MeterLink(ms.cfg.port, int(round(ms.cfg.interval_s * 1000)), link_factory=factory,
-                                backoff_max_s=self._backoff_max_s)
+                                backoff_max_s=self._backoff_max_s, wake=self._wake)
             ms.link.start(require_open=False)
         next_commit = time.monotonic() + self.commit_s
         try:
+            more = False
             while not self._stop.is_set():
-                busy = False
+                # Sleep until a link queues something or the next commit is due (no polling).
+                if not more:
+                    self._wake.wait(max(0.0, next_commit - time.monotonic()))
+                self._wake.clear()          # before draining: an item queued after this wakes us again
+                more = False
                 for ms in self.meters:
                     for _ in range(2000):
-                        item = ms.link.get(0.0 if busy else 0.02 / len(self.meters))
+                        item = ms.link.get(0.0)
                         if item is None:
                             break
-                        busy = True
                         self._guard(self._handle, ms, item)
+                    else:
+                        more = True         # fair share taken; come back without waiting
                 if time.monotonic() >= next_commit:
                     self._guard(self._tick)
                     next_commit = time.monotonic() + self.commit_s
@@ -557,10 +572,13 @@ class Monitor:
     def _tick(self, closing: bool = False) -> None:
         now_data = self.now_utc()
         for ms in self.meters:
-            self._calibrate_pending(ms)
+            limit = max(self.st.health.max_gap_s, 3 * ms.cfg.interval_s) * 2
+            if closing or (ms.pending and ((time.monotonic() - ms.pending_mono) * self.time_scale >= self.calibrate_s
+                                           or len(ms.pending) >= 1024
+                                           or (ms.last_t is not None and now_data - ms.last_t > limit))):
+                self._calibrate_pending(ms)
             if not closing:
-                silent = ms.last_t is not None and now_data - ms.last_t > max(self.st.health.max_gap_s,
-                                                                              3 * ms.cfg.interval_s) * 2
+                silent = ms.last_t is not None and now_data - ms.last_t > limit
                 if silent:
                     for band, series in ms.series.items():
                         blocks = series.close_gap(ms.last_t + series.hold_s + 1e-6)
