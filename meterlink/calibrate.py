@@ -15,10 +15,10 @@ import datetime as _dt
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.interpolate import PchipInterpolator
 
 from meterlink import units
 from meterlink.certificate import FORMAT, KIND_PROBE, AxisCalibration, ProbeCertificate
+from meterlink.interp import MonotoneCubic
 from meterlink.uncertainty import Component, measurement_budget
 
 BELOW_RANGE = 1 << 0
@@ -66,9 +66,9 @@ class SpectrumResult:
     warnings: tuple[str, ...]
 
 
-def _lin(ax: AxisCalibration) -> PchipInterpolator:
-    """Monotone log-log interpolant: log(counts above zero) -> log(field at the reference frequency)."""
-    return PchipInterpolator(np.log(ax.counts_above_zero), np.log(ax.field), extrapolate=False)
+def _lin(ax: AxisCalibration) -> MonotoneCubic:
+    """Monotone log-log interpolant (PCHIP): log(counts above zero) -> log(field at the reference frequency)."""
+    return MonotoneCubic(np.log(ax.counts_above_zero), np.log(ax.field))
 
 
 def linearise(ax: AxisCalibration, counts) -> tuple[np.ndarray, np.ndarray]:
