@@ -12,21 +12,16 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    import sqlite3
     import sys
     from pathlib import Path
 
     from meterlink.cli import SAFETY_LINE
-    from meterlink.commands.stats import span
+    from meterlink.commands.stats import open_station
     from meterlink.errors import MeterlinkError
-    from meterlink.publish import header_lines, series_rows, station_info, statistics, to_csv, to_json
+    from meterlink.publish import header_lines, series_rows, statistics, to_csv, to_json
 
-    if not Path(args.db).is_file():
-        raise MeterlinkError(f"{args.db}: no such database file")
-    conn = sqlite3.connect(f"file:{args.db}?mode=ro", uri=True)
+    conn, t0, t1 = open_station(args)
     try:
-        station_info(conn)
-        t0, t1 = span(conn, args)
         st, rows = series_rows(conn, t0, t1)
         if args.format == "csv":
             text = to_csv(st, rows, SAFETY_LINE)

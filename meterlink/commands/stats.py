@@ -36,14 +36,13 @@ def span(conn, args):
     return t0, t1
 
 
-def run(args) -> int:
+def open_station(args):
+    """Read-only connection to a station database with its --from/--to span; one-line errors."""
     import sqlite3
     from pathlib import Path
 
-    from meterlink.cli import SAFETY_LINE
     from meterlink.errors import MeterlinkError
-    from meterlink.publish import station_info, statistics, to_json
-    from meterlink.stats import sparkline
+    from meterlink.publish import station_info
 
     if not Path(args.db).is_file():
         raise MeterlinkError(f"{args.db}: no such database file")
@@ -51,6 +50,19 @@ def run(args) -> int:
     try:
         station_info(conn)
         t0, t1 = span(conn, args)
+    except BaseException:
+        conn.close()
+        raise
+    return conn, t0, t1
+
+
+def run(args) -> int:
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.publish import statistics, to_json
+    from meterlink.stats import sparkline
+
+    conn, t0, t1 = open_station(args)
+    try:
         doc = statistics(conn, t0, t1)
     finally:
         conn.close()
