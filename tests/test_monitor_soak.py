@@ -189,5 +189,5 @@ def test_soak_one_day(tmp_path):
 
 @pytest.mark.slow
 def test_soak_one_week(tmp_path):
-    st, faults, truths, lines = _soak(tmp_path, 7.0, 4000.0)
+    st, faults, truths, lines = _soak(tmp_path, 7.0, 2000.0)
     _check(st, faults, truths, lines)
