@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from meterlink import calibrate, derived
+from meterlink import calibrate, derived, spans
 from meterlink.alarms import AlarmMachine, rule_value, run_command
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
@@ -597,13 +597,8 @@ def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) 
     """Delete up to ``limit`` raw readings and spectra of a session older than before_utc (with their values)."""
     conn = store.db.conn
     with store._lock, store.db.atomic():
-        ids = [r[0] for r in conn.execute("SELECT id FROM readings WHERE session_id=? AND t_utc < ? LIMIT ?",
-                                          (session_id, before_utc, limit))]
-        if ids:
-            marks = ",".join("?" * len(ids))
-            conn.execute(f"DELETE FROM field_values WHERE reading_id IN ({marks})", ids)
-            conn.execute(f"DELETE FROM readings WHERE id IN ({marks})", ids)
-        left = limit - len(ids)
+        gone = spans.delete_before(conn, session_id, before_utc, limit, dependents=[("field_values", "reading_id")])
+        left = limit - gone
         sp = [r[0] for r in conn.execute("SELECT id FROM spectra WHERE session_id=? AND t_utc < ? LIMIT ?",
                                          (session_id, before_utc, left))] if left > 0 else []
         if sp:
@@ -612,7 +607,7 @@ def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) 
                          f"WHERE spectrum_id IN ({marks}))", sp)
             conn.execute(f"DELETE FROM spectrum_lines WHERE spectrum_id IN ({marks})", sp)
             conn.execute(f"DELETE FROM spectra WHERE id IN ({marks})", sp)
-    return len(ids) + len(sp)
+    return gone + len(sp)
 
 
 def _iso(t: float | None) -> str:

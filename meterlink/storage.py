@@ -18,11 +18,11 @@ from typing import Any, Callable, Iterable, Mapping
 import numpy as np
 import sqlite_utils
 
-from meterlink import __version__
+from meterlink import __version__, spans
 from meterlink.errors import MeterlinkError
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 SEVERITIES = ("info", "warning", "error")
 READING_COLUMNS = ("boot", "seq", "tick_ms", "t_utc", "raw_x", "raw_y", "raw_z", "flags", "range_index")
 
@@ -132,7 +132,13 @@ def _schema_v2_survey(db: sqlite_utils.Database) -> None:
 
 
 # version -> function bringing the schema from version-1 up to it; applied in order, in one transaction each
-MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey}
+def _schema_v3_spans(db: sqlite_utils.Database) -> None:
+    """Readings lose their per-row indexes to the span index (meterlink/spans.py)."""
+    spans.create(db.conn)
+
+
+MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
+                                                                   3: _schema_v3_spans}
 
 
 @dataclass(frozen=True)
@@ -314,6 +320,10 @@ class Store:
         """
         raw = np.asarray(raw).reshape(-1, 3)
         n = raw.shape[0]
+        keys = None  # unless all are numbers of the right kind: then the rows are checked one by one
+        if all(np.asarray(c).dtype.kind in kinds for c, kinds in ((boot, "iu"), (seq, "iu"), (t_utc, "iuf"))):
+            keys = tuple(np.broadcast_to(np.asarray(c, dt), (n,)) for c, dt in
+                         ((boot, np.int64), (seq, np.int64), (t_utc, float)))
         cols = [np.broadcast_to(np.asarray(c), (n,)).tolist() for c in (boot, seq, tick_ms, t_utc)]
         cols += [raw[:, 0].tolist(), raw[:, 1].tolist(), raw[:, 2].tolist()]
         cols += [np.broadcast_to(np.asarray(c), (n,)).tolist() for c in (flags, range_index)]
@@ -322,12 +332,9 @@ class Store:
         with self._lock:
             conn = self.db.conn
             with self.db.atomic():
-                new = self._insert_tuples(conn, tuples, bad)
+                new = self._insert_tuples(conn, session_id, tuples, bad, keys=keys)
                 self._insert_events(conn, session_id, bad)
         return new
-
-    _READING_SQL = ("insert or ignore into readings (session_id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z, "
-                    "flags, range_index) values (?,?,?,?,?,?,?,?,?,?)")
 
     def _insert_readings(self, conn: sqlite3.Connection, session_id, rows: list, bad: list) -> int:
         if not rows:
@@ -342,34 +349,22 @@ class Store:
                 except (KeyError, TypeError) as exc:
                     bad.append(event_row("bad_row", "error", f"reading not stored: {exc}", table="readings",
                                          seq=r.get("seq") if isinstance(r, Mapping) else None))
-        return self._insert_tuples(conn, tuples, bad)
+        return self._insert_tuples(conn, session_id, tuples, bad)
 
-    def _insert_tuples(self, conn: sqlite3.Connection, tuples: list, bad: list) -> int:
-        """The one insert of readings (write_batch and add_reading_arrays): duplicates skipped and counted."""
+    @staticmethod
+    def _insert_tuples(conn: sqlite3.Connection, session_id, tuples: list, bad: list, keys=None) -> int:
+        """The one insert of readings (write_batch and add_reading_arrays): repeats skipped and counted."""
         if not tuples:
             return 0
-        sql = self._READING_SQL
-        n_bad = 0
-        conn.execute("savepoint ml_readings")  # a failing executemany may have stored some rows: undo them
-        try:
-            before = conn.total_changes
-            conn.executemany(sql, tuples)
-            new = conn.total_changes - before
-            conn.execute("release ml_readings")
-        except (TypeError, sqlite3.Error):
-            conn.execute("rollback to ml_readings")
-            conn.execute("release ml_readings")
-            new = 0  # find the bad rows one by one; the good ones still go in
-            for t in tuples:
-                try:
-                    before = conn.total_changes
-                    conn.execute(sql, t)
-                    new += conn.total_changes - before
-                except (TypeError, sqlite3.Error) as exc:
-                    n_bad += 1
-                    bad.append(event_row("bad_row", "error", f"reading not stored: {exc}", table="readings",
-                                         seq=t[2] if len(t) > 2 else None))
-        dup = len(tuples) - new - n_bad
+        if session_id is None:
+            bad.append(event_row("bad_row", "error", f"{len(tuples)} reading(s) not stored: no session",
+                                 table="readings"))
+            return 0
+        new, dup, refused = spans.insert(conn, session_id, tuples, keys)
+        for i, why in refused:
+            seq = tuples[i][2] if len(tuples[i]) > 2 else None
+            bad.append(event_row("bad_row", "error", f"reading not stored: {why}", table="readings",
+                                 seq=seq if isinstance(seq, int) else repr(seq)))
         if dup > 0:
             bad.append(event_row("duplicate_reading", "info", f"{dup} reading(s) already stored, ignored", count=dup))
         return new
@@ -398,23 +393,21 @@ class Store:
     # -- queries -------------------------------------------------------------------------------
     def readings(self, session_id: int, t0: float | None = None, t1: float | None = None) -> ReadingArrays:
         """Readings of a session with t0 <= t_utc < t1 (either bound optional), ordered by t_utc."""
-        where, params = "session_id = ?", [session_id]
-        if t0 is not None:
-            where, params = where + " and t_utc >= ?", params + [t0]
-        if t1 is not None:
-            where, params = where + " and t_utc < ?", params + [t1]
         with self._lock:
-            rows = self.db.execute(f"select id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z, flags, range_index "
-                                   f"from readings where {where} order by t_utc, id", params).fetchall()
+            rows = spans.select(self.db.conn, "id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z, flags, range_index",
+                                session_id, t0, t1)
         cols = list(zip(*rows)) if rows else [()] * 10
 
         def ints(i: int) -> np.ndarray:
             return np.array([0 if v is None else v for v in cols[i]], dtype=np.int64)
 
-        return ReadingArrays(ids=ints(0), boot=ints(1), seq=ints(2), tick_ms=ints(3),
-                             t_utc=np.array(cols[4], dtype=float),
-                             raw=np.stack([ints(5), ints(6), ints(7)], axis=1).reshape(-1, 3),
-                             flags=ints(8), range_index=ints(9))
+        t_utc = np.array(cols[4], dtype=float)
+        # rows come in id (arrival) order; the clock keeps that in time order, but not across, say,
+        # a host clock step: a stable sort then gives time order with ties in arrival order
+        order = np.argsort(t_utc, kind="stable") if np.any(np.diff(t_utc) < 0) else slice(None)
+        return ReadingArrays(ids=ints(0)[order], boot=ints(1)[order], seq=ints(2)[order], tick_ms=ints(3)[order],
+                             t_utc=t_utc[order], raw=np.stack([ints(5), ints(6), ints(7)], axis=1).reshape(-1, 3)[order],
+                             flags=ints(8)[order], range_index=ints(9)[order])
 
     def events(self, session_id: int | None = None, kind: str | None = None) -> list[dict]:
         """Events (detail decoded from JSON), in time order."""
@@ -434,6 +427,8 @@ class Store:
         if table not in ("readings", "spectra", "status", "events"):
             raise StorageError(f"unknown table {table!r}")
         with self._lock:
+            if table == "readings":
+                return spans.summary(self.db.conn, session_id)[0]
             return int(self.db.execute(f"select count(*) from {table} where session_id = ?", [session_id]).fetchone()[0])
 
 
@@ -443,10 +438,10 @@ class Store:
         sql = """
             select s.id, s.kind, s.port, s.started_utc, s.ended_utc, s.notes, s.freq_hz, s.band_lo_hz, s.band_hi_hz,
                    d.model, d.serial, d.probe_serial, d.sensor_kind,
-                   (select count(*) from readings r where r.session_id = s.id) as readings,
+                   (select coalesce(sum(n), 0) from reading_spans r where r.session_id = s.id) as readings,
                    (select count(*) from spectra p where p.session_id = s.id) as spectra,
-                   (select min(t_utc) from readings r where r.session_id = s.id) as first_utc,
-                   (select max(t_utc) from readings r where r.session_id = s.id) as last_utc,
+                   (select min(t_lo) from reading_spans r where r.session_id = s.id) as first_utc,
+                   (select max(t_hi) from reading_spans r where r.session_id = s.id) as last_utc,
                    (select count(*) from events e where e.session_id = s.id) as events,
                    (select count(*) from events e where e.session_id = s.id and e.severity = 'warning') as warnings,
                    (select count(*) from events e where e.session_id = s.id and e.severity = 'error') as errors,

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
+from meterlink import spans
 from meterlink.storage import SCHEMA_VERSION, BatchWriter, Store, StorageError
 
 TABLES = {"meta", "devices", "sessions", "readings", "spectra", "spectrum_lines", "status", "events",
@@ -37,10 +38,16 @@ def test_empty_file_is_migrated_to_current_schema_with_wal(tmp_path):
         assert s.schema_version == SCHEMA_VERSION
 
 
-def test_indexes_suit_time_range_queries(store):
-    plan = store.db.execute("explain query plan select * from readings where session_id = 1 and t_utc >= 0 "
-                            "and t_utc < 10").fetchall()
-    assert any("USING INDEX" in row[-1] for row in plan)
+def test_time_range_queries_use_the_span_index_then_a_rowid_range(store):
+    # SQLite "EXPLAIN QUERY PLAN" wording (sqlite.org/eqp.html): SEARCH ... USING INDEX / INTEGER PRIMARY KEY
+    plan = store.db.execute("explain query plan select id_lo, id_hi from reading_spans where session_id = 1 "
+                            "and t_hi >= 0 and t_lo < 10").fetchall()
+    assert any("USING INDEX reading_spans_time" in row[-1] for row in plan), plan
+    plan = store.db.execute("explain query plan select * from readings where id between 1 and 99 and session_id = 1 "
+                            "and t_utc >= 0").fetchall()
+    assert any("USING INTEGER PRIMARY KEY" in row[-1] for row in plan), plan
+    # and readings carry no per-row secondary index (that is what the spans replace)
+    assert store.db["readings"].indexes == []
 
 
 def test_batch_insert_and_unique_protection(store):
@@ -54,9 +61,8 @@ def test_batch_insert_and_unique_protection(store):
     assert len(dup) == 1 and dup[0]["detail"]["count"] == 10
     # the same seq after a device restart (another boot) is a new reading
     assert store.add_reading(sid, reading(5, boot=2)) == 1
-    with pytest.raises(sqlite3.IntegrityError):  # the database itself enforces it for other writers
-        store.db.execute("insert into readings (session_id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z) "
-                         "values (?, 1, 5, 0, 0, 0, 0, 0)", [sid])
+    assert store.add_readings(sid, [reading(5, boot=2), reading(6, boot=2)]) == 1
+    assert store.count("readings", sid) == 112 and spans.check(store.db.conn) == []
 
 
 def test_bad_row_becomes_an_event_and_good_rows_are_kept(store):
