@@ -46,13 +46,27 @@ class MonotoneCubic:
             d[0] = _edge_slope(h[0], h[1], m[0], m[1])
             d[-1] = _edge_slope(h[-1], h[-2], m[-1], m[-2])
         self.x, self.y, self.d, self.h = x, y, d, h
+        # the same cubic per interval in power form, y = c0 + t (c1 + t (c2 + t c3)) with t in [0, 1]:
+        # four gathers and a Horner sum per query instead of five gathers and the Hermite basis
+        y0, y1, hd0, hd1 = y[:-1], y[1:], h * d[:-1], h * d[1:]
+        self._c = (y0, hd0, 3 * (y1 - y0) - 2 * hd0 - hd1, 2 * (y0 - y1) + hd0 + hd1)
 
     def __call__(self, xq):
         xq = np.asarray(xq, dtype=float)
-        k = np.clip(np.searchsorted(self.x, xq, side="right") - 1, 0, self.x.size - 2)
-        h = self.h[k]
-        t = (xq - self.x[k]) / h
-        t2, t3 = t * t, t * t * t
-        out = ((2 * t3 - 3 * t2 + 1) * self.y[k] + (t3 - 2 * t2 + t) * h * self.d[k]
-               + (-2 * t3 + 3 * t2) * self.y[k + 1] + (t3 - t2) * h * self.d[k + 1])
-        return np.where((xq >= self.x[0]) & (xq <= self.x[-1]), out, np.nan)
+        q = xq.reshape(-1)
+        k = np.searchsorted(self.x, q, side="right") - 1
+        np.clip(k, 0, self.x.size - 2, out=k)
+        t = q - self.x.take(k)
+        t /= self.h.take(k)
+        c0, c1, c2, c3 = self._c
+        out = c3.take(k)  # Horner, in place: this runs for every reading of every axis
+        out *= t
+        out += c2.take(k)
+        out *= t
+        out += c1.take(k)
+        out *= t
+        out += c0.take(k)
+        inside = (q >= self.x[0]) & (q <= self.x[-1])
+        if not inside.all():
+            out[~inside] = np.nan
+        return out.reshape(xq.shape)

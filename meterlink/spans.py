@@ -88,12 +88,13 @@ def _repeats(conn: sqlite3.Connection, session_id: int, boot: np.ndarray, seq: n
     if idx.size == 0:
         return rep
     b, s = boot[idx], seq[idx]
-    if not (np.all(b == b[0]) and np.all(np.diff(s) > 0)):  # the usual batch is one boot, rising seq
+    one_boot = bool(np.all(b == b[0]))
+    if not (one_boot and np.all(s[1:] > s[:-1])):  # the usual batch is one boot, rising seq
         order = np.lexsort((idx, s, b))  # by boot, seq, then arrival: the first copy is kept
         same = np.r_[False, (b[order][1:] == b[order][:-1]) & (s[order][1:] == s[order][:-1])]
         rep[idx[order[same]]] = True
-    for bb in np.unique(b).tolist():
-        sel = live & ~rep & (boot == bb)
+    for bb in ([int(b[0])] if one_boot else np.unique(b).tolist()):
+        sel = live & ~rep if one_boot else live & ~rep & (boot == bb)
         if not sel.any():
             continue
         lo, hi = int(seq[sel].min()), int(seq[sel].max())
@@ -112,17 +113,20 @@ def _max_id(conn: sqlite3.Connection) -> int:
     return int(conn.execute("select coalesce(max(id), 0) from readings").fetchone()[0])
 
 
-def insert(conn: sqlite3.Connection, session_id: int, tuples: list[tuple],
-           keys: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> tuple[int, int, list[tuple[int, str]]]:
-    """Store reading tuples (INSERT_SQL's parameters) not already stored; keep the spans exact.
+def insert(conn: sqlite3.Connection, session_id: int, tuples: Sequence[tuple],
+           keys: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+           sql: str = INSERT_SQL) -> tuple[int, int, list[tuple[int, str]]]:
+    """Store readings not already stored, and keep the spans exact; call inside a transaction.
 
-    keys, when given, are the rows' (boot, seq, t_utc) as arrays (the batched path has them).
-    Returns (new, repeated, refused) where refused lists (row index, reason). Call inside a transaction.
+    tuples are INSERT_SQL's parameters, or, when keys (the rows' boot, seq and t_utc as arrays)
+    are given, the parameters of ``sql``: an INSERT into readings that may carry columns common to
+    all rows as literals. Returns (new, repeated, refused), refused listing (row index, reason).
     """
     n = len(tuples)
     if n == 0:
         return 0, 0, []
     if keys is None:
+        sql = INSERT_SQL
         boot, seq, t_utc, ok = _keys(tuples)
     else:
         boot, seq, t_utc = (np.asarray(k) for k in keys)
@@ -136,14 +140,14 @@ def insert(conn: sqlite3.Connection, session_id: int, tuples: list[tuple],
     first = _max_id(conn) + 1
     conn.execute("savepoint ml_spans")  # a failing executemany may have stored some rows: undo them
     try:
-        conn.executemany(INSERT_SQL, rows)
+        conn.executemany(sql, rows)
         conn.execute("release ml_spans")
     except (TypeError, ValueError, OverflowError, sqlite3.Error):
         conn.execute("rollback to ml_spans")
         conn.execute("release ml_spans")
         for k, row in enumerate(rows):  # find the bad rows one by one; the good ones still go in
             try:
-                conn.execute(INSERT_SQL, row)
+                conn.execute(sql, row)
             except (TypeError, ValueError, OverflowError, sqlite3.Error) as exc:
                 stored[k] = False
                 refused.append((int(idx[k]), str(exc)))
@@ -162,9 +166,9 @@ def _extend(conn: sqlite3.Connection, session_id: int, boot: np.ndarray, seq: np
     Only the newest span of a (session, boot) ever grows, so that boot's spans keep disjoint id
     ranges and a span's readings are exactly its session's and boot's rows inside its id range.
     """
-    for bb in np.unique(boot).tolist():
-        sel = boot == bb
-        s, t = seq[sel], t_utc[sel]
+    one_boot = bool(np.all(boot == boot[0]))
+    for bb in ([int(boot[0])] if one_boot else np.unique(boot).tolist()):
+        s, t = (seq, t_utc) if one_boot else (seq[boot == bb], t_utc[boot == bb])
         lo, hi, t_lo, t_hi, k = int(s.min()), int(s.max()), float(t.min()), float(t.max()), int(s.size)
         last = conn.execute("select id, seq_hi, n from reading_spans where session_id = ? and boot = ? "
                             "order by id desc limit 1", (session_id, bb)).fetchone()

@@ -8,6 +8,7 @@ catalogued check value of CRC-16/IBM-3740: 0x29B1 for the ASCII string "12345678
 import binascii
 
 import numpy as np
+import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from meterlink import protocol as p
@@ -110,3 +111,13 @@ def test_crc16_rows_check_value_and_binascii():
     rng = np.random.default_rng(3)
     rows = rng.integers(0, 256, size=(200, 25), dtype=np.uint8)
     assert p.crc16_rows(rows).tolist() == [binascii.crc_hqx(r.tobytes(), 0xFFFF) for r in rows]
+
+
+@pytest.mark.parametrize("length", [0, 1, 2, 3, 24, 25, 26, 27, 240])
+def test_crc16_rows_two_byte_steps_match_binascii_at_every_length(length):
+    # odd and even row lengths exercise the one-byte lead step and the byte-pair table
+    rows = np.random.default_rng(length).integers(0, 256, size=(64, length), dtype=np.uint8)
+    for crc in (0xFFFF, 0x0000, 0x1D0F):
+        assert p.crc16_rows(rows, crc).tolist() == [binascii.crc_hqx(r.tobytes(), crc) for r in rows]
+    strided = rows[:, ::-1]  # a non-contiguous view gives the same answer
+    assert p.crc16_rows(strided).tolist() == [binascii.crc_hqx(r.tobytes(), 0xFFFF) for r in strided]

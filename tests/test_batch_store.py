@@ -115,13 +115,17 @@ def _dicts(a):
 
 
 @settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(st.lists(st.lists(st.integers(0, 60), max_size=40), min_size=1, max_size=5))
-def test_add_reading_arrays_stores_and_reports_as_write_batch(tmp_path, batches):
+@given(st.lists(st.lists(st.integers(0, 60), max_size=40), min_size=1, max_size=5), st.booleans())
+def test_add_reading_arrays_stores_and_reports_as_write_batch(tmp_path, batches, scalars):
     with Store(tmp_path / "a.db") as sa, Store(tmp_path / "b.db") as sb:
         ia, ib = sa.begin_session("record", started_utc=0.0), sb.begin_session("record", started_utc=0.0)
-        for seqs in batches:
-            a = _arrays(seqs)
-            assert sa.add_reading_arrays(ia, **a) == sb.write_batch(ib, readings=_dicts(a))
+        for k, seqs in enumerate(batches):
+            a = _arrays(seqs, boot=1 + k % 2)
+            rows = _dicts(a)
+            if scalars:  # values common to the batch given once (they go into the statement as literals)
+                a.update(boot=1 + k % 2, flags=5, range_index=np.int64(2))
+                rows = [{**r, "flags": 5, "range_index": 2} for r in rows]
+            assert sa.add_reading_arrays(ia, **a) == sb.write_batch(ib, readings=rows)
         ra, rb = sa.readings(ia), sb.readings(ib)
         for f in ("ids", "boot", "seq", "tick_ms", "t_utc", "raw", "flags", "range_index"):
             assert np.array_equal(getattr(ra, f), getattr(rb, f))
