@@ -1,8 +1,9 @@
 """SQLite storage for sessions, raw readings, spectra, status and link events (docs/schema.md).
 
-The one module that talks to SQLite, through sqlite-utils. Raw device counts are stored as they
-arrived, so a later certificate can be re-applied. The schema carries a version in ``meta`` and
-is brought up to date by ``MIGRATIONS`` when a file is opened.
+The Store opens and migrates database files through sqlite-utils; the readings' index lives in
+spans.py. Raw device counts are stored as they arrived, so a later certificate can be re-applied.
+The schema carries a version in ``meta`` and is brought up to date by ``MIGRATIONS`` when a file
+is opened.
 """
 
 from __future__ import annotations
