@@ -16,7 +16,7 @@ import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from meterlink import calibrate
+from meterlink import calibrate, spans
 from meterlink.certificate import load_certificate
 from meterlink.protocol import (Ack, Axes, Boot, Fault, FrameReader, FrameType, Ident, Spectrum, Status,
                                 encode_frame, encode_message, parse_payload)
@@ -135,6 +135,7 @@ class Rig:
         events = self.store.events(self.rec.session_id)
         self.dev.close()
         assert self.store.db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+        assert spans.check(self.store.db.conn) == []  # the readings' index agrees with the rows
         assert not [e for e in events if e["kind"] == "internal_error"], events
         self.store.close()
         return events

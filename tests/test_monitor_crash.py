@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
+from meterlink import spans
 from simulators.pty_meter import SimulatedMeter
 from simulators.truth import read_truth
 
@@ -89,6 +90,7 @@ def test_sigkill_many_times(tmp_path):
         t0 = sim._t0
     conn = sqlite3.connect(db)
     assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    assert spans.check(conn) == []  # killed mid-write or not, the span index agrees with the rows
     dup = conn.execute("SELECT count(*) FROM (SELECT boot, seq FROM readings GROUP BY boot, seq "
                        "HAVING count(*) > 1)").fetchone()[0]
     assert dup == 0

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from meterlink import averaging
+from meterlink import averaging, spans
 from meterlink.monitor import Monitor
 from meterlink.station import parse_station
 from simulators.pty_meter import SimulatedMeter
@@ -72,21 +72,33 @@ EXCURSIONS = [(36000.0, 37200.0), (50400.0, 51300.0), (115200.0, 118800.0)]
 
 def _faults(days: float, seed: int) -> dict:
     rng = np.random.default_rng(seed)
-    sched = []
+    sched: list[dict] = []
 
-    def when(d):
+    def ok(at, taken):
         # keep faults an hour clear of the excursions and six hours from each other: at this speed a
         # reconnection costs device hours on a busy machine, and a fault while the host is already
         # reconnecting could not be seen as a separate event
-        while True:
-            at = float(rng.uniform(0.15, 0.95) * 86400 + d * 86400)   # after the monitor is up
-            if (all(not (a - 3600 <= at % (2 * 86400) <= b + 3600) for a, b in EXCURSIONS)
-                    and all(abs(at - e["at_s"]) >= 6 * 3600 for e in sched)):
-                return at
+        return (all(not (a - 3600 <= at % (2 * 86400) <= b + 3600) for a, b in EXCURSIONS)
+                and all(abs(at - e["at_s"]) >= 6 * 3600 for e in taken))
+
     for d in range(int(math.ceil(days))):
-        for _ in range(2):
-            sched.append({"kind": "disconnect", "at_s": when(d), "down_s": float(rng.uniform(120, 900))})
-        sched.append({"kind": "restart", "at_s": when(d)})
+        # three faults a day, drawn together: drawn one by one, the first two can leave no room for
+        # the third, and a draw-until-it-fits loop then never ends (it did, for a week)
+        for _ in range(10_000):
+            day: list[dict] = []
+            for kind in ("disconnect", "disconnect", "restart"):
+                at = float(rng.uniform(0.15, 0.95) * 86400 + d * 86400)   # after the monitor is up
+                if not ok(at, sched + day):
+                    break
+                day.append({"kind": kind, "at_s": at})
+            if len(day) == 3:
+                break
+        else:
+            raise RuntimeError(f"no room for three faults on day {d}")
+        for e in day:
+            if e["kind"] == "disconnect":
+                e["down_s"] = float(rng.uniform(120, 900))
+        sched += day
     return {"corrupt": 0.003, "garbage": 0.002, "schedule": sched}
 
 
@@ -122,6 +134,7 @@ def _soak(tmp_path: Path, days: float, speed: float):
 def _check(st, faults, truths, lines):
     conn = sqlite3.connect(st.database)
     assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    assert spans.check(conn) == []
     kinds = {}
     for meter, kind, detail in conn.execute(
             "SELECT json_extract(detail, '$.meter'), kind, detail FROM events"):
