@@ -155,21 +155,26 @@ def insert(conn: sqlite3.Connection, session_id: int, tuples: Sequence[tuple],
     new = int(stored.sum())
     if new:
         got = idx[stored]
-        _extend(conn, session_id, boot[got], seq[got], t_utc[got], first, last)
+        if last - first + 1 == new:  # SQLite gave each new row max(id) + 1: ids in insertion order
+            ids = np.arange(first, last + 1)
+        else:  # not seen, but cheap to be exact anyway: read back what was stored
+            ids = np.array([i for (i,) in conn.execute("select id from readings where id >= ? order by id", (first,))])
+        _extend(conn, session_id, boot[got], seq[got], t_utc[got], ids)
     return new, int(rep.sum()), sorted(refused)
 
 
 def _extend(conn: sqlite3.Connection, session_id: int, boot: np.ndarray, seq: np.ndarray, t_utc: np.ndarray,
-            id_lo: int, id_hi: int) -> None:
-    """Account for just-inserted readings (ids id_lo..id_hi): grow each boot's newest span or start one.
+            ids: np.ndarray) -> None:
+    """Account for just-inserted readings (their ids in ``ids``): grow each boot's newest span or start one.
 
     Only the newest span of a (session, boot) ever grows, so that boot's spans keep disjoint id
     ranges and a span's readings are exactly its session's and boot's rows inside its id range.
     """
     one_boot = bool(np.all(boot == boot[0]))
     for bb in ([int(boot[0])] if one_boot else np.unique(boot).tolist()):
-        s, t = (seq, t_utc) if one_boot else (seq[boot == bb], t_utc[boot == bb])
+        s, t, i = (seq, t_utc, ids) if one_boot else (seq[boot == bb], t_utc[boot == bb], ids[boot == bb])
         lo, hi, t_lo, t_hi, k = int(s.min()), int(s.max()), float(t.min()), float(t.max()), int(s.size)
+        id_lo, id_hi = int(i.min()), int(i.max())
         last = conn.execute("select id, seq_hi, n from reading_spans where session_id = ? and boot = ? "
                             "order by id desc limit 1", (session_id, bb)).fetchone()
         if last is not None and last[1] < lo and last[2] + k <= SPAN_ROWS:

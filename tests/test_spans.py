@@ -44,10 +44,12 @@ def test_spans_match_a_plain_model(tmp_path_factory, steps):
                 k, boot, first, count, stride, dt = s
                 rows = [row(boot, first + stride * i, T0 + (first + stride * i) / 10 + dt) for i in range(count)
                         if first + stride * i >= 0]
+                if count % 3 == 0:  # the device restarted inside this batch: a second boot follows
+                    rows += [row(boot % 3 + 1, i, T0 + 40 + i / 10) for i in range(count // 3)]
                 want_new = 0
                 for r in rows:
-                    if (boot, r["seq"]) not in model[k]:
-                        model[k][(boot, r["seq"])] = r["t_utc"]
+                    if (r["boot"], r["seq"]) not in model[k]:
+                        model[k][(r["boot"], r["seq"])] = r["t_utc"]
                         want_new += 1
                 assert store.add_readings(sids[k], rows) == want_new
             assert spans.check(store.db.conn) == []
@@ -123,6 +125,16 @@ def test_batch_sizes_around_the_span_cap(tmp_path, n):
             store.add_readings(sid, [row(1, k * n + i) for i in range(n)])
         assert spans.check(store.db.conn) == [] and store.count("readings", sid) == 3 * n
         assert store.add_readings(sid, [row(1, i) for i in range(3 * n)]) == 0  # all repeats
+
+
+def test_a_restart_inside_one_batch_gives_each_boot_exact_bounds(tmp_path):
+    with Store(tmp_path / "b.db") as store:
+        sid = store.begin_session("record")
+        store.add_readings(sid, [row(1, i) for i in range(10)])
+        store.add_readings(sid, [row(1, 10 + i) for i in range(5)] + [row(2, i, T0 + 9 + i) for i in range(5)])
+        assert spans.check(store.db.conn) == []
+        b1 = store.db.execute("select id_hi, n from reading_spans where boot = 1").fetchall()
+        assert b1 == [(15, 15)]
 
 
 def test_a_late_lower_batch_then_new_readings_keep_spans_disjoint(tmp_path):
