@@ -467,6 +467,13 @@ class Store:
             return int(self.db.execute(f"select count(*) from {table} where session_id = ?", [session_id]).fetchone()[0])
 
 
+    def verify(self) -> list[str]:
+        """Problems found by SQLite's integrity check and the span index check (empty: sound)."""
+        with self._lock:
+            rows = [r[0] for r in self.db.execute("PRAGMA integrity_check").fetchall()]
+            problems = [] if rows == ["ok"] else [f"sqlite: {r}" for r in rows]
+            return problems + spans.check(self.db.conn)
+
     def session_overview(self) -> list[dict]:
         """One row per session with its device, span and counts of readings, spectra, events by
         severity and calibrations, and the outcome of its latest assessment (if any)."""

@@ -37,3 +37,20 @@ def test_sessions_bad_input_is_one_line(tmp_path, capsys):
     assert main(["sessions", "--db", str(db), "--events", "7"]) == 2
     err = capsys.readouterr().err
     assert "no session 7" in err and len(err.strip().splitlines()) == 1
+
+
+def test_sessions_verify_finds_a_span_index_out_of_step(tmp_path, capsys):
+    db = tmp_path / "v.db"
+    with Store(db) as s:
+        sid = s.begin_session("record")
+        s.add_readings(sid, [{"boot": 1, "seq": i, "tick_ms": i * 100, "t_utc": 1.8e9 + i / 10, "raw_x": i,
+                              "raw_y": 0, "raw_z": 0, "flags": 0, "range_index": 0} for i in range(50)])
+    assert main(["sessions", "--db", str(db), "--verify"]) == 0
+    assert "sound" in capsys.readouterr().out
+    with Store(db) as s:  # as a program writing readings behind the Store's back would leave it
+        s.db.execute("insert into readings (session_id, boot, seq, tick_ms, t_utc, raw_x, raw_y, raw_z) "
+                     "values (?, 1, 99, 0, 1.8e9, 0, 0, 0)", [sid])
+        s.db.conn.commit()
+    assert main(["sessions", "--db", str(db), "--verify", "--json"]) == 1
+    out = json.loads(capsys.readouterr().out)
+    assert out["sound"] is False and any("51 readings stored, 50 in spans" in p for p in out["problems"])

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 HELP = "list the sessions in a database, or one session's events (find the id for assess, report, recalibrate)"
 
 
@@ -9,11 +11,13 @@ def add_arguments(parser) -> None:
     parser.add_argument("--db", metavar="FILE", default="meterlink.db", help="database (default meterlink.db)")
     parser.add_argument("--events", metavar="ID", type=int, help="list the events of session ID instead")
     parser.add_argument("--kind", metavar="KIND", help="with --events: only events of this kind (e.g. seq_gap)")
+    parser.add_argument("--verify", action="store_true",
+                        help="check the file instead: SQLite's integrity check and the readings' span index "
+                             "(reads every row; exit status 1 on a problem)")
     parser.add_argument("--json", action="store_true", help="print JSON")
 
 
 def run(args) -> int:
-    import json
     from pathlib import Path
 
     from meterlink.errors import MeterlinkError
@@ -22,6 +26,8 @@ def run(args) -> int:
     if not Path(args.db).is_file():
         raise MeterlinkError(f"no database at {args.db!r}")
     with Store(args.db) as store:
+        if args.verify:
+            return _verify(store, args)
         if args.events is not None:
             store.session(args.events)          # one-line error if there is no such session
             rows = store.events(args.events, args.kind)
@@ -35,6 +41,25 @@ def run(args) -> int:
     con = Console()
     con.print(_events_table(rows, args.events) if args.events is not None else _sessions_table(rows, args.db))
     return 0
+
+
+def _verify(store, args) -> int:
+    problems = store.verify()
+    if args.json:
+        print(json.dumps({"database": str(store.path), "sound": not problems, "problems": problems}, indent=2))
+    else:
+        from rich.console import Console
+        from rich.markup import escape
+
+        con = Console()
+        if problems:
+            con.print(f"[bold red]{len(problems)} problem(s)[/] in {escape(str(store.path))}:")
+            for p in problems:
+                con.print(f"  - {escape(p)}")
+        else:
+            con.print(f"[green]sound[/]: {escape(str(store.path))} passes SQLite's integrity check and "
+                      f"its readings' span index agrees with the rows")
+    return 1 if problems else 0
 
 
 _SENSOR = {1: "E probe", 2: "H probe", 3: "dipole + receiver"}
