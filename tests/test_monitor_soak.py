@@ -1,7 +1,8 @@
 """Soak runs of the monitor against two accelerated simulated meters with faults throughout.
 
-The CI run covers one simulated day at 10 s intervals (speed 2000: about 45 s; faster and two meters outrun one Python host on a loaded 2-core machine); the slow run a
-simulated week. Checks: no crash, every injected fault shows as an event, the 6-minute series
+The CI run covers one simulated day at 10 s intervals (speed 2000: about 45 s; faster and two
+meters outrun one Python host on a loaded 2-core machine); the slow run (`pytest -m slow`) a
+simulated week, about 5 minutes (passed 2026-12-01). Checks: no crash, every injected fault shows as an event, the 6-minute series
 agrees with the simulator's ground truth within the stated expanded uncertainty, and alarm
 episodes coincide with the scenario's excursions.
 """
