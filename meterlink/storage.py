@@ -12,6 +12,7 @@ import contextlib
 import itertools
 import json
 import sqlite3
+import sys
 import threading
 import time
 from dataclasses import dataclass
@@ -142,6 +143,8 @@ def _schema_v3_spans(db: sqlite_utils.Database) -> None:
 
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans}
+# migrations that read every reading (about 1 s per million here): announced on stderr
+_SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}
 
 
 @dataclass(frozen=True)
@@ -204,6 +207,9 @@ class Store:
         for v in sorted(MIGRATIONS):
             if v <= version:
                 continue
+            if version and v in _SLOW_MIGRATIONS:  # an existing file: say why opening it takes a while
+                sys.stderr.write(f"meterlink: upgrading {str(self.path)!r} to schema {v}: "
+                                 f"{_SLOW_MIGRATIONS[v]} (once)\n")
             with db.atomic():
                 MIGRATIONS[v](db)
                 db["meta"].upsert({"key": "schema_version", "value": str(v)}, pk="key")

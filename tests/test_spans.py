@@ -80,7 +80,7 @@ def test_a_refused_row_does_not_enter_the_spans(tmp_path):
         assert store.readings(sid).seq.tolist() == [1, 4] and spans.check(store.db.conn) == []
 
 
-def test_a_version_2_file_is_migrated_to_spans_with_nothing_lost(tmp_path):
+def test_a_version_2_file_is_migrated_to_spans_with_nothing_lost(tmp_path, capsys):
     path = tmp_path / "v2.db"
     import sqlite_utils
     db = sqlite_utils.Database(sqlite3.connect(path))
@@ -95,6 +95,7 @@ def test_a_version_2_file_is_migrated_to_spans_with_nothing_lost(tmp_path):
     db.conn.commit()
     db.conn.close()
     with Store(path) as store:
+        assert "upgrading" in capsys.readouterr().err  # a long pause on a big file is explained
         assert store.schema_version == 3 and store.db["readings"].indexes == []
         assert spans.check(store.db.conn) == []
         assert store.count("readings", 1) == sum(r[0] == 1 for r in rows)
