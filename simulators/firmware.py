@@ -203,6 +203,9 @@ class Firmware:
 
     # ----------------------------------------------------------------- environment
     def _temp_c(self, t_s: float) -> float:
+        chamber = getattr(self.spec.scene, "temp_c_at", None)  # a lab bench's climatic chamber, if set
+        if chamber is not None and (t := chamber(t_s)) is not None:
+            return float(t)
         site = self.sc.site
         h = float(site.get("start_time_of_day_h", 0.0)) + t_s / 3600
         return float(site.get("temp_mean_c", 20.0)) + float(site.get("temp_daily_amp_c", 0.0)) * math.cos(

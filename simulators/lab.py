@@ -31,6 +31,7 @@ class BenchState:
     direction_world: tuple[float, float, float] = (1.0, 0.0, 0.0)
     rotator_deg: float = 0.0
     tilt_deg: float = 0.0
+    chamber_temp_c: float | None = None  # a climatic chamber's setting; None: the site's ambient
 
 
 class LabBench:
@@ -50,6 +51,10 @@ class LabBench:
             at_s = max(float(at_s), self._times[-1])
             self._times.append(at_s)
             self._states.append((state, 10 ** (err / 20)))
+
+    def temp_c_at(self, t_s: float) -> float | None:
+        """The probe's temperature at t_s if the chamber sets it (the firmware asks), else None."""
+        return self.state_at(t_s)[0].chamber_temp_c
 
     def state_at(self, t_s: float) -> tuple[BenchState, float]:
         """The state in force at t_s and the factor actual/asked field."""
@@ -88,6 +93,7 @@ class LabMeter:
         self.scenario = lab_scenario(scenario, temp_c, probe_overrides)
         self.bench = LabBench(field_error_db, rng=rng.spawn(1)[0])
         self.meter = SimulatedMeter(self.scenario, seed=seed, speed=speed, scene=self.bench, **meter_kw)
+        self.chamber_temp_c: float | None = None
 
     @property
     def port(self) -> str:
@@ -97,8 +103,12 @@ class LabMeter:
         """Set the bench now; returns the device tick (ms) from which readings see the new set-up."""
         tick = self.meter.device_tick_ms()
         self.bench.set(BenchState(float(freq_hz), float(e_v_per_m), tuple(map(float, direction_world)),
-                                  float(rotator_deg), float(tilt_deg)), self.meter.sim_time_s())
+                                  float(rotator_deg), float(tilt_deg), self.chamber_temp_c), self.meter.sim_time_s())
         return tick
+
+    def set_temperature(self, temp_c: float | None) -> None:
+        """The climatic chamber around the probe (None: off, the site's ambient); from the next apply()."""
+        self.chamber_temp_c = None if temp_c is None else float(temp_c)
 
     def start(self) -> "LabMeter":
         self.meter.start()
@@ -126,6 +136,11 @@ class InProcessLab:
         self._rng = rng
         self.averaging = int(device_averaging or self.scenario.device.get("device_averaging", 1))
         self._t = 0.0
+        self.chamber_temp_c: float | None = None
+
+    def set_temperature(self, temp_c: float | None) -> None:
+        """The climatic chamber around the probe (None: off, the lab's ambient)."""
+        self.chamber_temp_c = None if temp_c is None else float(temp_c)
 
     def apply(self, freq_hz, e_v_per_m, direction_world=(1.0, 0.0, 0.0), rotator_deg=0.0, tilt_deg=0.0) -> None:
         self._t += 1.0
@@ -137,7 +152,8 @@ class InProcessLab:
         f, e = self.bench.field(self._t)
         out = []
         for _ in range(int(n)):
-            c, over = probe_counts(self.scenario.probe, e, f, self.temp_c, self._rng, self.averaging)
+            t_c = self.temp_c if self.chamber_temp_c is None else self.chamber_temp_c
+            c, over = probe_counts(self.scenario.probe, e, f, t_c, self._rng, self.averaging)
             if over.any():   # as the meter flags it; the lab cannot use the step
                 raise LabError(f"meter over range at this step (counts {', '.join(str(int(x)) for x in c)})")
             out.append(c)

@@ -71,3 +71,28 @@ def test_bad_csv_is_one_line_error_naming_the_file(tmp_path):
     lines = p.stderr.strip().splitlines()
     assert len(lines) == 1 and str(bad) in lines[0] and "missing column(s) counts_y, counts_z" in lines[0]
     assert "Traceback" not in p.stderr
+
+
+def test_chamber_readings_survive_the_csv_and_reach_certificate_and_page(tmp_path, capsys):
+    s = LabSession("m", "s", "l", "n", dt.date(2027, 6, 1), dt.date(2028, 6, 1))
+    plan = pr.full_plan(s, freqs=(1e8, 1e9, 3e9), levels=(0.2, 1, 5, 20), iso_step_deg=45)
+    res = pr.run_plan(plan + pr.temperature_plan(s, (10.0, 23.0, 35.0)), InProcessLab(seed=5), repeats=3)
+    pr.export_csv(res, tmp_path / "hand.csv")
+    (tmp_path / "session.toml").write_text(SESSION_TOML)
+    out = tmp_path / "out"
+    assert main(["lab", "import", str(tmp_path / "hand.csv"), "--session", str(tmp_path / "session.toml"),
+                 "--out", str(out), "--json"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["temperature"]["temp_c"] == [10.0, 23.0, 35.0]
+    cert = load_certificate(out / "certificate.toml")
+    assert cert.temp_coeff_db_per_c == round(summary["temperature"]["coeff_db_per_c"], 4) != 0.0
+    page = (out / "certificate.html").read_text()
+    assert "Temperature coefficient" in page and page.count("data:image/png;base64,") == 4
+
+
+@pytest.mark.parametrize("value, needle", [("5", "two or more"), ("5,x", "separated by commas"),
+                                           ("20,22", "at least 5 degC"), ("5,200", "between -40 and 85")])
+def test_bad_temperature_list_is_one_line(value, needle):
+    p = subprocess.run([sys.executable, "-m", "meterlink", "lab", "run", "--quick", "--temperatures", value],
+                       capture_output=True, text=True, cwd=ROOT, timeout=60)
+    assert p.returncode == 2 and needle in p.stderr and len(p.stderr.strip().splitlines()) == 1

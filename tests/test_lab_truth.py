@@ -106,9 +106,41 @@ def test_as_found_drifted_probe_gives_out_of_tolerance_notice(lab_run):
     assert all(abs(r.drift_db[1]) < 0.05 for r in cmp.rows)
 
 
+def test_temperature_coefficient_recovered_and_ols_as_scipy():
+    """The chamber steps recover the probe model's coefficient; the slope and its standard error
+    are the ordinary least-squares ones (compared with scipy.stats.linregress)."""
+    from scipy.stats import linregress
+
+    from simulators.scenario import load_scenario
+    truth = load_scenario("demo").probe.temp_coeff_db_per_c
+    lab = InProcessLab(field_error_db=FIELD_ERROR_DB, seed=5)
+    plan = pr.full_plan(SESSION, freqs=(1e8, 1e9, 3e9), levels=(0.2, 1, 3, 10, 30), iso_step_deg=45)
+    res = pr.run_plan(plan + pr.temperature_plan(SESSION), lab, repeats=5)
+    cal = certify.analyse(SESSION, res)
+    tr = cal.temperature
+    assert tr is not None and tr.temp_c.tolist() == list(pr.TEMPS_C)
+    assert abs(tr.coeff_db_per_c - truth) <= max(3 * tr.u_coeff_db_per_c, 0.0005)
+    lr = linregress(tr.temp_c, tr.change_db)
+    assert tr.coeff_db_per_c == pytest.approx(lr.slope, rel=1e-9)
+    assert tr.u_coeff_db_per_c >= lr.stderr * (1 - 1e-9)   # residual error is one of its parts
+    c = cal.certificate
+    assert c.temp_coeff_db_per_c == round(tr.coeff_db_per_c, 4) and c.temp_ref_c == SESSION.ambient.temp_c
+    assert c.temp_coeff_halfwidth_db_per_c >= math.sqrt(3) * tr.u_coeff_db_per_c
+    # and without a chamber the plan is refused with a clear message, before anything is applied
+    class NoChamber:
+        def apply(self, *a):
+            raise AssertionError("applied")
+
+        def read(self, n):
+            raise AssertionError("read")
+    with pytest.raises(LabError, match="climatic chamber"):
+        pr.run_plan(pr.temperature_plan(SESSION), NoChamber())
+
+
 def test_end_to_end_over_the_pty(tmp_path):
     """A calibration run over the real pty (pyserial), its certificate loaded by the host and used."""
     plan = pr.full_plan(SESSION, freqs=(1e8, 5e8, 1e9, 3e9), levels=(0.2, 0.5, 1, 3, 10, 30), iso_step_deg=45)
+    plan += pr.temperature_plan(SESSION, (10.0, 23.0, 36.0))  # the firmware sees the chamber's temperature
     with LabMeter(field_error_db=FIELD_ERROR_DB, seed=21, speed=100) as lm:
         with MeterLink(lm.port, interval_ms=100) as link:
             bench = MeterBench(lm, link)
@@ -123,7 +155,18 @@ def test_end_to_end_over_the_pty(tmp_path):
             e_true, f = 4.0, 7e8
             bench.apply(f, e_true / 10 ** (FIELD_ERROR_DB / 20), (0.3, 0.5, 0.8), 30.0, 0.0)
             counts = bench.read(8)
+            lm.set_temperature(38.0)  # a hot day: 15 degC above the calibration
+            bench.apply(f, e_true / 10 ** (FIELD_ERROR_DB / 20), (0.3, 0.5, 0.8), 30.0, 0.0)
+            hot = bench.read(8)
+    from simulators.scenario import load_scenario
+    truth = load_scenario("demo").probe.temp_coeff_db_per_c  # the simulated probe's own coefficient
+    assert cert.temp_coeff_db_per_c == pytest.approx(truth, abs=0.002)
+    r_hot = calibrate_axes(cert, hot, f, temp_c=38.0, today=SESSION.cal_date)
+    r_raw = calibrate_axes(cert, hot, f, today=SESSION.cal_date)  # the same readings, temperature not known
     r = calibrate_axes(cert, counts, f, temp_c=23.0, today=SESSION.cal_date)
+    # corrected, the hot readings agree with the ones at 23 degC; uncorrected they read 15 x truth high
+    assert abs(20 * np.log10(np.mean(r_hot.e_v_per_m) / np.mean(r.e_v_per_m))) < 0.05
+    assert 20 * np.log10(np.mean(r_raw.e_v_per_m) / np.mean(r.e_v_per_m)) == pytest.approx(15 * truth, abs=0.05)
     assert r.flags.max() == 0
     err_db = 20 * np.log10(np.mean(r.e_v_per_m) / e_true)
     # the lab's field error (the bench made 0.2 dB more than it believed) is inherited as a -0.2 dB

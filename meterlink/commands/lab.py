@@ -7,7 +7,8 @@ HELP = "calibration lab: run procedures, import readings, show the budget, write
 
 def add_arguments(parser) -> None:
     sub = parser.add_subparsers(dest="action", required=True, metavar="ACTION")
-    run = sub.add_parser("run", help="run zero, linearity, frequency and isotropy on the simulated lab bench")
+    run = sub.add_parser("run", help="run zero, linearity, frequency, isotropy (and temperature) on the simulated "
+                                     "lab bench")
     imp = sub.add_parser("import", help="build a certificate from readings taken by hand (CSV)")
     imp.add_argument("csv", help="readings file (columns in docs/lab.md)")
     bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method")
@@ -23,6 +24,9 @@ def add_arguments(parser) -> None:
     run.add_argument("--repeats", type=int, default=5, help="readings per step (default 5)")
     run.add_argument("--quick", action="store_true", help="fewer frequencies, levels and angles")
     run.add_argument("--drift-db", type=float, default=0.0, help="simulate a sensitivity change of axis x (dB)")
+    run.add_argument("--temperatures", metavar="LIST",
+                     help="also measure the temperature coefficient in a climatic chamber at these degC, "
+                          "e.g. 5,15,23,30,40 (the simulated bench has one)")
 
 
 def _session(path):
@@ -49,6 +53,8 @@ def _simulated(session, args):
                             iso_step_deg=30)
     else:
         plan = pr.full_plan(session, levels=pr.TABLE_LEVELS_V_PER_M[:-2])
+    if args.temperatures:
+        plan += pr.temperature_plan(session, _temperatures(args.temperatures))
     over = None
     if args.drift_db:
         from simulators.scenario import load_scenario
@@ -65,6 +71,22 @@ def _simulated(session, args):
                 def tick(i, n, st):
                     prog.update(task, completed=i, description=f"{st.procedure} {st.freq_hz / 1e6:g} MHz")
                 return pr.run_plan(plan, bench, repeats=args.repeats, progress=tick)
+
+
+def _temperatures(text: str) -> list[float]:
+    """'5,15,23' -> [5.0, 15.0, 23.0]; MeterlinkError (one line) on anything else."""
+    import math
+
+    from meterlink.errors import MeterlinkError
+    try:
+        temps = [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise MeterlinkError(f"--temperatures {text!r}: expected degC values separated by commas") from None
+    if len(temps) < 2 or not all(math.isfinite(t) and -40.0 <= t <= 85.0 for t in temps):
+        raise MeterlinkError(f"--temperatures {text!r}: give two or more values between -40 and 85 degC")
+    if max(temps) - min(temps) < 5.0:
+        raise MeterlinkError(f"--temperatures {text!r}: span at least 5 degC for a slope")
+    return temps
 
 
 def _budget_table(b):
@@ -126,6 +148,13 @@ def run(args) -> int:
                "isotropy": [{"freq_hz": i.freq_hz, "tilt_deg": i.tilt_deg, "plus_minus_db": i.plus_minus_db,
                              "max_min_db": i.max_min_db} for i in cal.isotropy],
                "linearity_db": cal.certificate.uncertainties[1].value,
+               "temperature": None if cal.temperature is None else {
+                   "freq_hz": cal.temperature.freq_hz, "temp_c": cal.temperature.temp_c.tolist(),
+                   "change_db": cal.temperature.change_db.tolist(),
+                   "coeff_db_per_c": cal.temperature.coeff_db_per_c,
+                   "u_coeff_db_per_c": cal.temperature.u_coeff_db_per_c},
+               "temp_coeff_db_per_c": cal.certificate.temp_coeff_db_per_c,
+               "temp_coeff_halfwidth_db_per_c": cal.certificate.temp_coeff_halfwidth_db_per_c,
                "cf_db": {"freq_hz": cal.response.freq_hz.tolist(), "axes": cal.response.cf_axes_db.tolist(),
                          "total": cal.response.cf_total_db.tolist()},
                "as_found": cmp.as_found if cmp else None, "as_left": cmp.as_left if cmp else None,
@@ -139,6 +168,10 @@ def run(args) -> int:
         console.print(f"isotropy +/- {cal.certificate.isotropy_db:.2f} dB about the mean; "
                       + "; ".join(f"{i.freq_hz / 1e6:g} MHz: max/min {i.max_min_db:.2f} dB" for i in cal.isotropy),
                       markup=False)
+        if cal.temperature is not None:
+            console.print(f"temperature coefficient {cal.temperature.coeff_db_per_c:+.4f} dB/degC "
+                          f"(u {cal.temperature.u_coeff_db_per_c:.4f}) at {cal.temperature.freq_hz / 1e6:g} MHz, "
+                          f"{cal.temperature.temp_c.min():g}..{cal.temperature.temp_c.max():g} degC", markup=False)
         if cmp:
             console.print(cmp.statement, markup=False)
             if cmp.notice:

@@ -206,3 +206,56 @@ def isotropy(results, cert) -> list[Isotropy]:
             ua.append(type_a_db(res.e_v_per_m))
         out.append(Isotropy(f, t, np.array([r.step.rotator_deg for r in rs]), np.array(e), float(max(ua))))
     return out
+
+
+@dataclass(frozen=True)
+class TemperatureResponse:
+    """Indicated field against chamber temperature at one frequency and level, and the fitted slope."""
+
+    freq_hz: float
+    temp_c: np.ndarray
+    change_db: np.ndarray         # 20 log10(indicated / reference field), uncorrected for temperature
+    u_a_db: np.ndarray
+    coeff_db_per_c: float         # d(change_db)/dT: the certificate's temperature coefficient
+    u_coeff_db_per_c: float       # standard uncertainty of the slope
+
+    def fitted_db(self, temp_c) -> np.ndarray:
+        """The straight line through the points (ordinary least squares)."""
+        t = np.asarray(temp_c, dtype=float)
+        return float(np.mean(self.change_db)) + self.coeff_db_per_c * (t - float(np.mean(self.temp_c)))
+
+
+def temperature_response(results, cert, chamber_halfwidth_c: float = 0.5) -> TemperatureResponse | None:
+    """Slope of the indicated field (field dB) against chamber temperature; None without such steps.
+
+    Readings are calibrated with `cert` but not corrected for temperature. Ordinary least squares
+    of change_db on temp_c; u(slope) is the larger of the residual standard error (three or more
+    temperatures) and the Type A scatter carried through the fit, combined with the chamber's
+    setting uncertainty (rectangular half-width, degC) acting across the span.
+    """
+    rs = sorted(of(results, "temperature"), key=lambda r: r.step.temp_c)
+    if not rs:
+        return None
+    freqs = {r.step.freq_hz for r in rs}
+    if len(freqs) > 1:
+        raise LabError("temperature steps at more than one frequency: keep one (the reference frequency)")
+    t, y, ua = [], [], []
+    for r in rs:
+        if not math.isfinite(r.step.temp_c):
+            raise LabError("a temperature step without its chamber temperature (temp_c)")
+        res = calibrate_axes(cert, r.counts, r.step.freq_hz, today=cert.cal_date)
+        t.append(float(r.step.temp_c))
+        y.append(float(20 * np.log10(np.mean(res.e_v_per_m) / r.step.e_ref_v_per_m)))
+        ua.append(type_a_db(res.e_v_per_m))
+    t, y, ua = np.array(t), np.array(y), np.array(ua)
+    if np.ptp(t) < 5.0:
+        raise LabError(f"temperature steps span {np.ptp(t):.1f} degC: at least 5 degC is needed for a slope")
+    dt = t - t.mean()
+    sxx = float(dt @ dt)
+    b = float(dt @ (y - y.mean()) / sxx)
+    u_scatter = float(math.sqrt(np.sum((dt * ua) ** 2)) / sxx)
+    if t.size > 2:
+        resid = y - (y.mean() + b * dt)
+        u_scatter = max(u_scatter, float(math.sqrt(resid @ resid / (t.size - 2) / sxx)))
+    u_chamber = abs(b) * math.sqrt(2.0) * (chamber_halfwidth_c / math.sqrt(3.0)) / float(np.ptp(t))
+    return TemperatureResponse(float(next(iter(freqs))), t, y, ua, b, math.hypot(u_scatter, u_chamber))

@@ -21,7 +21,7 @@ from meterlink.lab.session import AXES, LabError, LabSession
 from meterlink.uncertainty import Component
 from meterlink.verdict import COMPLIANT, NOT_COMPLIANT, UNDECIDED, get_rule
 
-#: Not measured by these procedures: kept from the previous certificate, else these defaults.
+#: Without temperature steps: kept from the previous certificate, else these defaults.
 TEMP_COEFF_DEFAULT_DB_PER_C, TEMP_COEFF_HALFWIDTH_DEFAULT_DB_PER_C = 0.0, 0.01
 
 
@@ -40,6 +40,7 @@ class Calibration:
     response: an.FrequencyResponse
     isotropy: tuple[an.Isotropy, ...]
     budget: LabBudget
+    temperature: an.TemperatureResponse | None = None
 
 
 def analyse(session: LabSession, results, previous: ProbeCertificate | None = None) -> Calibration:
@@ -74,7 +75,13 @@ def analyse(session: LabSession, results, previous: ProbeCertificate | None = No
     if not iso:
         raise LabError("no isotropy readings in the session")
     cert = replace(provisional, isotropy_db=max(0.05, _up(max(i.plus_minus_db for i in iso))))
-    return Calibration(session, cert, tuple(lin), fr, iso, budget)
+    temp = an.temperature_response(results, provisional, session.budget.get("chamber_temp_c", 0.5))
+    if temp is not None:
+        # measured: the slope, and as half-width the rectangular one of the same standard
+        # uncertainty (sqrt(3) u), which is how the field budget reads it
+        cert = replace(cert, temp_coeff_db_per_c=round(temp.coeff_db_per_c, 4) + 0.0,
+                       temp_coeff_halfwidth_db_per_c=_up(math.sqrt(3.0) * temp.u_coeff_db_per_c, 0.001))
+    return Calibration(session, cert, tuple(lin), fr, iso, budget, temp)
 
 
 # --------------------------------------------------------------------------- as found / as left

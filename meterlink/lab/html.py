@@ -54,6 +54,17 @@ def _plots(cal: Calibration) -> list[str]:
     ax.set_title("Isotropy: deviation from the mean (dB)")
     ax.legend(loc="lower left", fontsize=7)
     out.append(_png(fig))
+    tr = cal.temperature
+    if tr is not None:
+        fig, ax = plt.subplots(figsize=(7, 3.2))
+        ax.errorbar(tr.temp_c, tr.change_db, yerr=2 * tr.u_a_db, fmt="o", label="indicated (2 x Type A)")
+        span = np.linspace(tr.temp_c.min(), tr.temp_c.max(), 2)
+        ax.plot(span, tr.fitted_db(span), "k--", label=f"slope {tr.coeff_db_per_c:+.4f} dB/degC")
+        ax.set(xlabel="chamber temperature (degC)", ylabel="indicated / reference (dB)",
+               title=f"Temperature response at {tr.freq_hz / 1e6:g} MHz")
+        ax.grid(True, alpha=.3)
+        ax.legend()
+        out.append(_png(fig))
     return out
 
 
@@ -89,6 +100,19 @@ def render(cal: Calibration, comparison: Comparison | None = None, safety_line: 
     p.append(_table(("frequency (MHz)", "tilt (deg)", "+/- dB about the mean", "max/min ratio (dB)"),
                     [(f"{i.freq_hz / 1e6:g}", f"{i.tilt_deg:g}", f"+/- {i.plus_minus_db:.3f}", f"{i.max_min_db:.3f}")
                      for i in cal.isotropy]))
+    tr = cal.temperature
+    if tr is not None:
+        p.append("<h2>Temperature coefficient</h2>" + plots[3])
+        p.append(_table(("chamber (degC)", "indicated / reference (dB)", "Type A (dB)"),
+                        [(f"{t:g}", f"{y:+.3f}", f"{u:.3f}") for t, y, u in zip(tr.temp_c, tr.change_db, tr.u_a_db)]))
+        p.append(f"<p>Fitted slope {tr.coeff_db_per_c:+.4f} dB/degC, standard uncertainty "
+                 f"{tr.u_coeff_db_per_c:.4f} dB/degC; stated on the certificate as "
+                 f"{c.temp_coeff_db_per_c:+.4f} dB/degC (half-width {c.temp_coeff_halfwidth_db_per_c:.3f}) "
+                 f"about {c.temp_ref_c:g} degC, corrected when a reading's temperature is known.</p>")
+    else:
+        p.append(f"<p>Temperature coefficient not measured in this calibration: {c.temp_coeff_db_per_c:+.4f} "
+                 f"dB/degC (half-width {c.temp_coeff_halfwidth_db_per_c:.3f}) carried from the previous "
+                 f"certificate or the default.</p>")
     b = cal.budget
     p.append("<h2>Uncertainty budget of a calibration factor (JCGM 100:2008)</h2>")
     p.append(_table(("component", "value (dB)", "distribution", "divisor", "sensitivity", "u (dB)", "note"),

@@ -46,6 +46,13 @@ class MeterBench:
         self._after_tick = None if tick is None else float(tick) + (self.interval_ms or 0) / 2
         self._skip = self.settle_readings if tick is None else 0
 
+    def set_temperature(self, temp_c: float | None) -> None:
+        """The lab controller's climatic chamber (temperature steps); LabError if it has none."""
+        setter = getattr(self.controller, "set_temperature", None)
+        if setter is None:
+            raise LabError("the lab controller has no climatic chamber (set_temperature)")
+        setter(temp_c)
+
     def read(self, n: int) -> np.ndarray:
         out = []
         deadline = time.monotonic() + self.timeout_s

@@ -25,10 +25,17 @@ FREQ_LEVEL_V_PER_M = 5.0
 ISOTROPY_STEP_DEG = 15.0
 
 
+#: Chamber temperatures of the temperature-coefficient steps (degC): a common span for field use.
+TEMPS_C = (5.0, 15.0, 23.0, 30.0, 40.0)
+
+
 class Bench(Protocol):
     def apply(self, freq_hz, e_v_per_m, direction_world, rotator_deg, tilt_deg) -> None: ...
 
     def read(self, n: int) -> np.ndarray: ...
+
+    # optional: set_temperature(temp_c | None), a climatic chamber (None: off, the lab's ambient),
+    # in force from the next apply(); needed only by temperature steps
 
 
 def zero_plan(ref_freq_hz: float) -> list[Step]:
@@ -66,6 +73,13 @@ def isotropy_plan(session: LabSession, freqs_hz=(2.45e9,), level_v_per_m=FREQ_LE
             for f in freqs_hz for t in tilts_deg for r in angles]
 
 
+def temperature_plan(session: LabSession, temps_c=TEMPS_C, level_v_per_m=FREQ_LEVEL_V_PER_M) -> list[Step]:
+    """At the reference frequency, the field along the handle at each chamber temperature."""
+    p = session.method.power_for(level_v_per_m)
+    return [Step("temperature", session.ref_freq_hz, level_v_per_m, diagonal_direction_world(), net_power_w=p,
+                 temp_c=float(t)) for t in temps_c]
+
+
 def full_plan(session: LabSession, freqs=FREQS_HZ, levels=TABLE_LEVELS_V_PER_M, iso_freqs=(2.45e9,),
               iso_step_deg=ISOTROPY_STEP_DEG, iso_tilts=(0.0,)) -> list[Step]:
     """Zero, linearity, frequency response and isotropy, in that order."""
@@ -77,7 +91,12 @@ def run_plan(plan, bench: Bench, repeats: int = 5,
              progress: Callable[[int, int, Step], None] | None = None) -> list[StepResult]:
     """Apply each step, take `repeats` readings (zero steps take 4x as many), return the results."""
     out = []
+    chamber: float | None = None
     for i, st in enumerate(plan):
+        want = st.temp_c if math.isfinite(st.temp_c) else None
+        if want != chamber:
+            _set_temperature(bench, want)
+            chamber = want
         bench.apply(st.freq_hz, st.e_ref_v_per_m, st.direction_world, st.rotator_deg, st.tilt_deg)
         n = repeats * (4 if st.procedure == "zero" else 1)
         counts = np.asarray(bench.read(n), dtype=float)
@@ -86,14 +105,24 @@ def run_plan(plan, bench: Bench, repeats: int = 5,
         out.append(StepResult(st, counts))
         if progress:
             progress(i + 1, len(plan), st)
+    if chamber is not None:
+        _set_temperature(bench, None)
     bench.apply(plan[-1].freq_hz if plan else 1e9, 0.0, (1.0, 0.0, 0.0), 0.0, 0.0)   # field off at the end
     return out
+
+
+def _set_temperature(bench, temp_c: float | None) -> None:
+    setter = getattr(bench, "set_temperature", None)
+    if setter is None:
+        raise LabError("the plan has temperature steps, but this bench has no climatic chamber (set_temperature)")
+    setter(temp_c)
 
 
 # ---------------------------------------------------------------------------- CSV import
 
 REQUIRED = ("procedure", "freq_hz", "counts_x", "counts_y", "counts_z")
-OPTIONAL = ("e_ref_v_per_m", "net_power_w", "axis", "role", "rotator_deg", "tilt_deg", "dir_x", "dir_y", "dir_z")
+OPTIONAL = ("e_ref_v_per_m", "net_power_w", "axis", "role", "rotator_deg", "tilt_deg", "dir_x", "dir_y", "dir_z",
+            "temp_c")
 
 
 def import_csv(path, session: LabSession) -> list[StepResult]:
@@ -171,10 +200,13 @@ def import_csv(path, session: LabSession) -> list[StepResult]:
         if any(c in idx for c in ("dir_x", "dir_y", "dir_z")):
             d = (num("dir_x", 0.0), num("dir_y", 0.0), num("dir_z", 0.0))
         else:
-            d = axis_direction_world(axis) if axis else (diagonal_direction_world() if proc == "frequency"
-                                                         else (1.0, 0.0, 0.0))
+            d = axis_direction_world(axis) if axis else (diagonal_direction_world()
+                                                         if proc in ("frequency", "temperature") else (1.0, 0.0, 0.0))
+        temp = num("temp_c")
+        if proc == "temperature" and not math.isfinite(temp):
+            raise LabError(f"{p}: line {n}: a temperature step needs temp_c (the chamber's degC)")
         st = Step(proc, freq, e_ref, d, num("rotator_deg", 0.0), num("tilt_deg", 0.0), axis,
-                  cell("role").lower() or ("table" if proc == "linearity" else ""), p_in)
+                  cell("role").lower() or ("table" if proc == "linearity" else ""), p_in, temp)
         c = [num(f"counts_{a}") for a in AXES]
         if any(math.isnan(x) for x in c):
             raise LabError(f"{p}: line {n}: counts_x, counts_y and counts_z are all needed")
@@ -186,24 +218,25 @@ def import_csv(path, session: LabSession) -> list[StepResult]:
 
 
 def _same(a: Step, b: Step) -> bool:
-    return (a.procedure, a.freq_hz, a.e_ref_v_per_m, a.direction_world, a.rotator_deg, a.tilt_deg, a.axis,
-            a.role) == (b.procedure, b.freq_hz, b.e_ref_v_per_m, b.direction_world, b.rotator_deg, b.tilt_deg,
-                        b.axis, b.role)
+    key = lambda s: (s.procedure, s.freq_hz, s.e_ref_v_per_m, s.direction_world, s.rotator_deg, s.tilt_deg,  # noqa: E731
+                     s.axis, s.role, None if math.isnan(s.temp_c) else s.temp_c)
+    return key(a) == key(b)
 
 
 def export_csv(results, path) -> None:
     """Write results in the import format (one row per reading)."""
     cols = ["procedure", "axis", "role", "freq_hz", "e_ref_v_per_m", "net_power_w", "rotator_deg", "tilt_deg",
-            "dir_x", "dir_y", "dir_z", "counts_x", "counts_y", "counts_z"]
+            "dir_x", "dir_y", "dir_z", "temp_c", "counts_x", "counts_y", "counts_z"]
     with open(path, "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh)
         w.writerow(cols)
         for r in results:
             s = r.step
             pw = "" if math.isnan(s.net_power_w) else repr(s.net_power_w)
+            tc = "" if math.isnan(s.temp_c) else repr(s.temp_c)
             for c in r.counts:
                 w.writerow([s.procedure, s.axis, s.role, repr(s.freq_hz), repr(s.e_ref_v_per_m), pw, repr(s.rotator_deg),
-                            repr(s.tilt_deg), *map(repr, s.direction_world), *map(repr, map(float, c))])
+                            repr(s.tilt_deg), *map(repr, s.direction_world), tc, *map(repr, map(float, c))])
 
 
 def results_json(results) -> list[dict]:
@@ -212,6 +245,7 @@ def results_json(results) -> list[dict]:
              "e_ref_v_per_m": r.step.e_ref_v_per_m, "rotator_deg": r.step.rotator_deg, "tilt_deg": r.step.tilt_deg,
              "direction_world": list(r.step.direction_world),
              "net_power_w": None if math.isnan(r.step.net_power_w) else r.step.net_power_w,
+             "temp_c": None if math.isnan(r.step.temp_c) else r.step.temp_c,
              "counts": r.counts.tolist()} for r in results]
 
 

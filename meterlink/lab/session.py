@@ -21,7 +21,7 @@ import numpy as np
 from meterlink.errors import MeterlinkError
 from meterlink.lab.fieldgen import FieldMethod
 
-PROCEDURES = ("zero", "linearity", "frequency", "isotropy", "check")
+PROCEDURES = ("zero", "linearity", "frequency", "isotropy", "temperature", "check")
 AXES = ("x", "y", "z")
 
 
@@ -80,6 +80,7 @@ class Step:
     axis: str = ""            # "x", "y", "z" for a per-axis step, "" for the total field
     role: str = ""            # linearity: "table" (builds the certificate) or "check" (tests it)
     net_power_w: float = float("nan")
+    temp_c: float = float("nan")  # climatic chamber setting (degC); NaN: the lab's ambient
 
 
 @dataclass(frozen=True)
