@@ -155,7 +155,9 @@ def calibrate_axes(cert: ProbeCertificate, counts, freq_hz, temp_c=None, near_fi
         raise ValueError(f"counts must have shape (N, 3), got {np.shape(counts)}")
     n = c.shape[0]
     warnings, exp_flag = _expiry(cert, today)
-    corr, fflags = frequency_correction_db(cert, freq_hz)
+    key = _freq_key(freq_hz)
+    corr, fflags = _freq_correction_cached(cert, key) if key is not _UNCACHED else frequency_correction_db(cert, freq_hz)
+    corr = np.array(corr)
     if temp_c is not None:      # the indicated field drifts by coeff dB/degC about the reference temperature
         corr = corr - cert.temp_coeff_db_per_c * (float(temp_c) - cert.temp_ref_c)
     axes = np.empty((n, 3))
@@ -185,8 +187,37 @@ def calibrate_axes(cert: ProbeCertificate, counts, freq_hz, temp_c=None, near_fi
             h = np.where(nf, np.nan, h)
         s = np.where(nf, np.nan, s)
         flags[nf] |= NEAR_FIELD
-    u = measurement_budget(cert, freq_hz, None, temp_c).u_expanded_db
+    t_key = None if temp_c is None else float(temp_c)
+    u = (_u_expanded_cached(cert, key, t_key) if key is not _UNCACHED
+         else measurement_budget(cert, freq_hz, None, temp_c).u_expanded_db)
     return AxisResult(axes, e, h, s, np.full(n, u), flags, axis_flags, warnings)
+
+
+# A monitor calibrates one reading at a time with the same certificate and declared frequency:
+# the per-axis frequency correction and the budget depend on nothing else, so they are kept.
+_UNCACHED = object()
+
+
+def _freq_key(freq_hz):
+    """A hashable form of a declared frequency (number, (lo, hi) band or None), else _UNCACHED."""
+    if freq_hz is None:
+        return None
+    if np.ndim(freq_hz) == 0:
+        return float(freq_hz)
+    if np.ndim(freq_hz) == 1 and len(freq_hz) == 2:
+        return (float(freq_hz[0]), float(freq_hz[1]))
+    return _UNCACHED
+
+
+@functools.lru_cache(maxsize=256)
+def _freq_correction_cached(cert, key) -> tuple[tuple[float, ...], int]:
+    corr, flags = frequency_correction_db(cert, key)
+    return tuple(float(c) for c in corr), flags
+
+
+@functools.lru_cache(maxsize=256)
+def _u_expanded_cached(cert, key, temp_c) -> float:
+    return measurement_budget(cert, key, None, temp_c).u_expanded_db
 
 
 def af_db_per_m(cert, freq_hz) -> np.ndarray:
