@@ -405,6 +405,14 @@ def _eval_status(o: Observations):
     if o.start_ack is None or o.stop_ack is None:
         return False, "; ".join(parts + ["no stream to watch"])
     t0, t1 = o.start_ack.frame.tick_ms, o.stop_ack.frame.tick_ms
+    # "while streaming" ends with the last reading before STOP's ACK: if that ACK was lost (a CRC
+    # error), the STOP sent again is answered a reply timeout later, and the device, stopped by
+    # the first one, rightly sent no STATUS in between
+    i_stop = next((i for i, r in enumerate(o.frames) if r is o.stop_ack), len(o.frames))
+    last = [r.frame.tick_ms for r in o.frames[:i_stop] if r.frame.type in _READINGS
+            and 0 <= _after(t0, r.frame.tick_ms) <= _after(t0, t1)]
+    if last:
+        t1 = max(last, key=lambda t: _after(t0, t))
     sq = {o.stream_status.frame.seq} if o.stream_status else set()
     ticks = [r.frame.tick_ms for r in o.frames if r.frame.type == FrameType.STATUS and r.frame.seq not in sq
              and 0 <= _after(t0, r.frame.tick_ms) <= _after(t0, t1)]
