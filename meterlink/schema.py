@@ -1,0 +1,128 @@
+"""The database schema as migrations: version -> the function that brings a file up to it (docs/schema.md).
+
+Each migration runs in one transaction when a file is opened (meterlink.storage.Store); a file
+records its version in ``meta``. A migration is never edited once released: a change is a new one.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import sqlite_utils
+
+from meterlink import spans
+
+APP_ID = "meterlink"
+SCHEMA_VERSION = 3
+
+
+def _schema_v1(db: sqlite_utils.Database) -> None:
+    db["meta"].create({"key": str, "value": str}, pk="key")
+    db["meta"].insert({"key": "app", "value": APP_ID})
+    db["devices"].create({"id": int, "model": str, "serial": str, "probe_serial": str, "cert_ref": str,
+                          "sensor_kind": int, "fw_version": str, "protocol_version": str,
+                          "first_seen_utc": float}, pk="id")
+    db["devices"].create_index(["model", "serial", "probe_serial", "cert_ref", "sensor_kind", "fw_version",
+                                "protocol_version"], unique=True)
+    db["sessions"].create({"id": int, "kind": str, "device_id": int, "port": str, "started_utc": float,
+                           "ended_utc": float, "interval_ms": int, "freq_hz": float, "band_lo_hz": float,
+                           "band_hi_hz": float, "clock_boot": int, "clock_tick0_ms": int,
+                           "clock_utc0_s": float, "clock_rate_ratio": float, "software_version": str,
+                           "notes": str}, pk="id", foreign_keys=[("device_id", "devices", "id")],
+                          not_null=["kind", "started_utc"])
+    db["readings"].create({"id": int, "session_id": int, "boot": int, "seq": int, "tick_ms": int,
+                           "t_utc": float, "raw_x": int, "raw_y": int, "raw_z": int, "flags": int,
+                           "range_index": int}, pk="id", foreign_keys=[("session_id", "sessions", "id")],
+                          not_null=["session_id", "boot", "seq", "tick_ms", "t_utc", "raw_x", "raw_y", "raw_z"])
+    db["readings"].create_index(["session_id", "boot", "seq"], unique=True)
+    db["readings"].create_index(["session_id", "t_utc"])
+    db["spectra"].create({"id": int, "session_id": int, "boot": int, "seq": int, "tick_ms": int,
+                          "t_utc": float, "orientation": int, "sweep": int}, pk="id",
+                         foreign_keys=[("session_id", "sessions", "id")], not_null=["session_id", "boot", "seq"])
+    db["spectra"].create_index(["session_id", "boot", "seq"], unique=True)
+    db["spectra"].create_index(["session_id", "t_utc"])
+    db["spectrum_lines"].create({"id": int, "spectrum_id": int, "freq_hz": float, "level_dbuv": float},
+                                pk="id", foreign_keys=[("spectrum_id", "spectra", "id")])
+    db["spectrum_lines"].create_index(["spectrum_id"])
+    db["status"].create({"id": int, "session_id": int, "boot": int, "seq": int, "tick_ms": int,
+                         "t_utc": float, "battery_mv": int, "battery_pct": int, "temperature_degc": float,
+                         "flags": int, "interval_ms": int}, pk="id",
+                        foreign_keys=[("session_id", "sessions", "id")])
+    db["status"].create_index(["session_id", "t_utc"])
+    db["events"].create({"id": int, "session_id": int, "t_utc": float, "kind": str, "severity": str,
+                         "message": str, "detail": str}, pk="id",
+                        foreign_keys=[("session_id", "sessions", "id")], not_null=["kind", "severity", "t_utc"])
+    db["events"].create_index(["session_id", "t_utc"])
+    db["events"].create_index(["session_id", "kind"])
+    db["calibrations"].create({"id": int, "session_id": int, "certificate_name": str,
+                               "certificate_sha256": str, "certificate_text": str, "applied_utc": float,
+                               "freq_hz": float, "band_lo_hz": float, "band_hi_hz": float,
+                               "software_version": str}, pk="id",
+                              foreign_keys=[("session_id", "sessions", "id")])
+    db["field_values"].create({"reading_id": int, "calibration_id": int, "e_v_per_m": float,
+                               "ex_v_per_m": float, "ey_v_per_m": float, "ez_v_per_m": float,
+                               "h_a_per_m": float, "s_w_per_m2": float, "u_expanded_db": float, "flags": int},
+                              pk=("reading_id", "calibration_id"),
+                              foreign_keys=[("reading_id", "readings", "id"),
+                                            ("calibration_id", "calibrations", "id")])
+    db["spectrum_values"].create({"spectrum_line_id": int, "calibration_id": int, "e_v_per_m": float,
+                                  "u_expanded_db": float, "flags": int},
+                                 pk=("spectrum_line_id", "calibration_id"),
+                                 foreign_keys=[("spectrum_line_id", "spectrum_lines", "id"),
+                                               ("calibration_id", "calibrations", "id")])
+
+
+def _schema_v2_survey(db: sqlite_utils.Database) -> None:
+    """Walk-around survey tables (docs/schema.md, "Survey tables"; written by meterlink.survey.store)."""
+    db["survey"].create({"session_id": int, "title": str, "site_json": str, "standard": str, "tier": str,
+                         "decision_rule": str, "certificate_name": str, "certificate_number": str,
+                         "certificate_due": str, "certificate_sha256": str, "sensor": str,
+                         "freq_hz": float, "band_lo_hz": float, "band_hi_hz": float,
+                         "e_ref_v_per_m": float, "e_ref_freq_hz": float, "averaging_time_s": float,
+                         "followup_v_per_m": float, "followup_percent": float, "plan_text": str,
+                         "plan_path": str, "created_utc": float, "ended_utc": float, "software_version": str},
+                        pk="session_id", foreign_keys=[("session_id", "sessions", "id")],
+                        not_null=["standard", "tier", "decision_rule", "created_utc"])
+    db.execute("CREATE TRIGGER survey_choices_fixed BEFORE UPDATE OF standard, tier, decision_rule, "
+               "certificate_sha256 ON survey BEGIN SELECT RAISE(ABORT, 'survey standard, tier, decision "
+               "rule and certificate are fixed once measuring starts'); END")
+    db["survey_sources"].create({"id": int, "session_id": int, "name": str, "freq_hz": float, "technology": str,
+                                 "power_w": float, "max_power_w": float, "notes": str}, pk="id",
+                                foreign_keys=[("session_id", "survey", "session_id")])
+    db["survey_points"].create({
+        "id": int, "session_id": int, "point_no": int, "label": str, "mode": str, "scheme": str,
+        "x_m": float, "y_m": float, "lat_deg": float, "lon_deg": float, "height_m": float, "notes": str,
+        "near_field": int, "duration_s": float, "t_start_utc": float, "t_end_utc": float, "n_readings": int,
+        "e_v_per_m": float, "e_max_v_per_m": float, "ex_v_per_m": float, "ey_v_per_m": float,
+        "ez_v_per_m": float, "u_expanded_db": float, "coverage": float, "complete": int, "flags": int,
+        "warnings": str, "e_limit_v_per_m": float, "percent_field": float, "percent_power": float,
+        "exposure_ratio": float, "verdict": str, "statement": str, "followup": int,
+        "e_extrapolated_v_per_m": float, "exposure_ratio_extrapolated": float,
+        "percent_power_extrapolated": float, "verdict_extrapolated": str}, pk="id",
+        foreign_keys=[("session_id", "survey", "session_id")], not_null=["session_id", "label", "mode"])
+    db["survey_points"].create_index(["session_id", "point_no"], unique=True)
+    db["survey_samples"].create({"id": int, "point_id": int, "sample_no": int, "height_m": float, "x_m": float,
+                                 "y_m": float, "e_v_per_m": float, "e_max_v_per_m": float,
+                                 "u_expanded_db": float, "n_readings": int, "coverage": float,
+                                 "t_start_utc": float, "t_end_utc": float}, pk="id",
+                                foreign_keys=[("point_id", "survey_points", "id")])
+    db["survey_emitters"].create({"id": int, "point_id": int, "name": str, "freq_hz": float, "e_v_per_m": float,
+                                  "e_extrapolated_v_per_m": float, "ratio": float, "share": float}, pk="id",
+                                 foreign_keys=[("point_id", "survey_points", "id")])
+    db["survey_trace"].create({"id": int, "session_id": int, "point_no": int, "sample_no": int, "boot": int,
+                               "seq": int, "t_utc": float, "t_device_s": float, "e_v_per_m": float,
+                               "x_m": float, "y_m": float, "z_m": float, "used": int}, pk="id",
+                              foreign_keys=[("session_id", "survey", "session_id")])
+    db["survey_trace"].create_index(["session_id", "t_utc"])
+
+
+# version -> function bringing the schema from version-1 up to it; applied in order, in one transaction each
+def _schema_v3_spans(db: sqlite_utils.Database) -> None:
+    """Readings lose their per-row indexes to the span index (meterlink/spans.py)."""
+    spans.create(db.conn)
+
+
+MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
+                                                                   3: _schema_v3_spans}
+# migrations that read every reading (about 1 s per million here): announced on stderr
+_SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}
