@@ -1,9 +1,8 @@
 """SQLite storage for sessions, raw readings, spectra, status and link events (docs/schema.md).
 
-The Store opens database files through sqlite-utils and brings them to the current schema
-(schema.py); the readings' index lives in spans.py. Raw device counts are stored as they arrived, so a later certificate can be re-applied.
-The schema carries a version in ``meta`` and is brought up to date by ``MIGRATIONS`` when a file
-is opened.
+The Store opens database files through sqlite-utils and brings them to the current schema with
+the migrations of schema.py (the version is kept in ``meta``); the readings' index lives in
+spans.py. Raw device counts are stored as they arrived, so a later certificate can be re-applied.
 """
 
 from __future__ import annotations
