@@ -113,7 +113,7 @@ class Monitor:
         self._mono0, self._utc0 = time.monotonic(), time.time()
         self.store = Store(station.database)
         self.conn = self.store.db.conn
-        with self.store.db.atomic():
+        with self.store.write():
             derived.ensure_schema(self.conn)
         self.station_id, prev = self._station_record()
         self.procs: list = []
@@ -137,7 +137,7 @@ class Monitor:
         row = self.conn.execute("SELECT * FROM mon_station WHERE name=?", (st.name,)).fetchone()
         prev = None
         text = st.path.read_text(encoding="utf-8") if st.path.exists() else ""
-        with self.store.db.atomic():
+        with self.store.write():
             if row is None:
                 self.conn.execute("INSERT INTO mon_station (name, created_utc, runs) VALUES (?,?,0)",
                                   (st.name, time.time()))
@@ -168,7 +168,7 @@ class Monitor:
                                            band_hi_hz=hi, notes=f"station {st.name}, meter {m.name}")
         else:
             sid = int(row[0])
-        with self.store.db.atomic():
+        with self.store.write():
             self.conn.execute("INSERT OR IGNORE INTO mon_meter (station_id, meter) VALUES (?,?)",
                               (self.station_id, m.name))
             self.conn.execute("UPDATE mon_meter SET session_id=?, port=?, certificate=?, freq_hz=?, band_lo_hz=?, "
@@ -446,7 +446,7 @@ class Monitor:
     def _commit(self) -> None:
         """One transaction: buffered readings/status/events of every meter, derived rows, alarm state."""
         now = time.time()
-        with self.store._lock, self.store.db.atomic():
+        with self.store.write():
             for ms in self.meters:
                 ms.writer.flush()
                 for band, blocks in ms.blocks_out:
@@ -549,7 +549,7 @@ class Monitor:
             self._tick(closing=True)
             self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
             self._commit()
-            with self.store.db.atomic():
+            with self.store.write():
                 self.conn.execute("UPDATE mon_station SET state='stopped', heartbeat_utc=? WHERE id=?",
                                   (time.time(), self.station_id))
             for p in self.procs:
@@ -596,7 +596,7 @@ class Monitor:
 def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) -> int:
     """Delete up to ``limit`` raw readings and spectra of a session older than before_utc (with their values)."""
     conn = store.db.conn
-    with store._lock, store.db.atomic():
+    with store.write():
         gone = spans.delete_before(conn, session_id, before_utc, limit, dependents=[("field_values", "reading_id")])
         left = limit - gone
         sp = [r[0] for r in conn.execute("SELECT id FROM spectra WHERE session_id=? AND t_utc < ? LIMIT ?",

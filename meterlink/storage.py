@@ -96,9 +96,41 @@ class Store:
             if version and v in _SLOW_MIGRATIONS:  # an existing file: say why opening it takes a while
                 sys.stderr.write(f"meterlink: upgrading {str(self.path)!r} to schema {v}: "
                                  f"{_SLOW_MIGRATIONS[v]} (once)\n")
-            with db.atomic():
+            with self.write():
+                if v <= self._stored_version():  # another process opening the file did it meanwhile
+                    continue
                 MIGRATIONS[v](db)
                 db["meta"].upsert({"key": "schema_version", "value": str(v)}, pk="key")
+
+    def _stored_version(self) -> int:
+        if "meta" not in self.db.table_names():
+            return 0
+        row = self.db.execute("select value from meta where key = 'schema_version'").fetchone()
+        return int(row[0]) if row else 0
+
+    @contextlib.contextmanager
+    def write(self):
+        """A write transaction that takes SQLite's write lock at its start (BEGIN IMMEDIATE).
+
+        Several processes may write one file (a monitor, and someone assessing its data). A
+        transaction begun deferred that reads before it writes cannot take the write lock once
+        another connection has written, and fails at once with "database is locked"; this one
+        waits for the lock (up to the connection's 10 s busy timeout). Nested: a savepoint.
+        """
+        conn = self.db.conn
+        with self._lock:
+            if conn.in_transaction:
+                with self.db.atomic():
+                    yield conn
+                return
+            conn.execute("BEGIN IMMEDIATE")
+            try:
+                yield conn
+            except BaseException:
+                if conn.in_transaction:
+                    conn.execute("ROLLBACK")
+                raise
+            conn.execute("COMMIT")
 
     @property
     def schema_version(self) -> int:
@@ -124,7 +156,7 @@ class Store:
         """Id of the device row with these identity fields, creating it on first sight."""
         row = {"model": model, "serial": serial, "probe_serial": probe_serial, "cert_ref": cert_ref,
                "sensor_kind": sensor_kind, "fw_version": fw_version, "protocol_version": protocol_version}
-        with self._lock, self.db.atomic():
+        with self.write():
             where = " and ".join(f"{k} is ?" for k in row)
             found = list(self.db["devices"].rows_where(where, list(row.values()), limit=1))
             if found:
@@ -139,12 +171,12 @@ class Store:
                "freq_hz": freq_hz, "band_lo_hz": band_lo_hz, "band_hi_hz": band_hi_hz, "notes": notes,
                "started_utc": time.time() if started_utc is None else started_utc,
                "software_version": __version__}
-        with self._lock, self.db.atomic():
+        with self.write():
             return int(self.db["sessions"].insert(row).last_pk)
 
     def update_session(self, session_id: int, **fields: Any) -> None:
         """Set session columns (device_id, interval_ms, clock_*, notes, ...)."""
-        with self._lock, self.db.atomic():
+        with self.write():
             self.db["sessions"].update(session_id, fields)
 
     def end_session(self, session_id: int, ended_utc: float | None = None, **fields: Any) -> None:
@@ -180,7 +212,7 @@ class Store:
         if own:
             conn.execute("PRAGMA foreign_keys=OFF")
         try:
-            with self.db.atomic():
+            with self.write():
                 if session_id is not None and conn.execute("select 1 from sessions where id = ?",
                                                            (session_id,)).fetchone() is None:
                     raise StorageError(f"no session {session_id} in {str(self.path)!r}")
@@ -395,7 +427,7 @@ class Store:
 
     def add_calibration(self, row: Mapping[str, Any]) -> int:
         """Record that a certificate was applied to a session (provenance); returns the calibration id."""
-        with self._lock, self.db.atomic():
+        with self.write():
             return int(self.db["calibrations"].insert(dict(row)).last_pk)
 
     def calibrations(self, session_id: int) -> list[dict]:
@@ -413,7 +445,7 @@ class Store:
         rows = [(int(i), calibration_id, f(e), f(a[0]), f(a[1]), f(a[2]), f(h), f(s_), f(u), int(fl))
                 for i, e, a, h, s_, u, fl in zip(reading_ids, e_v_per_m, axes_v_per_m, h_a_per_m, s_w_per_m2,
                                                  u_expanded_db, flags)]
-        with self._lock, self.db.atomic():
+        with self.write():
             self.db.conn.executemany(
                 "insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
                 "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)", rows)
@@ -444,7 +476,7 @@ class Store:
         """Store one calibration's field per receiver line (NaN stored as NULL)."""
         rows = [(int(i), calibration_id, float(e) if e == e else None, float(u), int(fl))
                 for i, e, u, fl in zip(line_ids, e_v_per_m, u_expanded_db, flags)]
-        with self._lock, self.db.atomic():
+        with self.write():
             self.db.conn.executemany("insert into spectrum_values (spectrum_line_id, calibration_id, e_v_per_m, "
                                      "u_expanded_db, flags) values (?,?,?,?,?)", rows)
 

@@ -2,6 +2,7 @@
 
 import os
 import sqlite3
+import threading
 import time
 
 import numpy as np
@@ -184,3 +185,32 @@ def test_round_trip_of_any_readings(tmp_path, rows):
         got = sorted(zip(r.boot.tolist(), r.seq.tolist(), r.raw[:, 0].tolist(), r.raw[:, 1].tolist(),
                          r.raw[:, 2].tolist(), r.t_utc.tolist()))
         assert got == sorted((b, q, x, y, z, t) for b, q, x, y, z, t in rows)
+
+
+def test_several_connections_write_one_file_at_once(tmp_path):
+    # as a monitor and someone assessing or recording into the same file would: each its own Store.
+    # Deferred transactions that read first failed here at once with "database is locked".
+    path = tmp_path / "shared.db"
+    Store(path).close()
+    errors, counts = [], {}
+
+    def writer(k):
+        try:
+            with Store(path) as s:
+                sid = s.begin_session("record", notes=f"writer {k}")
+                for b in range(60):
+                    s.add_readings(sid, [reading(b * 5 + i, t0=1.8e9) for i in range(5)])
+                    s.add_event(sid, "note", "info", f"batch {b}")
+                counts[k] = (s.count("readings", sid), len(s.events(sid, kind="bad_row")))
+        except Exception as exc:  # noqa: BLE001 - reported below
+            errors.append(repr(exc))
+
+    threads = [threading.Thread(target=writer, args=(k,)) for k in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    assert not errors, errors
+    assert counts == {k: (300, 0) for k in range(4)}
+    with Store(path) as s:
+        assert spans.check(s.db.conn) == [] and len(s.sessions()) == 4

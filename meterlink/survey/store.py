@@ -31,7 +31,7 @@ def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, se
            "followup_v_per_m": plan.followup.v_per_m, "followup_percent": plan.followup.percent_field,
            "plan_text": plan.source_text, "plan_path": plan.source_path, "created_utc": time.time(),
            "software_version": __version__}
-    with store._lock, store.db.atomic():
+    with store.write():
         store.db["survey"].insert(row)
         store.db["survey_sources"].insert_all(
             [{"session_id": session_id, "name": s.name, "freq_hz": s.freq_hz, "technology": s.technology,
@@ -56,7 +56,7 @@ def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trac
            "exposure_ratio_extrapolated": _num(r.exposure_ratio_extrapolated),
            "percent_power_extrapolated": _num(r.percent_power_extrapolated),
            "verdict_extrapolated": r.verdict_extrapolated}
-    with store._lock, store.db.atomic():
+    with store.write():
         pid = int(store.db["survey_points"].insert(row).last_pk)
         store.db["survey_samples"].insert_all(
             [{"point_id": pid, "sample_no": i, "height_m": s.height_m,
@@ -74,7 +74,7 @@ def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trac
 
 
 def end_survey(store: Store, session_id: int) -> None:
-    with store._lock, store.db.atomic():
+    with store.write():
         store.db["survey"].update(session_id, {"ended_utc": time.time()})
 
 
