@@ -277,6 +277,8 @@ class Store:
             for name, v in zip(("session_id",) + READING_COLUMNS, values):
                 a = np.asarray(v)
                 names.append(name)
+                if a.ndim == 1 and a.size > 1 and a.dtype.kind in "iu" and a[0] == a[-1] and np.all(a == a[0]):
+                    a = a[0]  # the same in every row (flags and range are, mostly): one literal
                 if a.ndim == 0 and a.dtype.kind in "iu" and abs(int(a)) < 2 ** 63:
                     marks.append(str(int(a)))
                 else:
