@@ -258,13 +258,19 @@ def refresh(conn: sqlite3.Connection, span_id: int) -> None:
     """Recompute one span's bounds and count from its readings (after a delete); drop it if empty."""
     sid, boot, lo, hi = conn.execute("select session_id, boot, id_lo, id_hi from reading_spans where id = ?",
                                      (span_id,)).fetchone()
-    row = conn.execute("select count(*), min(seq), max(seq), min(id), max(id), min(t_utc), max(t_utc) from readings "
-                       "where id between ? and ? and session_id = ? and boot = ?", (lo, hi, sid, boot)).fetchone()
+    row = _measure(conn, sid, boot, lo, hi)
     if row[0] == 0:
         conn.execute("delete from reading_spans where id = ?", (span_id,))
     else:
         conn.execute("update reading_spans set n = ?, seq_lo = ?, seq_hi = ?, id_lo = ?, id_hi = ?, t_lo = ?, "
                      "t_hi = ? where id = ?", (*row, span_id))
+
+
+def _measure(conn: sqlite3.Connection, session_id: int, boot: int, id_lo: int, id_hi: int) -> tuple:
+    """(n, seq_lo, seq_hi, id_lo, id_hi, t_lo, t_hi) of one session's and boot's readings in an id range."""
+    return tuple(conn.execute("select count(*), min(seq), max(seq), min(id), max(id), min(t_utc), max(t_utc) "
+                              "from readings where id between ? and ? and session_id = ? and boot = ?",
+                              (id_lo, id_hi, session_id, boot)).fetchone())
 
 
 def check(conn: sqlite3.Connection) -> list[str]:
@@ -277,12 +283,10 @@ def check(conn: sqlite3.Connection) -> list[str]:
             problems.append(f"session {sid}: {counted.get(sid, 0)} readings stored, {in_spans.get(sid, 0)} in spans")
     for span_id, sid, boot, s_lo, s_hi, i_lo, i_hi, t_lo, t_hi, n in conn.execute(
             "select id, session_id, boot, seq_lo, seq_hi, id_lo, id_hi, t_lo, t_hi, n from reading_spans").fetchall():
-        row = conn.execute("select count(*), min(seq), max(seq), min(id), max(id), min(t_utc), max(t_utc) "
-                           "from readings where id between ? and ? and session_id = ? and boot = ?",
-                           (i_lo, i_hi, sid, boot)).fetchone()
-        if tuple(row) != (n, s_lo, s_hi, i_lo, i_hi, t_lo, t_hi):
+        row = _measure(conn, sid, boot, i_lo, i_hi)
+        if row != (n, s_lo, s_hi, i_lo, i_hi, t_lo, t_hi):
             problems.append(f"span {span_id} (session {sid}, boot {boot}) says n={n}, seq {s_lo}..{s_hi}, "
-                            f"id {i_lo}..{i_hi}, t {t_lo}..{t_hi}; its readings give {tuple(row)}")
+                            f"id {i_lo}..{i_hi}, t {t_lo}..{t_hi}; its readings give {row}")
     overlap = conn.execute("select count(*) from reading_spans a join reading_spans b on a.session_id = b.session_id "
                            "and a.boot = b.boot and a.id < b.id and a.id_lo <= b.id_hi and b.id_lo <= a.id_hi"
                            ).fetchone()[0]
