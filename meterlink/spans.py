@@ -18,7 +18,7 @@ so row queries always filter on session_id too. ``check`` verifies the invariant
 from __future__ import annotations
 
 import sqlite3
-from typing import Iterable, Sequence
+from typing import Callable, Iterable, Sequence
 
 import numpy as np
 
@@ -273,16 +273,22 @@ def _measure(conn: sqlite3.Connection, session_id: int, boot: int, id_lo: int, i
                               (id_lo, id_hi, session_id, boot)).fetchone())
 
 
-def check(conn: sqlite3.Connection) -> list[str]:
-    """Problems with the span invariants (empty when the index is sound); reads every reading."""
+def check(conn: sqlite3.Connection, progress: Callable[[int, int], None] | None = None) -> list[str]:
+    """Problems with the span invariants (empty when the index is sound); reads every reading.
+
+    progress, if given, is called as progress(spans_done, spans_total) along the way.
+    """
     problems = []
     counted = dict(conn.execute("select session_id, count(*) from readings group by session_id").fetchall())
     in_spans = dict(conn.execute("select session_id, sum(n) from reading_spans group by session_id").fetchall())
     for sid in sorted(set(counted) | set(in_spans)):
         if counted.get(sid, 0) != in_spans.get(sid, 0):
             problems.append(f"session {sid}: {counted.get(sid, 0)} readings stored, {in_spans.get(sid, 0)} in spans")
-    for span_id, sid, boot, s_lo, s_hi, i_lo, i_hi, t_lo, t_hi, n in conn.execute(
-            "select id, session_id, boot, seq_lo, seq_hi, id_lo, id_hi, t_lo, t_hi, n from reading_spans").fetchall():
+    all_spans = conn.execute("select id, session_id, boot, seq_lo, seq_hi, id_lo, id_hi, t_lo, t_hi, n "
+                             "from reading_spans").fetchall()
+    for k, (span_id, sid, boot, s_lo, s_hi, i_lo, i_hi, t_lo, t_hi, n) in enumerate(all_spans):
+        if progress is not None and k % 64 == 0:
+            progress(k, len(all_spans))
         row = _measure(conn, sid, boot, i_lo, i_hi)
         if row != (n, s_lo, s_hi, i_lo, i_hi, t_lo, t_hi):
             problems.append(f"span {span_id} (session {sid}, boot {boot}) says n={n}, seq {s_lo}..{s_hi}, "

@@ -16,7 +16,7 @@ import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Mapping
+from typing import Any, Callable, Iterable, Mapping
 
 import numpy as np
 import sqlite_utils
@@ -393,12 +393,23 @@ class Store:
             return int(self.db.execute(f"select count(*) from {table} where session_id = ?", [session_id]).fetchone()[0])
 
 
-    def verify(self) -> list[str]:
-        """Problems found by SQLite's integrity check and the span index check (empty: sound)."""
+    def verify(self, progress: Callable[[str, int, int], None] | None = None) -> list[str]:
+        """Problems found by SQLite's integrity check and the span index check (empty: sound).
+
+        progress, if given, is called as progress(stage, done, total); both stages read the whole file.
+        """
         with self._lock:
+            if progress:
+                progress("SQLite integrity check", 0, 1)
             rows = [r[0] for r in self.db.execute("PRAGMA integrity_check").fetchall()]
             problems = [] if rows == ["ok"] else [f"sqlite: {r}" for r in rows]
-            return problems + spans.check(self.db.conn)
+            if progress:
+                progress("SQLite integrity check", 1, 1)
+            step = (lambda d, t: progress("span index", d, t)) if progress else None
+            problems += spans.check(self.db.conn, step)
+            if progress:
+                progress("span index", 1, 1)
+            return problems
 
     def session_overview(self) -> list[dict]:
         """One row per session with its device, span and counts of readings, spectra, events by

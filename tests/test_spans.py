@@ -148,3 +148,15 @@ def test_a_late_lower_batch_then_new_readings_keep_spans_disjoint(tmp_path):
         assert spans.check(store.db.conn) == []
         thin_readings(store, sid, T0 + 10.2, 100)  # deletes seq 0..4 and 100..101
         assert spans.check(store.db.conn) == [] and store.count("readings", sid) == 8
+
+
+def test_verify_reports_progress_through_both_stages(tmp_path):
+    with Store(tmp_path / "p.db") as store:
+        sid = store.begin_session("record")
+        for k in range(100):  # two boots alternating: two spans, each grown fifty times
+            store.add_readings(sid, [row(k % 2 + 1, k)])
+        calls = []
+        assert store.verify(lambda stage, done, total: calls.append((stage, done, total))) == []
+    stages = [c[0] for c in calls]
+    assert stages[0] == "SQLite integrity check" and stages[-1] == "span index"
+    assert calls[-1][1:] == (1, 1) and any(c[0] == "span index" and c[2] > 1 for c in calls)

@@ -44,7 +44,17 @@ def run(args) -> int:
 
 
 def _verify(store, args) -> int:
-    problems = store.verify()
+    if args.json:
+        problems = store.verify()
+    else:  # both checks read the whole file: on a station's year that takes a while
+        from rich.progress import Progress
+
+        with Progress(transient=True) as prog:
+            task = prog.add_task("checking", total=1)
+
+            def step(stage, done, total):
+                prog.update(task, description=stage, completed=done, total=max(total, 1))
+            problems = store.verify(step)
     if args.json:
         print(json.dumps({"database": str(store.path), "sound": not problems, "problems": problems}, indent=2))
     else:
