@@ -7,15 +7,25 @@ span of the readings stored, not host time. A host-time safety timeout bounds th
 
 from __future__ import annotations
 
+import sqlite3
 import threading
 import time
 from collections import Counter
 from dataclasses import dataclass, field
 from typing import Callable
 
+from meterlink.errors import MeterlinkError
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
-from meterlink.storage import BatchWriter, Store
+from meterlink.storage import BatchWriter, Store, epoch_row
 from meterlink.transport import Link
+
+
+class NoMeterError(MeterlinkError):
+    """No meter completed the handshake on the port: nothing was recorded."""
+
+
+class NotStoringError(MeterlinkError):
+    """The database could not be written (a full disk): the recording stopped with what was stored kept."""
 
 
 @dataclass(frozen=True)
@@ -43,10 +53,10 @@ class RecordSummary:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
 
 
-def reading_row(r: Reading) -> dict:
+def reading_row(r: Reading, epoch: int = 0) -> dict:
     a = r.axes
     return {"boot": r.boot, "seq": r.seq, "tick_ms": r.tick_ms, "t_utc": r.t_utc, "raw_x": a.x, "raw_y": a.y,
-            "raw_z": a.z, "flags": a.flags, "range_index": a.range_index}
+            "raw_z": a.z, "flags": a.flags, "range_index": a.range_index, "epoch": epoch}
 
 
 def status_row(s: StatusReport) -> dict:
@@ -56,9 +66,9 @@ def status_row(s: StatusReport) -> dict:
             "temperature_degc": st.temp_centi_c / 100.0, "flags": st.flags, "interval_ms": st.interval_ms}
 
 
-def spectrum_row(s: SpectrumReading) -> dict:
+def spectrum_row(s: SpectrumReading, epoch: int = 0) -> dict:
     sp = s.spectrum
-    return {"boot": s.boot, "seq": s.seq, "tick_ms": s.tick_ms, "t_utc": s.t_utc, "orientation": sp.orientation,
+    return {"boot": s.boot, "seq": s.seq, "tick_ms": s.tick_ms, "t_utc": s.t_utc, "epoch": epoch, "orientation": sp.orientation,
             "sweep": sp.sweep, "lines": [(khz * 1000.0, centi / 100.0) for khz, centi in sp.pairs]}
 
 
@@ -69,7 +79,7 @@ class Recorder:
                  host_timeout_s: float | None = None, kind: str = "record", freq_hz: float | None = None,
                  band_hz: tuple[float, float] | None = None, notes: str = "",
                  link_factory: Callable[[], Link] | None = None, on_item: Callable[[object], None] | None = None,
-                 **link_options):
+                 store_retry_s: float = 10.0, **link_options):
         self.store, self.port = store, port
         self.duration_s = duration_s
         if host_timeout_s is None and duration_s is not None:
@@ -86,17 +96,27 @@ class Recorder:
         self._t_last: float | None = None
         self._counts = Counter()
         self._ratio: float | None = None
+        self._epoch = 0
+        self.store_retry_s = store_retry_s
+        self.not_stored = 0                   # readings received that could not be stored (a full disk)
+        self.session_left_open = False
 
     def stop(self) -> None:
         self.stop_event.set()
 
     def run(self) -> RecordSummary:
-        """Open the port (LinkError if it cannot), record, and return the summary."""
+        """Open the port (LinkError if it cannot), record, and return the summary.
+
+        NoMeterError if no meter ever completed the handshake (the empty session is removed);
+        NotStoringError if the database could not be written for store_retry_s (what was stored is
+        kept, the session closed, the readings that could not be stored counted in the message).
+        """
         self.link.start(require_open=True)
         self.session_id = self.store.begin_session(**self.session_args)
         writer = BatchWriter(self.store, self.session_id)
         t0 = time.monotonic()
         reason = "stopped"
+        failing_since: float | None = None
         try:
             while True:
                 if self.stop_event.is_set():
@@ -113,19 +133,65 @@ class Recorder:
                         break
                 else:
                     self._consume(item, writer)
+                    if self._ident is None and isinstance(item, LinkEvent) and item.kind == "port_lost":
+                        reason = "no meter"      # the first handshake failed: nobody answers on this port
+                        self._no_meter = item.message
+                        break
                     if self._span_reached():
                         reason = "duration reached"
                         break
-                writer.flush_if_due()
+                try:
+                    if writer.failures == 0 or writer.due():
+                        writer.flush_if_due()
+                    failing_since = None
+                except sqlite3.DatabaseError:
+                    failing_since = failing_since or time.monotonic()
+                    if time.monotonic() - failing_since >= self.store_retry_s:
+                        reason = "database not writable"
+                        break
         except KeyboardInterrupt:
             reason = "interrupted"
         finally:
             self.link.stop()
             while (item := self.link.get(0.0)) is not None:  # never drop what was acquired
                 self._consume(item, writer)
-            writer.close()
-            self.store.end_session(self.session_id, clock_rate_ratio=self._ratio)
+            self._finish(writer, reason)
         return self._summary(reason, time.monotonic() - t0)
+
+    def _finish(self, writer: BatchWriter, reason: str) -> None:
+        """Store what is left and close the session; remove it if no meter ever answered."""
+        sid = self.session_id
+        if self._ident is None:  # no handshake: nothing was recorded, so no session is left behind
+            writer.take()
+            with self.store.write() as conn:
+                conn.execute("delete from epochs where session_id = ?", (sid,))
+                conn.execute("delete from events where session_id = ?", (sid,))
+                conn.execute("delete from sessions where id = ?", (sid,))
+            raise NoMeterError(f"no meter answered on {self.port}: {getattr(self, '_no_meter', '') or reason}")
+        error = None
+        for attempt in range(3):
+            try:
+                writer.flush()
+                break
+            except sqlite3.DatabaseError as exc:
+                error = exc
+                time.sleep(0.2 * (attempt + 1))  # a lock held by another writer may clear; a full disk will not
+        else:
+            # the last batch cannot be stored: say exactly what is lost, and still close the session
+            lost = writer.take()
+            self.not_stored = len(lost["readings"])
+        try:
+            self.store.end_session(sid, clock_rate_ratio=self._ratio)
+        except sqlite3.DatabaseError as exc:
+            error = error or exc
+            self.session_left_open = True
+        if reason == "database not writable" or self.not_stored:
+            stored = self.store.count("readings", sid)
+            raise NotStoringError(
+                f"database {str(self.store.path)!r} cannot be written ({error or writer.last_error}): recording "
+                f"stopped; session {sid} keeps the {stored} reading(s) stored, {self.not_stored} reading(s) "
+                f"received since could not be stored" + ("; the session could not be closed"
+                                                          if self.session_left_open else ""))
 
     def _span_reached(self) -> bool:
         if self.duration_s is None or self._t_first is None or self._t_last is None:
@@ -134,11 +200,11 @@ class Recorder:
 
     def _consume(self, item, writer: BatchWriter) -> None:
         if isinstance(item, Reading):
-            writer.add_reading(reading_row(item))
+            writer.add_reading(reading_row(item, self._epoch))
             self._counts["readings"] += 1
             self._span(item.t_utc)
         elif isinstance(item, SpectrumReading):
-            writer.add_spectrum(spectrum_row(item))
+            writer.add_spectrum(spectrum_row(item, self._epoch))
             self._counts["spectra"] += 1
             self._span(item.t_utc)
         elif isinstance(item, StatusReport):
@@ -158,13 +224,26 @@ class Recorder:
         self._t_last = t if self._t_last is None else max(self._t_last, t)
 
     def _on_connected(self, c: Connected, writer: BatchWriter) -> None:
-        writer.flush()
+        """A handshake: a new epoch, so that a meter reusing a boot count is never taken for stored readings."""
+        try:
+            writer.flush()
+        except sqlite3.DatabaseError:
+            pass  # kept in the writer; the loop sees its failures
         i = c.ident
         self._ident = i
-        dev = self.store.device_id(i.model, i.serial, i.probe_serial, i.cert_ref, i.sensor_kind,
-                                   f"{i.fw_major}.{i.fw_minor}.{i.fw_patch}", f"{i.proto_major}.{i.proto_minor}")
-        self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
-                                  clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
+        try:
+            dev = self.store.device_id(i.model, i.serial, i.probe_serial, i.cert_ref, i.sensor_kind,
+                                       f"{i.fw_major}.{i.fw_minor}.{i.fw_patch}", f"{i.proto_major}.{i.proto_minor}")
+        except sqlite3.DatabaseError:
+            dev = None  # a full disk: the readings still get their epoch; the loop stops on the write failures
+        row = epoch_row(self.session_id, c.boot, "handshake", dev)
+        self._epoch = row["id"]
+        writer.add_epoch(row)
+        try:
+            self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
+                                      clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
+        except sqlite3.DatabaseError:
+            pass
 
     def _summary(self, reason: str, host_s: float) -> RecordSummary:
         sid = self.session_id

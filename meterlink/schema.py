@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -122,7 +122,24 @@ def _schema_v3_spans(db: sqlite_utils.Database) -> None:
     spans.create(db.conn)
 
 
+def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
+    """Epochs: one per connection to a device, so that a meter reusing a boot count (a reflash, a
+    replacement unit, a wrapped count, a restarted simulator) is never taken for readings already stored.
+
+    Readings, spans and spectra gain ``epoch`` (0 for rows stored before); repeats are looked for within
+    (session, boot, epoch, seq). No existing row is rewritten: ADD COLUMN with a default is O(1).
+    """
+    db.execute("CREATE TABLE epochs (id INTEGER PRIMARY KEY, session_id INTEGER NOT NULL REFERENCES sessions(id), "
+               "boot INTEGER, started_utc REAL NOT NULL, reason TEXT NOT NULL, device_id INTEGER "
+               "REFERENCES devices(id))")
+    db.execute("CREATE INDEX epochs_session ON epochs (session_id)")
+    spans.add_epochs(db.conn)
+    db.execute("ALTER TABLE spectra ADD COLUMN epoch INTEGER NOT NULL DEFAULT 0")
+    db.execute("DROP INDEX IF EXISTS idx_spectra_session_id_boot_seq")
+    db.execute("CREATE UNIQUE INDEX spectra_key ON spectra (session_id, boot, epoch, seq)")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
-                                                                   3: _schema_v3_spans}
+                                                                   3: _schema_v3_spans, 4: _schema_v4_epochs}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

@@ -27,6 +27,7 @@ from meterlink.schema import _SLOW_MIGRATIONS, APP_ID, MIGRATIONS, SCHEMA_VERSIO
 
 SEVERITIES = ("info", "warning", "error")
 READING_COLUMNS = ("boot", "seq", "tick_ms", "t_utc", "raw_x", "raw_y", "raw_z", "flags", "range_index")
+# a reading row may carry "epoch" too (meterlink.spans: one per connection to a device); absent, it is 0
 
 
 class StorageError(MeterlinkError):
@@ -179,6 +180,24 @@ class Store:
         with self.write():
             self.db["sessions"].update(session_id, fields)
 
+    def new_epoch(self, session_id: int, boot: int | None, reason: str, device_id: int | None = None,
+                  started_utc: float | None = None) -> int:
+        """Open an epoch of a session (one connection to a device) now and return its number.
+
+        Readings are told apart by (session, boot, epoch, seq): a device that reuses a boot count it
+        used before (a reflash, a replacement, a wrapped count) starts a new epoch and so never
+        collides with readings already stored. A writer that batches uses epoch_row() instead.
+        """
+        row = epoch_row(session_id, boot, reason, device_id, started_utc)
+        with self.write() as conn:
+            self._insert_epochs(conn, [row])
+        return row["id"]
+
+    @staticmethod
+    def _insert_epochs(conn: sqlite3.Connection, rows: list) -> None:
+        conn.executemany("insert or ignore into epochs (id, session_id, boot, started_utc, reason, device_id) "
+                         "values (:id, :session_id, :boot, :started_utc, :reason, :device_id)", rows)
+
     def end_session(self, session_id: int, ended_utc: float | None = None, **fields: Any) -> None:
         self.update_session(session_id, ended_utc=time.time() if ended_utc is None else ended_utc, **fields)
 
@@ -240,11 +259,17 @@ class Store:
         self.write_batch(session_id, events=[event_row(kind, severity, message, t_utc, **detail)])
 
     def write_batch(self, session_id: int | None, readings: Iterable[Mapping] = (), statuses: Iterable[Mapping] = (),
-                    spectra: Iterable[Mapping] = (), events: Iterable[Mapping] = ()) -> int:
-        """Write everything in one transaction; a bad row becomes an event instead. Returns new readings."""
+                    spectra: Iterable[Mapping] = (), events: Iterable[Mapping] = (), epochs: Iterable[Mapping] = ()) -> int:
+        """Write everything in one transaction; a bad row becomes an event instead. Returns new readings.
+
+        A full disk or an I/O error raises (sqlite3.OperationalError) with nothing of the batch stored,
+        so the caller can keep it and try again.
+        """
         readings, statuses, spectra, events = list(readings), list(statuses), list(spectra), list(events)
         bad: list[dict] = []
         with self._lock, self._session_tx(session_id) as conn:
+            if epochs:
+                self._insert_epochs(conn, list(epochs))
             new = self._insert_readings(conn, session_id, readings, bad)
             for st in statuses:
                 try:
@@ -252,29 +277,37 @@ class Store:
                                  "battery_pct, temperature_degc, flags, interval_ms) values (?,?,?,?,?,?,?,?,?,?)",
                                  (session_id, st["boot"], st["seq"], st["tick_ms"], st["t_utc"], st["battery_mv"],
                                   st.get("battery_pct"), st["temperature_degc"], st["flags"], st["interval_ms"]))
-                except (KeyError, TypeError, sqlite3.Error) as exc:
+                except (KeyError, TypeError, sqlite3.IntegrityError, sqlite3.InterfaceError, sqlite3.ProgrammingError,
+                        sqlite3.DataError) as exc:  # a full disk is the caller's to handle (keep the batch)
                     bad.append(event_row("bad_row", "error", f"status row not stored: {exc}", table="status"))
             for sp in spectra:
                 self._insert_spectrum(conn, session_id, sp, bad)
             self._insert_events(conn, session_id, events + bad)
         return new
 
-    def add_reading_arrays(self, session_id: int, boot, seq, tick_ms, t_utc, raw, flags, range_index) -> int:
+    def add_reading_arrays(self, session_id: int, boot, seq, tick_ms, t_utc, raw, flags, range_index,
+                           epoch=0) -> int:
         """Insert readings given as arrays (raw is (N, 3)) in one transaction; returns rows actually new.
 
-        Same rules as write_batch: a reading already stored (session, boot, seq) is skipped and
-        reported as one duplicate_reading event.
+        Same rules as write_batch: a reading already stored (session, boot, epoch, seq) with the same
+        content is skipped and reported as one duplicate_reading event.
         """
         raw = np.asarray(raw).reshape(-1, 3)
         n = raw.shape[0]
-        values = [session_id, boot, seq, tick_ms, t_utc, raw[:, 0], raw[:, 1], raw[:, 2], flags, range_index]
-        if all(np.asarray(c).dtype.kind in kinds for c, kinds in ((boot, "iu"), (seq, "iu"), (t_utc, "iuf"))):
+        values = [session_id, boot, seq, tick_ms, t_utc, raw[:, 0], raw[:, 1], raw[:, 2], flags, range_index, epoch]
+        if all(np.asarray(c).dtype.kind in kinds for c, kinds in ((boot, "iu"), (seq, "iu"), (t_utc, "iuf"),
+                                                                 (epoch, "iu"), (tick_ms, "iu"), (raw, "iu"),
+                                                                 (flags, "iu"), (range_index, "iu"))):
             keys = tuple(np.broadcast_to(np.asarray(c, dt), (n,)) for c, dt in
-                         ((boot, np.int64), (seq, np.int64), (t_utc, float)))
+                         ((boot, np.int64), (seq, np.int64), (t_utc, float), (epoch, np.int64)))
+            content = np.empty((n, 6), np.int64)
+            for j, c in enumerate((tick_ms, raw[:, 0], raw[:, 1], raw[:, 2], flags, range_index)):
+                content[:, j] = np.broadcast_to(np.asarray(c, np.int64), (n,))
+            keys = (*keys, content)
             # an integer common to every row (session, boot, flags, ...) goes into the statement as
             # a literal: fewer values to bind per row, the same rows stored
             names, marks, cols = [], [], []
-            for name, v in zip(("session_id",) + READING_COLUMNS, values):
+            for name, v in zip(("session_id",) + READING_COLUMNS + ("epoch",), values):
                 a = np.asarray(v)
                 names.append(name)
                 if a.ndim == 1 and a.size > 1 and a.dtype.kind in "iu" and a[0] == a[-1] and np.all(a == a[0]):
@@ -300,13 +333,13 @@ class Store:
         if not rows:
             return 0
         try:
-            tuples = [(session_id, *(r[c] for c in READING_COLUMNS)) for r in rows]
-        except (KeyError, TypeError):
+            tuples = [(session_id, *(r[c] for c in READING_COLUMNS), r.get("epoch", 0)) for r in rows]
+        except (KeyError, TypeError, AttributeError):
             tuples = []  # find the bad rows one by one; the good ones still go in
             for r in rows:
                 try:
-                    tuples.append((session_id, *(r[c] for c in READING_COLUMNS)))
-                except (KeyError, TypeError) as exc:
+                    tuples.append((session_id, *(r[c] for c in READING_COLUMNS), r.get("epoch", 0)))
+                except (KeyError, TypeError, AttributeError) as exc:
                     bad.append(event_row("bad_row", "error", f"reading not stored: {exc}", table="readings",
                                          seq=r.get("seq") if isinstance(r, Mapping) else None))
         return self._insert_tuples(conn, session_id, tuples, bad)
@@ -321,13 +354,16 @@ class Store:
             bad.append(event_row("bad_row", "error", f"{len(tuples)} reading(s) not stored: no session",
                                  table="readings"))
             return 0
-        new, dup, refused = spans.insert(conn, session_id, tuples, keys, sql)
+        new, dup, refused, reused = spans.insert(conn, session_id, tuples, keys, sql)
         for i, why in refused:
             seq = int(keys[1][i]) if keys is not None else (tuples[i][2] if len(tuples[i]) > 2 else None)
             bad.append(event_row("bad_row", "error", f"reading not stored: {why}", table="readings",
                                  seq=seq if isinstance(seq, int) else repr(seq)))
         if dup > 0:
             bad.append(event_row("duplicate_reading", "info", f"{dup} reading(s) already stored, ignored", count=dup))
+        if reused > 0:
+            bad.append(event_row("seq_reused", "warning", f"{reused} reading(s) stored whose boot and sequence "
+                                 "number were already taken by a reading of different content", count=reused))
         return new
 
     @staticmethod
@@ -340,15 +376,17 @@ class Store:
     def _insert_spectrum(self, conn: sqlite3.Connection, session_id, sp: Mapping, bad: list) -> None:
         try:
             cur = conn.execute("insert or ignore into spectra (session_id, boot, seq, tick_ms, t_utc, orientation, "
-                               "sweep) values (?,?,?,?,?,?,?)", (session_id, sp["boot"], sp["seq"], sp["tick_ms"],
-                                                                 sp["t_utc"], sp["orientation"], sp["sweep"]))
+                               "sweep, epoch) values (?,?,?,?,?,?,?,?)",
+                               (session_id, sp["boot"], sp["seq"], sp["tick_ms"], sp["t_utc"], sp["orientation"],
+                                sp["sweep"], sp.get("epoch", 0)))
             if cur.rowcount != 1:
                 bad.append(event_row("duplicate_reading", "info", "spectrum already stored, ignored", count=1))
                 return
             sid = cur.lastrowid
             conn.executemany("insert into spectrum_lines (spectrum_id, freq_hz, level_dbuv) values (?,?,?)",
                              [(sid, float(f), float(lv)) for f, lv in sp["lines"]])
-        except (KeyError, TypeError, ValueError, sqlite3.Error) as exc:
+        except (KeyError, TypeError, ValueError, AttributeError, sqlite3.IntegrityError, sqlite3.InterfaceError,
+                sqlite3.ProgrammingError, sqlite3.DataError) as exc:  # a full disk is the caller's to handle
             bad.append(event_row("bad_row", "error", f"spectrum not stored: {exc}", table="spectra"))
 
     # -- queries -------------------------------------------------------------------------------
@@ -523,6 +561,23 @@ class _LazyRows:
         return tuple(c[i] if isinstance(c, list) else c for c in self.cols)
 
 
+_epoch_lock = threading.Lock()
+_last_epoch = 0
+
+
+def epoch_row(session_id: int, boot: int | None, reason: str, device_id: int | None = None,
+              started_utc: float | None = None) -> dict:
+    """A new epoch as a row dict; its number (``id``) is the host's UTC in microseconds, bumped to stay
+    strictly rising in this process, so it is unique without asking the database (a full disk
+    cannot stop a new epoch from being told apart; the row is stored with the next batch)."""
+    global _last_epoch
+    with _epoch_lock:
+        _last_epoch = max(time.time_ns() // 1000, _last_epoch + 1)
+        eid = _last_epoch
+    return {"id": eid, "session_id": session_id, "boot": boot, "reason": reason, "device_id": device_id,
+            "started_utc": time.time() if started_utc is None else float(started_utc)}
+
+
 def event_row(kind: str, severity: str, message: str, t_utc: float | None = None, **detail: Any) -> dict:
     """An event as a row dict; severity is info, warning or error; detail is stored as JSON."""
     if severity not in SEVERITIES:
@@ -533,15 +588,28 @@ def event_row(kind: str, severity: str, message: str, t_utc: float | None = None
 
 
 class BatchWriter:
-    """Buffers rows for one session and commits them by size or at most max_age_s after the first."""
+    """Buffers rows for one session and commits them by size or at most max_age_s after the first.
 
-    def __init__(self, store: Store, session_id: int, max_rows: int = 500, max_age_s: float = 1.0):
+    A batch leaves the buffer only once it is stored: a commit that fails (a full disk, an I/O
+    error) puts it back, and the next flush tries again. So that memory stays bounded while the
+    file cannot be written, at most max_keep readings are kept; beyond that the oldest are dropped
+    and the drop is itself kept as an event with the exact count and sequence ranges.
+    """
+
+    KINDS = ("readings", "statuses", "spectra", "events", "epochs")
+
+    def __init__(self, store: Store, session_id: int, max_rows: int = 500, max_age_s: float = 1.0,
+                 max_keep: int = 2_000_000):
         self.store, self.session_id = store, session_id
-        self.max_rows, self.max_age_s = max_rows, max_age_s
+        self.max_rows, self.max_age_s, self.max_keep = max_rows, max_age_s, max_keep
         self._lock = threading.Lock()
-        self._buf: dict[str, list] = {"readings": [], "statuses": [], "spectra": [], "events": []}
+        self._flush_lock = threading.Lock()
+        self._buf: dict[str, list] = {k: [] for k in self.KINDS}
         self._first: float | None = None
         self.new_readings = 0
+        self.failures = 0                  # commits failed in a row (0: the last one worked)
+        self.last_error: str | None = None
+        self.dropped = 0                   # readings dropped because max_keep was reached (each in an event)
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
 
@@ -551,8 +619,11 @@ class BatchWriter:
             if self._first is None:
                 self._first = time.monotonic()
             n = sum(len(v) for v in self._buf.values())
-        if n >= self.max_rows:
-            self.flush()
+        if n >= self.max_rows and not self.failures:
+            try:
+                self.flush()
+            except (sqlite3.DatabaseError, StorageError):
+                pass  # kept in the buffer; the owner sees failures and last_error
 
     def add_reading(self, row: Mapping) -> None:
         self._add("readings", row)
@@ -563,8 +634,16 @@ class BatchWriter:
     def add_spectrum(self, row: Mapping) -> None:
         self._add("spectra", row)
 
+    def add_epoch(self, row: Mapping) -> None:
+        self._add("epochs", row)
+
     def add_event(self, kind: str, severity: str, message: str, t_utc: float | None = None, **detail: Any) -> None:
         self._add("events", event_row(kind, severity, message, t_utc, **detail))
+
+    @property
+    def pending_readings(self) -> int:
+        with self._lock:
+            return len(self._buf["readings"])
 
     def due(self) -> bool:
         with self._lock:
@@ -574,14 +653,57 @@ class BatchWriter:
         if self.due():
             self.flush()
 
-    def flush(self) -> None:
-        """Commit everything buffered now."""
+    # two phases, for a caller that writes several writers' batches in one transaction of its own
+    def take(self) -> dict[str, list]:
+        """Everything buffered, removed from the buffer: store it with write_taken, or give it back with put_back."""
         with self._lock:
-            buf = self._buf
-            self._buf = {k: [] for k in buf}
+            buf, self._buf = self._buf, {k: [] for k in self.KINDS}
             self._first = None
+        return buf
+
+    def write_taken(self, buf: dict[str, list]) -> None:
         if any(buf.values()):
             self.new_readings += self.store.write_batch(self.session_id, **buf)
+
+    def put_back(self, buf: dict[str, list], error: BaseException | None = None) -> None:
+        """A taken batch that was not stored goes back in front of what came since (order kept)."""
+        with self._lock:
+            for k in self.KINDS:
+                self._buf[k] = buf[k] + self._buf[k]
+            if any(self._buf.values()):
+                self._first = time.monotonic()
+            if error is not None:
+                self.failures += 1
+                self.last_error = f"{type(error).__name__}: {error}"
+            self._bound()
+
+    def stored(self) -> None:
+        """The caller's transaction holding the taken batch committed."""
+        self.failures, self.last_error = 0, None
+
+    def _bound(self) -> None:
+        """Keep at most max_keep readings; an overflow drops the oldest, recorded as an event (lock held)."""
+        rows = self._buf["readings"]
+        extra = len(rows) - self.max_keep
+        if extra <= 0:
+            return
+        gone, self._buf["readings"] = rows[:extra], rows[extra:]
+        self.dropped += extra
+        self._buf["events"].append(event_row(
+            "readings_dropped", "error", f"{extra} reading(s) dropped: the database could not be written "
+            f"({self.last_error}) and at most {self.max_keep} are kept in memory", count=extra,
+            reason="not_storing", ranges=seq_ranges(gone)))
+
+    def flush(self) -> None:
+        """Commit everything buffered now; on failure the batch is kept and the error raised."""
+        with self._flush_lock:
+            buf = self.take()
+            try:
+                self.write_taken(buf)
+            except (sqlite3.OperationalError, sqlite3.DatabaseError, StorageError) as exc:
+                self.put_back(buf, exc)
+                raise
+            self.stored()
 
     def start(self) -> "BatchWriter":
         """Flush on a background thread every max_age_s / 4 (optional: a loop may call flush_if_due)."""
@@ -591,10 +713,31 @@ class BatchWriter:
 
     def _run(self) -> None:
         while not self._stop.wait(self.max_age_s / 4):
-            self.flush_if_due()
+            try:
+                self.flush_if_due()
+            except (sqlite3.DatabaseError, StorageError):
+                pass  # kept in the buffer; the owner sees failures and last_error
 
     def close(self) -> None:
         self._stop.set()
         if self._thread is not None:
             self._thread.join()
         self.flush()
+
+
+def seq_ranges(rows: list, limit: int = 50) -> list[list[int]]:
+    """[[boot, epoch, first_seq, last_seq], ...] of consecutive runs in reading rows (at most ``limit``, the
+    rest merged into the last), so that a drop names exactly which readings went."""
+    out: list[list[int]] = []
+    for r in rows:
+        try:
+            b, e, q = int(r["boot"]), int(r.get("epoch", 0)), int(r["seq"])
+        except (KeyError, TypeError, ValueError, AttributeError):
+            continue
+        if out and out[-1][0] == b and out[-1][1] == e and out[-1][3] + 1 == q:
+            out[-1][3] = q
+        elif len(out) >= limit and out[-1][0] == b and out[-1][1] == e:
+            out[-1][3] = max(out[-1][3], q)
+        else:
+            out.append([b, e, q, q])
+    return out

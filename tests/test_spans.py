@@ -9,7 +9,7 @@ from hypothesis import HealthCheck, given, settings, strategies as st
 
 from meterlink import spans
 from meterlink.monitor import thin_readings
-from meterlink.storage import MIGRATIONS, READING_COLUMNS, Store
+from meterlink.storage import MIGRATIONS, READING_COLUMNS, SCHEMA_VERSION, Store
 
 T0 = 1_800_000_000.0
 
@@ -96,7 +96,7 @@ def test_a_version_2_file_is_migrated_to_spans_with_nothing_lost(tmp_path, capsy
     db.conn.close()
     with Store(path) as store:
         assert "upgrading" in capsys.readouterr().err  # a long pause on a big file is explained
-        assert store.schema_version == 3 and store.db["readings"].indexes == []
+        assert store.schema_version == SCHEMA_VERSION and store.db["readings"].indexes == []
         assert spans.check(store.db.conn) == []
         assert store.count("readings", 1) == sum(r[0] == 1 for r in rows)
         r2 = store.readings(2, T0 + 100, T0 + 200)

@@ -54,16 +54,56 @@ def test_time_range_queries_use_the_span_index_then_a_rowid_range(store):
 def test_batch_insert_and_unique_protection(store):
     sid = store.begin_session("record", port="loop://")
     assert store.add_readings(sid, [reading(i) for i in range(100)]) == 100
-    assert store.add_readings(sid, [reading(i, x=999) for i in range(90, 110)]) == 10
+    assert store.add_readings(sid, [reading(i) for i in range(90, 110)]) == 10
     r = store.readings(sid)
     assert len(r) == 110 and np.array_equal(r.seq, np.arange(110))
-    assert r.raw[95, 0] == 95  # the first copy was kept, the duplicate ignored
     dup = store.events(sid, kind="duplicate_reading")
     assert len(dup) == 1 and dup[0]["detail"]["count"] == 10
     # the same seq after a device restart (another boot) is a new reading
     assert store.add_reading(sid, reading(5, boot=2)) == 1
     assert store.add_readings(sid, [reading(5, boot=2), reading(6, boot=2)]) == 1
     assert store.count("readings", sid) == 112 and spans.check(store.db.conn) == []
+
+
+def test_a_duplicate_is_the_same_reading_not_just_the_same_key(store):
+    """A reading that shares (boot, seq) with a stored one but differs in content is another reading
+    (an undetected restart): it is kept and reported, never dropped as "already stored"."""
+    sid = store.begin_session("record", port="loop://")
+    assert store.add_readings(sid, [reading(i) for i in range(100)]) == 100
+    assert store.add_readings(sid, [reading(i, x=999) for i in range(90, 110)]) == 20
+    assert store.add_readings(sid, [reading(95, x=999), reading(96, x=999)]) == 0  # now true repeats
+    r = store.readings(sid)
+    assert len(r) == 120 and sorted(r.raw[r.seq == 95, 0].tolist()) == [95, 999]
+    reused = store.events(sid, kind="seq_reused")
+    assert len(reused) == 1 and reused[0]["detail"]["count"] == 10 and reused[0]["severity"] == "warning"
+    assert sum(e["detail"]["count"] for e in store.events(sid, kind="duplicate_reading")) == 2
+    # within one batch too: the second copy with other content is kept, an exact copy is not
+    b = [reading(500), reading(500, x=7), reading(500)]
+    assert store.add_readings(sid, b) == 2
+    assert spans.check(store.db.conn) == []
+
+
+def test_epochs_keep_a_reused_boot_count_apart(store):
+    """A meter that comes back with a boot count it used before (a reflash, a replacement unit) starts a
+    new epoch: its readings are new even where their content repeats the old ones exactly."""
+    sid = store.begin_session("record", port="loop://")
+    e1, e2 = store.new_epoch(sid, 1, "handshake"), store.new_epoch(sid, 1, "handshake")
+    assert store.db.execute("select count(*) from epochs where session_id = ?", [sid]).fetchone()[0] == 2
+    assert e2 > e1
+    assert store.add_readings(sid, [{**reading(i), "epoch": e1} for i in range(50)]) == 50
+    assert store.add_readings(sid, [{**reading(i), "epoch": e2} for i in range(50)]) == 50
+    a = _arrays_of([reading(i) for i in range(40, 60)])
+    assert store.add_reading_arrays(sid, **a, epoch=e2) == 10
+    assert store.count("readings", sid) == 110 and spans.check(store.db.conn) == []
+    n = store.db.execute("select count(*) from reading_spans where session_id = ? and epoch = ?", [sid, e2]).fetchone()
+    assert n[0] >= 1
+
+
+def _arrays_of(rows):
+    return {"boot": np.array([r["boot"] for r in rows]), "seq": np.array([r["seq"] for r in rows]),
+            "tick_ms": np.array([r["tick_ms"] for r in rows]), "t_utc": np.array([r["t_utc"] for r in rows]),
+            "raw": np.array([[r["raw_x"], r["raw_y"], r["raw_z"]] for r in rows]),
+            "flags": np.array([r["flags"] for r in rows]), "range_index": np.array([r["range_index"] for r in rows])}
 
 
 def test_bad_row_becomes_an_event_and_good_rows_are_kept(store):

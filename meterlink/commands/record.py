@@ -83,21 +83,44 @@ def run(args) -> int:
     duration = _positive(args.duration, "--duration") if args.duration is not None else None
     interval = int(_positive(args.interval_ms, "--interval-ms", integer=True))
     freq, band = parse_declared(args.freq, args.band)
+    import signal
     import sys
+    from pathlib import Path
+
+    from meterlink.recorder import NoMeterError
 
     show = not args.json and sys.stderr.isatty()
-    with Store(args.db) as store, _progress(show, duration) as on_item:
-        rec = Recorder(store, args.port, interval_ms=interval, duration_s=duration, freq_hz=freq, band_hz=band,
-                       notes=args.notes, on_item=on_item)
-        summary = rec.run()
-        field, field_error = None, None
-        if summary.readings or summary.spectra:
-            from meterlink.processing import calibrated_series
-
+    db_path = Path(args.db)
+    new_file = not db_path.exists()
+    empty = False
+    try:
+        with Store(args.db) as store, _progress(show, duration) as on_item:
+            rec = Recorder(store, args.port, interval_ms=interval, duration_s=duration, freq_hz=freq, band_hz=band,
+                           notes=args.notes, on_item=on_item)
+            # SIGTERM (a service manager, kill) ends the recording as Ctrl-C does: the last batch is
+            # stored and the session closed, never left open
+            old = {sig: signal.signal(sig, lambda *_: rec.stop()) for sig in (signal.SIGTERM, signal.SIGHUP)}
             try:
-                field = calibrated_series(store, summary.session_id, args.certificate, freq_hz=freq, band=band)
-            except MeterlinkError as exc:     # the raw record is safe; say why no field values
-                field_error = str(exc)
+                summary = rec.run()
+            except NoMeterError:
+                empty = not store.sessions()
+                raise
+            finally:
+                for sig, handler in old.items():
+                    signal.signal(sig, handler)
+            field, field_error = None, None
+            if summary.readings or summary.spectra:
+                from meterlink.processing import calibrated_series
+
+                try:
+                    field = calibrated_series(store, summary.session_id, args.certificate, freq_hz=freq, band=band)
+                except MeterlinkError as exc:     # the raw record is safe; say why no field values
+                    field_error = str(exc)
+    except NoMeterError:
+        if new_file and empty:  # a failed command leaves no empty database behind
+            for suffix in ("", "-wal", "-shm", "-journal"):
+                Path(str(db_path) + suffix).unlink(missing_ok=True)
+        raise
     if args.json:
         out = summary.as_dict()
         out["calibrated"] = _field_dict(field) if field is not None else {"error": field_error}
