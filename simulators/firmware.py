@@ -79,9 +79,10 @@ class Firmware:
         self._reset(0, cause=0, tick_base=start_tick_ms)
 
     # ----------------------------------------------------------------- state
-    def _reset(self, now_ms: int, cause: int, tick_base: int = 0) -> None:
+    def _reset(self, now_ms: int, cause: int, tick_base: int = 0, boot_count: int | None = None) -> None:
         dev = self.sc.device
-        self.boot_count = (self.boot_count + 1) & 0xFFFF
+        # a reflashed or replaced unit may come back with a boot count it used before
+        self.boot_count = (self.boot_count + 1) & 0xFFFF if boot_count is None else int(boot_count) & 0xFFFF
         self.boot_world_ms, self.tick_base, self.seq = now_ms, tick_base, 0
         self.streaming = False
         self.interval_ms = int(dev.get("interval_ms", 1000))
@@ -105,10 +106,11 @@ class Firmware:
         now = self.now_ms if now_ms is None else now_ms
         return (now - self.boot_world_ms + self.tick_base) % U32_MOD
 
-    def restart(self, now_ms: int, cause: int = 3) -> None:
-        """Device reset at device time now_ms: seq and tick back to 0, BOOT, not streaming."""
+    def restart(self, now_ms: int, cause: int = 3, boot_count: int | None = None) -> None:
+        """Device reset at device time now_ms: seq and tick back to 0, BOOT, not streaming; boot_count, if
+        given, is the count the device comes back with (a reused one: a reflash, a wrapped counter)."""
         self._catch_up(now_ms)
-        self._reset(now_ms, cause)
+        self._reset(now_ms, cause, boot_count=boot_count)
 
     # ----------------------------------------------------------------- I/O
     def feed(self, data: bytes) -> None:

@@ -31,7 +31,7 @@ class SimulatedMeter:
     """Run one simulated meter of a scenario on a pty; use as a context manager."""
 
     def __init__(self, scenario="demo", *, sensor="probe", meter=0, seed=0, speed=1.0,
-                 faults=None, quirks=None, truth_path=None, start_tick_ms=0, scene=None):
+                 faults=None, quirks=None, truth_path=None, start_tick_ms=0, scene=None, port_path=None):
         if not speed > 0:
             raise ValueError(f"speed {speed}: must be positive")
         sc = load_scenario(scenario) if isinstance(scenario, str) else scenario
@@ -45,8 +45,10 @@ class SimulatedMeter:
                            quirks=quirks, truth=self._truth, start_tick_ms=start_tick_ms)
         self._disconnects = sorted((float(e["at_s"]) * 1000, float(e.get("down_s", 1.0)))
                                    for e in self.fw.faults["schedule"] if e.get("kind") == "disconnect")
+        # port_path: serve at a path of the caller's (a second simulator behind the same path, as a
+        # replacement unit plugged into the same adapter); the caller's directory is left in place
         self._dir = tempfile.mkdtemp(prefix="meterlink-sim-")
-        self.port = os.path.join(self._dir, f"meter{meter}")
+        self.port = str(port_path) if port_path is not None else os.path.join(self._dir, f"meter{meter}")
         self._lock = threading.Lock()
         self._stop = threading.Event()
         self._master = self._slave = None
@@ -91,10 +93,10 @@ class SimulatedMeter:
             self._unplug()
             self._up_at = time.monotonic() + float(down_s)
 
-    def restart(self) -> None:
-        """Device reset: seq and tick back to 0, BOOT, not streaming."""
+    def restart(self, boot_count: int | None = None) -> None:
+        """Device reset: seq and tick back to 0, BOOT, not streaming; boot_count reuses a count if given."""
         with self._lock:
-            self.fw.restart(self._now_ms())
+            self.fw.restart(self._now_ms(), boot_count=boot_count)
 
     def device_tick_ms(self) -> int:
         """The device's current TICK (ms since its last boot, wrapping at 2^32)."""
