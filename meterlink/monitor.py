@@ -14,6 +14,7 @@ import datetime as _dt
 import json
 import math
 import os
+import sqlite3
 import threading
 import time
 from dataclasses import dataclass, field
@@ -21,13 +22,13 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from meterlink import calibrate, derived, spans
-from meterlink.alarms import AlarmMachine, rule_value, run_command
+from meterlink.alarms import AlarmEvent, AlarmMachine, rule_value, run_command
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
 from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
-from meterlink.storage import BatchWriter, Store, event_row
+from meterlink.storage import BatchWriter, Store, StorageError, epoch_row, event_row
 from meterlink.units import Z0_OHM
 
 SEVERITY_OF = {"warning": "warning", "error": "error"}
@@ -86,7 +87,8 @@ class MeterState:
     session_update: dict = field(default_factory=dict)
     last_t: float | None = None
     last_counts: tuple | None = None
-    boot_map: dict = field(default_factory=dict)     # boot -> (tick0_ms, utc0) when time_scale != 1
+    boot_map: dict = field(default_factory=dict)     # epoch -> (tick0_ms, utc0) when time_scale != 1
+    epoch: int = 0                                   # the current connection's epoch (storage.epoch_row)
     checks: dict = field(default_factory=dict)
     status: dict = field(default_factory=dict)
     link_state: str = "connecting"
@@ -115,17 +117,13 @@ class Monitor:
         self.conn = self.store.db.conn
         with self.store.write():
             derived.ensure_schema(self.conn)
+        self._station_events: list[dict] = []
         self.station_id, prev = self._station_record()
         self.procs: list = []
         self.meters = [self._meter(m) for m in station.meters]
         self._backoff_max_s, self._link_factory = backoff_max_s, link_factory
-        self._station_events: list[dict] = []
-        if prev and prev["state"] == "running":
-            hb = prev["heartbeat_utc"]
-            self._event(None, "unclean_shutdown", "warning", f"previous run (pid {prev['pid']}) ended without a "
-                        f"clean stop; last heartbeat {_iso(hb)}", t=hb, last_heartbeat_utc=hb)
-        self._event(None, "monitor_started", "info", f"monitor of {station.name} started (run {prev['runs'] + 1 if prev else 1})",
-                    pid=os.getpid())
+        # commit failures (a full disk): batches are kept and retried with back-off (see _commit)
+        self._store_fail: dict | None = None     # since_utc, error, attempts, next_mono, delay_s
         self._retention_next = time.monotonic() + 5.0
         self._retention_todo: list = []
         self._day_checked: str | None = None
@@ -138,6 +136,8 @@ class Monitor:
         prev = None
         text = st.path.read_text(encoding="utf-8") if st.path.exists() else ""
         with self.store.write():
+            self.conn.execute("CREATE TABLE IF NOT EXISTS mon_storage (station_id INTEGER PRIMARY KEY, storing INTEGER, "
+                              "since_utc REAL, error TEXT, pending_readings INTEGER, checked_utc REAL)")
             if row is None:
                 self.conn.execute("INSERT INTO mon_station (name, created_utc, runs) VALUES (?,?,0)",
                                   (st.name, time.time()))
@@ -151,7 +151,19 @@ class Monitor:
                 (str(st.path), text, st.standard, st.tier, st.convention, st.block_s, json.dumps(st.windows_s),
                  st.latitude_deg, st.longitude_deg, st.elevation_m, st.timezone, time.time(), time.time(),
                  os.getpid(), st.name))
-        sid = self.conn.execute("SELECT id FROM mon_station WHERE name=?", (st.name,)).fetchone()[0]
+            sid = self.conn.execute("SELECT id FROM mon_station WHERE name=?", (st.name,)).fetchone()[0]
+            self.conn.execute("INSERT OR REPLACE INTO mon_storage VALUES (?, 1, NULL, NULL, 0, ?)", (sid, time.time()))
+            # stored in the same transaction that marks this run as running: a kill at any later moment,
+            # even before the first commit, can no longer lose them
+            rows = []
+            if prev and prev["state"] == "running":
+                hb = prev["heartbeat_utc"]
+                rows.append(self._event_row(None, "unclean_shutdown", "warning", f"previous run (pid {prev['pid']}) "
+                                            f"ended without a clean stop; last heartbeat {_iso(hb)}", t=hb,
+                                            last_heartbeat_utc=hb))
+            rows.append(self._event_row(None, "monitor_started", "info", f"monitor of {st.name} started (run "
+                                        f"{prev['runs'] + 1 if prev else 1})", pid=os.getpid()))
+            Store._insert_events(self.conn, None, rows)
         return sid, prev
 
     def _meter(self, m: MeterConfig) -> MeterState:
@@ -244,14 +256,18 @@ class Monitor:
             return time.time()
         return self._utc0 + (time.monotonic() - self._mono0) * self.time_scale
 
-    def _event(self, ms: MeterState | None, kind: str, severity: str, message: str, t: float | None = None,
-               **detail) -> None:
+    def _event_row(self, ms: MeterState | None, kind: str, severity: str, message: str, t: float | None = None,
+                   **detail) -> dict:
         t = self.now_utc() if t is None else t
         who = f"[{ms.cfg.name}] " if ms else ""
         self.log(f"{_iso(t)} {severity.upper():7s} {who}{kind}: {message}")
         if ms is not None:
             detail.setdefault("meter", ms.cfg.name)
-        row = event_row(kind, severity, message, t, station=self.st.name, **detail)
+        return event_row(kind, severity, message, t, station=self.st.name, **detail)
+
+    def _event(self, ms: MeterState | None, kind: str, severity: str, message: str, t: float | None = None,
+               **detail) -> None:
+        row = self._event_row(ms, kind, severity, message, t, **detail)
         if ms is not None and ms.writer is not None:
             ms.writer._add("events", row)
         else:
@@ -266,9 +282,9 @@ class Monitor:
     def _t_of(self, ms: MeterState, item) -> float:
         if self.time_scale == 1.0:
             return item.t_utc
-        m = ms.boot_map.get(item.boot)
+        m = ms.boot_map.get(ms.epoch)
         if m is None:
-            m = ms.boot_map[item.boot] = (item.tick_ms, self.now_utc())
+            m = ms.boot_map[ms.epoch] = (item.tick_ms, self.now_utc())
         return m[1] + (item.tick_ms - m[0]) / 1000.0
 
     def _handle(self, ms: MeterState, item) -> None:
@@ -277,7 +293,7 @@ class Monitor:
             a = item.axes
             ms.writer._add("readings", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms, "t_utc": t,
                                         "raw_x": a.x, "raw_y": a.y, "raw_z": a.z, "flags": a.flags,
-                                        "range_index": a.range_index})
+                                        "range_index": a.range_index, "epoch": ms.epoch})
             if not ms.pending:
                 ms.pending_mono = time.monotonic()
             ms.pending.append((t, a.x, a.y, a.z))
@@ -286,19 +302,27 @@ class Monitor:
             self._status(ms, item)
         elif isinstance(item, Connected):
             ms.link_state = "streaming"
-            if self.time_scale != 1.0 and item.boot not in ms.boot_map:
-                ms.boot_map[item.boot] = (item.mapping.tick0_ms, self.now_utc())
             ident = item.ident
-            dev = self.store.device_id(ident.model, ident.serial, ident.probe_serial, ident.cert_ref,
-                                       int(ident.sensor_kind), f"{ident.fw_major}.{ident.fw_minor}.{ident.fw_patch}",
-                                       f"{ident.proto_major}.{ident.proto_minor}")
-            ms.session_update = {"device_id": dev, "interval_ms": item.interval_ms, "clock_boot": item.boot,
+            try:
+                dev = self.store.device_id(ident.model, ident.serial, ident.probe_serial, ident.cert_ref,
+                                           int(ident.sensor_kind), f"{ident.fw_major}.{ident.fw_minor}.{ident.fw_patch}",
+                                           f"{ident.proto_major}.{ident.proto_minor}")
+            except (sqlite3.DatabaseError, StorageError):
+                dev = None  # not storing just now (a full disk): the epoch still keeps the readings apart
+            # every handshake opens an epoch: a meter back with a boot count it used before (a reflash,
+            # a replacement unit) is never taken for readings already stored
+            row = epoch_row(ms.session_id, item.boot, "handshake", dev)
+            ms.epoch = row["id"]
+            ms.writer.add_epoch(row)
+            if self.time_scale != 1.0:
+                ms.boot_map[ms.epoch] = (item.mapping.tick0_ms, self.now_utc())
+            ms.session_update = {**({"device_id": dev} if dev is not None else {}), "interval_ms": item.interval_ms, "clock_boot": item.boot,
                                  "clock_tick0_ms": item.mapping.tick0_ms, "clock_utc0_s": item.mapping.utc0_s}
         elif isinstance(item, SpectrumReading):
             sp = item.spectrum
             t = self._t_of(ms, item)
             lines = [(f * 1000.0, lv / 100.0) for f, lv in sp.pairs]
-            ms.writer._add("spectra", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms,
+            ms.writer._add("spectra", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms, "epoch": ms.epoch,
                                        "t_utc": t, "orientation": sp.orientation, "sweep": sp.sweep, "lines": lines})
             if ms.sweeps is not None:
                 v = ms.sweeps.add(item.boot, sp.sweep, sp.orientation, t, [x[0] for x in lines],
@@ -443,36 +467,105 @@ class Monitor:
                     self._event(ms, "alarm_command_failed", "error", f"{am.rule.command[0]}: {exc.strerror}")
 
     # -- commit --------------------------------------------------------------------------------
-    def _commit(self) -> None:
-        """One transaction: buffered readings/status/events of every meter, derived rows, alarm state."""
+    def _commit(self, force: bool = False) -> bool:
+        """One transaction: buffered readings/status/events of every meter, derived rows, alarm state.
+
+        Nothing leaves memory before its transaction commits. A commit that fails (a full disk, an
+        I/O error) keeps every batch, raises a storage_failed health event and the alarm hooks once,
+        marks the station as not storing, and is retried with back-off (1 s doubling to 60 s); the
+        batches go in with the first commit that works. Returns whether this call stored them.
+        """
+        fail = self._store_fail
+        if fail is not None and not force and time.monotonic() < fail["next_mono"]:
+            return False
         now = time.time()
-        with self.store.write():
-            for ms in self.meters:
-                ms.writer.flush()
-                for band, blocks in ms.blocks_out:
-                    derived.save_blocks(self.conn, self.station_id, ms.cfg.name, band, blocks, self.st.min_coverage)
-                ms.blocks_out = []
-                if ms.session_update:
-                    sets = ", ".join(f"{k}=?" for k in ms.session_update)
-                    self.conn.execute(f"UPDATE sessions SET {sets} WHERE id=?",
-                                      (*ms.session_update.values(), ms.session_id))
-                    ms.session_update = {}
-                for am in ms.alarms:
-                    self.conn.execute("INSERT OR REPLACE INTO mon_alarm VALUES (?,?,?,?,?,?,?,?,?)",
-                                      (self.station_id, am.rule.name, ms.cfg.name, am.band, *am.snapshot()))
-                self.conn.execute("UPDATE mon_meter SET last_seen_utc=?, link_state=?, battery_pct=?, "
-                                  "temperature_degc=?, drift_ppm=?, last_e_v_per_m=?, u_expanded_db=? "
-                                  "WHERE station_id=? AND meter=?",
-                                  (ms.last_t, ms.link_state, ms.status.get("battery_pct"),
-                                   ms.status.get("temperature_degc"), ms.drift_ppm, ms.last_e, ms.last_u_db,
-                                   self.station_id, ms.cfg.name))
-            if self._station_events:
-                for sid, row in self._station_events:
-                    self.store.write_batch(sid, events=[row])
-                self._station_events = []
-            if now >= self._heartbeat_next:              # every station.heartbeat_s (host time)
-                self.conn.execute("UPDATE mon_station SET heartbeat_utc=? WHERE id=?", (now, self.station_id))
-                self._heartbeat_next = now + self.st.heartbeat_s
+        taken = [ms.writer.take() for ms in self.meters]
+        try:
+            with self.store.write():
+                for ms, buf in zip(self.meters, taken):
+                    ms.writer.write_taken(buf)
+                    for band, blocks in ms.blocks_out:
+                        derived.save_blocks(self.conn, self.station_id, ms.cfg.name, band, blocks, self.st.min_coverage)
+                    if ms.session_update:
+                        sets = ", ".join(f"{k}=?" for k in ms.session_update)
+                        self.conn.execute(f"UPDATE sessions SET {sets} WHERE id=?",
+                                          (*ms.session_update.values(), ms.session_id))
+                    for am in ms.alarms:
+                        self.conn.execute("INSERT OR REPLACE INTO mon_alarm VALUES (?,?,?,?,?,?,?,?,?)",
+                                          (self.station_id, am.rule.name, ms.cfg.name, am.band, *am.snapshot()))
+                    self.conn.execute("UPDATE mon_meter SET last_seen_utc=?, link_state=?, battery_pct=?, "
+                                      "temperature_degc=?, drift_ppm=?, last_e_v_per_m=?, u_expanded_db=? "
+                                      "WHERE station_id=? AND meter=?",
+                                      (ms.last_t, ms.link_state, ms.status.get("battery_pct"),
+                                       ms.status.get("temperature_degc"), ms.drift_ppm, ms.last_e, ms.last_u_db,
+                                       self.station_id, ms.cfg.name))
+                if self._station_events:
+                    for sid, row in self._station_events:
+                        self.store.write_batch(sid, events=[row])
+                if fail is not None:
+                    self.conn.execute("UPDATE mon_storage SET storing=1, since_utc=NULL, error=NULL, pending_readings=0, "
+                                      "checked_utc=? WHERE station_id=?", (now, self.station_id))
+                if fail is not None or now >= self._heartbeat_next:  # every station.heartbeat_s (host time)
+                    self.conn.execute("UPDATE mon_station SET heartbeat_utc=? WHERE id=?", (now, self.station_id))
+                    self._heartbeat_next = now + self.st.heartbeat_s
+        except (sqlite3.DatabaseError, StorageError) as exc:
+            for ms, buf in zip(self.meters, taken):
+                ms.writer.put_back(buf, exc)
+            self._storage_failed(exc)
+            return False
+        for ms in self.meters:
+            ms.writer.stored()
+            ms.blocks_out = []
+            ms.session_update = {}
+        self._station_events = []
+        if fail is not None:
+            self._storage_recovered(fail)
+        return True
+
+    def _storage_failed(self, exc: BaseException) -> None:
+        """A commit failed: keep everything, say so (log, status, alarm hooks) once, retry later."""
+        pending = sum(ms.writer.pending_readings for ms in self.meters)
+        fail = self._store_fail
+        if fail is None:
+            fail = self._store_fail = {"since_utc": time.time(), "error": f"{type(exc).__name__}: {exc}",
+                                       "attempts": 0, "delay_s": 1.0, "next_mono": 0.0}
+            self._event(None, "storage_failed", "error", f"cannot write {self.st.database}: {fail['error']}; "
+                        "readings are kept in memory and the commit retried", error=fail["error"])
+            self._storage_alarm("start", fail["since_utc"], pending)
+        fail["attempts"] += 1
+        fail["next_mono"] = time.monotonic() + fail["delay_s"]
+        fail["delay_s"] = min(2.0 * fail["delay_s"], 60.0)
+        try:  # an in-place update may still fit where new rows do not (it tells `status` we are not storing)
+            with self.store.write():
+                self.conn.execute("UPDATE mon_storage SET storing=0, since_utc=?, error=?, pending_readings=?, "
+                                  "checked_utc=? WHERE station_id=?",
+                                  (fail["since_utc"], fail["error"], pending, time.time(), self.station_id))
+        except (sqlite3.DatabaseError, StorageError):
+            pass
+
+    def _storage_recovered(self, fail: dict) -> None:
+        dropped = sum(ms.writer.dropped for ms in self.meters)
+        self._store_fail = None
+        self._event(None, "storage_recovered", "info", f"storing again after {time.time() - fail['since_utc']:.0f} s "
+                    f"and {fail['attempts']} failed commit(s); readings kept meanwhile are stored"
+                    + (f", {dropped} dropped beyond the memory bound (see readings_dropped)" if dropped else ""),
+                    attempts=fail["attempts"], since_utc=fail["since_utc"], dropped=dropped)
+        self._storage_alarm("end", fail["since_utc"], 0)
+
+    def _storage_alarm(self, kind: str, since_utc: float, pending: int) -> None:
+        """Run each alarm rule's command once for the station not storing (rule name ``not_storing``)."""
+        done = set()
+        for rule in self.st.alarms:
+            if not rule.command or rule.command in done:
+                continue
+            done.add(rule.command)
+            ev = AlarmEvent(kind=kind, rule="not_storing", meter="*", band="storage", t_utc=time.time(),
+                            value=float(pending), unit=rule.unit, threshold=0.0, clear=0.0, window_s=0.0,
+                            episode_start_utc=since_utc, peak_t_utc=time.time(), peak_value=float(pending))
+            try:
+                self.procs.append(run_command(rule.command, ev))
+            except OSError as exc:
+                self.log(f"alarm command {rule.command[0]} for not_storing failed: {exc.strerror}")
 
     def _certificates(self) -> None:
         today = _dt.date.fromtimestamp(self.now_utc())
@@ -515,7 +608,10 @@ class Monitor:
     def run(self) -> None:
         """Acquire until stop(); commits at most commit_s apart; always leaves a consistent database."""
         for ms in self.meters:
-            ms.writer = BatchWriter(self.store, ms.session_id, max_rows=10**9, max_age_s=self.commit_s)
+            # while the file cannot be written, up to max_keep readings per meter wait in memory (about
+            # 0.1 GB; 2.3 days at one reading a second); beyond, the oldest go, each drop an event
+            ms.writer = BatchWriter(self.store, ms.session_id, max_rows=10**9, max_age_s=self.commit_s,
+                                    max_keep=200_000)
             factory = None if self._link_factory is None else (lambda p=ms.cfg.port: self._link_factory(p))
             ms.link = MeterLink(ms.cfg.port, int(round(ms.cfg.interval_s * 1000)), link_factory=factory,
                                 backoff_max_s=self._backoff_max_s, wake=self._wake)
@@ -548,10 +644,7 @@ class Monitor:
                     self._handle(ms, item)
             self._tick(closing=True)
             self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
-            self._commit()
-            with self.store.write():
-                self.conn.execute("UPDATE mon_station SET state='stopped', heartbeat_utc=? WHERE id=?",
-                                  (time.time(), self.station_id))
+            self._final_commit()
             for p in self.procs:
                 try:
                     p.wait(timeout=5)
@@ -559,6 +652,26 @@ class Monitor:
                     p.kill()
                     p.wait()
             self.store.close()
+
+    def _final_commit(self, tries: int = 4) -> None:
+        """Store everything left and mark the station stopped; if the file still cannot be written after
+        a few short tries, say exactly what is lost (the log is then the only record left)."""
+        for k in range(tries):
+            if self._commit(force=True):
+                break
+            time.sleep(0.25 * (k + 1))  # back-off before retrying a failed commit at shutdown
+        else:
+            lost = {ms.cfg.name: ms.writer.pending_readings for ms in self.meters}
+            self.log(f"{_iso(time.time())} ERROR   not_stored: {self.st.database} cannot be written "
+                     f"({self._store_fail['error'] if self._store_fail else '?'}); readings not stored at stop: "
+                     + ", ".join(f"{m} {n}" for m, n in lost.items()))
+            return
+        try:
+            with self.store.write():
+                self.conn.execute("UPDATE mon_station SET state='stopped', heartbeat_utc=? WHERE id=?",
+                                  (time.time(), self.station_id))
+        except (sqlite3.DatabaseError, StorageError) as exc:
+            self.log(f"{_iso(time.time())} ERROR   cannot mark the station stopped: {exc}")
 
     def _guard(self, fn, *args) -> None:
         """Run one step; a bug becomes an event and acquisition goes on."""
@@ -587,9 +700,9 @@ class Monitor:
                         if blocks:
                             ms.blocks_out.append((band, blocks))
         self._certificates()
-        self._commit()
-        self.procs = [p for p in self.procs if p.poll() is None]
-        if not closing:
+        self._commit(force=closing)
+        self.procs = [p for p in self.procs if p is not None and p.poll() is None]
+        if not closing and self._store_fail is None:
             self._retention()
 
 

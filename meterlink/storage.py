@@ -599,7 +599,7 @@ class BatchWriter:
     KINDS = ("readings", "statuses", "spectra", "events", "epochs")
 
     def __init__(self, store: Store, session_id: int, max_rows: int = 500, max_age_s: float = 1.0,
-                 max_keep: int = 2_000_000):
+                 max_keep: int = 500_000):
         self.store, self.session_id = store, session_id
         self.max_rows, self.max_age_s, self.max_keep = max_rows, max_age_s, max_keep
         self._lock = threading.Lock()

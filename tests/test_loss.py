@@ -125,3 +125,108 @@ def test_a_replacement_unit_behind_the_same_port_identical_counters_loses_nothin
         assert len({(b, q) for b, q, *_ in first} & {(b, q) for b, q, *_ in second}) >= 25
         assert not store.events(sid, kind="duplicate_reading")
         assert spans.check(store.db.conn) == []
+
+
+STATION = """
+format = "meterlink-station/1"
+[station]
+name = "Harrow Gill loss station"
+database = "station.db"
+heartbeat_s = 1
+[assessment]
+standard = "icnirp-2020"
+tier = "public"
+band = ["80 MHz", "4 GHz"]
+interval_s = 1
+windows_s = [360]
+[[meter]]
+name = "mast"
+port = "PORT"
+certificate = "demo-probe"
+[[alarm]]
+name = "high"
+unit = "v_per_m"
+threshold = 1000
+command = ["PYTHON", "-c", "import sys; open(sys.argv[1], 'a').write(' '.join(sys.argv[2:4]) + chr(10))", "HOOKLOG"]
+[health]
+drift_max_ppm = 1e9
+max_gap_s = 30
+"""
+
+
+def _monitor(tmp_path, port, speed):
+    import sys
+
+    from meterlink.monitor import Monitor
+    from meterlink.station import parse_station
+
+    text = (STATION.replace("PORT", port).replace("PYTHON", sys.executable)
+            .replace("HOOKLOG", str(tmp_path / "hook.log")))
+    (tmp_path / "station.toml").write_text(text)
+    st = parse_station(text, tmp_path / "station.toml")
+    mon = Monitor(st, time_scale=speed, backoff_max_s=0.5)
+    th = threading.Thread(target=mon.run, name="test-monitor")
+    th.start()
+    return st, mon, th
+
+
+def _set_page_limit(mon, pages):
+    """Reproduce a full disk on the monitor's own connection: SQLite's PRAGMA max_page_count
+    (sqlite.org/pragma.html#pragma_max_page_count) makes any write needing a new page fail with SQLITE_FULL."""
+    with mon.store._lock:
+        if pages is None:
+            pages = mon.conn.execute("PRAGMA page_count").fetchone()[0]
+        mon.conn.execute(f"PRAGMA max_page_count = {int(pages)}")
+
+
+def test_monitor_keeps_the_batch_when_the_disk_is_full_and_says_it_is_not_storing(tmp_path, capsys):
+    """Issue 14: a failed commit used to empty the buffer first (6,250 readings lost in one run). Now
+    the batch stays in memory, the commit is retried with back-off, a storage_failed event and the
+    alarm hooks say so, `meterlink status` says the station is not storing, and once the disk has
+    room again every reading the device sent is stored exactly once."""
+    import sqlite3
+
+    from meterlink import cli
+
+    speed = 20.0
+    truth = tmp_path / "truth.jsonl"
+    with SimulatedMeter("demo", sensor="probe", seed=7, speed=speed, truth_path=truth) as sim:
+        st, mon, th = _monitor(tmp_path, sim.port, speed)
+        conn = sqlite3.connect(st.database, timeout=10)
+        sid = mon.meters[0].session_id
+        try:
+            assert wait_for(lambda: store_count(conn, sid) >= 40)
+            _set_page_limit(mon, None)
+            assert wait_for(lambda: conn.execute("select storing from mon_storage").fetchone()[0] == 0, 10)
+            n_full = store_count(conn, sid)
+            # while it is full: nothing new stored, readings piling up in memory, status says so
+            assert wait_for(lambda: mon.meters[0].writer.pending_readings >= 40, 10)
+            assert store_count(conn, sid) == n_full
+            capsys.readouterr()
+            assert cli.main(["status", "--db", str(st.database)]) == 0
+            out = capsys.readouterr().out
+            assert "NOT STORING" in out and "full" in out
+            _set_page_limit(mon, 1073741823)    # room again
+            assert wait_for(lambda: conn.execute("select count(*) from events where kind = 'storage_recovered'"
+                                                 ).fetchone()[0] == 1, 30)
+            assert wait_for(lambda: store_count(conn, sid) >= n_full + 60)
+        finally:
+            mon.stop()
+            th.join(30)
+        assert not th.is_alive()
+    got = [(b, q, t, (x, y, z)) for b, q, t, x, y, z in conn.execute(
+        "select boot, seq, tick_ms, raw_x, raw_y, raw_z from readings where session_id = ? order by id", [sid])]
+    tail = assert_prefix_stored_once(sent(truth), got)
+    assert tail <= 3
+    (err,) = [m for (m,) in conn.execute("select message from events where kind = 'storage_failed'")]
+    assert "full" in err
+    assert conn.execute("select storing from mon_storage").fetchone()[0] == 1
+    assert not conn.execute("select count(*) from events where kind in ('internal_error', 'readings_dropped')"
+                            ).fetchone()[0]
+    assert conn.execute("select state from mon_station").fetchone()[0] == "stopped"
+    hooks = (tmp_path / "hook.log").read_text().split("\n")
+    assert "start not_storing" in hooks and "end not_storing" in hooks
+
+
+def store_count(conn, sid):
+    return conn.execute("select count(*) from readings where session_id = ?", [sid]).fetchone()[0]

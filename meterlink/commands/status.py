@@ -8,6 +8,23 @@ def add_arguments(parser) -> None:
     parser.add_argument("--json", action="store_true", help="print the state as JSON")
 
 
+def storage_state(conn, station: str) -> dict | None:
+    """Whether the monitor can write its database (mon_storage, kept by meterlink.monitor), or None if unknown."""
+    import sqlite3
+
+    from meterlink.publish import iso
+
+    try:
+        row = conn.execute("SELECT g.storing, g.since_utc, g.error, g.pending_readings, g.checked_utc FROM mon_storage g "
+                           "JOIN mon_station s ON s.id = g.station_id WHERE s.name = ?", (station,)).fetchone()
+    except sqlite3.OperationalError:  # a file written before the monitor kept this table
+        return None
+    if row is None:
+        return None
+    return {"storing": bool(row[0]), "since_utc": iso(row[1]), "error": row[2], "pending_readings": row[3] or 0,
+            "checked_utc": iso(row[4])}
+
+
 def run(args) -> int:
     import sqlite3
     import time
@@ -22,6 +39,7 @@ def run(args) -> int:
     conn = sqlite3.connect(f"file:{args.db}?mode=ro", uri=True)
     try:
         s = current_state(conn, time.time())
+        s["storage"] = storage_state(conn, s["station"])
     finally:
         conn.close()
     s["caution"] = SAFETY_LINE
@@ -37,6 +55,10 @@ def run(args) -> int:
     con.print(f"[bold]{escape(s['station'])}[/bold]  state {s['state']}, run {s['runs']}, heartbeat "
               f"{s['heartbeat_utc']} ({'-' if age is None else f'{age:.0f} s ago'}); "
               f"{s['standard']} {s['tier']}, convention {s['convention']}")
+    st = s["storage"]
+    if st is not None and not st["storing"]:
+        con.print(f"[bold red]NOT STORING[/bold red] since {st['since_utc']}: {escape(st['error'] or '?')}; "
+                  f"{st['pending_readings']} reading(s) held in memory (as of {st['checked_utc']}), commits retried")
     if s["stale"]:
         con.print(f"[bold red]stale[/bold red]: recorded as running but no heartbeat for more than "
                   f"{3 * s['heartbeat_s']:g} s (heartbeat every {s['heartbeat_s']:g} s); is the monitor still alive?")
