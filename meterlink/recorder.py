@@ -79,7 +79,7 @@ class Recorder:
                  host_timeout_s: float | None = None, kind: str = "record", freq_hz: float | None = None,
                  band_hz: tuple[float, float] | None = None, notes: str = "",
                  link_factory: Callable[[], Link] | None = None, on_item: Callable[[object], None] | None = None,
-                 store_retry_s: float = 10.0, **link_options):
+                 store_retry_s: float = 5.0, **link_options):
         self.store, self.port = store, port
         self.duration_s = duration_s
         if host_timeout_s is None and duration_s is not None:
@@ -141,14 +141,16 @@ class Recorder:
                         reason = "duration reached"
                         break
                 try:
-                    if writer.failures == 0 or writer.due():
-                        writer.flush_if_due()
-                    failing_since = None
+                    writer.flush_if_due()   # after a failure, due again max_age_s later: the retry
                 except sqlite3.DatabaseError:
+                    pass                    # the batch is kept; writer.failures counts
+                if writer.failures:
                     failing_since = failing_since or time.monotonic()
                     if time.monotonic() - failing_since >= self.store_retry_s:
                         reason = "database not writable"
                         break
+                else:
+                    failing_since = None
         except KeyboardInterrupt:
             reason = "interrupted"
         finally:
@@ -175,23 +177,29 @@ class Recorder:
                 break
             except sqlite3.DatabaseError as exc:
                 error = exc
-                time.sleep(0.2 * (attempt + 1))  # a lock held by another writer may clear; a full disk will not
+                self.store.make_room()
+                time.sleep(0.2 * (attempt + 1))  # back-off: a lock held by another writer may clear meanwhile
         else:
             # the last batch cannot be stored: say exactly what is lost, and still close the session
             lost = writer.take()
             self.not_stored = len(lost["readings"])
-        try:
-            self.store.end_session(sid, clock_rate_ratio=self._ratio)
-        except sqlite3.DatabaseError as exc:
-            error = error or exc
+        for attempt in range(2):
+            try:
+                self.store.end_session(sid, clock_rate_ratio=self._ratio)
+                break
+            except sqlite3.DatabaseError as exc:
+                error = error or exc
+                self.store.make_room()
+        else:
             self.session_left_open = True
         if reason == "database not writable" or self.not_stored:
             stored = self.store.count("readings", sid)
+            lost = (f"{self.not_stored} reading(s) received since could not be stored" if self.not_stored
+                    else "every reading received was stored")
             raise NotStoringError(
                 f"database {str(self.store.path)!r} cannot be written ({error or writer.last_error}): recording "
-                f"stopped; session {sid} keeps the {stored} reading(s) stored, {self.not_stored} reading(s) "
-                f"received since could not be stored" + ("; the session could not be closed"
-                                                          if self.session_left_open else ""))
+                f"stopped; session {sid} keeps the {stored} reading(s) stored, {lost}"
+                + ("; the session could not be closed" if self.session_left_open else ""))
 
     def _span_reached(self) -> bool:
         if self.duration_s is None or self._t_first is None or self._t_last is None:

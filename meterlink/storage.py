@@ -180,6 +180,16 @@ class Store:
         with self.write():
             self.db["sessions"].update(session_id, fields)
 
+    def make_room(self) -> bool:
+        """After a write failed on a full disk: move the write-ahead log into the file and truncate it
+        (PRAGMA wal_checkpoint(TRUNCATE)), which may free enough space to close a session. True if done."""
+        with self._lock:
+            try:
+                busy = self.db.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()[0]
+            except sqlite3.DatabaseError:
+                return False
+        return busy == 0
+
     def new_epoch(self, session_id: int, boot: int | None, reason: str, device_id: int | None = None,
                   started_utc: float | None = None) -> int:
         """Open an epoch of a session (one connection to a device) now and return its number.

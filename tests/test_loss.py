@@ -230,3 +230,117 @@ def test_monitor_keeps_the_batch_when_the_disk_is_full_and_says_it_is_not_storin
 
 def store_count(conn, sid):
     return conn.execute("select count(*) from readings where session_id = ?", [sid]).fetchone()[0]
+
+
+def _record_cmd(port, db, *extra):
+    import sys
+
+    return [sys.executable, "-m", "meterlink", "record", "--port", str(port), "--db", str(db), "--json", *extra]
+
+
+def _file_size_limit(limit_bytes):
+    """preexec_fn: a process whose files cannot grow past limit_bytes, as on a full disk (RLIMIT_FSIZE,
+    POSIX setrlimit(2)); SIGXFSZ ignored so that the write fails with EFBIG instead of killing it."""
+    import resource
+    import signal
+
+    def apply():
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+        resource.setrlimit(resource.RLIMIT_FSIZE, (limit_bytes, limit_bytes))
+    return apply
+
+
+def test_record_on_a_full_disk_ends_cleanly_with_the_session_closed(tmp_path):
+    """Issue 14: `record` on a full disk ended in a traceback and left the session open."""
+    import os
+    import subprocess
+
+    db = tmp_path / "full.db"
+    Store(db).close()                       # an existing file; the recording's writes will not fit
+    limit = os.path.getsize(db) + 96 * 1024
+    truth = tmp_path / "truth.jsonl"
+    with SimulatedMeter("demo", sensor="probe", seed=2, speed=200.0, truth_path=truth) as sim:
+        proc = subprocess.run(_record_cmd(sim.port, db, "--duration", "100000"), capture_output=True, text=True,
+                              timeout=120, preexec_fn=_file_size_limit(limit))
+    assert proc.returncode == 2, proc.stderr
+    assert "Traceback" not in proc.stderr and proc.stderr.count("\n") == 1, proc.stderr
+    assert "cannot be written" in proc.stderr and "recording stopped" in proc.stderr
+    with Store(db) as store:
+        (s,) = store.sessions()
+        assert s["ended_utc"] is not None                     # closed, not left open
+        n = store.count("readings", s["id"])
+        assert n > 0 and f"keeps the {n} reading(s) stored" in proc.stderr
+        got = stored_by_epoch(store, s["id"])
+        (rows,) = got.values()
+        assert Counter(rows) == Counter(sent(truth)[:len(rows)])   # what was stored is intact, once each
+        assert spans.check(store.db.conn) == [] and store.verify() == []
+
+
+def test_record_ends_cleanly_on_sigterm(tmp_path):
+    """Issue 14: `record` ignored SIGTERM (last second lost, session open)."""
+    import signal
+    import sqlite3
+    import subprocess
+
+    db = tmp_path / "term.db"
+    truth = tmp_path / "truth.jsonl"
+    with SimulatedMeter("demo", sensor="probe", seed=5, speed=10.0, truth_path=truth) as sim:
+        proc = subprocess.Popen(_record_cmd(sim.port, db), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        try:
+            def count():
+                try:
+                    with sqlite3.connect(f"file:{db}?mode=ro", uri=True) as c:
+                        return c.execute("select count(*) from readings").fetchone()[0]
+                except sqlite3.Error:
+                    return 0
+            assert wait_for(lambda: count() >= 20, 30)
+            proc.send_signal(signal.SIGTERM)
+            out, err = proc.communicate(timeout=30)
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+    assert proc.returncode == 0, err
+    assert "Traceback" not in err
+    import json
+    summary = json.loads(out)
+    with Store(db) as store:
+        (s,) = store.sessions()
+        assert s["ended_utc"] is not None
+        (rows,) = stored_by_epoch(store, s["id"]).values()
+        assert summary["readings"] == len(rows) >= 20
+        tail = assert_prefix_stored_once(sent(truth), rows)
+        assert tail <= 5      # only what was still in the port when the host stopped reading
+
+
+def test_record_on_a_port_where_no_meter_answers(tmp_path):
+    """Issue 14: `record` on a silent port stored an empty session and exited 0 after 40 s."""
+    import os
+    import subprocess
+
+    master, slave = os.openpty()            # a real serial device (pty) with nothing behind it
+    try:
+        port = os.ttyname(slave)
+        db = tmp_path / "nobody.db"
+        t0 = time.monotonic()
+        proc = subprocess.run(_record_cmd(port, db, "--duration", "60"), capture_output=True, text=True, timeout=60)
+        elapsed = time.monotonic() - t0
+    finally:
+        os.close(master)
+        os.close(slave)
+    assert proc.returncode == 2 and proc.stdout == ""
+    assert proc.stderr.count("\n") == 1 and "no meter answered on" in proc.stderr, proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert not list(tmp_path.iterdir())     # no database file (nor -wal/-shm) left behind
+    assert elapsed < 20
+    # an existing database is kept, and gets no empty session
+    db = tmp_path / "kept.db"
+    Store(db).close()
+    master, slave = os.openpty()
+    try:
+        proc = subprocess.run(_record_cmd(os.ttyname(slave), db), capture_output=True, text=True, timeout=60)
+    finally:
+        os.close(master)
+        os.close(slave)
+    assert proc.returncode == 2 and "no meter answered" in proc.stderr
+    with Store(db) as store:
+        assert store.sessions() == []
