@@ -101,6 +101,8 @@ class LinkStats:
     handshakes: int = 0
     unsynced: int = 0
     queue_overflow: int = 0
+    backpressure_waits: int = 0      # times the reader waited for the consumer (queue full)
+    backpressure_s: float = 0.0      # host seconds spent waiting
 
 
 class _Restart(Exception):
@@ -118,7 +120,7 @@ class MeterLink:
                  link_factory: Callable[[], Link] | None = None, max_reconnects: int | None = None,
                  backoff_initial_s: float = 0.1, backoff_max_s: float = 5.0, who_retries: int = 5,
                  reply_timeout_s: float = 0.5, min_silence_s: float = 3.0, drift_report_s: float = 10.0,
-                 queue_max: int = 200_000, read_timeout_s: float = 0.25, wake: threading.Event | None = None):
+                 queue_max: int = 20_000, read_timeout_s: float = 0.25, wake: threading.Event | None = None):
         if link_factory is None:
             if not port:
                 raise LinkError("no serial port given")
@@ -130,7 +132,10 @@ class MeterLink:
         self.backoff_initial_s, self.backoff_max_s = backoff_initial_s, backoff_max_s
         self.who_retries, self.reply_timeout_s = who_retries, reply_timeout_s
         self.min_silence_s, self.drift_report_s = min_silence_s, drift_report_s
+        # Bounded: a device that sends faster than the consumer stores is held back (back-pressure,
+        # see _put) instead of growing memory; what it cannot hand over meanwhile shows as seq gaps.
         self.queue: queue.Queue = queue.Queue(maxsize=queue_max)
+        self._spill: list = []      # items that met a full queue while stopping: given out after the queue
         # A streaming read returns as soon as bytes arrive; the timeout only bounds how long an
         # idle port goes unchecked (stop request, silence watchdog), so it need not be short.
         self.read_timeout_s = read_timeout_s
@@ -172,6 +177,8 @@ class MeterLink:
         try:
             return self.queue.get(timeout=timeout_s)
         except queue.Empty:
+            if self._spill and self.finished.is_set():
+                return self._spill.pop(0)
             return None
 
     def __enter__(self) -> "MeterLink":
@@ -225,6 +232,11 @@ class MeterLink:
             self._event("internal_error", "error", f"link thread stopped: {type(exc).__name__}: {exc}")
         finally:
             self._report_drift()
+            if self.stats.backpressure_waits:
+                self._event("backpressure", "warning", f"the consumer fell behind {self.stats.backpressure_waits} "
+                            f"time(s); reading from {self.port} paused for {self.stats.backpressure_s:.1f} s in all "
+                            "(frames the device could not hand over meanwhile are in seq_gap events)",
+                            waits=self.stats.backpressure_waits, paused_s=round(self.stats.backpressure_s, 3))
             self._say_stop()
             self._close_link()
             self.finished.set()
@@ -469,9 +481,29 @@ class MeterLink:
         self._put(LinkEvent(kind, severity, message, time.time(), detail))
 
     def _put(self, item) -> None:
+        """Queue an item; a full queue makes the reader wait for the consumer (never a silent drop).
+
+        While it waits the port is not read: the device's frames back up in the serial buffers, and
+        any it cannot hand over are lost there and reported as seq_gap events with exact counts.
+        Once stopping, an item that meets a full queue is kept aside and given out after it.
+        """
         try:
             self.queue.put_nowait(item)
         except queue.Full:
-            self.stats.queue_overflow += 1
+            self.stats.backpressure_waits += 1
+            t0 = time.monotonic()
+            if self._wake is not None:
+                self._wake.set()
+            while True:
+                if self._stop.is_set():
+                    self._spill.append(item)
+                    break
+                try:
+                    self.queue.put(item, timeout=0.1)
+                    break
+                except queue.Full:
+                    continue
+            self.stats.backpressure_s += time.monotonic() - t0
+            self._last_frame_mono = time.monotonic()  # waiting on the consumer is not the port going silent
         if self._wake is not None:
             self._wake.set()

@@ -36,11 +36,12 @@ DEFAULT_FAULTS = {"drop": 0.0, "corrupt": 0.0, "garbage": 0.0, "garbage_max_byte
 #   of the reading period; ignore_stop: STOP is acknowledged but streaming goes on;
 #   ident_model / ident_kind / ident_proto_major: replace those IDENT fields;
 #   deaf_after_garbage_ms: after any junk bytes from the host, ignore its frames for that long;
-#   pong_alter: PONG returns the PING bytes with the last one changed.
+#   pong_alter: PONG returns the PING bytes with the last one changed;
+#   flood: readings come this many times per interval (a device flooding its host).
 DEFAULT_QUIRKS = {"seq_step": 1, "bad_crc": 0.0, "silent_unknown": False, "no_boot": False,
                   "wrong_fault_code": False, "no_status": False, "interval_error": 0.0, "interval_jitter_ms": 0.0,
                   "ignore_stop": False, "ident_model": None, "ident_kind": None, "ident_proto_major": None,
-                  "deaf_after_garbage_ms": 0, "pong_alter": False}
+                  "deaf_after_garbage_ms": 0, "pong_alter": False, "flood": 1}
 
 
 class Firmware:
@@ -165,7 +166,7 @@ class Firmware:
     def _period_ms(self) -> int:
         """Time to the next reading: the interval, unless a quirk bends it."""
         q = self.quirks
-        p = self.interval_ms * (1.0 + float(q["interval_error"]))
+        p = self.interval_ms * (1.0 + float(q["interval_error"])) / max(1.0, float(q["flood"]))
         if q["interval_jitter_ms"]:
             p += float(q["interval_jitter_ms"]) * float(self._frng.standard_normal())
         return max(1, int(round(p)))
