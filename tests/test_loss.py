@@ -399,3 +399,69 @@ def test_a_flooding_device_is_held_back_never_dropped_silently(tmp_path):
         (bp,) = store.events(sid, kind="backpressure")
         assert 3 <= bp["detail"]["waits"] <= link.stats.backpressure_waits   # the event itself may wait once more
         assert spans.check(store.db.conn) == []
+
+
+def test_kills_during_start_up_never_lose_the_unclean_shutdown_event(tmp_path):
+    """Issue 14: a monitor killed before its first commit lost the unclean_shutdown event (of the run
+    before it). Now that event and monitor_started are stored in the very transaction that marks the
+    run as running. Real processes, SIGKILL at seeded random moments of start-up."""
+    import signal
+    import sqlite3
+    import subprocess
+    import sys
+
+    import numpy as np
+
+    rng = np.random.default_rng(14)
+    with SimulatedMeter("demo", sensor="probe", seed=9, speed=20.0) as sim:
+        text = (STATION.replace("PORT", sim.port).replace("PYTHON", sys.executable)
+                .replace("HOOKLOG", str(tmp_path / "hook.log")))
+        cfg = tmp_path / "station.toml"
+        cfg.write_text(text)
+        db = tmp_path / "station.db"
+        cmd = [sys.executable, "-m", "meterlink", "monitor", "--config", str(cfg), "--time-scale", "20", "--quiet"]
+
+        def station():
+            try:
+                with sqlite3.connect(f"file:{db}?mode=ro", uri=True) as c:
+                    return c.execute("select runs, state from mon_station").fetchone() or (0, None)
+            except sqlite3.Error:
+                return (0, None)
+
+        killed_running = 0
+        for delay in rng.uniform(0.2, 2.5, 6):
+            before = station()[0]
+            proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            try:
+                proc.wait(timeout=float(delay))   # the fault: a kill at this moment of start-up
+            except subprocess.TimeoutExpired:
+                pass
+            proc.send_signal(signal.SIGKILL)
+            proc.wait(timeout=10)
+            runs, state = station()
+            if runs > before:
+                assert state == "running"
+                killed_running += 1
+        def readings():
+            try:
+                with sqlite3.connect(f"file:{db}?mode=ro", uri=True) as c:
+                    return c.execute("select count(*) from readings").fetchone()[0]
+            except sqlite3.Error:
+                return 0
+        n0 = readings()
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+        try:  # readings committed by this run: it is past start-up and has its SIGTERM handler
+            assert wait_for(lambda: station()[0] >= killed_running + 1 and readings() > n0, 30)
+            proc.send_signal(signal.SIGTERM)
+            _, err = proc.communicate(timeout=30)
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+        assert proc.returncode == 0, err
+    assert killed_running >= 2, "no kill landed after the station record: widen the delays"
+    with sqlite3.connect(db) as c:
+        runs, state = c.execute("select runs, state from mon_station").fetchone()
+        kinds = Counter(k for (k,) in c.execute("select kind from events where session_id is null"))
+    assert state == "stopped" and runs == killed_running + 1
+    assert kinds["unclean_shutdown"] == killed_running       # one per killed run, none lost
+    assert kinds["monitor_started"] == runs
