@@ -89,6 +89,7 @@ class MeterState:
     last_counts: tuple | None = None
     boot_map: dict = field(default_factory=dict)     # epoch -> (tick0_ms, utc0) when time_scale != 1
     epoch: int = 0                                   # the current connection's epoch (storage.epoch_row)
+    resume_check: bool = True                        # first reading of this run: compare with the last stored
     checks: dict = field(default_factory=dict)
     status: dict = field(default_factory=dict)
     link_state: str = "connecting"
@@ -287,8 +288,25 @@ class Monitor:
             m = ms.boot_map[ms.epoch] = (item.tick_ms, self.now_utc())
         return m[1] + (item.tick_ms - m[0]) / 1000.0
 
+    def _resume_gap(self, ms: MeterState, item: Reading) -> None:
+        """First reading of this run: frames the device sent while no monitor read it (a kill, a power
+        cut) are counted exactly from the sequence numbers, and stored as a seq_gap event."""
+        ms.resume_check = False
+        row = self.conn.execute("SELECT seq_hi FROM reading_spans WHERE session_id=? AND boot=? ORDER BY id DESC LIMIT 1",
+                                (ms.session_id, item.boot)).fetchone()
+        if row is None:
+            return
+        last = int(row[0])
+        lost = item.seq - last - 1
+        if 0 < lost < 1 << 31:  # the same boot carried on: the frames in between never reached the store
+            self._event(ms, "seq_gap", "warning", f"{lost} frame(s) lost between seq {last} and {item.seq} while "
+                        "no monitor was reading this meter", lost=lost, prev_seq=last, seq=item.seq, boot=item.boot,
+                        while_down=True)
+
     def _handle(self, ms: MeterState, item) -> None:
         if isinstance(item, Reading):
+            if ms.resume_check:
+                self._resume_gap(ms, item)
             t = self._t_of(ms, item)
             a = item.axes
             ms.writer._add("readings", {"boot": item.boot, "seq": item.seq, "tick_ms": item.tick_ms, "t_utc": t,
@@ -505,6 +523,8 @@ class Monitor:
                 if fail is not None:
                     self.conn.execute("UPDATE mon_storage SET storing=1, since_utc=NULL, error=NULL, pending_readings=0, "
                                       "checked_utc=? WHERE station_id=?", (now, self.station_id))
+                    # in the same transaction as the batches it speaks of
+                    Store._insert_events(self.conn, None, [self._recovered_row(fail)])
                 if fail is not None or now >= self._heartbeat_next:  # every station.heartbeat_s (host time)
                     self.conn.execute("UPDATE mon_station SET heartbeat_utc=? WHERE id=?", (now, self.station_id))
                     self._heartbeat_next = now + self.st.heartbeat_s
@@ -535,7 +555,10 @@ class Monitor:
         fail["attempts"] += 1
         fail["next_mono"] = time.monotonic() + fail["delay_s"]
         fail["delay_s"] = min(2.0 * fail["delay_s"], 60.0)
-        try:  # an in-place update may still fit where new rows do not (it tells `status` we are not storing)
+        # moving the write-ahead log into the file and truncating it may free room for the small update
+        # below, which tells `status` that the station is not storing
+        self.store.make_room()
+        try:
             with self.store.write():
                 self.conn.execute("UPDATE mon_storage SET storing=0, since_utc=?, error=?, pending_readings=?, "
                                   "checked_utc=? WHERE station_id=?",
@@ -543,13 +566,18 @@ class Monitor:
         except (sqlite3.DatabaseError, StorageError):
             pass
 
-    def _storage_recovered(self, fail: dict) -> None:
+    def _recovered_row(self, fail: dict) -> dict:
         dropped = sum(ms.writer.dropped for ms in self.meters)
+        msg = (f"storing again after {time.time() - fail['since_utc']:.0f} s and {fail['attempts']} failed commit(s); "
+               "readings kept meanwhile are stored"
+               + (f", {dropped} dropped beyond the memory bound (see readings_dropped)" if dropped else ""))
+        return event_row("storage_recovered", "info", msg, self.now_utc(), station=self.st.name,
+                         attempts=fail["attempts"], since_utc=fail["since_utc"], dropped=dropped)
+
+    def _storage_recovered(self, fail: dict) -> None:
         self._store_fail = None
-        self._event(None, "storage_recovered", "info", f"storing again after {time.time() - fail['since_utc']:.0f} s "
-                    f"and {fail['attempts']} failed commit(s); readings kept meanwhile are stored"
-                    + (f", {dropped} dropped beyond the memory bound (see readings_dropped)" if dropped else ""),
-                    attempts=fail["attempts"], since_utc=fail["since_utc"], dropped=dropped)
+        self.log(f"{_iso(self.now_utc())} INFO    storage_recovered: storing again after {fail['attempts']} failed "
+                 "commit(s)")
         self._storage_alarm("end", fail["since_utc"], 0)
 
     def _storage_alarm(self, kind: str, since_utc: float, pending: int) -> None:
