@@ -87,7 +87,8 @@ class MeterState:
     session_update: dict = field(default_factory=dict)
     last_t: float | None = None
     last_counts: tuple | None = None
-    boot_map: dict = field(default_factory=dict)     # epoch -> (tick0_ms, utc0) when time_scale != 1
+    boot_map: dict = field(default_factory=dict)     # device clock -> (tick0_ms, utc0) when time_scale != 1
+    clock_key: tuple | None = None                   # the device clock now: (boot, tick0_ms, utc0_s) of its mapping
     epoch: int = 0                                   # the current connection's epoch (storage.epoch_row)
     resume_check: bool = True                        # first reading of this run: compare with the last stored
     checks: dict = field(default_factory=dict)
@@ -283,9 +284,9 @@ class Monitor:
     def _t_of(self, ms: MeterState, item) -> float:
         if self.time_scale == 1.0:
             return item.t_utc
-        m = ms.boot_map.get(ms.epoch)
+        m = ms.boot_map.get(ms.clock_key)
         if m is None:
-            m = ms.boot_map[ms.epoch] = (item.tick_ms, self.now_utc())
+            m = ms.boot_map[ms.clock_key] = (item.tick_ms, self.now_utc())
         return m[1] + (item.tick_ms - m[0]) / 1000.0
 
     def _resume_gap(self, ms: MeterState, item: Reading) -> None:
@@ -332,8 +333,11 @@ class Monitor:
             row = epoch_row(ms.session_id, item.boot, "handshake", dev)
             ms.epoch = row["id"]
             ms.writer.add_epoch(row)
-            if self.time_scale != 1.0:
-                ms.boot_map[ms.epoch] = (item.mapping.tick0_ms, self.now_utc())
+            # the link keeps its clock mapping across a reconnect to the same boot and makes a new one after
+            # a restart (even one reusing the boot count): the accelerated time follows the same rule
+            ms.clock_key = (item.boot, item.mapping.tick0_ms, item.mapping.utc0_s)
+            if self.time_scale != 1.0 and ms.clock_key not in ms.boot_map:
+                ms.boot_map[ms.clock_key] = (item.mapping.tick0_ms, self.now_utc())
             ms.session_update = {**({"device_id": dev} if dev is not None else {}), "interval_ms": item.interval_ms, "clock_boot": item.boot,
                                  "clock_tick0_ms": item.mapping.tick0_ms, "clock_utc0_s": item.mapping.utc0_s}
         elif isinstance(item, SpectrumReading):

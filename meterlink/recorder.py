@@ -100,6 +100,7 @@ class Recorder:
         self.store_retry_s = store_retry_s
         self.not_stored = 0                   # readings received that could not be stored (a full disk)
         self.session_left_open = False
+        self._no_meter = ""                   # why the first handshake failed, if it did
 
     def stop(self) -> None:
         self.stop_event.set()
@@ -133,10 +134,11 @@ class Recorder:
                         break
                 else:
                     self._consume(item, writer)
-                    if self._ident is None and isinstance(item, LinkEvent) and item.kind == "port_lost":
-                        reason = "no meter"      # the first handshake failed: nobody answers on this port
+                    if self._ident is None and isinstance(item, LinkEvent) and item.severity == "error":
                         self._no_meter = item.message
-                        break
+                        if item.kind == "port_lost":  # the first handshake failed: nobody answers on this port
+                            reason = "no meter"
+                            break
                     if self._span_reached():
                         reason = "duration reached"
                         break
@@ -169,7 +171,7 @@ class Recorder:
                 conn.execute("delete from epochs where session_id = ?", (sid,))
                 conn.execute("delete from events where session_id = ?", (sid,))
                 conn.execute("delete from sessions where id = ?", (sid,))
-            raise NoMeterError(f"no meter answered on {self.port}: {getattr(self, '_no_meter', '') or reason}")
+            raise NoMeterError(f"no meter answered on {self.port}: {self._no_meter or reason}")
         error = None
         for attempt in range(3):
             try:
