@@ -101,8 +101,11 @@ def test_a_version_2_file_is_migrated_to_spans_with_nothing_lost(tmp_path, capsy
         assert store.count("readings", 1) == sum(r[0] == 1 for r in rows)
         r2 = store.readings(2, T0 + 100, T0 + 200)
         assert r2.seq.tolist() == [i for i in range(100, 200) if i % 3 == 0]
-        # and recording goes on: a repeat of a migrated reading is still recognised
-        assert store.add_readings(2, [row(1, 0, T0), row(2, 10_000, T0 + 10_000)]) == 1
+        # and recording goes on: a repeat of a migrated reading (same key, same content) is still recognised
+        same = {"boot": 1, "seq": 0, "tick_ms": 0, "t_utc": T0, "raw_x": 0, "raw_y": 0, "raw_z": 0, "flags": 0,
+                "range_index": 0}
+        assert store.add_readings(2, [same, row(2, 10_000, T0 + 10_000)]) == 1
+        assert store.events(2, kind="duplicate_reading")[0]["detail"]["count"] == 1
 
 
 def test_interleaved_meters_share_id_ranges_without_mixing(tmp_path):
