@@ -138,7 +138,8 @@ class Monitor:
         prev = None
         text = st.path.read_text(encoding="utf-8") if st.path.exists() else ""
         with self.store.write():
-            self.conn.execute("CREATE TABLE IF NOT EXISTS mon_storage (station_id INTEGER PRIMARY KEY, storing INTEGER, "
+            self.conn.execute("CREATE TABLE IF NOT EXISTS mon_storage (station_id INTEGER PRIMARY KEY, "
+                              "storing INTEGER, "
                               "since_utc REAL, error TEXT, pending_readings INTEGER, checked_utc REAL)")
             if row is None:
                 self.conn.execute("INSERT INTO mon_station (name, created_utc, runs) VALUES (?,?,0)",
@@ -293,7 +294,8 @@ class Monitor:
         """First reading of this run: frames the device sent while no monitor read it (a kill, a power
         cut) are counted exactly from the sequence numbers, and stored as a seq_gap event."""
         ms.resume_check = False
-        row = self.conn.execute("SELECT seq_hi FROM reading_spans WHERE session_id=? AND boot=? ORDER BY id DESC LIMIT 1",
+        row = self.conn.execute("SELECT seq_hi FROM reading_spans WHERE session_id=? AND boot=? "
+                                "ORDER BY id DESC LIMIT 1",
                                 (ms.session_id, item.boot)).fetchone()
         if row is None:
             return
@@ -324,7 +326,8 @@ class Monitor:
             ident = item.ident
             try:
                 dev = self.store.device_id(ident.model, ident.serial, ident.probe_serial, ident.cert_ref,
-                                           int(ident.sensor_kind), f"{ident.fw_major}.{ident.fw_minor}.{ident.fw_patch}",
+                                           int(ident.sensor_kind),
+                                           f"{ident.fw_major}.{ident.fw_minor}.{ident.fw_patch}",
                                            f"{ident.proto_major}.{ident.proto_minor}")
             except (sqlite3.DatabaseError, StorageError):
                 dev = None  # not storing just now (a full disk): the epoch still keeps the readings apart

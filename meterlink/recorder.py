@@ -68,7 +68,8 @@ def status_row(s: StatusReport) -> dict:
 
 def spectrum_row(s: SpectrumReading, epoch: int = 0) -> dict:
     sp = s.spectrum
-    return {"boot": s.boot, "seq": s.seq, "tick_ms": s.tick_ms, "t_utc": s.t_utc, "epoch": epoch, "orientation": sp.orientation,
+    return {"boot": s.boot, "seq": s.seq, "tick_ms": s.tick_ms, "t_utc": s.t_utc, "epoch": epoch,
+            "orientation": sp.orientation,
             "sweep": sp.sweep, "lines": [(khz * 1000.0, centi / 100.0) for khz, centi in sp.pairs]}
 
 

@@ -3,8 +3,8 @@
 Raw readings arrive in order and in bulk, and are looked up only by session and time, or checked
 for repeats by (session, boot, epoch, seq). An epoch is one connection to one device (schema 4): a
 meter that restarts with a boot count it used before (a reflash, a replacement unit, a wrapped
-count) starts a new epoch, so its readings are never taken for ones already stored. Keeping a per-row index for each of those costs about as much
-as writing the rows, and roughly doubles the file. So ``readings`` has no secondary index; instead
+count) starts a new epoch, so its readings are never taken for ones already stored. Keeping a
+per-row index for each of those costs about as much as writing the rows, and roughly doubles the file. So ``readings`` has no secondary index; instead
 ``reading_spans`` holds one row per run of up to SPAN_ROWS readings of one (session, boot, epoch),
 with the exact bounds of their ids, sequence numbers and times (a block-range index). Invariants, kept
 by every insert and delete here in the same transaction as the rows:
@@ -355,7 +355,8 @@ def check(conn: sqlite3.Connection, progress: Callable[[int, int], None] | None 
             progress(k, len(all_spans))
         row = _measure(conn, sid, boot, epoch, i_lo, i_hi)
         if row != (n, s_lo, s_hi, i_lo, i_hi, t_lo, t_hi):
-            problems.append(f"span {span_id} (session {sid}, boot {boot}, epoch {epoch}) says n={n}, seq {s_lo}..{s_hi}, "
+            problems.append(f"span {span_id} (session {sid}, boot {boot}, epoch {epoch}) says n={n}, "
+                            f"seq {s_lo}..{s_hi}, "
                             f"id {i_lo}..{i_hi}, t {t_lo}..{t_hi}; its readings give {row}")
     overlap = conn.execute("select count(*) from reading_spans a join reading_spans b on a.session_id = b.session_id "
                            "and a.boot = b.boot and a.epoch = b.epoch and a.id < b.id and a.id_lo <= b.id_hi "

@@ -269,7 +269,8 @@ class Store:
         self.write_batch(session_id, events=[event_row(kind, severity, message, t_utc, **detail)])
 
     def write_batch(self, session_id: int | None, readings: Iterable[Mapping] = (), statuses: Iterable[Mapping] = (),
-                    spectra: Iterable[Mapping] = (), events: Iterable[Mapping] = (), epochs: Iterable[Mapping] = ()) -> int:
+                    spectra: Iterable[Mapping] = (), events: Iterable[Mapping] = (),
+                    epochs: Iterable[Mapping] = ()) -> int:
         """Write everything in one transaction; a bad row becomes an event instead. Returns new readings.
 
         A full disk or an I/O error raises (sqlite3.OperationalError) with nothing of the batch stored,
