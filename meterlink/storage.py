@@ -621,6 +621,8 @@ class BatchWriter:
         self.failures = 0                  # commits failed in a row (0: the last one worked)
         self.last_error: str | None = None
         self.dropped = 0                   # readings dropped because max_keep was reached (each in an event)
+        self._drop_row: dict | None = None  # the drop event still in the buffer, grown while the episode lasts
+        self._drop_count, self._drop_ranges = 0, []
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
 
@@ -629,6 +631,8 @@ class BatchWriter:
             self._buf[key].append(row)
             if self._first is None:
                 self._first = time.monotonic()
+            if self.failures:
+                self._bound()        # not storing: memory stays bounded between retries too
             n = sum(len(v) for v in self._buf.values())
         if n >= self.max_rows and not self.failures:
             try:
@@ -700,10 +704,22 @@ class BatchWriter:
             return
         gone, self._buf["readings"] = rows[:extra], rows[extra:]
         self.dropped += extra
-        self._buf["events"].append(event_row(
-            "readings_dropped", "error", f"{extra} reading(s) dropped: the database could not be written "
-            f"({self.last_error}) and at most {self.max_keep} are kept in memory", count=extra,
-            reason="not_storing", ranges=seq_ranges(gone)))
+        events = self._buf["events"]
+        count, ranges = extra, seq_ranges(gone)
+        if self._drop_row is not None and events and events[-1] is self._drop_row:  # one event per episode
+            events.pop()
+            count += self._drop_count
+            old = self._drop_ranges
+            if old and ranges and old[-1][:2] == ranges[0][:2] and old[-1][3] + 1 == ranges[0][2]:
+                ranges = old[:-1] + [[*old[-1][:3], ranges[0][3]]] + ranges[1:]
+            else:
+                ranges = old + ranges
+        self._drop_count, self._drop_ranges = count, ranges
+        self._drop_row = event_row(
+            "readings_dropped", "error", f"{count} reading(s) dropped: the database could not be written "
+            f"({self.last_error}) and at most {self.max_keep} are kept in memory", count=count,
+            reason="not_storing", ranges=ranges)
+        events.append(self._drop_row)
 
     def flush(self) -> None:
         """Commit everything buffered now; on failure the batch is kept and the error raised."""

@@ -254,3 +254,34 @@ def test_several_connections_write_one_file_at_once(tmp_path):
     assert counts == {k: (300, 0) for k in range(4)}
     with Store(path) as s:
         assert spans.check(s.db.conn) == [] and len(s.sessions()) == 4
+
+
+def test_batch_writer_keeps_a_failed_batch_and_bounds_memory_with_an_exact_drop_event(tmp_path):
+    """A commit that fails on a full file (SQLite PRAGMA max_page_count, sqlite.org/pragma.html) keeps
+    the batch; past max_keep readings the oldest go, recorded as an event with the exact count and
+    sequence range; once there is room everything kept is stored."""
+    import sqlite3
+
+    with Store(tmp_path / "full.db") as s:
+        sid = s.begin_session("record")
+        w = BatchWriter(s, sid, max_rows=10**9, max_age_s=60.0, max_keep=100)
+        pages = s.db.execute("PRAGMA page_count").fetchone()[0]
+        s.db.execute(f"PRAGMA max_page_count = {pages}")
+        for i in range(250):
+            w.add_reading(reading(i))
+        with pytest.raises(sqlite3.OperationalError, match="full"):
+            w.flush()
+        assert w.failures == 1 and w.pending_readings == 100 and w.dropped == 150
+        for i in range(250, 260):   # while failing, adding stays bounded too
+            w.add_reading(reading(i))
+        assert w.pending_readings == 100 and w.dropped == 160
+        assert s.count("readings", sid) == 0
+        s.db.execute("PRAGMA max_page_count = 1073741823")
+        w.flush()
+        assert w.failures == 0
+        r = s.readings(sid)
+        assert r.seq.tolist() == list(range(160, 260))
+        drops = s.events(sid, kind="readings_dropped")
+        assert [d["detail"]["count"] for d in drops] == [160]          # one event for the episode
+        assert [d["detail"]["ranges"] for d in drops] == [[[1, 0, 0, 159]]]
+        assert sum(d["detail"]["count"] for d in drops) + len(r) == 260   # every reading: stored or counted
