@@ -47,7 +47,8 @@ def assessment_renderable(a) -> Panel:
     t.add_column(style="bold cyan", no_wrap=True)
     t.add_column()
     t.add_row("standard", escape(f"{a.standard}, {a.tier_label} ({a.tier})"))
-    t.add_row("source", escape(f"{a.source} [{a.status}]"))
+    t.add_row("source", escape(a.source))
+    t.add_row("reference level check", Text(a.status, style="green" if a.status.startswith("checked") else "yellow"))
     t.add_row("mode", escape(f"{a.mode}: {a.frequency_note}"))
     t.add_row("certificate", escape(a.certificate))
     if a.limit_v_per_m:
@@ -86,7 +87,7 @@ def assessment_dict(a) -> dict:
     return {
         "session_id": a.session_id, "standard": a.standard, "tier": a.tier, "tier_label": a.tier_label,
         "decision_rule": a.rule, "mode": a.mode, "frequency_note": a.frequency_note,
-        "source": a.source, "status": a.status, "certificate": a.certificate,
+        "source": a.source, "status": a.status, "reference_level_check": a.status, "certificate": a.certificate,
         "reference_level_e_v_per_m": a.limit_v_per_m, "reference_level_derived": a.limit_derived,
         "averaging_time_s": a.window_s, "peak_e_v_per_m": a.peak_v_per_m, "t_peak_utc": a.t_peak_utc,
         "averaged_e_v_per_m": a.value_v_per_m, "averaged_window_complete": a.value_complete,

@@ -118,7 +118,8 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
                              f"(device clock)" if len(series.t_utc) else "-"))]),
             "<h2>Assessment</h2>",
             H.table(("item", "value"), [(H.e(k), v) for k, v in (
-                ("standard", H.e(f"{a.standard}, {a.tier_label}: {a.source} [{a.status}]")),
+                ("standard", H.e(f"{a.standard}, {a.tier_label}: {a.source}")),
+                ("reference level check", H.e(a.status)),
                 ("decision rule", H.e(a.rule)), ("mode", H.e(f"{a.mode}: {a.frequency_note}")),
                 ("reference level", H.e(f"{H.num(a.limit_v_per_m, '{:.4g}')} V/m" + (" (derived)" if a.limit_derived else ""))),
                 ("averaging time", H.e(f"{a.window_s / 60:g} min" if a.window_s else "-")),
