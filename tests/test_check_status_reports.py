@@ -91,3 +91,15 @@ def test_survey_report_shows_the_check(tmp_path, standard, expected):
     # The multi-frequency summation rules were not read in a primary text: that is shown too.
     assert f"summation rule: {NOT_CHECKED}" in row.group(1)
     assert _clean(html)
+
+
+def test_multi_frequency_status_names_levels_and_rule():
+    # Two FM emitters under 47 CFR 1.1310 Table 1 (B) (checked): the levels name that text, the
+    # summation rule (not read in a primary text) says it is not yet checked.
+    from meterlink.exposure import multi_frequency
+
+    res = multi_frequency([94.3e6, 101.8e6], standard="fcc-1310", tier="public", e_v_per_m=[1.0, 2.0])
+    assert res.status == ("levels: checked against 47 CFR 1.1310 Table 1 (B), via a published reproduction; "
+                          f"summation rule: {NOT_CHECKED}")
+    # 30-300 MHz: E_L = 27.5 V/m, so the power-term sum is (1^2 + 2^2) / 27.5^2 (hand-worked).
+    assert res.total == pytest.approx(5 / 27.5**2)
