@@ -435,14 +435,11 @@ def describe_standard(standard: str) -> dict:
 
 def _table_status(table: _Table) -> str:
     """Check status of a whole table: every value and averaging time in every row."""
-    parts = [(f"{format_frequency(r.f_lo_hz)}-{format_frequency(r.f_hi_hz)} {n.upper()}", c.checked)
-             for r in table.rows for n, c in r.cells]
-    parts += [(f"{format_frequency(r.f_lo_hz)}-{format_frequency(r.f_hi_hz)} averaging time", r.averaging_checked)
-              for r in table.rows]
-    docs = {c for _, c in parts}
-    if len(docs) == 1:
-        return check_status(parts[:1])
-    return "partly: " + "; ".join(sorted({f"{CHECKED_PREFIX}{d}" for d in docs if d})) + f"; the rest {NOT_CHECKED}"
+    docs = {c.checked for r in table.rows for _, c in r.cells} | {r.averaging_checked for r in table.rows}
+    if docs == {""}:
+        return NOT_CHECKED
+    checked = "; ".join(sorted(CHECKED_PREFIX + d for d in docs if d))
+    return checked if "" not in docs else f"partly: {checked}; the rest {NOT_CHECKED}"
 
 
 def reference_level(standard: str, tier: str, freq_hz: float, kind: str = "whole_body") -> ReferenceLevel:

@@ -549,3 +549,13 @@ def test_no_developer_notes_in_the_data_or_what_users_see():
                 text = f"{lv.notes} {lv.status} {lv.source} {lv.tier_label}".lower()
                 assert not [w for w in FORBIDDEN if w in text], (std, f, text)
                 assert lv.status.startswith("checked against") or limits.NOT_CHECKED in lv.status
+
+
+def test_describe_standard_gives_each_table_s_check_status():
+    cov = {(c["tier"], c["kind"]): c["status"] for c in limits.describe_standard("icnirp-2020")["coverage"]}
+    assert cov[("public", "local")] == "checked against ICNIRP 2020 Table 6 with note 3, via a handbook reproduction"
+    assert cov[("public", "whole_body")] == limits.NOT_CHECKED
+    peak = limits.describe_standard("eu-2013-35")["coverage"]
+    assert [c["status"] for c in peak if c["kind"] == "peak"] == [
+        "partly: checked against 2013/35/EU Annex II Table B1 low AL, via UK SI 2016/1026 Table AL1; "
+        "the rest not yet checked against the primary text"]
