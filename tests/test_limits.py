@@ -4,7 +4,9 @@ CHECKED holds values typed from the published text itself, each with the documen
 row named beside it: 47 CFR 1.1310 Table 1 (read in a published reproduction of the table),
 ICNIRP 2020 Table 6 (read in a handbook reproduction, Health Phys 118:483-524) and the low E
 action level of Directive 2013/35/EU Annex II Table B1 (read as transposed in UK SI 2016/1026
-Table AL1). Those values must also say, in the data, what they were checked against.
+Table AL1) and the reference levels of Council Recommendation 1999/519/EC Annex III (read as
+transposed in the French decret 2002-775, annexe 2.2 A). Those values must also say, in the
+data, what they were checked against.
 
 PINNED holds the values of tables no one has yet compared with a primary text. They are NOT
 checks against the published documents: they only pin today's data so an accidental edit
@@ -36,6 +38,9 @@ IEEE, SC6 = "IEEE C95.1-2019", "Safety Code 6 (2015)"
 FA, FB = "47 CFR 1.1310 Table 1 (A)", "47 CFR 1.1310 Table 1 (B)"
 T6 = "ICNIRP 2020 Table 6"
 AL = "2013/35/EU Annex II Table B1 low AL"
+# 1999/519/EC Annex III, as transposed in decret 2002-775, annexe 2.2 A "Niveaux des champs":
+# note 1, f as in the frequency-range column (kHz or MHz); S_eq, the plane-wave equivalent, in W/m2.
+REC = "1999/519/EC Annex III"
 
 # (standard, tier, kind, freq_hz, quantity, expected, document and table, row)
 CHECKED = [
@@ -108,6 +113,24 @@ CHECKED = [
     ("eu-2013-35", "occupational", "peak", 3 * kHz, "e", 170, AL, "row 3 kHz <= f <= 10 MHz, lower edge"),
     ("eu-2013-35", "occupational", "peak", 1 * MHz, "e", 170, AL, "row 3 kHz <= f <= 10 MHz"),
     ("eu-2013-35", "occupational", "peak", 10 * MHz, "e", 170, AL, "row 3 kHz <= f <= 10 MHz, upper edge"),
+    # Council Recommendation 1999/519/EC Annex III reference levels (general public)
+    ("eu-1999", "public", "whole_body", 3 * kHz, "e", 87, REC, "row 3-150 kHz, lower edge"),
+    ("eu-1999", "public", "whole_body", 50 * kHz, "h", 5, REC, "row 3-150 kHz"),
+    ("eu-1999", "public", "whole_body", 120 * kHz, "e", 87, REC, "row 3-150 kHz"),
+    ("eu-1999", "public", "whole_body", 500 * kHz, "e", 87, REC, "row 0.15-1 MHz"),
+    ("eu-1999", "public", "whole_body", 500 * kHz, "h", 0.73 / 0.5, REC, "row 0.15-1 MHz, 0,73/f"),
+    ("eu-1999", "public", "whole_body", 5 * MHz, "e", 87 / 5**0.5, REC, "row 1-10 MHz, 87/f^1/2"),
+    ("eu-1999", "public", "whole_body", 5 * MHz, "h", 0.73 / 5, REC, "row 1-10 MHz, 0,73/f"),
+    ("eu-1999", "public", "whole_body", 100 * MHz, "e", 28, REC, "row 10-400 MHz"),
+    ("eu-1999", "public", "whole_body", 100 * MHz, "h", 0.073, REC, "row 10-400 MHz"),
+    ("eu-1999", "public", "whole_body", 100 * MHz, "s", 2, REC, "row 10-400 MHz, S_eq"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, "e", 1.375 * 900**0.5, REC, "row 400-2000 MHz, 1,375 f^1/2"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, "h", 0.0037 * 900**0.5, REC, "row 400-2000 MHz, 0,0037 f^1/2"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, "s", 900 / 200, REC, "row 400-2000 MHz, f/200"),
+    ("eu-1999", "public", "whole_body", 28 * GHz, "e", 61, REC, "row 2-300 GHz"),
+    ("eu-1999", "public", "whole_body", 28 * GHz, "h", 0.16, REC, "row 2-300 GHz"),
+    ("eu-1999", "public", "whole_body", 28 * GHz, "s", 10, REC, "row 2-300 GHz, S_eq"),
+    ("eu-1999", "public", "whole_body", 300 * GHz, "s", 10, REC, "row 2-300 GHz, upper edge"),
 ]
 
 _FIELD = {"e": "e_v_per_m", "h": "h_a_per_m", "s": "s_w_per_m2", "s_h": "s_h_w_per_m2"}
@@ -174,9 +197,6 @@ PINNED = [
     ("icnirp-1998", "occupational", "whole_body", 900 * MHz, "e", 90, I98 + " T6", "exact"),
     ("icnirp-1998", "occupational", "whole_body", 5 * GHz, "s", 50, I98 + " T6", "exact"),
     ("icnirp-1998", "occupational", "whole_body", 5 * GHz, "e", 137, I98 + " T6", "exact"),
-    # Council Recommendation 1999/519/EC Annex III = ICNIRP 1998 Table 7
-    ("eu-1999", "public", "whole_body", 900 * MHz, "e", 41.25, "1999/519/EC Annex III", "exact"),
-    ("eu-1999", "public", "whole_body", 100 * MHz, "s", 2, "1999/519/EC Annex III", "exact"),
     # Directive 2013/35/EU action levels ("10 MHz <= f < 400 MHz": upper band at breakpoints)
     ("eu-2013-35", "occupational", "whole_body", 500 * kHz, "e", 610, EU13, "exact"),
     ("eu-2013-35", "occupational", "whole_body", 5 * MHz, "e", 6.1e8 / 5e6, EU13, "exact"),
@@ -254,6 +274,12 @@ AVERAGING_CHECKED = [
     ("icnirp-2020", "occupational", "local", 1 * MHz, 6 * 60, T6, "note 3: averaged over 6 minutes"),
     ("icnirp-2020", "public", "local", 28 * GHz, 6 * 60, T6, "note 3: averaged over 6 minutes"),
     ("icnirp-2020", "public", "local", 300 * GHz, 6 * 60, T6, "note 3: averaged over 6 minutes"),
+    # 1999/519/EC Annex III (decret 2002-775, annexe 2.2 A): note 2, six minutes from 100 kHz to
+    # 10 GHz; note 3, 68/f^1.05 minutes above 10 GHz (f in GHz); no averaging time below 100 kHz.
+    ("eu-1999", "public", "whole_body", 50 * kHz, None, REC, "notes 2-3 start at 100 kHz: none below"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, 6 * 60, REC, "note 2: six minutes, 100 kHz-10 GHz"),
+    ("eu-1999", "public", "whole_body", 10 * GHz, 6 * 60, REC, "note 2: six minutes up to 10 GHz"),
+    ("eu-1999", "public", "whole_body", 30 * GHz, 68 / 30**1.05 * 60, REC, "note 3: 68/f^1.05 min above 10 GHz"),
 ]
 
 
@@ -261,7 +287,7 @@ AVERAGING_CHECKED = [
                          ids=[f"{a[0]}-{a[1]}-{a[3]:g}Hz [{a[5]}, {a[6]}]" for a in AVERAGING_CHECKED])
 def test_checked_averaging_times(std, tier, kind, f, expected, doc, note):
     lv = limits.reference_level(std, tier, f, kind)
-    assert lv.averaging_time_s == expected
+    assert lv.averaging_time_s == (None if expected is None else pytest.approx(expected, rel=1e-12))
     assert doc in lv.averaging_checked
 
 
@@ -513,9 +539,16 @@ def test_a_partly_checked_level_names_both_parts():
 
 
 def test_borrowed_rows_carry_the_borrower_s_status():
-    # 1999/519/EC takes ICNIRP 1998 Table 7's rows; its own Annex was not read, so it says so.
+    # 1999/519/EC takes ICNIRP 1998 Table 7's rows. The Recommendation's table was read (via the
+    # French decret 2002-775), ICNIRP 1998 Table 7 itself was not: the same values carry
+    # different statuses, each about its own document.
     lv = limits.reference_level("eu-1999", "public", 900e6)
-    assert lv.status == limits.NOT_CHECKED and lv.source.startswith("Council Recommendation 1999/519/EC")
+    assert lv.fully_checked and lv.status.startswith("checked against 1999/519/EC Annex III")
+    assert lv.source.startswith("Council Recommendation 1999/519/EC")
+    lender = limits.reference_level("icnirp-1998", "public", 900e6)
+    assert lender.e_v_per_m == lv.e_v_per_m and lender.status == limits.NOT_CHECKED
+    # The decree prints the summation formulas as images: the rule stays not yet checked.
+    assert limits.summation_rule("eu-1999", "public").status == limits.NOT_CHECKED
 
 
 def test_old_status_key_is_rejected_with_one_line():
