@@ -122,3 +122,22 @@ def test_near_field_point_carries_the_warning():
     ref = broadband_reference("icnirp-1998", "public", (30e6, 6e9))
     r = assess(plan, Point("n", near_field=True), (_sample(3.0),), ref)
     assert any("near field" in w and "H was not measured" in w for w in r.warnings)
+
+
+def test_dipole_capture_weights_sweeps_by_time_and_counts_missing_lines_at_the_floor():
+    # Three sweeps at device times 0, 30 and 40 s (median interval 20 s, hold cap 60 s): weights
+    # 30, 10 and 20 s (the last a median interval). Line A (900 MHz): 2, 4, 4 V/m ->
+    # sqrt((4*30 + 16*10 + 16*20) / 60) = sqrt(10) = 3.162 V/m (equal weights: sqrt(12) = 3.464 V/m).
+    # Line B (2.1 GHz) is absent from the second sweep (below the floor there): with a floor of
+    # 0.5 V/m it counts at 0.5 V/m, so sqrt((1*30 + 0.25*10 + 1*20) / 60) = sqrt(0.875) = 0.935 V/m.
+    # Hand-worked from the rms-over-time definition (power domain).
+    from meterlink.survey.capture import Value, _sample
+
+    def v(t, ems):
+        return Value(0, int(t), float(t), 1.8e9 + t, 1.0, (1.0, 0.0, 0.0), 1.0, 0, False, ems)
+
+    vals = [v(0, ((900e6, 2.0), (2.1e9, 1.0))), v(30, ((900e6, 4.0),)), v(40, ((900e6, 4.0), (2.1e9, 1.0)))]
+    s = _sample(vals, 60.0, 1.5, None, floor=lambda f: 0.5)
+    got = {f: e for _, f, e in s.emitters}
+    assert got[900e6] == pytest.approx(math.sqrt(10.0), rel=1e-12)
+    assert got[2.1e9] == pytest.approx(math.sqrt(0.875), rel=1e-12)

@@ -12,8 +12,8 @@ from meterlink.exposure import multi_frequency, near_field_check, percent_of_lim
 from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
-from meterlink.calibrate import ABOVE_RANGE
-from meterlink.verdict import decide_field, decide_ratio, lower_bound, not_assessable
+from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE
+from meterlink.verdict import decide_field, decide_ratio, lower_bound, not_assessable, upper_bound
 
 #: An emitter matches a listed source when their frequencies agree within this fraction.
 MATCH_REL = 0.005
@@ -145,6 +145,9 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
     elif flags & ABOVE_RANGE:    # a reading or a line beyond the instrument's range: the value is a lower bound
         why = "part of the field was above the instrument's calibrated range, so the value is only a lower bound"
         ver, ver_x = (lower_bound(v, why) for v in (ver, ver_x))
+    elif flags & BELOW_RANGE:    # readings or lines below the range counted at the floor: an upper bound
+        why = "values below the instrument's range were counted at its floor, so the value is an upper bound"
+        ver, ver_x = (upper_bound(v, why) for v in (ver, ver_x))
     if flags & ABOVE_RANGE:
         complete = False
         warn.append("above the instrument's range: the value is a lower bound")
