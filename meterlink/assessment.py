@@ -195,7 +195,8 @@ def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, b
     reasons = []
     if freq_out:
         what = (f"declared frequency {units.format_frequency(float(freq_hz))}" if freq_hz else
-                "declared band" if band else "frequency")
+                f"declared band {units.format_frequency(band[0])}-{units.format_frequency(band[1])}" if band
+                else "frequency")
         rng = (f" ({units.format_frequency(fallback_range[0])}-{units.format_frequency(fallback_range[1])})"
                if fallback_range else "")
         reasons.append(f"the {what} lies outside the certificate's calibrated frequency range{rng}, "
