@@ -236,6 +236,9 @@ class Series:
         self.frontier = -math.inf                        # no segment will ever start before this
         self.open: dict[int, Block] = {}
         self._next_end = math.inf                        # earliest end of an open block (skip _final before it)
+        # first sample seen: a window reaching before it is partial (a T-average needs T of record), never
+        # complete whatever its coverage; after a restart the replay starts a full window before anything new
+        self.t_first: float | None = None
 
     def _block(self, k: int) -> Block:
         b = self.open.get(k)
@@ -264,6 +267,8 @@ class Series:
         """Add a sample (over: an overrange lower bound); returns final blocks and running averages at t."""
         if not (t > self.frontier and math.isfinite(e_v_per_m) and e_v_per_m >= 0):
             return [], []
+        if self.t_first is None:
+            self.t_first = t
         last = self.last
         if last is not None:
             t0, p0 = last
@@ -283,7 +288,7 @@ class Series:
         looked = False
         for ws, w in self.windows.items():
             mean, cov = w.value(t)
-            ok = cov >= ok_min
+            ok = cov >= ok_min and t - ws >= self.t_first - 1e-6
             e = math.sqrt(mean) if mean == mean else math.nan
             runs.append(RunningSample(ws, t, e, cov, ok))
             if ok:
@@ -314,6 +319,8 @@ class Series:
             z = np.zeros((len(wins), 0))
             return [], RunningBatch(wins, ts, z, z, z.astype(bool))
         ps = es * es
+        if self.t_first is None:
+            self.t_first = float(ts[0])
         bs, hold = self.block_s, self.hold_s
         if self.last is not None:
             t_all, p_all = np.concatenate(([self.last[0]], ts)), np.concatenate(([self.last[1]], ps))
@@ -355,7 +362,7 @@ class Series:
             for kk, x, c in zip(edge_k, mean[m:].tolist(), cv[m:].tolist()):
                 blocks[kk].run_end[ws] = (x, c)
             er, cv = er[:m], cv[:m]
-            ok = cv >= ok_min
+            ok = (cv >= ok_min) & (ts - ws >= self.t_first - 1e-6)
             e_rows.append(er)
             c_rows.append(cv)
             ok_rows.append(ok)
