@@ -105,6 +105,17 @@ def test_interrupted_or_short_timed_average_gets_no_conformity_statement():
     assert any("averaging time" in w for w in r.warnings)
 
 
+def test_survey_point_outside_the_certificates_frequency_range_is_not_assessable():
+    # A reading calibrated outside the certificate's frequency range (FREQ_OUT) has no known response
+    # or uncertainty: the value is reported, no statement of conformity is made.
+    import dataclasses
+    from meterlink.calibrate import FREQ_OUT
+    plan = _plan()
+    ref = broadband_reference("icnirp-1998", "public", (30e6, 6e9))
+    r = assess(plan, Point("f"), (dataclasses.replace(_sample(1.0), flags=FREQ_OUT),), ref)
+    assert r.verdict == "not assessable" and "calibrated frequency range" in r.statement
+
+
 def test_survey_below_100_khz_judges_the_highest_reading_not_a_mean():
     # ICNIRP 1998 Table 7, general public, 3-150 kHz: E = 87 V/m with no time averaging below
     # 100 kHz (table notes). A spot whose rms over the capture is 40 V/m but whose highest single

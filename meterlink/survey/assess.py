@@ -12,7 +12,7 @@ from meterlink.exposure import multi_frequency, near_field_check, percent_of_lim
 from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
-from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE
+from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_OUT
 from meterlink.verdict import decide_field, decide_ratio, lower_bound, not_assessable, upper_bound
 
 #: An emitter matches a listed source when their frequencies agree within this fraction.
@@ -136,6 +136,9 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
     if interrupted or cov < MIN_COVERAGE:
         reasons.append(f"the capture is incomplete (coverage {100 * cov:.1f} %"
                        + (", interrupted)" if interrupted else ")"))
+    if flags & FREQ_OUT:
+        reasons.append("the frequency lies outside the certificate's calibrated frequency range, where the "
+                       "instrument's response and uncertainty are unknown")
     if shortened and not instantaneous:
         reasons.append(f"the capture is shorter than the standard's {ref.averaging_time_s / 60:g}-minute "
                        f"averaging time")
