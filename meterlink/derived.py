@@ -189,6 +189,7 @@ class Block:
     n_over: int = 0                                # samples at overrange (value is a lower bound)
     run_end: dict = field(default_factory=dict)    # window_s -> (e_rms at block end, coverage)
     run_max: dict = field(default_factory=dict)    # window_s -> (max complete e_rms, t)
+    partial: bool = False                          # begins before the record's first sample: never complete
 
     def e_rms(self) -> float:
         return math.sqrt(self.energy / self.covered_s) if self.covered_s > 0 else math.nan
@@ -244,6 +245,7 @@ class Series:
         b = self.open.get(k)
         if b is None:
             b = self.open[k] = Block(k * self.block_s, self.block_s)
+            b.partial = self.t_first is not None and b.t_start < self.t_first - 1e-6
             self._next_end = min(self._next_end, b.t_start + self.block_s)
         return b
 
@@ -428,7 +430,7 @@ def block_row(station_id: int, meter: str, band: str, b: Block, min_coverage: fl
     e = b.e_rms()
     return (station_id, meter, band, b.t_start, b.block_s, b.energy, b.covered_s, b.n,
             None if math.isnan(e) else e, None if b.e_max == -math.inf else b.e_max,
-            int(b.coverage() >= min_coverage - 1e-9), b.n_over)
+            int(b.coverage() >= min_coverage - 1e-9 and not b.partial), b.n_over)
 
 
 def save_blocks(conn, station_id: int, meter: str, band: str, blocks, min_coverage: float) -> None:
