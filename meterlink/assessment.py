@@ -319,28 +319,37 @@ def assess_spectrum(series, standard: str, tier: str, rule: str, *, near_field: 
                       tuple(notes), "instantaneous" if window is None else "time average")
 
 
+#: Windows evaluated exactly with the summation rule; beyond this, the largest by a linear proxy.
+_EXACT_WINDOWS = 2000
+
+
 def _spectrum_window(t, p, w, window, freqs, mf_args):
     """(E per line, end time, complete, coverage) of the complete window of length T with the largest
     total exposure ratio; the time-weighted mean of all sweeps (incomplete) when none lies inside."""
     start, end = t, t + w          # each sweep stands for [t_i, t_i + w_i)
     cum = np.concatenate([np.zeros((1, p.shape[1])), np.cumsum(p * w[:, None], axis=0)])
     cw = np.concatenate([[0.0], np.cumsum(w)])
-    best, best_k = -1.0, None
-    for k in range(t.size):
-        if end[k] - start[0] < window * (1 - 1e-9):
-            continue                                    # window would reach before the first sweep
-        j = int(np.searchsorted(end, end[k] - window, side="right"))   # first sweep ending inside
-        covered = cw[k + 1] - cw[j]
-        if covered < 0.9 * window - 1e-9 or covered <= 0:
-            continue
-        mean_p = (cum[k + 1] - cum[j]) / covered
-        tot = multi_frequency(freqs, e_v_per_m=np.sqrt(mean_p), **mf_args).total
-        if tot > best:
-            best, best_k = tot, (np.sqrt(mean_p), float(end[k]), min(1.0, covered / window))
-    if best_k is not None:
-        return best_k[0], best_k[1], True, best_k[2]
-    mean_p = cum[-1] / cw[-1]
-    return np.sqrt(mean_p), float(end[-1]), False, min(1.0, float(cw[-1]) / window)
+    ks = np.flatnonzero(end - start[0] >= window * (1 - 1e-9))     # windows inside the record
+    js = np.searchsorted(end, end[ks] - window, side="right")       # first sweep ending inside each
+    covered = cw[ks + 1] - cw[js]
+    ok = (covered >= 0.9 * window - 1e-9) & (covered > 0)
+    ks, js, covered = ks[ok], js[ok], covered[ok]
+    if ks.size == 0:
+        mean_p = cum[-1] / cw[-1]
+        return np.sqrt(mean_p), float(end[-1]), False, min(1.0, float(cw[-1]) / window)
+    mean_p = (cum[ks + 1] - cum[js]) / covered[:, None]
+    if ks.size > _EXACT_WINDOWS:
+        # rank the windows by each line's share of the whole-record sum (exact for squared terms),
+        # then evaluate the summation rule exactly on the leading ones
+        whole = cum[-1] / cw[-1]
+        mf = multi_frequency(freqs, e_v_per_m=np.sqrt(whole), **mf_args)
+        coef = np.divide(mf.emitter_ratio, whole, out=np.zeros_like(whole), where=whole > 0)
+        cand = np.argsort(mean_p @ coef)[-200:]
+    else:
+        cand = np.arange(ks.size)
+    totals = [multi_frequency(freqs, e_v_per_m=np.sqrt(mean_p[c]), **mf_args).total for c in cand]
+    c = int(cand[int(np.argmax(totals))])
+    return np.sqrt(mean_p[c]), float(end[ks[c]]), True, min(1.0, float(covered[c]) / window)
 
 
 def _term_quantity(mf, freq_hz: float) -> str:

@@ -187,3 +187,19 @@ def test_lines_below_the_floor_are_upper_bounds_not_zero():
     assert b.emitters[0].e_v_per_m == pytest.approx(math.sqrt(4.5), rel=1e-12)
     assert any("not an upper bound" in n for n in b.notes)
 
+
+
+@pytest.mark.parametrize("dt_s", [10.0, 1.0])      # 1 s: more windows than are evaluated exactly
+def test_spectrum_judges_the_largest_complete_window_not_the_record_mean(dt_s):
+    # ICNIRP 2020 Table 5 public, 400-2000 MHz: S_L = f/200 W/m2 (900 MHz: 4.5 W/m2), 30-min
+    # average. Sweeps every 10 s for 2 h: 1 V/m, except 40 V/m for the 30 min from t = 3600 s.
+    # The worst 30-min window is that burst: S = 40^2 / Z0 = 4.247 W/m2 -> S/S_L = 0.9438; the 2-h
+    # mean, sqrt((1 * 90 + 1600 * 30) / 120) = 20.0 V/m, would give only a quarter of that.
+    from meterlink.units import Z0_OHM
+    t = np.arange(0.0, 7200.0, dt_s)
+    e = np.where((t >= 3600) & (t < 5400), 40.0, 1.0)[:, None]
+    a = assess_spectrum(_spectrum([900e6], t, e), "icnirp-2020", "public", "simple")
+    assert a.value_complete and a.window_s == pytest.approx(1800.0)
+    assert a.emitters[0].e_v_per_m == pytest.approx(40.0, rel=1e-9)
+    assert a.total_exposure_ratio == pytest.approx(40.0**2 / Z0_OHM / 4.5, rel=1e-9)
+    assert a.verdict.outcome == "compliant"
