@@ -249,12 +249,19 @@ def assess_spectrum(series, standard: str, tier: str, rule: str, *, near_field: 
     freqs = series.freq_hz[seen]
     e_sw = e_sw[:, seen]
     below = ~np.isfinite(e_sw)
+    # orientations that did not see a line in a sweep (all three where the line is NaN)
+    n_seen = getattr(series, "n_seen", None)
+    missing = (np.where(below, 0, 3 - np.asarray(n_seen)[full][:, seen]) if n_seen is not None
+               else np.zeros(e_sw.shape, dtype=np.int64))
+    missing = np.where(below, 3, np.clip(missing, 0, 3))
     notes = list(series.warnings)
-    if floor_v_per_m is not None and below.any():
-        bound = math.sqrt(3.0) * np.asarray(floor_v_per_m, dtype=float)[seen]
-        e_sw = np.where(below, bound[None, :], e_sw)
-        notes.append(f"{int(below.sum())} line values below the receiver's floor counted as '< floor' "
-                     f"(upper bound: the floor in all three orientations)")
+    if floor_v_per_m is not None and missing.any():
+        fl = np.asarray(floor_v_per_m, dtype=float)[seen]
+        below = missing > 0
+        # each unseen orientation is "< floor": at most the floor, an upper bound
+        e_sw = np.sqrt(np.where(np.isfinite(e_sw), e_sw, 0.0) ** 2 + missing * fl[None, :] ** 2)
+        notes.append(f"{int(missing.sum())} orientation values below the receiver's floor counted as "
+                     f"'< floor' (upper bound: at the floor)")
     elif below.any():
         e_sw = np.where(below, 0.0, e_sw)
         notes.append(f"{int(below.sum())} line values below the receiver's floor counted as 0 V/m "

@@ -203,3 +203,13 @@ def test_spectrum_judges_the_largest_complete_window_not_the_record_mean(dt_s):
     assert a.emitters[0].e_v_per_m == pytest.approx(40.0, rel=1e-9)
     assert a.total_exposure_ratio == pytest.approx(40.0**2 / Z0_OHM / 4.5, rel=1e-9)
     assert a.verdict.outcome == "compliant"
+
+
+def test_orientations_that_missed_a_line_count_at_the_floor():
+    # One sweep: the 900 MHz line was seen by one orientation only, at 3 V/m; the other two were
+    # below the 1 V/m floor. E^2 = Ex^2 + Ey^2 + Ez^2 <= 9 + 1 + 1 = 11: E <= sqrt(11) = 3.317 V/m,
+    # not the 3 V/m that counts the two unseen orientations as 0 V/m.
+    import dataclasses
+    s = dataclasses.replace(_spectrum([900e6], [0.0], [[3.0]]), n_seen=np.array([[1]]))
+    a = assess_spectrum(s, "icnirp-2020", "public", "simple", floor_v_per_m=np.array([1.0]))
+    assert a.emitters[0].e_v_per_m == pytest.approx(math.sqrt(11.0), rel=1e-12)
