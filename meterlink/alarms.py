@@ -6,6 +6,11 @@ reference level (100 S / S_ref with the plane-wave S = E^2 / Z0). An episode sta
 has stayed at or above ``threshold`` for ``min_duration_s`` (its start time is the first crossing),
 and ends at the first value below ``clear`` (<= threshold: the hysteresis band). Incomplete windows
 change nothing. Each episode yields three events: start, peak and end.
+
+Where the station's standard prescribes no averaging time (e.g. ICNIRP 1998 below 100 kHz), a rule
+in percent of a reference level is fed each instantaneous value instead of its window's average:
+a time average would compare with the level something the standard does not (see
+:func:`percent_rules_instantaneous`).
 """
 
 from __future__ import annotations
@@ -49,11 +54,13 @@ class AlarmEvent:
     episode_start_utc: float
     peak_t_utc: float
     peak_value: float
+    basis: str = "average"          # "average" over window_s, or "instantaneous"
 
     def message(self) -> str:
         u = UNIT_LABEL[self.unit]
         if self.kind == "start":
-            return (f"alarm {self.rule} on {self.meter}: {self.window_s:g} s average {self.value:.4g} {u} "
+            what = "instantaneous value" if self.basis == "instantaneous" else f"{self.window_s:g} s average"
+            return (f"alarm {self.rule} on {self.meter}: {what} {self.value:.4g} {u} "
                     f">= {self.threshold:g} {u}")
         if self.kind == "peak":
             return f"alarm {self.rule} on {self.meter}: peak {self.peak_value:.4g} {u}"
@@ -74,8 +81,10 @@ class AlarmEvent:
 class AlarmMachine:
     """State of one rule on one series; ``update`` takes each running-average value in order."""
 
-    def __init__(self, rule: AlarmRule, meter: str, band: str = "total"):
+    def __init__(self, rule: AlarmRule, meter: str, band: str = "total", instantaneous: bool = False):
         self.rule, self.meter, self.band = rule, meter, band
+        #: fed instantaneous values: a percent-of-level rule where the standard has no averaging time
+        self.instantaneous = bool(instantaneous) and rule.unit != "v_per_m"
         self.state = IDLE
         self.t_on: float | None = None
         self.peak_t: float | None = None
@@ -85,7 +94,7 @@ class AlarmMachine:
     def _event(self, kind: str, t: float, v: float) -> AlarmEvent:
         r = self.rule
         return AlarmEvent(kind, r.name, self.meter, self.band, t, v, r.unit, r.threshold, r.clear, r.window_s,
-                          self.t_on, self.peak_t, self.peak_v)
+                          self.t_on, self.peak_t, self.peak_v, "instantaneous" if self.instantaneous else "average")
 
     def update(self, t_utc: float, value: float, complete: bool = True) -> list[AlarmEvent]:
         """Feed one value (in the rule's unit) at time t_utc; returns the episode events it causes."""
@@ -124,6 +133,20 @@ class AlarmMachine:
 
     def restore(self, state: str, t_on, peak_t, peak_v, last_t) -> None:
         self.state, self.t_on, self.peak_t, self.peak_v, self.last_t = state, t_on, peak_t, peak_v, last_t
+
+
+def percent_rules_instantaneous(standard: str, tier: str, freq) -> bool:
+    """True where the standard prescribes no averaging time at a frequency or anywhere in a (lo, hi)
+    band: percent-of-level alarms there compare instantaneous values, never an invented average."""
+    from meterlink.assessment import averaging_time_s
+    from meterlink.errors import MeterlinkError
+
+    try:
+        if isinstance(freq, tuple):
+            return averaging_time_s(standard, tier, band=freq) is None
+        return averaging_time_s(standard, tier, freq_hz=float(freq)) is None
+    except MeterlinkError:
+        return False
 
 
 def run_command(argv: tuple[str, ...], ev: AlarmEvent) -> subprocess.Popen | None:

@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from meterlink import calibrate, derived, spans
-from meterlink.alarms import AlarmMachine, rule_value, run_command
+from meterlink.alarms import AlarmMachine, percent_rules_instantaneous, rule_value, run_command
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
 from meterlink.limits import most_restrictive_level, reference_level
@@ -186,9 +186,10 @@ class Monitor:
             ms.series[band] = derived.Series(hold, st.block_s, st.windows_s, st.min_coverage)
         if dipole:
             ms.sweeps = SweepAssembler(cert, m.bands, st.standard, st.tier)
+        inst = percent_rules_instantaneous(st.standard, st.tier, freq)
         for rule in st.alarms:
             if not rule.meters or m.name in rule.meters:
-                ms.alarms.append(AlarmMachine(rule, m.name))
+                ms.alarms.append(AlarmMachine(rule, m.name, instantaneous=inst))
         h = st.health
         ms.checks = {"noise_floor": Persist("stuck_noise_floor", h.stuck_s),
                      "overrange": Persist("stuck_overrange", h.stuck_s),
@@ -395,6 +396,11 @@ class Monitor:
         if blocks:
             ms.blocks_out.append(("total", blocks))
         for am in ms.alarms:
+            if am.instantaneous:     # no averaging time in the standard here: each value is compared
+                if not (replay and am.last_t is not None and ti <= am.last_t):
+                    for ev in am.update(ti, rule_value(am.rule.unit, ei, ms.e_ref, ms.s_ref), True):
+                        self._alarm_event(ms, ev)
+                continue
             for r in runs:
                 if r.window_s == am.rule.window_s:
                     if replay and am.last_t is not None and ti <= am.last_t:

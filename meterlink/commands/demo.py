@@ -97,7 +97,10 @@ def _run_steps(con, db, out, args, rule):
         fs = calibrated_series(store, probe.session_id, band=band)
         a_probe = assess_field(fs, args.standard, args.tier, rule, band=band)
         ss = calibrated_series(store, dipole.session_id)
-        a_dip = assess_spectrum(ss, args.standard, args.tier, rule)
+        from meterlink.calibrate import floor_e_v_per_m
+        from meterlink.certificate import parse_certificate
+        dcert = parse_certificate(store.calibrations(dipole.session_id)[-1]["certificate_text"], "stored calibration")
+        a_dip = assess_spectrum(ss, args.standard, args.tier, rule, floor_v_per_m=floor_e_v_per_m(dcert, ss.freq_hz))
         for sid, a in ((probe.session_id, a_probe), (dipole.session_id, a_dip)):
             store.add_event(sid, "assessment", "info", a.verdict.statement, outcome=a.verdict.outcome,
                             standard=args.standard, tier=args.tier, rule=rule)

@@ -73,7 +73,8 @@ def _verify(store, args) -> int:
 
 
 _SENSOR = {1: "E probe", 2: "H probe", 3: "dipole + receiver"}
-_OUTCOME_STYLE = {"compliant": "green", "not compliant": "red", "undecided": "yellow"}
+_OUTCOME_STYLE = {"compliant": "green", "not compliant": "red", "undecided": "yellow",
+                  "conditional pass": "yellow", "conditional fail": "dark_orange", "not assessable": "grey50"}
 
 
 def _short_time(t):
@@ -96,7 +97,8 @@ def _sessions_table(rows, db):
               padding=(0, 1, 0, 0))
     for col, just in (("id", "right"), ("kind", "left"), ("instrument", "left"), ("start UTC", "left"),
                       ("span", "right"), ("data", "right"), ("events", "right"), ("verdict", "left")):
-        t.add_column(col, justify=just, no_wrap=col != "instrument", min_width=17 if col == "instrument" else None)
+        t.add_column(col, justify=just, no_wrap=col != "instrument",
+                     min_width={"instrument": 11, "verdict": 16}.get(col))
     for r in rows:
         inst = escape(r["model"] or "(no handshake)")
         if r["sensor_kind"]:

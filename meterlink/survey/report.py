@@ -80,7 +80,8 @@ def render_html(sv: dict, figures: dict[str, bytes]) -> str:
                                                f"{sv['band_lo_hz'] / 1e6:g} to {sv['band_hi_hz'] / 1e6:g} MHz "
                                                f"(at {sv['e_ref_freq_hz'] / 1e6:.1f} MHz)")),
               ("reference level check", _e(_check_status(sv))),
-              ("averaging time", _e(f"{sv['averaging_time_s'] / 60:g} min")),
+              ("averaging time", _e(f"{sv['averaging_time_s'] / 60:g} min" if sv["averaging_time_s"] else
+                                    "none in the standard: the highest single reading is judged")),
               ("follow-up threshold", _e(_followup(sv)))])]
     h += ["<h2 id='points'>Points</h2>",
           "<p class='note'>Values are RMS in time (power domain); spatial averages are sqrt(mean(E²)) over the "
