@@ -16,6 +16,7 @@ import math
 import os
 import threading
 import time
+import weakref
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -25,6 +26,7 @@ from meterlink.alarms import AlarmMachine, rule_value, run_command
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
 from meterlink.limits import most_restrictive_level, reference_level
+from meterlink.lock import StationLock
 from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
 from meterlink.storage import BatchWriter, Store, event_row
@@ -111,6 +113,9 @@ class Monitor:
         self.log = log or (lambda line: None)
         self._stop = threading.Event()
         self._mono0, self._utc0 = time.monotonic(), time.time()
+        # one monitor per station database, taken before the file is touched (meterlink/lock.py)
+        self._lock = StationLock(station.database, station.name).acquire()
+        weakref.finalize(self, self._lock.release)
         self.store = Store(station.database)
         self.conn = self.store.db.conn
         with self.store.write():
@@ -559,6 +564,7 @@ class Monitor:
                     p.kill()
                     p.wait()
             self.store.close()
+            self._lock.release()
 
     def _guard(self, fn, *args) -> None:
         """Run one step; a bug becomes an event and acquisition goes on."""
