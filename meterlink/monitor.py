@@ -22,10 +22,11 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from meterlink import calibrate, derived, spans
-from meterlink.alarms import AlarmMachine, rule_value, run_command
+from meterlink.alarms import AlarmMachine, command_call, rule_value
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
 from meterlink.limits import most_restrictive_level, reference_level
+from meterlink.hooks import STOP_WAIT_S, HookRunner
 from meterlink.lock import StationLock
 from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
@@ -121,7 +122,7 @@ class Monitor:
         with self.store.write():
             derived.ensure_schema(self.conn)
         self.station_id, prev = self._station_record()
-        self.procs: list = []
+        self.hooks = HookRunner()                        # alarm commands (meterlink/hooks.py)
         self.meters = [self._meter(m) for m in station.meters]
         self._backoff_max_s, self._link_factory = backoff_max_s, link_factory
         self._station_events: list[dict] = []
@@ -442,10 +443,8 @@ class Monitor:
         self._event(ms, f"alarm_{ev.kind}", sev, ev.message(), t=ev.t_utc, **ev.detail())
         for am in ms.alarms:
             if am.rule.name == ev.rule and am.rule.command:
-                try:
-                    self.procs.append(run_command(am.rule.command, ev))
-                except OSError as exc:
-                    self._event(ms, "alarm_command_failed", "error", f"{am.rule.command[0]}: {exc.strerror}")
+                args, env = command_call(am.rule.command, ev, self.st.name)
+                self.hooks.start(args, env, am.rule.command_timeout_s, label=f"{ms.cfg.name}/{ev.rule}/{ev.kind}")
 
     # -- commit --------------------------------------------------------------------------------
     def _commit(self) -> None:
@@ -552,19 +551,32 @@ class Monitor:
                 while (item := ms.link.get(0.0)) is not None:
                     self._handle(ms, item)
             self._tick(closing=True)
+            self._hook_outcomes(self.hooks.shutdown(STOP_WAIT_S))
             self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
             self._commit()
             with self.store.write():
                 self.conn.execute("UPDATE mon_station SET state='stopped', heartbeat_utc=? WHERE id=?",
                                   (time.time(), self.station_id))
-            for p in self.procs:
-                try:
-                    p.wait(timeout=5)
-                except Exception:  # noqa: BLE001 - a hung alarm command must not block shutdown
-                    p.kill()
-                    p.wait()
             self.store.close()
             self._lock.release()
+
+    def _hook_outcomes(self, outcomes) -> None:
+        """Alarm commands that ended badly become events (a clean exit 0 is not recorded)."""
+        for o in outcomes:
+            who = f"{o.argv0} ({o.label}{f', pid {o.pid}' if o.pid else ''})"
+            detail = {"hook": o.label, "command": o.argv0, "pid": o.pid, "returncode": o.returncode,
+                      "duration_s": round(o.duration_s, 3), "timeout_s": o.timeout_s}
+            if o.kind == "timeout":
+                self._event(None, "alarm_command_timeout", "error", f"{who} still running after {o.timeout_s:g} s: "
+                            "its process group was killed", **detail)
+            elif o.kind == "killed_at_stop":
+                self._event(None, "alarm_command_timeout", "warning", f"{who} still running when the monitor "
+                            "stopped: its process group was killed", at_stop=True, **detail)
+            elif o.kind in ("not_started", "skipped"):
+                self._event(None, "alarm_command_failed", "error", f"{who} not run: {o.error}", **detail)
+            elif o.returncode:
+                self._event(None, "alarm_command_failed", "warning", f"{who} exited with status {o.returncode}",
+                            **detail)
 
     def _guard(self, fn, *args) -> None:
         """Run one step; a bug becomes an event and acquisition goes on."""
@@ -594,7 +606,7 @@ class Monitor:
                             ms.blocks_out.append((band, blocks))
         self._certificates()
         self._commit()
-        self.procs = [p for p in self.procs if p.poll() is None]
+        self._hook_outcomes(self.hooks.outcomes())
         if not closing:
             self._retention()
 

@@ -52,6 +52,7 @@ class AlarmRule:
     min_duration_s: float = 0.0
     meters: tuple[str, ...] = ()          # empty: every meter
     command: tuple[str, ...] = ()         # argv of an external command, run per episode event
+    command_timeout_s: float = 10.0       # past this its whole process group is killed (meterlink.hooks)
 
 
 @dataclass(frozen=True)
@@ -243,7 +244,8 @@ def _alarm(d: _Doc, meters: set[str], windows: tuple[float, ...]) -> AlarmRule:
         d.fail("command", "expected a list of non-empty strings (an argument list, not a shell line)")
     a = AlarmRule(name=d.get("name", "str"), window_s=window, unit=unit, threshold=thr, clear=clear,
                   min_duration_s=d.get("min_duration_s", "num", 0.0, lo=0.0),
-                  meters=tuple(names), command=tuple(cmd))
+                  meters=tuple(names), command=tuple(cmd),
+                  command_timeout_s=d.get("command_timeout_s", "num", 10.0, lo=0.1, hi=3600.0))
     d.done()
     return a
 
