@@ -28,6 +28,7 @@ from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumRea
 from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.hooks import STOP_WAIT_S, HookRunner
 from meterlink.lock import StationLock
+from meterlink.notify import Notifier
 from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
 from meterlink.storage import BatchWriter, Store, event_row
@@ -123,6 +124,7 @@ class Monitor:
             derived.ensure_schema(self.conn)
         self.station_id, prev = self._station_record()
         self.hooks = HookRunner()                        # alarm commands (meterlink/hooks.py)
+        self.notify = Notifier()                         # systemd READY/WATCHDOG/STOPPING (meterlink/notify.py)
         self.meters = [self._meter(m) for m in station.meters]
         self._backoff_max_s, self._link_factory = backoff_max_s, link_factory
         self._station_events: list[dict] = []
@@ -525,12 +527,14 @@ class Monitor:
                                 backoff_max_s=self._backoff_max_s, wake=self._wake)
             ms.link.start(require_open=False)
         next_commit = time.monotonic() + self.commit_s
+        self.notify.ready(f"monitoring {self.st.name}: {len(self.meters)} meter(s)")
         try:
             more = False
             while not self._stop.is_set():
                 # Sleep until a link queues something or the next commit is due (no polling).
                 if not more:
                     self._wake.wait(max(0.0, next_commit - time.monotonic()))
+                self.notify.watchdog()      # only this loop pings: if it hangs, systemd restarts the unit
                 self._wake.clear()          # before draining: an item queued after this wakes us again
                 more = False
                 for ms in self.meters:
@@ -545,6 +549,7 @@ class Monitor:
                     self._guard(self._tick)
                     next_commit = time.monotonic() + self.commit_s
         finally:
+            self.notify.stopping(f"stopping {self.st.name}")
             for ms in self.meters:
                 ms.link.stop()
             for ms in self.meters:
@@ -559,6 +564,7 @@ class Monitor:
                                   (time.time(), self.station_id))
             self.store.close()
             self._lock.release()
+            self.notify.close()
 
     def _hook_outcomes(self, outcomes) -> None:
         """Alarm commands that ended badly become events (a clean exit 0 is not recorded)."""
