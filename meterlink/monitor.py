@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from meterlink import calibrate, derived, spans
+from meterlink import calibrate, derived, retention
 from meterlink.alarms import AlarmMachine, command_call, rule_value
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
@@ -29,6 +29,7 @@ from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.hooks import STOP_WAIT_S, HookRunner
 from meterlink.lock import StationLock
 from meterlink.notify import Notifier
+from meterlink.retention import thin_readings  # noqa: F401 - kept importable from here
 from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
 from meterlink.storage import BatchWriter, Store, event_row
@@ -495,27 +496,26 @@ class Monitor:
                             f"{ms.cert.due_date.isoformat()} ({days} days)", due_date=ms.cert.due_date.isoformat())
 
     def _retention(self) -> None:
-        """Thin raw readings older than the retention period, a chunk at a time, never past the derived record."""
+        """Thin every growing table to its age limit (meterlink/retention.py), one chunk per commit tick."""
+        keep = self.st.retention
         if not self._retention_todo:
             if time.monotonic() < self._retention_next:
                 return
-            self._retention_next = time.monotonic() + self.st.retention.check_every_s
-            cutoff = self.now_utc() - self.st.retention.raw_days * 86400.0
-            for ms in self.meters:
-                end = derived.last_final_block_end(self.conn, self.station_id, ms.cfg.name)
-                if end is not None:
-                    safe = min(cutoff, end - max(self.st.windows_s) - 3.0 * ms.cfg.interval_s)
-                    self._retention_todo.append((ms, safe, 0))
+            self._retention_next = time.monotonic() + keep.check_every_s
+            self._retention_todo = retention.plan(
+                self.conn, keep, self.station_id, [(ms.cfg.name, ms.session_id, ms.cfg.interval_s) for ms in self.meters],
+                self.now_utc(), max(self.st.windows_s))
             return
-        ms, before, done = self._retention_todo[0]
-        n = thin_readings(self.store, ms.session_id, before, self.st.retention.chunk_rows)
-        if n < self.st.retention.chunk_rows:
+        task = self._retention_todo[0]
+        if task.step(self.store, keep.chunk_rows) < keep.chunk_rows:
             self._retention_todo.pop(0)
-            if done + n:
-                self._event(ms, "retention", "info", f"{done + n} raw reading(s) before {_iso(before)} thinned "
-                            "to the derived series", removed=done + n, before_utc=before)
-        else:
-            self._retention_todo[0] = (ms, before, done + n)
+            if task.removed:
+                ms = next((m for m in self.meters if m.cfg.name == task.meter), None)
+                what = {"readings": "raw reading(s)", "status": "status row(s)", "events": "event(s)",
+                        "derived": "derived row(s) (blocks and running averages)"}[task.table]
+                self._event(ms, "retention", "info", f"{task.removed} {what} before {_iso(task.before_utc)} deleted"
+                            + (" (the derived series keeps them)" if task.table == "readings" else ""),
+                            table=task.table, removed=task.removed, before_utc=task.before_utc)
 
     # -- main loop -----------------------------------------------------------------------------
     def run(self) -> None:
@@ -615,23 +615,6 @@ class Monitor:
         self._hook_outcomes(self.hooks.outcomes())
         if not closing:
             self._retention()
-
-
-def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) -> int:
-    """Delete up to ``limit`` raw readings and spectra of a session older than before_utc (with their values)."""
-    conn = store.db.conn
-    with store.write():
-        gone = spans.delete_before(conn, session_id, before_utc, limit, dependents=[("field_values", "reading_id")])
-        left = limit - gone
-        sp = [r[0] for r in conn.execute("SELECT id FROM spectra WHERE session_id=? AND t_utc < ? LIMIT ?",
-                                         (session_id, before_utc, left))] if left > 0 else []
-        if sp:
-            marks = ",".join("?" * len(sp))
-            conn.execute(f"DELETE FROM spectrum_values WHERE spectrum_line_id IN (SELECT id FROM spectrum_lines "
-                         f"WHERE spectrum_id IN ({marks}))", sp)
-            conn.execute(f"DELETE FROM spectrum_lines WHERE spectrum_id IN ({marks})", sp)
-            conn.execute(f"DELETE FROM spectra WHERE id IN ({marks})", sp)
-    return gone + len(sp)
 
 
 def _iso(t: float | None) -> str:
