@@ -38,7 +38,9 @@ class StationLock:
             # O_CLOEXEC: alarm hooks and other children must not inherit (and so keep) the lock
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o640)
         except OSError as exc:
-            raise StationLockedError(f"{self.path}: cannot open the station lock file: {exc.strerror}") from None
+            if not self.path.parent.is_dir():
+                raise MeterlinkError(f"{self.path.parent}: the station database's folder does not exist") from None
+            raise MeterlinkError(f"{self.path}: cannot open the station lock file: {exc.strerror}") from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
