@@ -88,9 +88,9 @@ class HookRunner:
             p = subprocess.Popen(argv, env=hook_environment(env), cwd="/", stdin=subprocess.DEVNULL,
                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, close_fds=True,
                                  start_new_session=True)
-        except OSError as exc:
-            self._done.put(HookOutcome("not_started", label, argv[0], None, None, 0.0, timeout_s,
-                                       exc.strerror or str(exc)))
+        except (OSError, ValueError) as exc:     # ValueError: a NUL inside an argument or variable
+            why = (exc.strerror if isinstance(exc, OSError) else None) or str(exc)
+            self._done.put(HookOutcome("not_started", label, argv[0], None, None, 0.0, timeout_s, why))
             return None
         th = threading.Thread(target=self._watch, args=(p, t0, timeout_s, label, argv[0]),
                               name=f"meterlink-hook-{p.pid}", daemon=True)

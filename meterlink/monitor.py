@@ -24,9 +24,9 @@ import numpy as np
 from meterlink import calibrate, derived, retention
 from meterlink.alarms import AlarmMachine, command_call, rule_value
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
+from meterlink.hooks import STOP_WAIT_S, HookRunner
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
 from meterlink.limits import most_restrictive_level, reference_level
-from meterlink.hooks import STOP_WAIT_S, HookRunner
 from meterlink.lock import StationLock
 from meterlink.notify import Notifier
 from meterlink.retention import thin_readings  # noqa: F401 - kept importable from here

@@ -115,6 +115,16 @@ def test_shutdown_is_bounded_and_kills_running_groups(tmp_path):
     assert runner.start(["/bin/true"], {}, 5.0) is None and runner.outcomes()[0].kind == "skipped"
 
 
+def test_unstartable_hooks_become_outcomes(tmp_path):
+    runner = HookRunner()
+    assert runner.start([str(tmp_path / "missing")], {}, 5.0, label="a") is None
+    assert runner.start(["/bin/true", "x\0y"], {}, 5.0, label="b") is None        # NUL from a hostile name
+    assert runner.start(["/bin/true"], {"V": "x\0y"}, 5.0, label="c") is None
+    outs = runner.shutdown(1.0)
+    assert [(o.kind, o.label) for o in outs] == [("not_started", "a"), ("not_started", "b"), ("not_started", "c")]
+    assert "No such file" in outs[0].error and "null" in outs[1].error
+
+
 STATION = """
 format = "meterlink-station/1"
 [station]
