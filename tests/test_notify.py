@@ -83,9 +83,10 @@ def test_monitor_ready_watchdog_stopping(tmp_path):
     assert texts[0].splitlines()[:2] == ["READY=1", f"MAINPID={p.pid}"], texts[:3]
     pings = [t for t, m in msgs if m == "WATCHDOG=1"]
     assert len(pings) >= 6
-    gaps = [b - a for a, b in zip(pings, pings[1:])]
-    # a quarter of WATCHDOG_USEC (0.5 s) apart, never near the 2 s the service manager would allow
-    assert min(gaps) >= 0.4 and max(gaps) < 1.5, gaps
+    # a quarter of WATCHDOG_USEC (0.5 s) apart on average, well inside the 2 s the service manager allows
+    # (arrival times, not send times: a mean, since a busy test process may read two at once)
+    mean_gap = (pings[-1] - pings[0]) / (len(pings) - 1)
+    assert 0.45 <= mean_gap < 1.5, pings
     assert texts[-1].splitlines()[0] == "STOPPING=1"
     assert texts.index(texts[-1]) > texts.index(next(m for m in texts if m == "WATCHDOG=1"))
 
