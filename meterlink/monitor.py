@@ -16,7 +16,6 @@ import math
 import os
 import threading
 import time
-import weakref
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -106,8 +105,20 @@ class MeterState:
 class Monitor:
     """Run a station until ``stop()``; ``time_scale`` > 1 only for an accelerated simulator."""
 
-    def __init__(self, station: Station, *, time_scale: float = 1.0, log=None, commit_s: float = 0.5,
-                 backoff_max_s: float = 30.0, link_factory=None, calibrate_s: float = 1.0):
+    def __init__(self, station: Station, **options):
+        """Take the station's lock (meterlink/lock.py), then open it (``_open``; options as there).
+        A failure while opening gives the lock and the database back at once."""
+        self._lock = StationLock(station.database, station.name).acquire()
+        try:
+            self._open(station, **options)
+        except BaseException:
+            if getattr(self, "store", None) is not None:
+                self.store.close()
+            self._lock.release()
+            raise
+
+    def _open(self, station: Station, *, time_scale: float = 1.0, log=None, commit_s: float = 0.5,
+              backoff_max_s: float = 30.0, link_factory=None, calibrate_s: float = 1.0):
         self.st, self.time_scale, self.commit_s = station, float(time_scale), commit_s
         # Readings are calibrated in batches at most calibrate_s of device time old: a call has a
         # fixed cost (interpolants, budget) that dominates the monitor's CPU at a few readings/s.
@@ -116,9 +127,6 @@ class Monitor:
         self.log = log or (lambda line: None)
         self._stop = threading.Event()
         self._mono0, self._utc0 = time.monotonic(), time.time()
-        # one monitor per station database, taken before the file is touched (meterlink/lock.py)
-        self._lock = StationLock(station.database, station.name).acquire()
-        weakref.finalize(self, self._lock.release)
         self.store = Store(station.database)
         self.conn = self.store.db.conn
         with self.store.write():

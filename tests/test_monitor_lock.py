@@ -116,3 +116,20 @@ def test_lock_in_process(tmp_path):
         else:
             raise AssertionError("second lock taken")
     StationLock(db).acquire().release()          # free again after release
+
+
+def test_failed_open_gives_the_lock_back(tmp_path):
+    from meterlink.errors import CertificateError
+    from meterlink.monitor import Monitor
+    from meterlink.station import parse_station
+
+    st = parse_station(STATION.replace("PORT", "/dev/null").replace('"demo-probe"', '"missing-cert.toml"'),
+                       tmp_path / "station.toml")
+    for _ in range(2):       # the second attempt meets the same error, not a lock left by the first
+        try:
+            Monitor(st)
+        except CertificateError as exc:
+            assert "missing-cert.toml" in str(exc)
+        else:
+            raise AssertionError("a missing certificate was accepted")
+    StationLock(st.database).acquire().release()
