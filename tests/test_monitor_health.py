@@ -205,7 +205,7 @@ def test_retention_thins_raw_keeps_blocks_and_recording_goes_on(tmp_path):
     assert max(b - a for a, b in zip(t, t[1:])) <= 3 * 10.0 + 1.0
     assert len(t) >= 0.95 * (t[-1] - t[0]) / 10.0
     assert not _events(conn, "gap") and not _events(conn, "internal_error")
-    # status rows (1.2 MB a meter a day at 1 Hz) are thinned to their own, shorter, limit
+    # status rows (about 1.2 MB a meter a day) are thinned to their own, shorter, limit
     st_ev = [d for _, _, d in _events(conn, "retention") if d["table"] == "status"]
     assert st_ev and sum(d["removed"] for d in st_ev) > 0
     st_before = max(d["before_utc"] for d in st_ev)
