@@ -23,6 +23,7 @@ import pytest
 from meterlink.cli import main
 from meterlink.htmlpage import e as html_text
 from meterlink.monitor import Monitor
+from meterlink.render import escape as render_escape
 from meterlink.safetext import clean_text, csv_cell
 from meterlink.station import parse_station
 from meterlink.survey.report import write_report
@@ -66,6 +67,8 @@ def test_clean_text_and_csv_cell_rules():
     for s in ("=1+1", "+1", "-1", "@SUM(A1)", "\t=1", "\x00=1"):
         assert csv_cell(s).startswith("'"), s
     assert csv_cell("\r=1") == "'\\r=1" and csv_cell(-5.0) == -5.0 and csv_cell("north") == "north"
+    # the terminal renderers: rich markup escaped and control characters shown, not sent
+    assert render_escape("\x1b[1m[b]x\x00") == "\\x1b[1m\\[b]x\\x00"
 
 
 @pytest.fixture(scope="module")
