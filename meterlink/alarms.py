@@ -15,10 +15,9 @@ a time average would compare with the level something the standard does not (see
 
 from __future__ import annotations
 
-import os
-import subprocess
 from dataclasses import dataclass
 
+from meterlink.hooks import iso_ms
 from meterlink.station import AlarmRule
 from meterlink.units import Z0_OHM
 
@@ -72,10 +71,20 @@ class AlarmEvent:
         ren = {"kind": "phase", "t_utc": "at_utc"}
         return {ren.get(k, k): getattr(self, k) for k in self.__dataclass_fields__}
 
-    def environment(self) -> dict[str, str]:
-        """The event as METERLINK_ALARM_* environment variables for an external command."""
-        return {f"METERLINK_ALARM_{k.upper()}": (f"{v:.9g}" if isinstance(v, float) else str(v))
-                for k, v in self.detail().items()}
+    def environment(self, station: str = "") -> dict[str, str]:
+        """The event as METERLINK_ALARM_* variables for an external command: times as ISO 8601 UTC
+        with milliseconds (``*_UTC``) and as POSIX seconds to the millisecond (``*_EPOCH_S``)."""
+        env = {}
+        for k, v in self.detail().items():
+            key = f"METERLINK_ALARM_{k.upper()}"
+            if k.endswith("_utc"):
+                env[key] = "" if v is None else iso_ms(v)
+                env[key[:-4] + "_EPOCH_S"] = "" if v is None else f"{v:.3f}"
+            else:
+                env[key] = repr(v) if isinstance(v, float) else str(v)
+        if station:
+            env["METERLINK_ALARM_STATION"] = station
+        return env
 
 
 class AlarmMachine:
@@ -149,13 +158,9 @@ def percent_rules_instantaneous(standard: str, tier: str, freq) -> bool:
         return False
 
 
-def run_command(argv: tuple[str, ...], ev: AlarmEvent) -> subprocess.Popen | None:
-    """Start an external command for an event: argv plus kind, rule, meter, time, value as arguments,
-    everything also as METERLINK_ALARM_* variables. No shell is involved. Returns the process."""
-    if not argv:
-        return None
+def command_call(argv: tuple[str, ...], ev: AlarmEvent, station: str = "") -> tuple[list[str], dict[str, str]]:
+    """(argument list, alarm variables) of an external command for an event: argv plus phase, rule,
+    meter, time (POSIX s to the ms), value and unit. No shell is involved: data stays data.
+    meterlink.hooks runs it with only these variables, PATH and LANG in its environment."""
     args = [*argv, ev.kind, ev.rule, ev.meter, f"{ev.t_utc:.3f}", f"{ev.value:.6g}", ev.unit]
-    env = dict(os.environ)
-    env.update(ev.environment())
-    return subprocess.Popen(args, env=env, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL, close_fds=True, start_new_session=True)
+    return args, ev.environment(station)

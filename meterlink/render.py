@@ -9,13 +9,19 @@ import datetime as _dt
 import math
 
 from rich.console import Group
-from rich.markup import escape
+from rich.markup import escape as _escape_markup
 from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
 from meterlink.cli import SAFETY_LINE
+from meterlink.safetext import clean_text
 from meterlink.units import format_frequency
+
+
+def escape(text) -> str:
+    """Text for rich markup: markup escaped, control characters shown as escapes (meterlink.safetext)."""
+    return _escape_markup(clean_text(text))
 
 #: Our own palette for outcomes: the word is always printed too, colour is never the only cue.
 OUTCOME_STYLE = {"compliant": "bold white on dark_green", "not compliant": "bold white on red3",

@@ -7,7 +7,8 @@ import sys
 
 import pytest
 
-from meterlink.alarms import AlarmMachine, rule_value, run_command
+from meterlink.alarms import AlarmMachine, command_call, rule_value
+from meterlink.hooks import HookRunner
 from meterlink.station import AlarmRule
 from meterlink.units import Z0_OHM
 
@@ -64,8 +65,11 @@ def test_external_command_gets_argv_and_environment(tmp_path):
     rule = AlarmRule("r; rm -rf /", 360, "v_per_m", threshold=1, clear=1,
                      command=(sys.executable, "-c", script, str(out)))
     _, ev = _run(rule, [2])
-    p = run_command(rule.command, ev[0])
-    assert p.wait(20) == 0
+    runner = HookRunner()
+    args, env = command_call(rule.command, ev[0])
+    assert runner.start(args, env, 20.0) is not None
+    (o,) = runner.shutdown(20.0)
+    assert (o.kind, o.returncode) == ("exited", 0)
     text = out.read_text()
     assert text.startswith("start r; rm -rf / m1 0.000 2 v_per_m|r; rm -rf /|start")   # data stays data
 

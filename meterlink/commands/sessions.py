@@ -89,6 +89,8 @@ def _sessions_table(rows, db):
     from rich.markup import escape
     from rich.table import Table
 
+    from meterlink.safetext import clean_text
+
     from meterlink.units import format_frequency
 
     from rich import box
@@ -100,9 +102,9 @@ def _sessions_table(rows, db):
         t.add_column(col, justify=just, no_wrap=col != "instrument",
                      min_width={"instrument": 11, "verdict": 16}.get(col))
     for r in rows:
-        inst = escape(r["model"] or "(no handshake)")
+        inst = escape(clean_text(r["model"] or "(no handshake)"))     # device strings: no control codes
         if r["sensor_kind"]:
-            inst += f"\n{_SENSOR.get(r['sensor_kind'], '?')} {escape(r['probe_serial'] or '')}"
+            inst += f"\n{_SENSOR.get(r['sensor_kind'], '?')} {escape(clean_text(r['probe_serial'] or ''))}"
         if r["freq_hz"]:
             inst += f"\nat {format_frequency(r['freq_hz'])}"
         elif r["band_lo_hz"] and r["band_hi_hz"]:
@@ -125,12 +127,14 @@ def _events_table(rows, sid):
     from rich.markup import escape
     from rich.table import Table
 
+    from meterlink.safetext import clean_text
+
     t = Table(title=f"events of session {sid}", title_justify="left")
     for col in ("time", "severity", "kind", "message"):
         t.add_column(col)
     style = {"warning": "yellow", "error": "red"}
     for e in rows:
         sev = e["severity"]
-        t.add_row(_short_time(e["t_utc"]), f"[{style.get(sev, 'default')}]{escape(sev)}[/]", escape(e["kind"]),
-                  escape(e["message"] or ""))
+        t.add_row(_short_time(e["t_utc"]), f"[{style.get(sev, 'default')}]{escape(sev)}[/]", escape(clean_text(e["kind"])),
+                  escape(clean_text(e["message"] or "")))
     return t
