@@ -2,7 +2,9 @@
 
 The controller's apply(...) returns the device tick (ms) from which readings see the new set-up
 (None if it cannot tell: then `settle_readings` readings are discarded). Only readings whose
-whole integration time lies after that tick are kept.
+whole integration time lies after that tick are kept: a reading's TICK is the middle of its
+integration, so it must be at least half an interval later. The controller must take that tick
+at the same instant as it switches (simulators.lab.LabMeter.apply holds the device clock for it).
 """
 
 from __future__ import annotations
@@ -44,7 +46,8 @@ class MeterBench:
     def apply(self, freq_hz, e_v_per_m, direction_world, rotator_deg, tilt_deg) -> None:
         tick = self.controller.apply(freq_hz, e_v_per_m, direction_world, rotator_deg, tilt_deg)
         self._after_tick = None if tick is None else float(tick) + (self.interval_ms or 0) / 2
-        self._skip = self.settle_readings if tick is None else 0
+        # interval unknown: a reading timed after the tick may still have begun before it
+        self._skip = self.settle_readings if tick is None or not self.interval_ms else 0
 
     def set_temperature(self, temp_c: float | None) -> None:
         """The lab controller's climatic chamber (temperature steps); LabError if it has none."""
