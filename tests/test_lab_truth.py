@@ -2,6 +2,7 @@
 
 import bisect
 import datetime as dt
+import json
 import math
 
 import numpy as np
@@ -219,7 +220,8 @@ def test_every_reading_after_the_returned_tick_saw_the_new_set_up(tmp_path):
             last = applied[-1][0]
             deadline = time.monotonic() + 10
             while time.monotonic() < deadline:   # until the device has made readings past the last change
-                if any(r.get("event") == "reading" and r["tick_ms"] > last + 300 for r in read_truth(truth)):
+                done = truth.read_text(encoding="utf-8").split("\n")[:-1]   # whole lines only: it is live
+                if any('"event":"reading"' in x and json.loads(x)["tick_ms"] > last + 300 for x in done[-5:]):
                     break
                 time.sleep(0.01)
     readings = [r for r in read_truth(truth) if r.get("event") == "reading" and r["tick_ms"] >= applied[0][0]]
