@@ -235,13 +235,16 @@ def test_every_reading_after_the_returned_tick_saw_the_new_set_up(tmp_path):
     assert checked > 50
 
 
-def test_linearity_steps_take_only_readings_of_their_own_set_up():
+@pytest.mark.parametrize("start_tick_ms", [0, 2**32 - 20_000], ids=["fresh", "tick-wraps-mid-plan"])
+def test_linearity_steps_take_only_readings_of_their_own_set_up(start_tick_ms):
     """Alternating 20 V/m and 0.2 V/m steps through MeterBench over the pty: no step holds a reading
     of the step before (the host side of item 11: the tick filter with half an interval).
 
     Frequent thread switches (sys.setswitchinterval) pre-empt the lab thread inside apply(); the
     race itself is shown deterministically by the two tests above. Counts go as E^2, so one leaked
-    reading is a factor of about 10^4.
+    reading is a factor of about 10^4. Started 20 s of device time before the 32-bit TICK wraps
+    (docs/protocol.md: TICK is u32 ms), the link's unwrapped ticks and the controller's raw tick
+    part ways mid-plan: compared plainly, every old reading looked newer than the set-up.
     """
     import sys
 
@@ -251,7 +254,7 @@ def test_linearity_steps_take_only_readings_of_their_own_set_up():
     old = sys.getswitchinterval()
     sys.setswitchinterval(1e-5)
     try:
-        with LabMeter(seed=4, speed=300) as lm:
+        with LabMeter(seed=4, speed=300, start_tick_ms=start_tick_ms) as lm:
             with MeterLink(lm.port, interval_ms=100) as link:
                 bench = MeterBench(lm, link)
                 bench.wait_connected()

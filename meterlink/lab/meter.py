@@ -13,12 +13,23 @@ import time
 
 import numpy as np
 
+from meterlink.clock import HALF_TICK
 from meterlink.errors import LinkError
 from meterlink.lab.session import LabError
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading
-from meterlink.protocol import AXIS_OVER_X
+from meterlink.protocol import AXIS_OVER_X, U32_MOD
 
 OVER_ANY = AXIS_OVER_X | (AXIS_OVER_X << 1) | (AXIS_OVER_X << 2)
+
+
+def tick_after_ms(tick_ms: float, ref_ms: float) -> float:
+    """Device ms from ref to tick across the 32-bit TICK wrap (negative: tick is earlier).
+
+    The link hands out unwrapped ticks, the controller the device's raw one: compared plainly,
+    after a wrap every old reading would look later than the set-up.
+    """
+    d = (tick_ms - ref_ms) % U32_MOD
+    return d - U32_MOD if d >= HALF_TICK else d
 
 
 class MeterBench:
@@ -68,7 +79,7 @@ class MeterBench:
                 self.interval_ms = item.interval_ms
             if not isinstance(item, Reading):
                 continue
-            if self._after_tick is not None and item.tick_ms < self._after_tick:
+            if self._after_tick is not None and tick_after_ms(item.tick_ms, self._after_tick) < 0:
                 continue
             if self._skip:
                 self._skip -= 1
