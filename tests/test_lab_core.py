@@ -85,11 +85,19 @@ ANTENNA_ROWS_U_DB = {"power measurement": 0.06419, "mismatch": 0.09144, "antenna
 TEM_ROWS_U_DB = {"power measurement": 0.06419, "mismatch": 0.09144, "line impedance": 0.04965,
                  "septum spacing": 0.03332, "field uniformity": 0.28868, "positioning": 0.11547,
                  "probe perturbation": 0.11547, "ambient temperature": 0.02887, "repeatability": 0.02}
+# Transfer probe: the field is what the reference probe indicates, its certificate already in field dB
+#   transfer standard  0.8 dB, k = 2: 0.8 / 2 = 0.40000                               0.160000
+#   field uniformity between the two positions 0.5 / sqrt3 = 0.28868                  0.083333
+#   positioning, perturbation, temperature, repeatability as above                    0.027900
+#   sum u^2 = 0.271233 -> u_c = 0.52080 dB, U = 1.0416 dB
+TRANSFER_ROWS_U_DB = {"transfer standard": 0.40000, "field uniformity": 0.28868, "positioning": 0.11547,
+                      "probe perturbation": 0.11547, "ambient temperature": 0.02887, "repeatability": 0.02}
 
 
 @pytest.mark.parametrize("method, rows, u_c, big_u", [
     (fieldgen.FieldMethod("standard-antenna"), ANTENNA_ROWS_U_DB, 0.39838, 0.7968),
     (fieldgen.FieldMethod("tem-cell", 50.0, 0.15), TEM_ROWS_U_DB, 0.35678, 0.7136),
+    (fieldgen.FieldMethod("transfer-probe"), TRANSFER_ROWS_U_DB, 0.52080, 1.0416),
 ])
 def test_budget_hand_worked_db_inputs_have_sensitivity_one(method, rows, u_c, big_u):
     b = calibration_budget(dataclasses.replace(SESSION, method=method), type_a_db=0.02)
