@@ -142,10 +142,13 @@ def run(args) -> int:
     previous = load_certificate(args.previous) if args.previous else None
     out = Path(args.out)
     reg_path = Path(args.register) if args.register else register.default_register(out)
-    _fresh_out(out)
     if args.action == "run":
         if not args.speed > 0 or args.repeats < 2:
             raise MeterlinkError("--speed must be > 0 and --repeats at least 2 (Type A needs repeats)")
+        if args.temperatures:
+            _temperatures(args.temperatures)   # bad input first, before the folder is looked at
+    _fresh_out(out)
+    if args.action == "run":
         results = _simulated(session, args)
     else:
         results = pr.import_csv(args.csv, session)
