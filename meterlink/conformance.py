@@ -383,8 +383,12 @@ def _eval_version(o: Observations):
     return ok, ev
 
 
-def _segments(frames: list[Received]) -> tuple[list[list[Received]], int]:
-    """Split frames at BOOT or at a restart without BOOT; also count the latter."""
+def _segments(frames: list[Received], slack_ms: int = 0) -> tuple[list[list[Received]], int]:
+    """Split frames at BOOT or at a restart without BOOT; also count the latter.
+
+    A reading's TICK is the middle of its integration, so it may trail a reply sent just before it
+    by up to half an interval: only a TICK going back by more than slack_ms (the interval) is a restart.
+    """
     segs: list[list[Received]] = [[]]
     silent = 0
     for r in frames:
@@ -393,7 +397,7 @@ def _segments(frames: list[Received]) -> tuple[list[list[Received]], int]:
             segs.append([r])
             continue
         if prev is not None and seq_delta(prev.seq, r.frame.seq) != 1 and r.frame.seq < RESTART_SEQ_MAX \
-                and _after(prev.tick_ms, r.frame.tick_ms) < 0:
+                and _after(prev.tick_ms, r.frame.tick_ms) < -slack_ms:
             silent += 1
             segs.append([r])
             continue
@@ -402,7 +406,7 @@ def _segments(frames: list[Received]) -> tuple[list[list[Received]], int]:
 
 
 def _eval_framing(o: Observations):
-    segs, _ = _segments(o.frames)
+    segs, _ = _segments(o.frames, o.interval_ms)
     steps: dict[int, int] = {}
     for s in segs:
         for a, b in zip(s, s[1:]):
@@ -550,7 +554,7 @@ def _eval_settings(o: Observations):
 
 def _eval_boot(o: Observations):
     boots = [r for r in o.frames if r.frame.type == FrameType.BOOT]
-    _, silent = _segments(o.frames)
+    _, silent = _segments(o.frames, o.interval_ms)
     bad = []
     for r in boots:
         try:

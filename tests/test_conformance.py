@@ -187,3 +187,22 @@ def test_interrupted_check_restores_the_meter(tmp_path):
         finally:
             link.close()
     assert after == before
+
+
+def test_reading_trailing_a_reply_by_half_an_interval_is_no_restart():
+    """docs/protocol.md: a reading's TICK is the middle of its integration, so a reading sent just after a
+    reply may carry an earlier TICK (by up to half the interval); with SEQ stepping by 2 that once read
+    as a restart without BOOT under load. A TICK back by more than the interval still is one."""
+    from meterlink.commander import Received
+    from meterlink.conformance import Observations, evaluate
+    from meterlink.protocol import Frame
+
+    def frames(items):
+        return [Received(Frame(t, s, tick, bytes(14) if t == FrameType.AXES else b""), 0.0) for t, s, tick in items]
+
+    trailing = [(FrameType.ACK, 10, 1000), (FrameType.AXES, 12, 950), (FrameType.AXES, 14, 1150)]
+    res = {r.key: r for r in evaluate(Observations(frames=frames(trailing), interval_ms=200))}
+    assert res["boot"].status == "skip", res["boot"].evidence
+    restart = [(FrameType.ACK, 10, 5000), (FrameType.AXES, 12, 40)]
+    res = {r.key: r for r in evaluate(Observations(frames=frames(restart), interval_ms=200))}
+    assert res["boot"].status == "fail" and "1 restart(s) without BOOT" in res["boot"].evidence
