@@ -239,7 +239,10 @@ def _alarm(d: _Doc, meters: set[str], windows: tuple[float, ...]) -> AlarmRule:
     clear = d.get("clear", "num", thr, positive=True)
     if clear > thr:
         d.fail("clear", f"must not exceed threshold {thr:g}")
-    window = d.get("window_s", "num", windows[0], positive=True)
+    window = float(d.get("window_s", "num", windows[0], positive=True))
+    if window not in windows:   # the monitor evaluates alarms only on the running averages it computes
+        d.fail("window_s", f"{window:g} s is not one of the station's averaging windows (assessment.windows_s = "
+                           f"[{', '.join(f'{w:g}' for w in windows)}]): this alarm could never fire")
     names = d.get("meters", "list", [])
     for i, n in enumerate(names):
         if not isinstance(n, str) or n not in meters:

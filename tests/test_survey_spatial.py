@@ -63,7 +63,7 @@ def _sample(e, h=1.5, u=1.0, coverage=1.0, e_max=None):
 
 
 def test_assess_spatial_point_hand_worked():
-    # Far-field E scales with sqrt(P) (E = sqrt(30 P G) / d): 250 W -> 400 W is a factor sqrt(1.6) on E.
+    # Far-field E scales with sqrt(P) (E = sqrt(Z0 P G / (4 pi)) / d): 250 W -> 400 W is a factor sqrt(1.6) on E.
     plan = _plan(sources=(Source("A", 900e6, power_w=250.0, max_power_w=400.0), Source("B", 100e6)),
                  followup=FollowUp(percent_field=15.0))
     ref = broadband_reference("icnirp-1998", "public", (30e6, 6e9))
