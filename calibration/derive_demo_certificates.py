@@ -23,6 +23,7 @@ if __package__ in (None, ""):
 from meterlink.calibrate import linearise  # noqa: E402
 from meterlink.certificate import AxisCalibration, DipoleCertificate, ProbeCertificate, dump_certificate  # noqa: E402
 from meterlink.uncertainty import Component  # noqa: E402
+from meterlink.units import antenna_factor_db_per_m  # noqa: E402
 from simulators import instruments as sim  # noqa: E402
 
 LAB = "Quillmoor Field Metrology Laboratory (invented)"
@@ -130,7 +131,7 @@ def measure_probe(model: sim.ProbeModel, rng, serial: str, number: str) -> Probe
 def _bare_receiver(model: sim.ReceiverModel, with_cable: bool) -> sim.ReceiverModel:
     """The same receiver fed from the lab's generator: no antenna (AF = 0 dB/m), with or without the cable."""
     lo, hi = 1e6, 1e11
-    af0 = [(f, 20 * math.log10(f / 1e6) - 29.77) for f in (lo, hi)]
+    af0 = [(f, float(antenna_factor_db_per_m(0.0, f))) for f in (lo, hi)]   # the gain that makes AF = 0 dB/m
     cable = model.cable_loss_db if with_cable else [(lo, 0.0), (hi, 0.0)]
     return dataclasses.replace(model, antenna_gain_dbi=af0, cable_loss_db=cable)
 

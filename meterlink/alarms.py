@@ -6,14 +6,18 @@ reference level (100 S / S_ref with the plane-wave S = E^2 / Z0). An episode sta
 has stayed at or above ``threshold`` for ``min_duration_s`` (its start time is the first crossing),
 and ends at the first value below ``clear`` (<= threshold: the hysteresis band). Incomplete windows
 change nothing. Each episode yields three events: start, peak and end.
+
+Where the station's standard prescribes no averaging time (e.g. ICNIRP 1998 below 100 kHz), a rule
+in percent of a reference level is fed each instantaneous value instead of its window's average:
+a time average would compare with the level something the standard does not (see
+:func:`percent_rules_instantaneous`).
 """
 
 from __future__ import annotations
 
-import os
-import subprocess
 from dataclasses import dataclass
 
+from meterlink.hooks import iso_ms
 from meterlink.station import AlarmRule
 from meterlink.units import Z0_OHM
 
@@ -49,11 +53,13 @@ class AlarmEvent:
     episode_start_utc: float
     peak_t_utc: float
     peak_value: float
+    basis: str = "average"          # "average" over window_s, or "instantaneous"
 
     def message(self) -> str:
         u = UNIT_LABEL[self.unit]
         if self.kind == "start":
-            return (f"alarm {self.rule} on {self.meter}: {self.window_s:g} s average {self.value:.4g} {u} "
+            what = "instantaneous value" if self.basis == "instantaneous" else f"{self.window_s:g} s average"
+            return (f"alarm {self.rule} on {self.meter}: {what} {self.value:.4g} {u} "
                     f">= {self.threshold:g} {u}")
         if self.kind == "peak":
             return f"alarm {self.rule} on {self.meter}: peak {self.peak_value:.4g} {u}"
@@ -65,17 +71,29 @@ class AlarmEvent:
         ren = {"kind": "phase", "t_utc": "at_utc"}
         return {ren.get(k, k): getattr(self, k) for k in self.__dataclass_fields__}
 
-    def environment(self) -> dict[str, str]:
-        """The event as METERLINK_ALARM_* environment variables for an external command."""
-        return {f"METERLINK_ALARM_{k.upper()}": (f"{v:.9g}" if isinstance(v, float) else str(v))
-                for k, v in self.detail().items()}
+    def environment(self, station: str = "") -> dict[str, str]:
+        """The event as METERLINK_ALARM_* variables for an external command: times as ISO 8601 UTC
+        with milliseconds (``*_UTC``) and as POSIX seconds to the millisecond (``*_EPOCH_S``)."""
+        env = {}
+        for k, v in self.detail().items():
+            key = f"METERLINK_ALARM_{k.upper()}"
+            if k.endswith("_utc"):
+                env[key] = "" if v is None else iso_ms(v)
+                env[key[:-4] + "_EPOCH_S"] = "" if v is None else f"{v:.3f}"
+            else:
+                env[key] = repr(v) if isinstance(v, float) else str(v)
+        if station:
+            env["METERLINK_ALARM_STATION"] = station
+        return env
 
 
 class AlarmMachine:
     """State of one rule on one series; ``update`` takes each running-average value in order."""
 
-    def __init__(self, rule: AlarmRule, meter: str, band: str = "total"):
+    def __init__(self, rule: AlarmRule, meter: str, band: str = "total", instantaneous: bool = False):
         self.rule, self.meter, self.band = rule, meter, band
+        #: fed instantaneous values: a percent-of-level rule where the standard has no averaging time
+        self.instantaneous = bool(instantaneous) and rule.unit != "v_per_m"
         self.state = IDLE
         self.t_on: float | None = None
         self.peak_t: float | None = None
@@ -85,7 +103,7 @@ class AlarmMachine:
     def _event(self, kind: str, t: float, v: float) -> AlarmEvent:
         r = self.rule
         return AlarmEvent(kind, r.name, self.meter, self.band, t, v, r.unit, r.threshold, r.clear, r.window_s,
-                          self.t_on, self.peak_t, self.peak_v)
+                          self.t_on, self.peak_t, self.peak_v, "instantaneous" if self.instantaneous else "average")
 
     def update(self, t_utc: float, value: float, complete: bool = True) -> list[AlarmEvent]:
         """Feed one value (in the rule's unit) at time t_utc; returns the episode events it causes."""
@@ -126,13 +144,23 @@ class AlarmMachine:
         self.state, self.t_on, self.peak_t, self.peak_v, self.last_t = state, t_on, peak_t, peak_v, last_t
 
 
-def run_command(argv: tuple[str, ...], ev: AlarmEvent) -> subprocess.Popen | None:
-    """Start an external command for an event: argv plus kind, rule, meter, time, value as arguments,
-    everything also as METERLINK_ALARM_* variables. No shell is involved. Returns the process."""
-    if not argv:
-        return None
+def percent_rules_instantaneous(standard: str, tier: str, freq) -> bool:
+    """True where the standard prescribes no averaging time at a frequency or anywhere in a (lo, hi)
+    band: percent-of-level alarms there compare instantaneous values, never an invented average."""
+    from meterlink.assessment import averaging_time_s
+    from meterlink.errors import MeterlinkError
+
+    try:
+        if isinstance(freq, tuple):
+            return averaging_time_s(standard, tier, band=freq) is None
+        return averaging_time_s(standard, tier, freq_hz=float(freq)) is None
+    except MeterlinkError:
+        return False
+
+
+def command_call(argv: tuple[str, ...], ev: AlarmEvent, station: str = "") -> tuple[list[str], dict[str, str]]:
+    """(argument list, alarm variables) of an external command for an event: argv plus phase, rule,
+    meter, time (POSIX s to the ms), value and unit. No shell is involved: data stays data.
+    meterlink.hooks runs it with only these variables, PATH and LANG in its environment."""
     args = [*argv, ev.kind, ev.rule, ev.meter, f"{ev.t_utc:.3f}", f"{ev.value:.6g}", ev.unit]
-    env = dict(os.environ)
-    env.update(ev.environment())
-    return subprocess.Popen(args, env=env, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL, close_fds=True, start_new_session=True)
+    return args, ev.environment(station)

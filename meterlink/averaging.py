@@ -7,7 +7,10 @@ time until the next sample, but never longer than ``max_hold_s`` (default ``HOLD
 the median sample interval); the last sample holds for one median interval (capped the same
 way). Time covered by no held sample is a gap: it is never filled with zeros. Each window
 reports its coverage (covered seconds / window seconds); below ``min_coverage`` it is flagged
-incomplete, and its value is still the average over the covered time.
+incomplete, and its value is still the average over the covered time. A time average over T is
+a window of length T inside the record: a window reaching before the first sample or past the
+end of the last hold (the start and end of a record) is flagged ``partial`` and is never
+complete, whatever its coverage; its value is reported separately, labelled as partial.
 
 Speed and precision: one O(n) pass builds cumulative integrals of p*dt (p = E^2 or S); window
 averages are differences of that integral located with ``np.searchsorted``, done in chunks so
@@ -335,6 +338,7 @@ class RunningAverage:
     coverage: np.ndarray
     complete: np.ndarray
     window_s: float
+    partial: np.ndarray | None = None   # window reaches outside the record (start or end)
 
 
 @dataclass(frozen=True)
@@ -346,6 +350,7 @@ class RunningAverageS:
     coverage: np.ndarray
     complete: np.ndarray
     window_s: float
+    partial: np.ndarray | None = None   # window reaches outside the record (start or end)
 
 
 def _running(held, window_s, min_coverage, at_s):
@@ -360,7 +365,14 @@ def _running(held, window_s, min_coverage, at_s):
     if order is not None:
         mean[order] = mean.copy()
         cov[order] = cov.copy()
-    return ends, mean, cov, cov >= m - _COVER_TOL, w
+    partial = _partial(held, ends - w, ends)
+    return ends, mean, cov, (cov >= m - _COVER_TOL) & ~partial, w, partial
+
+
+def _partial(held, start_s, end_s) -> np.ndarray:
+    """Windows [start, end] that reach before the first sample or past the end of the last hold."""
+    tol = held.cover_eps
+    return (np.asarray(start_s) < held.t[0] - tol) | (np.asarray(end_s) > held.t_end + tol)
 
 
 def running_average(t_s, e_v_per_m, window_s, *, min_coverage=DEFAULT_MIN_COVERAGE,
@@ -368,17 +380,17 @@ def running_average(t_s, e_v_per_m, window_s, *, min_coverage=DEFAULT_MIN_COVERA
     """Sliding-window RMS of a field, sqrt(time-weighted mean of E^2), ending at each sample time
     (the window is (t_end - window_s, t_end]) or at each of ``at_s``."""
     held = _Held(t_s, e_v_per_m, max_hold_s, True, "running average")
-    ends, mean, cov, ok, w = _running(held, window_s, min_coverage, at_s)
+    ends, mean, cov, ok, w, partial = _running(held, window_s, min_coverage, at_s)
     np.sqrt(mean, out=mean)
-    return RunningAverage(ends, mean, cov, ok, w)
+    return RunningAverage(ends, mean, cov, ok, w, partial)
 
 
 def running_average_s(t_s, s_w_per_m2, window_s, *, min_coverage=DEFAULT_MIN_COVERAGE,
                       max_hold_s=None, at_s=None) -> RunningAverageS:
     """Sliding-window time-weighted linear mean of power density S (no root)."""
     held = _Held(t_s, s_w_per_m2, max_hold_s, False, "running average")
-    ends, mean, cov, ok, w = _running(held, window_s, min_coverage, at_s)
-    return RunningAverageS(ends, mean, cov, ok, w)
+    ends, mean, cov, ok, w, partial = _running(held, window_s, min_coverage, at_s)
+    return RunningAverageS(ends, mean, cov, ok, w, partial)
 
 
 def _one_window(held, t0_s, t1_s):
@@ -412,6 +424,7 @@ class Blocks:
     complete: np.ndarray
     block_s: float
     quantity: str            # "field rms" or "power density mean"
+    partial: np.ndarray | None = None   # block reaches outside the record (start or end)
 
 
 def _blocks(held, block_s, origin_s, min_coverage, quantity):
@@ -425,7 +438,8 @@ def _blocks(held, block_s, origin_s, min_coverage, quantity):
         mean = np.where(covered > 0, energy / covered, np.nan)
     cov = np.minimum(covered / b, 1.0)
     value = np.sqrt(mean) if quantity == "field rms" else mean
-    return Blocks(edges[:-1], edges[1:], value, cov, cov >= m - _COVER_TOL, b, quantity)
+    partial = _partial(held, edges[:-1], edges[1:])
+    return Blocks(edges[:-1], edges[1:], value, cov, (cov >= m - _COVER_TOL) & ~partial, b, quantity, partial)
 
 
 def block_averages(t_s, e_v_per_m, block_s=BLOCK_S, *, origin_s=0.0,
@@ -455,16 +469,23 @@ class ExposureSummary:
     n_incomplete: int
     overall_coverage: float      # covered seconds / (first sample .. end of last hold)
     quantity: str = "field rms"  # "power density mean": the two values are S in W/m^2
+    max_partial_v_per_m: float = float("nan")   # highest partial window (start/end of record), labelled apart
+    n_partial: int = 0
 
 
 def _summarise(held, window_s, min_coverage, at_s, quantity):
     w, m = _check_window(window_s, min_coverage)
     ends, order = _ends(held, at_s)
     srt = ends if order is None else ends[order]
-    best, t_best, n_ok = -1.0, float("nan"), 0
+    best, t_best, n_ok, best_part, n_part = -1.0, float("nan"), 0, -1.0, 0
     for k0, k1, mp, c in _window_chunks(held, srt, w, at_s is None):
-        ok = (c >= m - _COVER_TOL) & np.isfinite(mp)
+        part = _partial(held, srt[k0:k1] - w, srt[k0:k1])
+        ok = (c >= m - _COVER_TOL) & np.isfinite(mp) & ~part
         n_ok += int(np.count_nonzero(ok))
+        pv = part & np.isfinite(mp)
+        n_part += int(np.count_nonzero(part))
+        if pv.any():
+            best_part = max(best_part, float(np.max(mp[pv])))
         if ok.any():
             j = int(np.argmax(np.where(ok, mp, -1.0)))
             if mp[j] > best:
@@ -472,9 +493,12 @@ def _summarise(held, window_s, min_coverage, at_s, quantity):
     ipk = int(np.argmax(held.x))
     span = held.t_end - float(held.t[0])
     _, covered = held.between(np.array([held.t[0]]), np.array([held.t_end]))
-    best_v = float("nan") if best < 0 else (np.sqrt(best) if quantity == "field rms" else best)
+    root = np.sqrt if quantity == "field rms" else float
+    best_v = float("nan") if best < 0 else root(best)
+    part_v = float("nan") if best_part < 0 else root(best_part)
     return ExposureSummary(float(held.x[ipk]), float(held.t[ipk]), float(best_v), t_best, w,
-                           n_ok, int(ends.size - n_ok), min(float(covered[0]) / span, 1.0), quantity)
+                           n_ok, int(ends.size - n_ok), min(float(covered[0]) / span, 1.0), quantity,
+                           float(part_v), n_part)
 
 
 def summarise(t_s, e_v_per_m, window_s, *, min_coverage=DEFAULT_MIN_COVERAGE, max_hold_s=None,

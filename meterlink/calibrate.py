@@ -248,6 +248,13 @@ def calibrate_spectrum(cert, freq_hz, level_dbuv, orientation: str = "x", near_f
     return _spectrum(orientation, f, e_db, u, flags, warnings, near_field)
 
 
+def floor_e_v_per_m(cert, freq_hz) -> np.ndarray:
+    """Field (V/m) at the receiver's lowest calibrated level, one orientation: what a line reported
+    as below the floor is at most (an upper bound, not zero)."""
+    f = np.atleast_1d(np.asarray(freq_hz, dtype=float))
+    return calibrate_spectrum(cert, f, np.full(f.shape, cert.level_range_dbuv[0])).e_v_per_m
+
+
 def _spectrum(orientation, f, e_db, u, flags, warnings, near_field) -> SpectrumResult:
     e = units.dbuv_per_m_to_v_per_m(e_db)
     nf = np.broadcast_to(np.asarray(near_field, dtype=bool), f.shape)
@@ -292,4 +299,4 @@ def identity_certificate(ref_freq_hz: float = 1e9, counts_per_v2m2: float = 1000
 
 
 __all__ = ["AxisResult", "SpectrumResult", "calibrate_axes", "calibrate_spectrum", "combine_orientations",
-           "identity_certificate", "linearise", "expected_counts", "frequency_correction_db", "flag_names"]
+           "identity_certificate", "linearise", "floor_e_v_per_m", "expected_counts", "frequency_correction_db", "flag_names"]

@@ -100,10 +100,12 @@ class Commander:
                 return None
             self.pump(min(0.02, left))
 
-    def drain(self, quiet_s: float) -> None:
-        """Read until nothing has arrived for quiet_s."""
+    def drain(self, quiet_s: float, max_s: float | None = None) -> None:
+        """Read until nothing has arrived for quiet_s (or max_s has passed: a streaming meter is never quiet)."""
+        deadline = None if max_s is None else time.monotonic() + max_s
         while self.pump(quiet_s):
-            pass
+            if deadline is not None and time.monotonic() >= deadline:
+                break
 
     # ----------------------------------------------------------------- requests
     def request(self, ftype: int, payload: bytes = b"", *, version: int = PROTOCOL_MAJOR,

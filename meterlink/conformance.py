@@ -4,6 +4,10 @@ observe() drives one session over a Link (identify, read settings, stream, stop,
 ping, send a garbage burst) and keeps every frame with its arrival time; evaluate() turns those
 observations into one Result per item, each with the numbers behind it. Thresholds for the
 interval are this project's acceptance choice, not figures from the protocol.
+
+The check changes the meter (interval, streaming); whatever happens, also on a failed item, an
+error or an interrupt, restore() puts back every writable setting and the streaming state as
+found before, then reads them back: the Report says whether the meter was left as found.
 """
 
 from __future__ import annotations
@@ -29,6 +33,9 @@ RESET_CAUSES = {0, 1, 2, 3, 255}
 RESTART_SEQ_MAX = 64
 _READINGS = (FrameType.AXES, FrameType.SPECTRUM)
 _NUMBER_KEYS = {SettingKey.INTERVAL_MS, SettingKey.DEVICE_AVERAGING, SettingKey.CLOCK_UTC}
+#: Settings read before the check and put back after it: every key but the read-only clock.
+RESTORE_KEYS = (SettingKey.INTERVAL_MS, SettingKey.DEVICE_AVERAGING, SettingKey.PROBE_SERIAL, SettingKey.CERT_REF,
+                SettingKey.ASSET_TAG)
 
 
 @dataclass(frozen=True)
@@ -96,6 +103,17 @@ class Observations:
     garbage_bytes: int = 0
     garbage_reply: Ident | None = None
     garbage_s: float = 0.0
+    restore: "Restore | None" = None
+
+
+@dataclass(frozen=True)
+class Restore:
+    """The meter's settings (and streaming state) as found before the check and as read back after it."""
+
+    before: dict
+    after: dict
+    ok: bool
+    evidence: str
 
 
 @dataclass(frozen=True)
@@ -114,10 +132,16 @@ class Report:
     results: tuple[Result, ...]
     ident: dict | None
     elapsed_s: float
+    restore: Restore | None = None
 
     @property
     def passed(self) -> bool:
         return all(r.status != "fail" for r in self.results)
+
+    @property
+    def restored(self) -> bool:
+        """True when every setting read before the check was read back unchanged after it."""
+        return self.restore is not None and self.restore.ok
 
     @property
     def failed(self) -> set[str]:
@@ -125,7 +149,8 @@ class Report:
 
     def to_dict(self) -> dict:
         return {"port": self.port, "passed": self.passed, "elapsed_s": round(self.elapsed_s, 3),
-                "ident": self.ident, "results": [asdict(r) for r in self.results]}
+                "ident": self.ident, "results": [asdict(r) for r in self.results],
+                "restore": asdict(self.restore) if self.restore else None}
 
 
 # ------------------------------------------------------------------------------- observing
@@ -191,12 +216,62 @@ def _probe(c: Commander, name: str, ftype: int, payload: bytes, version: int, ex
 
 def observe(c: Commander, *, duration_s: float = MIN_DURATION_S, interval_ms: int = 200,
             wait_boot_s: float = 0.0, rng: np.random.Generator | None = None) -> Observations:
-    """Run the check session over an open Commander and return what was seen."""
+    """Run the check session over an open Commander and return what was seen; the meter is put back
+    as found at the end, also when a phase fails or the check is interrupted (obs.restore)."""
     rng = rng if rng is not None else np.random.default_rng(0)
     obs = Observations(frames=c.frames, reader=c.reader.stats, wait_boot_s=wait_boot_s)
+    try:
+        _session(c, obs, duration_s, interval_ms, wait_boot_s, rng)
+    finally:
+        obs.restore = restore(c, obs)
+    return obs
+
+
+def restore(c: Commander, obs: Observations) -> Restore:
+    """Put back every writable setting and the streaming state found before the check; read them back."""
+    before: dict = {k.name.lower(): v for k, v in obs.settings.items()
+                    if k in RESTORE_KEYS and isinstance(v, (int, str)) and not isinstance(v, bool)}
+    unread = [k.name.lower() for k in RESTORE_KEYS if k not in obs.settings]   # no reply: cannot be put back
+    if obs.status_idle is not None:
+        before["streaming"] = bool(obs.status_idle.flags & STATUS_STREAMING)
+    after: dict = {}
+    problem = ""
+    try:
+        for key in RESTORE_KEYS:
+            name = key.name.lower()
+            if name in before and c.get_setting(key) != before[name]:
+                if key == SettingKey.INTERVAL_MS:
+                    c.set_interval(int(before[name]))
+                else:
+                    c.put_setting(key, before[name])
+        for key in RESTORE_KEYS:   # read back what is in force now
+            if key.name.lower() in before:
+                after[key.name.lower()] = c.get_setting(key)
+        if "streaming" in before:
+            if bool(c.status().flags & STATUS_STREAMING) != before["streaming"]:
+                c.command(FrameType.START if before["streaming"] else FrameType.STOP)
+            after["streaming"] = bool(c.status().flags & STATUS_STREAMING)
+    except MeterlinkError as exc:   # no reply, a refusal or a malformed reply: say so, never hide it
+        problem = str(exc)
+    differ = [f"{k} {after.get(k, '?')!r} (was {v!r})" for k, v in before.items() if after.get(k) != v]
+    ok = bool(before) and not differ and not unread and not problem
+    found = ", ".join(f"{k} {v!r}" for k, v in before.items())
+    if ok:
+        evidence = f"put back as found and read back: {found}"
+    else:
+        evidence = "NOT left as found: " + "; ".join(
+            ([f"differs: {', '.join(differ)}"] if differ else [])
+            + ([f"not read before the check: {', '.join(unread)}"] if unread else [])
+            + ([problem] if problem else []) + ([] if before else ["nothing could be read before the check"]))
+    return Restore(before, after, ok, evidence)
+
+
+def _session(c: Commander, obs: Observations, duration_s: float, interval_ms: int, wait_boot_s: float,
+             rng: np.random.Generator) -> None:
+    """The check's exchanges, in order; observe() wraps them so that the meter is always restored."""
     if wait_boot_s > 0:
         c.wait_for(lambda f: f.type == FrameType.BOOT, wait_boot_s)
-    c.drain(0.05)
+    c.drain(0.05, max_s=1.0)   # a meter found streaming is never quiet
 
     def ident():
         obs.ident = c.who()
@@ -266,7 +341,6 @@ def observe(c: Commander, *, duration_s: float = MIN_DURATION_S, interval_ms: in
         obs.errors["garbage"] = str(exc)
     obs.garbage_s = time.monotonic() - t0
     c.drain(0.02)
-    return obs
 
 
 # ------------------------------------------------------------------------------- evaluating
@@ -309,8 +383,12 @@ def _eval_version(o: Observations):
     return ok, ev
 
 
-def _segments(frames: list[Received]) -> tuple[list[list[Received]], int]:
-    """Split frames at BOOT or at a restart without BOOT; also count the latter."""
+def _segments(frames: list[Received], slack_ms: int = 0) -> tuple[list[list[Received]], int]:
+    """Split frames at BOOT or at a restart without BOOT; also count the latter.
+
+    A reading's TICK is the middle of its integration, so it may trail a reply sent just before it
+    by up to half an interval: only a TICK going back by more than slack_ms (the interval) is a restart.
+    """
     segs: list[list[Received]] = [[]]
     silent = 0
     for r in frames:
@@ -319,7 +397,7 @@ def _segments(frames: list[Received]) -> tuple[list[list[Received]], int]:
             segs.append([r])
             continue
         if prev is not None and seq_delta(prev.seq, r.frame.seq) != 1 and r.frame.seq < RESTART_SEQ_MAX \
-                and _after(prev.tick_ms, r.frame.tick_ms) < 0:
+                and _after(prev.tick_ms, r.frame.tick_ms) < -slack_ms:
             silent += 1
             segs.append([r])
             continue
@@ -328,7 +406,7 @@ def _segments(frames: list[Received]) -> tuple[list[list[Received]], int]:
 
 
 def _eval_framing(o: Observations):
-    segs, _ = _segments(o.frames)
+    segs, _ = _segments(o.frames, o.interval_ms)
     steps: dict[int, int] = {}
     for s in segs:
         for a, b in zip(s, s[1:]):
@@ -476,7 +554,7 @@ def _eval_settings(o: Observations):
 
 def _eval_boot(o: Observations):
     boots = [r for r in o.frames if r.frame.type == FrameType.BOOT]
-    _, silent = _segments(o.frames)
+    _, silent = _segments(o.frames, o.interval_ms)
     bad = []
     for r in boots:
         try:
@@ -534,4 +612,4 @@ def run_checks(link, *, duration_s: float = MIN_DURATION_S, interval_ms: int = 2
     obs = observe(c, duration_s=duration_s, interval_ms=interval_ms, wait_boot_s=wait_boot_s,
                   rng=np.random.default_rng(seed))
     ident = asdict(obs.ident) if obs.ident else None
-    return Report(link.port, tuple(evaluate(obs)), ident, time.monotonic() - t0)
+    return Report(link.port, tuple(evaluate(obs)), ident, time.monotonic() - t0, obs.restore)

@@ -189,6 +189,7 @@ class Block:
     n_over: int = 0                                # samples at overrange (value is a lower bound)
     run_end: dict = field(default_factory=dict)    # window_s -> (e_rms at block end, coverage)
     run_max: dict = field(default_factory=dict)    # window_s -> (max complete e_rms, t)
+    partial: bool = False                          # begins before the record's first sample: never complete
 
     def e_rms(self) -> float:
         return math.sqrt(self.energy / self.covered_s) if self.covered_s > 0 else math.nan
@@ -236,11 +237,15 @@ class Series:
         self.frontier = -math.inf                        # no segment will ever start before this
         self.open: dict[int, Block] = {}
         self._next_end = math.inf                        # earliest end of an open block (skip _final before it)
+        # first sample seen: a window reaching before it is partial (a T-average needs T of record), never
+        # complete whatever its coverage; after a restart the replay starts a full window before anything new
+        self.t_first: float | None = None
 
     def _block(self, k: int) -> Block:
         b = self.open.get(k)
         if b is None:
             b = self.open[k] = Block(k * self.block_s, self.block_s)
+            b.partial = self.t_first is not None and b.t_start < self.t_first - 1e-6
             self._next_end = min(self._next_end, b.t_start + self.block_s)
         return b
 
@@ -264,6 +269,8 @@ class Series:
         """Add a sample (over: an overrange lower bound); returns final blocks and running averages at t."""
         if not (t > self.frontier and math.isfinite(e_v_per_m) and e_v_per_m >= 0):
             return [], []
+        if self.t_first is None:
+            self.t_first = t
         last = self.last
         if last is not None:
             t0, p0 = last
@@ -283,7 +290,7 @@ class Series:
         looked = False
         for ws, w in self.windows.items():
             mean, cov = w.value(t)
-            ok = cov >= ok_min
+            ok = cov >= ok_min and t - ws >= self.t_first - 1e-6
             e = math.sqrt(mean) if mean == mean else math.nan
             runs.append(RunningSample(ws, t, e, cov, ok))
             if ok:
@@ -314,6 +321,8 @@ class Series:
             z = np.zeros((len(wins), 0))
             return [], RunningBatch(wins, ts, z, z, z.astype(bool))
         ps = es * es
+        if self.t_first is None:
+            self.t_first = float(ts[0])
         bs, hold = self.block_s, self.hold_s
         if self.last is not None:
             t_all, p_all = np.concatenate(([self.last[0]], ts)), np.concatenate(([self.last[1]], ps))
@@ -355,7 +364,7 @@ class Series:
             for kk, x, c in zip(edge_k, mean[m:].tolist(), cv[m:].tolist()):
                 blocks[kk].run_end[ws] = (x, c)
             er, cv = er[:m], cv[:m]
-            ok = cv >= ok_min
+            ok = (cv >= ok_min) & (ts - ws >= self.t_first - 1e-6)
             e_rows.append(er)
             c_rows.append(cv)
             ok_rows.append(ok)
@@ -421,7 +430,7 @@ def block_row(station_id: int, meter: str, band: str, b: Block, min_coverage: fl
     e = b.e_rms()
     return (station_id, meter, band, b.t_start, b.block_s, b.energy, b.covered_s, b.n,
             None if math.isnan(e) else e, None if b.e_max == -math.inf else b.e_max,
-            int(b.coverage() >= min_coverage - 1e-9), b.n_over)
+            int(b.coverage() >= min_coverage - 1e-9 and not b.partial), b.n_over)
 
 
 def save_blocks(conn, station_id: int, meter: str, band: str, blocks, min_coverage: float) -> None:

@@ -232,6 +232,7 @@ def multi_frequency(freq_hz, *, standard: str, tier: str, e_v_per_m=None, h_a_pe
     for g in groups.values():
         g.sort(key=lambda t: t.f_lo_hz)
     terms, flags, msgs = [], [], []
+    level_checks: set[str] = set()  # what each reference level used was checked against
     contrib = {k: np.zeros(n) for k in groups}
     for i in range(n):
         fi, e, h, s = float(f[i]), es[i], hs[i], ss[i]
@@ -252,6 +253,7 @@ def multi_frequency(freq_hz, *, standard: str, tier: str, e_v_per_m=None, h_a_pe
             except MeterlinkError as exc:
                 msgs.append(f"{names[i]}: {exc}")
                 continue
+            level_checks.add(level.status)
             out = _evaluate(term, fi, e, h, s, far, level, field_ratio_for_s)
             if out[0] is None:
                 msgs.append(f"{names[i]} ({key[0]}, {key[1]}): {out[1]}")
@@ -267,5 +269,7 @@ def multi_frequency(freq_hz, *, standard: str, tier: str, e_v_per_m=None, h_a_pe
     er = contrib[gov].copy() if gov else np.zeros(n)
     share = er / total if total > 0 else np.zeros(n)
     return MultiFrequencyResult(standard, tier, tuple(terms), sums, total, gov, er, share,
-                                tuple(flags), tuple(msgs), rule.source, rule.status,
+                                tuple(flags), tuple(msgs), rule.source,
+                                f"levels: {'; '.join(sorted(level_checks))}; summation rule: {rule.status}"
+                                if level_checks else f"summation rule: {rule.status}",
                                 not msgs and not any(fl.insufficient for fl in flags))

@@ -1,7 +1,8 @@
 """Building blocks of meterlink's self-contained HTML reports and their CSV files.
 
-Every value passed in as text is escaped here; figures are embedded as base64 PNG so a report is
-one file. CSV cells that a spreadsheet would run as a formula are prefixed with a quote.
+Every value passed in as text is escaped here, control characters included (meterlink.safetext);
+figures are embedded as base64 PNG so a report is one file. CSV cells that a spreadsheet would run
+as a formula are prefixed with a quote.
 """
 
 from __future__ import annotations
@@ -13,6 +14,8 @@ import io
 import math
 from html import escape
 from pathlib import Path
+
+from meterlink.safetext import clean_text, csv_cell  # noqa: F401 - csv_cell is part of this module's API
 
 CSS = """
 body{font-family:system-ui,sans-serif;margin:2rem auto;max-width:64rem;color:#1d2a2e;line-height:1.4}
@@ -31,8 +34,9 @@ img{max-width:100%}
 
 
 def e(v) -> str:
-    """HTML-escaped text of any value ('' for None)."""
-    return escape("" if v is None else str(v), quote=True)
+    """HTML-escaped text of any value ('' for None); control characters other than tab and newline
+    (ESC, NUL, ...) and bidi overrides are shown as visible escapes."""
+    return escape(clean_text(v, keep="\t\n"), quote=True)
 
 
 def num(v, fmt: str = "{:.3f}") -> str:
@@ -79,13 +83,6 @@ def page(title: str, body: str) -> str:
     """A whole HTML document with the shared style."""
     return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><title>{e(title)}</title>'
             f"<style>{CSS}</style></head><body>\n{body}\n</body></html>\n")
-
-
-def csv_cell(v):
-    """A CSV value that a spreadsheet will not run as a formula."""
-    if isinstance(v, str) and v[:1] in ("=", "+", "-", "@", "\t", "\r"):
-        return "'" + v
-    return v
 
 
 def write_csv(path: Path, head, rows) -> None:

@@ -9,6 +9,11 @@ write ranges ">30-400 MHz", so a frequency exactly on a breakpoint belongs to th
 (lo_inclusive = false); the first row of a table includes its lower edge. A row whose lower
 bound is inclusive wins at its breakpoint (Directive 2013/35/EU writes "10 MHz <= f < 400 MHz",
 and ICNIRP 2020 Table 6 has a row for 300 GHz exactly).
+
+Check status: a table, row, cell or averaging time may say ``checked = "..."``: the document,
+table and note its value was compared with. Cells inherit it from their row, rows from their
+table. A value without it is shown to users as NOT_CHECKED; ``ReferenceLevel.status`` is the
+one-line summary every caller prints beside a level.
 """
 
 from __future__ import annotations
@@ -24,7 +29,9 @@ from meterlink.units import C_M_PER_S, Z0_OHM, format_frequency
 
 TIERS = ("public", "occupational")
 KINDS = ("whole_body", "local", "peak", "brief_energy")
-STATUSES = ("verified", "partly verified", "from memory")
+#: What users see beside a value no one has yet compared with the published document.
+NOT_CHECKED = "not yet checked against the primary text"
+CHECKED_PREFIX = "checked against "
 _FREQ_UNIT_HZ = {"Hz": 1.0, "kHz": 1e3, "MHz": 1e6, "GHz": 1e9}
 _TIME_UNIT_S = {"s": 1.0, "min": 60.0}
 _MU0 = Z0_OHM / C_M_PER_S  # mu_0 = Z0/c, consistent with the Z0 used for derived cells
@@ -52,16 +59,25 @@ class ReferenceLevel:
     band_lo_hz: float
     band_hi_hz: float
     source: str
+    #: One line for users: "checked against <document, table>", NOT_CHECKED, or which parts are which.
     status: str
     tier_label: str
     notes: str = ""
     #: S for comparison with H-derived power density where the standard splits S_E / S_H
     #: (IEEE C95.1-2019 below 100 MHz); otherwise equal to s_w_per_m2.
     s_h_w_per_m2: float | None = None
-    e_status: str = ""
-    h_status: str = ""
-    s_status: str = ""
+    #: Per value: the document and table it was checked against, "" when not yet checked
+    #: (a derived value carries the status of the value it is derived from).
+    e_checked: str = ""
+    h_checked: str = ""
+    s_checked: str = ""
+    averaging_checked: str = ""
     lo_inclusive: bool = True
+
+    @property
+    def fully_checked(self) -> bool:
+        """True when every value given here and the averaging time were checked against a text."""
+        return self.status.startswith(CHECKED_PREFIX)
 
 
 @dataclass(frozen=True)
@@ -88,6 +104,7 @@ class SummationRule:
     tier: str
     terms: tuple[SummationTerm, ...]
     source: str
+    #: "checked against <document, clause>" or NOT_CHECKED, as for ReferenceLevel.status.
     status: str
     notes: str = ""
 
@@ -114,7 +131,7 @@ class _Law:
 class _Cell:
     law: _Law | None  # None when derived
     derived_from: str  # "" or "s" / "s_h" / "b"
-    status: str
+    checked: str  # document and table it was checked against; "" = not yet checked
 
 
 @dataclass(frozen=True)
@@ -124,8 +141,8 @@ class _Row:
     lo_inclusive: bool
     cells: tuple[tuple[str, _Cell], ...]
     averaging: tuple[_Law, float] | None  # (law, seconds per unit); None = instantaneous
-    averaging_status: str
-    status: str
+    averaging_checked: str
+    checked: str
     notes: str
 
     def cell(self, name: str) -> _Cell | None:
@@ -141,7 +158,7 @@ class _Table:
     table: str
     source: str
     rows: tuple[_Row, ...]
-    status: str
+    checked: str
     notes: str
     time_factor: tuple[float, float, float, float, float] | None  # k, c0, c1, t_ref_s, exponent
 
@@ -150,11 +167,34 @@ def _bad(where: str, problem: str) -> LimitsError:
     return LimitsError(f"limits data {where}: {problem}")
 
 
-def _status(value, where: str, default: str) -> str:
-    status = default if value is None else value
-    if status not in STATUSES:
-        raise _bad(where, f"status {status!r} is not one of {', '.join(STATUSES)}")
-    return status
+def _checked(spec, where: str, default: str) -> str:
+    """The `checked` text of a table, row or cell dict (inherited when absent)."""
+    if not isinstance(spec, dict):
+        return default
+    if "status" in spec:
+        raise _bad(where, "'status' is not a key here; say what the value was checked against "
+                          "with checked = \"document, table\", or leave it out")
+    value = spec.get("checked", default)
+    if not isinstance(value, str) or (value == "" and "checked" in spec):
+        raise _bad(where, f"checked = {value!r} must name the document and table")
+    return value
+
+
+def check_status(parts: list[tuple[str, str]]) -> str:
+    """One line for users from (label, checked text) pairs: all checked against the same text,
+    none checked (NOT_CHECKED), or which labels are which."""
+    docs = [c for _, c in parts]
+    if not docs or not any(docs):
+        return NOT_CHECKED
+    if all(d == docs[0] for d in docs):
+        return CHECKED_PREFIX + docs[0]
+    groups: dict[str, list[str]] = {}
+    for label, c in parts:
+        groups.setdefault(c, []).append(label)
+    text = [f"{', '.join(labels)} {CHECKED_PREFIX}{c}" for c, labels in groups.items() if c]
+    if "" in groups:
+        text.append(f"{', '.join(groups[''])} {NOT_CHECKED}")
+    return "; ".join(text)
 
 
 def _law(spec, where: str) -> _Law:
@@ -181,33 +221,33 @@ def _averaging(spec, where: str):
 
 
 _CELL_NAMES = ("e", "h", "s", "s_h", "b", "u")
-_ROW_KEYS = {"f_lo_hz", "f_hi_hz", "lo_inclusive", "status", "notes", "averaging_time", *_CELL_NAMES}
+_ROW_KEYS = {"f_lo_hz", "f_hi_hz", "lo_inclusive", "checked", "notes", "averaging_time", *_CELL_NAMES}
 
 
-def _row(spec: dict, where: str, table_status: str, table_avg, table_avg_status: str) -> _Row:
+def _row(spec: dict, where: str, table_checked: str, table_avg, table_avg_checked: str) -> _Row:
     unknown = set(spec) - _ROW_KEYS
     if unknown:
         raise _bad(where, f"unknown row keys {sorted(unknown)}")
-    status = _status(spec.get("status"), where, table_status)
+    checked = _checked(spec, where, table_checked)
     cells = []
     for name in _CELL_NAMES:
         if name not in spec:
             continue
         c = spec[name]
-        cstatus = _status(c.get("status") if isinstance(c, dict) else None, where, status)
+        c_checked = _checked(c, f"{where} {name}", checked)
         if isinstance(c, dict) and "derived_from" in c:
             if c["derived_from"] not in ("s", "b"):
                 raise _bad(where, f"{name} derived_from {c['derived_from']!r} (must be 's' or 'b')")
-            cells.append((name, _Cell(None, c["derived_from"], cstatus)))
+            cells.append((name, _Cell(None, c["derived_from"], c_checked)))
         else:
-            cells.append((name, _Cell(_law(c, where), "", cstatus)))
-    avg, avg_status = table_avg, table_avg_status
+            cells.append((name, _Cell(_law(c, where), "", c_checked)))
+    avg, avg_checked = table_avg, table_avg_checked
     if "averaging_time" in spec:
         a = spec["averaging_time"]
         avg = _averaging(a, where)
-        avg_status = _status(a.get("status") if isinstance(a, dict) else None, where, status)
+        avg_checked = _checked(a, f"{where} averaging_time", checked)
     row = _Row(float(spec["f_lo_hz"]), float(spec["f_hi_hz"]), bool(spec["lo_inclusive"]),
-               tuple(cells), avg, avg_status, status, spec.get("notes", ""))
+               tuple(cells), avg, avg_checked, checked, spec.get("notes", ""))
     if not 0 < row.f_lo_hz <= row.f_hi_hz:
         raise _bad(where, f"band {row.f_lo_hz}-{row.f_hi_hz} Hz is not increasing")
     return row
@@ -240,16 +280,17 @@ def _tables(standard: str) -> tuple[_Table, ...]:
         tier, kind = t.get("tier"), t.get("kind")
         if tier not in TIERS or kind not in KINDS:
             raise _bad(where, f"tier {tier!r} / kind {kind!r} not recognised")
-        status = _status(t.get("status"), where, "from memory")
+        checked = _checked(t, where, "")
         if "rows_from" in t:
+            # Another standard's rows, with their values; checked against that standard's text
+            # only when this table says so too (the status is about this document).
             ref = t["rows_from"]
-            rows = _table(ref["standard"], ref["tier"], ref["kind"]).rows
+            rows = tuple(_recheck(r, checked) for r in _table(ref["standard"], ref["tier"], ref["kind"]).rows)
         else:
             avg_spec = t.get("averaging_time", "instantaneous")
             avg = _averaging(avg_spec, where)
-            avg_status = _status(avg_spec.get("status") if isinstance(avg_spec, dict) else None,
-                                 where, status)
-            rows = tuple(_row(r, f"{where} row {j + 1}", status, avg, avg_status)
+            avg_checked = _checked(avg_spec, f"{where} averaging_time", checked)
+            rows = tuple(_row(r, f"{where} row {j + 1}", checked, avg, avg_checked)
                          for j, r in enumerate(t["rows"]))
         for prev, nxt in zip(rows, rows[1:]):
             if prev.f_hi_hz != nxt.f_lo_hz:
@@ -259,10 +300,16 @@ def _tables(standard: str) -> tuple[_Table, ...]:
             raise _bad(where, "a time_factor table needs energy_unit = \"kJ/m2\"")
         out.append(_Table(
             standard, tier, data.get("tiers", {}).get(tier, tier), kind, str(t["table"]),
-            _source(data["citation"], str(t["table"])), rows, status, t.get("notes", ""),
+            _source(data["citation"], str(t["table"])), rows, checked, t.get("notes", ""),
             None if tf is None else (float(tf["k"]), float(tf["c0"]), float(tf["c1"]),
                                      float(tf["t_ref_s"]), float(tf["exponent"]))))
     return tuple(out)
+
+
+def _recheck(row: _Row, checked: str) -> _Row:
+    """A borrowed row carrying this document's check status instead of the lender's."""
+    cells = tuple((n, _Cell(c.law, c.derived_from, checked)) for n, c in row.cells)
+    return _Row(row.f_lo_hz, row.f_hi_hz, row.lo_inclusive, cells, row.averaging, checked, checked, row.notes)
 
 
 def _source(citation: str, table: str) -> str:
@@ -310,26 +357,16 @@ def _covering_row(table: _Table, freq_hz: float) -> _Row:
     return row
 
 
-def _combined_status(statuses: list[str]) -> str:
-    if not statuses:
-        return "from memory"
-    if all(s == "verified" for s in statuses):
-        return "verified"
-    if all(s == "from memory" for s in statuses):
-        return "from memory"
-    return "partly verified"
-
-
 def _level(table: _Table, row: _Row, freq_hz: float) -> ReferenceLevel:
     values: dict[str, float | None] = {}
     derived: dict[str, bool] = {}
-    status: dict[str, str] = {}
+    status: dict[str, str] = {}  # name -> checked text ("" = not yet checked)
     for name in ("s", "s_h", "b", "e", "h"):  # sources before the cells derived from them
         cell = row.cell(name)
         if cell is None:
             values[name], derived[name], status[name] = None, False, ""
         elif cell.law is not None:
-            values[name], derived[name], status[name] = cell.law(freq_hz), False, cell.status
+            values[name], derived[name], status[name] = cell.law(freq_hz), False, cell.checked
         elif cell.derived_from == "b":
             b_ut = values["b"]
             if b_ut is None:
@@ -348,16 +385,18 @@ def _level(table: _Table, row: _Row, freq_hz: float) -> ReferenceLevel:
         law, scale = row.averaging
         avg_s = law(freq_hz) * scale
     notes = "; ".join(n for n in (row.notes, table.notes) if n)
-    given = [status[n] for n in ("e", "h", "s", "s_h") if status[n]]
+    labels = {"e": "E", "h": "H", "s": "S", "s_h": "S (H)"}
+    parts = [(labels[n], status[n]) for n in ("e", "h", "s", "s_h") if values[n] is not None]
+    parts.append(("averaging time", row.averaging_checked))
     return ReferenceLevel(
         standard=table.standard, tier=table.tier, kind=table.kind, freq_hz=float(freq_hz),
         e_v_per_m=values["e"], h_a_per_m=values["h"], s_w_per_m2=values["s"],
         e_derived=derived["e"], h_derived=derived["h"], s_derived=derived["s"],
         averaging_time_s=avg_s, band_lo_hz=row.f_lo_hz, band_hi_hz=row.f_hi_hz,
-        source=table.source, status=_combined_status(given), tier_label=table.tier_label,
+        source=table.source, status=check_status(parts), tier_label=table.tier_label,
         notes=notes, s_h_w_per_m2=values["s_h"] if values["s_h"] is not None else values["s"],
-        e_status=status["e"], h_status=status["h"], s_status=status["s"],
-        lo_inclusive=row.lo_inclusive)
+        e_checked=status["e"], h_checked=status["h"], s_checked=status["s"],
+        averaging_checked=row.averaging_checked, lo_inclusive=row.lo_inclusive)
 
 
 # ----------------------------------------------------------------------------- public API
@@ -388,10 +427,19 @@ def describe_standard(standard: str) -> dict:
         "kinds": [k for k in KINDS if any(x.kind == k for x in tables)],
         "coverage": [
             {"tier": t.tier, "kind": t.kind, "table": t.table, "f_lo_hz": t.rows[0].f_lo_hz,
-             "f_hi_hz": t.rows[-1].f_hi_hz, "status": t.status}
+             "f_hi_hz": t.rows[-1].f_hi_hz, "status": _table_status(t)}
             for t in tables
         ],
     }
+
+
+def _table_status(table: _Table) -> str:
+    """Check status of a whole table: every value and averaging time in every row."""
+    docs = {c.checked for r in table.rows for _, c in r.cells} | {r.averaging_checked for r in table.rows}
+    if docs == {""}:
+        return NOT_CHECKED
+    checked = "; ".join(sorted(CHECKED_PREFIX + d for d in docs if d))
+    return checked if "" not in docs else f"partly: {checked}; the rest {NOT_CHECKED}"
 
 
 def reference_level(standard: str, tier: str, freq_hz: float, kind: str = "whole_body") -> ReferenceLevel:
@@ -482,13 +530,22 @@ def summation_rule(standard: str, tier: str) -> SummationRule:
             continue
         if "summation_from" in s:
             base = summation_rule(s["summation_from"]["standard"], s["summation_from"]["tier"])
-            return SummationRule(standard, tier, base.terms, data["citation"], base.status,
+            where = f"{standard}.toml summation {i + 1}"
+            return SummationRule(standard, tier, base.terms, data["citation"],
+                                 check_status([("rule", _checked(s, where, ""))]),
                                  f"as {base.source}; {base.notes}".rstrip("; "))
         where = f"{standard}.toml summation {i + 1}"
         terms = tuple(_term(t, where) for t in s["terms"])
         return SummationRule(standard, tier, terms, data["citation"],
-                             _status(s.get("status"), where, "from memory"), s.get("notes", ""))
+                             check_status([("rule", _checked(s, where, ""))]), s.get("notes", ""))
     raise LimitsError(f"{standard} has no summation rule for the {tier} tier")
+
+
+def brief_exposure_status(standard: str, tier: str, freq_hz: float) -> str:
+    """Check status of the brief-exposure energy density (the row's value and the time factor)."""
+    table = _table(standard, tier, "brief_energy")
+    row = _covering_row(table, freq_hz)
+    return check_status([("U", row.cell("u").checked), ("time factor", table.checked)])
 
 
 def brief_exposure_energy_j_per_m2(standard: str, tier: str, freq_hz: float, duration_s: float) -> float:

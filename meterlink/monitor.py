@@ -21,11 +21,15 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from meterlink import calibrate, derived, spans
-from meterlink.alarms import AlarmEvent, AlarmMachine, rule_value, run_command
+from meterlink import calibrate, derived, retention
+from meterlink.alarms import AlarmEvent, AlarmMachine, command_call, percent_rules_instantaneous, rule_value
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
+from meterlink.hooks import STOP_WAIT_S, HookRunner
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
 from meterlink.limits import most_restrictive_level, reference_level
+from meterlink.lock import StationLock
+from meterlink.notify import Notifier
+from meterlink.retention import thin_readings  # noqa: F401 - kept importable from here
 from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
 from meterlink.station import MeterConfig, Station
 from meterlink.storage import BatchWriter, Store, StorageError, epoch_row, event_row
@@ -105,8 +109,20 @@ class MeterState:
 class Monitor:
     """Run a station until ``stop()``; ``time_scale`` > 1 only for an accelerated simulator."""
 
-    def __init__(self, station: Station, *, time_scale: float = 1.0, log=None, commit_s: float = 0.5,
-                 backoff_max_s: float = 30.0, link_factory=None, calibrate_s: float = 1.0):
+    def __init__(self, station: Station, **options):
+        """Take the station's lock (meterlink/lock.py), then open it (``_open``; options as there).
+        A failure while opening gives the lock and the database back at once."""
+        self._lock = StationLock(station.database, station.name).acquire()
+        try:
+            self._open(station, **options)
+        except BaseException:
+            if getattr(self, "store", None) is not None:
+                self.store.close()
+            self._lock.release()
+            raise
+
+    def _open(self, station: Station, *, time_scale: float = 1.0, log=None, commit_s: float = 0.5,
+              backoff_max_s: float = 30.0, link_factory=None, calibrate_s: float = 1.0):
         self.st, self.time_scale, self.commit_s = station, float(time_scale), commit_s
         # Readings are calibrated in batches at most calibrate_s of device time old: a call has a
         # fixed cost (interpolants, budget) that dominates the monitor's CPU at a few readings/s.
@@ -121,7 +137,8 @@ class Monitor:
             derived.ensure_schema(self.conn)
         self._station_events: list[dict] = []
         self.station_id, prev = self._station_record()
-        self.procs: list = []
+        self.hooks = HookRunner()                        # alarm commands (meterlink/hooks.py)
+        self.notify = Notifier()                         # systemd READY/WATCHDOG/STOPPING (meterlink/notify.py)
         self.meters = [self._meter(m) for m in station.meters]
         self._backoff_max_s, self._link_factory = backoff_max_s, link_factory
         # commit failures (a full disk): batches are kept and retried with back-off (see _commit)
@@ -201,9 +218,10 @@ class Monitor:
             ms.series[band] = derived.Series(hold, st.block_s, st.windows_s, st.min_coverage)
         if dipole:
             ms.sweeps = SweepAssembler(cert, m.bands, st.standard, st.tier)
+        inst = percent_rules_instantaneous(st.standard, st.tier, freq)
         for rule in st.alarms:
             if not rule.meters or m.name in rule.meters:
-                ms.alarms.append(AlarmMachine(rule, m.name))
+                ms.alarms.append(AlarmMachine(rule, m.name, instantaneous=inst))
         h = st.health
         ms.checks = {"noise_floor": Persist("stuck_noise_floor", h.stuck_s),
                      "overrange": Persist("stuck_overrange", h.stuck_s),
@@ -444,6 +462,11 @@ class Monitor:
         if blocks:
             ms.blocks_out.append(("total", blocks))
         for am in ms.alarms:
+            if am.instantaneous:     # no averaging time in the standard here: each value is compared
+                if not (replay and am.last_t is not None and ti <= am.last_t):
+                    for ev in am.update(ti, rule_value(am.rule.unit, ei, ms.e_ref, ms.s_ref), True):
+                        self._alarm_event(ms, ev)
+                continue
             for r in runs:
                 if r.window_s == am.rule.window_s:
                     if replay and am.last_t is not None and ti <= am.last_t:
@@ -486,10 +509,8 @@ class Monitor:
         self._event(ms, f"alarm_{ev.kind}", sev, ev.message(), t=ev.t_utc, **ev.detail())
         for am in ms.alarms:
             if am.rule.name == ev.rule and am.rule.command:
-                try:
-                    self.procs.append(run_command(am.rule.command, ev))
-                except OSError as exc:
-                    self._event(ms, "alarm_command_failed", "error", f"{am.rule.command[0]}: {exc.strerror}")
+                args, env = command_call(am.rule.command, ev, self.st.name)
+                self.hooks.start(args, env, am.rule.command_timeout_s, label=f"{ms.cfg.name}/{ev.rule}/{ev.kind}")
 
     # -- commit --------------------------------------------------------------------------------
     def _commit(self, force: bool = False) -> bool:
@@ -597,10 +618,8 @@ class Monitor:
             ev = AlarmEvent(kind=kind, rule="not_storing", meter="*", band="storage", t_utc=time.time(),
                             value=float(pending), unit=rule.unit, threshold=0.0, clear=0.0, window_s=0.0,
                             episode_start_utc=since_utc, peak_t_utc=time.time(), peak_value=float(pending))
-            try:
-                self.procs.append(run_command(rule.command, ev))
-            except OSError as exc:
-                self.log(f"alarm command {rule.command[0]} for not_storing failed: {exc.strerror}")
+            args, env = command_call(rule.command, ev, self.st.name)
+            self.hooks.start(args, env, rule.command_timeout_s, label=f"station/not_storing/{kind}")
 
     def _certificates(self) -> None:
         today = _dt.date.fromtimestamp(self.now_utc())
@@ -617,27 +636,26 @@ class Monitor:
                             f"{ms.cert.due_date.isoformat()} ({days} days)", due_date=ms.cert.due_date.isoformat())
 
     def _retention(self) -> None:
-        """Thin raw readings older than the retention period, a chunk at a time, never past the derived record."""
+        """Thin every growing table to its age limit (meterlink/retention.py), one chunk per commit tick."""
+        keep = self.st.retention
         if not self._retention_todo:
             if time.monotonic() < self._retention_next:
                 return
-            self._retention_next = time.monotonic() + self.st.retention.check_every_s
-            cutoff = self.now_utc() - self.st.retention.raw_days * 86400.0
-            for ms in self.meters:
-                end = derived.last_final_block_end(self.conn, self.station_id, ms.cfg.name)
-                if end is not None:
-                    safe = min(cutoff, end - max(self.st.windows_s) - 3.0 * ms.cfg.interval_s)
-                    self._retention_todo.append((ms, safe, 0))
+            self._retention_next = time.monotonic() + keep.check_every_s
+            self._retention_todo = retention.plan(
+                self.conn, keep, self.station_id, [(ms.cfg.name, ms.session_id, ms.cfg.interval_s) for ms in self.meters],
+                self.now_utc(), max(self.st.windows_s))
             return
-        ms, before, done = self._retention_todo[0]
-        n = thin_readings(self.store, ms.session_id, before, self.st.retention.chunk_rows)
-        if n < self.st.retention.chunk_rows:
+        task = self._retention_todo[0]
+        if task.step(self.store, keep.chunk_rows) < keep.chunk_rows:
             self._retention_todo.pop(0)
-            if done + n:
-                self._event(ms, "retention", "info", f"{done + n} raw reading(s) before {_iso(before)} thinned "
-                            "to the derived series", removed=done + n, before_utc=before)
-        else:
-            self._retention_todo[0] = (ms, before, done + n)
+            if task.removed:
+                ms = next((m for m in self.meters if m.cfg.name == task.meter), None)
+                what = {"readings": "raw reading(s)", "status": "status row(s)", "events": "event(s)",
+                        "derived": "derived row(s) (blocks and running averages)"}[task.table]
+                self._event(ms, "retention", "info", f"{task.removed} {what} before {_iso(task.before_utc)} deleted"
+                            + (" (the derived series keeps them)" if task.table == "readings" else ""),
+                            table=task.table, removed=task.removed, before_utc=task.before_utc)
 
     # -- main loop -----------------------------------------------------------------------------
     def run(self) -> None:
@@ -652,12 +670,14 @@ class Monitor:
                                 backoff_max_s=self._backoff_max_s, wake=self._wake)
             ms.link.start(require_open=False)
         next_commit = time.monotonic() + self.commit_s
+        self.notify.ready(f"monitoring {self.st.name}: {len(self.meters)} meter(s)")
         try:
             more = False
             while not self._stop.is_set():
                 # Sleep until a link queues something or the next commit is due (no polling).
                 if not more:
                     self._wake.wait(max(0.0, next_commit - time.monotonic()))
+                self.notify.watchdog()      # only this loop pings: if it hangs, systemd restarts the unit
                 self._wake.clear()          # before draining: an item queued after this wakes us again
                 more = False
                 for ms in self.meters:
@@ -672,21 +692,37 @@ class Monitor:
                     self._guard(self._tick)
                     next_commit = time.monotonic() + self.commit_s
         finally:
+            self.notify.stopping(f"stopping {self.st.name}")
             for ms in self.meters:
                 ms.link.stop()
             for ms in self.meters:
                 while (item := ms.link.get(0.0)) is not None:
                     self._handle(ms, item)
             self._tick(closing=True)
+            self._hook_outcomes(self.hooks.shutdown(STOP_WAIT_S))
             self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
             self._final_commit()
-            for p in self.procs:
-                try:
-                    p.wait(timeout=5)
-                except Exception:  # noqa: BLE001 - a hung alarm command must not block shutdown
-                    p.kill()
-                    p.wait()
             self.store.close()
+            self._lock.release()
+            self.notify.close()
+
+    def _hook_outcomes(self, outcomes) -> None:
+        """Alarm commands that ended badly become events (a clean exit 0 is not recorded)."""
+        for o in outcomes:
+            who = f"{o.argv0} ({o.label}{f', pid {o.pid}' if o.pid else ''})"
+            detail = {"hook": o.label, "command": o.argv0, "pid": o.pid, "returncode": o.returncode,
+                      "duration_s": round(o.duration_s, 3), "timeout_s": o.timeout_s}
+            if o.kind == "timeout":
+                self._event(None, "alarm_command_timeout", "error", f"{who} still running after {o.timeout_s:g} s: "
+                            "its process group was killed", **detail)
+            elif o.kind == "killed_at_stop":
+                self._event(None, "alarm_command_timeout", "warning", f"{who} still running when the monitor "
+                            "stopped: its process group was killed", at_stop=True, **detail)
+            elif o.kind in ("not_started", "skipped"):
+                self._event(None, "alarm_command_failed", "error", f"{who} not run: {o.error}", **detail)
+            elif o.returncode:
+                self._event(None, "alarm_command_failed", "warning", f"{who} exited with status {o.returncode}",
+                            **detail)
 
     def _final_commit(self, tries: int = 4) -> None:
         """Store everything left and mark the station stopped; if the file still cannot be written after
@@ -736,26 +772,9 @@ class Monitor:
                             ms.blocks_out.append((band, blocks))
         self._certificates()
         self._commit(force=closing)
-        self.procs = [p for p in self.procs if p is not None and p.poll() is None]
+        self._hook_outcomes(self.hooks.outcomes())
         if not closing and self._store_fail is None:
             self._retention()
-
-
-def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) -> int:
-    """Delete up to ``limit`` raw readings and spectra of a session older than before_utc (with their values)."""
-    conn = store.db.conn
-    with store.write():
-        gone = spans.delete_before(conn, session_id, before_utc, limit, dependents=[("field_values", "reading_id")])
-        left = limit - gone
-        sp = [r[0] for r in conn.execute("SELECT id FROM spectra WHERE session_id=? AND t_utc < ? LIMIT ?",
-                                         (session_id, before_utc, left))] if left > 0 else []
-        if sp:
-            marks = ",".join("?" * len(sp))
-            conn.execute(f"DELETE FROM spectrum_values WHERE spectrum_line_id IN (SELECT id FROM spectrum_lines "
-                         f"WHERE spectrum_id IN ({marks}))", sp)
-            conn.execute(f"DELETE FROM spectrum_lines WHERE spectrum_id IN ({marks})", sp)
-            conn.execute(f"DELETE FROM spectra WHERE id IN ({marks})", sp)
-    return gone + len(sp)
 
 
 def _iso(t: float | None) -> str:

@@ -60,6 +60,7 @@ class SpectrumSeries:
     flags: np.ndarray            # (F,) OR of the flags at that frequency
     orientations: np.ndarray     # (K,) number of orientations in each sweep
     warnings: tuple[str, ...]
+    n_seen: np.ndarray | None = None   # (K, F) orientations that saw each line above the floor
 
 
 def session_sensor_kind(store: Store, session_id: int) -> int:
@@ -161,6 +162,7 @@ def spectrum_series(store: Store, session_id: int, calibration_id: int | None = 
     k_index = {k: i for i, k in enumerate(sweeps)}
     p = np.zeros((len(sweeps), freqs.size))
     seen = np.zeros_like(p, dtype=bool)
+    n_seen = np.zeros(p.shape, dtype=np.int64)
     t = np.full(len(sweeps), np.nan)
     orient = [set() for _ in sweeps]
     u = np.zeros(freqs.size)
@@ -172,13 +174,14 @@ def spectrum_series(store: Store, session_id: int, calibration_id: int | None = 
         if np.isfinite(e):
             p[k, fi[j]] += e * e
             seen[k, fi[j]] = True
+            n_seen[k, fi[j]] += 1
         t[k] = v["t_utc"][j] if np.isnan(t[k]) else min(t[k], v["t_utc"][j])
         orient[k].add(int(v["orientation"][j]))
         u[fi[j]] = max(u[fi[j]], v["u_expanded_db"][j])
         flags[fi[j]] |= int(v["flags"][j])
     e_total = np.where(seen, np.sqrt(p), np.nan)
     return SpectrumSeries(session_id, cal["id"], cal["certificate_name"], freqs, t, e_total, u, flags,
-                          np.array([len(o) for o in orient]), _warnings_of(cal))
+                          np.array([len(o) for o in orient]), _warnings_of(cal), n_seen)
 
 
 def certificate_for_session(store: Store, session_id: int):

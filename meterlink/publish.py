@@ -17,6 +17,7 @@ import numpy as np
 
 from meterlink import derived
 from meterlink.errors import MeterlinkError
+from meterlink.safetext import clean_text, clean_tree, csv_cell
 from meterlink.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
 from meterlink.units import Z0_OHM
 
@@ -89,7 +90,8 @@ def current_state(conn, now_utc: float, recent_events: int = 10) -> dict:
                                  "DESC LIMIT ?", (recent_events,))
     for ev in out["recent_events"]:
         ev["t_utc"] = iso(ev["t_utc"])
-    return out
+    # names, ports and event messages (device fault texts among them) reach a terminal: no control codes
+    return clean_tree(out)
 
 
 def _reference(st: dict, m: dict) -> Reference:
@@ -120,7 +122,7 @@ def statistics(conn, t0: float, t1: float, periods=("day", "week", "month")) -> 
             entry[p] = period_stats(ref, t, e, cov, ok, t0, t1, p, out["timezone"], run)
         entry.update(profiles(ref, t, e, ok, out["timezone"]))
         out["meters"].append(entry)
-    return out
+    return clean_tree(out)
 
 
 def series_rows(conn, t0: float, t1: float) -> tuple[dict, list[dict]]:
@@ -149,14 +151,16 @@ def header_lines(st: dict, safety: str) -> list[str]:
 
 
 def to_csv(st: dict, rows: list[dict], safety: str) -> str:
+    """The 6-minute series as CSV (RFC 4180 quoting) under '#' comment lines; no text can start a
+    spreadsheet formula or break a line (meterlink.safetext)."""
     buf = io.StringIO()
     for line in header_lines(st, safety):
-        buf.write(f"# {line}\n")
+        buf.write(f"# {clean_text(line)}\n")
     cols = ["meter", "start_utc", "end_utc", "e_rms_v_per_m", "percent_of_reference", "coverage", "complete",
             "overrange_lower_bound"]
     w = csv.DictWriter(buf, fieldnames=cols, lineterminator="\n")
     w.writeheader()
-    w.writerows(rows)
+    w.writerows({k: csv_cell(v) for k, v in r.items()} for r in rows)
     return buf.getvalue()
 
 

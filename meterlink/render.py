@@ -9,17 +9,33 @@ import datetime as _dt
 import math
 
 from rich.console import Group
-from rich.markup import escape
+from rich.markup import escape as _escape_markup
 from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
 from meterlink.cli import SAFETY_LINE
+from meterlink.safetext import clean_text
 from meterlink.units import format_frequency
+
+
+def escape(text) -> str:
+    """Text for rich markup: markup escaped, control characters shown as escapes (meterlink.safetext)."""
+    return _escape_markup(clean_text(text))
 
 #: Our own palette for outcomes: the word is always printed too, colour is never the only cue.
 OUTCOME_STYLE = {"compliant": "bold white on dark_green", "not compliant": "bold white on red3",
-                 "undecided": "bold black on gold1"}
+                 "conditional pass": "bold black on khaki1", "conditional fail": "bold black on orange1",
+                 "not assessable": "bold white on grey39", "undecided": "bold black on gold1"}
+
+
+def value_label(a) -> str:
+    """What the judged value is: the standard's average, an instantaneous value, or a partial mean."""
+    if a.averaging == "instantaneous":
+        return "highest instantaneous value"
+    if a.value_complete:
+        return f"max {a.window_s / 60:g}-min average" if a.window_s else "time average"
+    return "partial mean (no full window)"
 
 
 def utc_text(t_s: float | None) -> str:
@@ -47,16 +63,20 @@ def assessment_renderable(a) -> Panel:
     t.add_column(style="bold cyan", no_wrap=True)
     t.add_column()
     t.add_row("standard", escape(f"{a.standard}, {a.tier_label} ({a.tier})"))
-    t.add_row("source", escape(f"{a.source} [{a.status}]"))
+    t.add_row("source", escape(a.source))
+    t.add_row("reference level check", Text(a.status, style="green" if a.status.startswith("checked") else "yellow"))
     t.add_row("mode", escape(f"{a.mode}: {a.frequency_note}"))
     t.add_row("certificate", escape(a.certificate))
     if a.limit_v_per_m:
         t.add_row("reference level", f"{a.limit_v_per_m:.4g} V/m" + (" (derived from S)" if a.limit_derived else ""))
     if a.window_s:
         t.add_row("averaging time", f"{a.window_s / 60:g} min")
+    elif a.averaging == "instantaneous":
+        t.add_row("averaging time", "none in the standard: instantaneous values compared")
     t.add_row("peak", f"{a.peak_v_per_m:.4g} V/m at {utc_text(a.t_peak_utc)}" if a.t_peak_utc else f"{a.peak_v_per_m:.4g} V/m")
-    label = "max running average" if a.value_complete else "record mean (window incomplete)"
-    t.add_row(label, f"{a.value_v_per_m:.4g} V/m (coverage {100 * a.coverage:.0f} %)")
+    t.add_row(value_label(a), f"{a.value_v_per_m:.4g} V/m (coverage {100 * a.coverage:.1f} %)")
+    if a.partial_v_per_m is not None:
+        t.add_row("partial windows", f"up to {a.partial_v_per_m:.4g} V/m (start of record, not the standard's average)")
     t.add_row("expanded uncertainty", f"U = {a.u_expanded_db:.2f} dB (k = 2)")
     t.add_row("exposure, field terms", Text.assemble(bar(a.percent_field / 100), f" {a.percent_field:.1f} % of the field level"))
     t.add_row("exposure, power terms", Text.assemble(bar(a.percent_power / 100), f" {a.percent_power:.1f} % of the power-density level"))
@@ -86,14 +106,17 @@ def assessment_dict(a) -> dict:
     return {
         "session_id": a.session_id, "standard": a.standard, "tier": a.tier, "tier_label": a.tier_label,
         "decision_rule": a.rule, "mode": a.mode, "frequency_note": a.frequency_note,
-        "source": a.source, "status": a.status, "certificate": a.certificate,
+        "source": a.source, "status": a.status, "reference_level_check": a.status, "certificate": a.certificate,
         "reference_level_e_v_per_m": a.limit_v_per_m, "reference_level_derived": a.limit_derived,
         "averaging_time_s": a.window_s, "peak_e_v_per_m": a.peak_v_per_m, "t_peak_utc": a.t_peak_utc,
+        "averaging": a.averaging, "value_label": value_label(a),
         "averaged_e_v_per_m": a.value_v_per_m, "averaged_window_complete": a.value_complete,
+        "partial_window_max_e_v_per_m": a.partial_v_per_m,
         "coverage": a.coverage, "t_averaged_end_utc": a.t_value_end_utc,
         "exposure_ratio_power": a.total_exposure_ratio, "percent_of_field_level": a.percent_field,
         "percent_of_power_density_level": a.percent_power, "u_expanded_db": a.u_expanded_db, "k": 2,
-        "outcome": a.verdict.outcome, "statement": a.verdict.statement,
+        "outcome": a.verdict.outcome, "conformity_statement_made": a.verdict.outcome != "not assessable",
+        "not_assessable_reason": a.verdict.reason or None, "statement": a.verdict.statement,
         "emitters": [{"freq_hz": e.freq_hz, "e_v_per_m": e.e_v_per_m, "term_ratio": e.term_ratio,
                       "quantity": e.quantity, "share": e.share} for e in a.emitters],
         "notes": list(a.notes), "caution": SAFETY_LINE,

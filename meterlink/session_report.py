@@ -50,6 +50,10 @@ def _field_plot(series, a) -> bytes:
             y = np.where(ra.complete, ra.e_rms_v_per_m, np.nan)
             ax.plot((ra.t_end_s - t0) / 60, y, color="#2b6f77", lw=1.8,
                     label=f"{a.window_s / 60:g}-min running average")
+        part = ra.partial & np.isfinite(ra.e_rms_v_per_m)
+        if np.any(part):
+            ax.plot((ra.t_end_s - t0) / 60, np.where(part, ra.e_rms_v_per_m, np.nan), color="#2b6f77", lw=1.0,
+                    ls=":", label="partial windows (shorter than the averaging time)")
     if a.limit_v_per_m:
         ax.axhline(a.limit_v_per_m, color="#b3261e", ls="--", lw=1.2, label=f"reference level {a.limit_v_per_m:.4g} V/m")
     ax.set(xlabel="minutes from the first reading (device clock)", ylabel="E (V/m)")
@@ -79,6 +83,7 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
     from meterlink.certificate import parse_certificate
     from meterlink.cli import SAFETY_LINE
     from meterlink.processing import FieldSeries, calibrated_series
+    from meterlink.render import value_label
     from meterlink.storage import Store
 
     if not Path(db_path).is_file():
@@ -99,7 +104,9 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
             a = assess_field(series, standard, tier, rule, freq_hz=s.get("freq_hz"), band=band,
                              fallback_range=cert.freq_range_hz, has_h=cert.quantity == "H")
         else:
-            a = assess_spectrum(series, standard, tier, rule)
+            from meterlink.calibrate import floor_e_v_per_m
+
+            a = assess_spectrum(series, standard, tier, rule, floor_v_per_m=floor_e_v_per_m(cert, series.freq_hz))
         events = store.events(session_id)
     kinds: dict[str, int] = {}
     for ev in events:
@@ -118,17 +125,23 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
                              f"(device clock)" if len(series.t_utc) else "-"))]),
             "<h2>Assessment</h2>",
             H.table(("item", "value"), [(H.e(k), v) for k, v in (
-                ("standard", H.e(f"{a.standard}, {a.tier_label}: {a.source} [{a.status}]")),
+                ("standard", H.e(f"{a.standard}, {a.tier_label}: {a.source}")),
+                ("reference level check", H.e(a.status)),
                 ("decision rule", H.e(a.rule)), ("mode", H.e(f"{a.mode}: {a.frequency_note}")),
                 ("reference level", H.e(f"{H.num(a.limit_v_per_m, '{:.4g}')} V/m" + (" (derived)" if a.limit_derived else ""))),
-                ("averaging time", H.e(f"{a.window_s / 60:g} min" if a.window_s else "-")),
+                ("averaging time", H.e(f"{a.window_s / 60:g} min" if a.window_s else
+                                       "none in the standard: instantaneous values compared"
+                                       if a.averaging == "instantaneous" else "-")),
                 ("peak", H.e(f"{a.peak_v_per_m:.4g} V/m")),
-                ("time-averaged value", H.e(f"{a.value_v_per_m:.4g} V/m" + ("" if a.value_complete else
-                                                                          " (window incomplete: record mean)"))),
+                (value_label(a), H.e(f"{a.value_v_per_m:.4g} V/m (coverage {100 * a.coverage:.1f} %)")),
+                *((("partial windows (start of record)",
+                    H.e(f"up to {a.partial_v_per_m:.4g} V/m, not the standard's average")),)
+                  if a.partial_v_per_m is not None else ()),
                 ("expanded uncertainty", H.e(f"U = {a.u_expanded_db:.2f} dB (k = 2)")),
                 ("percent of the field level", H.e(f"{a.percent_field:.1f} %")),
                 ("percent of the power-density level", H.e(f"{a.percent_power:.1f} %")),
-                ("outcome", H.verdict(a.verdict.outcome)))]),
+                ("outcome", H.verdict(a.verdict.outcome)),
+                *((("no conformity statement", H.e(a.verdict.reason)),) if a.verdict.reason else ()))]),
             f"<p>{H.e(a.verdict.statement)}</p>"]
     body += [f'<p class="note">note: {H.e(n)}</p>' for n in a.notes]
     if isinstance(series, FieldSeries):
@@ -148,7 +161,7 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
     body += ["<h2>Events</h2>", H.table(("kind", "count"), [(H.e(k), str(n)) for k, n in sorted(kinds.items())],
                                         numeric=(1,)),
              "<h2>Cautions</h2>", f'<p class="caution">{H.e(CAUTIONS)}</p>',
-             f'<p class="note">Assessment details as JSON: {H.e(json.dumps({"outcome": a.verdict.outcome, "exposure_ratio_power": a.total_exposure_ratio}))}</p>']
+             f'<p class="note">Assessment details as JSON: {H.e(json.dumps({"outcome": a.verdict.outcome, "not_assessable_reason": a.verdict.reason or None, "exposure_ratio_power": a.total_exposure_ratio}))}</p>']
     html = out / "report.html"
     html.write_text(H.page(f"Exposure record, session {session_id}", "\n".join(body)), encoding="utf-8")
     return html

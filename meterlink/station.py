@@ -52,6 +52,7 @@ class AlarmRule:
     min_duration_s: float = 0.0
     meters: tuple[str, ...] = ()          # empty: every meter
     command: tuple[str, ...] = ()         # argv of an external command, run per episode event
+    command_timeout_s: float = 10.0       # past this its whole process group is killed (meterlink.hooks)
 
 
 @dataclass(frozen=True)
@@ -69,9 +70,14 @@ class HealthRules:
 
 @dataclass(frozen=True)
 class Retention:
-    """Raw readings older than raw_days are thinned (derived series are kept for ever)."""
+    """Age limits, in days of data time, of every table that grows (meterlink/retention.py).
+
+    derived_days = 0 keeps the 6-minute blocks and running averages for ever."""
 
     raw_days: float = 90.0
+    status_days: float = 90.0
+    events_days: float = 365.0
+    derived_days: float = 0.0
     check_every_s: float = 3600.0
     chunk_rows: int = 20000
 
@@ -233,7 +239,10 @@ def _alarm(d: _Doc, meters: set[str], windows: tuple[float, ...]) -> AlarmRule:
     clear = d.get("clear", "num", thr, positive=True)
     if clear > thr:
         d.fail("clear", f"must not exceed threshold {thr:g}")
-    window = d.get("window_s", "num", windows[0], positive=True)
+    window = float(d.get("window_s", "num", windows[0], positive=True))
+    if window not in windows:   # the monitor evaluates alarms only on the running averages it computes
+        d.fail("window_s", f"{window:g} s is not one of the station's averaging windows (assessment.windows_s = "
+                           f"[{', '.join(f'{w:g}' for w in windows)}]): this alarm could never fire")
     names = d.get("meters", "list", [])
     for i, n in enumerate(names):
         if not isinstance(n, str) or n not in meters:
@@ -243,7 +252,8 @@ def _alarm(d: _Doc, meters: set[str], windows: tuple[float, ...]) -> AlarmRule:
         d.fail("command", "expected a list of non-empty strings (an argument list, not a shell line)")
     a = AlarmRule(name=d.get("name", "str"), window_s=window, unit=unit, threshold=thr, clear=clear,
                   min_duration_s=d.get("min_duration_s", "num", 0.0, lo=0.0),
-                  meters=tuple(names), command=tuple(cmd))
+                  meters=tuple(names), command=tuple(cmd),
+                  command_timeout_s=d.get("command_timeout_s", "num", 10.0, lo=0.1, hi=3600.0))
     d.done()
     return a
 
@@ -323,9 +333,15 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
         h.fail("temp_max_c", "must exceed temp_min_c")
     h.done()
     r = top.sub("retention")
-    retention = Retention(raw_days=r.get("raw_days", "num", 90.0, positive=True),
+    raw_days = r.get("raw_days", "num", 90.0, positive=True)
+    retention = Retention(raw_days=raw_days, status_days=r.get("status_days", "num", raw_days, positive=True),
+                          events_days=r.get("events_days", "num", 365.0, positive=True),
+                          derived_days=r.get("derived_days", "num", 0.0, lo=0.0),
                           check_every_s=r.get("check_every_s", "num", 3600.0, positive=True),
                           chunk_rows=r.get("chunk_rows", "int", 20000, positive=True))
+    if 0 < retention.derived_days < raw_days:
+        r.fail("derived_days", f"must be 0 (keep for ever) or at least raw_days ({raw_days:g}), "
+               f"got {retention.derived_days:g}")
     r.done()
     top.done()
     return Station(path=path, name=name, latitude_deg=lat, longitude_deg=lon, elevation_m=elev,

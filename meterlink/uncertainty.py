@@ -1,10 +1,13 @@
 """GUM-style uncertainty budgets (JCGM 100:2008): components, quadrature sum, expanded U (pure).
 
 Components are combined in the log (dB) domain, the common practice for RF field and EMC
-measurements (small uncertainties, multiplicative errors). A component given in percent is first
-turned into dB: 20*log10(1 + p/100) for a field quantity, 10*log10(1 + p/100) for a power
-quantity. The expanded uncertainty U (dB) is reported back in percent of the field,
-100*(10**(U/20) - 1), and of the power density, 100*(10**(U/10) - 1).
+measurements (small uncertainties, multiplicative errors). A component of +/-p % is first turned
+into dB on its larger side: a factor (1 - p/100) lies further from 0 dB than (1 + p/100), so
+|20*log10(1 - p/100)| for a field quantity and |10*log10(1 - p/100)| for a power quantity (the
+upper side alone, 20*log10(1 + p/100), would understate the component: 0.83 dB instead of
+0.92 dB for +/-10 % of a field). p must be below 100 %. The expanded uncertainty U (dB) is
+reported back in percent of the field, +100*(10**(U/20) - 1) / -100*(1 - 10**(-U/20)), and of
+the power density alike with U/10.
 """
 
 from __future__ import annotations
@@ -50,6 +53,9 @@ class Component:
             raise ValueError(f"uncertainty {self.name!r}: value must be finite and >= 0")
         if not (math.isfinite(self.k) and self.k > 0):
             raise ValueError(f"uncertainty {self.name!r}: k must be > 0")
+        if self.unit == "%" and self.value >= 100.0:
+            raise ValueError(f"uncertainty {self.name!r}: {self.value:g} % has no lower side in dB "
+                             "(a percent component must be below 100 %)")
 
     @property
     def divisor(self) -> float:
@@ -57,10 +63,12 @@ class Component:
         return self.k if self.distribution == "normal" else DIVISORS[self.distribution]
 
     def value_db(self, domain: str = "field") -> float:
-        """The value in dB (percent converted for a field or power quantity)."""
+        """The value in dB; +/-p % converts on its larger side, |log10(1 - p/100)| (field 20, power 10)."""
         if self.unit == "dB":
             return self.value
-        return (20.0 if domain == "field" else 10.0) * math.log10(1.0 + self.value / 100.0)
+        p = self.value / 100.0
+        side = max(math.log10(1.0 + p), -math.log10(1.0 - p))     # = -log10(1 - p) for 0 <= p < 1
+        return (20.0 if domain == "field" else 10.0) * side
 
     def standard_db(self, domain: str = "field") -> float:
         """Standard uncertainty contribution |c| * u(x) in dB."""
@@ -103,6 +111,16 @@ class Budget:
     def u_expanded_pct_power(self) -> float:
         """U as a percentage of the power density (upper side)."""
         return 100.0 * (10.0 ** (self.u_expanded_db / 10.0) - 1.0)
+
+    @property
+    def u_expanded_pct_field_lower(self) -> float:
+        """U as a percentage of the field strength (lower side, smaller than the upper side)."""
+        return 100.0 * (1.0 - 10.0 ** (-self.u_expanded_db / 20.0))
+
+    @property
+    def u_expanded_pct_power_lower(self) -> float:
+        """U as a percentage of the power density (lower side)."""
+        return 100.0 * (1.0 - 10.0 ** (-self.u_expanded_db / 10.0))
 
 
 def combine(components, k: float = K_DEFAULT, domain: str = "field") -> Budget:

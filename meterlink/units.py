@@ -99,11 +99,26 @@ _FREQ_RE = re.compile(r"^\s*([+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?)\s*([k
 _FREQ_SCALE = {"": 1.0, "k": 1e3, "m": 1e6, "g": 1e9, "t": 1e12}
 
 
+#: Frequencies meterlink accepts: the span of the exposure standards it carries (ICNIRP 1998 and
+#: 2020 and IEEE C95.1-2019 end at 300 GHz; the ICNIRP 1998 summation terms start at 1 Hz).
+FREQ_MIN_HZ: float = 1.0
+FREQ_MAX_HZ: float = 300e9
+
+
+def check_frequency_hz(freq_hz: float, what: str = "frequency") -> float:
+    """freq_hz as a float if it lies in FREQ_MIN_HZ..FREQ_MAX_HZ; ValueError naming the value if not."""
+    f = float(freq_hz)
+    if not (math.isfinite(f) and FREQ_MIN_HZ <= f <= FREQ_MAX_HZ):
+        raise ValueError(f"{what} {f:g} Hz is outside {format_frequency(FREQ_MIN_HZ)}-"
+                         f"{format_frequency(FREQ_MAX_HZ)}, the range the exposure standards cover")
+    return f
+
+
 def parse_frequency_hz(text: str) -> float:
     """Parse '900MHz', '2.45 GHz', '100e6', '27k' into hertz; ValueError with the text if not.
 
     A bare number is hertz. Unit letters are case-insensitive ('m' means mega, since milli-
-    hertz has no place in RF exposure work).
+    hertz has no place in RF exposure work). The value must lie in 1 Hz-300 GHz.
     """
     m = _FREQ_RE.match(str(text))
     if not m:
@@ -111,7 +126,56 @@ def parse_frequency_hz(text: str) -> float:
     value = float(m.group(1)) * _FREQ_SCALE[m.group(2).lower()]
     if not math.isfinite(value) or value <= 0:
         raise ValueError(f"not a positive frequency: {text!r}")
-    return value
+    return check_frequency_hz(value, f"frequency {str(text).strip()!r} =")
+
+
+def parse_band_hz(text: str) -> tuple[float, float]:
+    """Parse 'LO:HI' ('790MHz:960MHz') into (lo_hz, hi_hz), both in range and lo < hi; ValueError if not."""
+    lo, sep, hi = str(text).partition(":")
+    if not sep:
+        raise ValueError(f"not a band: {text!r} (expected LO:HI, e.g. 790MHz:960MHz)")
+    band = parse_frequency_hz(lo.strip()), parse_frequency_hz(hi.strip())
+    if band[0] >= band[1]:
+        raise ValueError(f"the low edge {format_frequency(band[0])} must be below the high edge {format_frequency(band[1])}")
+    return band
+
+
+def antenna_factor_per_m(gain_ratio, freq_hz, r_ohm: float = R_50_OHM):
+    """Antenna factor AF = E / V (1/m) of an antenna of gain G (ratio) into r_ohm, far field, matched.
+
+    Derivation: an antenna of gain G has effective area A_e = G*lambda^2/(4*pi); in a plane wave of
+    power density S = E^2/Z0 it delivers P = S*A_e = V^2/R to a matched load R. So
+    V^2 = E^2 * R * G * lambda^2 / (4*pi*Z0) and AF = E/V = (1/lambda)*sqrt(4*pi*Z0/(R*G)), which is
+    9.73/(lambda*sqrt(G)) for R = 50 ohm.
+    """
+    g = np.asarray(gain_ratio, dtype=float)
+    return np.sqrt(4.0 * math.pi * Z0_OHM / (r_ohm * g)) / wavelength_m(freq_hz)
+
+
+def antenna_factor_db_per_m(gain_dbi, freq_hz, r_ohm: float = R_50_OHM):
+    """Antenna factor in dB(1/m) from gain in dBi: 20*log10(AF); about 20*log10(f_MHz) - 29.77 - G_dBi."""
+    return ratio_field_to_db(antenna_factor_per_m(db_to_ratio_power(gain_dbi), freq_hz, r_ohm))
+
+
+def gain_dbi_from_antenna_factor(af_db_per_m, freq_hz, r_ohm: float = R_50_OHM):
+    """Gain (dBi) of an antenna from its antenna factor (dB/m): the inverse of antenna_factor_db_per_m."""
+    af = db_to_ratio_field(af_db_per_m)
+    g = 4.0 * math.pi * Z0_OHM / (r_ohm * (af * wavelength_m(freq_hz)) ** 2)
+    return ratio_power_to_db(g)
+
+
+#: 1 mW/cm^2 = 1e-3 W / 1e-4 m^2 = 10 W/m^2.
+W_PER_M2_PER_MW_PER_CM2: float = 10.0
+
+
+def mw_per_cm2_to_w_per_m2(s_mw_per_cm2):
+    """Power density in W/m^2 from mW/cm^2 (the unit of 47 CFR 1.1310): x 10."""
+    return np.multiply(s_mw_per_cm2, W_PER_M2_PER_MW_PER_CM2)
+
+
+def w_per_m2_to_mw_per_cm2(s_w_per_m2):
+    """Power density in mW/cm^2 from W/m^2: / 10."""
+    return np.divide(s_w_per_m2, W_PER_M2_PER_MW_PER_CM2)
 
 
 def format_frequency(freq_hz: float) -> str:

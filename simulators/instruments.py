@@ -131,9 +131,11 @@ class ReceiverModel:
 
 
 def true_antenna_factor_db_per_m(model: ReceiverModel, freq_hz) -> np.ndarray:
-    """AF = 20 log10(f_MHz) - 29.77 - G(dBi), the 50-ohm antenna-factor relation (common practice)."""
-    f_mhz = np.asarray(freq_hz, dtype=float) / 1e6
-    return 20 * np.log10(f_mhz) - 29.77 - _interp_logf(model.antenna_gain_dbi, freq_hz)
+    """AF from the antenna's gain into 50 ohm, AF = sqrt(4*pi*Z0/(R*G))/lambda (meterlink.units), the
+    exact form of the handbook 20 log10(f_MHz) - 29.77 - G(dBi)."""
+    from meterlink.units import antenna_factor_db_per_m
+
+    return antenna_factor_db_per_m(_interp_logf(model.antenna_gain_dbi, freq_hz), freq_hz)
 
 
 def true_cable_loss_db(model: ReceiverModel, freq_hz) -> np.ndarray:

@@ -103,6 +103,16 @@ class SimulatedMeter:
         with self._lock:
             return self.fw.tick_ms(self._now_ms())
 
+    def at_device_now(self, action):
+        """Run action(t_s) with the device clock held: returns (TICK, result) of that one instant.
+
+        Every reading already produced lies before t_s and none is produced meanwhile, so a scene
+        change the action makes at t_s is seen by exactly the readings timed at t_s or later.
+        """
+        with self._lock:
+            now = max(self._now_ms(), self.fw.now_ms)
+            return self.fw.tick_ms(now), action(now / 1000)
+
     def sim_time_s(self) -> float:
         """Simulated seconds since start(): the time at which scenes are evaluated."""
         return self._now_ms() / 1000

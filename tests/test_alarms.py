@@ -7,7 +7,8 @@ import sys
 
 import pytest
 
-from meterlink.alarms import AlarmMachine, rule_value, run_command
+from meterlink.alarms import AlarmMachine, command_call, rule_value
+from meterlink.hooks import HookRunner
 from meterlink.station import AlarmRule
 from meterlink.units import Z0_OHM
 
@@ -64,7 +65,30 @@ def test_external_command_gets_argv_and_environment(tmp_path):
     rule = AlarmRule("r; rm -rf /", 360, "v_per_m", threshold=1, clear=1,
                      command=(sys.executable, "-c", script, str(out)))
     _, ev = _run(rule, [2])
-    p = run_command(rule.command, ev[0])
-    assert p.wait(20) == 0
+    runner = HookRunner()
+    args, env = command_call(rule.command, ev[0])
+    assert runner.start(args, env, 20.0) is not None
+    (o,) = runner.shutdown(20.0)
+    assert (o.kind, o.returncode) == ("exited", 0)
     text = out.read_text()
     assert text.startswith("start r; rm -rf / m1 0.000 2 v_per_m|r; rm -rf /|start")   # data stays data
+
+
+def test_percent_rules_compare_instantaneous_values_where_the_standard_has_no_averaging_time():
+    # ICNIRP 1998 (Health Phys 74(4)) Tables 6-7 notes: 6-min averaging from 100 kHz to 10 GHz, none
+    # below 100 kHz (rms values compared as they are). A station at 50 kHz feeds a percent-of-level
+    # rule each value; at 900 MHz the rule stays on its window; a V/m rule is the operator's own
+    # threshold and keeps its window everywhere.
+    from meterlink.alarms import percent_rules_instantaneous
+    assert percent_rules_instantaneous("icnirp-1998", "public", 50e3)
+    assert percent_rules_instantaneous("icnirp-1998", "public", (50e3, 1e6))
+    assert not percent_rules_instantaneous("icnirp-1998", "public", 900e6)
+    pct = AlarmRule("p", 360, "pct_field", threshold=100, clear=90, min_duration_s=0)
+    volts = AlarmRule("v", 360, "v_per_m", threshold=100, clear=90, min_duration_s=0)
+    assert AlarmMachine(pct, "m1", instantaneous=True).instantaneous
+    assert not AlarmMachine(volts, "m1", instantaneous=True).instantaneous
+    m = AlarmMachine(pct, "m1", instantaneous=True)
+    # 100 V/m against E_ref = 87 V/m (Table 7, 3-150 kHz): 114.9 % of the level
+    ev = m.update(0.0, rule_value("pct_field", 100.0, 87.0, None))
+    assert [e.kind for e in ev] == ["start"] and ev[0].basis == "instantaneous"
+    assert "instantaneous value 114.9 %" in ev[0].message()

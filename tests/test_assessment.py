@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from meterlink.assessment import assess_field, assess_spectrum, governing_level
-from meterlink.calibrate import ABOVE_RANGE
+from meterlink.calibrate import ABOVE_RANGE, FREQ_OUT
 from meterlink.errors import MeterlinkError
 from meterlink.processing import FieldSeries, SpectrumSeries
 
@@ -41,18 +41,28 @@ def test_averaging_is_in_the_power_domain_over_the_standards_time():
     assert a.peak_v_per_m == 10.0
 
 
-def test_short_record_is_judged_on_its_mean_and_says_so():
+def test_short_record_gets_its_mean_but_no_conformity_statement():
+    # FCC 47 CFR 1.1310(e) Table 1 (B), 30-300 MHz: 27.5 V/m averaged over 30 minutes. A 5-minute
+    # record is no 30-minute average: its power-domain mean (5 V/m) is reported as a partial value
+    # only, with no statement of conformity (coverage 300/1800 = 16.7 %).
     a = assess_field(series(np.full(300, 5.0)), "fcc-1310", "public", "simple", freq_hz=100e6)
     assert not a.value_complete
     assert a.value_v_per_m == pytest.approx(5.0)
     assert a.limit_v_per_m == pytest.approx(27.5)
-    assert any("shorter than the 30-minute" in n for n in a.notes)
+    assert a.coverage == pytest.approx(300 / 1800)
+    assert a.verdict.outcome == "not assessable"
+    assert "incomplete" in a.verdict.reason and "No conformity statement" in a.verdict.statement
+    assert any("30-minute window" in n and "partial" in n for n in a.notes)
 
 
-def test_guarded_rule_leaves_a_value_near_the_limit_undecided():
-    # 95 % of the field level with U = 1 dB: 95 % * 10^(1/20) = 106.6 % > 100 %, 95 % / 10^(1/20) < 100 %
+def test_guarded_rule_reports_a_conditional_pass_near_the_limit():
+    # 95 % of the field level with U = 1 dB: 95 % * 10^(1/20) = 106.6 % > 100 %, 95 % / 10^(1/20) < 100 %,
+    # measured below the limit: ILAC-G8:09/2019 4.2.3 "conditional pass".
     a = assess_field(series(np.full(2400, 0.95 * 27.7)), "icnirp-2020", "public", "guarded", freq_hz=100e6)
-    assert a.verdict.outcome == "undecided"
+    assert a.verdict.outcome == "conditional pass"
+    # 105 % with U = 1 dB: 105 % / 1.122 = 93.6 % < 100 % < 105 %: conditional fail
+    a = assess_field(series(np.full(2400, 1.05 * 27.7)), "icnirp-2020", "public", "guarded", freq_hz=100e6)
+    assert a.verdict.outcome == "conditional fail"
     a = assess_field(series(np.full(2400, 0.95 * 27.7)), "icnirp-2020", "public", "simple", freq_hz=100e6)
     assert a.verdict.outcome == "compliant"
 
@@ -63,14 +73,59 @@ def test_readings_above_range_cannot_show_compliance():
     e = np.full(2400, 5.0)
     e[100] = np.nan
     a = assess_field(series(e, flags=flags), "icnirp-2020", "public", "guarded", freq_hz=100e6)
-    assert a.verdict.outcome == "undecided"
+    assert a.verdict.outcome == "not assessable" and "lower bound" in a.verdict.reason
     assert any("above the probe's calibrated range" in n for n in a.notes)
 
 
 def test_e_only_below_30_mhz_is_flagged_and_not_compliant():
     a = assess_field(series(np.full(2400, 1.0)), "icnirp-2020", "public", "guarded", freq_hz=10e6)
-    assert a.verdict.outcome == "undecided"
+    assert a.verdict.outcome == "not assessable"
     assert any("H" in n for n in a.notes)
+
+
+def test_no_averaging_time_in_the_standard_compares_instantaneous_values():
+    # ICNIRP 1998 (Health Phys 74(4)) Table 7, general public, 3-150 kHz: E = 87 V/m; the table notes
+    # give 6-min averaging only from 100 kHz to 10 GHz, so at 50 kHz the rms values themselves are
+    # compared. A 40-min record at 10 V/m with a 10-s burst of 100 V/m: a 6-min average would be
+    # sqrt((100^2 * 10 + 10^2 * 350) / 360) = sqrt(375) = 19.4 V/m (22 % of 87 V/m, "compliant");
+    # the instantaneous 100 V/m is 115 % of 87 V/m: not compliant.
+    e = np.full(2400, 10.0)
+    e[1000:1010] = 100.0
+    a = assess_field(series(e), "icnirp-1998", "public", "simple", freq_hz=50e3)
+    assert a.window_s is None and a.averaging == "instantaneous"
+    assert a.value_v_per_m == pytest.approx(100.0)
+    assert a.limit_v_per_m == pytest.approx(87.0)
+    assert a.verdict.outcome == "not compliant"
+    assert any("no averaging time" in n for n in a.notes)
+    # Above 100 kHz the same table averages over 6 min: a band reaching below 100 kHz takes none.
+    from meterlink.assessment import averaging_time_s
+    assert averaging_time_s("icnirp-1998", "public", freq_hz=1e6) == pytest.approx(360.0)
+    assert averaging_time_s("icnirp-1998", "public", band=(50e3, 1e6)) is None
+    assert averaging_time_s("icnirp-1998", "public", band=(1e6, 100e6)) == pytest.approx(360.0)
+
+
+def test_partial_windows_are_reported_apart_from_the_standards_average():
+    # FCC 47 CFR 1.1310(e) Table 1 (B), 30-300 MHz: 27.5 V/m, 30-min average. 40 min of record: the
+    # first 20 s at 20 V/m then 5 V/m. Windows of 30 min inside the record: the first one (ending at
+    # t = 1800 s) holds the burst: sqrt((20^2 * 20 + 5^2 * 1780) / 1800) = sqrt(29.17) = 5.40 V/m.
+    # Windows ending earlier reach before the record (partial): their covered mean reaches 20 V/m at
+    # the start - reported apart, never judged as the average.
+    e = np.full(2400, 5.0)
+    e[:20] = 20.0
+    a = assess_field(series(e), "fcc-1310", "public", "simple", freq_hz=100e6)
+    assert a.value_complete
+    assert a.value_v_per_m == pytest.approx(math.sqrt((400 * 20 + 25 * 1780) / 1800), rel=1e-9)
+    assert a.partial_v_per_m == pytest.approx(20.0)
+    assert any("partial windows" in n for n in a.notes)
+
+
+def test_frequency_outside_the_certificate_is_not_assessable():
+    # A probe certified 30 MHz-6 GHz says nothing about 50 GHz: no verdict, whatever the value.
+    s = series(np.full(2400, 1.0), flags=np.full(2400, FREQ_OUT, np.int64))
+    a = assess_field(s, "icnirp-2020", "public", "guarded", freq_hz=50e9, fallback_range=(30e6, 6e9))
+    assert a.verdict.outcome == "not assessable"
+    assert "outside the certificate's calibrated frequency range (30 MHz-6 GHz)" in a.verdict.reason
+    assert "50 GHz" in a.verdict.reason
 
 
 def test_band_uses_the_most_restrictive_level():
@@ -98,3 +153,63 @@ def test_spectrum_total_uses_the_standards_sum_and_shares():
     assert a.total_exposure_ratio == pytest.approx(1.0, rel=1e-6)
     assert sorted(em.share for em in a.emitters) == pytest.approx([0.5, 0.5])
     assert all(em.quantity == "S/S_L" for em in a.emitters)
+
+
+def _spectrum(f, t, e):
+    e = np.asarray(e, dtype=float)
+    return SpectrumSeries(1, 1, "dipole", np.asarray(f, dtype=float), np.asarray(t, dtype=float), e,
+                          np.ones(e.shape[1]), np.zeros(e.shape[1], np.int64), np.full(e.shape[0], 3), ())
+
+
+def test_sweeps_are_weighted_by_time_not_equally():
+    # Sweeps at t = 0, 60, 70, 80 s of one 900 MHz line at 2, 4, 4, 4 V/m. Each sweep stands for the
+    # time to the next, capped at 3 median intervals (median 10 s -> cap 30 s), the last for one
+    # median interval: weights 30, 10, 10, 10 s. Time mean of E^2 = (4*30 + 16*30) / 60 = 10 V^2/m^2,
+    # E = sqrt(10) = 3.162 V/m; equal weights would give sqrt((4 + 3*16) / 4) = 3.606 V/m. Hand-worked
+    # from the definition of an rms over time (power domain).
+    s = _spectrum([900e6], [0, 60, 70, 80], [[2.0], [4.0], [4.0], [4.0]])
+    a = assess_spectrum(s, "icnirp-2020", "public", "simple")
+    assert a.emitters[0].e_v_per_m == pytest.approx(math.sqrt(10.0), rel=1e-12)
+    # 60 s of sweeps is no 30-min average (ICNIRP 2020 Table 5): a partial value, no statement.
+    assert not a.value_complete and a.verdict.outcome == "not assessable"
+
+
+def test_lines_below_the_floor_are_upper_bounds_not_zero():
+    # A line seen in one sweep at 3 V/m and below the receiver's floor (NaN) in the other: with a
+    # floor of 1 V/m per orientation the missing value is < sqrt(3) * 1 V/m (all three orientations
+    # just below it), so the power mean is at most (9 + 3) / 2 = 6 V^2/m^2 (E <= 2.449 V/m), not
+    # (9 + 0) / 2 = 4.5 V^2/m^2 (2.121 V/m) as a zero would give.
+    s = _spectrum([900e6], [0, 1], [[3.0], [np.nan]])
+    a = assess_spectrum(s, "icnirp-2020", "public", "simple", floor_v_per_m=np.array([1.0]))
+    assert a.emitters[0].e_v_per_m == pytest.approx(math.sqrt(6.0), rel=1e-12)
+    assert any("< floor" in n for n in a.notes)
+    b = assess_spectrum(s, "icnirp-2020", "public", "simple")
+    assert b.emitters[0].e_v_per_m == pytest.approx(math.sqrt(4.5), rel=1e-12)
+    assert any("not an upper bound" in n for n in b.notes)
+
+
+
+@pytest.mark.parametrize("dt_s", [10.0, 1.0])      # 1 s: more windows than are evaluated exactly
+def test_spectrum_judges_the_largest_complete_window_not_the_record_mean(dt_s):
+    # ICNIRP 2020 Table 5 public, 400-2000 MHz: S_L = f/200 W/m2 (900 MHz: 4.5 W/m2), 30-min
+    # average. Sweeps every 10 s for 2 h: 1 V/m, except 40 V/m for the 30 min from t = 3600 s.
+    # The worst 30-min window is that burst: S = 40^2 / Z0 = 4.247 W/m2 -> S/S_L = 0.9438; the 2-h
+    # mean, sqrt((1 * 90 + 1600 * 30) / 120) = 20.0 V/m, would give only a quarter of that.
+    from meterlink.units import Z0_OHM
+    t = np.arange(0.0, 7200.0, dt_s)
+    e = np.where((t >= 3600) & (t < 5400), 40.0, 1.0)[:, None]
+    a = assess_spectrum(_spectrum([900e6], t, e), "icnirp-2020", "public", "simple")
+    assert a.value_complete and a.window_s == pytest.approx(1800.0)
+    assert a.emitters[0].e_v_per_m == pytest.approx(40.0, rel=1e-9)
+    assert a.total_exposure_ratio == pytest.approx(40.0**2 / Z0_OHM / 4.5, rel=1e-9)
+    assert a.verdict.outcome == "compliant"
+
+
+def test_orientations_that_missed_a_line_count_at_the_floor():
+    # One sweep: the 900 MHz line was seen by one orientation only, at 3 V/m; the other two were
+    # below the 1 V/m floor. E^2 = Ex^2 + Ey^2 + Ez^2 <= 9 + 1 + 1 = 11: E <= sqrt(11) = 3.317 V/m,
+    # not the 3 V/m that counts the two unseen orientations as 0 V/m.
+    import dataclasses
+    s = dataclasses.replace(_spectrum([900e6], [0.0], [[3.0]]), n_seen=np.array([[1]]))
+    a = assess_spectrum(s, "icnirp-2020", "public", "simple", floor_v_per_m=np.array([1.0]))
+    assert a.emitters[0].e_v_per_m == pytest.approx(math.sqrt(11.0), rel=1e-12)

@@ -247,3 +247,30 @@ def test_window_starts_that_repeat_and_skip_samples():
     r = running_average(t, t.copy(), 1.0, at_s=[4.2, 4.5, 6.5])
     np.testing.assert_allclose(r.e_rms_v_per_m ** 2, [10.4, 12.5, 30.5], rtol=1e-12)
     assert r.coverage == pytest.approx([1.0, 1.0, 1.0])
+
+
+def test_windows_reaching_outside_the_record_are_partial_never_complete():
+    # ICNIRP 1998 (Health Phys 74(4)) Tables 6-7 notes: reference levels are "averaged over any
+    # 6-min period" - a window of length T = 360 s. A 340-s record (1-s samples) covers 339 of the
+    # 360 s of its last window: 94 % coverage, above the 90 % gap tolerance, yet the window begins
+    # 21 s before the first sample, so it is not a 6-min average. Hand-worked.
+    from meterlink.averaging import block_averages, running_average, summarise
+    t = np.arange(340.0)
+    e = np.full(340, 10.0)
+    ra = running_average(t, e, 360.0)
+    assert ra.coverage[-1] == pytest.approx(339 / 360)
+    assert ra.partial.all() and not ra.complete.any()
+    s = summarise(t, e, 360.0)
+    assert s.n_complete == 0 and math.isnan(s.max_avg_v_per_m)
+    assert s.n_partial == 340 and s.max_partial_v_per_m == pytest.approx(10.0)
+    # One sample more than T: the windows ending at t = 360 .. 400 lie inside, and only those.
+    t = np.arange(401.0)
+    ra = running_average(t, np.full(401, 10.0), 360.0)
+    assert list(np.nonzero(ra.complete)[0]) == list(range(360, 401))
+    # Fixed 6-min blocks: a record starting 20 s into the block [0, 360) and ending at 360 covers
+    # 340/360 = 94 % of it, but the block starts before the record: partial, not complete.
+    t = np.arange(20.0, 720.0)
+    b = block_averages(t, np.full(t.size, 5.0), 360.0)
+    assert list(b.partial) == [True, False]
+    assert list(b.complete) == [False, True]
+    assert b.coverage[0] == pytest.approx(340 / 360)

@@ -98,6 +98,18 @@ def test_push_many_six_minute_blocks_of_a_steady_field():
     assert [b.t_start for b in blocks] == [360.0 * k for k in range(9)]
     assert all(abs(b.e_rms() - 2.0) < 1e-12 and b.n == 360 and b.coverage() == 1.0 for b in blocks)
     assert runs.e_rms_v_per_m.shape == (3, 3600) and runs.complete[0, 360:].all() and not runs.complete[0, :300].any()
+    # A 6-min average needs 6 min of record: the windows ending at t = 324..359 s hold 90-100 % coverage
+    # but begin before the first sample (t = 0), so they are partial, never complete (hand-worked).
+    assert runs.coverage[0, 330] >= 0.9 and not runs.complete[0, :360].any()
+    assert not runs.complete[1, :1800].any() and runs.complete[1, 1800:].all()
+    # A record starting 20 s into the block [0, 360) covers 340/360 = 94 % of it: still not a 6-min
+    # block average, it begins before the record (partial); the next block is complete.
+    s = derived.Series(3.0)
+    t = np.arange(20.0, 1000.0, 1.0)
+    blocks, _ = s.push_many(t, np.full(t.size, 2.0))
+    rows = [derived.block_row(1, "m", "total", b, 0.9) for b in blocks]
+    assert blocks[0].coverage() >= 0.9 and blocks[0].partial and rows[0][10] == 0
+    assert not blocks[1].partial and rows[1][10] == 1
 
 
 def _arrays(seqs, boot=1, t0=1_700_000_000.0):

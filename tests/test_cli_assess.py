@@ -25,11 +25,31 @@ def test_assess_json_labels_both_percent_terms_and_records_the_rule(recorded_db,
     assert out["decision_rule"] == "guarded"
     assert out["reference_level_e_v_per_m"] == pytest.approx(27.7)   # ICNIRP 2020 Table 5, 30-400 MHz public
     assert out["percent_of_power_density_level"] == pytest.approx(out["percent_of_field_level"] ** 2 / 100)
-    assert out["outcome"] in ("compliant", "undecided", "not compliant")
+    # 120 s recorded against a 30-min average (ICNIRP 2020 Table 5): a partial value, no statement
+    assert out["outcome"] == "not assessable" and not out["conformity_statement_made"]
+    assert "incomplete" in out["not_assessable_reason"]
+    assert out["averaged_window_complete"] is False and out["averaged_e_v_per_m"] > 0
     assert out["caution"] == SAFETY_LINE
     with Store(recorded_db) as store:
         kinds = [e["kind"] for e in store.events(1)]
     assert kinds.index("assessment_rule") < kinds.index("assessment")
+
+
+def test_assess_outside_the_certificates_frequency_range_is_not_assessable(recorded_db, capsys):
+    # The demo probe's certificate covers a finite frequency range; 50 GHz lies outside it, where
+    # neither the response nor the uncertainty is known: no verdict, with the reason, in JSON and text.
+    from meterlink.certificate import load_certificate
+    lo, hi = load_certificate("demo-probe").freq_range_hz
+    assert hi < 50e9
+    assert main(["assess", "--db", str(recorded_db), "--standard", "icnirp-2020", "--tier", "public",
+                 "--freq", "50GHz", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["outcome"] == "not assessable"
+    assert "50 GHz" in out["not_assessable_reason"] and "calibrated frequency range" in out["not_assessable_reason"]
+    assert main(["assess", "--db", str(recorded_db), "--standard", "icnirp-2020", "--tier", "public",
+                 "--freq", "50GHz"]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert "NOT ASSESSABLE" in text and "COMPLIANT " not in text.replace("NOT ASSESSABLE", "")
 
 
 def test_assess_table_carries_the_cautions(recorded_db, capsys):

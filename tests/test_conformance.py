@@ -9,7 +9,9 @@ import json
 import pytest
 
 from meterlink.cli import main
+from meterlink.commander import Commander
 from meterlink.conformance import ITEMS, run_checks
+from meterlink.protocol import STATUS_STREAMING, FrameType, SettingKey
 from meterlink.transport import open_link
 from simulators.pty_meter import SimulatedMeter
 
@@ -105,3 +107,102 @@ def test_restart_without_boot_is_caught_from_seq_and_tick():
     assert res["boot"].status == "fail" and "1 restart(s) without BOOT" in res["boot"].evidence
     obs = Observations(frames=frames(before))
     assert {r.key: r.status for r in evaluate(obs)}["boot"] == "skip"
+
+
+RESTORED = (SettingKey.INTERVAL_MS, SettingKey.DEVICE_AVERAGING, SettingKey.PROBE_SERIAL, SettingKey.CERT_REF,
+            SettingKey.ASSET_TAG)
+
+
+def _state(link):
+    """Every writable setting and the streaming flag, read over the protocol (docs/protocol.md keys 1-5)."""
+    c = Commander(link)
+    got = {k.name.lower(): c.get_setting(k) for k in RESTORED}
+    got["streaming"] = bool(c.status().flags & STATUS_STREAMING)
+    return got
+
+
+def _prepare(link):
+    """A meter in use: 1000 ms, averaging 4, an asset tag, streaming."""
+    c = Commander(link)
+    c.set_interval(1000)
+    c.put_setting(SettingKey.DEVICE_AVERAGING, 4)
+    c.put_setting(SettingKey.ASSET_TAG, "ROOF-3 (invented)")
+    c.command(FrameType.START)
+
+
+@pytest.mark.parametrize("quirks", [None, {"ignore_stop": True}], ids=["clean", "failing-item"])
+def test_check_leaves_every_setting_as_found(quirks):
+    """issue 13 item 13: the check tests at 200 ms but the meter is left at its 1000 ms, streaming."""
+    with SimulatedMeter("demo", speed=SPEED, seed=1, quirks=quirks) as m:
+        link = open_link(m.port)
+        try:
+            _prepare(link)
+            before = _state(link)
+            rep = run_checks(link)
+            after = _state(link)
+        finally:
+            link.close()
+    assert before == {"interval_ms": 1000, "device_averaging": 4, "probe_serial": before["probe_serial"],
+                      "cert_ref": before["cert_ref"], "asset_tag": "ROOF-3 (invented)", "streaming": True}
+    assert "interval 200 ms" in {r.key: r.evidence for r in rep.results}["interval"]   # it did change it
+    assert after == before
+    assert rep.restored and rep.restore.before == before and "put back as found" in rep.restore.evidence
+    assert rep.passed == (quirks is None)
+
+
+def test_interrupted_check_restores_the_meter(tmp_path):
+    """SIGINT to a real check-device process in its streaming phase: the meter is put back before it exits."""
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from tests.conftest import ROOT
+    with SimulatedMeter("demo", speed=1, seed=3) as m:
+        link = open_link(m.port)
+        try:
+            _prepare(link)
+            before = _state(link)
+        finally:
+            link.close()
+        n0 = m.stats["commands_received"]
+        p = subprocess.Popen([sys.executable, "-m", "meterlink", "check-device", "--port", m.port, "--duration", "60"],
+                             cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        try:
+            # WHO, STATUS, STOP, 6 SETTING_GET, SET_INTERVAL, START, STATUS: the check is now streaming at 200 ms
+            deadline = time.monotonic() + 30
+            while m.stats["commands_received"] < n0 + 12 and time.monotonic() < deadline and p.poll() is None:
+                time.sleep(0.02)
+            assert m.stats["commands_received"] >= n0 + 12 and p.poll() is None
+            p.send_signal(signal.SIGINT)
+            _, err = p.communicate(timeout=30)
+        finally:
+            if p.poll() is None:
+                p.kill()
+                p.wait()
+        assert p.returncode == 130 and "interrupted" in err and "Traceback" not in err
+        link = open_link(m.port)
+        try:
+            after = _state(link)
+        finally:
+            link.close()
+    assert after == before
+
+
+def test_reading_trailing_a_reply_by_half_an_interval_is_no_restart():
+    """docs/protocol.md: a reading's TICK is the middle of its integration, so a reading sent just after a
+    reply may carry an earlier TICK (by up to half the interval); with SEQ stepping by 2 that once read
+    as a restart without BOOT under load. A TICK back by more than the interval still is one."""
+    from meterlink.commander import Received
+    from meterlink.conformance import Observations, evaluate
+    from meterlink.protocol import Frame
+
+    def frames(items):
+        return [Received(Frame(t, s, tick, bytes(14) if t == FrameType.AXES else b""), 0.0) for t, s, tick in items]
+
+    trailing = [(FrameType.ACK, 10, 1000), (FrameType.AXES, 12, 950), (FrameType.AXES, 14, 1150)]
+    res = {r.key: r for r in evaluate(Observations(frames=frames(trailing), interval_ms=200))}
+    assert res["boot"].status == "skip", res["boot"].evidence
+    restart = [(FrameType.ACK, 10, 5000), (FrameType.AXES, 12, 40)]
+    res = {r.key: r for r in evaluate(Observations(frames=frames(restart), interval_ms=200))}
+    assert res["boot"].status == "fail" and "1 restart(s) without BOOT" in res["boot"].evidence

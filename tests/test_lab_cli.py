@@ -96,3 +96,43 @@ def test_bad_temperature_list_is_one_line(value, needle):
     p = subprocess.run([sys.executable, "-m", "meterlink", "lab", "run", "--quick", "--temperatures", value],
                        capture_output=True, text=True, cwd=ROOT, timeout=60)
     assert p.returncode == 2 and needle in p.stderr and len(p.stderr.strip().splitlines()) == 1
+
+
+def test_two_lab_runs_on_one_day_get_two_numbers_never_reused(tmp_path, capsys):
+    """issue 13 item 12: two `lab run`s on one day used to issue the same certificate number."""
+    from meterlink.lab.register import read_register
+    summaries = []
+    for name in ("first", "second"):
+        assert main(["lab", "run", "--quick", "--repeats", "2", "--out", str(tmp_path / name), "--json"]) == 0
+        summaries.append(json.loads(capsys.readouterr().out))
+    numbers = [s["certificate_number"] for s in summaries]
+    today = dt.date.today().strftime("%Y%m%d")
+    assert numbers == [f"LAB-{today}-0001", f"LAB-{today}-0002"]
+    for name, number in zip(("first", "second"), numbers):
+        assert load_certificate(tmp_path / name / "certificate.toml").certificate_number == number
+    reg = read_register(tmp_path / "lab-register.tsv")
+    assert [r[0] for r in reg] == numbers and reg[0][2] == "EP-4417"
+    assert summaries[1]["register"] == str(tmp_path / "lab-register.tsv")
+
+
+def test_session_number_is_refused_once_issued_and_certificates_are_not_overwritten(tmp_path, capsys):
+    _readings(tmp_path)
+    args = ["lab", "import", str(tmp_path / "hand.csv"), "--session", str(tmp_path / "session.toml"), "--json"]
+    assert main(args + ["--out", str(tmp_path / "a")]) == 0
+    capsys.readouterr()
+    first = (tmp_path / "a" / "certificate.toml").read_bytes()
+    # the same session file again: its number LAB-CLI-1 is in the register
+    assert main(args + ["--out", str(tmp_path / "b")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "'LAB-CLI-1' was already issued" in err and "lab-register.tsv" in err
+    assert not (tmp_path / "b" / "certificate.toml").exists()
+    # into the folder of an issued certificate: refused before anything is read or written
+    assert main(args + ["--out", str(tmp_path / "a")]) == 2
+    assert "already holds an issued certificate" in capsys.readouterr().err
+    assert (tmp_path / "a" / "certificate.toml").read_bytes() == first
+    # without a number in the session, the register issues the next one
+    (tmp_path / "session.toml").write_text(SESSION_TOML.replace('certificate_number = "LAB-CLI-1"\n', ""))
+    assert main(args + ["--out", str(tmp_path / "c")]) == 0
+    number = json.loads(capsys.readouterr().out)["certificate_number"]
+    assert number == f"LAB-{dt.date.today():%Y%m%d}-0002"
+    assert load_certificate(tmp_path / "c" / "certificate.toml").certificate_number == number

@@ -1,6 +1,8 @@
 """Synthetic truth: the simulator's lab mode applies known fields to a probe with known imperfections."""
 
+import bisect
 import datetime as dt
+import json
 import math
 
 import numpy as np
@@ -173,3 +175,93 @@ def test_end_to_end_over_the_pty(tmp_path):
     # reading error, plus interpolation across this sparse 4-frequency plan; all inside U of the reading
     assert abs(err_db) <= r.u_expanded_db[0]
     assert abs(err_db + FIELD_ERROR_DB) < 0.3
+
+
+def test_apply_tick_and_bench_switch_are_one_instant():
+    """LabMeter.apply returns the TICK from which readings see the new set-up, exactly (issue 13 item 11).
+
+    The race: the tick was read, then the bench switched at a later device time, so readings timed
+    between the two carried the old field yet passed the lab's "after the tick" filter. At speed 1e5
+    one real microsecond is 100 device ms, so any gap between the two shows on every call; no host is
+    connected (nothing streams), the check is on the bench's own timeline.
+    """
+    with LabMeter(seed=2, speed=1e5) as lm:
+        assert lm.meter.device_tick_ms() >= 0
+        prev = 0.0
+        for k in range(40):
+            e = 10.0 if k % 2 else 1.0
+            tick = lm.apply(1e9, e)
+            # the meter booted at TICK 0 at simulated time 0 (start_tick_ms = 0, no restart): a reading
+            # timed at TICK t sees the bench as it is at t / 1000 s
+            assert lm.bench.state_at(tick / 1000)[0].e_v_per_m == e
+            assert lm.bench.state_at((tick - 1) / 1000)[0].e_v_per_m == prev   # not switched early either
+            prev = e
+
+
+def test_every_reading_after_the_returned_tick_saw_the_new_set_up(tmp_path):
+    """Reading by reading, from the simulator's truth log: the field a reading was made in is the one
+    applied last before its TICK (issue 13 item 11).
+
+    Speed 2000 with 100 ms readings: the gap the old apply() left between reading the tick and
+    switching the bench (a few real microseconds, i.e. several device ms) held a reading in a few
+    percent of calls, and 300 calls make a leak all but certain; with the clock held there is none.
+    """
+    import time
+
+    from simulators.truth import read_truth
+    truth = tmp_path / "truth.jsonl"
+    applied = []
+    with LabMeter(seed=6, speed=2000, truth_path=truth) as lm:
+        with MeterLink(lm.port, interval_ms=100) as link:
+            MeterBench(lm, link).wait_connected()
+            for k in range(300):
+                e = 20.0 if k % 2 else 0.5
+                applied.append((lm.apply(1e9, e), e))
+            last = applied[-1][0]
+            deadline = time.monotonic() + 10
+            while time.monotonic() < deadline:   # until the device has made readings past the last change
+                done = truth.read_text(encoding="utf-8").split("\n")[:-1]   # whole lines only: it is live
+                if any('"event":"reading"' in x and json.loads(x)["tick_ms"] > last + 300 for x in done[-5:]):
+                    break
+                time.sleep(0.01)
+    readings = [r for r in read_truth(truth) if r.get("event") == "reading" and r["tick_ms"] >= applied[0][0]]
+    assert readings and readings[-1]["tick_ms"] > last + 300
+    ticks = [t for t, _ in applied]
+    checked = 0
+    for r in readings:
+        i = bisect.bisect_right(ticks, r["tick_ms"]) - 1
+        assert r["e_total_v_per_m"] == pytest.approx(applied[i][1], rel=1e-9), (r["tick_ms"], applied[i])
+        checked += 1
+    assert checked > 50
+
+
+@pytest.mark.parametrize("start_tick_ms", [0, 2**32 - 20_000], ids=["fresh", "tick-wraps-mid-plan"])
+def test_linearity_steps_take_only_readings_of_their_own_set_up(start_tick_ms):
+    """Alternating 20 V/m and 0.2 V/m steps through MeterBench over the pty: no step holds a reading
+    of the step before (the host side of item 11: the tick filter with half an interval).
+
+    Frequent thread switches (sys.setswitchinterval) pre-empt the lab thread inside apply(); the
+    race itself is shown deterministically by the two tests above. Counts go as E^2, so one leaked
+    reading is a factor of about 10^4. Started 20 s of device time before the 32-bit TICK wraps
+    (docs/protocol.md: TICK is u32 ms), the link's unwrapped ticks and the controller's raw tick
+    part ways mid-plan: compared plainly, every old reading looked newer than the set-up.
+    """
+    import sys
+
+    from meterlink.lab.session import Step, axis_direction_world
+    plan = [Step("linearity", 1e9, 0.2 if k % 2 else 20.0, axis_direction_world("x"), axis="x", role="table")
+            for k in range(160)]
+    old = sys.getswitchinterval()
+    sys.setswitchinterval(1e-5)
+    try:
+        with LabMeter(seed=4, speed=300, start_tick_ms=start_tick_ms) as lm:
+            with MeterLink(lm.port, interval_ms=100) as link:
+                bench = MeterBench(lm, link)
+                bench.wait_connected()
+                res = pr.run_plan(plan, bench, repeats=3)
+    finally:
+        sys.setswitchinterval(old)
+    low = [r.counts[:, 0] for r in res if r.step.e_ref_v_per_m < 1]
+    high = [r.counts[:, 0] for r in res if r.step.e_ref_v_per_m > 1]
+    ceiling, floor = max(c.max() for c in low), min(c.min() for c in high)
+    assert floor > 100 * ceiling, (floor, ceiling)

@@ -1,9 +1,19 @@
-"""Reference-level tables against the published values, plus properties of the data.
+"""Reference-level tables against the published texts, plus properties of the data.
 
-Each published check names its document and table and the status of the value from
-/work/shared/reference-levels.md: V verified against a reproduction of the text, P partly
-verified, M from memory (self-consistent but not seen in print). Breakpoint checks use
-the convention documented in meterlink/limits.py (lower band unless a row says otherwise).
+CHECKED holds values typed from the published text itself, each with the document, table and
+row named beside it: 47 CFR 1.1310 Table 1 (read in a published reproduction of the table),
+ICNIRP 2020 Table 6 (read in a handbook reproduction, Health Phys 118:483-524) and the low E
+action level of Directive 2013/35/EU Annex II Table B1 (read as transposed in UK SI 2016/1026
+Table AL1) and the reference levels of Council Recommendation 1999/519/EC Annex III (read as
+transposed in the French decret 2002-775, annexe 2.2 A). Those values must also say, in the
+data, what they were checked against.
+
+PINNED holds the values of tables no one has yet compared with a primary text. They are NOT
+checks against the published documents: they only pin today's data so an accidental edit
+shows, and they assert the value is still marked "not yet checked against the primary text"
+(checking a table means moving its values to CHECKED with the text they were read in).
+Breakpoint checks use the convention documented in meterlink/limits.py (lower band unless a
+row says otherwise).
 """
 
 from __future__ import annotations
@@ -23,184 +33,286 @@ I20, I98 = "ICNIRP 2020 Health Phys 118(5)", "ICNIRP 1998 Health Phys 74(4)"
 EU13, FCC = "Directive 2013/35/EU Annex III Table B1", "47 CFR 1.1310 Table 1"
 IEEE, SC6 = "IEEE C95.1-2019", "Safety Code 6 (2015)"
 
-# (standard, tier, kind, freq_hz, quantity, expected, source, status)
-PUBLISHED = [
-    # ICNIRP 2020 Table 5, whole body, occupational (S above 2 GHz V, rest M)
-    ("icnirp-2020", "occupational", "whole_body", 100 * kHz, "e", 660 / 0.1**0.7, I20 + " T5", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 1 * MHz, "h", 4.9, I20 + " T5", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 30 * MHz, "e", 660 / 30**0.7, I20 + " T5 breakpoint", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 100 * MHz, "e", 61, I20 + " T5", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 100 * MHz, "h", 0.16, I20 + " T5", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 400 * MHz, "e", 61, I20 + " T5 breakpoint", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 900 * MHz, "s", 22.5, I20 + " T5", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 900 * MHz, "e", 90, I20 + " T5", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 2 * GHz, "s", 50, I20 + " T5 breakpoint", "M"),
-    ("icnirp-2020", "occupational", "whole_body", 28 * GHz, "s", 50, I20 + " T5", "V"),
-    ("icnirp-2020", "occupational", "whole_body", 300 * GHz, "s", 50, I20 + " T5 end", "V"),
-    # ICNIRP 2020 Table 5, general public (400-2000 MHz formulas and S above 2 GHz V)
-    ("icnirp-2020", "public", "whole_body", 1 * MHz, "e", 300, I20 + " T5", "M"),
-    ("icnirp-2020", "public", "whole_body", 10 * MHz, "h", 0.22, I20 + " T5", "M"),
-    ("icnirp-2020", "public", "whole_body", 100 * MHz, "e", 27.7, I20 + " T5", "M"),
-    ("icnirp-2020", "public", "whole_body", 100 * MHz, "s", 2, I20 + " T5", "M"),
-    ("icnirp-2020", "public", "whole_body", 900 * MHz, "e", 41.25, I20 + " T5", "V"),
-    ("icnirp-2020", "public", "whole_body", 900 * MHz, "h", 0.0037 * 30, I20 + " T5", "V"),
-    ("icnirp-2020", "public", "whole_body", 900 * MHz, "s", 4.5, I20 + " T5", "V"),
-    ("icnirp-2020", "public", "whole_body", 2 * GHz, "s", 10, I20 + " T5 breakpoint", "V"),
-    ("icnirp-2020", "public", "whole_body", 28 * GHz, "s", 10, I20 + " T5", "V"),
-    # ICNIRP 2020 Table 6, local, 6 min (V)
-    ("icnirp-2020", "occupational", "local", 10 * MHz, "e", 1504 / 10**0.7, I20 + " T6", "V"),
-    ("icnirp-2020", "occupational", "local", 10 * MHz, "h", 1.08, I20 + " T6", "V"),
-    ("icnirp-2020", "occupational", "local", 100 * MHz, "s", 50, I20 + " T6", "V"),
-    ("icnirp-2020", "occupational", "local", 900 * MHz, "s", 0.29 * 900**0.86, I20 + " T6", "V"),
-    ("icnirp-2020", "occupational", "local", 900 * MHz, "e", 10.58 * 900**0.43, I20 + " T6", "V"),
-    ("icnirp-2020", "occupational", "local", 3.5 * GHz, "s", 200, I20 + " T6", "V"),
-    ("icnirp-2020", "occupational", "local", 6 * GHz, "s", 200, I20 + " T6 breakpoint", "V"),
-    ("icnirp-2020", "occupational", "local", 28 * GHz, "s", 275 / 28**0.177, I20 + " T6", "V"),
-    ("icnirp-2020", "occupational", "local", 300 * GHz, "s", 100, I20 + " T6 300 GHz row", "V"),
-    ("icnirp-2020", "public", "local", 1 * MHz, "e", 671, I20 + " T6", "V"),
-    ("icnirp-2020", "public", "local", 1 * MHz, "h", 4.9, I20 + " T6", "V"),
-    ("icnirp-2020", "public", "local", 100 * MHz, "e", 62, I20 + " T6", "V"),
-    ("icnirp-2020", "public", "local", 1800 * MHz, "s", 0.058 * 1800**0.86, I20 + " T6", "V"),
-    ("icnirp-2020", "public", "local", 3.5 * GHz, "s", 40, I20 + " T6", "V"),
-    ("icnirp-2020", "public", "local", 60 * GHz, "s", 55 / 60**0.177, I20 + " T6", "V"),
-    ("icnirp-2020", "public", "local", 300 * GHz, "s", 20, I20 + " T6 300 GHz row", "V"),
-    # ICNIRP 2020 Table 8, peak, 100 kHz-10 MHz (P)
-    ("icnirp-2020", "occupational", "peak", 1 * MHz, "e", 170, I20 + " T8", "P"),
-    ("icnirp-2020", "occupational", "peak", 10 * MHz, "h", 80, I20 + " T8", "P"),
-    ("icnirp-2020", "public", "peak", 100 * kHz, "e", 83, I20 + " T8", "P"),
-    ("icnirp-2020", "public", "peak", 5 * MHz, "h", 21, I20 + " T8", "P"),
-    # ICNIRP 1998 Table 7, general public (V)
-    ("icnirp-1998", "public", "whole_body", 50 * kHz, "e", 87, I98 + " T7", "V"),
-    ("icnirp-1998", "public", "whole_body", 120 * kHz, "h", 5, I98 + " T7", "V"),
-    ("icnirp-1998", "public", "whole_body", 500 * kHz, "h", 0.73 / 0.5, I98 + " T7", "V"),
-    ("icnirp-1998", "public", "whole_body", 1 * MHz, "e", 87, I98 + " T7 breakpoint", "V"),
-    ("icnirp-1998", "public", "whole_body", 5 * MHz, "e", 87 / 5**0.5, I98 + " T7", "V"),
-    ("icnirp-1998", "public", "whole_body", 100 * MHz, "e", 28, I98 + " T7", "V"),
-    ("icnirp-1998", "public", "whole_body", 400 * MHz, "e", 28, I98 + " T7 breakpoint", "V"),
-    ("icnirp-1998", "public", "whole_body", 900 * MHz, "s", 4.5, I98 + " T7", "V"),
-    ("icnirp-1998", "public", "whole_body", 2 * GHz, "e", 1.375 * 2000**0.5, I98 + " T7 breakpoint", "V"),
-    ("icnirp-1998", "public", "whole_body", 28 * GHz, "e", 61, I98 + " T7", "V"),
-    ("icnirp-1998", "public", "whole_body", 28 * GHz, "s", 10, I98 + " T7", "V"),
-    # ICNIRP 1998 Table 6, occupational (E and S V; H M)
-    ("icnirp-1998", "occupational", "whole_body", 80 * kHz, "e", 610, I98 + " T6", "V"),
-    ("icnirp-1998", "occupational", "whole_body", 500 * kHz, "h", 3.2, I98 + " T6", "M"),
-    ("icnirp-1998", "occupational", "whole_body", 5 * MHz, "e", 122, I98 + " T6", "V"),
-    ("icnirp-1998", "occupational", "whole_body", 100 * MHz, "e", 61, I98 + " T6", "V"),
-    ("icnirp-1998", "occupational", "whole_body", 100 * MHz, "s", 10, I98 + " T6", "V"),
-    ("icnirp-1998", "occupational", "whole_body", 900 * MHz, "e", 90, I98 + " T6", "V"),
-    ("icnirp-1998", "occupational", "whole_body", 5 * GHz, "s", 50, I98 + " T6", "V"),
-    ("icnirp-1998", "occupational", "whole_body", 5 * GHz, "e", 137, I98 + " T6", "M"),
-    # Council Recommendation 1999/519/EC Annex III = ICNIRP 1998 Table 7 (V)
-    ("eu-1999", "public", "whole_body", 900 * MHz, "e", 41.25, "1999/519/EC Annex III", "V"),
-    ("eu-1999", "public", "whole_body", 100 * MHz, "s", 2, "1999/519/EC Annex III", "V"),
-    # Directive 2013/35/EU action levels ("10 MHz <= f < 400 MHz": upper band at breakpoints)
-    ("eu-2013-35", "occupational", "whole_body", 500 * kHz, "e", 610, EU13, "M"),
-    ("eu-2013-35", "occupational", "whole_body", 5 * MHz, "e", 6.1e8 / 5e6, EU13, "M"),
-    ("eu-2013-35", "occupational", "whole_body", 100 * MHz, "e", 61, EU13, "V"),
-    ("eu-2013-35", "occupational", "whole_body", 100 * MHz, "h", 0.2e-6 / (Z0_OHM / C_M_PER_S), EU13 + " B 0.2 uT", "M"),
-    ("eu-2013-35", "occupational", "whole_body", 400 * MHz, "e", 3e-3 * (400e6) ** 0.5, EU13 + " breakpoint", "V"),
-    ("eu-2013-35", "occupational", "whole_body", 1 * GHz, "e", 3e-3 * 1e9**0.5, EU13, "V"),
-    ("eu-2013-35", "occupational", "whole_body", 2 * GHz, "e", 140, EU13 + " breakpoint", "V"),
-    ("eu-2013-35", "occupational", "whole_body", 28 * GHz, "s", 50, EU13, "V"),
-    ("eu-2013-35", "occupational", "peak", 1 * MHz, "e", 170, "Directive 2013/35/EU Annex II low AL", "M"),
-    # FCC 47 CFR 1.1310 Table 1 (V); mW/cm2 x 10 = W/m2
-    ("fcc-1310", "occupational", "whole_body", 1 * MHz, "e", 614, FCC + " (A)", "V"),
-    ("fcc-1310", "occupational", "whole_body", 1 * MHz, "s", 1000, FCC + " (A) *(100)", "V"),
-    ("fcc-1310", "occupational", "whole_body", 3 * MHz, "e", 614, FCC + " (A) breakpoint", "V"),
-    ("fcc-1310", "occupational", "whole_body", 10 * MHz, "h", 0.489, FCC + " (A)", "V"),
-    ("fcc-1310", "occupational", "whole_body", 10 * MHz, "s", 90, FCC + " (A) *(900/f2)", "V"),
-    ("fcc-1310", "occupational", "whole_body", 100 * MHz, "e", 61.4, FCC + " (A)", "V"),
-    ("fcc-1310", "occupational", "whole_body", 900 * MHz, "s", 30, FCC + " (A) f/300", "V"),
-    ("fcc-1310", "occupational", "whole_body", 1500 * MHz, "s", 50, FCC + " (A) breakpoint", "V"),
-    ("fcc-1310", "occupational", "whole_body", 60 * GHz, "s", 50, FCC + " (A)", "V"),
-    ("fcc-1310", "public", "whole_body", 1 * MHz, "h", 1.63, FCC + " (B)", "V"),
-    ("fcc-1310", "public", "whole_body", 1.34 * MHz, "e", 614, FCC + " (B) breakpoint", "V"),
-    ("fcc-1310", "public", "whole_body", 10 * MHz, "e", 82.4, FCC + " (B)", "V"),
-    ("fcc-1310", "public", "whole_body", 10 * MHz, "s", 18, FCC + " (B) *(180/f2)", "V"),
-    ("fcc-1310", "public", "whole_body", 100 * MHz, "e", 27.5, FCC + " (B)", "V"),
-    ("fcc-1310", "public", "whole_body", 100 * MHz, "s", 2, FCC + " (B)", "V"),
-    ("fcc-1310", "public", "whole_body", 900 * MHz, "s", 6, FCC + " (B) f/1500", "V"),
-    ("fcc-1310", "public", "whole_body", 1900 * MHz, "s", 10, FCC + " (B) 1.0 mW/cm2", "V"),
-    # IEEE C95.1-2019 whole-body ERLs (M; S from 400 MHz P) and local above 6 GHz (V)
-    ("ieee-c95.1-2019", "public", "whole_body", 1 * MHz, "e", 614, IEEE + " unrestricted", "M"),
-    ("ieee-c95.1-2019", "public", "whole_body", 1 * MHz, "h", 16.3, IEEE + " unrestricted", "M"),
-    ("ieee-c95.1-2019", "public", "whole_body", 1 * MHz, "s_h", 100000, IEEE + " unrestricted S_H", "M"),
-    ("ieee-c95.1-2019", "public", "whole_body", 10 * MHz, "s", 18, IEEE + " unrestricted S_E", "M"),
-    ("ieee-c95.1-2019", "public", "whole_body", 50 * MHz, "h", 158.3 / 50**1.668, IEEE + " unrestricted", "M"),
-    ("ieee-c95.1-2019", "public", "whole_body", 50 * MHz, "s_h", 9.4e6 / 50**3.336, IEEE + " unrestricted S_H", "M"),
-    ("ieee-c95.1-2019", "public", "whole_body", 200 * MHz, "h", 0.0729, IEEE + " unrestricted", "M"),
-    ("ieee-c95.1-2019", "public", "whole_body", 900 * MHz, "s", 4.5, IEEE + " unrestricted", "P"),
-    ("ieee-c95.1-2019", "public", "whole_body", 10 * GHz, "s", 10, IEEE + " unrestricted", "P"),
-    ("ieee-c95.1-2019", "public", "local", 28 * GHz, "s", 55 * 28**-0.177, IEEE + " local", "V"),
-    ("ieee-c95.1-2019", "occupational", "whole_body", 500 * kHz, "e", 1842, IEEE + " restricted", "M"),
-    ("ieee-c95.1-2019", "occupational", "whole_body", 500 * kHz, "s", 9000, IEEE + " restricted S_E", "M"),
-    ("ieee-c95.1-2019", "occupational", "whole_body", 10 * MHz, "e", 184.2, IEEE + " restricted", "M"),
-    ("ieee-c95.1-2019", "occupational", "whole_body", 50 * MHz, "h", 16.3 / 50, IEEE + " restricted", "M"),
-    ("ieee-c95.1-2019", "occupational", "whole_body", 200 * MHz, "s", 10, IEEE + " restricted", "M"),
-    ("ieee-c95.1-2019", "occupational", "whole_body", 900 * MHz, "s", 22.5, IEEE + " restricted", "P"),
-    ("ieee-c95.1-2019", "occupational", "whole_body", 10 * GHz, "s", 50, IEEE + " restricted", "P"),
-    ("ieee-c95.1-2019", "occupational", "local", 28 * GHz, "s", 274.8 * 28**-0.177, IEEE + " local", "V"),
-    # Health Canada Safety Code 6 (2015), Tables 5 and 6 (M; 1000 MHz spot check P)
-    ("hc-sc6-2015", "public", "whole_body", 500 * kHz, "h", 1.46, SC6 + " below 10 MHz", "M"),
-    ("hc-sc6-2015", "public", "whole_body", 5 * MHz, "e", 87 / 5**0.5, SC6 + " below 10 MHz", "M"),
-    ("hc-sc6-2015", "public", "whole_body", 15 * MHz, "e", 27.46, SC6 + " T5", "M"),
-    ("hc-sc6-2015", "public", "whole_body", 30 * MHz, "e", 58.07 / 30**0.25, SC6 + " T5", "M"),
-    ("hc-sc6-2015", "public", "whole_body", 100 * MHz, "s", 1.291, SC6 + " T5", "M"),
-    ("hc-sc6-2015", "public", "whole_body", 1000 * MHz, "s", 2.94, SC6 + " T5 spot check", "P"),
-    ("hc-sc6-2015", "public", "whole_body", 10 * GHz, "e", 61.4, SC6 + " T5", "M"),
-    ("hc-sc6-2015", "public", "whole_body", 200 * GHz, "s", 6.67e-5 * 2e5, SC6 + " T5", "M"),
-    ("hc-sc6-2015", "public", "peak", 1 * MHz, "h", 90, SC6 + " nerve stimulation", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 500 * kHz, "h", 3.2, SC6 + " below 10 MHz", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 5 * MHz, "e", 193 / 5**0.5, SC6 + " below 10 MHz", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 15 * MHz, "s", 10, SC6 + " T6", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 30 * MHz, "h", 0.3444 / 30**0.25, SC6 + " T6", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 60 * MHz, "e", 49.33, SC6 + " T6", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 1000 * MHz, "s", 0.6455 * 1000**0.5, SC6 + " T6", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 10 * GHz, "s", 50, SC6 + " T6", "M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 200 * GHz, "e", 0.354 * 2e5**0.5, SC6 + " T6", "M"),
-    ("hc-sc6-2015", "occupational", "peak", 1 * MHz, "e", 170, SC6 + " nerve stimulation", "M"),
+# 47 CFR 1.1310 Table 1: f in MHz; S in mW/cm2, stored in W/m2: 1 mW/cm2 = 1e-3 W / 1e-4 m2 = 10 W/m2.
+# "*" values (0.3-30 MHz) are plane-wave-equivalent power densities.
+FA, FB = "47 CFR 1.1310 Table 1 (A)", "47 CFR 1.1310 Table 1 (B)"
+T6 = "ICNIRP 2020 Table 6"
+AL = "2013/35/EU Annex II Table B1 low AL"
+# 1999/519/EC Annex III, as transposed in decret 2002-775, annexe 2.2 A "Niveaux des champs":
+# note 1, f as in the frequency-range column (kHz or MHz); S_eq, the plane-wave equivalent, in W/m2.
+REC = "1999/519/EC Annex III"
+
+# (standard, tier, kind, freq_hz, quantity, expected, document and table, row)
+CHECKED = [
+    # 47 CFR 1.1310 Table 1 (A), occupational/controlled
+    ("fcc-1310", "occupational", "whole_body", 0.3 * MHz, "e", 614, FA, "row 0.3-3.0, lower edge"),
+    ("fcc-1310", "occupational", "whole_body", 1 * MHz, "h", 1.63, FA, "row 0.3-3.0"),
+    ("fcc-1310", "occupational", "whole_body", 1 * MHz, "s", 100 * 10, FA, "row 0.3-3.0, *(100) mW/cm2"),
+    ("fcc-1310", "occupational", "whole_body", 3 * MHz, "e", 614, FA, "breakpoint 3.0 (1842/3 = 614 too)"),
+    ("fcc-1310", "occupational", "whole_body", 10 * MHz, "e", 1842 / 10, FA, "row 3.0-30, 1842/f"),
+    ("fcc-1310", "occupational", "whole_body", 10 * MHz, "h", 4.89 / 10, FA, "row 3.0-30, 4.89/f"),
+    ("fcc-1310", "occupational", "whole_body", 10 * MHz, "s", 900 / 10**2 * 10, FA, "row 3.0-30, *(900/f2)"),
+    ("fcc-1310", "occupational", "whole_body", 30 * MHz, "e", 61.4, FA, "breakpoint 30 (1842/30 = 61.4)"),
+    ("fcc-1310", "occupational", "whole_body", 100 * MHz, "e", 61.4, FA, "row 30-300"),
+    ("fcc-1310", "occupational", "whole_body", 100 * MHz, "h", 0.163, FA, "row 30-300"),
+    ("fcc-1310", "occupational", "whole_body", 100 * MHz, "s", 1.0 * 10, FA, "row 30-300, 1.0 mW/cm2"),
+    ("fcc-1310", "occupational", "whole_body", 900 * MHz, "s", 900 / 300 * 10, FA, "row 300-1500, f/300"),
+    ("fcc-1310", "occupational", "whole_body", 1500 * MHz, "s", 5 * 10, FA, "breakpoint 1500 (1500/300 = 5)"),
+    ("fcc-1310", "occupational", "whole_body", 60 * GHz, "s", 5 * 10, FA, "row 1500-100,000, 5 mW/cm2"),
+    ("fcc-1310", "occupational", "whole_body", 100 * GHz, "s", 5 * 10, FA, "row 1500-100,000, upper edge"),
+    # 47 CFR 1.1310 Table 1 (B), general population/uncontrolled
+    ("fcc-1310", "public", "whole_body", 0.3 * MHz, "e", 614, FB, "row 0.3-1.34, lower edge"),
+    ("fcc-1310", "public", "whole_body", 1 * MHz, "h", 1.63, FB, "row 0.3-1.34"),
+    ("fcc-1310", "public", "whole_body", 1 * MHz, "s", 100 * 10, FB, "row 0.3-1.34, *(100) mW/cm2"),
+    ("fcc-1310", "public", "whole_body", 1.34 * MHz, "e", 614, FB, "breakpoint 1.34 (824/1.34 = 614.9)"),
+    ("fcc-1310", "public", "whole_body", 10 * MHz, "e", 824 / 10, FB, "row 1.34-30, 824/f"),
+    ("fcc-1310", "public", "whole_body", 10 * MHz, "h", 2.19 / 10, FB, "row 1.34-30, 2.19/f"),
+    ("fcc-1310", "public", "whole_body", 10 * MHz, "s", 180 / 10**2 * 10, FB, "row 1.34-30, *(180/f2)"),
+    ("fcc-1310", "public", "whole_body", 100 * MHz, "e", 27.5, FB, "row 30-300"),
+    ("fcc-1310", "public", "whole_body", 100 * MHz, "h", 0.073, FB, "row 30-300"),
+    ("fcc-1310", "public", "whole_body", 100 * MHz, "s", 0.2 * 10, FB, "row 30-300, 0.2 mW/cm2"),
+    ("fcc-1310", "public", "whole_body", 300 * MHz, "e", 27.5, FB, "breakpoint 300, lower row"),
+    ("fcc-1310", "public", "whole_body", 900 * MHz, "s", 900 / 1500 * 10, FB, "row 300-1500, f/1500"),
+    ("fcc-1310", "public", "whole_body", 1900 * MHz, "s", 1.0 * 10, FB, "row 1500-100,000, 1.0 mW/cm2"),
+    ("fcc-1310", "public", "whole_body", 100 * GHz, "s", 1.0 * 10, FB, "row 1500-100,000, upper edge"),
+    # ICNIRP 2020 Table 6, local, occupational (f_M in MHz, f_G in GHz). The reproduction's text
+    # lost the sign of the >6 GHz exponent; 275/f_G^0.177 is the form that meets the table's own
+    # rows: 275/6^0.177 = 200.3 (the 2-6 GHz row is 200) and 275/300^0.177 = 100.4 (300 GHz: 100).
+    ("icnirp-2020", "occupational", "local", 100 * kHz, "e", 1504 / 0.1**0.7, T6, "occupational row 0.1-30 MHz"),
+    ("icnirp-2020", "occupational", "local", 100 * kHz, "h", 10.8 / 0.1, T6, "occupational row 0.1-30 MHz"),
+    ("icnirp-2020", "occupational", "local", 10 * MHz, "e", 1504 / 10**0.7, T6, "occupational row 0.1-30 MHz"),
+    ("icnirp-2020", "occupational", "local", 10 * MHz, "h", 10.8 / 10, T6, "occupational row 0.1-30 MHz"),
+    ("icnirp-2020", "occupational", "local", 30 * MHz, "e", 1504 / 30**0.7, T6, "30 MHz is in 0.1-30 (next row >30)"),
+    ("icnirp-2020", "occupational", "local", 100 * MHz, "e", 139, T6, "occupational row >30-400 MHz"),
+    ("icnirp-2020", "occupational", "local", 100 * MHz, "h", 0.36, T6, "occupational row >30-400 MHz"),
+    ("icnirp-2020", "occupational", "local", 100 * MHz, "s", 50, T6, "occupational row >30-400 MHz"),
+    ("icnirp-2020", "occupational", "local", 400 * MHz, "e", 139, T6, "400 MHz is in >30-400"),
+    ("icnirp-2020", "occupational", "local", 900 * MHz, "e", 10.58 * 900**0.43, T6, "occupational row >400-2000 MHz"),
+    ("icnirp-2020", "occupational", "local", 900 * MHz, "h", 0.0274 * 900**0.43, T6, "occupational row >400-2000 MHz"),
+    ("icnirp-2020", "occupational", "local", 900 * MHz, "s", 0.29 * 900**0.86, T6, "occupational row >400-2000 MHz"),
+    ("icnirp-2020", "occupational", "local", 2 * GHz, "s", 0.29 * 2000**0.86, T6, "2000 MHz is in >400-2000"),
+    ("icnirp-2020", "occupational", "local", 3.5 * GHz, "s", 200, T6, "occupational row >2-6 GHz"),
+    ("icnirp-2020", "occupational", "local", 6 * GHz, "s", 200, T6, "6 GHz is in >2-6 GHz"),
+    ("icnirp-2020", "occupational", "local", 28 * GHz, "s", 275 / 28**0.177, T6, "occupational row >6 to <300 GHz"),
+    ("icnirp-2020", "occupational", "local", 300 * GHz, "s", 100, T6, "occupational row 300 GHz"),
+    # ICNIRP 2020 Table 6, local, general public
+    ("icnirp-2020", "public", "local", 100 * kHz, "e", 671 / 0.1**0.7, T6, "public row 0.1-30 MHz"),
+    ("icnirp-2020", "public", "local", 100 * kHz, "h", 4.9 / 0.1, T6, "public row 0.1-30 MHz"),
+    ("icnirp-2020", "public", "local", 1 * MHz, "e", 671, T6, "public row 0.1-30 MHz"),
+    ("icnirp-2020", "public", "local", 1 * MHz, "h", 4.9, T6, "public row 0.1-30 MHz"),
+    ("icnirp-2020", "public", "local", 100 * MHz, "e", 62, T6, "public row >30-400 MHz"),
+    ("icnirp-2020", "public", "local", 100 * MHz, "h", 0.163, T6, "public row >30-400 MHz"),
+    ("icnirp-2020", "public", "local", 100 * MHz, "s", 10, T6, "public row >30-400 MHz"),
+    ("icnirp-2020", "public", "local", 1800 * MHz, "e", 4.72 * 1800**0.43, T6, "public row >400-2000 MHz"),
+    ("icnirp-2020", "public", "local", 1800 * MHz, "h", 0.0123 * 1800**0.43, T6, "public row >400-2000 MHz"),
+    ("icnirp-2020", "public", "local", 1800 * MHz, "s", 0.058 * 1800**0.86, T6, "public row >400-2000 MHz"),
+    ("icnirp-2020", "public", "local", 3.5 * GHz, "s", 40, T6, "public row >2-6 GHz"),
+    ("icnirp-2020", "public", "local", 60 * GHz, "s", 55 / 60**0.177, T6, "public row >6 to <300 GHz"),
+    ("icnirp-2020", "public", "local", 300 * GHz, "s", 20, T6, "public row 300 GHz"),
+    # Directive 2013/35/EU Annex II Table B1, low E action level "3 kHz <= f <= 10 MHz": 1.7 x 10^2 V/m
+    ("eu-2013-35", "occupational", "peak", 3 * kHz, "e", 170, AL, "row 3 kHz <= f <= 10 MHz, lower edge"),
+    ("eu-2013-35", "occupational", "peak", 1 * MHz, "e", 170, AL, "row 3 kHz <= f <= 10 MHz"),
+    ("eu-2013-35", "occupational", "peak", 10 * MHz, "e", 170, AL, "row 3 kHz <= f <= 10 MHz, upper edge"),
+    # Council Recommendation 1999/519/EC Annex III reference levels (general public)
+    ("eu-1999", "public", "whole_body", 3 * kHz, "e", 87, REC, "row 3-150 kHz, lower edge"),
+    ("eu-1999", "public", "whole_body", 50 * kHz, "h", 5, REC, "row 3-150 kHz"),
+    ("eu-1999", "public", "whole_body", 120 * kHz, "e", 87, REC, "row 3-150 kHz"),
+    ("eu-1999", "public", "whole_body", 500 * kHz, "e", 87, REC, "row 0.15-1 MHz"),
+    ("eu-1999", "public", "whole_body", 500 * kHz, "h", 0.73 / 0.5, REC, "row 0.15-1 MHz, 0,73/f"),
+    ("eu-1999", "public", "whole_body", 5 * MHz, "e", 87 / 5**0.5, REC, "row 1-10 MHz, 87/f^1/2"),
+    ("eu-1999", "public", "whole_body", 5 * MHz, "h", 0.73 / 5, REC, "row 1-10 MHz, 0,73/f"),
+    ("eu-1999", "public", "whole_body", 100 * MHz, "e", 28, REC, "row 10-400 MHz"),
+    ("eu-1999", "public", "whole_body", 100 * MHz, "h", 0.073, REC, "row 10-400 MHz"),
+    ("eu-1999", "public", "whole_body", 100 * MHz, "s", 2, REC, "row 10-400 MHz, S_eq"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, "e", 1.375 * 900**0.5, REC, "row 400-2000 MHz, 1,375 f^1/2"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, "h", 0.0037 * 900**0.5, REC, "row 400-2000 MHz, 0,0037 f^1/2"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, "s", 900 / 200, REC, "row 400-2000 MHz, f/200"),
+    ("eu-1999", "public", "whole_body", 28 * GHz, "e", 61, REC, "row 2-300 GHz"),
+    ("eu-1999", "public", "whole_body", 28 * GHz, "h", 0.16, REC, "row 2-300 GHz"),
+    ("eu-1999", "public", "whole_body", 28 * GHz, "s", 10, REC, "row 2-300 GHz, S_eq"),
+    ("eu-1999", "public", "whole_body", 300 * GHz, "s", 10, REC, "row 2-300 GHz, upper edge"),
 ]
 
 _FIELD = {"e": "e_v_per_m", "h": "h_a_per_m", "s": "s_w_per_m2", "s_h": "s_h_w_per_m2"}
 
 
-def _id(c):
-    std, tier, kind, f, q, _, src, status = c
-    return f"{std}-{tier}-{kind}-{f:g}Hz-{q} [{src}; {status}]"
-
-
-@pytest.mark.parametrize("case", PUBLISHED, ids=[_id(c) for c in PUBLISHED])
-def test_published_values(case):
-    std, tier, kind, f, q, expected, _src, status = case
+@pytest.mark.parametrize("case", CHECKED, ids=[f"{c[0]}-{c[1]}-{c[2]}-{c[3]:g}Hz-{c[4]} [{c[6]} {c[7]}]" for c in CHECKED])
+def test_checked_values_against_the_published_text(case):
+    std, tier, kind, f, q, expected, doc, _row = case
     lv = limits.reference_level(std, tier, f, kind)
-    # 2.94 W/m2 is printed to three figures; the formula values are exact.
-    assert getattr(lv, _FIELD[q]) == pytest.approx(expected, rel=2e-3 if status == "P" else 1e-9)
+    assert getattr(lv, _FIELD[q]) == pytest.approx(expected, rel=1e-9)
+    assert not getattr(lv, f"{q}_derived")  # printed in the table, not derived
+    assert doc in getattr(lv, f"{q}_checked")  # the data says which text it was checked against
+
+
+# Pins of values not yet checked against a primary text (see the module docstring): typed from the
+# tables as they are, NOT from a published document.
+# (standard, tier, kind, freq_hz, quantity, value in the data today, table it belongs to, precision)
+PINNED = [
+    # ICNIRP 2020 Table 5, whole body, occupational
+    ("icnirp-2020", "occupational", "whole_body", 100 * kHz, "e", 660 / 0.1**0.7, I20 + " T5", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 1 * MHz, "h", 4.9, I20 + " T5", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 30 * MHz, "e", 660 / 30**0.7, I20 + " T5 breakpoint", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 100 * MHz, "e", 61, I20 + " T5", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 100 * MHz, "h", 0.16, I20 + " T5", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 400 * MHz, "e", 61, I20 + " T5 breakpoint", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 900 * MHz, "s", 22.5, I20 + " T5", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 900 * MHz, "e", 90, I20 + " T5", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 2 * GHz, "s", 50, I20 + " T5 breakpoint", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 28 * GHz, "s", 50, I20 + " T5", "exact"),
+    ("icnirp-2020", "occupational", "whole_body", 300 * GHz, "s", 50, I20 + " T5 end", "exact"),
+    # ICNIRP 2020 Table 5, general public
+    ("icnirp-2020", "public", "whole_body", 1 * MHz, "e", 300, I20 + " T5", "exact"),
+    ("icnirp-2020", "public", "whole_body", 10 * MHz, "h", 0.22, I20 + " T5", "exact"),
+    ("icnirp-2020", "public", "whole_body", 100 * MHz, "e", 27.7, I20 + " T5", "exact"),
+    ("icnirp-2020", "public", "whole_body", 100 * MHz, "s", 2, I20 + " T5", "exact"),
+    ("icnirp-2020", "public", "whole_body", 900 * MHz, "e", 41.25, I20 + " T5", "exact"),
+    ("icnirp-2020", "public", "whole_body", 900 * MHz, "h", 0.0037 * 30, I20 + " T5", "exact"),
+    ("icnirp-2020", "public", "whole_body", 900 * MHz, "s", 4.5, I20 + " T5", "exact"),
+    ("icnirp-2020", "public", "whole_body", 2 * GHz, "s", 10, I20 + " T5 breakpoint", "exact"),
+    ("icnirp-2020", "public", "whole_body", 28 * GHz, "s", 10, I20 + " T5", "exact"),
+    # ICNIRP 2020 Table 8, peak, 100 kHz-10 MHz
+    ("icnirp-2020", "occupational", "peak", 1 * MHz, "e", 170, I20 + " T8", "3 figures"),
+    ("icnirp-2020", "occupational", "peak", 10 * MHz, "h", 80, I20 + " T8", "3 figures"),
+    ("icnirp-2020", "public", "peak", 100 * kHz, "e", 83, I20 + " T8", "3 figures"),
+    ("icnirp-2020", "public", "peak", 5 * MHz, "h", 21, I20 + " T8", "3 figures"),
+    # ICNIRP 1998 Table 7, general public
+    ("icnirp-1998", "public", "whole_body", 50 * kHz, "e", 87, I98 + " T7", "exact"),
+    ("icnirp-1998", "public", "whole_body", 120 * kHz, "h", 5, I98 + " T7", "exact"),
+    ("icnirp-1998", "public", "whole_body", 500 * kHz, "h", 0.73 / 0.5, I98 + " T7", "exact"),
+    ("icnirp-1998", "public", "whole_body", 1 * MHz, "e", 87, I98 + " T7 breakpoint", "exact"),
+    ("icnirp-1998", "public", "whole_body", 5 * MHz, "e", 87 / 5**0.5, I98 + " T7", "exact"),
+    ("icnirp-1998", "public", "whole_body", 100 * MHz, "e", 28, I98 + " T7", "exact"),
+    ("icnirp-1998", "public", "whole_body", 400 * MHz, "e", 28, I98 + " T7 breakpoint", "exact"),
+    ("icnirp-1998", "public", "whole_body", 900 * MHz, "s", 4.5, I98 + " T7", "exact"),
+    ("icnirp-1998", "public", "whole_body", 2 * GHz, "e", 1.375 * 2000**0.5, I98 + " T7 breakpoint", "exact"),
+    ("icnirp-1998", "public", "whole_body", 28 * GHz, "e", 61, I98 + " T7", "exact"),
+    ("icnirp-1998", "public", "whole_body", 28 * GHz, "s", 10, I98 + " T7", "exact"),
+    # ICNIRP 1998 Table 6, occupational
+    ("icnirp-1998", "occupational", "whole_body", 80 * kHz, "e", 610, I98 + " T6", "exact"),
+    ("icnirp-1998", "occupational", "whole_body", 500 * kHz, "h", 3.2, I98 + " T6", "exact"),
+    ("icnirp-1998", "occupational", "whole_body", 5 * MHz, "e", 122, I98 + " T6", "exact"),
+    ("icnirp-1998", "occupational", "whole_body", 100 * MHz, "e", 61, I98 + " T6", "exact"),
+    ("icnirp-1998", "occupational", "whole_body", 100 * MHz, "s", 10, I98 + " T6", "exact"),
+    ("icnirp-1998", "occupational", "whole_body", 900 * MHz, "e", 90, I98 + " T6", "exact"),
+    ("icnirp-1998", "occupational", "whole_body", 5 * GHz, "s", 50, I98 + " T6", "exact"),
+    ("icnirp-1998", "occupational", "whole_body", 5 * GHz, "e", 137, I98 + " T6", "exact"),
+    # Directive 2013/35/EU action levels ("10 MHz <= f < 400 MHz": upper band at breakpoints)
+    ("eu-2013-35", "occupational", "whole_body", 500 * kHz, "e", 610, EU13, "exact"),
+    ("eu-2013-35", "occupational", "whole_body", 5 * MHz, "e", 6.1e8 / 5e6, EU13, "exact"),
+    ("eu-2013-35", "occupational", "whole_body", 100 * MHz, "e", 61, EU13, "exact"),
+    ("eu-2013-35", "occupational", "whole_body", 100 * MHz, "h", 0.2e-6 / (Z0_OHM / C_M_PER_S), EU13 + " B 0.2 uT", "exact"),
+    ("eu-2013-35", "occupational", "whole_body", 400 * MHz, "e", 3e-3 * (400e6) ** 0.5, EU13 + " breakpoint", "exact"),
+    ("eu-2013-35", "occupational", "whole_body", 1 * GHz, "e", 3e-3 * 1e9**0.5, EU13, "exact"),
+    ("eu-2013-35", "occupational", "whole_body", 2 * GHz, "e", 140, EU13 + " breakpoint", "exact"),
+    ("eu-2013-35", "occupational", "whole_body", 28 * GHz, "s", 50, EU13, "exact"),
+    # IEEE C95.1-2019 whole-body ERLs and local above 6 GHz
+    ("ieee-c95.1-2019", "public", "whole_body", 1 * MHz, "e", 614, IEEE + " unrestricted", "exact"),
+    ("ieee-c95.1-2019", "public", "whole_body", 1 * MHz, "h", 16.3, IEEE + " unrestricted", "exact"),
+    ("ieee-c95.1-2019", "public", "whole_body", 1 * MHz, "s_h", 100000, IEEE + " unrestricted S_H", "exact"),
+    ("ieee-c95.1-2019", "public", "whole_body", 10 * MHz, "s", 18, IEEE + " unrestricted S_E", "exact"),
+    ("ieee-c95.1-2019", "public", "whole_body", 50 * MHz, "h", 158.3 / 50**1.668, IEEE + " unrestricted", "exact"),
+    ("ieee-c95.1-2019", "public", "whole_body", 50 * MHz, "s_h", 9.4e6 / 50**3.336, IEEE + " unrestricted S_H", "exact"),
+    ("ieee-c95.1-2019", "public", "whole_body", 200 * MHz, "h", 0.0729, IEEE + " unrestricted", "exact"),
+    ("ieee-c95.1-2019", "public", "whole_body", 900 * MHz, "s", 4.5, IEEE + " unrestricted", "3 figures"),
+    ("ieee-c95.1-2019", "public", "whole_body", 10 * GHz, "s", 10, IEEE + " unrestricted", "3 figures"),
+    ("ieee-c95.1-2019", "public", "local", 28 * GHz, "s", 55 * 28**-0.177, IEEE + " local", "exact"),
+    ("ieee-c95.1-2019", "occupational", "whole_body", 500 * kHz, "e", 1842, IEEE + " restricted", "exact"),
+    ("ieee-c95.1-2019", "occupational", "whole_body", 500 * kHz, "s", 9000, IEEE + " restricted S_E", "exact"),
+    ("ieee-c95.1-2019", "occupational", "whole_body", 10 * MHz, "e", 184.2, IEEE + " restricted", "exact"),
+    ("ieee-c95.1-2019", "occupational", "whole_body", 50 * MHz, "h", 16.3 / 50, IEEE + " restricted", "exact"),
+    ("ieee-c95.1-2019", "occupational", "whole_body", 200 * MHz, "s", 10, IEEE + " restricted", "exact"),
+    ("ieee-c95.1-2019", "occupational", "whole_body", 900 * MHz, "s", 22.5, IEEE + " restricted", "3 figures"),
+    ("ieee-c95.1-2019", "occupational", "whole_body", 10 * GHz, "s", 50, IEEE + " restricted", "3 figures"),
+    ("ieee-c95.1-2019", "occupational", "local", 28 * GHz, "s", 274.8 * 28**-0.177, IEEE + " local", "exact"),
+    # Health Canada Safety Code 6 (2015), Tables 5 and 6
+    ("hc-sc6-2015", "public", "whole_body", 500 * kHz, "h", 1.46, SC6 + " below 10 MHz", "exact"),
+    ("hc-sc6-2015", "public", "whole_body", 5 * MHz, "e", 87 / 5**0.5, SC6 + " below 10 MHz", "exact"),
+    ("hc-sc6-2015", "public", "whole_body", 15 * MHz, "e", 27.46, SC6 + " T5", "exact"),
+    ("hc-sc6-2015", "public", "whole_body", 30 * MHz, "e", 58.07 / 30**0.25, SC6 + " T5", "exact"),
+    ("hc-sc6-2015", "public", "whole_body", 100 * MHz, "s", 1.291, SC6 + " T5", "exact"),
+    ("hc-sc6-2015", "public", "whole_body", 1000 * MHz, "s", 2.94, SC6 + " T5", "3 figures"),
+    ("hc-sc6-2015", "public", "whole_body", 10 * GHz, "e", 61.4, SC6 + " T5", "exact"),
+    ("hc-sc6-2015", "public", "whole_body", 200 * GHz, "s", 6.67e-5 * 2e5, SC6 + " T5", "exact"),
+    ("hc-sc6-2015", "public", "peak", 1 * MHz, "h", 90, SC6 + " nerve stimulation", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 500 * kHz, "h", 3.2, SC6 + " below 10 MHz", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 5 * MHz, "e", 193 / 5**0.5, SC6 + " below 10 MHz", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 15 * MHz, "s", 10, SC6 + " T6", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 30 * MHz, "h", 0.3444 / 30**0.25, SC6 + " T6", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 60 * MHz, "e", 49.33, SC6 + " T6", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 1000 * MHz, "s", 0.6455 * 1000**0.5, SC6 + " T6", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 10 * GHz, "s", 50, SC6 + " T6", "exact"),
+    ("hc-sc6-2015", "occupational", "whole_body", 200 * GHz, "e", 0.354 * 2e5**0.5, SC6 + " T6", "exact"),
+    ("hc-sc6-2015", "occupational", "peak", 1 * MHz, "e", 170, SC6 + " nerve stimulation", "exact"),
+]
+
+def _id(c):
+    std, tier, kind, f, q, _, src, _prec = c
+    return f"{std}-{tier}-{kind}-{f:g}Hz-{q} [{src}]"
+
+
+@pytest.mark.parametrize("case", PINNED, ids=[_id(c) for c in PINNED])
+def test_pinned_values_are_still_marked_not_yet_checked(case):
+    std, tier, kind, f, q, value, _src, prec = case
+    lv = limits.reference_level(std, tier, f, kind)
+    # 2.94 W/m2 (Safety Code 6, 1000 MHz) is a three-figure value; the rest are the formulas exactly.
+    assert getattr(lv, _FIELD[q]) == pytest.approx(value, rel=2e-3 if prec == "3 figures" else 1e-9)
     # Only the Directive's H is derived (from its B action level, H = B/mu_0); the rest is printed.
     assert getattr(lv, f"{q[0]}_derived") == (std == "eu-2013-35" and q == "h")
+    assert getattr(lv, f"{q[0]}_checked" if q != "s_h" else "s_checked") == ""
+    assert limits.NOT_CHECKED in lv.status
 
 
-# (standard, tier, kind, freq_hz, averaging_time_s or None, source and status)
-AVERAGING = [
-    ("icnirp-2020", "public", "whole_body", 900 * MHz, 1800, "ICNIRP 2020 T5, 30 min, V"),
-    ("icnirp-2020", "occupational", "local", 28 * GHz, 360, "ICNIRP 2020 T6, 6 min, V"),
-    ("icnirp-2020", "public", "peak", 1 * MHz, None, "ICNIRP 2020 T8, peak, P"),
-    ("icnirp-1998", "public", "whole_body", 50 * kHz, None, "ICNIRP 1998, no averaging below 100 kHz, M"),
-    ("icnirp-1998", "public", "whole_body", 10 * GHz, 360, "ICNIRP 1998, 6 min to 10 GHz, V"),
-    ("icnirp-1998", "occupational", "whole_body", 30 * GHz, 68 / 30**1.05 * 60, "ICNIRP 1998, 68/f_G^1.05 min, V"),
-    ("icnirp-1998", "public", "whole_body", 300 * GHz, 68 / 300**1.05 * 60, "ICNIRP 1998, 68/f_G^1.05 min, V"),
-    ("eu-2013-35", "occupational", "whole_body", 30 * GHz, 68 / 30**1.05 * 60, "2013/35/EU, 68/f^1.05 min, V"),
-    ("fcc-1310", "occupational", "whole_body", 900 * MHz, 360, "47 CFR 1.1310 Table 1 (A), 6 min, V"),
-    ("fcc-1310", "public", "whole_body", 900 * MHz, 1800, "47 CFR 1.1310 Table 1 (B), 30 min, V"),
-    ("ieee-c95.1-2019", "public", "whole_body", 900 * MHz, 1800, "IEEE C95.1-2019, 30 min, M"),
-    ("hc-sc6-2015", "public", "whole_body", 10 * GHz, 360, "Safety Code 6, 6 min, M"),
-    ("hc-sc6-2015", "occupational", "whole_body", 30 * GHz, 616000 / 30000**1.2 * 60, "Safety Code 6, 616000/f_M^1.2 min, M"),
+# Averaging times typed from the published text: (standard, tier, kind, freq_hz, seconds, document, note)
+AVERAGING_CHECKED = [
+    ("fcc-1310", "occupational", "whole_body", 0.3 * MHz, 6 * 60, FA, "averaging time 6 min, every row"),
+    ("fcc-1310", "occupational", "whole_body", 900 * MHz, 6 * 60, FA, "averaging time 6 min, every row"),
+    ("fcc-1310", "occupational", "whole_body", 100 * GHz, 6 * 60, FA, "averaging time 6 min, every row"),
+    ("fcc-1310", "public", "whole_body", 0.3 * MHz, 30 * 60, FB, "averaging time 30 min, every row"),
+    ("fcc-1310", "public", "whole_body", 900 * MHz, 30 * 60, FB, "averaging time 30 min, every row"),
+    ("fcc-1310", "public", "whole_body", 100 * GHz, 30 * 60, FB, "averaging time 30 min, every row"),
+    ("icnirp-2020", "occupational", "local", 1 * MHz, 6 * 60, T6, "note 3: averaged over 6 minutes"),
+    ("icnirp-2020", "public", "local", 28 * GHz, 6 * 60, T6, "note 3: averaged over 6 minutes"),
+    ("icnirp-2020", "public", "local", 300 * GHz, 6 * 60, T6, "note 3: averaged over 6 minutes"),
+    # 1999/519/EC Annex III (decret 2002-775, annexe 2.2 A): note 2, six minutes from 100 kHz to
+    # 10 GHz; note 3, 68/f^1.05 minutes above 10 GHz (f in GHz); no averaging time below 100 kHz.
+    ("eu-1999", "public", "whole_body", 50 * kHz, None, REC, "notes 2-3 start at 100 kHz: none below"),
+    ("eu-1999", "public", "whole_body", 900 * MHz, 6 * 60, REC, "note 2: six minutes, 100 kHz-10 GHz"),
+    ("eu-1999", "public", "whole_body", 10 * GHz, 6 * 60, REC, "note 2: six minutes up to 10 GHz"),
+    ("eu-1999", "public", "whole_body", 30 * GHz, 68 / 30**1.05 * 60, REC, "note 3: 68/f^1.05 min above 10 GHz"),
 ]
 
 
-@pytest.mark.parametrize("std,tier,kind,f,expected,src", AVERAGING, ids=[f"{a[0]}-{a[3]:g}Hz [{a[5]}]" for a in AVERAGING])
-def test_averaging_time(std, tier, kind, f, expected, src):
-    got = limits.reference_level(std, tier, f, kind).averaging_time_s
-    assert got == (None if expected is None else pytest.approx(expected, rel=1e-12))
+@pytest.mark.parametrize("std,tier,kind,f,expected,doc,note", AVERAGING_CHECKED,
+                         ids=[f"{a[0]}-{a[1]}-{a[3]:g}Hz [{a[5]}, {a[6]}]" for a in AVERAGING_CHECKED])
+def test_checked_averaging_times(std, tier, kind, f, expected, doc, note):
+    lv = limits.reference_level(std, tier, f, kind)
+    assert lv.averaging_time_s == (None if expected is None else pytest.approx(expected, rel=1e-12))
+    assert doc in lv.averaging_checked
+
+
+# Pins of averaging times not yet checked against a primary text (not checks; see the docstring).
+# (standard, tier, kind, freq_hz, averaging_time_s or None, the rule as encoded)
+AVERAGING_PINNED = [
+    ("icnirp-2020", "public", "whole_body", 900 * MHz, 1800, "ICNIRP 2020 T5, 30 min"),
+    ("icnirp-2020", "public", "peak", 1 * MHz, None, "ICNIRP 2020 T8, peak"),
+    ("icnirp-1998", "public", "whole_body", 50 * kHz, None, "ICNIRP 1998, no averaging below 100 kHz"),
+    ("icnirp-1998", "public", "whole_body", 10 * GHz, 360, "ICNIRP 1998, 6 min to 10 GHz"),
+    ("icnirp-1998", "occupational", "whole_body", 30 * GHz, 68 / 30**1.05 * 60, "ICNIRP 1998, 68/f_G^1.05 min"),
+    ("icnirp-1998", "public", "whole_body", 300 * GHz, 68 / 300**1.05 * 60, "ICNIRP 1998, 68/f_G^1.05 min"),
+    ("eu-2013-35", "occupational", "whole_body", 30 * GHz, 68 / 30**1.05 * 60, "2013/35/EU, 68/f^1.05 min"),
+    ("ieee-c95.1-2019", "public", "whole_body", 900 * MHz, 1800, "IEEE C95.1-2019, 30 min"),
+    ("hc-sc6-2015", "public", "whole_body", 10 * GHz, 360, "Safety Code 6, 6 min"),
+    ("hc-sc6-2015", "occupational", "whole_body", 30 * GHz, 616000 / 30000**1.2 * 60, "Safety Code 6, 616000/f_M^1.2 min"),
+]
+
+
+@pytest.mark.parametrize("std,tier,kind,f,expected,src", AVERAGING_PINNED,
+                         ids=[f"{a[0]}-{a[3]:g}Hz [{a[5]}]" for a in AVERAGING_PINNED])
+def test_pinned_averaging_times_are_still_marked_not_yet_checked(std, tier, kind, f, expected, src):
+    lv = limits.reference_level(std, tier, f, kind)
+    assert lv.averaging_time_s == (None if expected is None else pytest.approx(expected, rel=1e-12))
+    assert lv.averaging_checked == "" and limits.NOT_CHECKED in lv.status
 
 
 def test_averaging_power_laws_meet_six_minutes():
@@ -210,7 +322,9 @@ def test_averaging_power_laws_meet_six_minutes():
 
 
 def test_brief_exposure_energy_icnirp_2020_table7():
-    # ICNIRP 2020 Table 7 (M): at t = 360 s it equals the Table 6 level times 360 s.
+    # ICNIRP 2020 Table 7 is not yet checked against the text (and says so); the consistency
+    # checked here is with Table 6, which was: at t = 360 s, U equals the Table 6 level times 360 s.
+    assert limits.brief_exposure_status("icnirp-2020", "public", 3e9) == limits.NOT_CHECKED
     for tier, f in (("public", 3e9), ("occupational", 900e6), ("public", 28e9), ("occupational", 300e9)):
         s6 = limits.reference_level("icnirp-2020", tier, f, "local").s_w_per_m2
         assert limits.brief_exposure_energy_j_per_m2("icnirp-2020", tier, f, 360) == pytest.approx(s6 * 360)
@@ -224,7 +338,12 @@ def test_brief_exposure_energy_icnirp_2020_table7():
 
 
 def test_summation_rules():
-    # ICNIRP 1998 eqs: thermal c = 87/f_M^0.5 public, 610/f_M occupational; stimulation a = 87 / 610 V/m.
+    # Pins of the encoded forms and constants: no summation rule was read in a primary text this
+    # round, so each must say so. ICNIRP 1998 as encoded: thermal c = 87/f_M^0.5 public,
+    # 610/f_M occupational; stimulation a = 87 / 610 V/m.
+    for std in limits.standards():
+        for tier in limits.describe_standard(std)["tiers"]:
+            assert limits.summation_rule(std, tier).status == limits.NOT_CHECKED
     pub = limits.summation_rule("icnirp-1998", "public")
     c = next(t for t in pub.terms if t.effect == "thermal" and t.divisor == "formula" and t.quantity == "e")
     assert c.formula == (87.0, -0.5, "MHz") and c.exponent == 2 and (c.f_lo_hz, c.f_hi_hz) == (1e5, 1e6)
@@ -384,7 +503,7 @@ def test_breakpoint_belongs_to_lower_band_unless_inclusive():
 
 
 def test_most_restrictive_level_finds_the_step_at_a_breakpoint():
-    """ICNIRP 2020 Table 5 public (partly verified): 27.7 V/m over 30-400 MHz, 1.375*sqrt(f_M) above,
+    """ICNIRP 2020 Table 5 public (as encoded; not yet checked): 27.7 V/m over 30-400 MHz, 1.375*sqrt(f_M) above,
     i.e. 27.5 V/m just above 400 MHz; S is 2 W/m2 on both sides (f_M/200 at 400 MHz)."""
     from meterlink.limits import most_restrictive_level
 
@@ -396,3 +515,80 @@ def test_most_restrictive_level_finds_the_step_at_a_breakpoint():
     assert most_restrictive_level("fcc-1310", "public", 2e9, 6e9, quantity="s").s_w_per_m2 == pytest.approx(10.0)
     with pytest.raises(MeterlinkError):
         most_restrictive_level("icnirp-2020", "public", 400e9, 500e9)   # beyond the table's 300 GHz
+
+
+# ----------------------------------------------------------------------------- check status
+
+
+def test_check_status_summary_in_words():
+    # One text when all parts agree; the neutral words when none was checked; otherwise both.
+    assert limits.check_status([("E", "Doc T1"), ("averaging time", "Doc T1")]) == "checked against Doc T1"
+    assert limits.check_status([("E", ""), ("averaging time", "")]) == "not yet checked against the primary text"
+    assert limits.check_status([("E", "Doc T1"), ("H", ""), ("averaging time", "")]) == (
+        "E checked against Doc T1; H, averaging time not yet checked against the primary text")
+
+
+def test_a_partly_checked_level_names_both_parts():
+    # Directive 2013/35/EU peak table: only the low E action level was read (UK SI 2016/1026 Table AL1).
+    lv = limits.reference_level("eu-2013-35", "occupational", 1e6, "peak")
+    assert lv.status.startswith("E checked against 2013/35/EU Annex II Table B1")
+    assert "H, averaging time not yet checked against the primary text" in lv.status
+    assert not lv.fully_checked and lv.h_checked == ""
+    assert limits.reference_level("fcc-1310", "public", 900e6).fully_checked
+    assert not limits.reference_level("icnirp-2020", "public", 900e6).fully_checked
+
+
+def test_borrowed_rows_carry_the_borrower_s_status():
+    # 1999/519/EC takes ICNIRP 1998 Table 7's rows. The Recommendation's table was read (via the
+    # French decret 2002-775), ICNIRP 1998 Table 7 itself was not: the same values carry
+    # different statuses, each about its own document.
+    lv = limits.reference_level("eu-1999", "public", 900e6)
+    assert lv.fully_checked and lv.status.startswith("checked against 1999/519/EC Annex III")
+    assert lv.source.startswith("Council Recommendation 1999/519/EC")
+    lender = limits.reference_level("icnirp-1998", "public", 900e6)
+    assert lender.e_v_per_m == lv.e_v_per_m and lender.status == limits.NOT_CHECKED
+    # The decree prints the summation formulas as images: the rule stays not yet checked.
+    assert limits.summation_rule("eu-1999", "public").status == limits.NOT_CHECKED
+
+
+def test_old_status_key_is_rejected_with_one_line():
+    with pytest.raises(MeterlinkError, match="'status' is not a key") as info:
+        limits._checked({"status": "verified"}, "x.toml table 1", "")
+    assert "\n" not in str(info.value)
+    with pytest.raises(MeterlinkError, match="must name the document"):
+        limits._checked({"checked": ""}, "x.toml table 1", "")
+
+
+FORBIDDEN = ("from memory", "shared reference", "reference-levels.md", "/work/", "partly verified")
+
+
+def test_no_developer_notes_in_the_data_or_what_users_see():
+    from importlib import resources
+
+    for p in resources.files("meterlink.data.limits").iterdir():
+        if p.name.endswith(".toml"):
+            text = p.read_text(encoding="utf-8").lower()
+            assert not [w for w in FORBIDDEN if w in text], p.name
+    for std in limits.standards():
+        d = limits.describe_standard(std)
+        for tier in d["tiers"]:
+            rule = limits.summation_rule(std, tier)
+            assert not [w for w in FORBIDDEN if w in (rule.notes + rule.status).lower()]
+        for c in d["coverage"]:
+            if c["kind"] == "brief_energy":
+                continue
+            for f in (c["f_lo_hz"], math.sqrt(c["f_lo_hz"] * c["f_hi_hz"]), c["f_hi_hz"]):
+                lv = limits.reference_level(std, c["tier"], f, c["kind"])
+                text = f"{lv.notes} {lv.status} {lv.source} {lv.tier_label}".lower()
+                assert not [w for w in FORBIDDEN if w in text], (std, f, text)
+                assert lv.status.startswith("checked against") or limits.NOT_CHECKED in lv.status
+
+
+def test_describe_standard_gives_each_table_s_check_status():
+    cov = {(c["tier"], c["kind"]): c["status"] for c in limits.describe_standard("icnirp-2020")["coverage"]}
+    assert cov[("public", "local")] == "checked against ICNIRP 2020 Table 6 with note 3, via a handbook reproduction"
+    assert cov[("public", "whole_body")] == limits.NOT_CHECKED
+    peak = limits.describe_standard("eu-2013-35")["coverage"]
+    assert [c["status"] for c in peak if c["kind"] == "peak"] == [
+        "partly: checked against 2013/35/EU Annex II Table B1 low AL, via UK SI 2016/1026 Table AL1; "
+        "the rest not yet checked against the primary text"]

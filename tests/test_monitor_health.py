@@ -160,9 +160,14 @@ drift_max_ppm = 1e9
 max_gap_s = 35
 [retention]
 raw_days = 0.03
+status_days = 0.02
 check_every_s = 1
 chunk_rows = 150
 """
+
+
+def _raw_thinned(conn):
+    return [e for e in _events(conn, "retention") if e[2]["table"] == "readings"]
 
 
 def test_retention_thins_raw_keeps_blocks_and_recording_goes_on(tmp_path):
@@ -177,7 +182,7 @@ def test_retention_thins_raw_keeps_blocks_and_recording_goes_on(tmp_path):
             # blocks as first written (retention starts 5 s of host time after the start)
             assert _wait(conn, th, lambda: conn.execute("SELECT count(*) FROM mon_block").fetchone()[0] >= 8, 20)
             before = {r[1:4]: r for r in conn.execute("SELECT * FROM mon_block ORDER BY t_start_utc")}
-            assert _wait(conn, th, lambda: len(_events(conn, "retention")) >= 2, 30)
+            assert _wait(conn, th, lambda: len(_raw_thinned(conn)) >= 2, 30)
             n_at = conn.execute("SELECT count(*), max(t_utc) FROM readings").fetchone()
             assert _wait(conn, th, lambda: conn.execute("SELECT count(*) FROM readings WHERE t_utc > ?",
                                                         (n_at[1],)).fetchone()[0] >= 100, 20)
@@ -185,7 +190,7 @@ def test_retention_thins_raw_keeps_blocks_and_recording_goes_on(tmp_path):
             mon.stop()
             th.join(30)
         assert not th.is_alive()
-    ev = _events(conn, "retention")
+    ev = _raw_thinned(conn)
     last_before = max(d["before_utc"] for _, _, d in ev)
     removed = sum(d["removed"] for _, _, d in ev)
     # thinned: nothing older than the retention bound is left, and the bound honours raw_days
@@ -200,6 +205,14 @@ def test_retention_thins_raw_keeps_blocks_and_recording_goes_on(tmp_path):
     assert max(b - a for a, b in zip(t, t[1:])) <= 3 * 10.0 + 1.0
     assert len(t) >= 0.95 * (t[-1] - t[0]) / 10.0
     assert not _events(conn, "gap") and not _events(conn, "internal_error")
+    # status rows (about 1.2 MB a meter a day) are thinned to their own, shorter, limit
+    st_ev = [d for _, _, d in _events(conn, "retention") if d["table"] == "status"]
+    assert st_ev and sum(d["removed"] for d in st_ev) > 0
+    st_before = max(d["before_utc"] for d in st_ev)
+    assert all(d["before_utc"] <= t - 0.02 * 86400 + 1e-6 for _, t, d in _events(conn, "retention")
+               if d["table"] == "status")
+    assert conn.execute("SELECT count(*) FROM status WHERE t_utc < ?", (st_before,)).fetchone()[0] == 0
+    assert conn.execute("SELECT count(*) FROM status WHERE t_utc >= ?", (st_before,)).fetchone()[0] > 0
     # the derived record is complete over the thinned period and unchanged
     after = {r[1:4]: r for r in conn.execute("SELECT * FROM mon_block ORDER BY t_start_utc")}
     starts = [r[3] for r in after.values()]

@@ -27,6 +27,9 @@ def run_cli(*args, cwd):
     (["--port", "loop://", "--duration", "-5"], "--duration"),
     (["--port", "loop://", "--interval-ms", "0"], "--interval-ms"),
     (["--port", "loop://", "--band", "2GHz:1GHz"], "--band"),
+    # beyond the 300 GHz end of ICNIRP 2020 / IEEE C95.1-2019: refused at the edge, nothing stored
+    (["--port", "loop://", "--band", "1e30Hz:2e30Hz"], "'1e30Hz' = 1e+30 Hz is outside 1 Hz-300 GHz"),
+    (["--port", "loop://", "--freq", "1e30Hz"], "--freq: frequency '1e30Hz'"),
 ])
 def test_bad_input_is_one_line_and_nonzero(tmp_path, args, needle):
     if "--db" not in args:
@@ -36,6 +39,8 @@ def test_bad_input_is_one_line_and_nonzero(tmp_path, args, needle):
     assert "Traceback" not in p.stderr
     lines = p.stderr.strip().splitlines()
     assert len(lines) == 1 and needle in lines[0], p.stderr
+    if "1e30Hz" in " ".join(args):
+        assert not (tmp_path / "x.db").exists()
 
 
 def test_record_against_the_simulator_json(tmp_path):

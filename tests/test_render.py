@@ -40,3 +40,29 @@ def test_assessment_panel_shows_both_terms_the_verdict_and_the_cautions():
     d = assessment_dict(a)
     assert d["percent_of_field_level"] == 50.0 or abs(d["percent_of_field_level"] - 50.0) < 1e-9
     assert d["outcome"] == "compliant"
+
+
+def _series(e, u_db=1.0):
+    n = e.size
+    return FieldSeries(1, 1, "cert", np.arange(n), 1.8e9 + np.arange(n, dtype=float), e, np.zeros((n, 3)),
+                       e / 376.73, e * e / 376.73, np.full(n, u_db), np.zeros(n, np.int64), ())
+
+
+def test_conditional_outcomes_and_not_assessable_in_text_and_json():
+    # ICNIRP 2020 Table 5 public, 30-400 MHz: 27.7 V/m over 30 min. 95 % of it with U = 1 dB
+    # (x 1.122): within U below the limit, "conditional pass" (ILAC-G8:09/2019 4.2.3); 105 %:
+    # "conditional fail". A 10-min record is no 30-min average: "not assessable", value only.
+    a = assess_field(_series(np.full(2400, 0.95 * 27.7)), "icnirp-2020", "public", "guarded", freq_hz=100e6)
+    out = " ".join(text_of(assessment_renderable(a), 120).split())
+    assert "CONDITIONAL PASS" in out and "Conditional pass under the guarded-acceptance rule" in out
+    d = assessment_dict(a)
+    assert d["outcome"] == "conditional pass" and d["conformity_statement_made"] and d["not_assessable_reason"] is None
+    a = assess_field(_series(np.full(2400, 1.05 * 27.7)), "icnirp-2020", "public", "guarded", freq_hz=100e6)
+    assert "CONDITIONAL FAIL" in " ".join(text_of(assessment_renderable(a), 120).split())
+    assert assessment_dict(a)["outcome"] == "conditional fail"
+    a = assess_field(_series(np.full(600, 5.0)), "icnirp-2020", "public", "guarded", freq_hz=100e6)
+    out = " ".join(text_of(assessment_renderable(a), 120).split())
+    assert "NOT ASSESSABLE" in out and "partial mean" in out and " COMPLIANT " not in out
+    d = assessment_dict(a)
+    assert d["outcome"] == "not assessable" and not d["conformity_statement_made"]
+    assert "incomplete" in d["not_assessable_reason"] and d["value_label"].startswith("partial mean")

@@ -93,3 +93,20 @@ def test_report_command_and_errors(survey, tmp_path):
     assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1 and "999" in bad.stderr
     with pytest.raises(MeterlinkError, match="does not exist"):
         write_report(tmp_path / "none.db", 1, tmp_path / "y")
+
+
+def test_report_shows_the_four_guarded_outcomes_and_no_averaging_time(survey):
+    # ILAC-G8:09/2019 4.2.3 outcomes reach the report as words (never colour alone), and a band whose
+    # rows prescribe no averaging time (ICNIRP 1998 below 100 kHz) says so instead of inventing one.
+    from meterlink.survey.report import render_html
+    tmp, sid = survey
+    with Store(tmp / "s.db") as store:
+        sv = load_survey(store, sid)
+    sv["averaging_time_s"] = None
+    sv["points"][0]["verdict"] = "conditional pass"
+    sv["points"][1]["verdict"] = "not assessable"
+    sv["points"][1]["verdict_extrapolated"] = "conditional fail"
+    html = render_html(sv, {})
+    assert ">conditional pass<" in html and ">not assessable<" in html and ">conditional fail<" in html
+    assert "none in the standard: the highest single reading is judged" in html
+    assert "conditional pass (measured at or below the limit)" in html     # the rule's description

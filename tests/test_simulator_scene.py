@@ -14,10 +14,14 @@ from simulators.scene import (ERP_TO_EIRP, LabScene, Path, SiteScene, Transmitte
 
 
 def test_far_field_matches_published_relation():
-    # E = sqrt(30 * EIRP) / d: the usual far-field estimate (e.g. ITU-T K.52 and ICNIRP guidance; common
-    # practice); with Z0 exact the constant is Z0/(4 pi) = 29.98 instead of 30.
+    # E = sqrt(Z0 * EIRP / (4 pi)) / d from S = EIRP / (4 pi d^2) = E^2 / Z0, Z0 = sqrt(mu_0/epsilon_0)
+    # from scipy.constants; the usual estimate sqrt(30 * EIRP) / d (e.g. ITU-T K.52) rounds Z0/(4 pi)
+    # = 29.98 to 30 (the 120 pi shortcut), which the simulator must not use.
+    from scipy import constants
+    z0 = math.sqrt(constants.mu_0 / constants.epsilon_0)
     for eirp_w, d_m in [(1000.0, 100.0), (16400.0, 58.5), (1.0, 1.0)]:
         e = float(free_space_field_v_per_m(eirp_w, d_m))
+        assert e == pytest.approx(math.sqrt(z0 * eirp_w / (4 * math.pi)) / d_m, rel=1e-12)
         assert e == pytest.approx(math.sqrt(30 * eirp_w) / d_m, rel=1e-3)
     assert ERP_TO_EIRP == pytest.approx(10 ** (2.15 / 10), rel=2e-3)  # half-wave dipole 2.15 dBi
 

@@ -50,6 +50,11 @@ def test_good_file(tmp_path):
     ('freq = "94.3 MHz"', 'freq = "94.3 MHz"\nwindows_s = [100]', "assessment.windows_s: window 100 s is not a whole"),
     ('name = "a1"', 'name = "a1"\nmeters = ["m9"]', "alarm[0].meters[0]: no meter named 'm9'"),
     ('name = "a1"', 'name = "a1"\ncommand = "notify --all"', "alarm[0].command: expected list"),
+    # issue 13 item 10: an alarm on a 600 s average when the station computes 360, 1800 and 86400 s
+    # could never fire (the monitor compares alarms only with the windows it computes)
+    ('name = "a1"', 'name = "a1"\nwindow_s = 600', "alarm[0].window_s: 600 s is not one of the station's "
+                                                  "averaging windows (assessment.windows_s = [360, 1800, 86400])"),
+    ('name = "a1"', 'name = "a1"\nwindow_s = 360.5', "alarm[0].window_s: 360.5 s is not one of"),
 ])
 def test_errors_are_one_line_naming_the_key(tmp_path, old, new, key):
     p = tmp_path / "bad.toml"
@@ -59,6 +64,12 @@ def test_errors_are_one_line_naming_the_key(tmp_path, old, new, key):
         load_station(p)
     msg = str(ei.value)
     assert "\n" not in msg and msg.startswith(str(p)) and key in msg
+
+
+def test_alarm_on_one_of_the_station_windows_is_accepted(tmp_path):
+    p = tmp_path / "s.toml"
+    p.write_text(GOOD.replace('name = "a1"', 'name = "a1"\nwindow_s = 1800', 1))
+    assert load_station(p).alarms[0].window_s == 1800.0
 
 
 def test_not_toml_and_missing_file(tmp_path):

@@ -31,11 +31,29 @@ def test_quadrature_and_k2():
     assert b.u_expanded_pct_power == pytest.approx(25.89, abs=0.01)
 
 
-def test_percent_components_convert_for_field_or_power():
+def test_percent_components_convert_on_their_larger_side():
+    # +/-10 % of a field is a factor 0.9..1.1: 20 log10(1.1) = 0.828 dB up, 20 log10(0.9) = -0.915 dB
+    # down (decibel definitions, IEC 60027-3). The larger side, 0.915 dB, is the half-width in dB;
+    # the upper side alone would understate it by 0.087 dB. For power, 10 log10(0.9) = -0.458 dB.
     c = Component("p", 10.0, "%", "normal", 1.0)
-    assert c.value_db("field") == pytest.approx(20 * math.log10(1.1))
-    assert c.value_db("power") == pytest.approx(10 * math.log10(1.1))
-    assert combine([c], domain="power").u_c_db == pytest.approx(0.4139, abs=1e-4)
+    assert c.value_db("field") == pytest.approx(0.9151, abs=1e-4)
+    assert c.value_db("field") == pytest.approx(-20 * math.log10(0.9))
+    assert c.value_db("power") == pytest.approx(0.4576, abs=1e-4)
+    assert combine([c], domain="power").u_c_db == pytest.approx(0.4576, abs=1e-4)
+    # 30 % rectangular (a common probe-isotropy figure): |20 log10(0.7)| = 3.098 dB, / sqrt(3) = 1.789 dB
+    assert Component("r", 30.0, "%", "rectangular").standard_db() == pytest.approx(3.098 / math.sqrt(3), abs=1e-3)
+    with pytest.raises(ValueError, match="below 100 %"):
+        Component("x", 100.0, "%")
+
+
+def test_expanded_uncertainty_in_percent_both_sides():
+    # U = 1 dB: field +12.20 % / -10.87 %, power +25.89 % / -20.57 % (10^(1/20) = 1.1220,
+    # 10^(-1/20) = 0.8913, 10^(1/10) = 1.2589, 10^(-1/10) = 0.7943).
+    b = combine([Component("a", 1.0, "dB", "normal", 2.0)])
+    assert b.u_expanded_pct_field == pytest.approx(12.20, abs=0.01)
+    assert b.u_expanded_pct_field_lower == pytest.approx(10.87, abs=0.01)
+    assert b.u_expanded_pct_power == pytest.approx(25.89, abs=0.01)
+    assert b.u_expanded_pct_power_lower == pytest.approx(20.57, abs=0.01)
 
 
 @pytest.mark.parametrize("bad", [dict(unit="dBm"), dict(distribution="cauchy"), dict(value=-1.0),

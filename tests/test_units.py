@@ -121,3 +121,44 @@ def test_format_frequency():
     assert units.format_frequency(900e6) == "900 MHz"
     assert units.format_frequency(2.45e9) == "2.45 GHz"
     assert units.format_frequency(50.0) == "50 Hz"
+
+
+@pytest.mark.parametrize("text", ["1e30Hz", "400GHz", "0.5Hz", "2e30"])
+def test_parse_frequency_rejects_values_outside_the_standards(text):
+    # ICNIRP 1998/2020 and IEEE C95.1-2019 end at 300 GHz; nothing below 1 Hz is an RF exposure frequency.
+    with pytest.raises(ValueError, match="outside 1 Hz-300 GHz"):
+        units.parse_frequency_hz(text)
+    assert units.parse_frequency_hz("300GHz") == 300e9 and units.parse_frequency_hz("1Hz") == 1.0
+
+
+def test_parse_band():
+    assert units.parse_band_hz("790MHz:960MHz") == (790e6, 960e6)
+    for bad, needle in (("1e30Hz:2e30Hz", "'1e30Hz'"), ("2GHz:1GHz", "low edge 2 GHz"), ("900MHz", "LO:HI")):
+        with pytest.raises(ValueError, match=needle):
+            units.parse_band_hz(bad)
+
+
+def test_antenna_factor_against_the_50_ohm_handbook_relation():
+    # Handbook relation for a 50-ohm system (e.g. IEEE Std 291 / ANSI C63.5 practice, and most EMC
+    # handbooks): AF(dB/m) = 20 log10(f_MHz) - 29.77 - G(dBi), i.e. AF = 9.73 / (lambda sqrt(G)).
+    # The constant follows from AF = (1/lambda) sqrt(4 pi Z0 / (R G)): sqrt(4 pi 376.730 / 50) = 9.7305,
+    # 20 log10(9.7305e6 / c) = -29.7737 dB; the handbook rounds it to -29.77 (0.004 dB apart).
+    for f_hz, g_dbi in ((30e6, 0.0), (100e6, 2.15), (1e9, 10.0), (6e9, 15.5)):
+        handbook = 20 * math.log10(f_hz / 1e6) - 29.77 - g_dbi
+        assert float(units.antenna_factor_db_per_m(g_dbi, f_hz)) == pytest.approx(handbook, abs=0.005)
+    # A half-wave dipole (G = 2.15 dBi) at 100 MHz: 40 - 29.77 - 2.15 = 8.08 dB/m.
+    assert float(units.antenna_factor_db_per_m(2.15, 100e6)) == pytest.approx(8.08, abs=0.005)
+    # Linear form at 299.792458 MHz (lambda = 1 m exactly), isotropic gain: AF = 9.73 1/m.
+    assert float(units.antenna_factor_per_m(1.0, units.C_M_PER_S)) == pytest.approx(9.73, abs=0.001)
+    # Both directions: the gain comes back from the antenna factor.
+    af = units.antenna_factor_db_per_m(np.array([0.0, 6.0, 12.0]), np.array([50e6, 900e6, 5e9]))
+    assert units.gain_dbi_from_antenna_factor(af, np.array([50e6, 900e6, 5e9])) == pytest.approx([0.0, 6.0, 12.0])
+
+
+def test_mw_per_cm2_and_w_per_m2():
+    # 47 CFR 1.1310(e) Table 1 (B), general population: 0.2 mW/cm^2 at 30-300 MHz and 1.0 mW/cm^2
+    # above 1500 MHz; 1 mW/cm^2 = 1e-3 W / 1e-4 m^2 = 10 W/m^2. The table's 27.5 V/m at 30-300 MHz
+    # is the plane-wave equivalent of 0.2 mW/cm^2: 27.5^2 / 376.73 = 2.007 W/m^2 = 0.2007 mW/cm^2.
+    assert float(units.mw_per_cm2_to_w_per_m2(0.2)) == pytest.approx(2.0)
+    assert float(units.mw_per_cm2_to_w_per_m2(1.0)) == pytest.approx(10.0)
+    assert float(units.w_per_m2_to_mw_per_cm2(units.e_to_s(27.5))) == pytest.approx(0.2, rel=0.005)

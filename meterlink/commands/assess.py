@@ -58,9 +58,14 @@ def run(args) -> int:
                                   band=band or _band(cal) or _band(session), fallback_range=cert.freq_range_hz,
                                   near_field=args.near_field, has_h=cert.quantity == "H")
         else:
-            result = assess_spectrum(series, args.standard, args.tier, rule.name, near_field=args.near_field)
+            from meterlink.calibrate import floor_e_v_per_m
+            from meterlink.certificate import parse_certificate
+
+            cert = parse_certificate(store.calibrations(sid)[-1]["certificate_text"], "stored calibration")
+            result = assess_spectrum(series, args.standard, args.tier, rule.name, near_field=args.near_field,
+                                     floor_v_per_m=floor_e_v_per_m(cert, series.freq_hz))
         store.add_event(sid, "assessment", "info", result.verdict.statement, outcome=result.verdict.outcome,
-                        standard=args.standard, tier=args.tier, rule=rule.name,
+                        reason=result.verdict.reason or None, standard=args.standard, tier=args.tier, rule=rule.name,
                         exposure_ratio_power=result.total_exposure_ratio, u_expanded_db=result.u_expanded_db)
     if args.json:
         from meterlink.render import assessment_dict

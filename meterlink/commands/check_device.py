@@ -1,7 +1,8 @@
 """``meterlink check-device``: exercise a connected meter against the wire protocol and show the evidence.
 
-Exit codes: 0 every item passed (or could not be observed), 1 at least one item failed, 2 usage
-error or a port that cannot be opened. With the default 12 s of device streaming a real meter
+Exit codes: 0 every item passed (or could not be observed) and the meter was left as found, 1 at
+least one item failed or a setting could not be put back, 2 usage error or a port that cannot be
+opened. The meter's settings and streaming state are restored at the end, also on an interrupt. With the default 12 s of device streaming a real meter
 at 1x takes about 15 s; the simulated meter at --speed 100 takes well under a second.
 """
 
@@ -62,6 +63,9 @@ def render(report, console) -> None:
     console.print(t)
     n_fail = len(report.failed)
     console.print("[green]all items conform[/]" if report.passed else f"[bold red]{n_fail} item(s) do not conform[/]")
+    if report.restore is not None:
+        style = "green" if report.restored else "bold red"
+        console.print(f"[{style}]meter settings {escape(safe_text(report.restore.evidence))}[/]")
     console.print(f"[dim]{SAFETY_LINE}[/]")
 
 
@@ -86,4 +90,4 @@ def run(args) -> int:
         print(json.dumps(report.to_dict(), indent=2))
     else:
         render(report, Console())
-    return 0 if report.passed else 1
+    return 0 if report.passed and report.restored else 1

@@ -14,8 +14,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--tier", choices=("public", "occupational"), default="public")
     parser.add_argument("--rule", metavar="NAME", default="guarded", help="decision rule (default guarded)")
     parser.add_argument("--seed", metavar="N", type=int, default=7, help="simulator seed (default 7)")
-    parser.add_argument("--minutes", metavar="M", type=float, default=10.0,
-                        help="device minutes to record with the probe (default 10; the simulator runs 100x)")
+    parser.add_argument("--minutes", metavar="M", type=float, default=35.0,
+                        help="device minutes to record with each instrument (default 35, longer than the 30-minute "
+                             "averaging time of the whole-body levels, so that a full window exists; the simulator runs 200x)")
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
 
 
@@ -65,7 +66,7 @@ def _record(sim_kwargs, db, seconds, band, progress, label, position_m=None):
                 first.append(t)
 
     first: list[int] = []
-    with SimulatedMeter("demo", speed=100.0, **sim_kwargs) as sim, Store(db) as store:
+    with SimulatedMeter("demo", speed=200.0, **sim_kwargs) as sim, Store(db) as store:
         if position_m is not None:
             sim.move_to(position_m)
         rec = Recorder(store, sim.port, interval_ms=1000, duration_s=seconds, band_hz=band,
@@ -91,13 +92,16 @@ def _run_steps(con, db, out, args, rule):
         probe = _record({"sensor": "probe", "seed": args.seed}, db, args.minutes * 60.0, band, progress,
                         "probe: walking the site")
         # far enough from the mast that the FM carriers stay inside the receiver's calibrated range
-        dipole = _record({"sensor": "dipole", "seed": args.seed + 1}, db, 180.0, None, progress,
+        dipole = _record({"sensor": "dipole", "seed": args.seed + 1}, db, args.minutes * 60.0, None, progress,
                          "dipole + receiver at the lay-by, 360 m from the mast", position_m=(-300.0, 200.0, 1.5))
     with Store(db) as store:
         fs = calibrated_series(store, probe.session_id, band=band)
         a_probe = assess_field(fs, args.standard, args.tier, rule, band=band)
         ss = calibrated_series(store, dipole.session_id)
-        a_dip = assess_spectrum(ss, args.standard, args.tier, rule)
+        from meterlink.calibrate import floor_e_v_per_m
+        from meterlink.certificate import parse_certificate
+        dcert = parse_certificate(store.calibrations(dipole.session_id)[-1]["certificate_text"], "stored calibration")
+        a_dip = assess_spectrum(ss, args.standard, args.tier, rule, floor_v_per_m=floor_e_v_per_m(dcert, ss.freq_hz))
         for sid, a in ((probe.session_id, a_probe), (dipole.session_id, a_dip)):
             store.add_event(sid, "assessment", "info", a.verdict.statement, outcome=a.verdict.outcome,
                             standard=args.standard, tier=args.tier, rule=rule)

@@ -17,8 +17,11 @@ def add_arguments(parser) -> None:
         p.add_argument("--session", metavar="TOML", help="lab session file (default: an invented demo session)")
         p.add_argument("--json", action="store_true", help="print the result as JSON")
     for p in (run, imp):
-        p.add_argument("--out", default="lab-out", help="folder for certificate.toml/.html, readings.csv")
+        p.add_argument("--out", default="lab-out", help="new folder for certificate.toml/.html, readings.csv "
+                                                         "(an issued certificate is never overwritten)")
         p.add_argument("--previous", metavar="CERT", help="previous certificate: as-found / as-left comparison")
+        p.add_argument("--register", metavar="FILE", help="the lab's register of issued certificate numbers "
+                                                          "(default: lab-register.tsv next to the out folder)")
     run.add_argument("--speed", type=float, default=100.0, help="simulated device ms per real ms (default 100)")
     run.add_argument("--seed", type=int, default=0)
     run.add_argument("--repeats", type=int, default=5, help="readings per step (default 5)")
@@ -37,7 +40,7 @@ def _session(path):
         return load_session(path)
     today = dt.date.today()
     return LabSession("ML-EP3 three-axis E-field probe (simulated)", "EP-4417",
-                      "Quillmoor Field Metrology Laboratory (invented)", f"LAB-{today:%Y%m%d}-EP-4417", today,
+                      "Quillmoor Field Metrology Laboratory (invented)", "", today,   # number: from the register
                       today + dt.timedelta(days=365), operator="demo")
 
 
@@ -89,6 +92,14 @@ def _temperatures(text: str) -> list[float]:
     return temps
 
 
+def _fresh_out(out) -> None:
+    """An issued certificate is never overwritten: the out folder must not hold one yet."""
+    from meterlink.errors import MeterlinkError
+    if (out / "certificate.toml").exists():
+        raise MeterlinkError(f"{out}: already holds an issued certificate (certificate.toml); certificates are "
+                             "never overwritten: choose a new --out folder")
+
+
 def _budget_table(b):
     from rich.table import Table
     t = Table(title="Uncertainty budget of a calibration factor (JCGM 100:2008)")
@@ -111,7 +122,9 @@ def run(args) -> int:
     from meterlink.certificate import dump_certificate, load_certificate
     from meterlink.cli import SAFETY_LINE
     from meterlink.errors import MeterlinkError
-    from meterlink.lab import certify, html, procedures as pr
+    import dataclasses
+
+    from meterlink.lab import certify, html, procedures as pr, register
     from meterlink.lab.budget import calibration_budget
 
     console = Console()
@@ -127,23 +140,33 @@ def run(args) -> int:
             console.print(_budget_table(b))
         return 0
     previous = load_certificate(args.previous) if args.previous else None
+    out = Path(args.out)
+    reg_path = Path(args.register) if args.register else register.default_register(out)
     if args.action == "run":
         if not args.speed > 0 or args.repeats < 2:
             raise MeterlinkError("--speed must be > 0 and --repeats at least 2 (Type A needs repeats)")
+        if args.temperatures:
+            _temperatures(args.temperatures)   # bad input first, before the folder is looked at
+    _fresh_out(out)
+    if args.action == "run":
         results = _simulated(session, args)
     else:
         results = pr.import_csv(args.csv, session)
-    cal = certify.analyse(session, results, previous)
-    cmp = certify.compare(cal, previous, results) if previous else None
-    out = Path(args.out)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        (out / "certificate.toml").write_text(dump_certificate(cal.certificate), encoding="utf-8")
-        (out / "certificate.html").write_text(html.render(cal, cmp, SAFETY_LINE), encoding="utf-8")
-        pr.export_csv(results, out / "readings.csv")
-    except OSError as exc:
-        raise MeterlinkError(f"{out}: cannot write the outputs ({exc.strerror})") from None
+    # the number is chosen under the register's lock and entered only once the certificate is written
+    with register.issue(reg_path, session.probe_serial, out / "certificate.toml", session.certificate_number) as no:
+        session = dataclasses.replace(session, certificate_number=no)
+        cal = certify.analyse(session, results, previous)
+        cmp = certify.compare(cal, previous, results) if previous else None
+        _fresh_out(out)
+        try:
+            out.mkdir(parents=True, exist_ok=True)
+            (out / "certificate.toml").write_text(dump_certificate(cal.certificate), encoding="utf-8")
+            (out / "certificate.html").write_text(html.render(cal, cmp, SAFETY_LINE), encoding="utf-8")
+            pr.export_csv(results, out / "readings.csv")
+        except OSError as exc:
+            raise MeterlinkError(f"{out}: cannot write the outputs ({exc.strerror})") from None
     summary = {"certificate": str(out / "certificate.toml"), "report": str(out / "certificate.html"),
+               "certificate_number": cal.certificate.certificate_number, "register": str(reg_path),
                "u_expanded_db": cal.budget.u_expanded_db, "isotropy_db": cal.certificate.isotropy_db,
                "isotropy": [{"freq_hz": i.freq_hz, "tilt_deg": i.tilt_deg, "plus_minus_db": i.plus_minus_db,
                              "max_min_db": i.max_min_db} for i in cal.isotropy],
@@ -164,7 +187,8 @@ def run(args) -> int:
         print(json.dumps(summary))
     else:
         console.print(_budget_table(cal.budget))
-        console.print(f"certificate {summary['certificate']}, report {summary['report']}")
+        console.print(f"certificate {cal.certificate.certificate_number}: {summary['certificate']}, report "
+                      f"{summary['report']} (entered in the register {reg_path})", markup=False)
         console.print(f"isotropy +/- {cal.certificate.isotropy_db:.2f} dB about the mean; "
                       + "; ".join(f"{i.freq_hz / 1e6:g} MHz: max/min {i.max_min_db:.2f} dB" for i in cal.isotropy),
                       markup=False)

@@ -7,6 +7,8 @@ HELP = "show the exposure reference levels of the packaged standards at one freq
 PERCENT_NOTE = ("Field and power-density percentages differ: a field at 50 % of its E level "
                 "is at 25 % of the S level (S goes with E squared).")
 DERIVED_NOTE = "~ derived: plane-wave equivalent through Z0 (from S) or H = B/mu_0, not printed in the standard."
+UNCHECKED_NOTE = ("Values marked 'not yet checked against the primary text' have not been compared with the "
+                  "published document: confirm them against it before relying on them.")
 
 
 def add_arguments(parser) -> None:
@@ -54,9 +56,19 @@ def _avg(seconds: float | None) -> str:
     return f"{seconds:.3g} s"
 
 
+def check_keys(statuses: list[str]) -> dict[str, str]:
+    """A short key per distinct check status, in order of first appearance: {status: "[1]"}."""
+    keys: dict[str, str] = {}
+    for st in statuses:
+        keys.setdefault(st, f"[{len(keys) + 1}]")
+    return keys
+
+
 def render_table(levels: list, freq_hz: float):
-    """A rich Table of the levels (pure: builds, does not print)."""
+    """A rich Table of the levels (pure: builds, does not print); the check column holds a key
+    explained by render_check_keys."""
     from rich.table import Table
+    from rich.text import Text
 
     from meterlink.units import format_frequency
 
@@ -64,10 +76,10 @@ def render_table(levels: list, freq_hz: float):
                   header_style="bold", show_lines=False, pad_edge=False)
     for name, justify in (("standard", "left"), ("tier", "left"), ("kind", "left"),
                           ("band", "left"), ("E V/m", "right"), ("H A/m", "right"),
-                          ("S W/m2", "right"), ("averaging", "right"), ("status", "left"),
-                          ("source", "left")):
+                          ("S W/m2", "right"), ("averaging", "right"), ("source", "left"),
+                          ("check", "left")):
         table.add_column(name, justify=justify, overflow="fold")
-    colour = {"verified": "green", "partly verified": "yellow", "from memory": "red"}
+    keys = check_keys([lv.status for lv in levels])
     for lv in levels:
         s_text = _num(lv.s_w_per_m2, lv.s_derived)
         if lv.s_h_w_per_m2 is not None and lv.s_h_w_per_m2 != lv.s_w_per_m2:
@@ -75,8 +87,21 @@ def render_table(levels: list, freq_hz: float):
         band = f"{format_frequency(lv.band_lo_hz)}-{format_frequency(lv.band_hi_hz)}"
         table.add_row(lv.standard, lv.tier_label, lv.kind.replace("_", " "), band,
                       _num(lv.e_v_per_m, lv.e_derived), _num(lv.h_a_per_m, lv.h_derived), s_text,
-                      _avg(lv.averaging_time_s), f"[{colour[lv.status]}]{lv.status}[/]", lv.source)
+                      _avg(lv.averaging_time_s), lv.source,
+                      Text(keys[lv.status], style="green" if lv.fully_checked else "yellow"))
     return table
+
+
+def render_check_keys(levels: list):
+    """The lines explaining the check keys of render_table, one per distinct status."""
+    from rich.text import Text
+
+    from meterlink.limits import CHECKED_PREFIX
+
+    out = []
+    for status, key in check_keys([lv.status for lv in levels]).items():
+        out.append(Text(f"check {key}: {status}", style="green" if status.startswith(CHECKED_PREFIX) else "yellow"))
+    return out
 
 
 def levels_to_json(levels: list, freq_hz: float) -> dict:
@@ -85,8 +110,8 @@ def levels_to_json(levels: list, freq_hz: float) -> dict:
 
     from meterlink.cli import SAFETY_LINE
 
-    return {"frequency_hz": freq_hz, "levels": [asdict(lv) for lv in levels],
-            "note": PERCENT_NOTE, "safety": SAFETY_LINE}
+    return {"frequency_hz": freq_hz, "levels": [asdict(lv) | {"fully_checked": lv.fully_checked} for lv in levels],
+            "note": PERCENT_NOTE, "check_note": UNCHECKED_NOTE, "safety": SAFETY_LINE}
 
 
 def brief_levels(freq_hz: float, duration_s: float, standard: str | None, tier: str | None) -> list[dict]:
@@ -104,7 +129,8 @@ def brief_levels(freq_hz: float, duration_s: float, standard: str | None, tier: 
                     raise
                 continue
             out.append({"standard": std, "tier": tr, "duration_s": duration_s, "u_j_per_m2": u,
-                        "mean_s_w_per_m2": u / duration_s})
+                        "mean_s_w_per_m2": u / duration_s,
+                        "status": limits.brief_exposure_status(std, tr, freq_hz)})
     if not out:
         raise limits.LimitsError(f"no packaged standard gives a brief-exposure level at this frequency"
                                  f"{' for ' + standard if standard else ''}")
@@ -154,6 +180,7 @@ def run(args) -> int:
 
     from rich.console import Console
 
+    from meterlink import limits
     from meterlink.cli import SAFETY_LINE
     from meterlink.limits import LimitsError
     from meterlink.units import parse_frequency_hz
@@ -174,19 +201,21 @@ def run(args) -> int:
         return 0
     console = Console(width=max(shutil.get_terminal_size((160, 24)).columns, 100), highlight=False)
     console.print(render_table(levels, freq_hz))
+    for line in render_check_keys(levels):
+        console.print(line)
     if any(lv.e_derived or lv.h_derived or lv.s_derived for lv in levels):
         console.print(DERIVED_NOTE)
-    if any(lv.status != "verified" for lv in levels):
-        console.print("Rows not marked verified should be checked against the primary document.")
+    if any(not lv.fully_checked for lv in levels) or any(b["status"] == limits.NOT_CHECKED for b in brief or []):
+        console.print(UNCHECKED_NOTE)
     if brief:
         from rich.table import Table
 
         bt = Table(title=f"Brief exposure of {args.brief:g} s (incident energy density, local)", title_justify="left",
                    pad_edge=False)
-        for name in ("standard", "tier", "U J/m2", "same as a mean S over the exposure, W/m2"):
+        for name in ("standard", "tier", "U J/m2", "same as a mean S over the exposure, W/m2", "check"):
             bt.add_column(name, justify="right" if "/" in name else "left")
         for b in brief:
-            bt.add_row(b["standard"], b["tier"], f"{b['u_j_per_m2']:.4g}", f"{b['mean_s_w_per_m2']:.4g}")
+            bt.add_row(b["standard"], b["tier"], f"{b['u_j_per_m2']:.4g}", f"{b['mean_s_w_per_m2']:.4g}", b["status"])
         console.print(bt)
     console.print(PERCENT_NOTE)
     console.print(SAFETY_LINE)

@@ -43,18 +43,12 @@ def _positive(text: str, what: str, integer: bool = False) -> float:
 def parse_band(text: str) -> tuple[float, float]:
     """'800MHz:1GHz' -> (8e8, 1e9); MeterlinkError if malformed or empty."""
     from meterlink.errors import MeterlinkError
-    from meterlink.units import parse_frequency_hz
+    from meterlink.units import parse_band_hz
 
-    lo, sep, hi = str(text).partition(":")
     try:
-        if not sep:
-            raise ValueError("expected LO:HI")
-        band = parse_frequency_hz(lo.strip()), parse_frequency_hz(hi.strip())
+        return parse_band_hz(text)      # range-checked at the edge: nothing absurd is stored
     except ValueError as exc:
         raise MeterlinkError(f"--band {text!r}: {exc}") from None
-    if band[0] >= band[1]:
-        raise MeterlinkError(f"--band {text!r}: the low edge must be below the high edge")
-    return band
 
 
 def parse_declared(freq_text: str | None, band_text: str | None) -> tuple[float | None, tuple[float, float] | None]:

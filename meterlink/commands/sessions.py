@@ -73,7 +73,8 @@ def _verify(store, args) -> int:
 
 
 _SENSOR = {1: "E probe", 2: "H probe", 3: "dipole + receiver"}
-_OUTCOME_STYLE = {"compliant": "green", "not compliant": "red", "undecided": "yellow"}
+_OUTCOME_STYLE = {"compliant": "green", "not compliant": "red", "undecided": "yellow",
+                  "conditional pass": "yellow", "conditional fail": "dark_orange", "not assessable": "grey50"}
 
 
 def _short_time(t):
@@ -88,6 +89,8 @@ def _sessions_table(rows, db):
     from rich.markup import escape
     from rich.table import Table
 
+    from meterlink.safetext import clean_text
+
     from meterlink.units import format_frequency
 
     from rich import box
@@ -96,11 +99,12 @@ def _sessions_table(rows, db):
               padding=(0, 1, 0, 0))
     for col, just in (("id", "right"), ("kind", "left"), ("instrument", "left"), ("start UTC", "left"),
                       ("span", "right"), ("data", "right"), ("events", "right"), ("verdict", "left")):
-        t.add_column(col, justify=just, no_wrap=col != "instrument", min_width=17 if col == "instrument" else None)
+        t.add_column(col, justify=just, no_wrap=col != "instrument",
+                     min_width={"instrument": 11, "verdict": 16}.get(col))
     for r in rows:
-        inst = escape(r["model"] or "(no handshake)")
+        inst = escape(clean_text(r["model"] or "(no handshake)"))     # device strings: no control codes
         if r["sensor_kind"]:
-            inst += f"\n{_SENSOR.get(r['sensor_kind'], '?')} {escape(r['probe_serial'] or '')}"
+            inst += f"\n{_SENSOR.get(r['sensor_kind'], '?')} {escape(clean_text(r['probe_serial'] or ''))}"
         if r["freq_hz"]:
             inst += f"\nat {format_frequency(r['freq_hz'])}"
         elif r["band_lo_hz"] and r["band_hi_hz"]:
@@ -123,12 +127,14 @@ def _events_table(rows, sid):
     from rich.markup import escape
     from rich.table import Table
 
+    from meterlink.safetext import clean_text
+
     t = Table(title=f"events of session {sid}", title_justify="left")
     for col in ("time", "severity", "kind", "message"):
         t.add_column(col)
     style = {"warning": "yellow", "error": "red"}
     for e in rows:
         sev = e["severity"]
-        t.add_row(_short_time(e["t_utc"]), f"[{style.get(sev, 'default')}]{escape(sev)}[/]", escape(e["kind"]),
-                  escape(e["message"] or ""))
+        t.add_row(_short_time(e["t_utc"]), f"[{style.get(sev, 'default')}]{escape(sev)}[/]", escape(clean_text(e["kind"])),
+                  escape(clean_text(e["message"] or "")))
     return t

@@ -1,9 +1,14 @@
 """The calibration's uncertainty budget in the GUM manner (JCGM 100:2008), per field method (pure).
 
-Each input is a Component (meterlink.uncertainty) with its distribution and divisor; percent
-inputs of a power-like quantity are turned into power dB, 10 log10(1 + p/100), and enter the field
-with sensitivity 1/2 (E ~ sqrt(P)). Mismatch: limits 20 log10(1 +/- |G_s||G_l|) dB on the power,
-U-shaped (common practice, e.g. UKAS M3003). Combined in quadrature (5.1.2), U = k u_c, k = 2 (6.2.1).
+Each input is a Component (meterlink.uncertainty) with its distribution and divisor. The budget is
+kept in dB, where the model is a sum: E = sqrt(P Z)/d (TEM cell) and E = sqrt(Z0 P G/(4 pi))/d
+(antenna) give 20 log10 E = 10 log10 P + 10 log10 Z (or G) - 20 log10 d + const, so every input
+stated in dB of its own quantity (power, gain, impedance, the power mismatch) has the sensitivity
+coefficient c = 1 (JCGM 100:2008 5.1.3). A 1/2 would belong only to a relative power uncertainty
+carried to a relative field uncertainty in percent, never to a dB input. Percent inputs of a
+power-like quantity are turned into dB of that quantity, 10 log10(1 + p/100); lengths into field
+dB, 20 log10(1 + dd/d). Mismatch: limits 20 log10(1 +/- |G_s||G_l|) dB on the power, U-shaped
+(common practice, e.g. UKAS M3003). Combined in quadrature (5.1.2), U = k u_c, k = 2 (6.2.1).
 The default values are example values of a well-kept lab; a real lab states its own in the session.
 """
 
@@ -67,18 +72,20 @@ def calibration_budget(session: LabSession, type_a_db: float, k: float = 2.0) ->
     m = session.method
     rows: list[tuple[Component, str]] = []
     if m.uses_power:
-        rows += [(Component("power measurement", _pct_db_power(v["power_meter_pct"]), "dB", "normal", 2.0, 0.5),
-                  f"net power, {v['power_meter_pct']:g} % (k = 2); E ~ sqrt(P): sensitivity 1/2"),
-                 (Component("mismatch", mismatch_limit_db(v["gamma_source"], v["gamma_load"]), "dB", "u-shaped",
-                            1.0, 0.5), f"|G_s| = {v['gamma_source']:g}, |G_l| = {v['gamma_load']:g}")]
+        rows += [(Component("power measurement", _pct_db_power(v["power_meter_pct"]), "dB", "normal", 2.0),
+                  f"net power, {v['power_meter_pct']:g} % (k = 2) = 10 log10(1 + p) dB of P; "
+                  "20 log10 E = 10 log10 P + ...: c = 1"),
+                 (Component("mismatch", mismatch_limit_db(v["gamma_source"], v["gamma_load"]), "dB", "u-shaped"),
+                  f"|G_s| = {v['gamma_source']:g}, |G_l| = {v['gamma_load']:g}; dB of P: c = 1")]
     if m.kind in ("tem-cell", "gtem-cell"):
-        rows += [(Component("line impedance", _pct_db_power(v["impedance_pct"]), "dB", "rectangular", 1.0, 0.5),
-                  f"Z +/- {v['impedance_pct']:g} %; E ~ sqrt(Z)"),
+        rows += [(Component("line impedance", _pct_db_power(v["impedance_pct"]), "dB", "rectangular"),
+                  f"Z +/- {v['impedance_pct']:g} % = 10 log10(1 + p) dB of Z; 20 log10 E = 10 log10 Z + ...: c = 1"),
                  (Component("septum spacing", 20 * math.log10(1 + v["spacing_mm"] / 1000 / m.spacing_m), "dB",
                             "rectangular"), f"d +/- {v['spacing_mm']:g} mm of {m.spacing_m * 1000:g} mm; E ~ 1/d"),
                  (Component("field uniformity", v["field_uniformity_db"], "dB", "rectangular"), "over the probe volume")]
     elif m.kind == "standard-antenna":
-        rows += [(Component("antenna gain", v["antenna_gain_db"], "dB", "normal", 2.0, 0.5), "gain (k = 2); E ~ sqrt(G)"),
+        rows += [(Component("antenna gain", v["antenna_gain_db"], "dB", "normal", 2.0),
+                  "gain in dB (k = 2); 20 log10 E = 10 log10 G + ...: c = 1"),
                  (Component("antenna distance", 20 * math.log10(1 + v["distance_mm"] / 1000 / m.distance_m), "dB",
                             "rectangular"), f"d +/- {v['distance_mm']:g} mm; E ~ 1/d"),
                  (Component("room reflections", v["reflections_db"], "dB", "rectangular"), "anechoic room")]

@@ -3,9 +3,10 @@
 TEM / GTEM cell: E = sqrt(P * Z) / d, P the net power into the cell, Z its line impedance and d
 the septum-to-wall (or septum height) spacing at the test point (Crawford 1974, IEEE Trans. EMC
 16(4), "Generation of standard EM fields using TEM transmission cells"; IEC 61000-4-20 uses the
-same relation). Standard antenna, far field: E = sqrt(30 * P * G) / d, G the numeric gain, d
-the distance (from P * G / (4 pi d^2) = E^2 / Z0 with Z0 ~ 120 pi ohm; IEEE Std 1309 describes
-this method). Transfer standard: the field is what the calibrated reference probe indicates.
+same relation). Standard antenna, far field: E = sqrt(Z0 * P * G / (4 pi)) / d, G the numeric
+gain, d the distance, from P * G / (4 pi d^2) = E^2 / Z0 with Z0 = sqrt(mu_0 / epsilon_0) of
+scipy.constants (meterlink.units.Z0_OHM), not the 120 pi shortcut (IEEE Std 1309 describes this
+method). Transfer standard: the field is what the calibrated reference probe indicates.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ import math
 from dataclasses import dataclass
 
 from meterlink.errors import MeterlinkError
+from meterlink.units import Z0_OHM
 
 METHODS = ("tem-cell", "gtem-cell", "standard-antenna", "transfer-probe", "entered")
 
@@ -29,13 +31,13 @@ def tem_cell_power_w(e_v_per_m: float, impedance_ohm: float, spacing_m: float) -
 
 
 def antenna_e_v_per_m(net_power_w: float, gain_lin: float, distance_m: float) -> float:
-    """Far field of a standard antenna on its boresight: E = sqrt(30 P G) / d."""
-    return math.sqrt(30.0 * net_power_w * gain_lin) / distance_m
+    """Far field of a standard antenna on its boresight: E = sqrt(Z0 P G / (4 pi)) / d."""
+    return math.sqrt(Z0_OHM * net_power_w * gain_lin / (4.0 * math.pi)) / distance_m
 
 
 def antenna_power_w(e_v_per_m: float, gain_lin: float, distance_m: float) -> float:
-    """Net power for a wanted far field: P = (E d)^2 / (30 G)."""
-    return (e_v_per_m * distance_m) ** 2 / (30.0 * gain_lin)
+    """Net power for a wanted far field: P = 4 pi (E d)^2 / (Z0 G)."""
+    return 4.0 * math.pi * (e_v_per_m * distance_m) ** 2 / (Z0_OHM * gain_lin)
 
 
 @dataclass(frozen=True)
@@ -85,7 +87,8 @@ class FieldMethod:
         if self.kind in ("tem-cell", "gtem-cell"):
             return f"E = sqrt(P * Z) / d, Z = {self.impedance_ohm:g} ohm, d = {self.spacing_m:g} m (Crawford 1974)"
         if self.kind == "standard-antenna":
-            return f"E = sqrt(30 * P * G) / d, G = {self.gain_dbi:g} dBi, d = {self.distance_m:g} m (far field)"
+            return (f"E = sqrt(Z0 * P * G / (4 pi)) / d, Z0 = {Z0_OHM:.3f} ohm, G = {self.gain_dbi:g} dBi, "
+                    f"d = {self.distance_m:g} m (far field)")
         if self.kind == "transfer-probe":
             return "E as indicated by the calibrated transfer-standard probe"
         return "E entered by the operator"

@@ -2,7 +2,9 @@
 
 The controller's apply(...) returns the device tick (ms) from which readings see the new set-up
 (None if it cannot tell: then `settle_readings` readings are discarded). Only readings whose
-whole integration time lies after that tick are kept.
+whole integration time lies after that tick are kept: a reading's TICK is the middle of its
+integration, so it must be at least half an interval later. The controller must take that tick
+at the same instant as it switches (simulators.lab.LabMeter.apply holds the device clock for it).
 """
 
 from __future__ import annotations
@@ -11,12 +13,23 @@ import time
 
 import numpy as np
 
+from meterlink.clock import HALF_TICK
 from meterlink.errors import LinkError
 from meterlink.lab.session import LabError
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading
-from meterlink.protocol import AXIS_OVER_X
+from meterlink.protocol import AXIS_OVER_X, U32_MOD
 
 OVER_ANY = AXIS_OVER_X | (AXIS_OVER_X << 1) | (AXIS_OVER_X << 2)
+
+
+def tick_after_ms(tick_ms: float, ref_ms: float) -> float:
+    """Device ms from ref to tick across the 32-bit TICK wrap (negative: tick is earlier).
+
+    The link hands out unwrapped ticks, the controller the device's raw one: compared plainly,
+    after a wrap every old reading would look later than the set-up.
+    """
+    d = (tick_ms - ref_ms) % U32_MOD
+    return d - U32_MOD if d >= HALF_TICK else d
 
 
 class MeterBench:
@@ -44,7 +57,8 @@ class MeterBench:
     def apply(self, freq_hz, e_v_per_m, direction_world, rotator_deg, tilt_deg) -> None:
         tick = self.controller.apply(freq_hz, e_v_per_m, direction_world, rotator_deg, tilt_deg)
         self._after_tick = None if tick is None else float(tick) + (self.interval_ms or 0) / 2
-        self._skip = self.settle_readings if tick is None else 0
+        # interval unknown: a reading timed after the tick may still have begun before it
+        self._skip = self.settle_readings if tick is None or not self.interval_ms else 0
 
     def set_temperature(self, temp_c: float | None) -> None:
         """The lab controller's climatic chamber (temperature steps); LabError if it has none."""
@@ -65,7 +79,7 @@ class MeterBench:
                 self.interval_ms = item.interval_ms
             if not isinstance(item, Reading):
                 continue
-            if self._after_tick is not None and item.tick_ms < self._after_tick:
+            if self._after_tick is not None and tick_after_ms(item.tick_ms, self._after_tick) < 0:
                 continue
             if self._skip:
                 self._skip -= 1

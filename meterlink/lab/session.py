@@ -113,7 +113,7 @@ class LabSession:
     probe_model: str
     probe_serial: str
     lab: str
-    certificate_number: str
+    certificate_number: str        # "" until issued from the lab's register (meterlink.lab.register)
     cal_date: _dt.date
     due_date: _dt.date
     method: FieldMethod = field(default_factory=FieldMethod)
@@ -162,6 +162,16 @@ def _date(where, d, key, default):
     return v
 
 
+def _cert_number(where, cal) -> str:
+    """calibration.certificate_number if given (checked against the register when issued), else ""."""
+    if "certificate_number" not in cal:
+        return ""   # to be issued from the lab's register (meterlink.lab.register)
+    v = _str(where, cal, "certificate_number")
+    if any(not ch.isprintable() for ch in v) or v != v.strip():
+        raise LabError(f"{where}: 'certificate_number' must be printable text without surrounding spaces")
+    return v
+
+
 def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
     """Build a session from a parsed TOML document; LabError names the key on any problem."""
     probe, cal = d.get("probe", {}), d.get("calibration", {})
@@ -188,7 +198,7 @@ def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
         raise LabError(f"{where}: 'budget' must be a table of numbers")
     return LabSession(
         probe_model=_str(where, probe, "model"), probe_serial=_str(where, probe, "serial"),
-        lab=_str(where, cal, "lab"), certificate_number=_str(where, cal, "certificate_number"),
+        lab=_str(where, cal, "lab"), certificate_number=_cert_number(where, cal),
         cal_date=cal_date, due_date=due, method=method,
         ambient=Ambient(_num(where, amb, "temp_c", 23.0), _num(where, amb, "humidity_pct", 45.0)),
         spec=ProbeSpec(_num(where, spec, "frequency_response_db", 1.0), _num(where, spec, "isotropy_db", 1.0),

@@ -12,8 +12,8 @@ from meterlink.exposure import multi_frequency, near_field_check, percent_of_lim
 from meterlink.limits import most_restrictive_level, reference_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
-from meterlink.calibrate import ABOVE_RANGE
-from meterlink.verdict import NOT_COMPLIANT, UNDECIDED, decide_field, decide_ratio
+from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_OUT
+from meterlink.verdict import decide_field, decide_ratio, lower_bound, not_assessable, upper_bound
 
 #: An emitter matches a listed source when their frequencies agree within this fraction.
 MATCH_REL = 0.005
@@ -26,7 +26,7 @@ class Broadband:
 
     e_v_per_m: float
     freq_hz: float
-    averaging_time_s: float
+    averaging_time_s: float | None   # None: the standard prescribes none here (instantaneous values)
     band_hz: tuple[float, float]
     source: str
 
@@ -38,8 +38,12 @@ def broadband_reference(standard: str, tier: str, band_hz: tuple[float, float] |
         lo = hi = float(band_hz)
     else:
         lo, hi = float(band_hz[0]), float(band_hz[1])
+    from meterlink.assessment import averaging_time_s
+
     best = most_restrictive_level(standard, tier, lo, hi)
-    return Broadband(float(best.e_v_per_m), float(best.freq_hz), float(best.averaging_time_s or 360.0),
+    # the shortest averaging time in the band, none if any row prescribes none: never a default
+    avg = averaging_time_s(standard, tier, lo if lo == hi else None, None if lo == hi else (lo, hi))
+    return Broadband(float(best.e_v_per_m), float(best.freq_hz), None if avg is None else float(avg),
                      (lo, hi), best.source)
 
 
@@ -97,8 +101,11 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
         warn.append("interrupted: the average is incomplete")
     elif cov < MIN_COVERAGE:
         warn.append(f"coverage {100 * cov:.0f} % of the time: incomplete")
-    if shortened:
+    if shortened and ref.averaging_time_s:
         warn.append(f"shorter than the standard's averaging time of {ref.averaging_time_s / 60:g} min")
+    instantaneous = ref.averaging_time_s is None
+    if instantaneous:
+        warn.append("the standard prescribes no averaging time here: the highest single reading is judged")
     if point.near_field:
         nf = near_field_check(ref.freq_hz, has_e=True, has_h=False, near_field=True)
         warn.append(nf.message if nf else "marked near field")
@@ -114,6 +121,8 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
         pct_f, pct_p, pct_px = ver.percent_field, ver.percent_power, ver_x.percent_power
         warn += list(res.messages)
     else:
+        if instantaneous:     # compare instantaneous values, not a mean over the capture
+            e = float(max(s.e_max_v_per_m for s in samples))
         e_x = e * source_factor(plan.sources)
         ver = decide_field(e, ref.e_v_per_m, u, plan.rule)
         ver_x = decide_field(e_x, ref.e_v_per_m, u, plan.rule)
@@ -123,14 +132,29 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
     flags = 0
     for s in samples:
         flags |= s.flags
-    verdict, statement, verdict_x = ver.outcome, ver.statement, ver_x.outcome
-    if flags & ABOVE_RANGE:    # a reading or a line beyond the instrument's range: the value is a lower bound
+    reasons = []
+    if interrupted or cov < MIN_COVERAGE:
+        reasons.append(f"the capture is incomplete (coverage {100 * cov:.1f} %"
+                       + (", interrupted)" if interrupted else ")"))
+    if flags & FREQ_OUT:
+        reasons.append("the frequency lies outside the certificate's calibrated frequency range, where the "
+                       "instrument's response and uncertainty are unknown")
+    if shortened and not instantaneous:
+        reasons.append(f"the capture is shorter than the standard's {ref.averaging_time_s / 60:g}-minute "
+                       f"averaging time")
+    if reasons:        # an incomplete average gets no conformity statement, only the measured value
+        complete = False
+        ver, ver_x = (not_assessable(v, "; ".join(reasons)) for v in (ver, ver_x))
+    elif flags & ABOVE_RANGE:    # a reading or a line beyond the instrument's range: the value is a lower bound
+        why = "part of the field was above the instrument's calibrated range, so the value is only a lower bound"
+        ver, ver_x = (lower_bound(v, why) for v in (ver, ver_x))
+    elif flags & BELOW_RANGE:    # readings or lines below the range counted at the floor: an upper bound
+        why = "values below the instrument's range were counted at its floor, so the value is an upper bound"
+        ver, ver_x = (upper_bound(v, why) for v in (ver, ver_x))
+    if flags & ABOVE_RANGE:
         complete = False
         warn.append("above the instrument's range: the value is a lower bound")
-        verdict = verdict if verdict == NOT_COMPLIANT else UNDECIDED
-        verdict_x = verdict_x if verdict_x == NOT_COMPLIANT else UNDECIDED
-        statement = ("Undecided: part of the field was above the instrument's calibrated range, so the value "
-                     "is only a lower bound. " + statement)
+    verdict, statement, verdict_x = ver.outcome, ver.statement, ver_x.outcome
     thr = plan.followup.threshold_v_per_m(ref.e_v_per_m)
     follow = sel is None and thr is not None and e >= thr
     return PointResult(

@@ -8,6 +8,7 @@ in the database but not used.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import threading
 import time
@@ -17,7 +18,7 @@ from typing import Callable
 import numpy as np
 
 from meterlink.averaging import window_rms
-from meterlink.calibrate import ABOVE_RANGE, calibrate_axes, calibrate_spectrum
+from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, calibrate_axes, calibrate_spectrum, floor_e_v_per_m
 from meterlink.certificate import DipoleCertificate
 from meterlink.errors import LinkError
 from meterlink.limits import reference_level
@@ -98,6 +99,7 @@ class Capture:
         self.position: tuple | None = None
         self._sweeps: dict = {}
         self._lim: dict = {}
+        self._floor: dict = {}
 
     # -- items ---------------------------------------------------------------------------------
     def _item(self, item) -> Value | None:
@@ -137,7 +139,10 @@ class Capture:
             return None
         f = np.array([k * 1000.0 for k, _ in sp.pairs])
         lv = np.array([c / 100.0 for _, c in sp.pairs])
-        res = calibrate_spectrum(self.cert, f, lv, "xyz"[sp.orientation])
+        vhi = self.cert.level_range_dbuv[1]
+        # above the receiver's range: calibrated at the top of the range, a lower bound (flagged)
+        res = calibrate_spectrum(self.cert, f, np.where(lv > vhi, vhi, lv), "xyz"[sp.orientation])
+        res = dataclasses.replace(res, flags=np.where(lv > vhi, res.flags | ABOVE_RANGE, res.flags))
         acc = self._sweeps.setdefault((s.boot, sp.sweep), {})
         acc[sp.orientation] = res
         if sp.orientation != 2:
@@ -146,20 +151,35 @@ class Capture:
         self._sweeps.clear()     # an older sweep missing its last orientation is dropped
         if len(acc) < 3:
             return None
-        p: dict[float, float] = {}
+        # A line an orientation reports below the receiver's floor, or does not report, is not
+        # 0 V/m: it is "< floor", counted at the floor (an upper bound; BELOW_RANGE flags it).
+        lines = sorted({float(fi) for o in range(3) for fi in acc[o].freq_hz})
+        p: dict[float, float] = {fi: 0.0 for fi in lines}
         axes, over, flags, u = [], False, 0, 0.0
         for o in range(3):
             r = acc[o]
-            e = np.nan_to_num(r.e_v_per_m, nan=0.0)
+            got = {float(fi): float(ei) for fi, ei in zip(r.freq_hz, r.e_v_per_m)}
+            ax2 = 0.0
+            for fi in lines:
+                ei = got.get(fi, math.nan)
+                if not math.isfinite(ei):
+                    ei = self.floor_v_per_m(fi)
+                    flags |= BELOW_RANGE
+                p[fi] += ei * ei
+                ax2 += ei * ei
             over |= bool(np.any((r.flags & ABOVE_RANGE) > 0))
-            axes.append(float(np.sqrt(np.sum(e**2))))
+            axes.append(math.sqrt(ax2))
             flags |= int(np.bitwise_or.reduce(r.flags)) if r.flags.size else 0
             u = max(u, float(np.max(r.u_expanded_db)))
-            for fi, ei in zip(r.freq_hz, e):
-                p[float(fi)] = p.get(float(fi), 0.0) + float(ei) ** 2
         ems = tuple((fi, math.sqrt(v)) for fi, v in sorted(p.items()) if v > 0)
         total = math.sqrt(sum(v for v in p.values()))
         return Value(s.boot, s.seq, s.tick_ms / 1000, s.t_utc, total, tuple(axes), u, flags, over, ems)
+
+    def floor_v_per_m(self, freq_hz: float) -> float:
+        """One orientation's floor (V/m) at a line: what a line below it is at most."""
+        if freq_hz not in self._floor:
+            self._floor[freq_hz] = float(floor_e_v_per_m(self.cert, freq_hz)[0])
+        return self._floor[freq_hz]
 
     def next_value(self, timeout_s: float = 0.2) -> Value | None:
         """Next calibrated value; LinkError once the link has ended, Interrupted if stopped."""
@@ -266,14 +286,15 @@ class Capture:
             interrupted = True
         except (Interrupted, LinkError):
             interrupted = True
-        return _sample(vals, duration_s, height_m, self.position), interrupted
+        floor = (lambda f: math.sqrt(3.0) * self.floor_v_per_m(f)) if is_dipole(self.cert) else None
+        return _sample(vals, duration_s, height_m, self.position, floor), interrupted
 
 
 def _step(vals) -> float:
     return float(np.median(np.diff([v.t_s for v in vals]))) if len(vals) >= 2 else 0.0
 
 
-def _sample(vals, duration_s, height_m, position) -> Sample:
+def _sample(vals, duration_s, height_m, position, floor=None) -> Sample:
     if not vals:
         nan = math.nan
         return Sample(height_m, position, nan, nan, (nan, nan, nan), 0.0, 0, 0.0, nan, nan)
@@ -294,11 +315,19 @@ def _sample(vals, duration_s, height_m, position) -> Sample:
         flags |= v.flags
     ems = ()
     if vals[0].emitters or any(v.emitters for v in vals):
-        p: dict[float, float] = {}
-        for v in vals:
-            for f, ev in v.emitters:
-                p[f] = p.get(f, 0.0) + ev * ev / len(vals)
-        ems = tuple(("", f, math.sqrt(x)) for f, x in sorted(p.items()))
+        # time-weighted power mean per line: each sweep stands for the time to the next (capped), not
+        # 1/n of the capture; a line absent from a sweep is below the floor there: counted at the floor
+        from meterlink.assessment import sweep_weights_s
+
+        w = sweep_weights_s(t)
+        lines = sorted({f for v in vals for f, _ in v.emitters})
+        p = dict.fromkeys(lines, 0.0)
+        for v, wi in zip(vals, w):
+            got = dict(v.emitters)
+            for f in lines:
+                ev = got.get(f, floor(f) if floor is not None else 0.0)
+                p[f] += ev * ev * wi
+        ems = tuple(("", f, math.sqrt(x / float(np.sum(w)))) for f, x in sorted(p.items()))
     return Sample(height_m=float(height_m), position_m=position, e_v_per_m=float(rms),
                   e_max_v_per_m=float(np.nanmax(e)) if finite.any() else math.nan, axes_v_per_m=axes,
                   u_expanded_db=float(max(v.u_expanded_db for v in vals)), n_readings=len(vals),

@@ -114,7 +114,9 @@ def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, *
     if console is not None and ident is not None:
         from rich.markup import escape
 
-        console.print(f"meter: {escape(ident.model)} serial {escape(ident.serial)}, probe {escape(ident.probe_serial)}")
+        from meterlink.safetext import clean_text
+        console.print(f"meter: {escape(clean_text(ident.model))} serial {escape(clean_text(ident.serial))}, "
+                      f"probe {escape(clean_text(ident.probe_serial))}")
     plan = load_plan(ask_plan(ask, ident))
 
     def ready(point, height_m):

@@ -106,7 +106,8 @@ def render_result(r) -> Text:
     t.append(r.point.label, style="bold")
     t.append(f"  {r.scheme}: {_fmt(r.e_v_per_m).strip()} (U {r.u_expanded_db:.2f} dB)  ")
     t.append(f"{r.percent_field:.1f} % field / {r.percent_power:.1f} % power  ", style=band_style(r.percent_power / 100))
-    t.append(r.verdict, style="green" if r.verdict == "compliant" else "bold red")
+    t.append(r.verdict, style={"compliant": "green", "conditional pass": "yellow", "conditional fail": "dark_orange",
+                               "not assessable": "bold"}.get(r.verdict, "bold red"))
     if r.followup:
         t.append("  follow-up needed", style="magenta")
     if not r.complete:

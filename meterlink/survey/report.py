@@ -79,7 +79,9 @@ def render_html(sv: dict, figures: dict[str, bytes]) -> str:
               ("broadband reference level", _e(f"{sv['e_ref_v_per_m']:.2f} V/m, the lowest E level from "
                                                f"{sv['band_lo_hz'] / 1e6:g} to {sv['band_hi_hz'] / 1e6:g} MHz "
                                                f"(at {sv['e_ref_freq_hz'] / 1e6:.1f} MHz)")),
-              ("averaging time", _e(f"{sv['averaging_time_s'] / 60:g} min")),
+              ("reference level check", _e(_check_status(sv))),
+              ("averaging time", _e(f"{sv['averaging_time_s'] / 60:g} min" if sv["averaging_time_s"] else
+                                    "none in the standard: the highest single reading is judged")),
               ("follow-up threshold", _e(_followup(sv)))])]
     h += ["<h2 id='points'>Points</h2>",
           "<p class='note'>Values are RMS in time (power domain); spatial averages are sqrt(mean(E²)) over the "
@@ -119,6 +121,23 @@ def render_html(sv: dict, figures: dict[str, bytes]) -> str:
     h += ["<h2 id='cautions'>Cautions</h2>", f'<p class="caution">{_e(SAFETY_LINE)}</p>', f"<p>{_e(CAUTIONS)}</p>",
           "</body></html>"]
     return "\n".join(h)
+
+
+def _check_status(sv) -> str:
+    """What the broadband level (and, for frequency-selective points, the summation rule) was
+    checked against, from the packaged tables."""
+    from meterlink.errors import MeterlinkError
+    from meterlink.limits import NOT_CHECKED, reference_level, summation_rule
+
+    try:
+        level = reference_level(sv["standard"], sv["tier"], sv["e_ref_freq_hz"]).status
+    except MeterlinkError:
+        level = NOT_CHECKED
+    try:
+        rule = summation_rule(sv["standard"], sv["tier"]).status
+    except MeterlinkError:
+        return f"level: {level}"
+    return f"level: {level}; multi-frequency summation rule: {rule}"
 
 
 def _followup(sv) -> str:

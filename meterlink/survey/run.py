@@ -131,7 +131,7 @@ class Survey:
         if p.duration_s is not None:
             return p.duration_s
         return {"spot": self.plan.spot_s, "spatial": self.plan.spot_s, "sweep": self.plan.sweep_s,
-                "average": self.ref.averaging_time_s}[p.mode]
+                "average": self.ref.averaging_time_s or self.plan.spot_s}[p.mode]
 
     def measure(self, p: Point) -> PointResult:
         """Place, settle and capture every height of the point, then assess and store it."""
@@ -166,7 +166,8 @@ class Survey:
         if p.mode == "sweep":
             warn.append("sweep: maximum hold of single readings, not an average")
         res = assess(self.plan, p, tuple(samples), self.ref, interrupted=interrupted,
-                     shortened=p.mode == "average" and dur < self.ref.averaging_time_s - 1e-9, warnings=tuple(warn))
+                     shortened=(p.mode == "average" and self.ref.averaging_time_s is not None
+                                and dur < self.ref.averaging_time_s - 1e-9), warnings=tuple(warn))
         self._writer.flush()
         sstore.add_point(self.store, self.session_id, no, res, cap.trace)
         cap.trace = []
