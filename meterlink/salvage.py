@@ -1,0 +1,208 @@
+"""Damaged database files: what is sound, which sessions still read whole, and copying those out.
+
+A power cut or a failing card can leave pages SQLite cannot read ("database disk image is
+malformed"). ``examine`` answers "is my file sound?" without ever failing on the damage itself:
+SQLite's integrity check, the span index check, and then, per session, whether every one of its
+rows still reads. ``salvage`` copies the sessions that read whole (with their ids, raw readings,
+span index, events, calibrations and survey rows) and every other table that reads whole into a
+new file, in the spirit of SQLite's ``.recover``, but keeping only what is known to be complete.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+from meterlink import spans
+from meterlink.storage import Store, StorageError, describe_sqlite_error, open_readonly
+
+# rows of a session in a table, as a WHERE clause over :sid (tables with a session_id column and
+# not listed here use "session_id = :sid"); readings go span by span (see _session_rows)
+_OWNED_BY = {
+    "sessions": "id = :sid",
+    "spectrum_lines": "spectrum_id in (select id from spectra where session_id = :sid)",
+    "field_values": "calibration_id in (select id from calibrations where session_id = :sid)",
+    "spectrum_values": "calibration_id in (select id from calibrations where session_id = :sid)",
+    "survey_samples": "point_id in (select id from survey_points where session_id = :sid)",
+    "survey_emitters": "point_id in (select id from survey_points where session_id = :sid)",
+}
+# parents before children, so that foreign keys hold while copying
+_ORDER = ("devices", "sessions", "readings", "reading_spans", "spectra", "spectrum_lines", "status", "events",
+          "calibrations", "field_values", "spectrum_values", "survey", "survey_sources", "survey_points",
+          "survey_samples", "survey_emitters", "survey_trace")
+
+
+@dataclass
+class SessionState:
+    """One session of a damaged file: whether all its rows read, the counts read, the first error."""
+
+    session_id: int
+    intact: bool
+    rows: dict[str, int] = field(default_factory=dict)
+    error: str | None = None
+
+
+@dataclass
+class Examination:
+    """What `examine` found: problems (empty: sound), per-session states, unreadable shared tables."""
+
+    path: str
+    problems: list[str]
+    sessions: list[SessionState]
+    shared_tables: dict[str, str | None]   # table -> None if it reads whole, else the error
+    schema_readable: bool = True
+
+    @property
+    def sound(self) -> bool:
+        return not self.problems
+
+    def as_dict(self) -> dict:
+        return {"database": self.path, "sound": self.sound, "problems": self.problems,
+                "schema_readable": self.schema_readable,
+                "sessions": [{"id": s.session_id, "intact": s.intact, "rows": s.rows, "error": s.error}
+                             for s in self.sessions],
+                "shared_tables": self.shared_tables}
+
+
+def _tables(conn: sqlite3.Connection) -> list[str]:
+    names = [r[0] for r in conn.execute("select name from sqlite_master where type = 'table' "
+                                        "and name not like 'sqlite_%'")]
+    return sorted(names, key=lambda n: (_ORDER.index(n) if n in _ORDER else len(_ORDER), n))
+
+
+def _columns(conn: sqlite3.Connection, table: str) -> list[str]:
+    return [r[1] for r in conn.execute(f"pragma table_info([{table}])")]
+
+
+def _session_clause(conn: sqlite3.Connection, table: str) -> str | None:
+    if table in _OWNED_BY:
+        return _OWNED_BY[table]
+    return "session_id = :sid" if "session_id" in _columns(conn, table) else None
+
+
+def _session_rows(conn: sqlite3.Connection, table: str, sid: int) -> list[tuple]:
+    """All rows of one session in one table. Readings are read span by span through their id
+    ranges, so that damage in another session's pages of the (unindexed) readings table does not
+    spoil this one; a reading outside every span would be missed, which the span check reports."""
+    if table == "readings":
+        out = []
+        for lo, hi in conn.execute("select id_lo, id_hi from reading_spans where session_id = ? order by id_lo",
+                                   (sid,)).fetchall():
+            out += conn.execute("select * from readings where id between ? and ? and session_id = ?",
+                                (lo, hi, sid)).fetchall()
+        return out
+    return conn.execute(f"select * from [{table}] where {_session_clause(conn, table)}", {"sid": sid}).fetchall()
+
+
+def examine(path: str | Path, progress: Callable[[str, int, int], None] | None = None) -> Examination:
+    """Check a database file and say, per session, what still reads whole. Never raises on damage."""
+    p = Path(path)
+    conn = open_readonly(p)   # StorageError for a missing, empty, non-SQLite or unreadable file
+    try:
+        return _examine(conn, str(p), progress or (lambda *_: None))
+    finally:
+        conn.close()
+
+
+def _examine(conn: sqlite3.Connection, name: str, progress) -> Examination:
+    problems: list[str] = []
+    progress("SQLite integrity check", 0, 1)
+    try:
+        rows = [r[0] for r in conn.execute("PRAGMA integrity_check").fetchall()]
+        problems += [] if rows == ["ok"] else [f"sqlite: {r}" for r in rows]
+    except sqlite3.DatabaseError as exc:
+        problems.append(f"sqlite: integrity check stopped: {exc}")
+    progress("SQLite integrity check", 1, 1)
+    try:
+        tables = _tables(conn)
+        ids = [r[0] for r in conn.execute("select id from sessions order by id")]
+    except sqlite3.DatabaseError as exc:
+        problems.append(f"the list of sessions cannot be read: {exc}")
+        return Examination(name, problems, [], {}, schema_readable=False)
+    if "reading_spans" in tables:
+        try:
+            problems += spans.check(conn, lambda d, t: progress("span index", d, t))
+        except sqlite3.DatabaseError as exc:
+            problems.append(f"span index: check stopped: {exc}")
+    progress("span index", 1, 1)
+    states = []
+    owned = [t for t in tables if _session_clause(conn, t) is not None]
+    for k, sid in enumerate(ids):
+        progress("sessions", k, len(ids))
+        st = SessionState(sid, True)
+        for t in owned:
+            try:
+                st.rows[t] = len(_session_rows(conn, t, sid))
+            except sqlite3.DatabaseError as exc:
+                st.intact, st.error = False, f"{t}: {exc}"
+                break
+        states.append(st)
+    shared = {}
+    for t in tables:
+        if t in owned:
+            continue
+        try:
+            conn.execute(f"select * from [{t}]").fetchall()
+            shared[t] = None
+        except sqlite3.DatabaseError as exc:
+            shared[t] = str(exc)
+    for t, err in shared.items():
+        if err and t != "events":
+            problems.append(f"table {t} does not read whole: {err}")
+    return Examination(name, problems, states, shared)
+
+
+def salvage(src: str | Path, out: str | Path) -> tuple[Examination, list[int]]:
+    """Copy every session that reads whole, and every other table that reads whole, from src into a
+    new file out (which must not exist). Returns the examination and the ids of the sessions copied."""
+    out_p = Path(out)
+    if out_p.exists():
+        raise StorageError(f"--salvage {str(out_p)!r} exists: give a new file name")
+    ex = examine(src)
+    if not ex.schema_readable:
+        raise StorageError(f"{str(src)!r}: the list of sessions cannot be read; meterlink can salvage nothing")
+    conn = open_readonly(src)
+    copied: list[int] = []
+    try:
+        with Store(out_p) as dest:
+            d = dest.db.conn
+            with dest.write():
+                d.execute("PRAGMA defer_foreign_keys = ON")
+                for t, err in ex.shared_tables.items():
+                    if err is None and t != "meta":
+                        _copy(conn, d, t, conn.execute(f"select * from [{t}]").fetchall())
+                tables = [t for t in _tables(conn) if t not in ex.shared_tables]
+                for st in ex.sessions:
+                    if not st.intact:
+                        continue
+                    for t in tables:
+                        _copy(conn, d, t, _session_rows(conn, t, st.session_id))
+                    copied.append(st.session_id)
+                problems = spans.check(d)
+                if problems:
+                    raise StorageError(f"salvaged copy {str(out_p)!r} failed its span check: {problems[0]}")
+    except sqlite3.DatabaseError as exc:
+        raise describe_sqlite_error(src, exc) from None
+    finally:
+        conn.close()
+    return ex, copied
+
+
+def _copy(src: sqlite3.Connection, dest: sqlite3.Connection, table: str, rows: list[tuple]) -> None:
+    """Insert rows of src's table into dest's table of that name, by the columns both have."""
+    if not rows:
+        return
+    have = _columns(src, table)
+    want = set(_columns(dest, table)) if dest.execute(
+        "select 1 from sqlite_master where type = 'table' and name = ?", (table,)).fetchone() else set()
+    if not want:   # a table this meterlink does not create (another program's): recreate its schema
+        sql = src.execute("select sql from sqlite_master where type = 'table' and name = ?", (table,)).fetchone()[0]
+        dest.execute(sql)
+        want = set(have)
+    idx = [i for i, c in enumerate(have) if c in want]
+    cols = ", ".join(f"[{have[i]}]" for i in idx)
+    marks = ", ".join("?" for _ in idx)
+    dest.executemany(f"insert or replace into [{table}] ({cols}) values ({marks})",
+                     [tuple(r[i] for i in idx) for r in rows])
