@@ -64,7 +64,7 @@ def test_errors_are_one_line_naming_the_key(tmp_path, old, new, key):
 def test_not_toml_and_missing_file(tmp_path):
     with pytest.raises(StationFileError, match="not valid TOML"):
         parse_station("format = ", tmp_path / "x.toml")
-    with pytest.raises(StationFileError, match="cannot read station file"):
+    with pytest.raises(StationFileError, match="absent.toml: no such station file"):
         load_station(tmp_path / "absent.toml")
 
 
