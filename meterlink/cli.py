@@ -106,14 +106,15 @@ def _broken_pipe() -> int:
 
 def _protect_negative_positionals(argv: list[str]) -> list[str]:
     """Let a negative-looking value such as ``limits -5MHz`` reach its command, which explains the
-    problem, instead of argparse taking it for an unknown option: it gets a ``--`` before it."""
+    problem, instead of argparse taking it for an unknown option: the command's one positional
+    value is moved to the end, after ``--``, so options before and after it still work."""
     out = list(argv)
     if out and out[0] == "limits":
         for i, a in enumerate(out[1:], 1):
             if a == "--":
                 break
             if _NEGATIVE.match(a) and (i == 1 or not out[i - 1].startswith("--")):
-                return out[:i] + ["--"] + out[i:]
+                return out[:i] + out[i + 1:] + ["--", a]
     return out
 
 
