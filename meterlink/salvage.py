@@ -10,10 +10,11 @@ new file, in the spirit of SQLite's ``.recover``, but keeping only what is known
 
 from __future__ import annotations
 
+import itertools
 import sqlite3
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Iterable, Iterator
 
 from meterlink import spans
 from meterlink.storage import Store, StorageError, describe_sqlite_error, open_readonly
@@ -28,6 +29,7 @@ _OWNED_BY = {
     "survey_samples": "point_id in (select id from survey_points where session_id = :sid)",
     "survey_emitters": "point_id in (select id from survey_points where session_id = :sid)",
 }
+_GLOBAL_EVENTS = "events of no session"
 # parents before children, so that foreign keys hold while copying
 _ORDER = ("devices", "sessions", "readings", "reading_spans", "spectra", "spectrum_lines", "status", "events",
           "calibrations", "field_values", "spectrum_values", "survey", "survey_sources", "survey_points",
@@ -82,18 +84,37 @@ def _session_clause(conn: sqlite3.Connection, table: str) -> str | None:
     return "session_id = :sid" if "session_id" in _columns(conn, table) else None
 
 
-def _session_rows(conn: sqlite3.Connection, table: str, sid: int) -> list[tuple]:
-    """All rows of one session in one table. Readings are read span by span through their id
-    ranges, so that damage in another session's pages of the (unindexed) readings table does not
+def _session_rows(conn: sqlite3.Connection, table: str, sid: int) -> Iterator[tuple]:
+    """All rows of one session in one table, streamed. Readings are read span by span through their
+    id ranges, so that damage in another session's pages of the (unindexed) readings table does not
     spoil this one; a reading outside every span would be missed, which the span check reports."""
     if table == "readings":
-        out = []
         for lo, hi in conn.execute("select id_lo, id_hi from reading_spans where session_id = ? order by id_lo",
                                    (sid,)).fetchall():
-            out += conn.execute("select * from readings where id between ? and ? and session_id = ?",
-                                (lo, hi, sid)).fetchall()
-        return out
-    return conn.execute(f"select * from [{table}] where {_session_clause(conn, table)}", {"sid": sid}).fetchall()
+            yield from conn.execute("select * from readings where id between ? and ? and session_id = ?",
+                                    (lo, hi, sid))
+        return
+    yield from conn.execute(f"select * from [{table}] where {_session_clause(conn, table)}", {"sid": sid})
+
+
+def _whole_row_sum(conn: sqlite3.Connection, table: str) -> str:
+    """An SQL expression that makes SQLite decode every column of a row (overflow pages included),
+    so that a count over it cannot be answered from an index alone and meets any damaged page."""
+    return " + ".join(f"length(quote([{c}]))" for c in _columns(conn, table)) or "0"
+
+
+def _session_count(conn: sqlite3.Connection, table: str, sid: int) -> int:
+    """How many rows of one session a table holds, reading each whole (the count runs inside SQLite)."""
+    expr = _whole_row_sum(conn, table)
+    if table == "readings":
+        n = 0
+        for lo, hi in conn.execute("select id_lo, id_hi from reading_spans where session_id = ? order by id_lo",
+                                   (sid,)).fetchall():
+            n += conn.execute(f"select count(*), sum({expr}) from readings where id between ? and ? "
+                              f"and session_id = ?", (lo, hi, sid)).fetchone()[0]
+        return n
+    return conn.execute(f"select count(*), sum({expr}) from [{table}] where {_session_clause(conn, table)}",
+                        {"sid": sid}).fetchone()[0]
 
 
 def examine(path: str | Path, progress: Callable[[str, int, int], None] | None = None) -> Examination:
@@ -134,7 +155,7 @@ def _examine(conn: sqlite3.Connection, name: str, progress) -> Examination:
         st = SessionState(sid, True)
         for t in owned:
             try:
-                st.rows[t] = len(_session_rows(conn, t, sid))
+                st.rows[t] = _session_count(conn, t, sid)
             except sqlite3.DatabaseError as exc:
                 st.intact, st.error = False, f"{t}: {exc}"
                 break
@@ -144,13 +165,20 @@ def _examine(conn: sqlite3.Connection, name: str, progress) -> Examination:
         if t in owned:
             continue
         try:
-            conn.execute(f"select * from [{t}]").fetchall()
+            conn.execute(f"select count(*), sum({_whole_row_sum(conn, t)}) from [{t}]").fetchone()
             shared[t] = None
         except sqlite3.DatabaseError as exc:
             shared[t] = str(exc)
+    if "events" in tables:      # station-wide events belong to no session
+        try:
+            conn.execute(f"select count(*), sum({_whole_row_sum(conn, 'events')}) from events "
+                         f"where session_id is null").fetchone()
+            shared[_GLOBAL_EVENTS] = None
+        except sqlite3.DatabaseError as exc:
+            shared[_GLOBAL_EVENTS] = str(exc)
     for t, err in shared.items():
-        if err and t != "events":
-            problems.append(f"table {t} does not read whole: {err}")
+        if err:
+            problems.append(f"{t} does not read whole: {err}")
     return Examination(name, problems, states, shared)
 
 
@@ -171,8 +199,8 @@ def salvage(src: str | Path, out: str | Path) -> tuple[Examination, list[int]]:
             with dest.write():
                 d.execute("PRAGMA defer_foreign_keys = ON")
                 for t, err in ex.shared_tables.items():
-                    if err is None and t != "meta":
-                        _copy(conn, d, t, conn.execute(f"select * from [{t}]").fetchall())
+                    if err is None and t not in ("meta", _GLOBAL_EVENTS):
+                        _copy(conn, d, t, conn.execute(f"select * from [{t}]"))
                 tables = [t for t in _tables(conn) if t not in ex.shared_tables]
                 for st in ex.sessions:
                     if not st.intact:
@@ -180,6 +208,8 @@ def salvage(src: str | Path, out: str | Path) -> tuple[Examination, list[int]]:
                     for t in tables:
                         _copy(conn, d, t, _session_rows(conn, t, st.session_id))
                     copied.append(st.session_id)
+                if ex.shared_tables.get(_GLOBAL_EVENTS, "absent") is None:
+                    _copy(conn, d, "events", conn.execute("select * from events where session_id is null"))
                 problems = spans.check(d)
                 if problems:
                     raise StorageError(f"salvaged copy {str(out_p)!r} failed its span check: {problems[0]}")
@@ -190,10 +220,8 @@ def salvage(src: str | Path, out: str | Path) -> tuple[Examination, list[int]]:
     return ex, copied
 
 
-def _copy(src: sqlite3.Connection, dest: sqlite3.Connection, table: str, rows: list[tuple]) -> None:
-    """Insert rows of src's table into dest's table of that name, by the columns both have."""
-    if not rows:
-        return
+def _copy(src: sqlite3.Connection, dest: sqlite3.Connection, table: str, rows: Iterable[tuple]) -> None:
+    """Insert rows of src's table into dest's table of that name, by the columns both have (streamed)."""
     have = _columns(src, table)
     want = set(_columns(dest, table)) if dest.execute(
         "select 1 from sqlite_master where type = 'table' and name = ?", (table,)).fetchone() else set()
@@ -204,5 +232,7 @@ def _copy(src: sqlite3.Connection, dest: sqlite3.Connection, table: str, rows: l
     idx = [i for i, c in enumerate(have) if c in want]
     cols = ", ".join(f"[{have[i]}]" for i in idx)
     marks = ", ".join("?" for _ in idx)
-    dest.executemany(f"insert or replace into [{table}] ({cols}) values ({marks})",
-                     [tuple(r[i] for i in idx) for r in rows])
+    it = iter(rows)
+    while chunk := list(itertools.islice(it, 5000)):
+        dest.executemany(f"insert or replace into [{table}] ({cols}) values ({marks})",
+                         [tuple(r[i] for i in idx) for r in chunk])

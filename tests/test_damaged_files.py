@@ -236,3 +236,64 @@ def test_store_refuses_to_create_where_it_must_only_read(tmp_path):
     with pytest.raises(StorageError, match="no database at"):
         Store(tmp_path / "absent.db", create=False)
     assert list(tmp_path.iterdir()) == []
+
+
+STATION = """format = "meterlink-station/1"
+[station]
+name = "Salter's Knoll (invented)"
+database = "DB"
+[assessment]
+standard = "icnirp-2020"
+tier = "public"
+band = ["80 MHz", "4 GHz"]
+interval_s = 10
+[[meter]]
+name = "east"
+port = "PORT"
+certificate = "demo-probe"
+[health]
+drift_max_ppm = 1e9
+"""
+
+
+def test_salvage_of_a_sound_station_file_copies_every_row(tmp_path):
+    import threading
+    import time
+
+    from meterlink.monitor import Monitor
+    from meterlink.station import parse_station
+
+    db = tmp_path / "station.db"
+    with SimulatedMeter("station", meter=1, seed=5, speed=2000.0) as sim:
+        st = parse_station(STATION.replace("DB", str(db)).replace("PORT", sim.port), tmp_path / "s.toml")
+        mon = Monitor(st, time_scale=2000.0, backoff_max_s=0.5)
+        th = threading.Thread(target=mon.run)
+        th.start()
+        try:
+            deadline = time.monotonic() + 30
+            while True:
+                conn = sqlite3.connect(db, timeout=10)
+                n = conn.execute("select count(*) from mon_block where complete = 1").fetchone()[0]
+                conn.close()
+                if n >= 3:
+                    break
+                assert time.monotonic() < deadline and th.is_alive()
+                th.join(0.1)
+        finally:
+            mon.stop()
+            th.join(30)
+    out_db = tmp_path / "copy.db"
+    code, out, err = cli("sessions", "--db", db, "--salvage", out_db)
+    assert code == 0, err
+
+    def counts(path):
+        conn = sqlite3.connect(path)
+        names = [r[0] for r in conn.execute("select name from sqlite_master where type = 'table' "
+                                            "and name not like 'sqlite_%' and name != 'meta'")]
+        got = {n: conn.execute(f"select count(*) from [{n}]").fetchone()[0] for n in names}
+        conn.close()
+        return got
+
+    before, after = counts(db), counts(out_db)
+    assert before["readings"] > 0 and before["mon_block"] >= 3 and before["events"] > 0
+    assert after == before
