@@ -84,11 +84,16 @@ def _session_clause(conn: sqlite3.Connection, table: str) -> str | None:
     return "session_id = :sid" if "session_id" in _columns(conn, table) else None
 
 
+def _has_spans(conn: sqlite3.Connection) -> bool:
+    """Whether the file has the span index (schema 3 on; older files index readings per row)."""
+    return conn.execute("select 1 from sqlite_master where name = 'reading_spans'").fetchone() is not None
+
+
 def _session_rows(conn: sqlite3.Connection, table: str, sid: int) -> Iterator[tuple]:
     """All rows of one session in one table, streamed. Readings are read span by span through their
     id ranges, so that damage in another session's pages of the (unindexed) readings table does not
     spoil this one; a reading outside every span would be missed, which the span check reports."""
-    if table == "readings":
+    if table == "readings" and _has_spans(conn):
         for lo, hi in conn.execute("select id_lo, id_hi from reading_spans where session_id = ? order by id_lo",
                                    (sid,)).fetchall():
             yield from conn.execute("select * from readings where id between ? and ? and session_id = ?",
@@ -106,7 +111,7 @@ def _whole_row_sum(conn: sqlite3.Connection, table: str) -> str:
 def _session_count(conn: sqlite3.Connection, table: str, sid: int) -> int:
     """How many rows of one session a table holds, reading each whole (the count runs inside SQLite)."""
     expr = _whole_row_sum(conn, table)
-    if table == "readings":
+    if table == "readings" and _has_spans(conn):
         n = 0
         for lo, hi in conn.execute("select id_lo, id_hi from reading_spans where session_id = ? order by id_lo",
                                    (sid,)).fetchall():
@@ -210,6 +215,11 @@ def salvage(src: str | Path, out: str | Path) -> tuple[Examination, list[int]]:
                     copied.append(st.session_id)
                 if ex.shared_tables.get(_GLOBAL_EVENTS, "absent") is None:
                     _copy(conn, d, "events", conn.execute("select * from events where session_id is null"))
+                if not _has_spans(conn):    # a file from before the span index: build it for the copy
+                    d.execute("insert into reading_spans (session_id, boot, seq_lo, seq_hi, id_lo, id_hi, t_lo, "
+                              "t_hi, n) select session_id, boot, min(seq), max(seq), min(id), max(id), min(t_utc), "
+                              f"max(t_utc), count(*) from readings group by session_id, boot, id / {spans.SPAN_ROWS} "
+                              "order by min(id)")
                 problems = spans.check(d)
                 if problems:
                     raise StorageError(f"salvaged copy {str(out_p)!r} failed its span check: {problems[0]}")

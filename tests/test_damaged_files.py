@@ -297,3 +297,33 @@ def test_salvage_of_a_sound_station_file_copies_every_row(tmp_path):
     before, after = counts(db), counts(out_db)
     assert before["readings"] > 0 and before["mon_block"] >= 3 and before["events"] > 0
     assert after == before
+
+
+def _schema_v2_file(path: Path) -> None:
+    """A file as meterlink wrote it before the span index (schema 2), with one session of readings."""
+    import sqlite_utils
+
+    from meterlink.schema import MIGRATIONS
+
+    db = sqlite_utils.Database(path)
+    for v in (1, 2):
+        MIGRATIONS[v](db)
+    db["meta"].upsert({"key": "schema_version", "value": "2"}, pk="key")
+    db["sessions"].insert({"id": 1, "kind": "record", "started_utc": 1.8e9})
+    db["readings"].insert_all({"session_id": 1, "boot": 1, "seq": i, "tick_ms": 100 * i, "t_utc": 1.8e9 + i / 10,
+                               "raw_x": i, "raw_y": 0, "raw_z": 0, "flags": 0, "range_index": 0} for i in range(300))
+    db.close()
+
+
+def test_salvage_and_read_only_open_of_a_file_from_before_the_span_index(tmp_path):
+    old = tmp_path / "v2.db"
+    _schema_v2_file(old)
+    out_db = tmp_path / "v2-copy.db"
+    code, out, err = cli("sessions", "--db", old, "--salvage", out_db)
+    assert code == 0 and "1 session(s) copied" in out, err
+    code, out, _ = cli("sessions", "--db", out_db, "--verify", "--json")
+    assert code == 0 and json.loads(out)["sound"] is True
+    with Store(out_db, readonly=True) as store:
+        assert len(store.readings(1)) == 300
+    with Store(old, readonly=True) as store:     # upgraded once (the file is writable), then read read-only
+        assert store.schema_version >= 3 and len(store.readings(1)) == 300
