@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import contextlib
 import itertools
-import os
 import json
+import os
 import sqlite3
 import sys
 import threading
@@ -121,7 +121,8 @@ class Store:
         self.readonly = readonly
         self.created = False
         self._lock = threading.RLock()
-        existed = check_database_file(self.path, must_exist=readonly or not create, allow_empty=create and not readonly)
+        existed = check_database_file(self.path, must_exist=readonly or not create,
+                                      allow_empty=create and not readonly)
         if readonly:
             conn = open_readonly(self.path)
         else:
