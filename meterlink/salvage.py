@@ -44,6 +44,8 @@ class SessionState:
     intact: bool
     rows: dict[str, int] = field(default_factory=dict)
     error: str | None = None
+    readings_readable: int | None = None    # for a damaged session: readings in the spans that still read
+    readings_indexed: int | None = None     # ... of this many in its span index
 
 
 @dataclass
@@ -63,7 +65,8 @@ class Examination:
     def as_dict(self) -> dict:
         return {"database": self.path, "sound": self.sound, "problems": self.problems,
                 "schema_readable": self.schema_readable,
-                "sessions": [{"id": s.session_id, "intact": s.intact, "rows": s.rows, "error": s.error}
+                "sessions": [{"id": s.session_id, "intact": s.intact, "rows": s.rows, "error": s.error,
+                              "readings_readable": s.readings_readable, "readings_indexed": s.readings_indexed}
                              for s in self.sessions],
                 "shared_tables": self.shared_tables}
 
@@ -122,6 +125,23 @@ def _session_count(conn: sqlite3.Connection, table: str, sid: int) -> int:
                         {"sid": sid}).fetchone()[0]
 
 
+def _count_readable_readings(conn: sqlite3.Connection, st: SessionState) -> None:
+    """How many of a damaged session's readings still read, span by span (None if the spans do not)."""
+    try:
+        spans_ = conn.execute("select id_lo, id_hi, n from reading_spans where session_id = ?",
+                              (st.session_id,)).fetchall()
+    except sqlite3.DatabaseError:
+        return
+    expr, ok = _whole_row_sum(conn, "readings"), 0
+    for lo, hi, _ in spans_:
+        try:
+            ok += conn.execute(f"select count(*), sum({expr}) from readings where id between ? and ? "
+                               f"and session_id = ?", (lo, hi, st.session_id)).fetchone()[0]
+        except sqlite3.DatabaseError:
+            continue
+    st.readings_readable, st.readings_indexed = ok, sum(n for _, _, n in spans_)
+
+
 def examine(path: str | Path, progress: Callable[[str, int, int], None] | None = None) -> Examination:
     """Check a database file and say, per session, what still reads whole. Never raises on damage."""
     p = Path(path)
@@ -164,6 +184,8 @@ def _examine(conn: sqlite3.Connection, name: str, progress) -> Examination:
             except sqlite3.DatabaseError as exc:
                 st.intact, st.error = False, f"{t}: {exc}"
                 break
+        if not st.intact and _has_spans(conn):
+            _count_readable_readings(conn, st)
         states.append(st)
     shared = {}
     for t in tables:

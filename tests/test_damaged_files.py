@@ -99,6 +99,7 @@ def test_verify_reports_damage_as_its_answer_and_salvage_copies_the_intact_sessi
                                                                                    tmp_path):
     with Store(recorded, readonly=True) as store:
         intact = store.readings(2)
+        n1 = store.count("readings", 1)
     code, out, err = cli("sessions", "--db", readings_damaged, "--verify")
     assert code == 1 and "Traceback" not in err + out
     assert "session 1: damaged" in out and "session 2: reads whole" in out and "--salvage" in out
@@ -107,6 +108,8 @@ def test_verify_reports_damage_as_its_answer_and_salvage_copies_the_intact_sessi
     assert code == 1 and doc["sound"] is False and doc["problems"]
     assert [(s["id"], s["intact"]) for s in doc["sessions"]] == [(1, False), (2, True)]
     assert doc["sessions"][1]["rows"]["readings"] == len(intact)
+    # of the damaged session, the span index still says how many readings it had, and fewer read
+    assert doc["sessions"][0]["readings_indexed"] == n1 and doc["sessions"][0]["readings_readable"] < n1
 
     out_db = tmp_path / "salvaged.db"
     code, out, err = cli("sessions", "--db", readings_damaged, "--salvage", out_db)

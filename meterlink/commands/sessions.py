@@ -88,7 +88,9 @@ def _verify(args) -> int:
             n = s.rows.get("readings", 0)
             con.print(f"  session {s.session_id}: reads whole ({n} readings, {s.rows.get('events', 0)} events)")
         else:
-            con.print(f"  session {s.session_id}: [red]damaged[/] ({escape(s.error or '')})")
+            part = (f"; {s.readings_readable} of its {s.readings_indexed} readings still read"
+                    if s.readings_indexed else "")
+            con.print(f"  session {s.session_id}: [red]damaged[/] ({escape(s.error or '')}){part}")
     if whole:
         con.print(f"{len(whole)} of {len(ex.sessions)} session(s) read whole: 'meterlink sessions --db {path} "
                   f"--salvage NEW.db' copies them into a new file.")
