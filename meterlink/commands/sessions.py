@@ -51,7 +51,9 @@ def _verify(args) -> int:
     """The answer to "is my file sound?": damage is the answer (exit 1), never a crash."""
     from meterlink.salvage import examine
 
-    if args.json:
+    import sys
+
+    if args.json or not sys.stdout.isatty():
         ex = examine(args.db)
     else:  # both checks read the whole file: on a station's year that takes a while
         from rich.progress import Progress
