@@ -263,3 +263,13 @@ def test_any_numeric_entry_made_hostile_loads_or_is_refused_cleanly(tmp_path, ki
         assert str(p) in str(exc) and "\n" not in str(exc)
     except MeterlinkError as exc:   # pragma: no cover - a wrong error type is a failure too
         pytest.fail(f"{type(exc).__name__} instead of {error.__name__}: {exc}")
+
+
+@pytest.mark.parametrize("heights", [["a"], [True, 1.0], [NAN], [1e308], "1.0, 1.5", [-1.0, 1.0]])
+def test_custom_spatial_heights_are_checked(tmp_path, heights):
+    doc = LOADERS["plan"][2]()
+    doc["point"][0] = {"label": "custom", "mode": "spatial", "scheme": "custom", "heights_m": heights}
+    p = _write(tmp_path, "plan", doc)
+    with pytest.raises(PlanError) as info:
+        load_plan(p)
+    assert str(p) in str(info.value) and "heights" in str(info.value)

@@ -108,6 +108,9 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
         heights = d.get("heights_m")
         if name == "custom" and (not isinstance(heights, list) or not heights):
             c.fail(what, "a custom scheme needs heights_m = [...]")
+        if heights is not None and (not isinstance(heights, list) or any(
+                isinstance(h, bool) or not isinstance(h, (int, float)) for h in heights)):
+            c.fail(what, f"heights_m must be a list of heights in metres, got {heights!r}"[:160])
         n = d.get("n")
         if n is not None and (isinstance(n, bool) or not isinstance(n, int) or n < 2 or n > 50):
             c.fail(what, f"n = {n!r} must be a whole number from 2 to 50")
