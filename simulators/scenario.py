@@ -127,14 +127,20 @@ def _validate(d: dict, where: str) -> None:
     c = _Check(where)
     c.finite_everywhere(d)
     site = c.table(d, "site")
+    for k in ("name", "description"):
+        c.text(site, k, "site", required=False)
     c.num(site, "start_time_of_day_h", "site", 0.0, 24.0, required=False)
     for k in ("temp_mean_c", "temp_daily_amp_c"):
         c.num(site, k, "site", -100.0, 150.0, required=False)
     device = c.table(d, "device")
+    c.text(device, "model", "device", required=False)
+    c.nums(device, "fw", "device", 3, 0, 255, required=False)
     for k, v in device.items():
         if k not in ("model", "fw") and not isinstance(v, str):
             c.num(device, k, "device", 0.0, 1e12)
     probe = c.table(d, "probe")
+    for k in ("serial", "cert_ref"):
+        c.text(probe, k, "probe", required=False)
     for k in ("ref_freq_hz", "counts_per_v2m2"):
         c.num(probe, k, "probe", 1e-12, _MAX_FREQ_HZ if k.endswith("hz") else 1e15)
     for k in ("noise_counts_rms", "full_scale_counts", "ripple_db", "ripple_period_decades"):
@@ -146,6 +152,8 @@ def _validate(d: dict, where: str) -> None:
         c.nums(probe, k, "probe", 3, lo, hi)
     c.nums(probe, "freq_range_hz", "probe", 2, 1.0, _MAX_FREQ_HZ)
     receiver = c.table(d, "receiver")
+    for k in ("serial", "cert_ref"):
+        c.text(receiver, k, "receiver", required=False)
     for k in ("level_error_db", "noise_floor_dbuv", "noise_db_rms"):
         c.num(receiver, k, "receiver", -300.0, 300.0)
     c.nums(receiver, "freq_range_hz", "receiver", 2, 1.0, _MAX_FREQ_HZ)
@@ -173,6 +181,7 @@ def _validate(d: dict, where: str) -> None:
         w = f"meter[{i}]"
         c.text(m, "serial", w)
         c.text(m, "name", w, required=False)
+        c.text(m, "asset_tag", w, required=False)
         c.nums(m, "orientation_deg", w, 3, -360.0, 360.0, required=False)
         if "path" in m:
             rows = m["path"]

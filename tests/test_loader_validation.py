@@ -231,29 +231,32 @@ def test_a_bad_entry_is_refused_naming_file_and_key(tmp_path, kind, path, value,
     assert "\n" not in msg
 
 
-# Hostile values for any numeric entry: whatever the entry, the loader either accepts the file or
-# refuses it with its own error naming the file. Never another exception.
-HOSTILE = st.sampled_from([NAN, INF, -INF, 1e308, -1e308, 0, -1, 2 ** 63 - 1, -(2 ** 63), True, "x", [], {}])
+# Hostile values for any entry: whatever the entry (a number, a text, a list, a whole table), the
+# loader either accepts the file or refuses it with its own error naming the file. Never another
+# exception. (test_every_entry_with_every_hostile_value, marked slow, tries them all: 13,345 files.)
+HOSTILE_VALUES = [NAN, INF, -INF, 1e308, -1e308, 0, -1, 2 ** 63 - 1, -(2 ** 63), True, "x", "", [], {}, [1],
+                  ["a", "b"], {"a": 1}]
+HOSTILE = st.sampled_from(HOSTILE_VALUES)
 
 
-def _numeric_paths(doc, prefix=()):
+def _entry_paths(doc, prefix=()):
+    if prefix:
+        yield prefix
     if isinstance(doc, dict):
         for k, v in doc.items():
-            yield from _numeric_paths(v, prefix + (k,))
+            yield from _entry_paths(v, prefix + (k,))
     elif isinstance(doc, list):
         for i, v in enumerate(doc):
-            yield from _numeric_paths(v, prefix + (i,))
-    elif isinstance(doc, (int, float)) and not isinstance(doc, bool):
-        yield prefix
+            yield from _entry_paths(v, prefix + (i,))
 
 
 @pytest.mark.parametrize("kind", sorted(LOADERS))
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(data=st.data())
-def test_any_numeric_entry_made_hostile_loads_or_is_refused_cleanly(tmp_path, kind, data):
+def test_any_entry_made_hostile_loads_or_is_refused_cleanly(tmp_path, kind, data):
     load, error, base = LOADERS[kind]
     doc = base()
-    paths = list(_numeric_paths(doc))
+    paths = list(_entry_paths(doc))
     path = data.draw(st.sampled_from(paths), label="entry")
     value = data.draw(HOSTILE, label="value")
     p = _write(tmp_path, kind, changed(doc, path, value))
@@ -273,3 +276,22 @@ def test_custom_spatial_heights_are_checked(tmp_path, heights):
     with pytest.raises(PlanError) as info:
         load_plan(p)
     assert str(p) in str(info.value) and "heights" in str(info.value)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("kind", sorted(LOADERS))
+def test_every_entry_with_every_hostile_value(tmp_path, kind):
+    """The exhaustive form of the property above (about a minute for all loaders)."""
+    load, error, base = LOADERS[kind]
+    doc = base()
+    p = tmp_path / f"{kind}-sweep.toml"
+    tried = 0
+    for path in _entry_paths(doc):
+        for value in HOSTILE_VALUES:
+            p.write_text(dump(changed(doc, path, value)), encoding="utf-8")
+            tried += 1
+            try:
+                load(p)
+            except error as exc:
+                assert str(p) in str(exc) and "\n" not in str(exc), (path, value, str(exc))
+    assert tried > 100

@@ -177,9 +177,11 @@ def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
         raise LabError(f"{where}: due date {due} is not after calibration date {cal_date}")
     try:
         method = FieldMethod(kind=_str(where, m, "kind", "tem-cell"),
-                             impedance_ohm=_num(where, m, "impedance_ohm", 50.0),
-                             spacing_m=_num(where, m, "spacing_m", 0.15), gain_dbi=_num(where, m, "gain_dbi", 0.0),
-                             distance_m=_num(where, m, "distance_m", 1.0), description=str(m.get("description", "")))
+                             impedance_ohm=_num(where, m, "impedance_ohm", 50.0, 0.0, 1e4),
+                             spacing_m=_num(where, m, "spacing_m", 0.15, -1.0, 100.0),
+                             gain_dbi=_num(where, m, "gain_dbi", 0.0, -50.0, 100.0),
+                             distance_m=_num(where, m, "distance_m", 1.0, -1.0, 1e4),
+                             description=str(m.get("description", "")))
     except LabError:
         raise
     except MeterlinkError as exc:
