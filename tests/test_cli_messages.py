@@ -63,3 +63,18 @@ def test_a_negative_frequency_is_explained_not_met_with_usage(argv):
 def test_limits_still_takes_options_after_the_frequency():
     code, out, err = cli("limits", "900MHz", "--standard", "icnirp-2020", "--tier", "public", "--json")
     assert code == 0, err
+
+
+def test_assess_with_an_unknown_certificate_writes_nothing(tmp_path):
+    import hashlib
+
+    db = tmp_path / "m.db"
+    with Store(db) as s:
+        s.begin_session("record")
+    before = hashlib.sha256(db.read_bytes()).hexdigest()
+    code, _, err = cli("assess", "--db", db, "--standard", "icnirp-2020", "--tier", "public",
+                       "--certificate", "no-such-cert")
+    assert code == 2 and "no-such-cert" in one_line(err)
+    with Store(db, readonly=True) as s:
+        assert s.events() == []          # no 'assessment_rule' event left behind
+    assert hashlib.sha256(db.read_bytes()).hexdigest() == before

@@ -37,7 +37,9 @@ def run(args) -> int:
         raise MeterlinkError(f"unknown standard {args.standard!r} (known: {', '.join(standards())})")
     rule = get_rule(args.rule)
     freq, band = parse_declared(args.freq, args.band)
-
+    if args.certificate:        # an unusable certificate is refused before anything is written
+        from meterlink.certificate import load_certificate
+        load_certificate(args.certificate)
     with Store(args.db, create=False) as store:
         store.check_sound()      # never write into a damaged file
         sid = args.session if args.session is not None else latest_session(store)
