@@ -14,7 +14,7 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from meterlink.errors import CertificateError
+from meterlink.errors import CertificateError, read_input_text
 from meterlink.uncertainty import DISTRIBUTIONS, UNITS, Component
 
 FORMAT = "meterlink-cert/1"
@@ -91,6 +91,24 @@ class DipoleCertificate:
     source: str = field(default="", compare=False)
 
 
+# Plausible bounds of a certificate's numbers, by the key's last name. Engineering judgement (no
+# single published source): each is far wider than any real probe, antenna or cable shows, and
+# narrow enough that arithmetic on the value cannot overflow (a correction of 1e308 dB would
+# load, then give inf or nan field values in the middle of a recording).
+_BOUNDS = {
+    "freq_hz": (1.0, 3e12),                     # 1 Hz .. 3 THz
+    "v_per_m": (1e-9, 1e6), "a_per_m": (1e-12, 1e4), "level_v_per_m": (1e-9, 1e6),
+    "level_a_per_m": (1e-12, 1e4), "level_dbuv": (-200.0, 300.0),
+    "zero_counts": (-2.0 ** 31, 2.0 ** 31),     # the device reports 32-bit counts
+    "counts_above_zero": (1e-9, 2.0 ** 32),
+    "correction_db": (-60.0, 60.0), "level_correction_db": (-60.0, 60.0),
+    "db_per_m": (-60.0, 100.0), "db": (-20.0, 100.0),      # antenna factor; cable loss
+    "reference_c": (-60.0, 100.0), "coefficient_db_per_c": (-50.0, 50.0),
+    "coefficient_halfwidth_db_per_c": (0.0, 50.0), "deviation_db": (0.0, 30.0),
+    "value": (0.0, 1000.0), "k": (0.1, 10.0), "sensitivity": (-1e3, 1e3),
+}
+
+
 class _Reader:
     """Typed access to a parsed TOML document; every failure names the file and the key."""
 
@@ -116,6 +134,9 @@ class _Reader:
         if kind == "num":
             if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
                 self.fail(f"'{key}' must be a finite number, got {v!r}")
+            lo, hi = _BOUNDS.get(key.rsplit(".", 1)[-1].split("[")[0], (-math.inf, math.inf))
+            if not lo <= v <= hi:
+                self.fail(f"'{key}' = {v!r} is outside the plausible range {lo:g} .. {hi:g}")
             return float(v)
         if kind == "date":
             if isinstance(v, str):
@@ -288,13 +309,10 @@ def packaged_certificates() -> list[str]:
 def load_certificate(path_or_name) -> ProbeCertificate | DipoleCertificate:
     """Load a certificate from a file path, or a packaged one by bare name."""
     text_name = str(path_or_name)
-    if isinstance(path_or_name, Path) or "/" in text_name or text_name.endswith(".toml"):
+    if (isinstance(path_or_name, Path) or "/" in text_name or text_name.endswith(".toml")
+            or Path(text_name).exists()):
         path = Path(path_or_name)
-        try:
-            text = path.read_text(encoding="utf-8")
-        except (OSError, UnicodeDecodeError) as exc:
-            raise CertificateError(f"{path}: cannot read certificate ({exc.__class__.__name__})") from None
-        return parse_certificate(text, str(path))
+        return parse_certificate(read_input_text(path, "certificate", CertificateError), str(path))
     found = _packaged()
     if text_name not in found:
         known = ", ".join(sorted(found)) or "none"

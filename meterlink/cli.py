@@ -10,7 +10,11 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import pkgutil
+import re
+import signal
+import sqlite3
 import sys
 
 from meterlink import __version__
@@ -52,22 +56,69 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     """Entry point: parse, dispatch, and turn known errors into one line on stderr."""
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_args(_protect_negative_positionals(sys.argv[1:] if argv is None else argv))
     if not getattr(args, "_run", None):
         parser.print_help()
         return 1
     try:
-        return int(args._run(args) or 0)
+        code = int(args._run(args) or 0)
+        sys.stdout.flush()           # a reader that went away shows here, inside the handler below
+        return code
+    except BrokenPipeError:
+        return _broken_pipe()
+    except SystemExit as exc:
+        if isinstance(exc.__context__, BrokenPipeError):   # rich's own handling of a closed stdout
+            return _broken_pipe()
+        raise
     except MeterlinkError as exc:
         print(f"meterlink {args.command}: error: {exc}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print(f"meterlink {args.command}: interrupted", file=sys.stderr)
         return 130
+    except sqlite3.DatabaseError as exc:
+        # a damaged page met in the middle of a command: name the file and say what to do
+        from meterlink.storage import describe_sqlite_error
+
+        db = getattr(args, "db", None) or "the database"
+        print(f"meterlink {args.command}: error: {describe_sqlite_error(db, exc)}", file=sys.stderr)
+        return 2
     except (OSError, ValueError) as exc:
         # Last line of defence: a one-line message rather than a traceback.
         print(f"meterlink {args.command}: error: {exc}", file=sys.stderr)
         return 2
+
+
+def _broken_pipe() -> int:
+    """The reader of our output went away (``| head``): stop quietly, as a program killed by SIGPIPE.
+
+    Python ignores SIGPIPE, so a write fails with EPIPE instead; the usual convention is a quiet
+    exit with status 128 + SIGPIPE. stdout is pointed at /dev/null so that the interpreter's own
+    flush at exit does not complain a second time.
+    """
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):   # stdout without a file descriptor (captured): nothing to redirect
+        pass
+    return 128 + signal.SIGPIPE
+
+
+def _protect_negative_positionals(argv: list[str]) -> list[str]:
+    """Let a negative-looking value such as ``limits -5MHz`` reach its command, which explains the
+    problem, instead of argparse taking it for an unknown option: the command's one positional
+    value is moved to the end, after ``--``, so options before and after it still work."""
+    out = list(argv)
+    if out and out[0] == "limits":
+        for i, a in enumerate(out[1:], 1):
+            if a == "--":
+                break
+            if _NEGATIVE.match(a) and (i == 1 or not out[i - 1].startswith("--")):
+                return out[:i] + out[i + 1:] + ["--", a]
+    return out
+
+
+_NEGATIVE = re.compile(r"^-[0-9.]")
 
 
 if __name__ == "__main__":  # pragma: no cover

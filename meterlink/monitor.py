@@ -131,6 +131,8 @@ class Monitor:
         self.log = log or (lambda line: None)
         self._stop = threading.Event()
         self._mono0, self._utc0 = time.monotonic(), time.time()
+        for m in station.meters:           # an unusable certificate is refused before the database is touched
+            load_certificate(m.certificate)
         self.store = Store(station.database)
         self.conn = self.store.db.conn
         with self.store.write():

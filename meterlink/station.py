@@ -8,6 +8,7 @@ See docs/station-file.md.
 
 from __future__ import annotations
 
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -19,6 +20,7 @@ FORMAT = "meterlink-station/1"
 UNITS = ("v_per_m", "pct_field", "pct_power")
 CONVENTIONS = ("field", "power")
 DEFAULT_WINDOWS_S = (360.0, 1800.0, 86400.0)
+MAX_WINDOW_S = 366 * 86400.0   # the longest averaging window or health interval a station file may ask for
 
 
 class StationFileError(MeterlinkError):
@@ -184,9 +186,9 @@ class _Doc:
         try:
             f = parse_frequency_hz(v) if isinstance(v, str) else float(v)
         except (ValueError, MeterlinkError) as exc:
-            self.fail(key, f"not a frequency: {exc}")
-        if not f > 0:
-            self.fail(key, "must be > 0")
+            self.fail(key, str(exc))
+        if not 0 < f <= 3e12:       # nothing above 3 THz: the standards end at 300 GHz
+            self.fail(key, f"must be > 0 Hz and at most 3 THz, got {f!r}")
         return f
 
     def band(self, key: str):
@@ -223,7 +225,7 @@ def _meter(d: _Doc, base: Path, default_interval: float) -> MeterConfig:
     m = MeterConfig(name=d.get("name", "str"), port=d.get("port", "str"), certificate=cert,
                     interval_s=d.get("interval_s", "num", default_interval, lo=0.01, hi=3600.0),
                     freq_hz=d.freq("freq"), band_hz=d.band("band"),
-                    baudrate=d.get("baudrate", "int", 115200, positive=True),
+                    baudrate=d.get("baudrate", "int", 115200, positive=True, hi=10_000_000),
                     bands=tuple(_bands(d)))
     if m.freq_hz is not None and m.band_hz is not None:
         d.fail("band", "give either freq or band, not both")
@@ -275,7 +277,7 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
     name = st.get("name", "str")
     lat = st.get("latitude_deg", "num", None, lo=-90.0, hi=90.0)
     lon = st.get("longitude_deg", "num", None, lo=-180.0, hi=180.0)
-    elev = st.get("elevation_m", "num", None)
+    elev = st.get("elevation_m", "num", None, lo=-11000.0, hi=9000.0)
     db = Path(st.get("database", "str"))
     tz = st.get("timezone", "str", "UTC")
     try:
@@ -283,7 +285,7 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
         ZoneInfo(tz)
     except Exception:  # noqa: BLE001 - any failure means the name is unusable here
         st.fail("timezone", f"unknown time zone {tz!r}")
-    heartbeat = st.get("heartbeat_s", "num", 10.0, positive=True)
+    heartbeat = st.get("heartbeat_s", "num", 10.0, positive=True, hi=86400.0)
     st.done()
 
     a = top.sub("assessment", required=True)
@@ -296,9 +298,13 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
     if conv not in CONVENTIONS:
         a.fail("convention", f"expected one of {', '.join(CONVENTIONS)}, got {conv!r}")
     wins = a.get("windows_s", "list", list(DEFAULT_WINDOWS_S))
-    if not wins or any(isinstance(w, bool) or not isinstance(w, (int, float)) or w <= 0 for w in wins):
+    if not wins:
         a.fail("windows_s", "expected a non-empty list of positive seconds")
-    block_s = a.get("block_s", "num", 360.0, positive=True)
+    for i, w in enumerate(wins):
+        # math.isfinite also refuses nan, which would pass "w <= 0" and fail later in round()
+        if isinstance(w, bool) or not isinstance(w, (int, float)) or not math.isfinite(w) or not 0 < w <= MAX_WINDOW_S:
+            a.fail(f"windows_s[{i}]", f"expected positive seconds up to {MAX_WINDOW_S:g} (a year), got {w!r}")
+    block_s = a.get("block_s", "num", 360.0, positive=True, hi=86400.0)
     for w in wins:
         if abs(w / block_s - round(w / block_s)) > 1e-9:
             a.fail("windows_s", f"window {w:g} s is not a whole number of {block_s:g} s blocks")
@@ -322,23 +328,24 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
     alarms = tuple(_alarm(d, seen, windows) for d in top.subs("alarm"))
 
     h = top.sub("health")
-    health = HealthRules(max_gap_s=h.get("max_gap_s", "num", 10.0, positive=True),
-                         stuck_s=h.get("stuck_s", "num", 600.0, positive=True),
+    health = HealthRules(max_gap_s=h.get("max_gap_s", "num", 10.0, positive=True, hi=MAX_WINDOW_S),
+                         stuck_s=h.get("stuck_s", "num", 600.0, positive=True, hi=MAX_WINDOW_S),
                          battery_low_pct=h.get("battery_low_pct", "num", 20.0, lo=0.0, hi=100.0),
-                         temp_min_c=h.get("temp_min_c", "num", -20.0),
-                         temp_max_c=h.get("temp_max_c", "num", 55.0),
-                         drift_max_ppm=h.get("drift_max_ppm", "num", 100.0, positive=True),
-                         cert_warn_days=h.get("cert_warn_days", "int", 30, lo=0))
+                         temp_min_c=h.get("temp_min_c", "num", -20.0, lo=-100.0, hi=150.0),
+                         temp_max_c=h.get("temp_max_c", "num", 55.0, lo=-100.0, hi=150.0),
+                         drift_max_ppm=h.get("drift_max_ppm", "num", 100.0, positive=True, hi=1e9),
+                         cert_warn_days=h.get("cert_warn_days", "int", 30, lo=0, hi=3650))
     if health.temp_max_c <= health.temp_min_c:
         h.fail("temp_max_c", "must exceed temp_min_c")
     h.done()
     r = top.sub("retention")
-    raw_days = r.get("raw_days", "num", 90.0, positive=True)
-    retention = Retention(raw_days=raw_days, status_days=r.get("status_days", "num", raw_days, positive=True),
-                          events_days=r.get("events_days", "num", 365.0, positive=True),
-                          derived_days=r.get("derived_days", "num", 0.0, lo=0.0),
-                          check_every_s=r.get("check_every_s", "num", 3600.0, positive=True),
-                          chunk_rows=r.get("chunk_rows", "int", 20000, positive=True))
+    raw_days = r.get("raw_days", "num", 90.0, positive=True, hi=36500.0)
+    retention = Retention(raw_days=raw_days,
+                          status_days=r.get("status_days", "num", raw_days, positive=True, hi=36500.0),
+                          events_days=r.get("events_days", "num", 365.0, positive=True, hi=36500.0),
+                          derived_days=r.get("derived_days", "num", 0.0, lo=0.0, hi=36500.0),
+                          check_every_s=r.get("check_every_s", "num", 3600.0, positive=True, hi=MAX_WINDOW_S),
+                          chunk_rows=r.get("chunk_rows", "int", 20000, positive=True, hi=10_000_000))
     if 0 < retention.derived_days < raw_days:
         r.fail("derived_days", f"must be 0 (keep for ever) or at least raw_days ({raw_days:g}), "
                f"got {retention.derived_days:g}")
@@ -353,9 +360,7 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
 
 def load_station(path) -> Station:
     """Read and validate a station file."""
+    from meterlink.errors import read_input_text
+
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise StationFileError(f"{p}: cannot read station file: {exc.__class__.__name__}") from None
-    return parse_station(text, p)
+    return parse_station(read_input_text(p, "station", StationFileError), p)

@@ -10,10 +10,12 @@ from __future__ import annotations
 import contextlib
 import itertools
 import json
+import os
 import sqlite3
 import sys
 import threading
 import time
+import urllib.parse
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Iterable, Mapping
@@ -51,27 +53,127 @@ class ReadingArrays:
         return int(self.ids.size)
 
 
-class Store:
-    """A meterlink database file: open (creating or migrating it) and read/write through methods."""
+class DamagedDatabaseError(StorageError):
+    """A database file whose pages SQLite cannot read ("malformed"): see `sessions --verify`."""
 
-    def __init__(self, path: str | Path):
+
+SQLITE_HEADER = b"SQLite format 3\x00"
+
+
+def check_database_file(path: Path, must_exist: bool, allow_empty: bool) -> bool:
+    """Whether path exists as an SQLite file; StorageError naming the path if it is anything else.
+
+    Looks at the file's first bytes before SQLite does, so that a 0-byte file or a stray PNG given
+    to a command that only reads is refused instead of being turned into a database.
+    """
+    name = str(path)
+    if path.is_dir():
+        raise StorageError(f"database path {name!r} is a directory")
+    if not path.exists():
+        if must_exist:
+            raise StorageError(f"no database at {name!r}")
+        return False
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(len(SQLITE_HEADER))
+    except OSError as exc:
+        raise StorageError(f"cannot read database {name!r}: {exc.strerror}") from None
+    if not head:
+        if allow_empty:
+            return True
+        raise StorageError(f"{name!r} is empty (0 bytes), not a meterlink database")
+    if head != SQLITE_HEADER:
+        raise StorageError(f"{name!r} is not an SQLite database (its first bytes are not an SQLite header)")
+    return True
+
+
+def open_readonly(path: str | Path) -> sqlite3.Connection:
+    """A read-only (``mode=ro``) connection to an existing SQLite file; StorageError naming it otherwise."""
+    p = Path(path)
+    check_database_file(p, must_exist=True, allow_empty=False)
+    uri = "file:" + urllib.parse.quote(str(p.resolve())) + "?mode=ro"
+    try:
+        conn = sqlite3.connect(uri, uri=True, check_same_thread=False, timeout=10.0)
+        conn.execute("select count(*) from sqlite_master").fetchone()   # the schema must be readable
+    except sqlite3.DatabaseError as exc:
+        raise describe_sqlite_error(p, exc) from None
+    return conn
+
+
+def describe_sqlite_error(path: str | Path, exc: sqlite3.Error) -> StorageError:
+    """The StorageError a user should see for an sqlite3 error on the file at path."""
+    text = str(exc)
+    if "malformed" in text or "not a database" in text or "disk I/O" in text:
+        return DamagedDatabaseError(f"database {str(path)!r} is damaged ({text}); 'meterlink sessions --db "
+                                    f"{path} --verify' says what can be salvaged")
+    return StorageError(f"cannot use database {str(path)!r}: {text}")
+
+
+class Store:
+    """A meterlink database file: open (creating or migrating it) and read/write through methods.
+
+    readonly: open with SQLite's ``mode=ro`` (commands that only read; the file must exist and is
+    never changed). create=False: the file must already exist (commands that add to a recording).
+    A file this Store created is removed again if the ``with`` block fails before anything was stored.
+    """
+
+    def __init__(self, path: str | Path, *, readonly: bool = False, create: bool = True):
         self.path = Path(path)
+        self.readonly = readonly
+        self.created = False
         self._lock = threading.RLock()
-        try:
-            if self.path.is_dir():
-                raise StorageError(f"database path {str(self.path)!r} is a directory")
-            conn = sqlite3.connect(str(self.path), check_same_thread=False, timeout=10.0)
-        except sqlite3.Error as exc:
-            raise StorageError(f"cannot open database {str(self.path)!r}: {exc}") from None
+        existed = check_database_file(self.path, must_exist=readonly or not create,
+                                      allow_empty=create and not readonly)
+        if readonly:
+            conn = open_readonly(self.path)
+        else:
+            try:
+                conn = sqlite3.connect(str(self.path), check_same_thread=False, timeout=10.0)
+            except sqlite3.Error as exc:
+                raise StorageError(f"cannot open database {str(self.path)!r}: {exc}") from None
+            self.created = not existed
         try:
             self.db = sqlite_utils.Database(conn)
             self._prepare()
         except sqlite3.DatabaseError as exc:
             conn.close()
-            raise StorageError(f"cannot use database {str(self.path)!r}: {exc}") from None
-        except MeterlinkError:
+            self._remove_if_created()
+            raise describe_sqlite_error(self.path, exc) from None
+        except BaseException:
             conn.close()
+            self._remove_if_created()
             raise
+
+    def _remove_if_created(self) -> None:
+        """Delete the file (and its -wal/-shm) if this Store created it: a failed command leaves none."""
+        if not self.created:
+            return
+        for suffix in ("", "-wal", "-shm", "-journal"):
+            with contextlib.suppress(OSError):
+                Path(str(self.path) + suffix).unlink()
+        self.created = False
+
+    def holds_nothing(self) -> bool:
+        """True when no table but meta holds a row (a file just created, into which nothing was stored)."""
+        with self._lock:
+            for name in self.db.table_names():
+                if name == "meta" or name.startswith("sqlite_"):
+                    continue
+                if self.db.execute(f"select exists(select 1 from [{name}])").fetchone()[0]:
+                    return False
+        return True
+
+    def check_sound(self) -> None:
+        """DamagedDatabaseError unless SQLite's quick check passes (reads every page): before writing."""
+        with self._lock:
+            try:
+                rows = [r[0] for r in self.db.execute("PRAGMA quick_check").fetchall()]
+            except sqlite3.DatabaseError as exc:
+                rows = [str(exc)]
+        if rows != ["ok"]:
+            raise DamagedDatabaseError(
+                f"database {str(self.path)!r} is damaged ({rows[0]}{' ...' if len(rows) > 1 else ''}); refusing "
+                f"to write into it: 'meterlink sessions --db {self.path} --verify' says what can be salvaged")
 
     # -- schema --------------------------------------------------------------------------------
     def _prepare(self) -> None:
@@ -88,6 +190,10 @@ class Store:
             if version > SCHEMA_VERSION:
                 raise StorageError(f"{str(self.path)!r} has schema version {version}, newer than this "
                                    f"meterlink ({SCHEMA_VERSION}): upgrade meterlink")
+        if self.readonly:
+            if version < SCHEMA_VERSION:
+                self._upgrade_then_reopen(version)
+            return
         db.enable_wal()
         db.execute("PRAGMA synchronous=NORMAL")
         db.execute("PRAGMA foreign_keys=ON")
@@ -102,6 +208,15 @@ class Store:
                     continue
                 MIGRATIONS[v](db)
                 db["meta"].upsert({"key": "schema_version", "value": str(v)}, pk="key")
+
+    def _upgrade_then_reopen(self, version: int) -> None:
+        """A read-only open of a file of an older schema: upgrade it once (if writable), then read it."""
+        self.db.conn.close()
+        if not os.access(self.path, os.W_OK):
+            raise StorageError(f"{str(self.path)!r} has schema version {version}, older than this meterlink "
+                               f"({SCHEMA_VERSION}), and is read-only: copy it somewhere writable to upgrade it")
+        Store(self.path, create=False).close()
+        self.db = sqlite_utils.Database(open_readonly(self.path))
 
     def _stored_version(self) -> int:
         if "meta" not in self.db.table_names():
@@ -148,8 +263,17 @@ class Store:
     def __enter__(self) -> "Store":
         return self
 
-    def __exit__(self, *exc) -> None:
+    def __exit__(self, exc_type, exc, tb) -> None:
+        failed_empty = exc_type is not None and self.created and self._holds_nothing_quietly()
         self.close()
+        if failed_empty:
+            self._remove_if_created()
+
+    def _holds_nothing_quietly(self) -> bool:
+        try:
+            return self.holds_nothing()
+        except sqlite3.Error:
+            return False
 
     # -- devices and sessions ------------------------------------------------------------------
     def device_id(self, model: str, serial: str, probe_serial: str = "", cert_ref: str = "",

@@ -14,6 +14,7 @@ import math
 import sqlite3
 import threading
 import time
+from pathlib import Path
 
 import pytest
 from scipy.constants import physical_constants
@@ -152,9 +153,11 @@ def test_status_uses_station_convention(db, capsys, monkeypatch):
 
 
 @pytest.mark.parametrize("argv,msg", [
-    (["status", "--db", "DIR/absent.db"], "no such database file"),
+    (["status", "--db", "DIR/absent.db"], "no database at"),
     (["stats", "--db", "DB", "--from", "yesterday"], "--from 'yesterday': expected an ISO date"),
-    (["stats", "--db", "DB", "--from", "2030-01-02", "--to", "2030-01-01"], "--to must be later than --from"),
+    (["stats", "--db", "DB", "--from", "2030-01-02", "--to", "2030-01-01"],
+     "--to 2030-01-01 must be later than --from 2030-01-02"),
+    (["export", "--db", "DB", "--from", "2099-01-01"], "--from 2099-01-01 is not before the end of the newest block"),
     (["export", "--db", "EMPTY"], "no monitoring station record"),
     (["export", "--db", "DB", "--out", "DIR/no/such/dir/x.csv"], "cannot write"),
 ])
@@ -165,3 +168,20 @@ def test_bad_input_is_one_line(db, tmp_path, capsys, argv, msg):
     assert main(argv) == 2
     err = capsys.readouterr().err.strip()
     assert err.count("\n") == 0 and msg in err and "Traceback" not in err
+
+
+@pytest.mark.parametrize("cmd", ["status", "stats", "export"])
+def test_a_damaged_station_file_is_reported_as_damaged_not_as_missing_a_station(db, tmp_path, capsys, cmd):
+    # garbage over the page of mon_station: before, this answered "no monitoring station record"
+    src = sqlite3.connect(db)
+    src.execute("pragma wal_checkpoint(truncate)")
+    page = src.execute("select rootpage from sqlite_master where name = 'mon_station'").fetchone()[0]
+    src.close()
+    bad = tmp_path / "damaged.db"
+    bad.write_bytes(Path(db).read_bytes())
+    with open(bad, "r+b") as fh:
+        fh.seek((page - 1) * 4096)
+        fh.write(bytes(range(256)) * 16)
+    assert main([cmd, "--db", str(bad)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "damaged" in err and str(bad) in err and "no monitoring station" not in err

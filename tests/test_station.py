@@ -75,7 +75,7 @@ def test_alarm_on_one_of_the_station_windows_is_accepted(tmp_path):
 def test_not_toml_and_missing_file(tmp_path):
     with pytest.raises(StationFileError, match="not valid TOML"):
         parse_station("format = ", tmp_path / "x.toml")
-    with pytest.raises(StationFileError, match="cannot read station file"):
+    with pytest.raises(StationFileError, match="absent.toml: no such station file"):
         load_station(tmp_path / "absent.toml")
 
 

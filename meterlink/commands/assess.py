@@ -37,11 +37,11 @@ def run(args) -> int:
         raise MeterlinkError(f"unknown standard {args.standard!r} (known: {', '.join(standards())})")
     rule = get_rule(args.rule)
     freq, band = parse_declared(args.freq, args.band)
-    from pathlib import Path
-
-    if not Path(args.db).is_file():
-        raise MeterlinkError(f"no database at {args.db!r}")
-    with Store(args.db) as store:
+    if args.certificate:        # an unusable certificate is refused before anything is written
+        from meterlink.certificate import load_certificate
+        load_certificate(args.certificate)
+    with Store(args.db, create=False) as store:
+        store.check_sound()      # never write into a damaged file
         sid = args.session if args.session is not None else latest_session(store)
         session = store.session(sid)
         # the rule is recorded before anything is computed, so it cannot be chosen after the fact

@@ -12,12 +12,14 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
+    import sqlite3
     import sys
     from pathlib import Path
 
     from meterlink.cli import SAFETY_LINE
     from meterlink.commands.stats import open_station
     from meterlink.errors import MeterlinkError
+    from meterlink.storage import describe_sqlite_error
     from meterlink.publish import header_lines, series_rows, statistics, to_csv, to_json
 
     conn, t0, t1 = open_station(args)
@@ -29,6 +31,8 @@ def run(args) -> int:
             doc = {"about": header_lines(st, SAFETY_LINE), "caution": SAFETY_LINE,
                    "summaries": statistics(conn, t0, t1), "series_6min": rows}
             text = to_json(doc)
+    except sqlite3.DatabaseError as exc:
+        raise describe_sqlite_error(args.db, exc) from None
     finally:
         conn.close()
     if args.out:

@@ -185,6 +185,8 @@ def run(args) -> int:
     from meterlink.limits import LimitsError
     from meterlink.units import parse_frequency_hz
 
+    if args.frequency.strip().startswith("-"):
+        raise LimitsError(f"FREQUENCY {args.frequency!r}: a frequency must be positive (e.g. 5MHz)")
     try:
         freq_hz = parse_frequency_hz(args.frequency)
     except ValueError as exc:

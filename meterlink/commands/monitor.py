@@ -40,17 +40,56 @@ def run(args) -> int:
     if not args.time_scale > 0:
         raise MeterlinkError(f"--time-scale {args.time_scale}: must be positive")
 
-    def log(line: str) -> None:
-        if not args.quiet:
-            print(line, flush=True)
+    pipe_closed = []
+    stop_asked = []          # a signal or a closed pipe before the Monitor exists is kept here
+    mon = None
 
-    mon = Monitor(st, time_scale=args.time_scale, log=log)
-    log(f"monitoring {st.name} ({len(st.meters)} meter(s)) into {st.database}. {SAFETY_LINE}")
-    old = {s: signal.signal(s, lambda *_: mon.stop()) for s in (signal.SIGINT, signal.SIGTERM)}
+    def stop(*_) -> None:
+        stop_asked.append(True)
+        if mon is not None:
+            mon.stop()
+
+    def log(line: str) -> None:
+        if args.quiet or pipe_closed:
+            return
+        try:
+            print(line, flush=True)
+        except BrokenPipeError:
+            # the reader went away (`monitor | tee` ended): as SIGPIPE would, end the run, but
+            # cleanly, so that what was acquired is stored and the station is marked stopped
+            pipe_closed.append(True)
+            _stdout_to_devnull()
+            stop()
+
+    # handlers first: a Ctrl-C while the station is being opened must still end in a clean stop
+    old = {s: signal.signal(s, stop) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
+        mon = Monitor(st, time_scale=args.time_scale, log=log)
+        if stop_asked:
+            mon.stop()
+        log(f"monitoring {st.name} ({len(st.meters)} meter(s)) into {st.database}. {SAFETY_LINE}")
         mon.run()
     finally:
         for s, h in old.items():
             signal.signal(s, h)
-    print("monitor stopped", file=sys.stderr if args.quiet else sys.stdout, flush=True)
-    return 0
+    if pipe_closed:
+        print("meterlink monitor: standard output closed; monitor stopped", file=sys.stderr, flush=True)
+        return 128 + signal.SIGPIPE
+    if args.quiet:
+        print("monitor stopped", file=sys.stderr, flush=True)
+        return 0
+    log("monitor stopped")
+    return 128 + signal.SIGPIPE if pipe_closed else 0
+
+
+def _stdout_to_devnull() -> None:
+    """Point stdout at /dev/null, so no later write (nor the interpreter's flush at exit) fails again."""
+    import os
+    import sys
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):
+        pass

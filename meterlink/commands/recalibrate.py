@@ -18,21 +18,18 @@ def add_arguments(parser) -> None:
 
 def run(args) -> int:
     import json
-    from pathlib import Path
 
     import numpy as np
 
     from meterlink.certificate import load_certificate
     from meterlink.commands.record import parse_declared
-    from meterlink.errors import MeterlinkError
     from meterlink.processing import FieldSeries, apply_certificate, latest_session
     from meterlink.storage import Store
 
-    if not Path(args.db).is_file():
-        raise MeterlinkError(f"no database at {args.db!r}")
     cert = load_certificate(args.certificate)
     freq, band = parse_declared(args.freq, args.band)
-    with Store(args.db) as store:
+    with Store(args.db, create=False) as store:
+        store.check_sound()      # never write into a damaged file
         sid = args.session if args.session is not None else latest_session(store)
         before = store.calibrations(sid)
         series = apply_certificate(store, sid, cert, freq_hz=freq, band=band)

@@ -26,13 +26,10 @@ def run(args) -> int:
         sid = int(args.session)
     except ValueError:
         raise MeterlinkError(f"--session {args.session!r} is not a whole number") from None
-    from pathlib import Path
 
     from meterlink.storage import Store
 
-    if not Path(args.db).is_file():
-        raise MeterlinkError(f"database {args.db!r} does not exist")
-    with Store(args.db) as store:
+    with Store(args.db, readonly=True) as store:
         kind = store.session(sid)["kind"]
     if kind == "survey":
         html = write_report(args.db, sid, args.out)

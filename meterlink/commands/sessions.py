@@ -14,25 +14,29 @@ def add_arguments(parser) -> None:
     parser.add_argument("--verify", action="store_true",
                         help="check the file instead: SQLite's integrity check and the readings' span index "
                              "(reads every row; exit status 1 on a problem)")
+    parser.add_argument("--salvage", metavar="OUT", help="copy every session that still reads whole (and every other "
+                        "table that does) from a damaged file into the new file OUT")
     parser.add_argument("--json", action="store_true", help="print JSON")
 
 
 def run(args) -> int:
-    from pathlib import Path
+    import sqlite3
 
-    from meterlink.errors import MeterlinkError
-    from meterlink.storage import Store
+    from meterlink.storage import Store, describe_sqlite_error
 
-    if not Path(args.db).is_file():
-        raise MeterlinkError(f"no database at {args.db!r}")
-    with Store(args.db) as store:
-        if args.verify:
-            return _verify(store, args)
-        if args.events is not None:
-            store.session(args.events)          # one-line error if there is no such session
-            rows = store.events(args.events, args.kind)
-        else:
-            rows = store.session_overview()
+    if args.salvage:
+        return _salvage(args)
+    if args.verify:
+        return _verify(args)
+    try:
+        with Store(args.db, readonly=True) as store:
+            if args.events is not None:
+                store.session(args.events)          # one-line error if there is no such session
+                rows = store.events(args.events, args.kind)
+            else:
+                rows = store.session_overview()
+    except sqlite3.DatabaseError as exc:    # a damaged page met while reading
+        raise describe_sqlite_error(args.db, exc) from None
     if args.json:
         print(json.dumps(rows, indent=2, default=str))
         return 0
@@ -43,9 +47,14 @@ def run(args) -> int:
     return 0
 
 
-def _verify(store, args) -> int:
-    if args.json:
-        problems = store.verify()
+def _verify(args) -> int:
+    """The answer to "is my file sound?": damage is the answer (exit 1), never a crash."""
+    from meterlink.salvage import examine
+
+    import sys
+
+    if args.json or not sys.stdout.isatty():
+        ex = examine(args.db)
     else:  # both checks read the whole file: on a station's year that takes a while
         from rich.progress import Progress
 
@@ -54,22 +63,56 @@ def _verify(store, args) -> int:
 
             def step(stage, done, total):
                 prog.update(task, description=stage, completed=done, total=max(total, 1))
-            problems = store.verify(step)
+            ex = examine(args.db, step)
     if args.json:
-        print(json.dumps({"database": str(store.path), "sound": not problems, "problems": problems}, indent=2))
-    else:
-        from rich.console import Console
-        from rich.markup import escape
+        print(json.dumps(ex.as_dict(), indent=2))
+        return 1 if ex.problems else 0
+    from rich.console import Console
+    from rich.markup import escape
 
-        con = Console()
-        if problems:
-            con.print(f"[bold red]{len(problems)} problem(s)[/] in {escape(str(store.path))}:")
-            for p in problems:
-                con.print(f"  - {escape(p)}")
+    con = Console()
+    path = escape(str(args.db))
+    if not ex.problems:
+        con.print(f"[green]sound[/]: {path} passes SQLite's integrity check and "
+                  f"its readings' span index agrees with the rows")
+        return 0
+    con.print(f"[bold red]{len(ex.problems)} problem(s)[/] in {path}:")
+    for p in ex.problems[:20]:
+        con.print(f"  - {escape(p)}")
+    if len(ex.problems) > 20:
+        con.print(f"  ... and {len(ex.problems) - 20} more (--json lists all)")
+    if not ex.schema_readable:
+        con.print("The list of sessions cannot be read: meterlink can salvage nothing from this file.")
+        return 1
+    whole = [s for s in ex.sessions if s.intact]
+    for s in ex.sessions:
+        if s.intact:
+            n = s.rows.get("readings", 0)
+            con.print(f"  session {s.session_id}: reads whole ({n} readings, {s.rows.get('events', 0)} events)")
         else:
-            con.print(f"[green]sound[/]: {escape(str(store.path))} passes SQLite's integrity check and "
-                      f"its readings' span index agrees with the rows")
-    return 1 if problems else 0
+            part = (f"; {s.readings_readable} of its {s.readings_indexed} readings still read"
+                    if s.readings_indexed else "")
+            con.print(f"  session {s.session_id}: [red]damaged[/] ({escape(s.error or '')}){part}")
+    if whole:
+        con.print(f"{len(whole)} of {len(ex.sessions)} session(s) read whole: 'meterlink sessions --db {path} "
+                  f"--salvage NEW.db' copies them into a new file.")
+    else:
+        con.print("No session reads whole.")
+    return 1
+
+
+def _salvage(args) -> int:
+    from meterlink.salvage import salvage
+
+    ex, copied = salvage(args.db, args.salvage)
+    lost = [s.session_id for s in ex.sessions if not s.intact]
+    if args.json:
+        print(json.dumps({"database": str(args.db), "out": str(args.salvage), "sessions_copied": copied,
+                          "sessions_left": lost, "problems": ex.problems}, indent=2))
+    else:
+        print(f"{len(copied)} session(s) copied into {args.salvage}: {', '.join(map(str, copied)) or 'none'}; "
+              f"left behind (damaged): {', '.join(map(str, lost)) or 'none'}")
+    return 0
 
 
 _SENSOR = {1: "E probe", 2: "H probe", 3: "dipole + receiver"}

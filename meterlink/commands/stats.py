@@ -32,28 +32,44 @@ def span(conn, args):
     t1 = parse_when(args.t_to, "--to") if args.t_to else (last or time.time() + 1.0)
     if not t1 > t0:
         from meterlink.errors import MeterlinkError
-        raise MeterlinkError("--to must be later than --from")
+        from meterlink.publish import iso
+        if args.t_to and args.t_from:
+            raise MeterlinkError(f"--to {args.t_to} must be later than --from {args.t_from}")
+        if args.t_to:
+            raise MeterlinkError(f"--to {args.t_to} is not later than the first block ({iso(t0)}): nothing to show")
+        raise MeterlinkError(f"--from {args.t_from} is not before the end of the newest block ({iso(t1)}): "
+                             f"nothing to show")
     return t0, t1
 
 
-def open_station(args):
-    """Read-only connection to a station database with its --from/--to span; one-line errors."""
+def open_station(args, with_span=True):
+    """Read-only connection to a station database (with its --from/--to span); one-line errors.
+
+    A file that cannot be opened or read is reported as such (damaged, not a database, ...), and
+    only a readable meterlink file without a station in it gets "no monitoring station record".
+    """
     import sqlite3
-    from pathlib import Path
 
     from meterlink.errors import MeterlinkError
     from meterlink.publish import station_info
+    from meterlink.storage import describe_sqlite_error, open_readonly
 
-    if not Path(args.db).is_file():
-        raise MeterlinkError(f"{args.db}: no such database file")
-    conn = sqlite3.connect(f"file:{args.db}?mode=ro", uri=True)
+    conn = open_readonly(args.db)
     try:
-        station_info(conn)
-        t0, t1 = span(conn, args)
+        try:
+            has = conn.execute("select 1 from sqlite_master where type = 'table' and name = 'mon_station'").fetchone()
+            if not has:
+                raise MeterlinkError(f"{args.db}: database has no monitoring station record (was it written by "
+                                     f"'meterlink monitor'?)")
+            conn.execute("select * from mon_station").fetchall()    # readable, or say so below
+            station_info(conn)
+            span_ = span(conn, args) if with_span else (None, None)
+        except sqlite3.DatabaseError as exc:
+            raise describe_sqlite_error(args.db, exc) from None
     except BaseException:
         conn.close()
         raise
-    return conn, t0, t1
+    return (conn, *span_)
 
 
 def run(args) -> int:

@@ -28,18 +28,19 @@ def storage_state(conn, station: str) -> dict | None:
 def run(args) -> int:
     import sqlite3
     import time
-    from pathlib import Path
 
     from meterlink.cli import SAFETY_LINE
-    from meterlink.errors import MeterlinkError
     from meterlink.publish import current_state, to_json
 
-    if not Path(args.db).is_file():
-        raise MeterlinkError(f"{args.db}: no such database file")
-    conn = sqlite3.connect(f"file:{args.db}?mode=ro", uri=True)
+    from meterlink.commands.stats import open_station
+    from meterlink.storage import describe_sqlite_error
+
+    conn, _, _ = open_station(args, with_span=False)
     try:
         s = current_state(conn, time.time())
         s["storage"] = storage_state(conn, s["station"])
+    except sqlite3.DatabaseError as exc:
+        raise describe_sqlite_error(args.db, exc) from None
     finally:
         conn.close()
     s["caution"] = SAFETY_LINE

@@ -134,12 +134,14 @@ class LabSession:
         raise LabError("a step needs its reference field or a net power")
 
 
-def _num(where, d, key, default=None):
+def _num(where, d, key, default=None, lo=None, hi=None):
     v = d.get(key, default)
     if v is None:
         raise LabError(f"{where}: missing key '{key}'")
     if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
         raise LabError(f"{where}: '{key}' must be a finite number, got {v!r}")
+    if lo is not None and v < lo or hi is not None and v > hi:
+        raise LabError(f"{where}: '{key}' = {v!r} must be within [{lo:g}, {hi:g}]")
     return float(v)
 
 
@@ -185,35 +187,49 @@ def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
         raise LabError(f"{where}: due date {due} is not after calibration date {cal_date}")
     try:
         method = FieldMethod(kind=_str(where, m, "kind", "tem-cell"),
-                             impedance_ohm=_num(where, m, "impedance_ohm", 50.0),
-                             spacing_m=_num(where, m, "spacing_m", 0.15), gain_dbi=_num(where, m, "gain_dbi", 0.0),
-                             distance_m=_num(where, m, "distance_m", 1.0), description=str(m.get("description", "")))
+                             impedance_ohm=_num(where, m, "impedance_ohm", 50.0, 0.0, 1e4),
+                             spacing_m=_num(where, m, "spacing_m", 0.15, -1.0, 100.0),
+                             gain_dbi=_num(where, m, "gain_dbi", 0.0, -50.0, 100.0),
+                             distance_m=_num(where, m, "distance_m", 1.0, -1.0, 1e4),
+                             description=str(m.get("description", "")))
     except LabError:
         raise
     except MeterlinkError as exc:
         raise LabError(f"{where}: {exc}") from None
     budget = d.get("budget", {})
     if not isinstance(budget, dict) or any(not isinstance(v, (int, float)) or isinstance(v, bool)
-                                           for v in budget.values()):
-        raise LabError(f"{where}: 'budget' must be a table of numbers")
+                                           or not math.isfinite(v) for v in budget.values()):
+        raise LabError(f"{where}: 'budget' must be a table of finite numbers")
+    operator = d.get("operator", "")
+    if not isinstance(operator, str):
+        raise LabError(f"{where}: 'operator' must be text, got {operator!r}")
+    rule = _str(where, d, "decision_rule", "guarded")
+    try:
+        from meterlink.verdict import get_rule
+        get_rule(rule)
+    except MeterlinkError as exc:
+        raise LabError(f"{where}: 'decision_rule': {exc}") from None
     return LabSession(
         probe_model=_str(where, probe, "model"), probe_serial=_str(where, probe, "serial"),
         lab=_str(where, cal, "lab"), certificate_number=_cert_number(where, cal),
         cal_date=cal_date, due_date=due, method=method,
-        ambient=Ambient(_num(where, amb, "temp_c", 23.0), _num(where, amb, "humidity_pct", 45.0)),
-        spec=ProbeSpec(_num(where, spec, "frequency_response_db", 1.0), _num(where, spec, "isotropy_db", 1.0),
-                       _num(where, spec, "linearity_db", 0.5)),
-        ref_freq_hz=_num(where, d, "ref_freq_hz", 1e9), operator=str(d.get("operator", "")),
-        decision_rule=str(d.get("decision_rule", "guarded")), budget={k: float(v) for k, v in budget.items()})
+        # bounds no calibration lab comes near (engineering judgement): they catch typing slips
+        ambient=Ambient(_num(where, amb, "temp_c", 23.0, -60.0, 100.0),
+                        _num(where, amb, "humidity_pct", 45.0, 0.0, 100.0)),
+        spec=ProbeSpec(_num(where, spec, "frequency_response_db", 1.0, 0.0, 30.0),
+                       _num(where, spec, "isotropy_db", 1.0, 0.0, 30.0), _num(where, spec, "linearity_db", 0.5, 0.0, 30.0)),
+        ref_freq_hz=_num(where, d, "ref_freq_hz", 1e9, 1.0, 3e12), operator=operator,
+        decision_rule=rule, budget={k: float(v) for k, v in budget.items()})
 
 
 def load_session(path) -> LabSession:
     """Read a session TOML file (see docs/lab.md)."""
+    from meterlink.errors import read_input_text
+
     p = Path(path)
+    text = read_input_text(p, "lab session", LabError)
     try:
-        doc = tomllib.loads(p.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise LabError(f"{p}: cannot read session file ({exc.strerror})") from None
-    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
         raise LabError(f"{p}: not a valid TOML session file ({exc})".replace("\n", " ")) from None
     return session_from_dict(doc, str(p))

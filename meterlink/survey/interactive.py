@@ -74,7 +74,15 @@ def ask_plan(ask, ident=None) -> dict:
 
 
 def ask_point(ask, n: int, console=None):
-    """The next point, or None when the technician is done; re-asks after a bad entry."""
+    """The next point, or None when the technician is done (an empty label, or Ctrl-D at any of
+    the point's questions); re-asks after a bad entry."""
+    try:
+        return _ask_point(ask, n, console)
+    except EOFError:
+        return None
+
+
+def _ask_point(ask, n: int, console=None):
     while True:
         label = ask(f"Point {n} label (empty to finish)", default="")
         if not label.strip():
@@ -117,18 +125,28 @@ def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, *
         from meterlink.safetext import clean_text
         console.print(f"meter: {escape(clean_text(ident.model))} serial {escape(clean_text(ident.serial))}, "
                       f"probe {escape(clean_text(ident.probe_serial))}")
-    plan = load_plan(ask_plan(ask, ident))
+    try:
+        plan = load_plan(ask_plan(ask, ident))
+    except EOFError:
+        raise MeterlinkError("input ended before the survey's choices were complete: nothing was recorded") from None
+    live = None
 
     def ready(point, height_m):
-        ask(f"Hold the probe at {point.label!r}, {height_m:.2f} m, then press Enter", default="")
+        with live.paused():     # the prompt must be seen, not drawn over by the panel
+            ask(f"Hold the probe at {point.label!r}, {height_m:.2f} m, then press Enter", default="")
 
     with Store(db_path) as store:
         with Survey(store, port, plan, mover=mover, ready=ready, **link_options) as sv:
             n = 1
             while (p := ask_point(ask, n, console)) is not None:
-                with LiveReadout(console) as live:
-                    sv.capture.on_view = live.update
-                    res = sv.measure(p)
+                try:
+                    with LiveReadout(console) as live:
+                        sv.capture.on_view = live.update
+                        res = sv.measure(p)
+                except EOFError:    # Ctrl-D at "hold the probe": end here, the points measured are kept
+                    break
                 live.point_done(res)
                 n += 1
+            if console is not None:
+                console.print(f"survey closed after {len(sv.results)} point(s)")
             return int(sv.session_id)

@@ -9,7 +9,7 @@ import math
 import tomllib
 from pathlib import Path
 
-from meterlink.errors import MeterlinkError
+from meterlink.errors import MeterlinkError, read_input_text
 from meterlink.survey.model import MODES, FollowUp, Point, Site, Source, SurveyPlan
 from meterlink.survey.spatial import SCHEMES, scheme_from
 
@@ -20,6 +20,15 @@ _SITE = {"name", "address", "operator", "technician", "latitude_deg", "longitude
 _SOURCE = {"name", "freq_hz", "technology", "power_w", "max_power_w", "notes"}
 _POINT = {"label", "mode", "height_m", "x_m", "y_m", "lat_deg", "lon_deg", "notes", "near_field",
           "duration_s", "scheme", "n", "heights_m", "walk_m"}
+
+
+# Bounds that no real survey comes near, so that a typing slip is caught when the plan is loaded
+# rather than hours into a measurement: 3 THz (the top of the standards' range is 300 GHz), a day
+# per point, 100 km from the site origin, 1 GW of transmitter power.
+MAX_FREQ_HZ = 3e12
+MAX_DURATION_S = 86400.0
+MAX_SITE_M = 1e5
+MAX_POWER_W = 1e9
 
 
 class PlanError(MeterlinkError):
@@ -57,21 +66,26 @@ class _Ctx:
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
             self.fail(what, f"{key} must be a number, got {v!r}")
         if (positive and v <= 0) or (lo is not None and v < lo) or (hi is not None and v > hi):
-            rng = "positive" if positive else f"between {lo} and {hi}"
+            rng = " and ".join(r for r in ("positive" if positive else "",
+                                             f"at least {lo:g}" if lo is not None else "",
+                                             f"at most {hi:g}" if hi is not None else "") if r)
             self.fail(what, f"{key} = {v!r} must be {rng}")
         return float(v)
+
+    def tables(self, doc, key):
+        """The [[key]] tables of the document (a list of tables), or a PlanError naming the key."""
+        v = doc.get(key, [])
+        if not isinstance(v, list) or not all(isinstance(t, dict) for t in v):
+            self.fail(key, f"use [[{key}]] tables, got {v!r}"[:160])
+        return v
 
 
 def _read(path_or_dict) -> tuple[dict, str, str]:
     if isinstance(path_or_dict, dict):
         return path_or_dict, "<dict>", ""
+
     p = Path(path_or_dict)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise PlanError(f"plan {p}: cannot read ({exc.strerror or exc})") from None
-    except UnicodeDecodeError:
-        raise PlanError(f"plan {p}: not UTF-8 text") from None
+    text = read_input_text(p, "plan", PlanError)
     try:
         return tomllib.loads(text), str(p), text
     except tomllib.TOMLDecodeError as exc:
@@ -94,6 +108,9 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
         heights = d.get("heights_m")
         if name == "custom" and (not isinstance(heights, list) or not heights):
             c.fail(what, "a custom scheme needs heights_m = [...]")
+        if heights is not None and (not isinstance(heights, list) or any(
+                isinstance(h, bool) or not isinstance(h, (int, float)) for h in heights)):
+            c.fail(what, f"heights_m must be a list of heights in metres, got {heights!r}"[:160])
         n = d.get("n")
         if n is not None and (isinstance(n, bool) or not isinstance(n, int) or n < 2 or n > 50):
             c.fail(what, f"n = {n!r} must be a whole number from 2 to 50")
@@ -108,18 +125,19 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
         c.fail(what, "walk_m belongs to mode 'sweep'")
     if not isinstance(walk, list) or not all(
             isinstance(w, list) and len(w) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                                                         for v in w) for w in walk):
+                                                         and abs(v) <= MAX_SITE_M for v in w) for w in walk):
         c.fail(what, "walk_m must be a list of [x, y] pairs in metres")
     near = d.get("near_field", False)
     if not isinstance(near, bool):
         c.fail(what, f"near_field must be true or false, got {near!r}")
-    x, y = c.num(d, "x_m", what), c.num(d, "y_m", what)
+    x, y = c.num(d, "x_m", what, lo=-MAX_SITE_M, hi=MAX_SITE_M), c.num(d, "y_m", what, lo=-MAX_SITE_M, hi=MAX_SITE_M)
     if (x is None) != (y is None):
         c.fail(what, "give both x_m and y_m, or neither")
     return Point(label=label, mode=mode, height_m=c.num(d, "height_m", what, default=1.5, lo=0.0, hi=10.0),
                  x_m=x, y_m=y, lat_deg=c.num(d, "lat_deg", what, lo=-90, hi=90),
                  lon_deg=c.num(d, "lon_deg", what, lo=-180, hi=180), notes=c.text(d, "notes", what),
-                 near_field=near, duration_s=c.num(d, "duration_s", what, positive=True), scheme=scheme,
+                 near_field=near, duration_s=c.num(d, "duration_s", what, positive=True, hi=MAX_DURATION_S),
+                 scheme=scheme,
                  walk_m=tuple((float(a), float(b)) for a, b in walk))
 
 
@@ -144,11 +162,12 @@ def load_plan(path_or_dict) -> SurveyPlan:
         c.fail("[survey]", str(exc))
     band = sv.get("band_hz")
     if band is not None:
-        if (not isinstance(band, list) or len(band) != 2 or not all(isinstance(v, (int, float)) for v in band)
-                or not 0 < band[0] < band[1]):
+        if (not isinstance(band, list) or len(band) != 2
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in band)
+                or not 0 < band[0] < band[1] <= MAX_FREQ_HZ):
             c.fail("[survey]", f"band_hz must be [low, high] with 0 < low < high, got {band!r}")
         band = (float(band[0]), float(band[1]))
-    freq = c.num(sv, "freq_hz", "[survey]", positive=True)
+    freq = c.num(sv, "freq_hz", "[survey]", positive=True, hi=MAX_FREQ_HZ)
     if freq is not None and band is not None:
         c.fail("[survey]", "give freq_hz or band_hz, not both")
     site = Site(name=c.text(st, "name", "[site]", required=True), address=c.text(st, "address", "[site]"),
@@ -157,20 +176,19 @@ def load_plan(path_or_dict) -> SurveyPlan:
                 longitude_deg=c.num(st, "longitude_deg", "[site]", lo=-180, hi=180),
                 notes=c.text(st, "notes", "[site]"))
     sources = []
-    for i, s in enumerate(doc.get("source", []), 1):
+    for i, s in enumerate(c.tables(doc, "source"), 1):
         what = f"source {i}"
         c.known(s, _SOURCE, what)
-        f = c.num(s, "freq_hz", what, positive=True)
+        f = c.num(s, "freq_hz", what, positive=True, hi=MAX_FREQ_HZ)
         if f is None:
             c.fail(what, "missing 'freq_hz'")
-        p, pm = c.num(s, "power_w", what, positive=True), c.num(s, "max_power_w", what, positive=True)
+        p, pm = (c.num(s, "power_w", what, positive=True, hi=MAX_POWER_W),
+                 c.num(s, "max_power_w", what, positive=True, hi=MAX_POWER_W))
         if p is not None and pm is not None and pm < p:
             c.fail(what, f"max_power_w {pm:g} is below power_w {p:g}")
         sources.append(Source(c.text(s, "name", what, required=True), f, c.text(s, "technology", what), p, pm,
                               c.text(s, "notes", what)))
-    raw_points = doc.get("point", [])
-    if not isinstance(raw_points, list):
-        c.fail("point", "use [[point]] tables")
+    raw_points = c.tables(doc, "point")
     points = tuple(_point(c, p, i) for i, p in enumerate(raw_points, 1))
     labels = [p.label for p in points]
     dup = next((lb for lb in labels if labels.count(lb) > 1), None)
@@ -181,9 +199,9 @@ def load_plan(path_or_dict) -> SurveyPlan:
         site=site, standard=std, tier=tier, rule=rule,
         certificate=c.text(sv, "certificate", "[survey]", required=True), points=points, sources=tuple(sources),
         title=c.text(sv, "title", "[survey]"), interval_ms=int(interval), freq_hz=freq, band_hz=band,
-        followup=FollowUp(c.num(sv, "followup_v_per_m", "[survey]", positive=True),
-                          c.num(sv, "followup_percent", "[survey]", positive=True)),
+        followup=FollowUp(c.num(sv, "followup_v_per_m", "[survey]", positive=True, hi=1e6),
+                          c.num(sv, "followup_percent", "[survey]", positive=True, hi=1e6)),
         settle_s=c.num(sv, "settle_s", "[survey]", default=2.0, lo=0.0, hi=600.0),
-        spot_s=c.num(sv, "spot_s", "[survey]", default=5.0, positive=True),
-        sweep_s=c.num(sv, "sweep_s", "[survey]", default=60.0, positive=True),
+        spot_s=c.num(sv, "spot_s", "[survey]", default=5.0, positive=True, hi=MAX_DURATION_S),
+        sweep_s=c.num(sv, "sweep_s", "[survey]", default=60.0, positive=True, hi=MAX_DURATION_S),
         source_text=text, source_path=where if where != "<dict>" else "")

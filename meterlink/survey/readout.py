@@ -7,6 +7,7 @@ line (battery, overrange, follow-up) and, for frequency-selective data, the stro
 
 from __future__ import annotations
 
+import contextlib
 import math
 import time
 
@@ -138,6 +139,20 @@ class LiveReadout:
         if self._live is not None and now - self._last >= self.min_interval_s:
             self._last = now
             self._live.update(render_view(view))
+
+    @contextlib.contextmanager
+    def paused(self):
+        """Take the panel off the screen while the technician is asked something, so the prompt is
+        seen (a live panel redrawn eight times a second would hide it), then bring it back."""
+        live = self._live
+        if live is None or not live.is_started:
+            yield
+            return
+        live.stop()
+        try:
+            yield
+        finally:
+            live.start()
 
     def point_done(self, result) -> None:
         if self.console is not None:

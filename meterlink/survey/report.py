@@ -201,7 +201,7 @@ def write_report(db_path, session_id: int, out_dir) -> Path:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
-    with Store(db_path) as store:
+    with Store(db_path, readonly=True) as store:      # a report only reads
         sv = load_survey(store, int(session_id))
     pts = sv["points"]
     thr = [v for v in (sv["followup_v_per_m"], None if sv["followup_percent"] is None

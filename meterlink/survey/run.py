@@ -196,11 +196,20 @@ def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Call
     from meterlink.survey.readout import LiveReadout
 
     with Store(db_path) as store, LiveReadout(console, on_view) as live:
-        with Survey(store, port, plan, mover=mover, on_view=live.update, ready=ready, **link_options) as sv:
+        def ready_seen(point, height_m):
+            with live.paused():
+                ready(point, height_m)
+
+        with Survey(store, port, plan, mover=mover, on_view=live.update, ready=ready_seen if ready else None,
+                    **link_options) as sv:
             for p in plan.points:
                 try:
                     res = sv.measure(p)
                 except KeyboardInterrupt:
+                    break
+                except EOFError:    # Ctrl-D at the "hold the probe" prompt: end here, keep what was measured
+                    if console is not None:
+                        console.print(f"input ended: survey closed after {len(sv.results)} point(s)")
                     break
                 live.point_done(res)
                 if not res.complete and sv.interrupt_event.is_set():
