@@ -84,7 +84,9 @@ def linearise(ax: AxisCalibration, counts) -> tuple[np.ndarray, np.ndarray]:
         return np.exp(_lin(ax)(np.log(net))), flags
     out[inside] = np.exp(_lin(ax)(np.log(net[inside])))
     low = net < c0
-    out[low & (net > 0)] = ax.field[0]
+    # the value at the table's first point, by the same log/exp path as inside it: field[0] itself
+    # can differ from exp(log(field[0])) in the last bit, which would make the curve step down there
+    out[low & (net > 0)] = np.exp(_lin(ax)(np.log(c0)))
     flags[low] |= BELOW_RANGE
     out[net > c1] = np.nan
     flags[net > c1] |= ABOVE_RANGE

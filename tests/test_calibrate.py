@@ -117,7 +117,7 @@ def test_zero_and_below_range_and_above_range():
                        ax.zero_counts + 10 * ax.counts_above_zero[-1]])
     e, flags = linearise(ax, counts)
     assert e[0] == 0 and e[1] == 0 and flags[0] & BELOW_RANGE and flags[1] & BELOW_RANGE
-    assert e[2] == ax.field[0] and flags[2] & BELOW_RANGE       # clamped to the lowest calibrated field
+    assert e[2] == pytest.approx(ax.field[0], rel=1e-14) and flags[2] & BELOW_RANGE  # clamped to the lowest calibrated field
     assert np.isnan(e[3]) and flags[3] & ABOVE_RANGE             # never an understated clamp above
     three = np.array([[ZERO[0], ZERO[1], ZERO[2]], [ZERO[0] + 1e9, ZERO[1], ZERO[2]],
                       true_counts([0.03, 0.03, 0.03], REF_HZ), true_counts([5.0, 0.03, 0.03], REF_HZ)])
@@ -177,6 +177,13 @@ def test_temperature_correction():
     warm = calibrate_axes(cert, counts, REF_HZ, temp_c=33.0, today=TODAY)
     ref = calibrate_axes(cert, counts, REF_HZ, temp_c=23.0, today=TODAY)
     assert 20 * np.log10(warm.e_v_per_m[0] / ref.e_v_per_m[0]) == pytest.approx(-0.2, abs=1e-9)
+
+
+def test_below_range_meets_the_first_point_exactly():
+    # hypothesis found this: a clamp to field[0] stepped 8.9e-16 below exp(log(field[0])) at the first point
+    ax = AxisCalibration("x", 0.0, (1.0, 2.0), (5.0, 6.0), (1e8, 1e9), (0.0, 0.0))
+    e, _ = linearise(ax, np.array([0.5, 1.0]))
+    assert e[0] == e[1]
 
 
 @settings(max_examples=50, deadline=None)
