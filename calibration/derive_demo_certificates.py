@@ -31,6 +31,9 @@ CAL_DATE, DUE_DATE = dt.date(2026, 6, 15), dt.date(2027, 6, 15)
 SEED = 20260615
 REPEATS = 10
 LAB_TEMP_C = 23.0
+#: Climatic-chamber temperatures of the temperature step (degC): the certificate's stated range,
+#: over which its coefficient (a straight line between them) and its uncertainty hold.
+CHAMBER_TEMPS_C = (5.0, 40.0)
 REF_FIELD_SIGMA_DB = 0.15       # the lab's field-setting error (TEM cell / horn) per setting, unknown to it
 REF_FIELD_BIAS_SIGMA_DB = 0.25  # and its systematic error, drawn once per lab run
 GEN_SIGMA_DB = 0.08             # the lab's signal-generator level error
@@ -98,13 +101,14 @@ def measure_probe(model: sim.ProbeModel, rng, serial: str, number: str) -> Probe
             c = _mean_counts(model, rng, _applied(FREQ_RESPONSE_FIELD_V_PER_M) * _unit(a), f)[a]
             corr.append(round(20 * math.log10(FREQ_RESPONSE_FIELD_V_PER_M / linearise(lin[a], [c])[0][0]), 2) + 0.0)
         axes.append(dataclasses.replace(lin[a], freq_hz=PROBE_FREQS_HZ, correction_db=tuple(corr)))
-    # temperature: climatic chamber at 13 and 33 degC, same applied field
+    # temperature: climatic chamber at the two ends of the stated range, same applied field
+    t_lo, t_hi = CHAMBER_TEMPS_C
     slopes = []
     for a in range(3):
         e_set = FREQ_RESPONSE_FIELD_V_PER_M * _unit(a)
-        lo = linearise(axes[a], [_mean_counts(model, rng, e_set, ref, 13.0)[a]])[0][0]
-        hi = linearise(axes[a], [_mean_counts(model, rng, e_set, ref, 33.0)[a]])[0][0]
-        slopes.append(20 * math.log10(hi / lo) / 20.0)
+        lo = linearise(axes[a], [_mean_counts(model, rng, e_set, ref, t_lo)[a]])[0][0]
+        hi = linearise(axes[a], [_mean_counts(model, rng, e_set, ref, t_hi)[a]])[0][0]
+        slopes.append(20 * math.log10(hi / lo) / (t_hi - t_lo))
     coeff = round(float(np.mean(slopes)), 3)
     coeff_hw = _up(max(abs(s - coeff) for s in slopes) + 0.002, 0.001)
     # isotropy: the probe turned through 36 orientations in a fixed field, at two frequencies
@@ -125,7 +129,7 @@ def measure_probe(model: sim.ProbeModel, rng, serial: str, number: str) -> Probe
           Component("repeatability", 0.05, "dB", "normal", 1.0))
     return ProbeCertificate("ML-EP3 three-axis E-field probe (simulated)", serial, LAB, number, CAL_DATE, DUE_DATE,
                             "E", ref, (PROBE_FREQS_HZ[0], PROBE_FREQS_HZ[-1]), (0.1, 30.0), LAB_TEMP_C, coeff,
-                            coeff_hw, max(0.1, _up(iso, 0.05)), tuple(axes), us)
+                            coeff_hw, max(0.1, _up(iso, 0.05)), tuple(axes), us, temp_range_c=CHAMBER_TEMPS_C)
 
 
 def _bare_receiver(model: sim.ReceiverModel, with_cable: bool) -> sim.ReceiverModel:
@@ -165,7 +169,7 @@ def measure_dipole(model: sim.ReceiverModel, rng, serial: str, number: str) -> D
     return DipoleCertificate("ML-DP1 tuned dipole set (simulated)", serial, "ML-RX1 receiver (simulated)", "RX-7731",
                              LAB, number, CAL_DATE, DUE_DATE, (DIPOLE_FREQS_HZ[0], DIPOLE_FREQS_HZ[-1]),
                              (float(floor + 6), 120.0), DIPOLE_FREQS_HZ, tuple(af), DIPOLE_FREQS_HZ, tuple(cable),
-                             level_corr, us)
+                             level_corr, us, temp_range_c=CHAMBER_TEMPS_C)
 
 
 def derive() -> dict[str, str]:

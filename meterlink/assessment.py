@@ -76,6 +76,35 @@ class Assessment:
         return 100.0 * self.total_exposure_ratio
 
 
+@dataclass(frozen=True)
+class Temperatures:
+    """Meter temperatures reported during a measurement, and the certificate's stated range."""
+
+    span_c: tuple[float, float] | None     # lowest and highest reported (degC); None: none reported
+    range_c: tuple[float, float] | None    # where the certificate's coefficient and uncertainty hold; None: not stated
+
+
+def temperature_check(t: Temperatures | None) -> tuple[str | None, str | None]:
+    """(reason for no verdict, note). Outside the certificate's temperature range its temperature
+    correction and uncertainty are unknown, as outside its frequency range: no conformity statement."""
+    if t is None:
+        return None, None
+    seen = (f"{t.span_c[0]:.1f}..{t.span_c[1]:.1f} degC" if t.span_c and t.span_c[0] != t.span_c[1]
+            else f"{t.span_c[0]:.1f} degC" if t.span_c else None)
+    if t.range_c is None:
+        return None, ("the certificate states no temperature range for its temperature coefficient and uncertainty"
+                      + (f": the meter's temperatures ({seen}) were not checked against one" if seen else ""))
+    lo, hi = t.range_c
+    if t.span_c is None:
+        return None, f"the meter reported no temperature: not checked against the certificate's {lo:g}..{hi:g} degC"
+    out = [x for x in t.span_c if not lo <= x <= hi]
+    if not out:
+        return None, None
+    worst = max(out, key=lambda x: max(lo - x, x - hi))
+    return (f"the meter's temperature reached {worst:.1f} degC (reported {seen}), outside the certificate's "
+            f"temperature range {lo:g}..{hi:g} degC where its temperature coefficient and uncertainty hold"), None
+
+
 def governing_level(standard: str, tier: str, freq_hz=None, band=None, fallback_range=None) -> tuple[ReferenceLevel, str]:
     """The reference level to judge a broadband reading by, and a note saying how it was chosen.
 
@@ -172,6 +201,9 @@ def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, b
     nf = near_field_check(rl.freq_hz, has_e=True, has_h=has_h, near_field=near_field)
     if nf is not None:
         notes.append(nf.message)
+    t_reason, t_note = temperature_check(getattr(series, "temperatures", None))
+    if t_note:
+        notes.append(t_note)
     finite = np.isfinite(e)
     if not finite.any():
         raise MeterlinkError(f"session {series.session_id} has no usable calibrated values")
@@ -204,6 +236,8 @@ def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, b
     if window is not None and not complete:
         reasons.append(f"the {window / 60:g}-minute average is incomplete (coverage {100 * coverage:.1f} % of one "
                        f"window)")
+    if t_reason:
+        reasons.append(t_reason)
     if reasons:
         verdict = not_assessable(verdict, "; ".join(reasons))
     else:
@@ -304,12 +338,20 @@ def assess_spectrum(series, standard: str, tier: str, rule: str, *, near_field: 
         notes.append("receiver above its calibrated level range at " + ", ".join(units.format_frequency(f) for f in over)
                      + ": those emitters are lower bounds")
     out = freqs[(series.flags[seen] & FREQ_OUT) != 0]
+    t_reason, t_note = temperature_check(getattr(series, "temperatures", None))
+    if t_note:
+        notes.append(t_note)
+    reasons = []
     if window is not None and not complete:
-        verdict = not_assessable(verdict, f"the {window / 60:g}-minute average is incomplete (sweeps cover "
-                                          f"{100 * coverage:.1f} % of one window)")
-    elif out.size:
-        verdict = not_assessable(verdict, "lines at " + ", ".join(units.format_frequency(f) for f in out)
-                                 + " lie outside the certificate's calibrated frequency range")
+        reasons.append(f"the {window / 60:g}-minute average is incomplete (sweeps cover {100 * coverage:.1f} % of "
+                       f"one window)")
+    if out.size:
+        reasons.append("lines at " + ", ".join(units.format_frequency(f) for f in out)
+                       + " lie outside the certificate's calibrated frequency range")
+    if t_reason:
+        reasons.append(t_reason)
+    if reasons:
+        verdict = not_assessable(verdict, "; ".join(reasons))
     else:
         if over.size:
             verdict = lower_bound(verdict, "the receiver was overloaded at some emitters, so those values are lower "

@@ -63,6 +63,8 @@ class ProbeCertificate:
     format: str = FORMAT
     kind: str = KIND_PROBE
     source: str = field(default="", compare=False)
+    #: degC over which the temperature coefficient and the uncertainty hold; None: not stated
+    temp_range_c: tuple[float, float] | None = None
 
 
 @dataclass(frozen=True)
@@ -89,6 +91,8 @@ class DipoleCertificate:
     format: str = FORMAT
     kind: str = KIND_DIPOLE
     source: str = field(default="", compare=False)
+    #: degC over which the antenna factor, cable loss and uncertainty hold; None: not stated
+    temp_range_c: tuple[float, float] | None = None
 
 
 # Plausible bounds of a certificate's numbers, by the key's last name. Engineering judgement (no
@@ -105,6 +109,7 @@ _BOUNDS = {
     "db_per_m": (-60.0, 100.0), "db": (-20.0, 100.0),      # antenna factor; cable loss
     "reference_c": (-60.0, 100.0), "coefficient_db_per_c": (-50.0, 50.0),
     "coefficient_halfwidth_db_per_c": (0.0, 50.0), "deviation_db": (0.0, 30.0),
+    "range_c": (-80.0, 150.0),                  # wider than any climatic chamber or field use
     "value": (0.0, 1000.0), "k": (0.1, 10.0), "sensitivity": (-1e3, 1e3),
 }
 
@@ -209,7 +214,21 @@ def _common(r: _Reader) -> dict:
     return dict(model=r.get("device.model", "str"), serial=r.get("device.serial", "str"),
                 lab=r.get("calibration.lab", "str"),
                 certificate_number=r.get("calibration.certificate_number", "str"),
-                cal_date=cal, due_date=due, freq_range_hz=r.range("range.freq_hz"))
+                cal_date=cal, due_date=due, freq_range_hz=r.range("range.freq_hz"),
+                temp_range_c=_temp_range(r))
+
+
+def _temp_range(r: _Reader) -> tuple[float, float] | None:
+    """Optional 'temperature.range_c' = [low, high] degC; None when the certificate does not state it."""
+    t = r.doc.get("temperature")
+    if not isinstance(t, dict) or "range_c" not in t:
+        return None
+    lo, hi = r.range("temperature.range_c", positive=False)
+    if "reference_c" in t:
+        ref = r.get("temperature.reference_c", "num")
+        if not lo <= ref <= hi:
+            r.fail(f"'temperature.reference_c' = {ref:g} lies outside 'temperature.range_c' {lo:g}..{hi:g}")
+    return lo, hi
 
 
 def _covers(r: _Reader, key: str, table, lo: float, hi: float):
@@ -398,6 +417,8 @@ def dump_certificate(cert) -> str:
         doc["reference"] = {"freq_hz": cert.ref_freq_hz}
         doc["temperature"] = {"reference_c": cert.temp_ref_c, "coefficient_db_per_c": cert.temp_coeff_db_per_c,
                               "coefficient_halfwidth_db_per_c": cert.temp_coeff_halfwidth_db_per_c}
+        if cert.temp_range_c is not None:
+            doc["temperature"]["range_c"] = list(cert.temp_range_c)
         doc["isotropy"] = {"deviation_db": cert.isotropy_db}
         doc["axis"] = {ax.name: {"zero_counts": ax.zero_counts, "counts_above_zero": list(ax.counts_above_zero),
                                  fkey: list(ax.field), "freq_hz": list(ax.freq_hz),
@@ -406,6 +427,8 @@ def dump_certificate(cert) -> str:
         doc["range"] = {"freq_hz": list(cert.freq_range_hz), "level_dbuv": list(cert.level_range_dbuv)}
         doc["antenna_factor"] = {"freq_hz": list(cert.af_freq_hz), "db_per_m": list(cert.af_db_per_m)}
         doc["cable_loss"] = {"freq_hz": list(cert.cable_freq_hz), "db": list(cert.cable_loss_db)}
+        if cert.temp_range_c is not None:
+            doc["temperature"] = {"range_c": list(cert.temp_range_c)}
     doc["uncertainty"] = _u_doc(cert.uncertainties)
     head = f"# meterlink calibration certificate ({cert.format}); see docs/calibration-format.md\n"
     return head + dumps_toml(doc)

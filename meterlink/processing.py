@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink import __version__
+from meterlink.assessment import Temperatures
 from meterlink.calibrate import calibrate_axes, calibrate_spectrum
 from meterlink.certificate import DipoleCertificate, ProbeCertificate, dump_certificate, load_certificate
 from meterlink.errors import MeterlinkError
@@ -41,6 +42,7 @@ class FieldSeries:
     flags: np.ndarray
     warnings: tuple[str, ...]
     quantity: str = "E"
+    temperatures: Temperatures | None = None   # reported meter temperatures against the certificate's range
 
     def __len__(self) -> int:
         return int(self.reading_ids.size)
@@ -61,6 +63,7 @@ class SpectrumSeries:
     orientations: np.ndarray     # (K,) number of orientations in each sweep
     warnings: tuple[str, ...]
     n_seen: np.ndarray | None = None   # (K, F) orientations that saw each line above the floor
+    temperatures: Temperatures | None = None   # reported meter temperatures against the certificate's range
 
 
 def session_sensor_kind(store: Store, session_id: int) -> int:
@@ -84,6 +87,12 @@ def _session_temperature(store: Store, session_id: int) -> float | None:
     """Median probe temperature reported during the session (for the temperature correction)."""
     temps = [t for t in store.status_temperatures(session_id) if t is not None]
     return float(np.median(temps)) if temps else None
+
+
+def session_temperatures(store: Store, session_id: int, cert) -> Temperatures:
+    """The lowest and highest meter temperature of a session (status reports) and the certificate's range."""
+    temps = [float(t) for t in store.status_temperatures(session_id) if t is not None]
+    return Temperatures((min(temps), max(temps)) if temps else None, getattr(cert, "temp_range_c", None))
 
 
 def apply_certificate(store: Store, session_id: int, cert: ProbeCertificate | DipoleCertificate | str,
@@ -121,7 +130,8 @@ def apply_certificate(store: Store, session_id: int, cert: ProbeCertificate | Di
     store.add_field_values(cal_id, r.ids, res.e_v_per_m, res.axes_v_per_m, res.h_a_per_m, res.s_w_per_m2,
                            res.u_expanded_db, res.flags)
     return FieldSeries(session_id, cal_id, name, r.ids, r.t_utc, res.e_v_per_m, res.axes_v_per_m,
-                       res.h_a_per_m, res.s_w_per_m2, res.u_expanded_db, res.flags, res.warnings, cert.quantity)
+                       res.h_a_per_m, res.s_w_per_m2, res.u_expanded_db, res.flags, res.warnings, cert.quantity,
+                       session_temperatures(store, session_id, cert))
 
 
 def _calibration(store: Store, session_id: int, calibration_id: int | None) -> dict:
@@ -136,11 +146,16 @@ def _calibration(store: Store, session_id: int, calibration_id: int | None) -> d
     raise MeterlinkError(f"session {session_id} has no calibration {calibration_id}")
 
 
-def _warnings_of(cal: dict, today: _dt.date | None = None) -> tuple[str, ...]:
-    from meterlink.certificate import certificate_status, parse_certificate
+def _cal_certificate(cal: dict):
+    from meterlink.certificate import parse_certificate
 
-    cert = parse_certificate(cal["certificate_text"], f"calibration {cal['id']}")
-    return tuple(certificate_status(cert, today or _dt.date.today()))
+    return parse_certificate(cal["certificate_text"], f"calibration {cal['id']}")
+
+
+def _warnings_of(cal: dict, today: _dt.date | None = None) -> tuple[str, ...]:
+    from meterlink.certificate import certificate_status
+
+    return tuple(certificate_status(_cal_certificate(cal), today or _dt.date.today()))
 
 
 def field_series(store: Store, session_id: int, calibration_id: int | None = None) -> FieldSeries:
@@ -149,7 +164,8 @@ def field_series(store: Store, session_id: int, calibration_id: int | None = Non
     v = store.field_values(cal["id"])
     return FieldSeries(session_id, cal["id"], cal["certificate_name"], v["reading_id"], v["t_utc"],
                        v["e_v_per_m"], v["axes_v_per_m"], v["h_a_per_m"], v["s_w_per_m2"],
-                       v["u_expanded_db"], v["flags"], _warnings_of(cal))
+                       v["u_expanded_db"], v["flags"], _warnings_of(cal),
+                       temperatures=session_temperatures(store, session_id, _cal_certificate(cal)))
 
 
 def spectrum_series(store: Store, session_id: int, calibration_id: int | None = None) -> SpectrumSeries:
@@ -181,7 +197,8 @@ def spectrum_series(store: Store, session_id: int, calibration_id: int | None = 
         flags[fi[j]] |= int(v["flags"][j])
     e_total = np.where(seen, np.sqrt(p), np.nan)
     return SpectrumSeries(session_id, cal["id"], cal["certificate_name"], freqs, t, e_total, u, flags,
-                          np.array([len(o) for o in orient]), _warnings_of(cal), n_seen)
+                          np.array([len(o) for o in orient]), _warnings_of(cal), n_seen,
+                          session_temperatures(store, session_id, _cal_certificate(cal)))
 
 
 def certificate_for_session(store: Store, session_id: int):

@@ -213,3 +213,48 @@ def test_orientations_that_missed_a_line_count_at_the_floor():
     s = dataclasses.replace(_spectrum([900e6], [0.0], [[3.0]]), n_seen=np.array([[1]]))
     a = assess_spectrum(s, "icnirp-2020", "public", "simple", floor_v_per_m=np.array([1.0]))
     assert a.emitters[0].e_v_per_m == pytest.approx(math.sqrt(11.0), rel=1e-12)
+
+
+def test_temperature_outside_the_certificates_range_gives_no_verdict():
+    # 13.85 V/m for 40 min at 100 MHz: 50 % of 27.7 V/m (ICNIRP 2020 Table 5, public), compliant
+    # at any U below 6 dB (20 log10 2). The same values with the meter at 45 degC, beyond a certificate
+    # range of 5..40 degC, have no statement; inside it (or at its edges) the verdict stands.
+    import dataclasses
+
+    from meterlink.assessment import Temperatures
+
+    base = series(np.full(2400, 13.85))
+    for span, outcome in [((12.0, 30.0), "compliant"), ((5.0, 40.0), "compliant"),
+                          ((20.0, 45.0), "not assessable"), ((-3.5, 20.0), "not assessable")]:
+        s = dataclasses.replace(base, temperatures=Temperatures(span, (5.0, 40.0)))
+        a = assess_field(s, "icnirp-2020", "public", "guarded", freq_hz=100e6)
+        assert a.verdict.outcome == outcome, span
+        if outcome == "not assessable":
+            worst = span[1] if span[1] > 40 else span[0]
+            assert f"{worst:.1f} degC" in a.verdict.reason and "5..40 degC" in a.verdict.reason
+            assert a.percent_field == pytest.approx(50.0, rel=1e-6)      # the measured value stays reported
+    # no range stated: the verdict is unchanged and a note says so
+    a = assess_field(dataclasses.replace(base, temperatures=Temperatures((45.0, 45.0), None)),
+                     "icnirp-2020", "public", "guarded", freq_hz=100e6)
+    assert a.verdict.outcome == "compliant"
+    assert any("states no temperature range" in n and "45.0 degC" in n for n in a.notes)
+
+
+def test_dipole_sweeps_outside_the_temperature_range_give_no_verdict():
+    # one 100 MHz line at 14 V/m in every sweep, 40 min of sweeps 10 s apart. ICNIRP 1998 Table 7,
+    # public, 10-400 MHz: 28 V/m, 0.073 A/m, averaged over 6 min. E terms (14/28)^2 = 0.25; H terms
+    # with the plane-wave H = E/Z0 (Z0 = 376.730313 ohm, scipy.constants): (14/376.730313/0.073)^2
+    # = 0.259149, the larger sum governs (ICNIRP 1998 eqs. 10-11 apply to E and H separately).
+    ratio = (14 / 376.730313 / 0.073) ** 2
+    import dataclasses
+
+    from meterlink.assessment import Temperatures
+
+    t = np.arange(0, 2400, 10.0)
+    s = _spectrum([100e6], t, np.full((t.size, 1), 14.0))
+    a = assess_spectrum(s, "icnirp-1998", "public", "simple")
+    assert a.total_exposure_ratio == pytest.approx(ratio, rel=1e-6) and a.verdict.outcome == "compliant"
+    hot = assess_spectrum(dataclasses.replace(s, temperatures=Temperatures((30.0, 42.5), (5.0, 40.0))),
+                          "icnirp-1998", "public", "simple")
+    assert hot.verdict.outcome == "not assessable" and "42.5 degC" in hot.verdict.reason
+    assert hot.total_exposure_ratio == pytest.approx(ratio, rel=1e-6)

@@ -156,3 +156,38 @@ def test_committed_demo_certificates_are_what_the_lab_script_derives():
     spec.loader.exec_module(mod)
     for name, text in mod.derive().items():
         assert (folder / name).read_text(encoding="utf-8") == text, f"{name}: rerun the script and commit"
+
+
+def _with_range(text, rng):
+    return text.replace("coefficient_halfwidth_db_per_c = ", f"range_c = {rng}\ncoefficient_halfwidth_db_per_c = ", 1)
+
+
+def test_temperature_range_is_optional_validated_and_round_trips(tmp_path):
+    base = _probe_text()
+    assert parse_certificate(base).temp_range_c is None            # not stated: allowed, says so later
+    ref = parse_certificate(base).temp_ref_c
+    ok = parse_certificate(_with_range(base, f"[{ref - 10}, {ref + 10}]"))
+    assert ok.temp_range_c == (ref - 10, ref + 10)
+    assert parse_certificate(dump_certificate(ok)) == ok
+    dip = dataclasses.replace(_dipole(), temp_range_c=(0.0, 40.0))
+    assert parse_certificate(dump_certificate(dip)) == dip
+    for rng, words in [(f"[{ref + 10}, {ref - 10}]", "not strictly increasing"),
+                       (f"[{ref}, {ref}]", "not strictly increasing"),
+                       ("[-500.0, 40.0]", "outside the plausible range"),
+                       ("[0.0, nan]", "finite number"),
+                       (f"[{ref - 10}]", "at least 2 numbers"),
+                       (f"[{ref + 1}, {ref + 10}]", "'temperature.reference_c'"),
+                       ('"warm"', "list of at least 2 numbers")]:
+        path = _write(tmp_path, _with_range(base, rng), "range.toml")
+        with pytest.raises(CertificateError) as ei:
+            load_certificate(path)
+        msg = str(ei.value)
+        assert msg.startswith(str(path) + ": ") and "temperature.range_c" in msg and words in msg, (rng, msg)
+
+
+def test_demo_certificates_state_the_chamber_temperature_range():
+    # the range is where the lab measured the coefficient (the chamber's two temperatures): see
+    # calibration/derive_demo_certificates.py; the demo site (simulators/scenarios/demo.toml) lies inside it
+    for name in ("demo-probe", "demo-dipole"):
+        lo, hi = load_certificate(name).temp_range_c
+        assert lo < 13.0 and hi > 21.0

@@ -116,3 +116,41 @@ def test_report_of_a_recorded_session_uses_its_assessment_and_escapes_text(tmp_p
     assert "61.4 V/m" in html          # FCC 47 CFR 1.1310 Table 1 (A), 30-300 MHz occupational
     rows = (tmp_path / "rep" / "values.csv").read_text().splitlines()
     assert rows[0].startswith("reading_id,t_utc,e_v_per_m") and len(rows) >= 60
+
+
+def _record_at(tmp_path, temp_c: float):
+    """Record 7 device minutes (a full 6-min FCC window) with the meter held at temp_c."""
+    import dataclasses
+
+    from simulators.scenario import load_scenario
+
+    sc = load_scenario("demo")
+    sc = dataclasses.replace(sc, site={**sc.site, "temp_mean_c": float(temp_c), "temp_daily_amp_c": 0.0})
+    db = tmp_path / f"t{temp_c:g}.db"
+    with SimulatedMeter(sc, sensor="probe", seed=5, speed=100.0) as sim, Store(db) as store:
+        Recorder(store, sim.port, interval_ms=1000, duration_s=420.0, host_timeout_s=30.0, freq_hz=101.8e6).run()
+        assert set(store.status_temperatures(1)) == {float(temp_c)}     # the meter reported it
+    return db
+
+
+def test_meter_temperature_outside_the_certificates_range_is_not_assessable(tmp_path, capsys):
+    # The demo probe's certificate states 5..40 degC (its climatic-chamber range). FCC 47 CFR 1.1310
+    # Table 1 (A), occupational, 30-300 MHz: 61.4 V/m over 6 min; 7 minutes recorded fill a window.
+    from meterlink.certificate import load_certificate
+    assert load_certificate("demo-probe").temp_range_c == (5.0, 40.0)
+    argv = ["--standard", "fcc-1310", "--tier", "occupational"]
+    hot, mild = _record_at(tmp_path, 47.5), _record_at(tmp_path, 30.0)
+    assert main(["assess", "--db", str(mild), *argv, "--json"]) == 0
+    ok = json.loads(capsys.readouterr().out)
+    assert ok["averaged_window_complete"] is True and ok["outcome"] in ("compliant", "conditional pass")
+    assert main(["assess", "--db", str(hot), *argv, "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["outcome"] == "not assessable" and not out["conformity_statement_made"]
+    assert "47.5 degC" in out["not_assessable_reason"] and "5..40 degC" in out["not_assessable_reason"]
+    assert out["averaged_window_complete"] is True and out["averaged_e_v_per_m"] > 0   # the value stays reported
+    assert main(["assess", "--db", str(hot), *argv]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert "NOT ASSESSABLE" in text and "47.5 degC" in text and "energised antennas" in text
+    assert main(["report", "--db", str(hot), "--session", "1", "--out", str(tmp_path / "rep")]) == 0
+    html = " ".join((tmp_path / "rep" / "report.html").read_text().split())
+    assert "not assessable" in html and "47.5 degC" in html and "5..40 degC" in html
