@@ -128,6 +128,15 @@ def test_temperature_coefficient_recovered_and_ols_as_scipy():
     c = cal.certificate
     assert c.temp_coeff_db_per_c == round(tr.coeff_db_per_c, 4) and c.temp_ref_c == SESSION.ambient.temp_c
     assert c.temp_coeff_halfwidth_db_per_c >= math.sqrt(3) * tr.u_coeff_db_per_c
+    # the certificate states where the coefficient holds: the chamber's span, and it survives the file
+    assert c.temp_range_c == (min(pr.TEMPS_C), max(pr.TEMPS_C))
+    from meterlink.certificate import dump_certificate, parse_certificate
+    assert parse_certificate(dump_certificate(c)).temp_range_c == c.temp_range_c
+    # without chamber steps no range is claimed (none measured), unless kept from the previous certificate
+    plain = certify.analyse(SESSION, [r for r in res if r.step.procedure != "temperature"])
+    assert plain.certificate.temp_range_c is None
+    again = certify.analyse(SESSION, [r for r in res if r.step.procedure != "temperature"], previous=c)
+    assert again.certificate.temp_range_c == c.temp_range_c
     # and without a chamber the plan is refused with a clear message, before anything is applied
     class NoChamber:
         def apply(self, *a):

@@ -67,10 +67,14 @@ def analyse(session: LabSession, results, previous: ProbeCertificate | None = No
           Component("repeatability", _up(budget.part(["repeatability"]).u_c_db, 0.001), "dB", "normal", 1.0))
     tc = previous.temp_coeff_db_per_c if previous else TEMP_COEFF_DEFAULT_DB_PER_C
     tch = previous.temp_coeff_halfwidth_db_per_c if previous else TEMP_COEFF_HALFWIDTH_DEFAULT_DB_PER_C
+    t_range = previous.temp_range_c if previous else None    # kept with the coefficient it belongs to,
+    if t_range and not t_range[0] <= session.ambient.temp_c <= t_range[1]:   # if it holds at today's tables
+        t_range = None
     levels = (min(ax.field[0] for ax in tables), max(ax.field[-1] for ax in tables))
     provisional = ProbeCertificate(session.probe_model, session.probe_serial, session.lab, session.certificate_number,
                                    session.cal_date, session.due_date, "E", float(session.ref_freq_hz), (lo, hi),
-                                   levels, session.ambient.temp_c, tc, tch, 0.0, axes, us, FORMAT, KIND_PROBE)
+                                   levels, session.ambient.temp_c, tc, tch, 0.0, axes, us, FORMAT, KIND_PROBE,
+                                   temp_range_c=t_range)
     iso = tuple(an.isotropy(results, provisional))
     if not iso:
         raise LabError("no isotropy readings in the session")
@@ -79,8 +83,13 @@ def analyse(session: LabSession, results, previous: ProbeCertificate | None = No
     if temp is not None:
         # measured: the slope, and as half-width the rectangular one of the same standard
         # uncertainty (sqrt(3) u), which is how the field budget reads it
+        # the range where they hold: the climatic chamber's span (and the lab's own temperature,
+        # at which the tables were measured); the straight line is not extrapolated beyond it
+        t_lo = min(float(np.min(temp.temp_c)), session.ambient.temp_c)
+        t_hi = max(float(np.max(temp.temp_c)), session.ambient.temp_c)
         cert = replace(cert, temp_coeff_db_per_c=round(temp.coeff_db_per_c, 4) + 0.0,
-                       temp_coeff_halfwidth_db_per_c=_up(math.sqrt(3.0) * temp.u_coeff_db_per_c, 0.001))
+                       temp_coeff_halfwidth_db_per_c=_up(math.sqrt(3.0) * temp.u_coeff_db_per_c, 0.001),
+                       temp_range_c=(t_lo, t_hi))
     return Calibration(session, cert, tuple(lin), fr, iso, budget, temp)
 
 
