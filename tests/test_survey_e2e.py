@@ -170,3 +170,24 @@ def test_survey_command_json_with_a_plan_file(tmp_path, capsys):
     assert rc == 0 and out["decision_rule"] == "conservative" and out["safety"] == SAFETY_LINE
     (p,) = out["points"]
     assert p["label"] == "stile" and p["n_readings"] == 3 and p["verdict"] in ("compliant", "not compliant")
+
+
+def test_survey_point_outside_the_certificates_temperature_range_is_not_assessable(tmp_path):
+    # The meter held at 44 degC, beyond the demo probe certificate's 5..40 degC (its climatic-chamber
+    # range): no verdict, with the temperature and the range, stored and shown in the survey report.
+    import dataclasses
+
+    from meterlink.survey.report import write_report
+    from meterlink.survey.store import load_survey
+    from simulators.scenario import load_scenario
+
+    sc = load_scenario("demo")
+    sc = dataclasses.replace(sc, site={**sc.site, "temp_mean_c": 44.0, "temp_daily_amp_c": 0.0})
+    plan = {**PLAN, "point": [PLAN["point"][0]]}
+    with SimulatedMeter(sc, seed=8, speed=SPEED) as sim:
+        sid = run_plan(sim.port, plan, tmp_path / "h.db", mover=sim.move_to)
+    with Store(tmp_path / "h.db") as store:
+        (p,) = load_survey(store, sid)["points"]
+    assert p["verdict"] == "not assessable" and "44.0 degC" in p["statement"] and "5..40 degC" in p["statement"]
+    html = " ".join(write_report(tmp_path / "h.db", sid, tmp_path / "out").read_text().split())
+    assert "44.0 degC" in html and "5..40 degC" in html and "energised antennas" in html

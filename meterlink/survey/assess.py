@@ -62,15 +62,36 @@ def _name(sources, f):
     return m[0] if m else f"{f / 1e6:.3f} MHz"
 
 
-def _emitters(plan: SurveyPlan, samples: tuple[Sample, ...], near_field: bool):
-    """Per-frequency E averaged over the samples in power, the summation-rule totals, measured and
-    extrapolated; None without frequency-selective data."""
+def _highest_sweep(plan: SurveyPlan, samples: tuple[Sample, ...], near_field: bool) -> dict[float, float] | None:
+    """The lines of the single sweep with the largest total by the standard's summation rule; None
+    without per-sweep data. Where the standard prescribes no averaging time, values are compared as
+    they stand (instantaneous), never as a mean over the capture."""
+    best, best_total = None, -np.inf
+    for s in samples:
+        for sweep in s.sweeps:
+            if not sweep:
+                continue
+            f = np.array([x[0] for x in sweep])
+            total = multi_frequency(f, standard=plan.standard, tier=plan.tier,
+                                    e_v_per_m=np.array([x[1] for x in sweep]), near_field=near_field).total
+            if total > best_total:
+                best, best_total = dict(sweep), total
+    return best
+
+
+def _emitters(plan: SurveyPlan, samples: tuple[Sample, ...], near_field: bool, instantaneous: bool = False):
+    """Per-frequency E averaged over the samples in power (or, with no averaging time in the standard,
+    of the highest single sweep), the summation-rule totals, measured and extrapolated; None without
+    frequency-selective data."""
     if not any(s.emitters for s in samples):
         return None
     power: dict[float, float] = {}
     for s in samples:
         for _, f, e in s.emitters:
             power[f] = power.get(f, 0.0) + e * e / len(samples)
+    peak = _highest_sweep(plan, samples, near_field) if instantaneous else None
+    if peak:
+        power = {f: e * e for f, e in peak.items()}
     freqs = np.array(sorted(power))
     e = np.sqrt([power[f] for f in freqs])
     fac = np.array([source_factor(plan.sources, f) for f in freqs])
@@ -84,9 +105,23 @@ def _emitters(plan: SurveyPlan, samples: tuple[Sample, ...], near_field: bool):
     return ems, res, res_x
 
 
+def point_temperatures(samples: tuple[Sample, ...], range_c: tuple[float, float] | None):
+    """The meter's temperatures over a point's samples against the certificate's stated range."""
+    from meterlink.assessment import Temperatures
+
+    spans = [s.temp_span_c for s in samples if s.temp_span_c is not None]
+    return Temperatures((min(a for a, _ in spans), max(b for _, b in spans)) if spans else None, range_c)
+
+
 def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Broadband, *,
-           interrupted: bool = False, shortened: bool = False, warnings: tuple[str, ...] = ()) -> PointResult:
-    """Combine a point's samples (power domain) and judge the result by the plan's decision rule."""
+           interrupted: bool = False, shortened: bool = False, warnings: tuple[str, ...] = (),
+           temperatures=None) -> PointResult:
+    """Combine a point's samples (power domain) and judge the result by the plan's decision rule.
+
+    temperatures (meterlink.assessment.Temperatures, see point_temperatures): outside the
+    certificate's temperature range there is no verdict; None: not checked."""
+    from meterlink.assessment import temperature_check
+
     if not samples:
         raise MeterlinkError(f"point {point.label!r}: no readings were captured")
     e_s = np.array([s.e_v_per_m for s in samples])
@@ -104,12 +139,16 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
     if shortened and ref.averaging_time_s:
         warn.append(f"shorter than the standard's averaging time of {ref.averaging_time_s / 60:g} min")
     instantaneous = ref.averaging_time_s is None
-    if instantaneous:
-        warn.append("the standard prescribes no averaging time here: the highest single reading is judged")
+    t_reason, t_note = temperature_check(temperatures)
+    if t_note:
+        warn.append(t_note)
     if point.near_field:
         nf = near_field_check(ref.freq_hz, has_e=True, has_h=False, near_field=True)
         warn.append(nf.message if nf else "marked near field")
-    sel = _emitters(plan, samples, point.near_field)
+    sel = _emitters(plan, samples, point.near_field, instantaneous)
+    if instantaneous:
+        what = "sweep (largest total by the summation rule)" if sel is not None else "reading"
+        warn.append(f"the standard prescribes no averaging time here: the highest single {what} is judged")
     ratio = ratio_x = None
     ems = ()
     if sel is not None:
@@ -142,6 +181,8 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
     if shortened and not instantaneous:
         reasons.append(f"the capture is shorter than the standard's {ref.averaging_time_s / 60:g}-minute "
                        f"averaging time")
+    if t_reason:
+        reasons.append(t_reason)
     if reasons:        # an incomplete average gets no conformity statement, only the measured value
         complete = False
         ver, ver_x = (not_assessable(v, "; ".join(reasons)) for v in (ver, ver_x))

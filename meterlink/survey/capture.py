@@ -92,6 +92,7 @@ class Capture:
         self.followup = followup_v_per_m
         self.connected: Connected | None = None
         self.temp_c: float | None = None
+        self.temps_c: list[float] = []       # every temperature the meter reported, in order
         self.battery_pct: int | None = None
         self.battery_low = False
         self.status_over = False
@@ -114,6 +115,7 @@ class Capture:
             w.add_status(status_row(item))
             st = item.status
             self.temp_c = st.temp_centi_c / 100.0
+            self.temps_c.append(self.temp_c)
             self.battery_pct = None if st.battery_pct > 100 else int(st.battery_pct)
             self.battery_low = bool(st.flags & STATUS_BATTERY_LOW)
             self.status_over = bool(st.flags & STATUS_OVERRANGE)
@@ -262,6 +264,7 @@ class Capture:
         host_deadline = time.monotonic() + host_timeout_s
         interrupted = False
         t0 = None
+        t_before, i_temp = self.temp_c, len(self.temps_c)     # the meter's temperature as the sample starts
         try:
             while time.monotonic() < host_deadline:
                 v = self.next_value()
@@ -287,7 +290,9 @@ class Capture:
         except (Interrupted, LinkError):
             interrupted = True
         floor = (lambda f: math.sqrt(3.0) * self.floor_v_per_m(f)) if is_dipole(self.cert) else None
-        return _sample(vals, duration_s, height_m, self.position, floor), interrupted
+        temps = ([] if t_before is None else [t_before]) + self.temps_c[i_temp:]
+        s = _sample(vals, duration_s, height_m, self.position, floor)
+        return dataclasses.replace(s, temp_span_c=(min(temps), max(temps)) if temps else None), interrupted
 
 
 def _step(vals) -> float:
@@ -313,7 +318,7 @@ def _sample(vals, duration_s, height_m, position, floor=None) -> Sample:
     flags = 0
     for v in vals:
         flags |= v.flags
-    ems = ()
+    ems, sweeps = (), []
     if vals[0].emitters or any(v.emitters for v in vals):
         # time-weighted power mean per line: each sweep stands for the time to the next (capped), not
         # 1/n of the capture; a line absent from a sweep is below the floor there: counted at the floor
@@ -322,17 +327,19 @@ def _sample(vals, duration_s, height_m, position, floor=None) -> Sample:
         w = sweep_weights_s(t)
         lines = sorted({f for v in vals for f, _ in v.emitters})
         p = dict.fromkeys(lines, 0.0)
+        sweeps = []
         for v, wi in zip(vals, w):
             got = dict(v.emitters)
-            for f in lines:
-                ev = got.get(f, floor(f) if floor is not None else 0.0)
+            sweep = tuple((f, float(got.get(f, floor(f) if floor is not None else 0.0))) for f in lines)
+            for f, ev in sweep:
                 p[f] += ev * ev * wi
+            sweeps.append(sweep)
         ems = tuple(("", f, math.sqrt(x / float(np.sum(w)))) for f, x in sorted(p.items()))
     return Sample(height_m=float(height_m), position_m=position, e_v_per_m=float(rms),
                   e_max_v_per_m=float(np.nanmax(e)) if finite.any() else math.nan, axes_v_per_m=axes,
                   u_expanded_db=float(max(v.u_expanded_db for v in vals)), n_readings=len(vals),
                   coverage=float(cov), t_start_utc=float(vals[0].t_utc), t_end_utc=float(vals[-1].t_utc),
-                  flags=int(flags), emitters=ems)
+                  flags=int(flags), emitters=ems, sweeps=tuple(sweeps) if ems else ())
 
 
 def is_dipole(cert) -> bool:

@@ -123,6 +123,10 @@ class Sample:
     t_end_utc: float
     flags: int = 0
     emitters: tuple = ()      # (name, freq_hz, e_v_per_m) for frequency-selective data
+    #: frequency-selective: each sweep's lines ((freq_hz, e_v_per_m), ...), for standards with no averaging time
+    sweeps: tuple = ()
+    #: lowest and highest meter temperature (degC) while measuring; None: none reported
+    temp_span_c: tuple[float, float] | None = None
 
 
 @dataclass(frozen=True)

@@ -16,7 +16,7 @@ from meterlink.link import Connected, MeterLink
 from meterlink.protocol import SensorKind
 from meterlink.storage import BatchWriter, Store
 from meterlink.survey import store as sstore
-from meterlink.survey.assess import assess, broadband_reference
+from meterlink.survey.assess import assess, broadband_reference, point_temperatures
 from meterlink.survey.capture import Capture, View
 from meterlink.survey.model import Point, PointResult, SurveyPlan
 from meterlink.survey.plan import load_plan
@@ -167,7 +167,8 @@ class Survey:
             warn.append("sweep: maximum hold of single readings, not an average")
         res = assess(self.plan, p, tuple(samples), self.ref, interrupted=interrupted,
                      shortened=(p.mode == "average" and self.ref.averaging_time_s is not None
-                                and dur < self.ref.averaging_time_s - 1e-9), warnings=tuple(warn))
+                                and dur < self.ref.averaging_time_s - 1e-9), warnings=tuple(warn),
+                     temperatures=point_temperatures(tuple(samples), self.cert.temp_range_c))
         self._writer.flush()
         sstore.add_point(self.store, self.session_id, no, res, cap.trace)
         cap.trace = []
