@@ -11,7 +11,6 @@ import csv
 import datetime
 import io
 import json
-import math
 import sqlite3
 import threading
 import time
