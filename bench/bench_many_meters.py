@@ -30,7 +30,7 @@ def main(argv=None) -> dict:
         "many_meters", f"{r['n']} meters, {r['readings']:,} readings in {r['wall_s']:.1f} s ({rate:.0f}/s); "
         f"missing/duplicate/altered {missing}; host CPU {cpu_pct:.1f} % of one core ({us_per:.0f} us/reading)",
         f"simulator process CPU {100 * r['farm_cpu_s'] / r['wall_s']:.0f} % of one core (not counted)",
-        cpu_pct, f"host {cpu_pct:.1f} % of one core", f">= 8 meters, no loss", ok and r["n"] >= 8, args.json,
+        cpu_pct, f"host {cpu_pct:.1f} % of one core", ">= 8 meters, no loss", ok and r["n"] >= 8, args.json,
         meters=r["n"], readings=r["readings"], missing=missing, host_cpu_pct=cpu_pct, us_per_reading=us_per,
         errors=r["errors"], stop_reasons=r["stop_reasons"])
 

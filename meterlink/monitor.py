@@ -26,7 +26,7 @@ from meterlink.alarms import AlarmEvent, AlarmMachine, command_call, percent_rul
 from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.hooks import STOP_WAIT_S, HookRunner
 from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
-from meterlink.limits import most_restrictive_level, reference_level
+from meterlink.limits import most_restrictive_level
 from meterlink.lock import StationLock
 from meterlink.notify import Notifier
 from meterlink.retention import thin_readings  # noqa: F401 - kept importable from here

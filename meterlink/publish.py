@@ -12,6 +12,7 @@ import datetime as _dt
 import io
 import json
 import math
+import re
 
 import numpy as np
 
@@ -42,6 +43,14 @@ def station_info(conn) -> tuple[dict, list[dict]]:
 
 def iso(t) -> str | None:
     return None if t is None else _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def export_file_name(st: dict, t0: float, t1: float, fmt: str) -> str:
+    """The file name of an export written into a folder: station, content and UTC span, e.g.
+    'mast-7_6min_20261101T000000Z_20261201T000000Z.csv'; only [a-z0-9-] from the station name."""
+    slug = re.sub(r"[^a-z0-9]+", "-", str(st.get("name") or "").lower()).strip("-")[:60].strip("-") or "station"
+    span = "_".join(_dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ") for t in (t0, t1))
+    return f"{slug}_6min_{span}.{fmt}"
 
 
 def heartbeat_s(st: dict) -> float:

@@ -179,9 +179,9 @@ class SimulatedMeter:
             else:
                 want_write = [master] if self._pending else []
                 try:
-                    r, w, _ = select.select([master], want_write, [], 0.002)
+                    r, _, _ = select.select([master], want_write, [], 0.002)
                 except (OSError, ValueError):
-                    r = w = []
+                    r = []
             with self._lock:
                 now = self._now_ms()
                 if self._master is None and self._up_at is not None and time.monotonic() >= self._up_at:

@@ -45,9 +45,10 @@ def _read(name_or_path: str) -> tuple[str, str, dict]:
     """(name, where, document): where names the file in messages (its path, or the packaged name)."""
     p = FsPath(name_or_path)
     try:
-        if p.suffix == ".toml" or p.exists():
-            return p.stem, str(p), tomllib.loads(read_input_text(p, "scenario", ScenarioError))
         res = resources.files("simulators.scenarios").joinpath(f"{name_or_path}.toml")
+        # a folder that happens to bear a packaged scenario's name (say ./demo, the demo's --out) does not hide it
+        if p.suffix == ".toml" or p.is_file() or (p.exists() and not res.is_file()):
+            return p.stem, str(p), tomllib.loads(read_input_text(p, "scenario", ScenarioError))
         if not res.is_file():
             raise ScenarioError(f"scenario {name_or_path!r}: no such packaged scenario or file")
         return name_or_path, f"{name_or_path} (packaged)", tomllib.loads(res.read_text(encoding="utf-8"))

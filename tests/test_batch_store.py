@@ -8,7 +8,6 @@ add_reading_arrays must store the same rows and report the same duplicates as wr
 import math
 
 import numpy as np
-import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from meterlink import derived

@@ -8,7 +8,6 @@ hostile input is counted in LinkStats or recorded as an event or a row.
 """
 
 import os
-import sqlite3
 import threading
 import time
 
@@ -19,7 +18,7 @@ from hypothesis import strategies as st
 from meterlink import calibrate, spans
 from meterlink.certificate import load_certificate
 from meterlink.protocol import (Ack, Axes, Boot, Fault, FrameReader, FrameType, Ident, Spectrum, Status,
-                                encode_frame, encode_message, parse_payload)
+                                encode_frame, encode_message)
 from meterlink.recorder import Recorder
 from meterlink.storage import Store
 

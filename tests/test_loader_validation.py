@@ -295,3 +295,13 @@ def test_every_entry_with_every_hostile_value(tmp_path, kind):
             except error as exc:
                 assert str(p) in str(exc) and "\n" not in str(exc), (path, value, str(exc))
     assert tried > 100
+
+
+def test_a_folder_named_like_a_packaged_scenario_does_not_hide_it(tmp_path, monkeypatch):
+    # 'meterlink demo --out demo' makes ./demo; the next run must still find the packaged scenario 'demo'
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "demo").mkdir()
+    assert load_scenario("demo").name == "demo"
+    (tmp_path / "not-a-scenario").mkdir()
+    with pytest.raises(ScenarioError, match="not-a-scenario: is a directory"):
+        load_scenario("not-a-scenario")

@@ -8,9 +8,9 @@ Power convention: percent = 100 (E^2/Z0) / S_ref, Z0 from scipy.constants.
 from __future__ import annotations
 
 import csv
+import datetime
 import io
 import json
-import math
 import sqlite3
 import threading
 import time
@@ -185,3 +185,45 @@ def test_a_damaged_station_file_is_reported_as_damaged_not_as_missing_a_station(
     assert main([cmd, "--db", str(bad)]) == 2
     err = capsys.readouterr().err.strip()
     assert err.count("\n") == 0 and "damaged" in err and str(bad) in err and "no monitoring station" not in err
+
+
+def _stamp(t):
+    return datetime.datetime.fromtimestamp(t, datetime.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+
+
+def test_export_out_folder_as_written_in_the_readme(db, tmp_path, monkeypatch, capsys):
+    # README, monitoring stations: "meterlink export --db station.db --format csv --out public/"
+    monkeypatch.chdir(tmp_path)
+    assert main(["export", "--db", str(db), "--format", "csv"]) == 0
+    expected = capsys.readouterr().out
+    assert main(["export", "--db", str(db), "--format", "csv", "--out", "public/"]) == 0
+    printed = capsys.readouterr().out
+    assert (tmp_path / "public").is_dir()
+    files = list((tmp_path / "public").iterdir())
+    blocks = _blocks(db)
+    # the default span runs from the first block's start to the end of the newest 6-minute (360 s) block
+    name = f"brannock-tor-report-station_6min_{_stamp(blocks[0][0])}_{_stamp(blocks[-1][0] + 360)}.csv"
+    assert [f.name for f in files] == [name]
+    assert files[0].read_text(encoding="utf-8") == expected
+    assert printed.strip() == f"wrote {Path('public') / name}"
+
+
+def test_export_out_existing_folder_and_plain_file(db, tmp_path, capsys):
+    pub = tmp_path / "pub"
+    pub.mkdir()
+    assert main(["export", "--db", str(db), "--format", "json", "--out", str(pub)]) == 0
+    f, = pub.iterdir()
+    assert f.suffix == ".json" and f.name.startswith("brannock-tor-report-station_6min_")
+    assert json.loads(f.read_text())["caution"] == SAFETY_LINE
+    # a path that is neither an existing folder nor ends in / stays a file, as before
+    plain = tmp_path / "series.csv"
+    assert main(["export", "--db", str(db), "--out", str(plain)]) == 0
+    assert plain.is_file() and f"# caution: {SAFETY_LINE}" in plain.read_text()
+
+
+def test_export_out_folder_over_a_file_is_one_line(db, tmp_path, capsys):
+    (tmp_path / "taken").write_text("not a folder")
+    assert main(["export", "--db", str(db), "--out", str(tmp_path / "taken") + "/"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "cannot create the export folder" in err and "taken" in err
+    assert (tmp_path / "taken").read_text() == "not a folder"

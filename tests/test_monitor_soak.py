@@ -9,7 +9,6 @@ episodes coincide with the scenario's excursions.
 
 from __future__ import annotations
 
-import dataclasses
 import json
 import math
 import sqlite3

@@ -8,10 +8,13 @@ def add_arguments(parser) -> None:
     parser.add_argument("--from", dest="t_from", metavar="DATE", help="start, ISO date or time (UTC)")
     parser.add_argument("--to", dest="t_to", metavar="DATE", help="end, exclusive (default: the end of the newest block)")
     parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
-    parser.add_argument("--out", metavar="FILE", help="write here instead of standard output")
+    parser.add_argument("--out", metavar="PATH",
+                        help="write here instead of standard output; a path ending in / or an existing folder "
+                             "is a folder (created if need be) that receives a file named for the station and span")
 
 
 def run(args) -> int:
+    import os
     import sqlite3
     import sys
     from pathlib import Path
@@ -20,7 +23,7 @@ def run(args) -> int:
     from meterlink.commands.stats import open_station
     from meterlink.errors import MeterlinkError
     from meterlink.storage import describe_sqlite_error
-    from meterlink.publish import header_lines, series_rows, statistics, to_csv, to_json
+    from meterlink.publish import export_file_name, header_lines, series_rows, statistics, to_csv, to_json
 
     conn, t0, t1 = open_station(args)
     try:
@@ -35,11 +38,21 @@ def run(args) -> int:
         raise describe_sqlite_error(args.db, exc) from None
     finally:
         conn.close()
-    if args.out:
-        try:
-            Path(args.out).write_text(text, encoding="utf-8")
-        except OSError as exc:
-            raise MeterlinkError(f"{args.out}: cannot write: {exc.strerror}") from None
-    else:
+    if not args.out:
         sys.stdout.write(text)
+        return 0
+    out = Path(args.out)
+    folder = args.out.endswith(("/", os.sep)) or out.is_dir()
+    if folder:
+        try:
+            out.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise MeterlinkError(f"{args.out}: cannot create the export folder: {exc.strerror or exc}") from None
+        out = out / export_file_name(st, t0, t1, args.format)
+    try:
+        out.write_text(text, encoding="utf-8")
+    except OSError as exc:
+        raise MeterlinkError(f"{out}: cannot write: {exc.strerror}") from None
+    if folder:
+        print(f"wrote {out}")
     return 0

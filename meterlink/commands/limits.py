@@ -119,7 +119,6 @@ def brief_levels(freq_hz: float, duration_s: float, standard: str | None, tier: 
     from meterlink import limits
 
     out = []
-    colours = ["#1b6f7a", "#b3261e", "#6a3d9a", "#e08a00", "#2e7d32", "#5d6d7e", "#c2185b", "#8d6e63"]
     for i, std in enumerate([standard] if standard else limits.standards()):
         for tr in [tier] if tier else list(limits.TIERS):
             try:

@@ -8,7 +8,6 @@ meter on a serial link with a lab controller (meterlink.lab.meter.MeterBench), o
 from __future__ import annotations
 
 import csv
-import json
 import math
 from pathlib import Path
 from typing import Callable, Protocol

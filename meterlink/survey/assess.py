@@ -9,7 +9,7 @@ import numpy as np
 
 from meterlink.errors import MeterlinkError
 from meterlink.exposure import multi_frequency, near_field_check, percent_of_limit
-from meterlink.limits import most_restrictive_level, reference_level
+from meterlink.limits import most_restrictive_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
 from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_OUT
