@@ -8,8 +8,8 @@ import time
 from pathlib import Path
 
 from farm import Farm
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
 from simulators.truth import read_truth
 
 

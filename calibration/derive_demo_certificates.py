@@ -20,10 +20,10 @@ import numpy as np
 if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from meterlink.calibrate import linearise  # noqa: E402
-from meterlink.certificate import AxisCalibration, DipoleCertificate, ProbeCertificate, dump_certificate  # noqa: E402
-from meterlink.uncertainty import Component  # noqa: E402
-from meterlink.units import antenna_factor_db_per_m  # noqa: E402
+from meterlink.physics.calibrate import linearise  # noqa: E402
+from meterlink.physics.certificate import AxisCalibration, DipoleCertificate, ProbeCertificate, dump_certificate  # noqa: E402
+from meterlink.physics.uncertainty import Component  # noqa: E402
+from meterlink.physics.units import antenna_factor_db_per_m  # noqa: E402
 from simulators import instruments as sim  # noqa: E402
 
 LAB = "Quillmoor Field Metrology Laboratory (invented)"

@@ -78,7 +78,7 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except sqlite3.DatabaseError as exc:
         # a damaged page met in the middle of a command: name the file and say what to do
-        from meterlink.storage import describe_sqlite_error
+        from meterlink.storage.store import describe_sqlite_error
 
         db = getattr(args, "db", None) or "the database"
         print(f"meterlink {args.command}: error: {describe_sqlite_error(db, exc)}", file=sys.stderr)

@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from meterlink import derived
-from meterlink.storage import Store
+from meterlink.station import derived
+from meterlink.storage.store import Store
 
 REL = 1e-9  # summation order differs (bincount/cumsum vs running sums): agreement to rounding, not bits
 

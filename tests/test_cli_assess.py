@@ -6,8 +6,8 @@ import sqlite3
 import pytest
 
 from meterlink.cli import SAFETY_LINE, main
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
 from simulators.pty_meter import SimulatedMeter
 
 
@@ -38,7 +38,7 @@ def test_assess_json_labels_both_percent_terms_and_records_the_rule(recorded_db,
 def test_assess_outside_the_certificates_frequency_range_is_not_assessable(recorded_db, capsys):
     # The demo probe's certificate covers a finite frequency range; 50 GHz lies outside it, where
     # neither the response nor the uncertainty is known: no verdict, with the reason, in JSON and text.
-    from meterlink.certificate import load_certificate
+    from meterlink.physics.certificate import load_certificate
     lo, hi = load_certificate("demo-probe").freq_range_hz
     assert hi < 50e9
     assert main(["assess", "--db", str(recorded_db), "--standard", "icnirp-2020", "--tier", "public",

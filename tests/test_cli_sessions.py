@@ -3,8 +3,8 @@
 import json
 
 from meterlink.cli import main
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
 from simulators.pty_meter import SimulatedMeter
 
 

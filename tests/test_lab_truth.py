@@ -8,13 +8,13 @@ import math
 import numpy as np
 import pytest
 
-from meterlink.calibrate import calibrate_axes, linearise
-from meterlink.certificate import dump_certificate, load_certificate
+from meterlink.physics.calibrate import calibrate_axes, linearise
+from meterlink.physics.certificate import dump_certificate, load_certificate
 from meterlink.lab import certify
 from meterlink.lab import procedures as pr
 from meterlink.lab.meter import MeterBench
 from meterlink.lab.session import LabError, LabSession, orientation_matrix
-from meterlink.link import MeterLink
+from meterlink.device.link import MeterLink
 from simulators.instruments import axis_gain_db, detector_counts_float
 from simulators.lab import InProcessLab, LabMeter
 

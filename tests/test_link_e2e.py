@@ -8,9 +8,9 @@ import time
 
 import pytest
 
-from meterlink.link import MeterLink, Reading
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
+from meterlink.device.link import MeterLink, Reading
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
 from simulators.pty_meter import SimulatedMeter
 from simulators.truth import read_truth
 

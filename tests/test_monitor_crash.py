@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from meterlink import spans
+from meterlink.storage import spans
 from simulators.pty_meter import SimulatedMeter
 from simulators.truth import read_truth
 

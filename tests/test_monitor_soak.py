@@ -20,9 +20,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from meterlink import averaging, spans
-from meterlink.monitor import Monitor
-from meterlink.station import parse_station
+from meterlink.physics import averaging
+
+from meterlink.storage import spans
+from meterlink.station.monitor import Monitor
+from meterlink.station.stationfile import parse_station
 from simulators.pty_meter import SimulatedMeter
 from simulators.truth import read_truth
 

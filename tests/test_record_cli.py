@@ -9,7 +9,7 @@ import pytest
 
 from conftest import ROOT
 from meterlink.cli import main
-from meterlink.storage import Store
+from meterlink.storage.store import Store
 from simulators.pty_meter import SimulatedMeter
 
 

@@ -6,7 +6,7 @@ import time
 import pytest
 import serial
 
-from meterlink.protocol import (Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident, SensorKind,
+from meterlink.device.protocol import (Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident, SensorKind,
                                 SetInterval, Setting, SettingGet, SettingKey, SettingPut, Spectrum, encode_frame,
                                 encode_message, parse_payload)
 from simulators.pty_meter import SimulatedMeter

@@ -5,7 +5,7 @@ import math
 import numpy as np
 import pytest
 
-from meterlink.protocol import (Axes, Empty, Frame, FrameReader, FrameType, STATUS_OVERRANGE, Status,
+from meterlink.device.protocol import (Axes, Empty, Frame, FrameReader, FrameType, STATUS_OVERRANGE, Status,
                                 encode_message, parse_payload)
 from simulators.firmware import Firmware
 from simulators.scenario import ScenarioError, load_scenario

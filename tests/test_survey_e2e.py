@@ -12,7 +12,7 @@ import sqlite3
 import numpy as np
 import pytest
 
-from meterlink.storage import Store
+from meterlink.storage.store import Store
 from meterlink.survey.interactive import run_interactive
 from meterlink.survey.plan import load_plan
 from meterlink.survey.run import Survey, run_plan

@@ -14,7 +14,7 @@ import time
 
 import pytest
 
-from meterlink.storage import Store
+from meterlink.storage.store import Store
 from meterlink.survey.store import load_survey
 from simulators.pty_meter import SimulatedMeter
 

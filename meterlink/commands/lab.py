@@ -49,7 +49,7 @@ def _simulated(session, args):
 
     from meterlink.lab import procedures as pr
     from meterlink.lab.meter import MeterBench
-    from meterlink.link import MeterLink
+    from meterlink.device.link import MeterLink
     from simulators.lab import LabMeter
     if args.quick:
         plan = pr.full_plan(session, freqs=(3e7, 1e8, 3e8, 1e9, 3e9, 6e9), levels=(0.1, 0.3, 1, 3, 10, 20),
@@ -119,7 +119,7 @@ def run(args) -> int:
 
     from rich.console import Console
 
-    from meterlink.certificate import dump_certificate, load_certificate
+    from meterlink.physics.certificate import dump_certificate, load_certificate
     from meterlink.cli import SAFETY_LINE
     from meterlink.errors import MeterlinkError
     import dataclasses

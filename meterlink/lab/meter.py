@@ -13,11 +13,11 @@ import time
 
 import numpy as np
 
-from meterlink.clock import HALF_TICK
+from meterlink.device.clock import HALF_TICK
 from meterlink.errors import LinkError
 from meterlink.lab.session import LabError
-from meterlink.link import Connected, LinkEvent, MeterLink, Reading
-from meterlink.protocol import AXIS_OVER_X, U32_MOD
+from meterlink.device.link import Connected, LinkEvent, MeterLink, Reading
+from meterlink.device.protocol import AXIS_OVER_X, U32_MOD
 
 OVER_ANY = AXIS_OVER_X | (AXIS_OVER_X << 1) | (AXIS_OVER_X << 2)
 

@@ -8,12 +8,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink.errors import MeterlinkError
-from meterlink.exposure import multi_frequency, near_field_check, percent_of_limit
-from meterlink.limits import most_restrictive_level, reference_level
+from meterlink.physics.exposure import multi_frequency, near_field_check, percent_of_limit
+from meterlink.physics.limits import most_restrictive_level, reference_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
-from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_OUT
-from meterlink.verdict import decide_field, decide_ratio, lower_bound, not_assessable, upper_bound
+from meterlink.physics.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_OUT
+from meterlink.physics.verdict import decide_field, decide_ratio, lower_bound, not_assessable, upper_bound
 
 #: An emitter matches a listed source when their frequencies agree within this fraction.
 MATCH_REL = 0.005
@@ -38,7 +38,7 @@ def broadband_reference(standard: str, tier: str, band_hz: tuple[float, float] |
         lo = hi = float(band_hz)
     else:
         lo, hi = float(band_hz[0]), float(band_hz[1])
-    from meterlink.assessment import averaging_time_s
+    from meterlink.physics.assessment import averaging_time_s
 
     best = most_restrictive_level(standard, tier, lo, hi)
     # the shortest averaging time in the band, none if any row prescribes none: never a default

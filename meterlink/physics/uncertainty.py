@@ -165,7 +165,7 @@ def measurement_budget(cert, freq_hz=None, level=None, temp_c=None, k: float = K
             hw = max(_interp_halfwidth_db(ax.freq_hz, ax.correction_db, float(freq_hz)) for ax in cert.axes)
             comps.append(Component("frequency interpolation", hw, "dB", "rectangular"))
         else:
-            from meterlink.calibrate import band_correction_spread_db
+            from meterlink.physics.calibrate import band_correction_spread_db
             comps.append(Component("frequency unknown in band", band_correction_spread_db(cert, band),
                                    "dB", "rectangular"))
         coeff, coeff_hw = abs(cert.temp_coeff_db_per_c), cert.temp_coeff_halfwidth_db_per_c

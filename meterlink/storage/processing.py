@@ -15,11 +15,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink import __version__
-from meterlink.calibrate import calibrate_axes, calibrate_spectrum
-from meterlink.certificate import DipoleCertificate, ProbeCertificate, dump_certificate, load_certificate
+from meterlink.physics.calibrate import calibrate_axes, calibrate_spectrum
+from meterlink.physics.certificate import DipoleCertificate, ProbeCertificate, dump_certificate, load_certificate
 from meterlink.errors import MeterlinkError
-from meterlink.protocol import SensorKind
-from meterlink.storage import Store
+from meterlink.device.protocol import SensorKind
+from meterlink.storage.store import Store
 
 ORIENTATIONS = "xyz?"
 
@@ -137,7 +137,7 @@ def _calibration(store: Store, session_id: int, calibration_id: int | None) -> d
 
 
 def _warnings_of(cal: dict, today: _dt.date | None = None) -> tuple[str, ...]:
-    from meterlink.certificate import certificate_status, parse_certificate
+    from meterlink.physics.certificate import certificate_status, parse_certificate
 
     cert = parse_certificate(cal["certificate_text"], f"calibration {cal['id']}")
     return tuple(certificate_status(cert, today or _dt.date.today()))
@@ -186,7 +186,7 @@ def spectrum_series(store: Store, session_id: int, calibration_id: int | None = 
 
 def certificate_for_session(store: Store, session_id: int):
     """The packaged certificate whose serial matches the session's probe, or None."""
-    from meterlink.certificate import packaged_certificates
+    from meterlink.physics.certificate import packaged_certificates
 
     s = store.session(session_id)
     serial = (s.get("device_probe_serial") or "").strip()

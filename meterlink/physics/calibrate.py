@@ -17,10 +17,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from meterlink import units
-from meterlink.certificate import FORMAT, KIND_PROBE, AxisCalibration, ProbeCertificate
-from meterlink.interp import MonotoneCubic
-from meterlink.uncertainty import Component, measurement_budget
+from meterlink.physics import units
+from meterlink.physics.certificate import FORMAT, KIND_PROBE, AxisCalibration, ProbeCertificate
+from meterlink.physics.interp import MonotoneCubic
+from meterlink.physics.uncertainty import Component, measurement_budget
 
 BELOW_RANGE = 1 << 0
 ABOVE_RANGE = 1 << 1
@@ -144,7 +144,7 @@ def frequency_correction_db(cert: ProbeCertificate, freq_hz) -> tuple[np.ndarray
 
 
 def _expiry(cert, today):
-    from meterlink.certificate import certificate_status
+    from meterlink.physics.certificate import certificate_status
     on = today or _dt.date.today()
     return tuple(certificate_status(cert, on)), (EXPIRED if on > cert.due_date else 0)
 
