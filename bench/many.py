@@ -10,7 +10,7 @@ from pathlib import Path
 from farm import Farm
 from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store
-from simulators.truth import read_truth
+from meterlink.simulators.truth import read_truth
 
 
 def _cpu() -> float:

@@ -9,8 +9,8 @@ from importlib import resources
 from pathlib import Path as FsPath
 
 from meterlink.errors import MeterlinkError, read_input_text
-from simulators.instruments import ProbeModel, ReceiverModel
-from simulators.scene import Excursion, Path, SiteScene, Transmitter
+from meterlink.simulators.instruments import ProbeModel, ReceiverModel
+from meterlink.simulators.scene import Excursion, Path, SiteScene, Transmitter
 
 
 class ScenarioError(MeterlinkError):
@@ -47,7 +47,7 @@ def _read(name_or_path: str) -> tuple[str, str, dict]:
     try:
         if p.suffix == ".toml" or p.exists():
             return p.stem, str(p), tomllib.loads(read_input_text(p, "scenario", ScenarioError))
-        res = resources.files("simulators.scenarios").joinpath(f"{name_or_path}.toml")
+        res = resources.files("meterlink.simulators.scenarios").joinpath(f"{name_or_path}.toml")
         if not res.is_file():
             raise ScenarioError(f"scenario {name_or_path!r}: no such packaged scenario or file")
         return name_or_path, f"{name_or_path} (packaged)", tomllib.loads(res.read_text(encoding="utf-8"))

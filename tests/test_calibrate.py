@@ -251,8 +251,8 @@ def _demo_models():
     import tomllib
     from importlib import resources
 
-    from simulators import instruments as sim
-    sc = tomllib.loads(resources.files("simulators.scenarios").joinpath("demo.toml").read_text(encoding="utf-8"))
+    from meterlink.simulators import instruments as sim
+    sc = tomllib.loads(resources.files("meterlink.simulators.scenarios").joinpath("demo.toml").read_text(encoding="utf-8"))
     return sim, sim.ProbeModel.from_dict(sc["probe"]), sim.ReceiverModel.from_dict(sc["receiver"])
 
 

@@ -19,7 +19,7 @@ from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store
 from meterlink.survey.report import write_report
 from meterlink.survey.run import run_plan
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 FORBIDDEN = ("from memory", "shared reference", "reference-levels", "verified")
 

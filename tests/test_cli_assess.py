@@ -8,7 +8,7 @@ import pytest
 from meterlink.cli import SAFETY_LINE, main
 from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 
 @pytest.fixture(scope="module")

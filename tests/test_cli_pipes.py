@@ -14,7 +14,7 @@ import sys
 import pytest
 
 from meterlink.storage.store import Store
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 SIGPIPE_STATUS = 128 + signal.SIGPIPE   # 141 on Linux
 

@@ -13,7 +13,7 @@ from meterlink.device.commander import Commander
 from meterlink.device.conformance import ITEMS, run_checks
 from meterlink.device.protocol import STATUS_STREAMING, FrameType, SettingKey
 from meterlink.device.transport import open_link
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 SPEED = 200
 

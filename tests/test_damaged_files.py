@@ -16,7 +16,7 @@ import pytest
 
 from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store, StorageError
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 PAGE = 4096
 

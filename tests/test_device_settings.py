@@ -15,7 +15,7 @@ from meterlink.errors import MeterlinkError
 from meterlink.device.protocol import FaultCode, SettingKey
 from meterlink.storage.store import Store
 from meterlink.device.transport import open_link
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 
 @pytest.fixture

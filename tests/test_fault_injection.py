@@ -24,8 +24,8 @@ from collections import Counter
 import numpy as np
 import pytest
 
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 STATION = """
 format = "meterlink-station/1"

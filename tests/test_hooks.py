@@ -17,7 +17,7 @@ from pathlib import Path
 
 from meterlink.station.alarms import AlarmEvent
 from meterlink.station.hooks import HOOK_PATH, HookRunner, iso_ms
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ROOT = Path(__file__).resolve().parents[1]
 

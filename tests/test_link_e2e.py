@@ -11,8 +11,8 @@ import pytest
 from meterlink.device.link import MeterLink, Reading
 from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 SPEED = 100.0
 

@@ -24,7 +24,7 @@ from meterlink.errors import MeterlinkError
 from meterlink.lab.session import LabError, load_session
 from meterlink.station.stationfile import StationFileError, load_station
 from meterlink.survey.plan import PlanError, load_plan
-from simulators.scenario import ScenarioError, load_scenario
+from meterlink.simulators.scenario import ScenarioError, load_scenario
 
 ROOT = Path(__file__).resolve().parent.parent
 NAN, INF = float("nan"), float("inf")

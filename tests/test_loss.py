@@ -11,8 +11,8 @@ from collections import Counter
 from meterlink.storage import spans
 from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 SPEED = 50.0
 

@@ -22,8 +22,8 @@ from scipy.constants import physical_constants
 from meterlink.physics import averaging
 from meterlink.station.monitor import Monitor
 from meterlink.station.stationfile import parse_station
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 Z0 = physical_constants["characteristic impedance of vacuum"][0]
 INTERVAL_S = 2.0

@@ -22,7 +22,7 @@ from scipy.constants import physical_constants
 from meterlink.cli import SAFETY_LINE, main
 from meterlink.station.monitor import Monitor
 from meterlink.station.stationfile import parse_station
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 Z0 = physical_constants["characteristic impedance of vacuum"][0]
 STATION = """

@@ -19,8 +19,8 @@ from pathlib import Path
 import numpy as np
 
 from meterlink.storage import spans
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 ROOT = Path(__file__).resolve().parents[1]
 KILLS = 20

@@ -19,7 +19,7 @@ from pathlib import Path
 from meterlink.station.monitor import Monitor
 from meterlink.station.publish import current_state
 from meterlink.station.stationfile import parse_station
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -14,7 +14,7 @@ import time
 from pathlib import Path
 
 from meterlink.station.lock import StationLock, StationLockedError, lock_path
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -25,8 +25,8 @@ from meterlink.physics import averaging
 from meterlink.storage import spans
 from meterlink.station.monitor import Monitor
 from meterlink.station.stationfile import parse_station
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 STATION = """
 format = "meterlink-station/1"

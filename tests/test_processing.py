@@ -14,8 +14,8 @@ from meterlink.errors import MeterlinkError
 from meterlink.storage.processing import apply_certificate, calibrated_series, field_series, spectrum_series
 from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 BAND = (87.5e6, 3.8e9)  # the demo site's emitters, declared by the operator
 

@@ -21,7 +21,7 @@ from meterlink.storage import spans
 from meterlink.station.monitor import Monitor
 from meterlink.station.stationfile import Retention, parse_station
 from meterlink.storage.store import Store, event_row
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 DAY = 86400.0
 NOW = 2_000_000_000.0

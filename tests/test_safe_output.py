@@ -28,8 +28,8 @@ from meterlink.reports.safetext import clean_text, csv_cell
 from meterlink.station.stationfile import parse_station
 from meterlink.survey.report import write_report
 from meterlink.survey.run import run_plan
-from simulators.pty_meter import SimulatedMeter
-from simulators.scenario import load_scenario
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.scenario import load_scenario
 
 CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f]")        # every C0/C1 code but tab and newline
 

@@ -9,8 +9,8 @@ import serial
 from meterlink.device.protocol import (Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident, SensorKind,
                                 SetInterval, Setting, SettingGet, SettingKey, SettingPut, Spectrum, encode_frame,
                                 encode_message, parse_payload)
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 
 @pytest.fixture(autouse=True)

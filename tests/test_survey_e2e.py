@@ -16,8 +16,8 @@ from meterlink.storage.store import Store
 from meterlink.survey.interactive import run_interactive
 from meterlink.survey.plan import load_plan
 from meterlink.survey.run import Survey, run_plan
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 SPEED = 100.0
 

@@ -54,7 +54,7 @@ def _record(sim_kwargs, db, seconds, band, progress, label, position_m=None):
     """Record from a fresh simulated meter into db; returns the RecordSummary."""
     from meterlink.storage.recorder import Recorder
     from meterlink.storage.store import Store
-    from simulators.pty_meter import SimulatedMeter
+    from meterlink.simulators.pty_meter import SimulatedMeter
 
     task = progress.add_task(label, total=seconds)
 
@@ -147,9 +147,9 @@ def _survey(con, db, out, seed, quiet):
 
     from meterlink.survey.report import write_report
     from meterlink.survey.run import run_plan
-    from simulators.pty_meter import SimulatedMeter
+    from meterlink.simulators.pty_meter import SimulatedMeter
 
-    plan = files("simulators.scenarios").joinpath("demo-survey.toml")
+    plan = files("meterlink.simulators.scenarios").joinpath("demo-survey.toml")
     con.rule("scripted walk-around survey")
     with SimulatedMeter("demo", sensor="probe", seed=seed, speed=100.0) as sim:
         sid = run_plan(sim.port, str(plan), db, console=None if quiet else con, mover=sim.move_to)
