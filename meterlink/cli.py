@@ -18,12 +18,8 @@ import sqlite3
 import sys
 
 from meterlink import __version__
+from meterlink.cautions import SAFETY_LINE
 from meterlink.errors import MeterlinkError
-
-SAFETY_LINE = (
-    "Results support, and do not replace, an assessment by a qualified person under local "
-    "regulations. Reference levels assume far-field conditions. Stay clear of energised antennas."
-)
 
 
 def _command_modules():

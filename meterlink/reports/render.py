@@ -14,7 +14,7 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from meterlink.cli import SAFETY_LINE
+from meterlink.cautions import SAFETY_LINE
 from meterlink.reports.safetext import clean_text
 from meterlink.physics.units import format_frequency
 

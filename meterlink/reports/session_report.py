@@ -81,7 +81,7 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
     """Write report.html and values.csv for a recorded session; returns the HTML path."""
     from meterlink.physics.assessment import assess_field, assess_spectrum
     from meterlink.physics.certificate import parse_certificate
-    from meterlink.cli import SAFETY_LINE
+    from meterlink.cautions import SAFETY_LINE
     from meterlink.storage.processing import FieldSeries, calibrated_series
     from meterlink.reports.render import value_label
     from meterlink.storage.store import Store

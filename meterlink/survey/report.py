@@ -30,7 +30,7 @@ _e, _f, _utc, _verdict, _table, _img = e, num, utc, verdict, table, img
 
 def render_html(sv: dict, figures: dict[str, bytes]) -> str:
     """The report as one HTML string from a loaded survey (meterlink.survey.store.load_survey)."""
-    from meterlink.cli import SAFETY_LINE
+    from meterlink.cautions import SAFETY_LINE
     from meterlink.physics.limits import describe_standard
     from meterlink.physics.verdict import get_rule
 
