@@ -56,3 +56,37 @@ def test_a_forbidden_import_breaks_its_contract(tmp_path, module, line, contract
     assert p.returncode != 0
     assert f"{contract} BROKEN" in p.stdout, p.stdout
     assert edge in p.stdout, p.stdout
+
+
+def _relayout():
+    import importlib.util
+    spec = importlib.util.spec_from_file_location("relayout", ROOT / "tools" / "relayout.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def test_no_file_uses_the_old_flat_layout():
+    p = subprocess.run([sys.executable, str(ROOT / "tools" / "relayout.py")], capture_output=True, text=True,
+                       timeout=60)
+    assert p.returncode == 0, p.stdout  # after a merge: python tools/relayout.py --write
+
+
+@pytest.mark.parametrize("old, new", [
+    ("from meterlink.storage import Store, StorageError", "from meterlink.storage.store import Store, StorageError"),
+    ("from meterlink import calibrate, derived, spans  # noqa",
+     "from meterlink.physics import calibrate  # noqa\nfrom meterlink.station import derived\n"
+     "from meterlink.storage import spans"),
+    ("    from meterlink import storage", "    from meterlink.storage import store as storage"),
+    ("from meterlink.station import Station", "from meterlink.station.stationfile import Station"),
+    ('monkeypatch.setattr("meterlink.monitor.time.time", f)', 'monkeypatch.setattr("meterlink.station.monitor.time.time", f)'),
+    ('resources.files("meterlink.data.limits")', 'resources.files("meterlink.physics.data.limits")'),
+    ("see meterlink/storage.py and meterlink/data/limits/", "see meterlink/storage/store.py and meterlink/physics/data/limits/"),
+    ("from simulators.pty_meter import SimulatedMeter", "from meterlink.simulators.pty_meter import SimulatedMeter"),
+    ('files("simulators.scenarios")', 'files("meterlink.simulators.scenarios")'),
+    ("import simulators.scene as sc", "import meterlink.simulators.scene as sc"),
+])
+def test_relayout_rewrites_old_names_once(old, new):
+    rewrite = _relayout().rewrite
+    assert rewrite(old) == new
+    assert rewrite(new) == new  # idempotent: new-layout text is left alone
