@@ -1,4 +1,4 @@
-"""Time meterlink.averaging.running_average over N days of 1 Hz data against a plain numpy
+"""Time meterlink.physics.averaging.running_average over N days of 1 Hz data against a plain numpy
 cumulative-sum running mean of E^2 (the baseline), on the same data in the same run.
 
 Usage: python bench/bench_averaging.py [--quick] [--days N] [--window S] [--json]
@@ -14,7 +14,7 @@ import tracemalloc
 import numpy as np
 
 import _common
-from meterlink.averaging import running_average
+from meterlink.physics.averaging import running_average
 
 
 def baseline(e_v_per_m: np.ndarray, n_window: int) -> np.ndarray:

@@ -18,10 +18,12 @@ from pathlib import Path
 import numpy as np
 
 import _common
-from meterlink import calibrate, derived, spans
-from meterlink.certificate import load_certificate
-from meterlink.protocol import AXES_FRAME_LEN, Axes, AxesBatch, FrameReader, encode_message
-from meterlink.storage import READING_COLUMNS, Store
+from meterlink.physics import calibrate
+from meterlink.station import derived
+from meterlink.storage import spans
+from meterlink.physics.certificate import load_certificate
+from meterlink.device.protocol import AXES_FRAME_LEN, Axes, AxesBatch, FrameReader, encode_message
+from meterlink.storage.store import READING_COLUMNS, Store
 
 CHUNK = 5000  # frames per read: about 0.2 s of a 921600-baud link
 INSERT = ("INSERT INTO readings (session_id, " + ", ".join(READING_COLUMNS) + ") VALUES (?,?,?,?,?,?,?,?,?,?)")

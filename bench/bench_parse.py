@@ -12,7 +12,7 @@ from __future__ import annotations
 import time
 
 import _common
-from meterlink.protocol import SYNC, Axes, FrameReader, Status, encode_message, parse_payload
+from meterlink.device.protocol import SYNC, Axes, FrameReader, Status, encode_message, parse_payload
 
 LINE_BYTES_PER_S = 921600 / 10  # 8N1: start + 8 data + stop bits per byte
 

@@ -20,12 +20,12 @@ import numpy as np
 
 import _common
 import bench_stats
-from meterlink.calibrate import expected_counts
-from meterlink.certificate import load_certificate
+from meterlink.physics.calibrate import expected_counts
+from meterlink.physics.certificate import load_certificate
 from meterlink.cli import SAFETY_LINE
-from meterlink.publish import series_rows, to_csv
-from meterlink.session_report import write_session_report
-from meterlink.storage import Store
+from meterlink.station.publish import series_rows, to_csv
+from meterlink.reports.session_report import write_session_report
+from meterlink.storage.store import Store
 
 
 def plain_dump(conn, sql, params=()) -> float:

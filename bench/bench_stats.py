@@ -1,7 +1,7 @@
 """Time to compute a month's statistics from a year-long station database.
 
 The database is generated synthetically: two meters, one year of 6-minute blocks (87,600 each)
-with a daily cycle and noise, written through meterlink.derived as the monitor would, plus the
+with a daily cycle and noise, written through meterlink.station.derived as the monitor would, plus the
 running-average summaries of three windows. Prints the time and peak memory of the month query.
 """
 
@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 
 import _common
-from meterlink import derived
-from meterlink.publish import statistics
+from meterlink.station import derived
+from meterlink.station.publish import statistics
 
 T0 = 1_704_067_200.0  # 2024-01-01T00:00:00Z
 
@@ -53,7 +53,7 @@ BASELINE_SQL = ("SELECT meter, CAST((t_start_utc - ?) / 86400 AS INT) AS day, sq
 
 
 def main(argv=None) -> dict:
-    """Month statistics (meterlink.publish.statistics) vs one plain SQL aggregate of the same blocks by day."""
+    """Month statistics (meterlink.station.publish.statistics) vs one plain SQL aggregate of the same blocks by day."""
     args = _common.parser(__doc__).parse_args(argv)
     rng = np.random.default_rng(0)
     t0, t1 = T0 + 181 * 86400.0, T0 + 212 * 86400.0   # July 2024

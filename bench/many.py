@@ -8,9 +8,9 @@ import time
 from pathlib import Path
 
 from farm import Farm
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
-from simulators.truth import read_truth
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
+from meterlink.simulators.truth import read_truth
 
 
 def _cpu() -> float:

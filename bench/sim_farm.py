@@ -16,7 +16,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from simulators.pty_meter import SimulatedMeter  # noqa: E402
+from meterlink.simulators.pty_meter import SimulatedMeter  # noqa: E402
 
 
 def main(argv=None) -> int:

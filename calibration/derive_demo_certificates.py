@@ -20,11 +20,11 @@ import numpy as np
 if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from meterlink.calibrate import linearise  # noqa: E402
-from meterlink.certificate import AxisCalibration, DipoleCertificate, ProbeCertificate, dump_certificate  # noqa: E402
-from meterlink.uncertainty import Component  # noqa: E402
-from meterlink.units import antenna_factor_db_per_m  # noqa: E402
-from simulators import instruments as sim  # noqa: E402
+from meterlink.physics.calibrate import linearise  # noqa: E402
+from meterlink.physics.certificate import AxisCalibration, DipoleCertificate, ProbeCertificate, dump_certificate  # noqa: E402
+from meterlink.physics.uncertainty import Component  # noqa: E402
+from meterlink.physics.units import antenna_factor_db_per_m  # noqa: E402
+from meterlink.simulators import instruments as sim  # noqa: E402
 
 LAB = "Quillmoor Field Metrology Laboratory (invented)"
 CAL_DATE, DUE_DATE = dt.date(2026, 6, 15), dt.date(2027, 6, 15)
@@ -45,7 +45,7 @@ FREQ_RESPONSE_FIELD_V_PER_M = 5.0
 
 
 def _scenario() -> dict:
-    text = resources.files("simulators.scenarios").joinpath("demo.toml").read_text(encoding="utf-8")
+    text = resources.files("meterlink.simulators.scenarios").joinpath("demo.toml").read_text(encoding="utf-8")
     return tomllib.loads(text)
 
 

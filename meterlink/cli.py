@@ -18,12 +18,8 @@ import sqlite3
 import sys
 
 from meterlink import __version__
+from meterlink.cautions import SAFETY_LINE
 from meterlink.errors import MeterlinkError
-
-SAFETY_LINE = (
-    "Results support, and do not replace, an assessment by a qualified person under local "
-    "regulations. Reference levels assume far-field conditions. Stay clear of energised antennas."
-)
 
 
 def _command_modules():
@@ -78,7 +74,7 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except sqlite3.DatabaseError as exc:
         # a damaged page met in the middle of a command: name the file and say what to do
-        from meterlink.storage import describe_sqlite_error
+        from meterlink.storage.store import describe_sqlite_error
 
         db = getattr(args, "db", None) or "the database"
         print(f"meterlink {args.command}: error: {describe_sqlite_error(db, exc)}", file=sys.stderr)

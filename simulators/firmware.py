@@ -12,13 +12,13 @@ import math
 import numpy as np
 
 from meterlink.errors import ProtocolError
-from meterlink.protocol import (
+from meterlink.device.protocol import (
     AXIS_OVER_X, AXIS_UNDER_X, MAX_TEXT, PROTOCOL_MAJOR, PROTOCOL_MINOR, STATUS_BATTERY_LOW, STATUS_CLOCK_SET,
     STATUS_OVERRANGE, STATUS_STREAMING, STATUS_UNDERRANGE, U32_MOD, Ack, Axes, Boot, Echo, Fault, FaultCode,
     FrameReader, FrameType, Ident, SensorKind, Setting, SettingKey, Spectrum, Status, encode_message,
     parse_payload,
 )
-from simulators.instruments import probe_counts, receiver_levels_dbuv
+from meterlink.simulators.instruments import probe_counts, receiver_levels_dbuv
 
 STATUS_PERIOD_MS = 5000  # unsolicited STATUS while streaming (the spec asks for at least every 10 s)
 _FIXED_LEN = {FrameType.WHO: 0, FrameType.START: 0, FrameType.STOP: 0, FrameType.STATUS_QUERY: 0,

@@ -131,9 +131,9 @@ class ReceiverModel:
 
 
 def true_antenna_factor_db_per_m(model: ReceiverModel, freq_hz) -> np.ndarray:
-    """AF from the antenna's gain into 50 ohm, AF = sqrt(4*pi*Z0/(R*G))/lambda (meterlink.units), the
+    """AF from the antenna's gain into 50 ohm, AF = sqrt(4*pi*Z0/(R*G))/lambda (meterlink.physics.units), the
     exact form of the handbook 20 log10(f_MHz) - 29.77 - G(dBi)."""
-    from meterlink.units import antenna_factor_db_per_m
+    from meterlink.physics.units import antenna_factor_db_per_m
 
     return antenna_factor_db_per_m(_interp_logf(model.antenna_gain_dbi, freq_hz), freq_hz)
 

@@ -17,9 +17,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink.lab.session import LabError, orientation_matrix
-from simulators.instruments import probe_counts
-from simulators.pty_meter import SimulatedMeter
-from simulators.scenario import load_scenario
+from meterlink.simulators.instruments import probe_counts
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.scenario import load_scenario
 
 
 @dataclass(frozen=True)

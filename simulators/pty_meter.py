@@ -19,10 +19,10 @@ import tty
 
 import numpy as np
 
-from simulators.firmware import Firmware
-from simulators.scenario import load_scenario
-from simulators.scene import Path
-from simulators.truth import TruthLog
+from meterlink.simulators.firmware import Firmware
+from meterlink.simulators.scenario import load_scenario
+from meterlink.simulators.scene import Path
+from meterlink.simulators.truth import TruthLog
 
 _MAX_PENDING = 1 << 16  # bytes kept for a host that does not read; beyond this output is lost
 

@@ -9,8 +9,8 @@ from importlib import resources
 from pathlib import Path as FsPath
 
 from meterlink.errors import MeterlinkError, read_input_text
-from simulators.instruments import ProbeModel, ReceiverModel
-from simulators.scene import Excursion, Path, SiteScene, Transmitter
+from meterlink.simulators.instruments import ProbeModel, ReceiverModel
+from meterlink.simulators.scene import Excursion, Path, SiteScene, Transmitter
 
 
 class ScenarioError(MeterlinkError):
@@ -45,7 +45,7 @@ def _read(name_or_path: str) -> tuple[str, str, dict]:
     """(name, where, document): where names the file in messages (its path, or the packaged name)."""
     p = FsPath(name_or_path)
     try:
-        res = resources.files("simulators.scenarios").joinpath(f"{name_or_path}.toml")
+        res = resources.files("meterlink.simulators.scenarios").joinpath(f"{name_or_path}.toml")
         # a folder that happens to bear a packaged scenario's name (say ./demo, the demo's --out) does not hide it
         if p.suffix == ".toml" or p.is_file() or (p.exists() and not res.is_file()):
             return p.stem, str(p), tomllib.loads(read_input_text(p, "scenario", ScenarioError))

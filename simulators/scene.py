@@ -12,7 +12,7 @@ from typing import Protocol
 
 import numpy as np
 
-from meterlink.units import Z0_OHM
+from meterlink.physics.units import Z0_OHM
 
 ERP_TO_EIRP = 1.64  # half-wave dipole gain over isotropic (2.15 dBi), the usual ERP -> EIRP factor
 MIN_DISTANCE_M = 1.0  # the far-field formula is meaningless closer than this; clamp

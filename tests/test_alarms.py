@@ -7,10 +7,10 @@ import sys
 
 import pytest
 
-from meterlink.alarms import AlarmMachine, command_call, rule_value
-from meterlink.hooks import HookRunner
-from meterlink.station import AlarmRule
-from meterlink.units import Z0_OHM
+from meterlink.station.alarms import AlarmMachine, command_call, rule_value
+from meterlink.station.hooks import HookRunner
+from meterlink.station.stationfile import AlarmRule
+from meterlink.physics.units import Z0_OHM
 
 
 def _run(rule, values, dt=10.0, complete=None):
@@ -52,7 +52,7 @@ def test_incomplete_windows_change_nothing():
 def test_units():
     # ICNIRP 2020 Table 5 public, 30-400 MHz: E_ref 27.7 V/m, S_ref 2 W/m^2 (values from the packaged table)
     assert rule_value("pct_field", 13.85, 27.7, 2.0) == pytest.approx(50.0)
-    # plane wave S = E^2 / Z0 (Z0 from scipy.constants via meterlink.units)
+    # plane wave S = E^2 / Z0 (Z0 from scipy.constants via meterlink.physics.units)
     e = math.sqrt(1.0 * Z0_OHM)                       # S = 1 W/m^2
     assert rule_value("pct_power", e, 27.7, 2.0) == pytest.approx(50.0)
     assert rule_value("v_per_m", 3.0, 27.7, 2.0) == 3.0
@@ -79,7 +79,7 @@ def test_percent_rules_compare_instantaneous_values_where_the_standard_has_no_av
     # below 100 kHz (rms values compared as they are). A station at 50 kHz feeds a percent-of-level
     # rule each value; at 900 MHz the rule stays on its window; a V/m rule is the operator's own
     # threshold and keeps its window everywhere.
-    from meterlink.alarms import percent_rules_instantaneous
+    from meterlink.station.alarms import percent_rules_instantaneous
     assert percent_rules_instantaneous("icnirp-1998", "public", 50e3)
     assert percent_rules_instantaneous("icnirp-1998", "public", (50e3, 1e6))
     assert not percent_rules_instantaneous("icnirp-1998", "public", 900e6)

@@ -9,10 +9,10 @@ import math
 import numpy as np
 import pytest
 
-from meterlink.assessment import assess_field, assess_spectrum, governing_level
-from meterlink.calibrate import ABOVE_RANGE, FREQ_OUT
+from meterlink.physics.assessment import assess_field, assess_spectrum, governing_level
+from meterlink.physics.calibrate import ABOVE_RANGE, FREQ_OUT
 from meterlink.errors import MeterlinkError
-from meterlink.processing import FieldSeries, SpectrumSeries
+from meterlink.storage.processing import FieldSeries, SpectrumSeries
 
 
 def series(e, dt_s=1.0, u_db=1.0, flags=None):
@@ -98,7 +98,7 @@ def test_no_averaging_time_in_the_standard_compares_instantaneous_values():
     assert a.verdict.outcome == "not compliant"
     assert any("no averaging time" in n for n in a.notes)
     # Above 100 kHz the same table averages over 6 min: a band reaching below 100 kHz takes none.
-    from meterlink.assessment import averaging_time_s
+    from meterlink.physics.assessment import averaging_time_s
     assert averaging_time_s("icnirp-1998", "public", freq_hz=1e6) == pytest.approx(360.0)
     assert averaging_time_s("icnirp-1998", "public", band=(50e3, 1e6)) is None
     assert averaging_time_s("icnirp-1998", "public", band=(1e6, 100e6)) == pytest.approx(360.0)
@@ -195,7 +195,7 @@ def test_spectrum_judges_the_largest_complete_window_not_the_record_mean(dt_s):
     # average. Sweeps every 10 s for 2 h: 1 V/m, except 40 V/m for the 30 min from t = 3600 s.
     # The worst 30-min window is that burst: S = 40^2 / Z0 = 4.247 W/m2 -> S/S_L = 0.9438; the 2-h
     # mean, sqrt((1 * 90 + 1600 * 30) / 120) = 20.0 V/m, would give only a quarter of that.
-    from meterlink.units import Z0_OHM
+    from meterlink.physics.units import Z0_OHM
     t = np.arange(0.0, 7200.0, dt_s)
     e = np.where((t >= 3600) & (t < 5400), 40.0, 1.0)[:, None]
     a = assess_spectrum(_spectrum([900e6], t, e), "icnirp-2020", "public", "simple")
@@ -221,7 +221,7 @@ def test_temperature_outside_the_certificates_range_gives_no_verdict():
     # range of 5..40 degC, have no statement; inside it (or at its edges) the verdict stands.
     import dataclasses
 
-    from meterlink.assessment import Temperatures
+    from meterlink.physics.assessment import Temperatures
 
     base = series(np.full(2400, 13.85))
     for span, outcome in [((12.0, 30.0), "compliant"), ((5.0, 40.0), "compliant"),
@@ -248,7 +248,7 @@ def test_dipole_sweeps_outside_the_temperature_range_give_no_verdict():
     ratio = (14 / 376.730313 / 0.073) ** 2
     import dataclasses
 
-    from meterlink.assessment import Temperatures
+    from meterlink.physics.assessment import Temperatures
 
     t = np.arange(0, 2400, 10.0)
     s = _spectrum([100e6], t, np.full((t.size, 1), 14.0))

@@ -7,8 +7,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from meterlink import averaging
-from meterlink.averaging import (
+from meterlink.physics import averaging
+from meterlink.physics.averaging import (
     block_averages,
     block_averages_s,
     running_average,
@@ -19,7 +19,7 @@ from meterlink.averaging import (
     window_rms,
 )
 from meterlink.errors import MeterlinkError
-from meterlink.units import e_to_s
+from meterlink.physics.units import e_to_s
 
 
 def test_power_domain_not_field_average():
@@ -254,7 +254,7 @@ def test_windows_reaching_outside_the_record_are_partial_never_complete():
     # 6-min period" - a window of length T = 360 s. A 340-s record (1-s samples) covers 339 of the
     # 360 s of its last window: 94 % coverage, above the 90 % gap tolerance, yet the window begins
     # 21 s before the first sample, so it is not a 6-min average. Hand-worked.
-    from meterlink.averaging import block_averages, running_average, summarise
+    from meterlink.physics.averaging import block_averages, running_average, summarise
     t = np.arange(340.0)
     e = np.full(340, 10.0)
     ra = running_average(t, e, 360.0)

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from meterlink import protocol as p
+from meterlink.device import protocol as p
 
 i32 = st.integers(-0x80000000, 0x7FFFFFFF)
 u8 = st.integers(0, 0xFF)

@@ -10,8 +10,8 @@ import math
 import numpy as np
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from meterlink import derived
-from meterlink.storage import Store
+from meterlink.station import derived
+from meterlink.storage.store import Store
 
 REL = 1e-9  # summation order differs (bincount/cumsum vs running sums): agreement to rounding, not bits
 

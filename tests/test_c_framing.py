@@ -1,4 +1,4 @@
-"""The reference C framing in firmware/ agrees with meterlink.protocol, byte for byte.
+"""The reference C framing in firmware/ agrees with meterlink.device.protocol, byte for byte.
 
 Compiles firmware/mlframe.c + firmware/vectors_test.c with the system C compiler as strict C99 and
 drives the program over stdin (see the comment at the top of vectors_test.c for its line commands).
@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from meterlink import protocol as p
+from meterlink.device import protocol as p
 
 ROOT = Path(__file__).resolve().parents[1]
 FIRMWARE = ROOT / "firmware"

@@ -8,12 +8,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from meterlink import units
-from meterlink.calibrate import (ABOVE_RANGE, BELOW_RANGE, EXPIRED, FREQ_ASSUMED, FREQ_OUT, NEAR_FIELD,
+from meterlink.physics import units
+from meterlink.physics.calibrate import (ABOVE_RANGE, BELOW_RANGE, EXPIRED, FREQ_ASSUMED, FREQ_OUT, NEAR_FIELD,
                                  calibrate_axes, calibrate_spectrum, combine_orientations, expected_counts,
                                  flag_names, frequency_correction_db, identity_certificate, linearise)
-from meterlink.certificate import AxisCalibration, DipoleCertificate, ProbeCertificate
-from meterlink.uncertainty import Component
+from meterlink.physics.certificate import AxisCalibration, DipoleCertificate, ProbeCertificate
+from meterlink.physics.uncertainty import Component
 
 REF_HZ = 1e9
 K_COUNTS = 1000.0
@@ -251,13 +251,13 @@ def _demo_models():
     import tomllib
     from importlib import resources
 
-    from simulators import instruments as sim
-    sc = tomllib.loads(resources.files("simulators.scenarios").joinpath("demo.toml").read_text(encoding="utf-8"))
+    from meterlink.simulators import instruments as sim
+    sc = tomllib.loads(resources.files("meterlink.simulators.scenarios").joinpath("demo.toml").read_text(encoding="utf-8"))
     return sim, sim.ProbeModel.from_dict(sc["probe"]), sim.ReceiverModel.from_dict(sc["receiver"])
 
 
 def test_demo_probe_certificate_recovers_simulated_fields_within_u():
-    from meterlink.certificate import load_certificate
+    from meterlink.physics.certificate import load_certificate
     sim, probe, _ = _demo_models()
     cert = load_certificate("demo-probe")
     rng = np.random.default_rng(11)
@@ -281,7 +281,7 @@ def test_demo_probe_certificate_recovers_simulated_fields_within_u():
 
 
 def test_demo_dipole_certificate_recovers_simulated_fields_within_u():
-    from meterlink.certificate import load_certificate
+    from meterlink.physics.certificate import load_certificate
     sim, _, rx = _demo_models()
     cert = load_certificate("demo-dipole")
     rng = np.random.default_rng(12)

@@ -7,12 +7,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from meterlink.calibrate import identity_certificate
-from meterlink.certificate import (AxisCalibration, DipoleCertificate, ProbeCertificate, certificate_status,
+from meterlink.physics.calibrate import identity_certificate
+from meterlink.physics.certificate import (AxisCalibration, DipoleCertificate, ProbeCertificate, certificate_status,
                                    dump_certificate, load_certificate, packaged_certificates,
                                    parse_certificate)
 from meterlink.errors import CertificateError
-from meterlink.uncertainty import Component
+from meterlink.physics.uncertainty import Component
 
 
 def _dipole() -> DipoleCertificate:

@@ -14,12 +14,12 @@ import re
 import pytest
 
 from meterlink.cli import main
-from meterlink.limits import NOT_CHECKED
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
+from meterlink.physics.limits import NOT_CHECKED
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
 from meterlink.survey.report import write_report
 from meterlink.survey.run import run_plan
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 FORBIDDEN = ("from memory", "shared reference", "reference-levels", "verified")
 
@@ -96,7 +96,7 @@ def test_survey_report_shows_the_check(tmp_path, standard, expected):
 def test_multi_frequency_status_names_levels_and_rule():
     # Two FM emitters under 47 CFR 1.1310 Table 1 (B) (checked): the levels name that text, the
     # summation rule (not read in a primary text) says it is not yet checked.
-    from meterlink.exposure import multi_frequency
+    from meterlink.physics.exposure import multi_frequency
 
     res = multi_frequency([94.3e6, 101.8e6], standard="fcc-1310", tier="public", e_v_per_m=[1.0, 2.0])
     assert res.status == ("levels: checked against 47 CFR 1.1310 Table 1 (B), via a published reproduction; "

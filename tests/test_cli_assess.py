@@ -6,9 +6,9 @@ import sqlite3
 import pytest
 
 from meterlink.cli import SAFETY_LINE, main
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 
 @pytest.fixture(scope="module")
@@ -38,7 +38,7 @@ def test_assess_json_labels_both_percent_terms_and_records_the_rule(recorded_db,
 def test_assess_outside_the_certificates_frequency_range_is_not_assessable(recorded_db, capsys):
     # The demo probe's certificate covers a finite frequency range; 50 GHz lies outside it, where
     # neither the response nor the uncertainty is known: no verdict, with the reason, in JSON and text.
-    from meterlink.certificate import load_certificate
+    from meterlink.physics.certificate import load_certificate
     lo, hi = load_certificate("demo-probe").freq_range_hz
     assert hi < 50e9
     assert main(["assess", "--db", str(recorded_db), "--standard", "icnirp-2020", "--tier", "public",
@@ -122,7 +122,7 @@ def _record_at(tmp_path, temp_c: float):
     """Record 7 device minutes (a full 6-min FCC window) with the meter held at temp_c."""
     import dataclasses
 
-    from simulators.scenario import load_scenario
+    from meterlink.simulators.scenario import load_scenario
 
     sc = load_scenario("demo")
     sc = dataclasses.replace(sc, site={**sc.site, "temp_mean_c": float(temp_c), "temp_daily_amp_c": 0.0})
@@ -136,7 +136,7 @@ def _record_at(tmp_path, temp_c: float):
 def test_meter_temperature_outside_the_certificates_range_is_not_assessable(tmp_path, capsys):
     # The demo probe's certificate states 5..40 degC (its climatic-chamber range). FCC 47 CFR 1.1310
     # Table 1 (A), occupational, 30-300 MHz: 61.4 V/m over 6 min; 7 minutes recorded fill a window.
-    from meterlink.certificate import load_certificate
+    from meterlink.physics.certificate import load_certificate
     assert load_certificate("demo-probe").temp_range_c == (5.0, 40.0)
     argv = ["--standard", "fcc-1310", "--tier", "occupational"]
     hot, mild = _record_at(tmp_path, 47.5), _record_at(tmp_path, 30.0)

@@ -5,7 +5,7 @@ import sys
 
 import pytest
 
-from meterlink.storage import Store
+from meterlink.storage.store import Store
 
 PNG = b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR" + bytes(64)
 

@@ -13,8 +13,8 @@ import sys
 
 import pytest
 
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 SIGPIPE_STATUS = 128 + signal.SIGPIPE   # 141 on Linux
 

@@ -3,9 +3,9 @@
 import json
 
 from meterlink.cli import main
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 
 def test_sessions_lists_counts_and_last_verdict_and_events(tmp_path, capsys):

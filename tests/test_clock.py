@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from hypothesis import given, strategies as st
 
-from meterlink.clock import TICK_MOD, DeviceClock, TickUnwrapper, drift_ratio
+from meterlink.device.clock import TICK_MOD, DeviceClock, TickUnwrapper, drift_ratio
 
 
 def test_unwrap_across_the_2_32_wrap():
@@ -94,7 +94,7 @@ def test_restart_resets_mapping_and_pairs():
 
 def test_new_boot_never_maps_before_times_already_given_out():
     """After a restart of a fast-running device, the session's reading times stay in order."""
-    from meterlink.clock import DeviceClock
+    from meterlink.device.clock import DeviceClock
 
     clock = DeviceClock()
     clock.sync(1, 0, 1000.0)

@@ -1,7 +1,7 @@
 """Conformance check against the simulated meter on a pty: clean passes, each rule-breaking switch fails its item.
 
 The rules are those of docs/protocol.md (meterlink wire protocol 1.0); the interval tolerances are
-this project's own acceptance choice (meterlink.conformance), not figures of a standard.
+this project's own acceptance choice (meterlink.device.conformance), not figures of a standard.
 """
 
 import json
@@ -9,11 +9,11 @@ import json
 import pytest
 
 from meterlink.cli import main
-from meterlink.commander import Commander
-from meterlink.conformance import ITEMS, run_checks
-from meterlink.protocol import STATUS_STREAMING, FrameType, SettingKey
-from meterlink.transport import open_link
-from simulators.pty_meter import SimulatedMeter
+from meterlink.device.commander import Commander
+from meterlink.device.conformance import ITEMS, run_checks
+from meterlink.device.protocol import STATUS_STREAMING, FrameType, SettingKey
+from meterlink.device.transport import open_link
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 SPEED = 200
 
@@ -94,9 +94,9 @@ def test_cli_usage_errors_exit_2(capsys):
 
 def test_restart_without_boot_is_caught_from_seq_and_tick():
     """docs/protocol.md Sequence numbers: a restart shows as SEQ near zero with TICK going back."""
-    from meterlink.commander import Received
-    from meterlink.conformance import Observations, evaluate
-    from meterlink.protocol import Frame, FrameType
+    from meterlink.device.commander import Received
+    from meterlink.device.conformance import Observations, evaluate
+    from meterlink.device.protocol import Frame, FrameType
 
     def frames(seqs_ticks):
         return [Received(Frame(FrameType.AXES, s, t, bytes(14)), 0.0) for s, t in seqs_ticks]
@@ -193,9 +193,9 @@ def test_reading_trailing_a_reply_by_half_an_interval_is_no_restart():
     """docs/protocol.md: a reading's TICK is the middle of its integration, so a reading sent just after a
     reply may carry an earlier TICK (by up to half the interval); with SEQ stepping by 2 that once read
     as a restart without BOOT under load. A TICK back by more than the interval still is one."""
-    from meterlink.commander import Received
-    from meterlink.conformance import Observations, evaluate
-    from meterlink.protocol import Frame
+    from meterlink.device.commander import Received
+    from meterlink.device.conformance import Observations, evaluate
+    from meterlink.device.protocol import Frame
 
     def frames(items):
         return [Received(Frame(t, s, tick, bytes(14) if t == FrameType.AXES else b""), 0.0) for t, s, tick in items]

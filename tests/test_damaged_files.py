@@ -14,9 +14,9 @@ from pathlib import Path
 
 import pytest
 
-from meterlink.recorder import Recorder
-from meterlink.storage import Store, StorageError
-from simulators.pty_meter import SimulatedMeter
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store, StorageError
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 PAGE = 4096
 
@@ -264,8 +264,8 @@ def test_salvage_of_a_sound_station_file_copies_every_row(tmp_path):
     import threading
     import time
 
-    from meterlink.monitor import Monitor
-    from meterlink.station import parse_station
+    from meterlink.station.monitor import Monitor
+    from meterlink.station.stationfile import parse_station
 
     db = tmp_path / "station.db"
     with SimulatedMeter("station", meter=1, seed=5, speed=2000.0) as sim:
@@ -307,7 +307,7 @@ def _schema_v2_file(path: Path) -> None:
     """A file as meterlink wrote it before the span index (schema 2), with one session of readings."""
     import sqlite_utils
 
-    from meterlink.schema import MIGRATIONS
+    from meterlink.storage.schema import MIGRATIONS
 
     db = sqlite_utils.Database(path)
     for v in (1, 2):

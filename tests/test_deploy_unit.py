@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from meterlink.hooks import STOP_WAIT_S, TERM_GRACE_S
+from meterlink.station.hooks import STOP_WAIT_S, TERM_GRACE_S
 
 ROOT = Path(__file__).resolve().parents[1]
 UNIT = ROOT / "deploy" / "meterlink-monitor.service"

@@ -9,13 +9,13 @@ import time
 import pytest
 
 from meterlink.cli import main
-from meterlink.commander import Commander, DeviceFault
+from meterlink.device.commander import Commander, DeviceFault
 from meterlink.commands.device import parse_setting
 from meterlink.errors import MeterlinkError
-from meterlink.protocol import FaultCode, SettingKey
-from meterlink.storage import Store
-from meterlink.transport import open_link
-from simulators.pty_meter import SimulatedMeter
+from meterlink.device.protocol import FaultCode, SettingKey
+from meterlink.storage.store import Store
+from meterlink.device.transport import open_link
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 
 @pytest.fixture

@@ -6,13 +6,13 @@ import numpy as np
 import pytest
 
 from meterlink.errors import MeterlinkError
-from meterlink.exposure import (
+from meterlink.physics.exposure import (
     extrapolate,
     multi_frequency,
     near_field_check,
     percent_of_limit,
 )
-from meterlink.units import Z0_OHM
+from meterlink.physics.units import Z0_OHM
 
 NAN = float("nan")
 
@@ -22,7 +22,7 @@ def test_icnirp_2020_public_whole_body_three_emitters():
     #   30-400 MHz: E = 27.7 V/m, S = 2 W/m2;  400-2000 MHz: E = 1.375 f^0.5, S = f/200 (f in MHz)
     #   -> 900 MHz: E_L = 41.25 V/m, S_L = 4.5 W/m2;  2-300 GHz: S = 10 W/m2.
     # Summation (ICNIRP 2020 Appendix / eq. for simultaneous exposure): squared field ratios to
-    # 30 MHz, S/S_L above, as encoded in meterlink.limits. Worked by hand:
+    # 30 MHz, S/S_L above, as encoded in meterlink.physics.limits. Worked by hand:
     #   100 MHz, 13.85 V/m: (13.85/27.7)^2 = 0.25, but S = E^2/Z0 = 0.50918 W/m2 -> S/S_L = 0.25459
     #   900 MHz, 20.625 V/m: (20.625/41.25)^2 = 0.25; S/S_L = 1.12916/4.5 = 0.25093
     #   2.1 GHz, S = 2.5 W/m2: 2.5/10 = 0.25
@@ -56,7 +56,7 @@ def test_icnirp_2020_public_whole_body_three_emitters():
 
 def test_icnirp_1998_thermal_formula_term():
     # ICNIRP 1998 (Health Phys. 74(4)) eq. (10): for 100 kHz-1 MHz the E term is (E_i/c)^2 with
-    # c = 87/f^0.5 V/m (f in MHz), as encoded in meterlink.limits (status: partly verified).
+    # c = 87/f^0.5 V/m (f in MHz), as encoded in meterlink.physics.limits (status: partly verified).
     # 0.25 MHz, E = 87 V/m: c = 87/0.5 = 174 V/m -> (87/174)^2 = 0.25.
     r = multi_frequency([0.25e6], standard="icnirp-1998", tier="public",
                         e_v_per_m=[87.0], h_a_per_m=[0.1])

@@ -24,8 +24,8 @@ from collections import Counter
 import numpy as np
 import pytest
 
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 STATION = """
 format = "meterlink-station/1"
@@ -185,7 +185,7 @@ def tally(truth_path, db):
         kinds = Counter(k for (k,) in c.execute("select kind from events"))
         down = sum(1 for g in gaps if g.get("while_down"))
         epochs = c.execute("select count(*) from epochs").fetchone()[0]
-    from meterlink import spans
+    from meterlink.storage import spans
     with sqlite3.connect(db) as c:
         span_problems = spans.check(c)
     counts = Counter(rows)

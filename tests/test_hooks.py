@@ -1,4 +1,4 @@
-"""Alarm commands (meterlink/hooks.py): timeout, the whole process group killed, a minimal environment,
+"""Alarm commands (meterlink/station/hooks.py): timeout, the whole process group killed, a minimal environment,
 millisecond timestamps, acquisition going on meanwhile, and a stop that never waits on a hung hook.
 
 The hung hook is a real shell script that ignores SIGTERM (so only the group SIGKILL ends it) and
@@ -15,9 +15,9 @@ import threading
 import time
 from pathlib import Path
 
-from meterlink.alarms import AlarmEvent
-from meterlink.hooks import HOOK_PATH, HookRunner, iso_ms
-from simulators.pty_meter import SimulatedMeter
+from meterlink.station.alarms import AlarmEvent
+from meterlink.station.hooks import HOOK_PATH, HookRunner, iso_ms
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ROOT = Path(__file__).resolve().parents[1]
 

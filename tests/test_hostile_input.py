@@ -15,12 +15,14 @@ import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from meterlink import calibrate, spans
-from meterlink.certificate import load_certificate
-from meterlink.protocol import (Ack, Axes, Boot, Fault, FrameReader, FrameType, Ident, Spectrum, Status,
+from meterlink.physics import calibrate
+
+from meterlink.storage import spans
+from meterlink.physics.certificate import load_certificate
+from meterlink.device.protocol import (Ack, Axes, Boot, Fault, FrameReader, FrameType, Ident, Spectrum, Status,
                                 encode_frame, encode_message)
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
 
 MARK = 10_000_000  # marker readings use seq from here; hostile frames stay below
 NASTY = ["<script>alert(1)</script>", "x'); DROP TABLE readings;--", "\x1b[2J\x07\x00bell",
@@ -236,7 +238,7 @@ def test_extreme_values_stored_exactly(tmp_path):
 
 
 def test_calibration_of_absurd_counts_flags_instead_of_failing():
-    # Bounds behaviour as documented at the top of meterlink/calibrate.py (project documentation).
+    # Bounds behaviour as documented at the top of meterlink/physics/calibrate.py (project documentation).
     cert = load_certificate("demo-probe")
     raw = np.array([[-2**31, -2**31, -2**31], [2**31 - 1, 2**31 - 1, 2**31 - 1], [0, 0, 0]], dtype=np.int64)
     for f in (0.0, 4e12, None):

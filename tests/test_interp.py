@@ -7,7 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.interpolate import PchipInterpolator
 
-from meterlink.interp import MonotoneCubic
+from meterlink.physics.interp import MonotoneCubic
 
 steps = st.lists(st.floats(0.01, 10.0), min_size=1, max_size=25)
 # level steps below 1e-9 are taken as flat: scipy itself overflows dividing by such tiny slopes

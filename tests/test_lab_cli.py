@@ -7,11 +7,11 @@ import datetime as dt
 
 import pytest
 
-from meterlink.certificate import load_certificate
+from meterlink.physics.certificate import load_certificate
 from meterlink.cli import SAFETY_LINE, main
 from meterlink.lab import procedures as pr
 from meterlink.lab.session import LabSession
-from simulators.lab import InProcessLab
+from meterlink.simulators.lab import InProcessLab
 from tests.conftest import ROOT
 
 SESSION_TOML = """

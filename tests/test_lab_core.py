@@ -115,7 +115,7 @@ def test_certificate_and_page_carry_the_corrected_field_standard_part():
     # from the rows above: 0.004120 + 0.008362 + 0.002465 + 0.001110 = 0.016057 -> u = 0.12672,
     # U = 0.2534 dB, stated rounded up: 0.26 dB (with c = 1/2 it would read 0.14 dB).
     from meterlink.lab import certify, html, procedures as pr
-    from simulators.lab import InProcessLab
+    from meterlink.simulators.lab import InProcessLab
     plan = pr.full_plan(SESSION, freqs=(1e8, 1e9, 3e9), levels=(0.2, 1, 5, 20), iso_step_deg=45)
     cal = certify.analyse(SESSION, pr.run_plan(plan, InProcessLab(seed=3), repeats=3))
     ref = next(c for c in cal.certificate.uncertainties if c.name == "reference_field")

@@ -8,15 +8,15 @@ import math
 import numpy as np
 import pytest
 
-from meterlink.calibrate import calibrate_axes, linearise
-from meterlink.certificate import dump_certificate, load_certificate
+from meterlink.physics.calibrate import calibrate_axes, linearise
+from meterlink.physics.certificate import dump_certificate, load_certificate
 from meterlink.lab import certify
 from meterlink.lab import procedures as pr
 from meterlink.lab.meter import MeterBench
 from meterlink.lab.session import LabError, LabSession, orientation_matrix
-from meterlink.link import MeterLink
-from simulators.instruments import axis_gain_db, detector_counts_float
-from simulators.lab import InProcessLab, LabMeter
+from meterlink.device.link import MeterLink
+from meterlink.simulators.instruments import axis_gain_db, detector_counts_float
+from meterlink.simulators.lab import InProcessLab, LabMeter
 
 FIELD_ERROR_DB = 0.2   # the bench's field-standard error, unknown to the lab
 SESSION = LabSession("ML-EP3 (simulated)", "EP-4417", "Test lab (invented)", "LAB-T1", dt.date(2027, 6, 1),
@@ -113,7 +113,7 @@ def test_temperature_coefficient_recovered_and_ols_as_scipy():
     are the ordinary least-squares ones (compared with scipy.stats.linregress)."""
     from scipy.stats import linregress
 
-    from simulators.scenario import load_scenario
+    from meterlink.simulators.scenario import load_scenario
     truth = load_scenario("demo").probe.temp_coeff_db_per_c
     lab = InProcessLab(field_error_db=FIELD_ERROR_DB, seed=5)
     plan = pr.full_plan(SESSION, freqs=(1e8, 1e9, 3e9), levels=(0.2, 1, 3, 10, 30), iso_step_deg=45)
@@ -130,7 +130,7 @@ def test_temperature_coefficient_recovered_and_ols_as_scipy():
     assert c.temp_coeff_halfwidth_db_per_c >= math.sqrt(3) * tr.u_coeff_db_per_c
     # the certificate states where the coefficient holds: the chamber's span, and it survives the file
     assert c.temp_range_c == (min(pr.TEMPS_C), max(pr.TEMPS_C))
-    from meterlink.certificate import dump_certificate, parse_certificate
+    from meterlink.physics.certificate import dump_certificate, parse_certificate
     assert parse_certificate(dump_certificate(c)).temp_range_c == c.temp_range_c
     # without chamber steps no range is claimed (none measured), unless kept from the previous certificate
     plain = certify.analyse(SESSION, [r for r in res if r.step.procedure != "temperature"])
@@ -169,7 +169,7 @@ def test_end_to_end_over_the_pty(tmp_path):
             lm.set_temperature(38.0)  # a hot day: 15 degC above the calibration
             bench.apply(f, e_true / 10 ** (FIELD_ERROR_DB / 20), (0.3, 0.5, 0.8), 30.0, 0.0)
             hot = bench.read(8)
-    from simulators.scenario import load_scenario
+    from meterlink.simulators.scenario import load_scenario
     truth = load_scenario("demo").probe.temp_coeff_db_per_c  # the simulated probe's own coefficient
     assert cert.temp_coeff_db_per_c == pytest.approx(truth, abs=0.002)
     r_hot = calibrate_axes(cert, hot, f, temp_c=38.0, today=SESSION.cal_date)
@@ -217,7 +217,7 @@ def test_every_reading_after_the_returned_tick_saw_the_new_set_up(tmp_path):
     """
     import time
 
-    from simulators.truth import read_truth
+    from meterlink.simulators.truth import read_truth
     truth = tmp_path / "truth.jsonl"
     applied = []
     with LabMeter(seed=6, speed=2000, truth_path=truth) as lm:

@@ -12,7 +12,7 @@ PINNED holds the values of tables no one has yet compared with a primary text. T
 checks against the published documents: they only pin today's data so an accidental edit
 shows, and they assert the value is still marked "not yet checked against the primary text"
 (checking a table means moving its values to CHECKED with the text they were read in).
-Breakpoint checks use the convention documented in meterlink/limits.py (lower band unless a
+Breakpoint checks use the convention documented in meterlink/physics/limits.py (lower band unless a
 row says otherwise).
 """
 
@@ -24,9 +24,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from meterlink import limits
+from meterlink.physics import limits
 from meterlink.errors import MeterlinkError
-from meterlink.units import C_M_PER_S, Z0_OHM
+from meterlink.physics.units import C_M_PER_S, Z0_OHM
 
 MHz, GHz, kHz = 1e6, 1e9, 1e3
 I20, I98 = "ICNIRP 2020 Health Phys 118(5)", "ICNIRP 1998 Health Phys 74(4)"
@@ -439,7 +439,7 @@ def test_levels_consistent_with_z0(table, x):
 
 
 def _breakpoints():
-    from meterlink.limits import _table  # row bounds are internal; the values go through the API
+    from meterlink.physics.limits import _table  # row bounds are internal; the values go through the API
 
     for std, tier, kind, _lo, _hi in TABLES:
         rows = _table(std, tier, kind).rows
@@ -505,7 +505,7 @@ def test_breakpoint_belongs_to_lower_band_unless_inclusive():
 def test_most_restrictive_level_finds_the_step_at_a_breakpoint():
     """ICNIRP 2020 Table 5 public (as encoded; not yet checked): 27.7 V/m over 30-400 MHz, 1.375*sqrt(f_M) above,
     i.e. 27.5 V/m just above 400 MHz; S is 2 W/m2 on both sides (f_M/200 at 400 MHz)."""
-    from meterlink.limits import most_restrictive_level
+    from meterlink.physics.limits import most_restrictive_level
 
     rl = most_restrictive_level("icnirp-2020", "public", 80e6, 4e9)
     assert rl.e_v_per_m == pytest.approx(27.5, rel=1e-6) and rl.freq_hz > 400e6
@@ -565,7 +565,7 @@ FORBIDDEN = ("from memory", "shared reference", "reference-levels.md", "/work/",
 def test_no_developer_notes_in_the_data_or_what_users_see():
     from importlib import resources
 
-    for p in resources.files("meterlink.data.limits").iterdir():
+    for p in resources.files("meterlink.physics.data.limits").iterdir():
         if p.name.endswith(".toml"):
             text = p.read_text(encoding="utf-8").lower()
             assert not [w for w in FORBIDDEN if w in text], p.name

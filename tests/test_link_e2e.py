@@ -8,11 +8,11 @@ import time
 
 import pytest
 
-from meterlink.link import MeterLink, Reading
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.device.link import MeterLink, Reading
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 SPEED = 100.0
 

@@ -19,12 +19,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from meterlink.certificate import CertificateError, load_certificate
+from meterlink.physics.certificate import CertificateError, load_certificate
 from meterlink.errors import MeterlinkError
 from meterlink.lab.session import LabError, load_session
-from meterlink.station import StationFileError, load_station
+from meterlink.station.stationfile import StationFileError, load_station
 from meterlink.survey.plan import PlanError, load_plan
-from simulators.scenario import ScenarioError, load_scenario
+from meterlink.simulators.scenario import ScenarioError, load_scenario
 
 ROOT = Path(__file__).resolve().parent.parent
 NAN, INF = float("nan"), float("inf")

@@ -8,11 +8,11 @@ import threading
 import time
 from collections import Counter
 
-from meterlink import spans
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.storage import spans
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 SPEED = 50.0
 
@@ -157,8 +157,8 @@ max_gap_s = 30
 def _monitor(tmp_path, port, speed):
     import sys
 
-    from meterlink.monitor import Monitor
-    from meterlink.station import parse_station
+    from meterlink.station.monitor import Monitor
+    from meterlink.station.stationfile import parse_station
 
     text = (STATION.replace("PORT", port).replace("PYTHON", sys.executable)
             .replace("HOOKLOG", str(tmp_path / "hook.log")))

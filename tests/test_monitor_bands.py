@@ -3,7 +3,7 @@
 The simulated receiver sweeps x, y, z (one orientation per interval); the monitor calibrates each
 orientation with the demo dipole certificate, sums them in power and keeps 6-minute blocks per
 configured band, for all lines together and for the total exposure ratio. Expected values come
-from the truth log (the field each transmitter really set up) reduced with meterlink.averaging, and
+from the truth log (the field each transmitter really set up) reduced with meterlink.physics.averaging, and
 reference levels from ICNIRP 2020, Health Phys 118(5), Table 5 (whole body, general public):
 S_L = 2 W/m^2 for >30-400 MHz, f_MHz/200 W/m^2 for >400 MHz-2 GHz, 10 W/m^2 for >2-300 GHz,
 summed as S/S_L (ICNIRP 2020, Appendix A, summation for whole-body exposure).
@@ -19,11 +19,11 @@ import time
 import numpy as np
 from scipy.constants import physical_constants
 
-from meterlink import averaging
-from meterlink.monitor import Monitor
-from meterlink.station import parse_station
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.physics import averaging
+from meterlink.station.monitor import Monitor
+from meterlink.station.stationfile import parse_station
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 Z0 = physical_constants["characteristic impedance of vacuum"][0]
 INTERVAL_S = 2.0

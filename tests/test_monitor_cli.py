@@ -20,9 +20,9 @@ import pytest
 from scipy.constants import physical_constants
 
 from meterlink.cli import SAFETY_LINE, main
-from meterlink.monitor import Monitor
-from meterlink.station import parse_station
-from simulators.pty_meter import SimulatedMeter
+from meterlink.station.monitor import Monitor
+from meterlink.station.stationfile import parse_station
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 Z0 = physical_constants["characteristic impedance of vacuum"][0]
 STATION = """

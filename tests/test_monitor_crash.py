@@ -18,9 +18,9 @@ from pathlib import Path
 
 import numpy as np
 
-from meterlink import spans
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.storage import spans
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 ROOT = Path(__file__).resolve().parents[1]
 KILLS = 20

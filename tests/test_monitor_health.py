@@ -16,10 +16,10 @@ import threading
 import time
 from pathlib import Path
 
-from meterlink.monitor import Monitor
-from meterlink.publish import current_state
-from meterlink.station import parse_station
-from simulators.pty_meter import SimulatedMeter
+from meterlink.station.monitor import Monitor
+from meterlink.station.publish import current_state
+from meterlink.station.stationfile import parse_station
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -13,8 +13,8 @@ import threading
 import time
 from pathlib import Path
 
-from meterlink.lock import StationLock, StationLockedError, lock_path
-from simulators.pty_meter import SimulatedMeter
+from meterlink.station.lock import StationLock, StationLockedError, lock_path
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -120,8 +120,8 @@ def test_lock_in_process(tmp_path):
 
 def test_failed_open_gives_the_lock_back(tmp_path):
     from meterlink.errors import CertificateError
-    from meterlink.monitor import Monitor
-    from meterlink.station import parse_station
+    from meterlink.station.monitor import Monitor
+    from meterlink.station.stationfile import parse_station
 
     st = parse_station(STATION.replace("PORT", "/dev/null").replace('"demo-probe"', '"missing-cert.toml"'),
                        tmp_path / "station.toml")

@@ -19,11 +19,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from meterlink import averaging, spans
-from meterlink.monitor import Monitor
-from meterlink.station import parse_station
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.physics import averaging
+
+from meterlink.storage import spans
+from meterlink.station.monitor import Monitor
+from meterlink.station.stationfile import parse_station
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 STATION = """
 format = "meterlink-station/1"

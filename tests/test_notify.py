@@ -13,8 +13,8 @@ import tempfile
 import time
 from pathlib import Path
 
-from meterlink.notify import Notifier
-from simulators.pty_meter import SimulatedMeter
+from meterlink.station.notify import Notifier
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ROOT = Path(__file__).resolve().parents[1]
 

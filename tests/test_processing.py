@@ -8,14 +8,14 @@ import dataclasses
 import numpy as np
 import pytest
 
-from meterlink.calibrate import ABOVE_RANGE, identity_certificate
-from meterlink.certificate import load_certificate
+from meterlink.physics.calibrate import ABOVE_RANGE, identity_certificate
+from meterlink.physics.certificate import load_certificate
 from meterlink.errors import MeterlinkError
-from meterlink.processing import apply_certificate, calibrated_series, field_series, spectrum_series
-from meterlink.recorder import Recorder
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.storage.processing import apply_certificate, calibrated_series, field_series, spectrum_series
+from meterlink.storage.recorder import Recorder
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 BAND = (87.5e6, 3.8e9)  # the demo site's emitters, declared by the operator
 

@@ -1,4 +1,4 @@
-"""meterlink.protocol against docs/protocol.md, the CRC catalogue, and its own invariants.
+"""meterlink.device.protocol against docs/protocol.md, the CRC catalogue, and its own invariants.
 
 Sources named beside the checks:
 - docs/protocol.md, "meterlink wire protocol, version 1.0" (the authoritative spec; its worked examples).
@@ -19,7 +19,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from meterlink import protocol as p
+from meterlink.device import protocol as p
 from meterlink.errors import ProtocolError
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -401,7 +401,7 @@ def test_bogus_header_in_garbage_delays_a_frame_by_at_most_one_frame_length():
 
 def test_drop_pending_releases_frames_held_behind_a_stray_header():
     """A stray sync pair claiming 240 bytes holds later frames; drop_pending frees them unharmed."""
-    from meterlink.protocol import FrameReader, encode_frame
+    from meterlink.device.protocol import FrameReader, encode_frame
 
     good = encode_frame(0x45, 1, 2, b"x" * 14)
     stray = b"\xa7\x3c\x01\x45\xf0" + b"\0" * 8

@@ -9,8 +9,8 @@ import pytest
 
 from conftest import ROOT
 from meterlink.cli import main
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 
 def run_cli(*args, cwd):

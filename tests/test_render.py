@@ -3,9 +3,9 @@
 import numpy as np
 from rich.console import Console
 
-from meterlink.assessment import assess_field
-from meterlink.processing import FieldSeries
-from meterlink.render import assessment_dict, assessment_renderable, field_trace
+from meterlink.physics.assessment import assess_field
+from meterlink.storage.processing import FieldSeries
+from meterlink.reports.render import assessment_dict, assessment_renderable, field_trace
 
 
 def text_of(renderable, width=100) -> str:

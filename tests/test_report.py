@@ -12,12 +12,12 @@ import pytest
 from conftest import ROOT
 from meterlink.cli import SAFETY_LINE
 from meterlink.errors import MeterlinkError
-from meterlink.storage import Store
+from meterlink.storage.store import Store
 from meterlink.survey.report import write_report
 from meterlink.survey.run import run_plan
 from meterlink.survey.store import load_survey
-from simulators.pty_meter import SimulatedMeter
-from simulators.scenario import load_scenario
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.scenario import load_scenario
 
 EVIL = "<script>alert(1)</script>"
 PLAN = {

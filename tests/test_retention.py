@@ -1,4 +1,4 @@
-"""Retention of every growing table of a station database (meterlink/retention.py), on real files.
+"""Retention of every growing table of a station database (meterlink/station/retention.py), on real files.
 
 1. The retention pass alone on a real SQLite file: raw readings, status rows, events (of the station's
    sessions and of the station itself) and the derived series are each cut at their own age, in
@@ -15,11 +15,13 @@ import sqlite3
 import threading
 import time
 
-from meterlink import derived, retention, spans
-from meterlink.monitor import Monitor
-from meterlink.station import Retention, parse_station
-from meterlink.storage import Store, event_row
-from simulators.pty_meter import SimulatedMeter
+from meterlink.station import derived, retention
+
+from meterlink.storage import spans
+from meterlink.station.monitor import Monitor
+from meterlink.station.stationfile import Retention, parse_station
+from meterlink.storage.store import Store, event_row
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 DAY = 86400.0
 NOW = 2_000_000_000.0

@@ -21,15 +21,15 @@ import time
 import pytest
 
 from meterlink.cli import main
-from meterlink.htmlpage import e as html_text
-from meterlink.monitor import Monitor
-from meterlink.render import escape as render_escape
-from meterlink.safetext import clean_text, csv_cell
-from meterlink.station import parse_station
+from meterlink.reports.htmlpage import e as html_text
+from meterlink.station.monitor import Monitor
+from meterlink.reports.render import escape as render_escape
+from meterlink.reports.safetext import clean_text, csv_cell
+from meterlink.station.stationfile import parse_station
 from meterlink.survey.report import write_report
 from meterlink.survey.run import run_plan
-from simulators.pty_meter import SimulatedMeter
-from simulators.scenario import load_scenario
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.scenario import load_scenario
 
 CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f]")        # every C0/C1 code but tab and newline
 

@@ -15,10 +15,10 @@ from pathlib import Path
 
 import pytest
 
-from meterlink.monitor import Monitor
-from meterlink.station import parse_station
-from meterlink.storage import Store
-from simulators.pty_meter import SimulatedMeter
+from meterlink.station.monitor import Monitor
+from meterlink.station.stationfile import parse_station
+from meterlink.storage.store import Store
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 DOC = Path(__file__).resolve().parent.parent / "docs" / "schema.md"
 STATION = """

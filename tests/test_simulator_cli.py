@@ -10,7 +10,7 @@ from pathlib import Path
 
 import serial
 
-from meterlink.protocol import Empty, Frame, FrameReader, FrameType, encode_message
+from meterlink.device.protocol import Empty, Frame, FrameReader, FrameType, encode_message
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -6,12 +6,12 @@ from importlib import resources
 
 import numpy as np
 
-from simulators.instruments import (ProbeModel, ReceiverModel, axis_gain_db, probe_counts,
+from meterlink.simulators.instruments import (ProbeModel, ReceiverModel, axis_gain_db, probe_counts,
                                     receiver_levels_dbuv, true_antenna_factor_db_per_m, true_cable_loss_db)
 
 
 def _tables():
-    d = tomllib.loads(resources.files("simulators.scenarios").joinpath("demo.toml").read_text())
+    d = tomllib.loads(resources.files("meterlink.simulators.scenarios").joinpath("demo.toml").read_text())
     return ProbeModel.from_dict(d["probe"]), ReceiverModel.from_dict(d["receiver"])
 
 

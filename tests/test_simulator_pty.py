@@ -6,11 +6,11 @@ import time
 import pytest
 import serial
 
-from meterlink.protocol import (Boot, Empty, FaultCode, Frame, FrameReader, FrameType, Ident, SensorKind,
+from meterlink.device.protocol import (Boot, Empty, FaultCode, Frame, FrameReader, FrameType, Ident, SensorKind,
                                 SetInterval, Setting, SettingGet, SettingKey, SettingPut, Spectrum, encode_frame,
                                 encode_message, parse_payload)
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 
 @pytest.fixture(autouse=True)

@@ -5,11 +5,11 @@ import math
 import numpy as np
 import pytest
 
-from meterlink.protocol import (Axes, Empty, Frame, FrameReader, FrameType, STATUS_OVERRANGE, Status,
+from meterlink.device.protocol import (Axes, Empty, Frame, FrameReader, FrameType, STATUS_OVERRANGE, Status,
                                 encode_message, parse_payload)
-from simulators.firmware import Firmware
-from simulators.scenario import ScenarioError, load_scenario
-from simulators.scene import (ERP_TO_EIRP, LabScene, Path, SiteScene, Transmitter, free_space_field_v_per_m,
+from meterlink.simulators.firmware import Firmware
+from meterlink.simulators.scenario import ScenarioError, load_scenario
+from meterlink.simulators.scene import (ERP_TO_EIRP, LabScene, Path, SiteScene, Transmitter, free_space_field_v_per_m,
                               traffic_factor)
 
 

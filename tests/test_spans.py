@@ -1,4 +1,4 @@
-"""The span index of readings (meterlink/spans.py) on real SQLite files: against a plain model of
+"""The span index of readings (meterlink/storage/spans.py) on real SQLite files: against a plain model of
 what should be stored, through random batches, repeats, restarts, interleaved sessions and deletes."""
 
 import sqlite3
@@ -7,9 +7,9 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from meterlink import spans
-from meterlink.monitor import thin_readings
-from meterlink.storage import MIGRATIONS, READING_COLUMNS, SCHEMA_VERSION, Store
+from meterlink.storage import spans
+from meterlink.station.monitor import thin_readings
+from meterlink.storage.store import MIGRATIONS, READING_COLUMNS, SCHEMA_VERSION, Store
 
 T0 = 1_800_000_000.0
 

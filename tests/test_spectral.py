@@ -4,9 +4,9 @@ import math
 
 import pytest
 
-from meterlink.calibrate import floor_e_v_per_m
-from meterlink.certificate import load_certificate
-from meterlink.spectral import SweepAssembler
+from meterlink.physics.calibrate import floor_e_v_per_m
+from meterlink.physics.certificate import load_certificate
+from meterlink.station.spectral import SweepAssembler
 
 
 def test_a_line_below_the_floor_in_two_orientations_counts_at_the_floor():

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from meterlink.station import StationFileError, load_station, parse_station
+from meterlink.station.stationfile import StationFileError, load_station, parse_station
 
 GOOD = """
 format = "meterlink-station/1"

@@ -12,8 +12,8 @@ import math
 import numpy as np
 import pytest
 
-from meterlink.stats import Reference, period_stats, profiles, quantile7, sparkline
-from meterlink.units import Z0_OHM
+from meterlink.station.stats import Reference, period_stats, profiles, quantile7, sparkline
+from meterlink.physics.units import Z0_OHM
 
 DAY = 86400.0
 T0 = 1_704_067_200.0        # 2024-01-01T00:00:00Z, a Monday

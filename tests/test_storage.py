@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from meterlink import spans
-from meterlink.storage import SCHEMA_VERSION, BatchWriter, Store, StorageError
+from meterlink.storage import spans
+from meterlink.storage.store import SCHEMA_VERSION, BatchWriter, Store, StorageError
 
 TABLES = {"meta", "devices", "sessions", "readings", "spectra", "spectrum_lines", "status", "events",
           "calibrations", "field_values", "spectrum_values"}

@@ -12,12 +12,12 @@ import sqlite3
 import numpy as np
 import pytest
 
-from meterlink.storage import Store
+from meterlink.storage.store import Store
 from meterlink.survey.interactive import run_interactive
 from meterlink.survey.plan import load_plan
 from meterlink.survey.run import Survey, run_plan
-from simulators.pty_meter import SimulatedMeter
-from simulators.truth import read_truth
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.truth import read_truth
 
 SPEED = 100.0
 
@@ -179,7 +179,7 @@ def test_survey_point_outside_the_certificates_temperature_range_is_not_assessab
 
     from meterlink.survey.report import write_report
     from meterlink.survey.store import load_survey
-    from simulators.scenario import load_scenario
+    from meterlink.simulators.scenario import load_scenario
 
     sc = load_scenario("demo")
     sc = dataclasses.replace(sc, site={**sc.site, "temp_mean_c": 44.0, "temp_daily_amp_c": 0.0})

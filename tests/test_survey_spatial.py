@@ -109,7 +109,7 @@ def test_survey_point_outside_the_certificates_frequency_range_is_not_assessable
     # A reading calibrated outside the certificate's frequency range (FREQ_OUT) has no known response
     # or uncertainty: the value is reported, no statement of conformity is made.
     import dataclasses
-    from meterlink.calibrate import FREQ_OUT
+    from meterlink.physics.calibrate import FREQ_OUT
     plan = _plan()
     ref = broadband_reference("icnirp-1998", "public", (30e6, 6e9))
     r = assess(plan, Point("f"), (dataclasses.replace(_sample(1.0), flags=FREQ_OUT),), ref)

@@ -14,9 +14,9 @@ import time
 
 import pytest
 
-from meterlink.storage import Store
+from meterlink.storage.store import Store
 from meterlink.survey.store import load_survey
-from simulators.pty_meter import SimulatedMeter
+from meterlink.simulators.pty_meter import SimulatedMeter
 
 ANSI = re.compile(r"\x1b\[[0-9;?]*[ -/]*[@-~]|\x1b[()][0-9A-B]|\r")
 CTRL_D = b"\x04"

@@ -5,8 +5,8 @@ import time
 import pytest
 
 from meterlink.errors import LinkError
-from meterlink.protocol import Empty, FrameReader, FrameType, encode_message
-from meterlink.transport import SerialLink, list_ports, open_link
+from meterlink.device.protocol import Empty, FrameReader, FrameType, encode_message
+from meterlink.device.transport import SerialLink, list_ports, open_link
 
 
 def read_exactly(link, n: int, timeout_s: float = 2.0) -> bytes:

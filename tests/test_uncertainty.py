@@ -4,8 +4,8 @@ import math
 
 import pytest
 
-from meterlink.certificate import load_certificate
-from meterlink.uncertainty import Component, combine, measurement_budget
+from meterlink.physics.certificate import load_certificate
+from meterlink.physics.uncertainty import Component, combine, measurement_budget
 
 
 def test_divisors():

@@ -1,4 +1,4 @@
-"""meterlink.units against published relations; each check names its source."""
+"""meterlink.physics.units against published relations; each check names its source."""
 
 import math
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import constants, integrate
 
-from meterlink import units
+from meterlink.physics import units
 
 
 def test_z0_from_scipy_constants_not_120_pi():

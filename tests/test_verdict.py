@@ -5,7 +5,7 @@ import math
 import pytest
 
 from meterlink.errors import MeterlinkError
-from meterlink.verdict import RULES, decide_field, decide_ratio, get_rule, lower_bound, not_assessable
+from meterlink.physics.verdict import RULES, decide_field, decide_ratio, get_rule, lower_bound, not_assessable
 
 U = 3.0   # expanded uncertainty, dB (k = 2)
 GUARD = 10 ** (U / 20)      # field factor of the guard band: 1.4125

@@ -25,20 +25,20 @@ def add_arguments(parser) -> None:
 def run(args) -> int:
     import json
 
-    from meterlink.assessment import assess_field, assess_spectrum
+    from meterlink.physics.assessment import assess_field, assess_spectrum
     from meterlink.commands.record import parse_declared
     from meterlink.errors import MeterlinkError
-    from meterlink.limits import standards
-    from meterlink.processing import FieldSeries, calibrated_series, latest_session
-    from meterlink.storage import Store
-    from meterlink.verdict import get_rule
+    from meterlink.physics.limits import standards
+    from meterlink.storage.processing import FieldSeries, calibrated_series, latest_session
+    from meterlink.storage.store import Store
+    from meterlink.physics.verdict import get_rule
 
     if args.standard not in standards():
         raise MeterlinkError(f"unknown standard {args.standard!r} (known: {', '.join(standards())})")
     rule = get_rule(args.rule)
     freq, band = parse_declared(args.freq, args.band)
     if args.certificate:        # an unusable certificate is refused before anything is written
-        from meterlink.certificate import load_certificate
+        from meterlink.physics.certificate import load_certificate
         load_certificate(args.certificate)
     with Store(args.db, create=False) as store:
         store.check_sound()      # never write into a damaged file
@@ -49,7 +49,7 @@ def run(args) -> int:
                         f"{args.tier}", rule=rule.name, standard=args.standard, tier=args.tier)
         series = calibrated_series(store, sid, args.certificate, freq_hz=freq, band=band, near_field=args.near_field)
         if isinstance(series, FieldSeries):
-            from meterlink.certificate import parse_certificate
+            from meterlink.physics.certificate import parse_certificate
 
             cal = store.calibrations(sid)[-1]
             cert = parse_certificate(cal["certificate_text"], "stored calibration")
@@ -58,8 +58,8 @@ def run(args) -> int:
                                   band=band or _band(cal) or _band(session), fallback_range=cert.freq_range_hz,
                                   near_field=args.near_field, has_h=cert.quantity == "H")
         else:
-            from meterlink.calibrate import floor_e_v_per_m
-            from meterlink.certificate import parse_certificate
+            from meterlink.physics.calibrate import floor_e_v_per_m
+            from meterlink.physics.certificate import parse_certificate
 
             cert = parse_certificate(store.calibrations(sid)[-1]["certificate_text"], "stored calibration")
             result = assess_spectrum(series, args.standard, args.tier, rule.name, near_field=args.near_field,
@@ -68,17 +68,17 @@ def run(args) -> int:
                         reason=result.verdict.reason or None, standard=args.standard, tier=args.tier, rule=rule.name,
                         exposure_ratio_power=result.total_exposure_ratio, u_expanded_db=result.u_expanded_db)
     if args.json:
-        from meterlink.render import assessment_dict
+        from meterlink.reports.render import assessment_dict
 
         print(json.dumps(assessment_dict(result), indent=2, default=float))
     else:
         from rich.console import Console
 
-        from meterlink.render import assessment_renderable
+        from meterlink.reports.render import assessment_renderable
 
         con = Console()
         if isinstance(series, FieldSeries):
-            from meterlink.render import field_trace
+            from meterlink.reports.render import field_trace
 
             con.print(field_trace(series.t_utc, series.e_v_per_m, result.limit_v_per_m))
         con.print(assessment_renderable(result))

@@ -47,7 +47,7 @@ def render(report, console) -> None:
     from rich.table import Table
 
     from meterlink.cli import SAFETY_LINE
-    from meterlink.link import safe_text
+    from meterlink.device.link import safe_text
 
     i = report.ident
     who = (f"{safe_text(i['model'])} s/n {safe_text(i['serial'])}, firmware {i['fw_major']}.{i['fw_minor']}."
@@ -74,8 +74,8 @@ def run(args) -> int:
 
     from rich.console import Console
 
-    from meterlink.conformance import MIN_DURATION_S, run_checks
-    from meterlink.transport import open_link
+    from meterlink.device.conformance import MIN_DURATION_S, run_checks
+    from meterlink.device.transport import open_link
 
     duration = _number(args.duration, "--duration", minimum=MIN_DURATION_S)
     interval = int(_number(args.interval_ms, "--interval-ms", integer=True, minimum=1))

@@ -28,7 +28,7 @@ def run(args) -> int:
     from rich.console import Console
 
     from meterlink.errors import MeterlinkError
-    from meterlink.verdict import get_rule
+    from meterlink.physics.verdict import get_rule
 
     rule = get_rule(args.rule)
     if not 0.5 <= args.minutes <= 60:
@@ -52,9 +52,9 @@ def run(args) -> int:
 
 def _record(sim_kwargs, db, seconds, band, progress, label, position_m=None):
     """Record from a fresh simulated meter into db; returns the RecordSummary."""
-    from meterlink.recorder import Recorder
-    from meterlink.storage import Store
-    from simulators.pty_meter import SimulatedMeter
+    from meterlink.storage.recorder import Recorder
+    from meterlink.storage.store import Store
+    from meterlink.simulators.pty_meter import SimulatedMeter
 
     task = progress.add_task(label, total=seconds)
 
@@ -79,10 +79,10 @@ def _record(sim_kwargs, db, seconds, band, progress, label, position_m=None):
 def _run_steps(con, db, out, args, rule):
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-    from meterlink.assessment import assess_field, assess_spectrum
-    from meterlink.processing import calibrated_series
-    from meterlink.render import assessment_dict, assessment_renderable, field_summary_renderable
-    from meterlink.storage import Store
+    from meterlink.physics.assessment import assess_field, assess_spectrum
+    from meterlink.storage.processing import calibrated_series
+    from meterlink.reports.render import assessment_dict, assessment_renderable, field_summary_renderable
+    from meterlink.storage.store import Store
 
     band = (87.5e6, 3.8e9)   # the operator declares the site's band for the broadband probe
     res = {"database": str(db), "standard": args.standard, "tier": args.tier, "rule": rule}
@@ -98,8 +98,8 @@ def _run_steps(con, db, out, args, rule):
         fs = calibrated_series(store, probe.session_id, band=band)
         a_probe = assess_field(fs, args.standard, args.tier, rule, band=band)
         ss = calibrated_series(store, dipole.session_id)
-        from meterlink.calibrate import floor_e_v_per_m
-        from meterlink.certificate import parse_certificate
+        from meterlink.physics.calibrate import floor_e_v_per_m
+        from meterlink.physics.certificate import parse_certificate
         dcert = parse_certificate(store.calibrations(dipole.session_id)[-1]["certificate_text"], "stored calibration")
         a_dip = assess_spectrum(ss, args.standard, args.tier, rule, floor_v_per_m=floor_e_v_per_m(dcert, ss.freq_hz))
         for sid, a in ((probe.session_id, a_probe), (dipole.session_id, a_dip)):
@@ -118,7 +118,7 @@ def _run_steps(con, db, out, args, rule):
         con.print(f"probe session {probe.session_id}: {escape(probe.model)} serial {escape(probe.serial)}, "
                   f"probe {escape(probe.probe_serial)}: {probe.readings} readings, {n_events[probe.session_id]} events")
         con.print(field_summary_renderable(fs, "calibrated field along the walk"))
-        from meterlink.render import field_trace
+        from meterlink.reports.render import field_trace
 
         con.print(field_trace(fs.t_utc, fs.e_v_per_m, a_probe.limit_v_per_m))
         con.print(assessment_renderable(a_probe))
@@ -147,9 +147,9 @@ def _survey(con, db, out, seed, quiet):
 
     from meterlink.survey.report import write_report
     from meterlink.survey.run import run_plan
-    from simulators.pty_meter import SimulatedMeter
+    from meterlink.simulators.pty_meter import SimulatedMeter
 
-    plan = files("simulators.scenarios").joinpath("demo-survey.toml")
+    plan = files("meterlink.simulators.scenarios").joinpath("demo-survey.toml")
     con.rule("scripted walk-around survey")
     with SimulatedMeter("demo", sensor="probe", seed=seed, speed=100.0) as sim:
         sid = run_plan(sim.port, str(plan), db, console=None if quiet else con, mover=sim.move_to)

@@ -37,7 +37,7 @@ def add_arguments(parser) -> None:
 def parse_setting(key: str, value: str):
     """(SettingKey, value) for a writable key; MeterlinkError naming the key or value if unusable."""
     from meterlink.errors import MeterlinkError
-    from meterlink.protocol import MAX_TEXT, SettingKey
+    from meterlink.device.protocol import MAX_TEXT, SettingKey
 
     name = str(key).strip().lower().replace("-", "_")
     if name not in WRITABLE:
@@ -60,7 +60,7 @@ def parse_setting(key: str, value: str):
 def _show_value(v) -> str:
     from rich.markup import escape
 
-    from meterlink.link import safe_text
+    from meterlink.device.link import safe_text
 
     return escape(safe_text(v)) if isinstance(v, str) else str(v)
 
@@ -80,7 +80,7 @@ def clock_offset(commander) -> dict:
     """
     import time
 
-    from meterlink.protocol import SettingKey
+    from meterlink.device.protocol import SettingKey
 
     t0 = time.time()
     dev_s = commander.get_setting(SettingKey.CLOCK_UTC)
@@ -99,9 +99,9 @@ def run(args) -> int:
     from rich.console import Console
     from rich.table import Table
 
-    from meterlink.commander import Commander
-    from meterlink.protocol import SettingKey
-    from meterlink.transport import open_link
+    from meterlink.device.commander import Commander
+    from meterlink.device.protocol import SettingKey
+    from meterlink.device.transport import open_link
 
     if args.action == "set":
         key, value = parse_setting(args.key, args.value)  # before touching the port
@@ -129,7 +129,7 @@ def run(args) -> int:
             con.print(t)
             return 0
 
-        from meterlink.storage import Store
+        from meterlink.storage.store import Store
 
         with Store(args.db) as store:
             if args.action == "set":

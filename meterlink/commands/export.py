@@ -22,8 +22,8 @@ def run(args) -> int:
     from meterlink.cli import SAFETY_LINE
     from meterlink.commands.stats import open_station
     from meterlink.errors import MeterlinkError
-    from meterlink.storage import describe_sqlite_error
-    from meterlink.publish import export_file_name, header_lines, series_rows, statistics, to_csv, to_json
+    from meterlink.storage.store import describe_sqlite_error
+    from meterlink.station.publish import export_file_name, header_lines, series_rows, statistics, to_csv, to_json
 
     conn, t0, t1 = open_station(args)
     try:

@@ -49,8 +49,8 @@ def _simulated(session, args):
 
     from meterlink.lab import procedures as pr
     from meterlink.lab.meter import MeterBench
-    from meterlink.link import MeterLink
-    from simulators.lab import LabMeter
+    from meterlink.device.link import MeterLink
+    from meterlink.simulators.lab import LabMeter
     if args.quick:
         plan = pr.full_plan(session, freqs=(3e7, 1e8, 3e8, 1e9, 3e9, 6e9), levels=(0.1, 0.3, 1, 3, 10, 20),
                             iso_step_deg=30)
@@ -60,7 +60,7 @@ def _simulated(session, args):
         plan += pr.temperature_plan(session, _temperatures(args.temperatures))
     over = None
     if args.drift_db:
-        from simulators.scenario import load_scenario
+        from meterlink.simulators.scenario import load_scenario
         sens = list(load_scenario("demo").probe.sensitivity_db)
         sens[0] += args.drift_db
         over = {"sensitivity_db": tuple(sens)}
@@ -119,7 +119,7 @@ def run(args) -> int:
 
     from rich.console import Console
 
-    from meterlink.certificate import dump_certificate, load_certificate
+    from meterlink.physics.certificate import dump_certificate, load_certificate
     from meterlink.cli import SAFETY_LINE
     from meterlink.errors import MeterlinkError
     import dataclasses

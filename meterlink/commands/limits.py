@@ -26,8 +26,8 @@ def add_arguments(parser) -> None:
 
 def select_levels(freq_hz: float, standard: str | None, tier: str | None, kind: str | None) -> list:
     """The levels to show; a LimitsError naming the problem when nothing applies."""
-    from meterlink import limits
-    from meterlink.units import format_frequency
+    from meterlink.physics import limits
+    from meterlink.physics.units import format_frequency
 
     if kind is not None and kind not in limits.KINDS:
         raise limits.LimitsError(f"unknown kind {kind!r} (use whole_body, local or peak)")
@@ -70,7 +70,7 @@ def render_table(levels: list, freq_hz: float):
     from rich.table import Table
     from rich.text import Text
 
-    from meterlink.units import format_frequency
+    from meterlink.physics.units import format_frequency
 
     table = Table(title=f"Reference levels at {format_frequency(freq_hz)}", title_justify="left",
                   header_style="bold", show_lines=False, pad_edge=False)
@@ -96,7 +96,7 @@ def render_check_keys(levels: list):
     """The lines explaining the check keys of render_table, one per distinct status."""
     from rich.text import Text
 
-    from meterlink.limits import CHECKED_PREFIX
+    from meterlink.physics.limits import CHECKED_PREFIX
 
     out = []
     for status, key in check_keys([lv.status for lv in levels]).items():
@@ -116,7 +116,7 @@ def levels_to_json(levels: list, freq_hz: float) -> dict:
 
 def brief_levels(freq_hz: float, duration_s: float, standard: str | None, tier: str | None) -> list[dict]:
     """Brief-exposure energy-density limits at freq_hz for every standard/tier that gives one."""
-    from meterlink import limits
+    from meterlink.physics import limits
 
     out = []
     for i, std in enumerate([standard] if standard else limits.standards()):
@@ -141,10 +141,10 @@ def draw_chart(path: str, freq_hz: float, standard: str | None, tier: str | None
     import numpy as np
     from matplotlib.figure import Figure
 
-    from meterlink import limits
+    from meterlink.physics import limits
     from meterlink.errors import MeterlinkError
-    from meterlink.htmlpage import figure_png
-    from meterlink.units import format_frequency
+    from meterlink.reports.htmlpage import figure_png
+    from meterlink.physics.units import format_frequency
 
     f = np.geomspace(1e5, 3e11, 900)
     fig = Figure(figsize=(9, 5))
@@ -179,10 +179,10 @@ def run(args) -> int:
 
     from rich.console import Console
 
-    from meterlink import limits
+    from meterlink.physics import limits
     from meterlink.cli import SAFETY_LINE
-    from meterlink.limits import LimitsError
-    from meterlink.units import parse_frequency_hz
+    from meterlink.physics.limits import LimitsError
+    from meterlink.physics.units import parse_frequency_hz
 
     if args.frequency.strip().startswith("-"):
         raise LimitsError(f"FREQUENCY {args.frequency!r}: a frequency must be positive (e.g. 5MHz)")

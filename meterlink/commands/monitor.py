@@ -21,8 +21,8 @@ def run(args) -> int:
 
     from meterlink.cli import SAFETY_LINE
     from meterlink.errors import MeterlinkError
-    from meterlink.monitor import Monitor
-    from meterlink.station import load_station
+    from meterlink.station.monitor import Monitor
+    from meterlink.station.stationfile import load_station
 
     st = load_station(args.config)
     ports = {}

@@ -12,7 +12,7 @@ def add_arguments(parser) -> None:
 def run(args) -> int:
     import json
 
-    from meterlink.transport import list_ports
+    from meterlink.device.transport import list_ports
 
     ports = list_ports()
     if args.json:

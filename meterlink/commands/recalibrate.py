@@ -21,10 +21,10 @@ def run(args) -> int:
 
     import numpy as np
 
-    from meterlink.certificate import load_certificate
+    from meterlink.physics.certificate import load_certificate
     from meterlink.commands.record import parse_declared
-    from meterlink.processing import FieldSeries, apply_certificate, latest_session
-    from meterlink.storage import Store
+    from meterlink.storage.processing import FieldSeries, apply_certificate, latest_session
+    from meterlink.storage.store import Store
 
     cert = load_certificate(args.certificate)
     freq, band = parse_declared(args.freq, args.band)
@@ -53,7 +53,7 @@ def run(args) -> int:
     t = Table(title=f"calibrations of session {sid} (raw readings unchanged; every result kept)")
     for col in ("id", "certificate", "sha256", "applied"):
         t.add_column(col)
-    from meterlink.render import utc_text
+    from meterlink.reports.render import utc_text
 
     for c in cals:
         mark = " (new)" if c["id"] == series.calibration_id else ""

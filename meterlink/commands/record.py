@@ -43,7 +43,7 @@ def _positive(text: str, what: str, integer: bool = False) -> float:
 def parse_band(text: str) -> tuple[float, float]:
     """'800MHz:1GHz' -> (8e8, 1e9); MeterlinkError if malformed or empty."""
     from meterlink.errors import MeterlinkError
-    from meterlink.units import parse_band_hz
+    from meterlink.physics.units import parse_band_hz
 
     try:
         return parse_band_hz(text)      # range-checked at the edge: nothing absurd is stored
@@ -54,7 +54,7 @@ def parse_band(text: str) -> tuple[float, float]:
 def parse_declared(freq_text: str | None, band_text: str | None) -> tuple[float | None, tuple[float, float] | None]:
     """The --freq / --band pair of a command as (freq_hz, band); MeterlinkError naming the option."""
     from meterlink.errors import MeterlinkError
-    from meterlink.units import parse_frequency_hz
+    from meterlink.physics.units import parse_frequency_hz
 
     freq = None
     if freq_text is not None:
@@ -69,8 +69,8 @@ def run(args) -> int:
     import json
 
     from meterlink.errors import MeterlinkError
-    from meterlink.recorder import Recorder
-    from meterlink.storage import Store
+    from meterlink.storage.recorder import Recorder
+    from meterlink.storage.store import Store
 
     if not args.port:
         raise MeterlinkError("no --port given (see 'meterlink ports')")
@@ -81,7 +81,7 @@ def run(args) -> int:
     import sys
     from pathlib import Path
 
-    from meterlink.recorder import NoMeterError
+    from meterlink.storage.recorder import NoMeterError
 
     show = not args.json and sys.stderr.isatty()
     db_path = Path(args.db)
@@ -104,7 +104,7 @@ def run(args) -> int:
                     signal.signal(sig, handler)
             field, field_error = None, None
             if summary.readings or summary.spectra:
-                from meterlink.processing import calibrated_series
+                from meterlink.storage.processing import calibrated_series
 
                 try:
                     field = calibrated_series(store, summary.session_id, args.certificate, freq_hz=freq, band=band)
@@ -123,8 +123,8 @@ def run(args) -> int:
         print_summary(summary)
         from rich.console import Console
 
-        from meterlink.processing import FieldSeries
-        from meterlink.render import field_summary_renderable
+        from meterlink.storage.processing import FieldSeries
+        from meterlink.reports.render import field_summary_renderable
 
         if isinstance(field, FieldSeries):
             Console().print(field_summary_renderable(field))
@@ -140,7 +140,7 @@ def _field_dict(series) -> dict:
     """JSON summary of a calibrated series (probe: E/H/S statistics; dipole: sweeps and frequencies)."""
     import numpy as np
 
-    from meterlink.processing import FieldSeries
+    from meterlink.storage.processing import FieldSeries
 
     d = {"certificate": series.certificate_name, "calibration_id": series.calibration_id,
          "warnings": list(series.warnings)}
@@ -179,7 +179,7 @@ class _progress:
         return self.on_item
 
     def on_item(self, item) -> None:
-        from meterlink.link import Reading, SpectrumReading
+        from meterlink.device.link import Reading, SpectrumReading
 
         if not isinstance(item, (Reading, SpectrumReading)):
             return
@@ -200,7 +200,7 @@ def summary_table(s):
     from rich.markup import escape
     from rich.table import Table
 
-    from meterlink.link import safe_text
+    from meterlink.device.link import safe_text
 
     t = Table(title=f"recording, session {s.session_id}", show_header=False)
     t.add_column("what", style="bold")

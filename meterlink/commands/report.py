@@ -27,14 +27,14 @@ def run(args) -> int:
     except ValueError:
         raise MeterlinkError(f"--session {args.session!r} is not a whole number") from None
 
-    from meterlink.storage import Store
+    from meterlink.storage.store import Store
 
     with Store(args.db, readonly=True) as store:
         kind = store.session(sid)["kind"]
     if kind == "survey":
         html = write_report(args.db, sid, args.out)
     else:
-        from meterlink.session_report import write_session_report
+        from meterlink.reports.session_report import write_session_report
 
         html = write_session_report(args.db, sid, args.out, standard=args.standard, tier=args.tier, rule=args.rule)
     files = sorted(str(p) for p in html.parent.glob("*.csv"))

@@ -22,7 +22,7 @@ def add_arguments(parser) -> None:
 def run(args) -> int:
     import sqlite3
 
-    from meterlink.storage import Store, describe_sqlite_error
+    from meterlink.storage.store import Store, describe_sqlite_error
 
     if args.salvage:
         return _salvage(args)
@@ -49,7 +49,7 @@ def run(args) -> int:
 
 def _verify(args) -> int:
     """The answer to "is my file sound?": damage is the answer (exit 1), never a crash."""
-    from meterlink.salvage import examine
+    from meterlink.storage.salvage import examine
 
     import sys
 
@@ -102,7 +102,7 @@ def _verify(args) -> int:
 
 
 def _salvage(args) -> int:
-    from meterlink.salvage import salvage
+    from meterlink.storage.salvage import salvage
 
     ex, copied = salvage(args.db, args.salvage)
     lost = [s.session_id for s in ex.sessions if not s.intact]
@@ -132,9 +132,9 @@ def _sessions_table(rows, db):
     from rich.markup import escape
     from rich.table import Table
 
-    from meterlink.safetext import clean_text
+    from meterlink.reports.safetext import clean_text
 
-    from meterlink.units import format_frequency
+    from meterlink.physics.units import format_frequency
 
     from rich import box
 
@@ -170,7 +170,7 @@ def _events_table(rows, sid):
     from rich.markup import escape
     from rich.table import Table
 
-    from meterlink.safetext import clean_text
+    from meterlink.reports.safetext import clean_text
 
     t = Table(title=f"events of session {sid}", title_justify="left")
     for col in ("time", "severity", "kind", "message"):

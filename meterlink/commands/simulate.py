@@ -25,7 +25,7 @@ def run(args) -> int:
     import threading
 
     from meterlink.errors import MeterlinkError
-    from simulators.pty_meter import SimulatedMeter
+    from meterlink.simulators.pty_meter import SimulatedMeter
 
     for name in ("drop", "corrupt", "garbage"):
         p = getattr(args, name)

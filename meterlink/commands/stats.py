@@ -32,7 +32,7 @@ def span(conn, args):
     t1 = parse_when(args.t_to, "--to") if args.t_to else (last or time.time() + 1.0)
     if not t1 > t0:
         from meterlink.errors import MeterlinkError
-        from meterlink.publish import iso
+        from meterlink.station.publish import iso
         if args.t_to and args.t_from:
             raise MeterlinkError(f"--to {args.t_to} must be later than --from {args.t_from}")
         if args.t_to:
@@ -51,8 +51,8 @@ def open_station(args, with_span=True):
     import sqlite3
 
     from meterlink.errors import MeterlinkError
-    from meterlink.publish import station_info
-    from meterlink.storage import describe_sqlite_error, open_readonly
+    from meterlink.station.publish import station_info
+    from meterlink.storage.store import describe_sqlite_error, open_readonly
 
     conn = open_readonly(args.db)
     try:
@@ -74,8 +74,8 @@ def open_station(args, with_span=True):
 
 def run(args) -> int:
     from meterlink.cli import SAFETY_LINE
-    from meterlink.publish import statistics, to_json
-    from meterlink.stats import sparkline
+    from meterlink.station.publish import statistics, to_json
+    from meterlink.station.stats import sparkline
 
     conn, t0, t1 = open_station(args)
     try:

@@ -9,10 +9,10 @@ def add_arguments(parser) -> None:
 
 
 def storage_state(conn, station: str) -> dict | None:
-    """Whether the monitor can write its database (mon_storage, kept by meterlink.monitor), or None if unknown."""
+    """Whether the monitor can write its database (mon_storage, kept by meterlink.station.monitor), or None if unknown."""
     import sqlite3
 
-    from meterlink.publish import iso
+    from meterlink.station.publish import iso
 
     try:
         row = conn.execute("SELECT g.storing, g.since_utc, g.error, g.pending_readings, g.checked_utc FROM mon_storage g "
@@ -30,10 +30,10 @@ def run(args) -> int:
     import time
 
     from meterlink.cli import SAFETY_LINE
-    from meterlink.publish import current_state, to_json
+    from meterlink.station.publish import current_state, to_json
 
     from meterlink.commands.stats import open_station
-    from meterlink.storage import describe_sqlite_error
+    from meterlink.storage.store import describe_sqlite_error
 
     conn, _, _ = open_station(args, with_span=False)
     try:

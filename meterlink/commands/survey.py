@@ -34,7 +34,7 @@ def run(args) -> int:
 
     from meterlink.cli import SAFETY_LINE
     from meterlink.errors import MeterlinkError
-    from meterlink.storage import Store
+    from meterlink.storage.store import Store
     from meterlink.survey.store import load_survey
 
     if not args.port:

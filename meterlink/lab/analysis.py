@@ -12,8 +12,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import least_squares
 
-from meterlink.calibrate import calibrate_axes, linearise
-from meterlink.certificate import AxisCalibration
+from meterlink.physics.calibrate import calibrate_axes, linearise
+from meterlink.physics.certificate import AxisCalibration
 from meterlink.lab.session import AXES, LabError
 
 #: A reading leaves the square-law region where it departs from the fitted square law by this much.

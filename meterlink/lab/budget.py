@@ -1,6 +1,6 @@
 """The calibration's uncertainty budget in the GUM manner (JCGM 100:2008), per field method (pure).
 
-Each input is a Component (meterlink.uncertainty) with its distribution and divisor. The budget is
+Each input is a Component (meterlink.physics.uncertainty) with its distribution and divisor. The budget is
 kept in dB, where the model is a sum: E = sqrt(P Z)/d (TEM cell) and E = sqrt(Z0 P G/(4 pi))/d
 (antenna) give 20 log10 E = 10 log10 P + 10 log10 Z (or G) - 20 log10 d + const, so every input
 stated in dB of its own quantity (power, gain, impedance, the power mismatch) has the sensitivity
@@ -18,7 +18,7 @@ import math
 from dataclasses import dataclass
 
 from meterlink.lab.session import LabSession
-from meterlink.uncertainty import Budget, Component, combine
+from meterlink.physics.uncertainty import Budget, Component, combine
 
 DEFAULTS = {
     "power_meter_pct": 3.0,            # net power measurement, expanded, k = 2

@@ -1,7 +1,7 @@
 """From lab readings to a meterlink-cert/1 certificate; as-found / as-left against the previous one.
 
 Conformity is decided per frequency against the specification tolerance T (two-sided, dB) with
-a recorded decision rule of meterlink.verdict (ILAC-G8:2019): simple |e| <= T; guarded with
+a recorded decision rule of meterlink.physics.verdict (ILAC-G8:2019): simple |e| <= T; guarded with
 w = U: conforming if |e| + U <= T, not conforming if |e| - U > T, else undecided; the worst-case
 (binary) rule treats undecided as not conforming.
 """
@@ -13,13 +13,13 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from meterlink.calibrate import calibrate_axes
-from meterlink.certificate import FORMAT, KIND_PROBE, ProbeCertificate
+from meterlink.physics.calibrate import calibrate_axes
+from meterlink.physics.certificate import FORMAT, KIND_PROBE, ProbeCertificate
 from meterlink.lab import analysis as an
 from meterlink.lab.budget import FIELD_STANDARD, LabBudget, calibration_budget
 from meterlink.lab.session import AXES, LabError, LabSession
-from meterlink.uncertainty import Component
-from meterlink.verdict import COMPLIANT, NOT_COMPLIANT, UNDECIDED, get_rule
+from meterlink.physics.uncertainty import Component
+from meterlink.physics.verdict import COMPLIANT, NOT_COMPLIANT, UNDECIDED, get_rule
 
 #: Without temperature steps: kept from the previous certificate, else these defaults.
 TEMP_COEFF_DEFAULT_DB_PER_C, TEMP_COEFF_HALFWIDTH_DEFAULT_DB_PER_C = 0.0, 0.01
@@ -96,7 +96,7 @@ def analyse(session: LabSession, results, previous: ProbeCertificate | None = No
 # --------------------------------------------------------------------------- as found / as left
 
 def decide_tolerance(error_db: float, tolerance_db: float, u_db: float, rule) -> str:
-    """Two-sided conformity of an error against +/- tolerance under a meterlink.verdict rule."""
+    """Two-sided conformity of an error against +/- tolerance under a meterlink.physics.verdict rule."""
     r = get_rule(rule) if isinstance(rule, str) else rule
     e, w = abs(float(error_db)), (float(u_db) if r.guard == "U" else 0.0)
     if e + w <= tolerance_db + 1e-12:

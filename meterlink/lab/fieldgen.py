@@ -5,7 +5,7 @@ the septum-to-wall (or septum height) spacing at the test point (Crawford 1974, 
 16(4), "Generation of standard EM fields using TEM transmission cells"; IEC 61000-4-20 uses the
 same relation). Standard antenna, far field: E = sqrt(Z0 * P * G / (4 pi)) / d, G the numeric
 gain, d the distance, from P * G / (4 pi d^2) = E^2 / Z0 with Z0 = sqrt(mu_0 / epsilon_0) of
-scipy.constants (meterlink.units.Z0_OHM), not the 120 pi shortcut (IEEE Std 1309 describes this
+scipy.constants (meterlink.physics.units.Z0_OHM), not the 120 pi shortcut (IEEE Std 1309 describes this
 method). Transfer standard: the field is what the calibrated reference probe indicates.
 """
 
@@ -15,7 +15,7 @@ import math
 from dataclasses import dataclass
 
 from meterlink.errors import MeterlinkError
-from meterlink.units import Z0_OHM
+from meterlink.physics.units import Z0_OHM
 
 METHODS = ("tem-cell", "gtem-cell", "standard-antenna", "transfer-probe", "entered")
 

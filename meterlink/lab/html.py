@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from meterlink.htmlpage import CSS, figure_png, img, table
-from meterlink.htmlpage import e as _e
+from meterlink.reports.htmlpage import CSS, figure_png, img, table
+from meterlink.reports.htmlpage import e as _e
 from meterlink.lab.certify import Calibration, Comparison
 
 _CSS = CSS + "td,th{text-align:right}"

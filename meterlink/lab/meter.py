@@ -4,7 +4,7 @@ The controller's apply(...) returns the device tick (ms) from which readings see
 (None if it cannot tell: then `settle_readings` readings are discarded). Only readings whose
 whole integration time lies after that tick are kept: a reading's TICK is the middle of its
 integration, so it must be at least half an interval later. The controller must take that tick
-at the same instant as it switches (simulators.lab.LabMeter.apply holds the device clock for it).
+at the same instant as it switches (meterlink.simulators.lab.LabMeter.apply holds the device clock for it).
 """
 
 from __future__ import annotations
@@ -13,11 +13,11 @@ import time
 
 import numpy as np
 
-from meterlink.clock import HALF_TICK
+from meterlink.device.clock import HALF_TICK
 from meterlink.errors import LinkError
 from meterlink.lab.session import LabError
-from meterlink.link import Connected, LinkEvent, MeterLink, Reading
-from meterlink.protocol import AXIS_OVER_X, U32_MOD
+from meterlink.device.link import Connected, LinkEvent, MeterLink, Reading
+from meterlink.device.protocol import AXIS_OVER_X, U32_MOD
 
 OVER_ANY = AXIS_OVER_X | (AXIS_OVER_X << 1) | (AXIS_OVER_X << 2)
 

@@ -205,7 +205,7 @@ def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
         raise LabError(f"{where}: 'operator' must be text, got {operator!r}")
     rule = _str(where, d, "decision_rule", "guarded")
     try:
-        from meterlink.verdict import get_rule
+        from meterlink.physics.verdict import get_rule
         get_rule(rule)
     except MeterlinkError as exc:
         raise LabError(f"{where}: 'decision_rule': {exc}") from None

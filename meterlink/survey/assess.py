@@ -8,12 +8,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink.errors import MeterlinkError
-from meterlink.exposure import multi_frequency, near_field_check, percent_of_limit
-from meterlink.limits import most_restrictive_level
+from meterlink.physics.exposure import multi_frequency, near_field_check, percent_of_limit
+from meterlink.physics.limits import most_restrictive_level
 from meterlink.survey.model import Emitter, Point, PointResult, Sample, Source, SurveyPlan
 from meterlink.survey.spatial import spatial_average
-from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_OUT
-from meterlink.verdict import decide_field, decide_ratio, lower_bound, not_assessable, upper_bound
+from meterlink.physics.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_OUT
+from meterlink.physics.verdict import decide_field, decide_ratio, lower_bound, not_assessable, upper_bound
 
 #: An emitter matches a listed source when their frequencies agree within this fraction.
 MATCH_REL = 0.005
@@ -38,7 +38,7 @@ def broadband_reference(standard: str, tier: str, band_hz: tuple[float, float] |
         lo = hi = float(band_hz)
     else:
         lo, hi = float(band_hz[0]), float(band_hz[1])
-    from meterlink.assessment import averaging_time_s
+    from meterlink.physics.assessment import averaging_time_s
 
     best = most_restrictive_level(standard, tier, lo, hi)
     # the shortest averaging time in the band, none if any row prescribes none: never a default
@@ -107,7 +107,7 @@ def _emitters(plan: SurveyPlan, samples: tuple[Sample, ...], near_field: bool, i
 
 def point_temperatures(samples: tuple[Sample, ...], range_c: tuple[float, float] | None):
     """The meter's temperatures over a point's samples against the certificate's stated range."""
-    from meterlink.assessment import Temperatures
+    from meterlink.physics.assessment import Temperatures
 
     spans = [s.temp_span_c for s in samples if s.temp_span_c is not None]
     return Temperatures((min(a for a, _ in spans), max(b for _, b in spans)) if spans else None, range_c)
@@ -118,9 +118,9 @@ def assess(plan: SurveyPlan, point: Point, samples: tuple[Sample, ...], ref: Bro
            temperatures=None) -> PointResult:
     """Combine a point's samples (power domain) and judge the result by the plan's decision rule.
 
-    temperatures (meterlink.assessment.Temperatures, see point_temperatures): outside the
+    temperatures (meterlink.physics.assessment.Temperatures, see point_temperatures): outside the
     certificate's temperature range there is no verdict; None: not checked."""
-    from meterlink.assessment import temperature_check
+    from meterlink.physics.assessment import temperature_check
 
     if not samples:
         raise MeterlinkError(f"point {point.label!r}: no readings were captured")

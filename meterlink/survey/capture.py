@@ -17,14 +17,14 @@ from typing import Callable
 
 import numpy as np
 
-from meterlink.averaging import window_rms
-from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, calibrate_axes, calibrate_spectrum, floor_e_v_per_m
-from meterlink.certificate import DipoleCertificate
+from meterlink.physics.averaging import window_rms
+from meterlink.physics.calibrate import ABOVE_RANGE, BELOW_RANGE, calibrate_axes, calibrate_spectrum, floor_e_v_per_m
+from meterlink.physics.certificate import DipoleCertificate
 from meterlink.errors import LinkError
-from meterlink.limits import reference_level
-from meterlink.link import Connected, LinkEvent, Reading, SpectrumReading, StatusReport
-from meterlink.protocol import AXIS_OVER_X, AXIS_OVER_Y, AXIS_OVER_Z, STATUS_BATTERY_LOW, STATUS_OVERRANGE
-from meterlink.recorder import reading_row, spectrum_row, status_row
+from meterlink.physics.limits import reference_level
+from meterlink.device.link import Connected, LinkEvent, Reading, SpectrumReading, StatusReport
+from meterlink.device.protocol import AXIS_OVER_X, AXIS_OVER_Y, AXIS_OVER_Z, STATUS_BATTERY_LOW, STATUS_OVERRANGE
+from meterlink.storage.recorder import reading_row, spectrum_row, status_row
 from meterlink.survey.model import Sample
 
 _OVER = AXIS_OVER_X | AXIS_OVER_Y | AXIS_OVER_Z
@@ -322,7 +322,7 @@ def _sample(vals, duration_s, height_m, position, floor=None) -> Sample:
     if vals[0].emitters or any(v.emitters for v in vals):
         # time-weighted power mean per line: each sweep stands for the time to the next (capped), not
         # 1/n of the capture; a line absent from a sweep is below the floor there: counted at the floor
-        from meterlink.assessment import sweep_weights_s
+        from meterlink.physics.assessment import sweep_weights_s
 
         w = sweep_weights_s(t)
         lines = sorted({f for v in vals for f, _ in v.emitters})

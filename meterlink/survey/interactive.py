@@ -22,8 +22,8 @@ def rich_ask(console):
 
 def matching_certificate(ident) -> str | None:
     """Name of the packaged certificate for the meter's probe serial, else one of its sensor kind."""
-    from meterlink.certificate import KIND_DIPOLE, load_certificate, packaged_certificates
-    from meterlink.protocol import SensorKind
+    from meterlink.physics.certificate import KIND_DIPOLE, load_certificate, packaged_certificates
+    from meterlink.device.protocol import SensorKind
 
     certs = [(name, load_certificate(name)) for name in packaged_certificates()]
     for name, cert in certs:
@@ -38,8 +38,8 @@ def matching_certificate(ident) -> str | None:
 
 def identify(port: str):
     """The meter's IDENT, asked once before the dialogue so defaults can fit it (None if no answer)."""
-    from meterlink.commander import Commander
-    from meterlink.transport import open_link
+    from meterlink.device.commander import Commander
+    from meterlink.device.transport import open_link
 
     link = open_link(port)
     try:
@@ -52,9 +52,9 @@ def identify(port: str):
 
 def ask_plan(ask, ident=None) -> dict:
     """The survey header (site, standard, tier, rule, certificate, follow-up) as a plan dict."""
-    from meterlink.certificate import packaged_certificates
-    from meterlink.limits import standards
-    from meterlink.verdict import RULES
+    from meterlink.physics.certificate import packaged_certificates
+    from meterlink.physics.limits import standards
+    from meterlink.physics.verdict import RULES
 
     site = ask("Site name")
     tech = ask("Technician", default="")
@@ -113,7 +113,7 @@ def _ask_point(ask, n: int, console=None):
 
 def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, **link_options) -> int:
     """Ask for the survey's choices, then measure points until an empty label; returns the session id."""
-    from meterlink.storage import Store
+    from meterlink.storage.store import Store
     from meterlink.survey.readout import LiveReadout
     from meterlink.survey.run import Survey
 
@@ -122,7 +122,7 @@ def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, *
     if console is not None and ident is not None:
         from rich.markup import escape
 
-        from meterlink.safetext import clean_text
+        from meterlink.reports.safetext import clean_text
         console.print(f"meter: {escape(clean_text(ident.model))} serial {escape(clean_text(ident.serial))}, "
                       f"probe {escape(clean_text(ident.probe_serial))}")
     try:

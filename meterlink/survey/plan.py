@@ -143,8 +143,8 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
 
 def load_plan(path_or_dict) -> SurveyPlan:
     """Load and check a plan (a TOML file path or an already parsed dict)."""
-    from meterlink.limits import reference_level
-    from meterlink.verdict import get_rule
+    from meterlink.physics.limits import reference_level
+    from meterlink.physics.verdict import get_rule
 
     doc, where, text = _read(path_or_dict)
     c = _Ctx(where)

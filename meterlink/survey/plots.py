@@ -6,7 +6,7 @@ import math
 
 from matplotlib.figure import Figure
 
-from meterlink.htmlpage import figure_png
+from meterlink.reports.htmlpage import figure_png
 
 _ACCENT, _MUTED, _LIMIT = "#2b6f77", "#b9c3c6", "#b3261e"
 

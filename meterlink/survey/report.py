@@ -11,8 +11,8 @@ import math
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError
-from meterlink.htmlpage import CSS, csv_cell, e, img, num, table, utc, verdict
-from meterlink.htmlpage import write_csv as write_rows
+from meterlink.reports.htmlpage import CSS, csv_cell, e, img, num, table, utc, verdict
+from meterlink.reports.htmlpage import write_csv as write_rows
 
 CAUTIONS = (
     "The values in this report describe the field at the listed points, at the time of measurement and, "
@@ -30,9 +30,9 @@ _e, _f, _utc, _verdict, _table, _img = e, num, utc, verdict, table, img
 
 def render_html(sv: dict, figures: dict[str, bytes]) -> str:
     """The report as one HTML string from a loaded survey (meterlink.survey.store.load_survey)."""
-    from meterlink.cli import SAFETY_LINE
-    from meterlink.limits import describe_standard
-    from meterlink.verdict import get_rule
+    from meterlink.cautions import SAFETY_LINE
+    from meterlink.physics.limits import describe_standard
+    from meterlink.physics.verdict import get_rule
 
     ses, site, pts = sv["session"], sv["site"], sv["points"]
     rule = get_rule(sv["decision_rule"])
@@ -127,7 +127,7 @@ def _check_status(sv) -> str:
     """What the broadband level (and, for frequency-selective points, the summation rule) was
     checked against, from the packaged tables."""
     from meterlink.errors import MeterlinkError
-    from meterlink.limits import NOT_CHECKED, reference_level, summation_rule
+    from meterlink.physics.limits import NOT_CHECKED, reference_level, summation_rule
 
     try:
         level = reference_level(sv["standard"], sv["tier"], sv["e_ref_freq_hz"]).status
@@ -190,7 +190,7 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
 
 def write_report(db_path, session_id: int, out_dir) -> Path:
     """Write report.html and the CSV files of a survey session into out_dir; returns the HTML path."""
-    from meterlink.storage import Store
+    from meterlink.storage.store import Store
     from meterlink.survey import plots
     from meterlink.survey.store import load_survey
 

@@ -10,11 +10,11 @@ import threading
 import time
 from typing import Callable
 
-from meterlink.certificate import DipoleCertificate, certificate_status, load_certificate
+from meterlink.physics.certificate import DipoleCertificate, certificate_status, load_certificate
 from meterlink.errors import LinkError, MeterlinkError
-from meterlink.link import Connected, MeterLink
-from meterlink.protocol import SensorKind
-from meterlink.storage import BatchWriter, Store
+from meterlink.device.link import Connected, MeterLink
+from meterlink.device.protocol import SensorKind
+from meterlink.storage.store import BatchWriter, Store
 from meterlink.survey import store as sstore
 from meterlink.survey.assess import assess, broadband_reference, point_temperatures
 from meterlink.survey.capture import Capture, View

@@ -9,7 +9,7 @@ import time
 from dataclasses import asdict
 
 from meterlink import __version__
-from meterlink.storage import Store, StorageError
+from meterlink.storage.store import Store, StorageError
 from meterlink.survey.model import PointResult, SurveyPlan
 
 
@@ -19,7 +19,7 @@ def _num(v):
 
 def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, sensor: str) -> None:
     """Record the plan's fixed choices (standard, tier, rule, certificate) before measuring."""
-    from meterlink.certificate import dump_certificate
+    from meterlink.physics.certificate import dump_certificate
 
     sha = hashlib.sha256(dump_certificate(cert).encode()).hexdigest()
     row = {"session_id": session_id, "title": plan.title, "site_json": json.dumps(asdict(plan.site)),

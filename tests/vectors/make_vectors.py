@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from meterlink import protocol as p
+from meterlink.device import protocol as p
 
 T = p.FrameType
 OUT = Path(__file__).with_name("frames.json")

@@ -23,13 +23,15 @@ from typing import Any, Callable, Iterable, Mapping
 import numpy as np
 import sqlite_utils
 
-from meterlink import __version__, spans
+from meterlink import __version__
+
+from meterlink.storage import spans
 from meterlink.errors import MeterlinkError
-from meterlink.schema import _SLOW_MIGRATIONS, APP_ID, MIGRATIONS, SCHEMA_VERSION  # noqa: F401 (re-exported)
+from meterlink.storage.schema import _SLOW_MIGRATIONS, APP_ID, MIGRATIONS, SCHEMA_VERSION  # noqa: F401 (re-exported)
 
 SEVERITIES = ("info", "warning", "error")
 READING_COLUMNS = ("boot", "seq", "tick_ms", "t_utc", "raw_x", "raw_y", "raw_z", "flags", "range_index")
-# a reading row may carry "epoch" too (meterlink.spans: one per connection to a device); absent, it is 0
+# a reading row may carry "epoch" too (meterlink.storage.spans: one per connection to a device); absent, it is 0
 
 
 class StorageError(MeterlinkError):

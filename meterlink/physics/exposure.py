@@ -1,8 +1,8 @@
 """Exposure ratios: multi-frequency sums by each standard's rule, extrapolation to maximum
 power, the near-field guard and percent-of-limit in field and power terms (pure).
 
-Reference levels and summation rules come from :mod:`meterlink.limits`. Inputs are RMS values
-already averaged over the standard's averaging time (see :mod:`meterlink.averaging`).
+Reference levels and summation rules come from :mod:`meterlink.physics.limits`. Inputs are RMS values
+already averaged over the standard's averaging time (see :mod:`meterlink.physics.averaging`).
 """
 
 from __future__ import annotations
@@ -12,8 +12,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink.errors import MeterlinkError
-from meterlink.limits import reference_level, summation_rule
-from meterlink.units import Z0_OHM, format_frequency
+from meterlink.physics.limits import reference_level, summation_rule
+from meterlink.physics.units import Z0_OHM, format_frequency
 
 #: Below this frequency a measurement point is treated as near field unless shown otherwise.
 NEAR_FIELD_BELOW_HZ = 30e6

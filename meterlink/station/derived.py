@@ -2,7 +2,7 @@
 
 Everything is in the power domain: a field E is accumulated as the integral of E^2 dt and the
 root is taken only when a value is read out (RMS over time). The sampling model is that of
-:mod:`meterlink.averaging`: a sample holds its value until the next sample, never longer than
+:mod:`meterlink.physics.averaging`: a sample holds its value until the next sample, never longer than
 ``hold_s`` (3 nominal intervals); uncovered time is a gap, never a zero. The tables live next to
 the Store's own (``CREATE TABLE IF NOT EXISTS``; docs/monitoring.md) and are written in the same
 transaction as the readings they come from, so a crash leaves them consistent.

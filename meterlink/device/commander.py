@@ -13,11 +13,11 @@ import time
 from dataclasses import dataclass
 
 from meterlink.errors import LinkError, MeterlinkError, ProtocolError
-from meterlink.protocol import (PROTOCOL_MAJOR, Ack, ClockSet, Echo, Fault, FaultCode, Frame, FrameReader,
+from meterlink.device.protocol import (PROTOCOL_MAJOR, Ack, ClockSet, Echo, Fault, FaultCode, Frame, FrameReader,
                                 FrameType, Ident, Junk, SetInterval, Setting, SettingGet, SettingKey,
                                 SettingPut, Status,
                                 encode_frame, parse_payload)
-from meterlink.transport import Link
+from meterlink.device.transport import Link
 
 # the reply a command expects besides ACK/FAULT, matched by type
 REPLY_TYPE = {FrameType.WHO: FrameType.IDENT, FrameType.STATUS_QUERY: FrameType.STATUS,

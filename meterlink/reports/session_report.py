@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from meterlink import htmlpage as H
+from meterlink.reports import htmlpage as H
 from meterlink.errors import MeterlinkError
 
 CAUTIONS = (
@@ -35,7 +35,7 @@ def _choices(store, sid, standard, tier, rule):
 def _field_plot(series, a) -> bytes:
     from matplotlib.figure import Figure
 
-    from meterlink.averaging import running_average
+    from meterlink.physics.averaging import running_average
 
     t = np.asarray(series.t_utc)
     e = np.asarray(series.e_v_per_m, dtype=float)
@@ -66,7 +66,7 @@ def _field_plot(series, a) -> bytes:
 def _shares_plot(a) -> bytes:
     from matplotlib.figure import Figure
 
-    from meterlink.units import format_frequency
+    from meterlink.physics.units import format_frequency
 
     em = list(a.emitters)[:12]
     fig = Figure(figsize=(8, 0.35 * len(em) + 1.2))
@@ -79,12 +79,12 @@ def _shares_plot(a) -> bytes:
 
 def write_session_report(db_path, session_id: int, out_dir, *, standard=None, tier=None, rule=None) -> Path:
     """Write report.html and values.csv for a recorded session; returns the HTML path."""
-    from meterlink.assessment import assess_field, assess_spectrum
-    from meterlink.certificate import parse_certificate
-    from meterlink.cli import SAFETY_LINE
-    from meterlink.processing import FieldSeries, calibrated_series
-    from meterlink.render import value_label
-    from meterlink.storage import Store
+    from meterlink.physics.assessment import assess_field, assess_spectrum
+    from meterlink.physics.certificate import parse_certificate
+    from meterlink.cautions import SAFETY_LINE
+    from meterlink.storage.processing import FieldSeries, calibrated_series
+    from meterlink.reports.render import value_label
+    from meterlink.storage.store import Store
 
     if not Path(db_path).is_file():
         raise MeterlinkError(f"database {str(db_path)!r} does not exist")
@@ -104,7 +104,7 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
             a = assess_field(series, standard, tier, rule, freq_hz=s.get("freq_hz"), band=band,
                              fallback_range=cert.freq_range_hz, has_h=cert.quantity == "H")
         else:
-            from meterlink.calibrate import floor_e_v_per_m
+            from meterlink.physics.calibrate import floor_e_v_per_m
 
             a = assess_spectrum(series, standard, tier, rule, floor_v_per_m=floor_e_v_per_m(cert, series.freq_hz))
         events = store.events(session_id)

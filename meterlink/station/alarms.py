@@ -17,9 +17,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from meterlink.hooks import iso_ms
-from meterlink.station import AlarmRule
-from meterlink.units import Z0_OHM
+from meterlink.station.hooks import iso_ms
+from meterlink.station.stationfile import AlarmRule
+from meterlink.physics.units import Z0_OHM
 
 IDLE, PENDING, ACTIVE = "idle", "pending", "active"
 UNIT_LABEL = {"v_per_m": "V/m", "pct_field": "% of E ref", "pct_power": "% of S ref"}
@@ -147,7 +147,7 @@ class AlarmMachine:
 def percent_rules_instantaneous(standard: str, tier: str, freq) -> bool:
     """True where the standard prescribes no averaging time at a frequency or anywhere in a (lo, hi)
     band: percent-of-level alarms there compare instantaneous values, never an invented average."""
-    from meterlink.assessment import averaging_time_s
+    from meterlink.physics.assessment import averaging_time_s
     from meterlink.errors import MeterlinkError
 
     try:
@@ -161,6 +161,6 @@ def percent_rules_instantaneous(standard: str, tier: str, freq) -> bool:
 def command_call(argv: tuple[str, ...], ev: AlarmEvent, station: str = "") -> tuple[list[str], dict[str, str]]:
     """(argument list, alarm variables) of an external command for an event: argv plus phase, rule,
     meter, time (POSIX s to the ms), value and unit. No shell is involved: data stays data.
-    meterlink.hooks runs it with only these variables, PATH and LANG in its environment."""
+    meterlink.station.hooks runs it with only these variables, PATH and LANG in its environment."""
     args = [*argv, ev.kind, ev.rule, ev.meter, f"{ev.t_utc:.3f}", f"{ev.value:.6g}", ev.unit]
     return args, ev.environment(station)

@@ -16,8 +16,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterable, Iterator
 
-from meterlink import spans
-from meterlink.storage import Store, StorageError, describe_sqlite_error, open_readonly
+from meterlink.storage import spans
+from meterlink.storage.store import Store, StorageError, describe_sqlite_error, open_readonly
 
 # rows of a session in a table, as a WHERE clause over :sid (tables with a session_id column and
 # not listed here use "session_id = :sid"); readings go span by span (see _session_rows)

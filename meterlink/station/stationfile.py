@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError
-from meterlink.units import parse_frequency_hz
+from meterlink.physics.units import parse_frequency_hz
 
 FORMAT = "meterlink-station/1"
 UNITS = ("v_per_m", "pct_field", "pct_power")
@@ -54,7 +54,7 @@ class AlarmRule:
     min_duration_s: float = 0.0
     meters: tuple[str, ...] = ()          # empty: every meter
     command: tuple[str, ...] = ()         # argv of an external command, run per episode event
-    command_timeout_s: float = 10.0       # past this its whole process group is killed (meterlink.hooks)
+    command_timeout_s: float = 10.0       # past this its whole process group is killed (meterlink.station.hooks)
 
 
 @dataclass(frozen=True)
@@ -72,7 +72,7 @@ class HealthRules:
 
 @dataclass(frozen=True)
 class Retention:
-    """Age limits, in days of data time, of every table that grows (meterlink/retention.py).
+    """Age limits, in days of data time, of every table that grows (meterlink/station/retention.py).
 
     derived_days = 0 keeps the 6-minute blocks and running averages for ever."""
 

@@ -11,13 +11,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from meterlink import units
-from meterlink.averaging import HOLD_FACTOR, running_average
-from meterlink.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_ASSUMED, FREQ_OUT
+from meterlink.physics import units
+from meterlink.physics.averaging import HOLD_FACTOR, running_average
+from meterlink.physics.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_ASSUMED, FREQ_OUT
 from meterlink.errors import MeterlinkError
-from meterlink.exposure import multi_frequency, near_field_check
-from meterlink.limits import ReferenceLevel, most_restrictive_level, reference_level
-from meterlink.verdict import Verdict, decide_field, decide_ratio, get_rule, lower_bound, not_assessable, upper_bound
+from meterlink.physics.exposure import multi_frequency, near_field_check
+from meterlink.physics.limits import ReferenceLevel, most_restrictive_level, reference_level
+from meterlink.physics.verdict import Verdict, decide_field, decide_ratio, get_rule, lower_bound, not_assessable, upper_bound
 
 WHOLE_BODY = "whole_body"
 
@@ -270,7 +270,7 @@ def assess_spectrum(series, standard: str, tier: str, rule: str, *, near_field: 
     """Assess frequency-selective (dipole) sweeps: per-frequency power-domain time average, standard's sum rule.
 
     A line below the receiver's floor in a sweep is not 0 V/m: with ``floor_v_per_m`` (one
-    orientation's floor per frequency, :func:`meterlink.calibrate.floor_e_v_per_m`) it counts at
+    orientation's floor per frequency, :func:`meterlink.physics.calibrate.floor_e_v_per_m`) it counts at
     sqrt(3) times the floor (all three orientations just below it), an upper bound, and is flagged.
     Sweeps are weighted by the time each stands for, not equally.
     """

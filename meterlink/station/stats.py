@@ -1,6 +1,6 @@
 """Statistics of a 6-minute series per day, week and month (pure).
 
-Inputs are the fixed blocks of :mod:`meterlink.derived` (RMS field per block, covered seconds,
+Inputs are the fixed blocks of :mod:`meterlink.station.derived` (RMS field per block, covered seconds,
 completeness). Only complete blocks enter the order statistics. Definitions:
 - convention "field": values are E (V/m) and percent of the field reference level 100 E / E_ref;
   convention "power": values are the plane-wave S = E^2 / Z0 and percent 100 S / S_ref.
@@ -21,7 +21,7 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from meterlink.units import Z0_OHM
+from meterlink.physics.units import Z0_OHM
 
 PERIODS = ("day", "week", "month")
 PERCENTILE_METHOD = "Hyndman-Fan definition 7 (linear between order statistics)"

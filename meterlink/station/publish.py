@@ -2,7 +2,7 @@
 
 Every output names the limit set (standard, tier, source of the reference level) and the
 convention (percent of the field or of the power-density reference level) and carries the
-safety cautions. Reads only the monitoring tables of meterlink.derived and the Store's events.
+safety cautions. Reads only the monitoring tables of meterlink.station.derived and the Store's events.
 """
 
 from __future__ import annotations
@@ -16,11 +16,11 @@ import re
 
 import numpy as np
 
-from meterlink import derived
+from meterlink.station import derived
 from meterlink.errors import MeterlinkError
-from meterlink.safetext import clean_text, clean_tree, csv_cell
-from meterlink.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
-from meterlink.units import Z0_OHM
+from meterlink.reports.safetext import clean_text, clean_tree, csv_cell
+from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
+from meterlink.physics.units import Z0_OHM
 
 
 def _rows(conn, sql, params=()):
@@ -161,7 +161,7 @@ def header_lines(st: dict, safety: str) -> list[str]:
 
 def to_csv(st: dict, rows: list[dict], safety: str) -> str:
     """The 6-minute series as CSV (RFC 4180 quoting) under '#' comment lines; no text can start a
-    spreadsheet formula or break a line (meterlink.safetext)."""
+    spreadsheet formula or break a line (meterlink.reports.safetext)."""
     buf = io.StringIO()
     for line in header_lines(st, safety):
         buf.write(f"# {clean_text(line)}\n")

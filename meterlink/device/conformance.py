@@ -18,10 +18,10 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from meterlink.clock import HALF_TICK, TickUnwrapper
-from meterlink.commander import Commander, DeviceFault, NoReply, Received
+from meterlink.device.clock import HALF_TICK, TickUnwrapper
+from meterlink.device.commander import Commander, DeviceFault, NoReply, Received
 from meterlink.errors import MeterlinkError
-from meterlink.protocol import (MAX_PAYLOAD, PROTOCOL_MAJOR, STATUS_STREAMING, U32_MOD, Boot, Fault, FaultCode,
+from meterlink.device.protocol import (MAX_PAYLOAD, PROTOCOL_MAJOR, STATUS_STREAMING, U32_MOD, Boot, Fault, FaultCode,
                                 FrameType, Ident, ReaderStats, SensorKind, SettingKey, SettingPut, Status,
                                 parse_payload, seq_delta)
 

@@ -17,6 +17,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from meterlink.physics.response import band_correction_spread_db
+
 #: Divisors that turn a half-width (or an expanded value) into a standard uncertainty.
 #: JCGM 100:2008 4.3.7 (rectangular, a/sqrt(3)), 4.3.9 (triangular, a/sqrt(6)); U-shaped
 #: (arcsine) a/sqrt(2) as used for mismatch, e.g. JCGM 101:2008 6.4.6 / UKAS M3003.
@@ -150,7 +152,7 @@ def measurement_budget(cert, freq_hz=None, level=None, temp_c=None, k: float = K
     """Per-reading budget: the certificate's components plus interpolation, isotropy, temperature.
 
     freq_hz may be a number, a (lo, hi) band or None (unknown: the band spread is added as a
-    rectangular term, see calibrate.py). level is accepted for symmetry with readings; the
+    rectangular term, see response.py). level is accepted for symmetry with readings; the
     certificate format states linearity as level-independent within the calibrated range.
     """
     comps = list(cert.uncertainties)
@@ -165,7 +167,6 @@ def measurement_budget(cert, freq_hz=None, level=None, temp_c=None, k: float = K
             hw = max(_interp_halfwidth_db(ax.freq_hz, ax.correction_db, float(freq_hz)) for ax in cert.axes)
             comps.append(Component("frequency interpolation", hw, "dB", "rectangular"))
         else:
-            from meterlink.calibrate import band_correction_spread_db
             comps.append(Component("frequency unknown in band", band_correction_spread_db(cert, band),
                                    "dB", "rectangular"))
         coeff, coeff_hw = abs(cert.temp_coeff_db_per_c), cert.temp_coeff_halfwidth_db_per_c

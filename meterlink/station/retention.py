@@ -14,8 +14,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from meterlink import derived, spans
-from meterlink.storage import Store
+from meterlink.station import derived
+
+from meterlink.storage import spans
+from meterlink.storage.store import Store
 
 DAY_S = 86400.0
 

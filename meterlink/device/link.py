@@ -14,12 +14,12 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
-from meterlink.clock import HALF_TICK, ClockMapping, DeviceClock
+from meterlink.device.clock import HALF_TICK, ClockMapping, DeviceClock
 from meterlink.errors import LinkError, ProtocolError
-from meterlink.protocol import (Ack, Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident,
+from meterlink.device.protocol import (Ack, Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident,
                                 Junk, PROTOCOL_MAJOR, SetInterval, Spectrum, Status, encode_message,
                                 parse_payload, seq_delta)
-from meterlink.transport import Link, SerialLink
+from meterlink.device.transport import Link, SerialLink
 
 RESTART_SEQ_MAX = 64  # seq this close to 0 with the tick going back = the device restarted
 

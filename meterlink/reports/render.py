@@ -14,13 +14,13 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from meterlink.cli import SAFETY_LINE
-from meterlink.safetext import clean_text
-from meterlink.units import format_frequency
+from meterlink.cautions import SAFETY_LINE
+from meterlink.reports.safetext import clean_text
+from meterlink.physics.units import format_frequency
 
 
 def escape(text) -> str:
-    """Text for rich markup: markup escaped, control characters shown as escapes (meterlink.safetext)."""
+    """Text for rich markup: markup escaped, control characters shown as escapes (meterlink.reports.safetext)."""
     return _escape_markup(clean_text(text))
 
 #: Our own palette for outcomes: the word is always printed too, colour is never the only cue.
@@ -148,7 +148,7 @@ def field_summary_renderable(series, title: str = "calibrated field") -> Table:
     u = np.asarray(series.u_expanded_db, dtype=float)
     u = u[np.isfinite(u)]
     if u.size:
-        from meterlink.units import db_to_ratio_field
+        from meterlink.physics.units import db_to_ratio_field
         t.caption = (f"{int(ok.sum())} values; expanded uncertainty U = {u.max():.2f} dB (k = 2), "
                      f"+{100 * (float(db_to_ratio_field(u.max())) - 1):.0f} % / "
                      f"-{100 * (1 - float(db_to_ratio_field(-u.max()))):.0f} % in field; "

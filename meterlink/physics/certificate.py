@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from meterlink.errors import CertificateError, read_input_text
-from meterlink.uncertainty import DISTRIBUTIONS, UNITS, Component
+from meterlink.physics.uncertainty import DISTRIBUTIONS, UNITS, Component
 
 FORMAT = "meterlink-cert/1"
 KIND_PROBE = "isotropic-probe"
@@ -305,7 +305,7 @@ def parse_certificate(text: str, where: str = "<text>") -> ProbeCertificate | Di
 
 
 def _checkout_dir() -> Path:
-    return Path(__file__).resolve().parent.parent / "calibration"
+    return Path(__file__).resolve().parents[2] / "calibration"
 
 
 def _packaged():

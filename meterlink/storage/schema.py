@@ -1,6 +1,6 @@
 """The database schema as migrations: version -> the function that brings a file up to it (docs/schema.md).
 
-Each migration runs in one transaction when a file is opened (meterlink.storage.Store); a file
+Each migration runs in one transaction when a file is opened (meterlink.storage.store.Store); a file
 records its version in ``meta``. A migration is never edited once released: a change is a new one.
 """
 
@@ -10,7 +10,7 @@ from typing import Callable
 
 import sqlite_utils
 
-from meterlink import spans
+from meterlink.storage import spans
 
 APP_ID = "meterlink"
 SCHEMA_VERSION = 4
@@ -118,7 +118,7 @@ def _schema_v2_survey(db: sqlite_utils.Database) -> None:
 
 # version -> function bringing the schema from version-1 up to it; applied in order, in one transaction each
 def _schema_v3_spans(db: sqlite_utils.Database) -> None:
-    """Readings lose their per-row indexes to the span index (meterlink/spans.py)."""
+    """Readings lose their per-row indexes to the span index (meterlink/storage/spans.py)."""
     spans.create(db.conn)
 
 

@@ -15,9 +15,9 @@ from dataclasses import dataclass, field
 from typing import Callable
 
 from meterlink.errors import MeterlinkError
-from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
-from meterlink.storage import BatchWriter, Store, epoch_row
-from meterlink.transport import Link
+from meterlink.device.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
+from meterlink.storage.store import BatchWriter, Store, epoch_row
+from meterlink.device.transport import Link
 
 
 class NoMeterError(MeterlinkError):

@@ -1,6 +1,6 @@
 """Reference levels of RF exposure standards, read from the packaged TOML tables.
 
-Every standard is one file in ``meterlink/data/limits``; the loader discovers them, so a new
+Every standard is one file in ``meterlink/physics/data/limits``; the loader discovers them, so a new
 standard or a national variant is a data change only. A cell is a constant or a power law
 a*(f/unit)^b; S-only cells get plane-wave E = sqrt(S*Z0) and H = sqrt(S/Z0), marked derived.
 
@@ -25,7 +25,7 @@ from functools import lru_cache
 from importlib import resources
 
 from meterlink.errors import MeterlinkError
-from meterlink.units import C_M_PER_S, Z0_OHM, format_frequency
+from meterlink.physics.units import C_M_PER_S, Z0_OHM, format_frequency
 
 TIERS = ("public", "occupational")
 KINDS = ("whole_body", "local", "peak", "brief_energy")
@@ -254,7 +254,7 @@ def _row(spec: dict, where: str, table_checked: str, table_avg, table_avg_checke
 
 
 def _resource(name: str):
-    return resources.files("meterlink.data.limits").joinpath(name)
+    return resources.files("meterlink.physics.data.limits").joinpath(name)
 
 
 @lru_cache(maxsize=None)
@@ -404,7 +404,7 @@ def _level(table: _Table, row: _Row, freq_hz: float) -> ReferenceLevel:
 
 @lru_cache(maxsize=None)
 def _standard_ids() -> tuple[str, ...]:
-    names = [p.name for p in resources.files("meterlink.data.limits").iterdir()]
+    names = [p.name for p in resources.files("meterlink.physics.data.limits").iterdir()]
     return tuple(sorted(n[: -len(".toml")] for n in names if n.endswith(".toml")))
 
 

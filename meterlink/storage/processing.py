@@ -15,12 +15,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink import __version__
-from meterlink.assessment import Temperatures
-from meterlink.calibrate import calibrate_axes, calibrate_spectrum
-from meterlink.certificate import DipoleCertificate, ProbeCertificate, dump_certificate, load_certificate
+from meterlink.physics.assessment import Temperatures
+from meterlink.physics.calibrate import calibrate_axes, calibrate_spectrum
+from meterlink.physics.certificate import DipoleCertificate, ProbeCertificate, dump_certificate, load_certificate
 from meterlink.errors import MeterlinkError
-from meterlink.protocol import SensorKind
-from meterlink.storage import Store
+from meterlink.device.protocol import SensorKind
+from meterlink.storage.store import Store
 
 ORIENTATIONS = "xyz?"
 
@@ -147,13 +147,13 @@ def _calibration(store: Store, session_id: int, calibration_id: int | None) -> d
 
 
 def _cal_certificate(cal: dict):
-    from meterlink.certificate import parse_certificate
+    from meterlink.physics.certificate import parse_certificate
 
     return parse_certificate(cal["certificate_text"], f"calibration {cal['id']}")
 
 
 def _warnings_of(cal: dict, today: _dt.date | None = None) -> tuple[str, ...]:
-    from meterlink.certificate import certificate_status
+    from meterlink.physics.certificate import certificate_status
 
     return tuple(certificate_status(_cal_certificate(cal), today or _dt.date.today()))
 
@@ -203,7 +203,7 @@ def spectrum_series(store: Store, session_id: int, calibration_id: int | None = 
 
 def certificate_for_session(store: Store, session_id: int):
     """The packaged certificate whose serial matches the session's probe, or None."""
-    from meterlink.certificate import packaged_certificates
+    from meterlink.physics.certificate import packaged_certificates
 
     s = store.session(session_id)
     serial = (s.get("device_probe_serial") or "").strip()

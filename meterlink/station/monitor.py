@@ -21,19 +21,21 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from meterlink import calibrate, derived, retention
-from meterlink.alarms import AlarmEvent, AlarmMachine, command_call, percent_rules_instantaneous, rule_value
-from meterlink.certificate import KIND_DIPOLE, certificate_status, load_certificate
-from meterlink.hooks import STOP_WAIT_S, HookRunner
-from meterlink.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
-from meterlink.limits import most_restrictive_level
-from meterlink.lock import StationLock
-from meterlink.notify import Notifier
-from meterlink.retention import thin_readings  # noqa: F401 - kept importable from here
-from meterlink.spectral import RATIO_BAND, SweepAssembler, SweepValue
-from meterlink.station import MeterConfig, Station
-from meterlink.storage import BatchWriter, Store, StorageError, epoch_row, event_row
-from meterlink.units import Z0_OHM
+from meterlink.physics import calibrate
+
+from meterlink.station import derived, retention
+from meterlink.station.alarms import AlarmEvent, AlarmMachine, command_call, percent_rules_instantaneous, rule_value
+from meterlink.physics.certificate import KIND_DIPOLE, certificate_status, load_certificate
+from meterlink.station.hooks import STOP_WAIT_S, HookRunner
+from meterlink.device.link import Connected, LinkEvent, MeterLink, Reading, SpectrumReading, StatusReport
+from meterlink.physics.limits import most_restrictive_level
+from meterlink.station.lock import StationLock
+from meterlink.station.notify import Notifier
+from meterlink.station.retention import thin_readings  # noqa: F401 - kept importable from here
+from meterlink.station.spectral import RATIO_BAND, SweepAssembler, SweepValue
+from meterlink.station.stationfile import MeterConfig, Station
+from meterlink.storage.store import BatchWriter, Store, StorageError, epoch_row, event_row
+from meterlink.physics.units import Z0_OHM
 
 SEVERITY_OF = {"warning": "warning", "error": "error"}
 
@@ -110,7 +112,7 @@ class Monitor:
     """Run a station until ``stop()``; ``time_scale`` > 1 only for an accelerated simulator."""
 
     def __init__(self, station: Station, **options):
-        """Take the station's lock (meterlink/lock.py), then open it (``_open``; options as there).
+        """Take the station's lock (meterlink/station/lock.py), then open it (``_open``; options as there).
         A failure while opening gives the lock and the database back at once."""
         self._lock = StationLock(station.database, station.name).acquire()
         try:
@@ -139,8 +141,8 @@ class Monitor:
             derived.ensure_schema(self.conn)
         self._station_events: list[dict] = []
         self.station_id, prev = self._station_record()
-        self.hooks = HookRunner()                        # alarm commands (meterlink/hooks.py)
-        self.notify = Notifier()                         # systemd READY/WATCHDOG/STOPPING (meterlink/notify.py)
+        self.hooks = HookRunner()                        # alarm commands (meterlink/station/hooks.py)
+        self.notify = Notifier()                         # systemd READY/WATCHDOG/STOPPING (meterlink/station/notify.py)
         self.meters = [self._meter(m) for m in station.meters]
         self._backoff_max_s, self._link_factory = backoff_max_s, link_factory
         # commit failures (a full disk): batches are kept and retried with back-off (see _commit)
@@ -638,7 +640,7 @@ class Monitor:
                             f"{ms.cert.due_date.isoformat()} ({days} days)", due_date=ms.cert.due_date.isoformat())
 
     def _retention(self) -> None:
-        """Thin every growing table to its age limit (meterlink/retention.py), one chunk per commit tick."""
+        """Thin every growing table to its age limit (meterlink/station/retention.py), one chunk per commit tick."""
         keep = self.st.retention
         if not self._retention_todo:
             if time.monotonic() < self._retention_next:

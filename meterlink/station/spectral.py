@@ -1,12 +1,12 @@
 """Per-band values of a frequency-selective (dipole + receiver) meter, one per complete sweep (pure).
 
 A sweep is three orientation spectra (x, y, z) of the same (boot, sweep) number. Each is
-calibrated with the dipole certificate (:func:`meterlink.calibrate.calibrate_spectrum`), the
-three are summed in power (:func:`meterlink.calibrate.combine_orientations`), and each band's
+calibrated with the dipole certificate (:func:`meterlink.physics.calibrate.calibrate_spectrum`), the
+three are summed in power (:func:`meterlink.physics.calibrate.combine_orientations`), and each band's
 field is the power sum of the lines inside it: E_band^2 = sum of E_i^2 over lines lo <= f_i <= hi.
 A line an orientation reports below the receiver's floor (or does not report) is not 0 V/m: it is
 "< floor" and counted at the floor, so the band value is an upper bound there (``band_below``).
-The total exposure ratio follows the standard's summation rule (:func:`meterlink.exposure.multi_frequency`).
+The total exposure ratio follows the standard's summation rule (:func:`meterlink.physics.exposure.multi_frequency`).
 """
 
 from __future__ import annotations
@@ -16,9 +16,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from meterlink.calibrate import calibrate_spectrum, combine_orientations
+from meterlink.physics.calibrate import calibrate_spectrum, combine_orientations
 from meterlink.errors import MeterlinkError
-from meterlink.exposure import multi_frequency
+from meterlink.physics.exposure import multi_frequency
 
 RATIO_BAND = "exposure_ratio"     # pseudo-band of the derived series holding sqrt(total exposure ratio)
 

@@ -17,10 +17,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from meterlink import units
-from meterlink.certificate import FORMAT, KIND_PROBE, AxisCalibration, ProbeCertificate
-from meterlink.interp import MonotoneCubic
-from meterlink.uncertainty import Component, measurement_budget
+from meterlink.physics import units
+from meterlink.physics.certificate import FORMAT, KIND_PROBE, AxisCalibration, ProbeCertificate
+from meterlink.physics.interp import MonotoneCubic
+from meterlink.physics.response import _band_grid, _corr_at, band_correction_spread_db  # noqa: F401 (re-exported)
+from meterlink.physics.uncertainty import Component, measurement_budget
 
 BELOW_RANGE = 1 << 0
 ABOVE_RANGE = 1 << 1
@@ -109,25 +110,6 @@ def expected_counts(ax: AxisCalibration, field) -> np.ndarray:
     return np.exp(0.5 * (lo + hi)) + ax.zero_counts
 
 
-def _corr_at(ax: AxisCalibration, freq_hz) -> np.ndarray:
-    """Frequency correction (dB), linear in log-frequency, clamped to the table ends."""
-    # clip first: the same clamped result, and no log of zero or of a negative (absurd) frequency
-    f = np.clip(np.asarray(freq_hz, dtype=float), ax.freq_hz[0], ax.freq_hz[-1])
-    return np.interp(np.log10(f), np.log10(ax.freq_hz), ax.correction_db)
-
-
-def _band_grid(cert, band) -> np.ndarray:
-    lo, hi = max(band[0], cert.freq_range_hz[0]), min(band[1], cert.freq_range_hz[1])
-    pts = [f for ax in cert.axes for f in ax.freq_hz if lo <= f <= hi]
-    return np.unique(np.concatenate([np.geomspace(lo, hi, 64), pts]))
-
-
-def band_correction_spread_db(cert: ProbeCertificate, band) -> float:
-    """Largest over axes of (max - min) correction across the band: the rectangular half-width used."""
-    grid = _band_grid(cert, band)
-    return float(max(np.ptp(_corr_at(ax, grid)) for ax in cert.axes))
-
-
 def frequency_correction_db(cert: ProbeCertificate, freq_hz) -> tuple[np.ndarray, int]:
     """Per-axis correction (3,) and flags for a declared frequency, a (lo, hi) band or None."""
     lo, hi = cert.freq_range_hz
@@ -144,7 +126,7 @@ def frequency_correction_db(cert: ProbeCertificate, freq_hz) -> tuple[np.ndarray
 
 
 def _expiry(cert, today):
-    from meterlink.certificate import certificate_status
+    from meterlink.physics.certificate import certificate_status
     on = today or _dt.date.today()
     return tuple(certificate_status(cert, on)), (EXPIRED if on > cert.due_date else 0)
 
