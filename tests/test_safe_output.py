@@ -24,7 +24,7 @@ from meterlink.cli import main
 from meterlink.reports.htmlpage import e as html_text
 from meterlink.station.monitor import Monitor
 from meterlink.reports.render import escape as render_escape
-from meterlink.reports.safetext import clean_text, csv_cell
+from meterlink.safetext import clean_text, csv_cell
 from meterlink.station.stationfile import parse_station
 from meterlink.survey.report import write_report
 from meterlink.survey.run import run_plan

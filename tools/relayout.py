@@ -19,7 +19,7 @@ LAYOUT = {
     "storage": ["schema", ("storage", "store"), "spans", "salvage", "recorder", "processing"],
     "station": [("station", "stationfile"), "monitor", "derived", "spectral", "alarms", "stats", "publish",
                 "hooks", "lock", "notify", "retention"],
-    "reports": ["render", "htmlpage", "session_report", "safetext"],
+    "reports": ["render", "htmlpage", "session_report"],
 }
 MAP = {}  # old flat module -> new dotted path below meterlink
 for _pkg, _mods in LAYOUT.items():

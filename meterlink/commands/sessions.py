@@ -132,7 +132,7 @@ def _sessions_table(rows, db):
     from rich.markup import escape
     from rich.table import Table
 
-    from meterlink.reports.safetext import clean_text
+    from meterlink.safetext import clean_text
 
     from meterlink.physics.units import format_frequency
 
@@ -170,7 +170,7 @@ def _events_table(rows, sid):
     from rich.markup import escape
     from rich.table import Table
 
-    from meterlink.reports.safetext import clean_text
+    from meterlink.safetext import clean_text
 
     t = Table(title=f"events of session {sid}", title_justify="left")
     for col in ("time", "severity", "kind", "message"):

@@ -16,6 +16,7 @@ from typing import Any, Callable
 
 from meterlink.device.clock import HALF_TICK, ClockMapping, DeviceClock
 from meterlink.errors import LinkError, ProtocolError
+from meterlink.safetext import clean_text
 from meterlink.device.protocol import (Ack, Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident,
                                 Junk, PROTOCOL_MAJOR, SetInterval, Spectrum, Status, encode_message,
                                 parse_payload, seq_delta)
@@ -25,8 +26,8 @@ RESTART_SEQ_MAX = 64  # seq this close to 0 with the tick going back = the devic
 
 
 def safe_text(s: str) -> str:
-    """A device string made safe to print: control and non-ASCII characters escaped."""
-    return repr(str(s))[1:-1]
+    """A device string made safe to print (control and bidi characters escaped): meterlink.safetext."""
+    return clean_text(s)
 
 
 @dataclass(frozen=True)

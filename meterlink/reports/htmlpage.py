@@ -1,6 +1,6 @@
 """Building blocks of meterlink's self-contained HTML reports and their CSV files.
 
-Every value passed in as text is escaped here, control characters included (meterlink.reports.safetext);
+Every value passed in as text is escaped here, control characters included (meterlink.safetext);
 figures are embedded as base64 PNG so a report is one file. CSV cells that a spreadsheet would run
 as a formula are prefixed with a quote.
 """
@@ -15,7 +15,7 @@ import math
 from html import escape
 from pathlib import Path
 
-from meterlink.reports.safetext import clean_text, csv_cell  # noqa: F401 - csv_cell is part of this module's API
+from meterlink.safetext import clean_text, csv_cell  # noqa: F401 - csv_cell is part of this module's API
 
 CSS = """
 body{font-family:system-ui,sans-serif;margin:2rem auto;max-width:64rem;color:#1d2a2e;line-height:1.4}

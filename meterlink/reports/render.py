@@ -15,12 +15,12 @@ from rich.table import Table
 from rich.text import Text
 
 from meterlink.cautions import SAFETY_LINE
-from meterlink.reports.safetext import clean_text
+from meterlink.safetext import clean_text
 from meterlink.physics.units import format_frequency
 
 
 def escape(text) -> str:
-    """Text for rich markup: markup escaped, control characters shown as escapes (meterlink.reports.safetext)."""
+    """Text for rich markup: markup escaped, control characters shown as escapes (meterlink.safetext)."""
     return _escape_markup(clean_text(text))
 
 #: Our own palette for outcomes: the word is always printed too, colour is never the only cue.

@@ -18,7 +18,7 @@ import numpy as np
 
 from meterlink.station import derived
 from meterlink.errors import MeterlinkError
-from meterlink.reports.safetext import clean_text, clean_tree, csv_cell
+from meterlink.safetext import clean_text, clean_tree, csv_cell
 from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
 from meterlink.physics.units import Z0_OHM
 
@@ -161,7 +161,7 @@ def header_lines(st: dict, safety: str) -> list[str]:
 
 def to_csv(st: dict, rows: list[dict], safety: str) -> str:
     """The 6-minute series as CSV (RFC 4180 quoting) under '#' comment lines; no text can start a
-    spreadsheet formula or break a line (meterlink.reports.safetext)."""
+    spreadsheet formula or break a line (meterlink.safetext)."""
     buf = io.StringIO()
     for line in header_lines(st, safety):
         buf.write(f"# {clean_text(line)}\n")

@@ -122,7 +122,7 @@ def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, *
     if console is not None and ident is not None:
         from rich.markup import escape
 
-        from meterlink.reports.safetext import clean_text
+        from meterlink.safetext import clean_text
         console.print(f"meter: {escape(clean_text(ident.model))} serial {escape(clean_text(ident.serial))}, "
                       f"probe {escape(clean_text(ident.probe_serial))}")
     try:
