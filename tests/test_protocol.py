@@ -19,6 +19,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from meterlink.device import framing
 from meterlink.device import protocol as p
 from meterlink.errors import ProtocolError
 
@@ -264,7 +265,7 @@ def test_maximum_frame_length_255_enforced():
 @pytest.mark.parametrize("n", [241, 242, 250, 255])
 def test_oversized_len_rejected_and_skipped(n):
     # build a frame claiming LEN n > 240 with a CRC that is right for its bytes
-    body = p._HEAD.pack(p.SYNC, 1, p.FrameType.PONG, n, 1, 2) + bytes(n)
+    body = framing._HEAD.pack(p.SYNC, 1, p.FrameType.PONG, n, 1, 2) + bytes(n)
     bogus = body + p.crc16(body[2:]).to_bytes(2, "little")
     assert len(bogus) == 15 + n > p.MAX_FRAME
     with pytest.raises(ProtocolError):

@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+from meterlink.device import framing
 from meterlink.device import protocol as p
 
 T = p.FrameType
@@ -24,7 +25,7 @@ def valid(name: str, ftype: int, seq: int, tick: int, payload: bytes, note: str)
 
 def invalid(name: str, raw: bytes, reject: str, note: str) -> dict:
     head = raw[:p.HEADER_LEN] + bytes(max(0, p.HEADER_LEN - len(raw)))
-    _, _, ftype, n, seq, tick = p._HEAD.unpack(head)
+    _, _, ftype, n, seq, tick = framing._HEAD.unpack(head)
     return {"name": name, "type": ftype, "seq": seq, "tick_ms": tick, "payload_hex": raw[13:13 + n].hex(),
             "frame_hex": raw.hex(), "crc_hex": raw[-2:][::-1].hex(), "note": note, "reject": reject}
 
