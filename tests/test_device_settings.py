@@ -4,6 +4,7 @@ Keys, value types, ranges and fault codes are those of docs/protocol.md (Setting
 """
 
 import json
+import re
 import time
 
 import pytest
@@ -98,6 +99,12 @@ def test_clock_set_then_check_reports_small_offset_and_logs(meter, capsys, tmp_p
         assert ev["detail"]["old"] == 0 and ev["detail"]["new"] == after["device_utc_s"]
     rc, out, _ = cli(capsys, "clock", "--port", meter.port, "--db", str(db))
     assert rc == 0 and "offset" in out and "not set" not in out
+    # what a person reads is ISO 8601 UTC, never epoch seconds (the same instant as the JSON's number)
+    import datetime as _dt
+    iso = _dt.datetime.fromtimestamp(after["device_utc_s"], _dt.timezone.utc).strftime("%Y-%m-%dT%H:%M")
+    assert after["device_utc"].startswith(iso) and after["device_utc"].endswith("Z")
+    assert re.search(r"device \d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ, host \d{4}-", out)
+    assert str(after["device_utc_s"]) not in out
 
 
 def test_show_escapes_untrusted_device_text(meter, capsys, tmp_path):

@@ -86,10 +86,20 @@ def clock_offset(commander) -> dict:
     dev_s = commander.get_setting(SettingKey.CLOCK_UTC)
     t1 = time.time()
     host = (t0 + t1) / 2
+    res = round(0.5 + (t1 - t0) / 2, 3)
     if not isinstance(dev_s, int) or dev_s == 0:
-        return {"device_utc_s": dev_s, "host_utc_s": host, "offset_s": None, "resolution_s": 0.5 + (t1 - t0) / 2}
-    return {"device_utc_s": dev_s, "host_utc_s": host, "offset_s": dev_s + 0.5 - host,
-            "resolution_s": 0.5 + (t1 - t0) / 2}
+        return {"device_utc": None, "host_utc": iso_utc(host, 3), "device_utc_s": dev_s, "host_utc_s": round(host, 3),
+                "offset_s": None, "resolution_s": res}
+    return {"device_utc": iso_utc(dev_s), "host_utc": iso_utc(host, 3), "device_utc_s": dev_s,
+            "host_utc_s": round(host, 3), "offset_s": round(dev_s + 0.5 - host, 3), "resolution_s": res}
+
+
+def iso_utc(t_s: float, digits: int = 0) -> str:
+    """ISO 8601 UTC for a person to read (seconds, or milliseconds with digits=3), e.g. 2026-12-03T13:50:12Z."""
+    import datetime as _dt
+
+    d = _dt.datetime.fromtimestamp(t_s, _dt.timezone.utc)
+    return d.isoformat(timespec="milliseconds" if digits else "seconds").replace("+00:00", "Z")
 
 
 def run(args) -> int:
@@ -155,7 +165,7 @@ def run(args) -> int:
                 after = clock_offset(c)
                 out["after"] = after
                 sid = _device_session(store, ident, link.port, "meterlink device clock --set")
-                store.add_event(sid, "clock_set", "info", f"device clock set to host UTC {now:.3f}",
+                store.add_event(sid, "clock_set", "info", f"device clock set to host UTC {iso_utc(now, 3)}",
                                 old=before["device_utc_s"], new=after["device_utc_s"], set_to_utc_s=now,
                                 offset_before_s=before["offset_s"], offset_after_s=after["offset_s"],
                                 serial=ident.serial)
@@ -167,8 +177,8 @@ def run(args) -> int:
         return 0
     for label, r in out.items():
         if r["offset_s"] is None:
-            con.print(f"{label}: device clock not set (clock_utc {r['device_utc_s']})")
+            con.print(f"{label}: device clock not set (clock_utc {r['device_utc_s']}); host {r['host_utc']}")
         else:
-            con.print(f"{label}: device {r['device_utc_s']} s, offset {r['offset_s']:+.1f} s "
+            con.print(f"{label}: device {r['device_utc']}, host {r['host_utc']}, offset {r['offset_s']:+.1f} s "
                       f"(+-{r['resolution_s']:.1f} s: the device reports whole seconds)")
     return 0
