@@ -82,6 +82,8 @@ def test_cli_table_escapes_device_text_and_passes(capsys):
     out = capsys.readouterr().out
     assert rc == 0  # brackets are printable ASCII: allowed, but shown literally
     assert "[bold]M" in out and "all items conform" in out
+    header = next(ln for ln in out.splitlines() if "item" in ln and "evidence" in ln)
+    assert "result" in header  # every column is named
 
 
 def test_cli_usage_errors_exit_2(capsys):

@@ -136,3 +136,20 @@ def test_session_number_is_refused_once_issued_and_certificates_are_not_overwrit
     number = json.loads(capsys.readouterr().out)["certificate_number"]
     assert number == f"LAB-{dt.date.today():%Y%m%d}-0002"
     assert load_certificate(tmp_path / "c" / "certificate.toml").certificate_number == number
+
+
+def test_import_prints_the_factor_table_that_the_certificate_holds(tmp_path, capsys):
+    """The table printed for the technician shows the same factors (per axis, per frequency) as the certificate."""
+    _readings(tmp_path)
+    out = tmp_path / "out"
+    rc = main(["lab", "import", str(tmp_path / "hand.csv"), "--session", str(tmp_path / "session.toml"),
+               "--out", str(out)])
+    assert rc == 0
+    text = capsys.readouterr().out
+    assert "Calibration factors, dB" in text and "k = 2" in text
+    cert = load_certificate(out / "certificate.toml")
+    for f_hz, label in ((1e8, "100 MHz"), (1e9, "1 GHz"), (3e9, "3 GHz")):
+        line = next(ln for ln in text.splitlines() if label in ln)
+        k = list(cert.axes[0].freq_hz).index(f_hz)
+        for ax in cert.axes:
+            assert f"{ax.correction_db[k]:+.2f}" in line

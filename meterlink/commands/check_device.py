@@ -55,7 +55,7 @@ def render(report, console) -> None:
     t = Table(title=f"protocol conformance of {escape(who)}", title_justify="left", show_lines=False,
               caption=f"port {escape(report.port)}, {report.elapsed_s:.1f} s", caption_justify="left")
     t.add_column("item", no_wrap=True)
-    t.add_column("", no_wrap=True)
+    t.add_column("result", no_wrap=True)
     t.add_column("evidence")
     for r in report.results:
         mark, style = _MARK[r.status]

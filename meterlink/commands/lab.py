@@ -8,10 +8,22 @@ HELP = "calibration lab: run procedures, import readings, show the budget, write
 def add_arguments(parser) -> None:
     sub = parser.add_subparsers(dest="action", required=True, metavar="ACTION")
     run = sub.add_parser("run", help="run zero, linearity, frequency, isotropy (and temperature) on the simulated "
-                                     "lab bench")
-    imp = sub.add_parser("import", help="build a certificate from readings taken by hand (CSV)")
+                                     "lab bench",
+                         description="Calibrate a probe on the simulated lab bench (meter, signal chain and turntable "
+                                     "over its pty): zero, linearity per axis, frequency response, isotropy and, with "
+                                     "--temperatures, the temperature coefficient. Writes certificate.toml/.html and "
+                                     "readings.csv to --out and prints the calibration factors with their expanded "
+                                     "uncertainty. The lab session file (docs/lab.md) names the lab, the customer, "
+                                     "the reference standards and the method.")
+    imp = sub.add_parser("import", help="build a certificate from readings taken by hand (CSV)",
+                         description="Build a certificate from readings taken by hand on a bench meterlink does not "
+                                     "drive: a CSV of reference field and meter reading per step (columns in "
+                                     "docs/lab.md). The analysis, budget and outputs are those of 'lab run'.")
     imp.add_argument("csv", help="readings file (columns in docs/lab.md)")
-    bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method")
+    bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method",
+                         description="Show the GUM uncertainty budget of the lab session's method: each contribution "
+                                     "with its distribution, divisor and sensitivity, the combined standard "
+                                     "uncertainty and the expanded uncertainty with its coverage factor.")
     bud.add_argument("--type-a-db", type=float, default=0.02, help="Type A part to show (default 0.02 dB)")
     for p in (run, imp, bud):
         p.add_argument("--session", metavar="TOML", help="lab session file (default: an invented demo session)")
@@ -113,6 +125,21 @@ def _budget_table(b):
     return t
 
 
+def _factor_table(cal):
+    """The calibration factors a technician copies: per frequency, each axis and the total, with U (k = 2)."""
+    from rich.table import Table
+    fr, u = cal.response, cal.budget.u_expanded_db
+    t = Table(title=f"Calibration factors, dB (add to the indicated field level); U = {u:.2f} dB, k = 2, about 95 %",
+              title_justify="left")
+    t.add_column("frequency", justify="right")
+    for a in ("x", "y", "z", "total"):
+        t.add_column(f"axis {a}" if a != "total" else "total", justify="right")
+    for k, f_hz in enumerate(fr.freq_hz):
+        f = f"{f_hz / 1e9:g} GHz" if f_hz >= 1e9 else f"{f_hz / 1e6:g} MHz"
+        t.add_row(f, *(f"{v:+.2f}" for v in fr.cf_axes_db[k]), f"{fr.cf_total_db[k]:+.2f}")
+    return t
+
+
 def run(args) -> int:
     import json
     from pathlib import Path
@@ -187,6 +214,7 @@ def run(args) -> int:
         print(json.dumps(summary))
     else:
         console.print(_budget_table(cal.budget))
+        console.print(_factor_table(cal))
         console.print(f"certificate {cal.certificate.certificate_number}: {summary['certificate']}, report "
                       f"{summary['report']} (entered in the register {reg_path})", markup=False)
         console.print(f"isotropy +/- {cal.certificate.isotropy_db:.2f} dB about the mean; "
