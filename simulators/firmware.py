@@ -11,20 +11,14 @@ import math
 
 import numpy as np
 
-from meterlink.errors import ProtocolError
 from meterlink.device.protocol import (
-    AXIS_OVER_X, AXIS_UNDER_X, MAX_TEXT, PROTOCOL_MAJOR, PROTOCOL_MINOR, STATUS_BATTERY_LOW, STATUS_CLOCK_SET,
-    STATUS_OVERRANGE, STATUS_STREAMING, STATUS_UNDERRANGE, U32_MOD, Ack, Axes, Boot, Echo, Fault, FaultCode,
-    FrameReader, FrameType, Ident, SensorKind, Setting, SettingKey, Spectrum, Status, encode_message,
-    parse_payload,
+    AXIS_OVER_X, AXIS_UNDER_X, STATUS_BATTERY_LOW, STATUS_CLOCK_SET,
+    STATUS_OVERRANGE, STATUS_STREAMING, STATUS_UNDERRANGE, U32_MOD, Axes, Boot, FrameReader, FrameType, SettingKey, Spectrum, Status, encode_message,
 )
+from meterlink.simulators.commands import HostCommands
 from meterlink.simulators.instruments import probe_counts, receiver_levels_dbuv
 
 STATUS_PERIOD_MS = 5000  # unsolicited STATUS while streaming (the spec asks for at least every 10 s)
-_FIXED_LEN = {FrameType.WHO: 0, FrameType.START: 0, FrameType.STOP: 0, FrameType.STATUS_QUERY: 0,
-              FrameType.SET_INTERVAL: 4, FrameType.SETTING_GET: 1, FrameType.CLOCK_SET: 6}
-_HOST_TYPES = {FrameType.WHO, FrameType.START, FrameType.STOP, FrameType.SET_INTERVAL, FrameType.STATUS_QUERY,
-               FrameType.SETTING_GET, FrameType.SETTING_PUT, FrameType.CLOCK_SET, FrameType.PING}
 _READING_TYPES = {FrameType.AXES, FrameType.SPECTRUM, FrameType.STATUS}
 DEFAULT_FAULTS = {"drop": 0.0, "corrupt": 0.0, "garbage": 0.0, "garbage_max_bytes": 8, "frames": "readings",
                   "schedule": ()}
@@ -77,6 +71,7 @@ class Firmware:
         self.boot_count = int(dev.get("boot_count", 1)) - 1
         self.now_ms = 0
         self._out = bytearray()
+        self.commands = HostCommands(self)
         self._reset(0, cause=0, tick_base=start_tick_ms)
 
     # ----------------------------------------------------------------- state
@@ -132,7 +127,7 @@ class Firmware:
         inbox, self._inbox = self._inbox, []
         for frame in inbox:
             self.stats["commands_received"] += 1
-            self._command(frame, now_ms)
+            self.commands.handle(frame, now_ms)
         self.now_ms = now_ms
         out, self._out = bytes(self._out), bytearray()
         return out
@@ -162,6 +157,12 @@ class Firmware:
             else:
                 self._restarts.pop(0)
                 self._reset(t, cause=1)
+
+    def start_streaming(self, now_ms: int) -> None:
+        """START: readings every interval from now on, unsolicited STATUS every STATUS_PERIOD_MS."""
+        if not self.streaming:
+            self.streaming = True
+            self._next_end, self._next_status = now_ms + self._period_ms(), now_ms + STATUS_PERIOD_MS
 
     def _period_ms(self) -> int:
         """Time to the next reading: the interval, unless a quirk bends it."""
@@ -282,117 +283,6 @@ class Firmware:
         self._flags_changed(end_ms)
 
     # ----------------------------------------------------------------- commands
-    def _fault(self, code: int, frame, now_ms: int, text: str) -> None:
-        if self.quirks["wrong_fault_code"]:
-            code = FaultCode.UNKNOWN_TYPE if code == FaultCode.BAD_FRAME else FaultCode.BAD_FRAME
-        self._send(Fault(code, frame.type & 0xFF, frame.seq, text[:MAX_TEXT]), now_ms)
-
-    def _command(self, frame, now_ms: int) -> None:
-        if frame.version != PROTOCOL_MAJOR:
-            return self._fault(FaultCode.BAD_VERSION, frame, now_ms, f"version {frame.version}")
-        if frame.type not in _HOST_TYPES:
-            if not self.quirks["silent_unknown"]:
-                self._fault(FaultCode.UNKNOWN_TYPE, frame, now_ms, "type")
-            return None
-        ft = FrameType(frame.type)
-        if ft in _FIXED_LEN and len(frame.payload) != _FIXED_LEN[ft]:
-            return self._fault(FaultCode.BAD_LENGTH, frame, now_ms, "length")
-        try:
-            msg = parse_payload(frame)
-        except ProtocolError:
-            code = FaultCode.BAD_VALUE if ft == FrameType.CLOCK_SET else FaultCode.BAD_FRAME
-            return self._fault(code, frame, now_ms, "payload")
-        ack = Ack(frame.type, frame.seq)
-        if ft == FrameType.WHO:
-            self._send(self._ident(), now_ms)
-        elif ft == FrameType.START:
-            if not self.streaming:
-                self.streaming = True
-                self._next_end, self._next_status = now_ms + self._period_ms(), now_ms + STATUS_PERIOD_MS
-            self._send(ack, now_ms)
-            self._flags_changed(now_ms)
-        elif ft == FrameType.STOP:
-            self.streaming = self.streaming and bool(self.quirks["ignore_stop"])
-            self._send(ack, now_ms)
-            self._flags_changed(now_ms)
-        elif ft == FrameType.SET_INTERVAL:
-            if self._set_interval(msg.interval_ms, now_ms):
-                self._send(ack, now_ms)
-            else:
-                self._fault(FaultCode.BAD_VALUE, frame, now_ms, "interval")
-        elif ft == FrameType.STATUS_QUERY:
-            self._send(self._status(now_ms), now_ms)
-        elif ft == FrameType.SETTING_GET:
-            v = self._setting(msg.key, now_ms)
-            if v is None:
-                return self._fault(FaultCode.UNKNOWN_KEY, frame, now_ms, f"key {msg.key}")
-            self._send(Setting(msg.key, v), now_ms)
-        elif ft == FrameType.SETTING_PUT:
-            self._setting_put(frame, msg, now_ms)
-        elif ft == FrameType.CLOCK_SET:
-            self.clock = (msg.utc_s * 1000 + msg.utc_ms, now_ms)
-            self._send(ack, now_ms)
-            self._flags_changed(now_ms)
-        elif ft == FrameType.PING:
-            data = msg.data
-            if self.quirks["pong_alter"] and data:
-                data = data[:-1] + bytes([data[-1] ^ 0x20])
-            self._send(Echo(data), now_ms, FrameType.PONG)
-        return None
-
-    def _ident(self) -> Ident:
-        dev = self.sc.device
-        fw = tuple(int(v) for v in dev.get("fw", (1, 0, 0)))
-        kind = SensorKind.E_PROBE if self.sensor == "probe" else SensorKind.DIPOLE_RX
-        model = str(dev.get("model", "SIM")) + ("" if self.sensor == "probe" else "-RX")
-        q = self.quirks
-        kind = kind if q["ident_kind"] is None else int(q["ident_kind"])
-        model = model if q["ident_model"] is None else str(q["ident_model"])
-        major = PROTOCOL_MAJOR if q["ident_proto_major"] is None else int(q["ident_proto_major"])
-        return Ident(major, PROTOCOL_MINOR, *fw, kind, self.boot_count, self.min_interval_ms,
-                     self.max_interval_ms, model, self.spec.serial, self.texts[SettingKey.PROBE_SERIAL],
-                     self.texts[SettingKey.CERT_REF])
-
-    def _set_interval(self, interval_ms: int, now_ms: int) -> bool:
-        if not self.min_interval_ms <= interval_ms <= self.max_interval_ms:
-            return False
-        self.interval_ms = int(interval_ms)
-        if self.streaming:
-            self._next_end = now_ms + self.interval_ms
-        return True
-
-    def _setting(self, key: int, now_ms: int):
-        if key == SettingKey.INTERVAL_MS:
-            return self.interval_ms
-        if key == SettingKey.DEVICE_AVERAGING:
-            return self.averaging
-        if key in self.texts:
-            return self.texts[key]
-        if key == SettingKey.CLOCK_UTC:
-            return 0 if not self.clock else (self.clock[0] + now_ms - self.clock[1]) // 1000 % U32_MOD
-        return None
-
-    def _setting_put(self, frame, msg, now_ms: int) -> None:
-        key, v = msg.key, msg.value
-        if self._setting(key, now_ms) is None:
-            return self._fault(FaultCode.UNKNOWN_KEY, frame, now_ms, f"key {key}")
-        if key == SettingKey.CLOCK_UTC:
-            return self._fault(FaultCode.READ_ONLY, frame, now_ms, "clock: use CLOCK_SET")
-        if key in self.texts:
-            if not isinstance(v, str):
-                return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "text expected")
-            self.texts[key] = v
-        elif isinstance(v, str):
-            return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "number expected")
-        elif key == SettingKey.INTERVAL_MS:
-            if not self._set_interval(v, now_ms):
-                return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "interval")
-        elif key == SettingKey.DEVICE_AVERAGING:
-            if not 1 <= v <= 64:
-                return self._fault(FaultCode.BAD_VALUE, frame, now_ms, "averaging 1..64")
-            self.averaging = int(v)
-        self._send(Setting(key, self._setting(key, now_ms)), now_ms)
-        return None
 
 
 __all__ = ["Firmware", "DEFAULT_FAULTS", "DEFAULT_QUIRKS", "STATUS_PERIOD_MS"]
