@@ -257,3 +257,17 @@ def test_uncovered_frequency_and_bad_requests():
     with pytest.raises(PredictionError):
         exposure_grid([Source("a", 1.0, 0.0, 900e6)], standard="fcc-1310", tier="public",
                       half_width_m=100.0, step_m=0.01)
+
+
+def test_grid_pattern_path_matches_the_pattern_definition():
+    # the grid path evaluates relative_gain_db's model from turned coordinates (no angle wrapping);
+    # at random points both must give the same density: S = F*EIRP/(4*pi*r^2) * 10^(G_rel/10)
+    rng = np.random.default_rng(3)
+    pat = Pattern(65.0, 8.0, electrical_tilt_deg=3.0, mechanical_tilt_deg=4.0)
+    src = Source("s", 40.0, 17.0, 1.8e9, 5.0, -2.0, 25.0, azimuth_deg=300.0, pattern=pat)
+    x, y, z = rng.uniform(-80, 80, 200), rng.uniform(-80, 80, 200), rng.uniform(0, 40, 200)
+    dx, dy, dz = x - 5.0, y + 2.0, z - 25.0
+    az = np.degrees(np.arctan2(dx, dy)) - 300.0
+    el = np.degrees(np.arctan2(dz, np.hypot(dx, dy)))
+    want = 2.56 * src.eirp_w / (4 * np.pi * (dx * dx + dy * dy + dz * dz)) * 10 ** (relative_gain_db(pat, az, el) / 10)
+    assert source_s(src, x, y, z, ground_factor=2.56) == pytest.approx(want, rel=1e-9)

@@ -202,20 +202,42 @@ def source_s(src: Source, x_m, y_m, z_m, ground_factor: float = 1.0, min_distanc
     return _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m)[0]
 
 
+_LN10_10 = math.log(10.0) / 10.0
+
+
+def _pattern_factor(pat: Pattern, azimuth_deg: float, dx, dy, dz, rh2):
+    """(linear pattern factor, attenuation dB) at points: relative_gain_db's model evaluated without
+    wrapping or cosines (the offset comes from coordinates turned to the boresight, and the
+    cosine of the azimuth offset is the along-boresight share of the horizontal distance)."""
+    a0 = math.radians(azimuth_deg)
+    att = 0.0
+    if pat.h_beamwidth_deg < 360.0 or (pat.v_beamwidth_deg is not None and pat.mechanical_tilt_deg):
+        u = dx * math.sin(a0) + dy * math.cos(a0)      # along the boresight
+        v = dx * math.cos(a0) - dy * math.sin(a0)      # to its right (clockwise)
+        if pat.h_beamwidth_deg < 360.0:
+            az = np.arctan2(v, u)
+            att = np.minimum((12.0 / math.radians(pat.h_beamwidth_deg) ** 2) * (az * az), pat.front_to_back_db)
+    if pat.v_beamwidth_deg is not None:
+        rh = np.sqrt(rh2)
+        off = np.arctan2(dz, rh) + math.radians(pat.electrical_tilt_deg)
+        if pat.mechanical_tilt_deg:
+            off = off + math.radians(pat.mechanical_tilt_deg) * np.where(rh > 0, u / np.where(rh > 0, rh, 1.0), 1.0)
+        att = att + np.minimum((12.0 / math.radians(pat.v_beamwidth_deg) ** 2) * (off * off), pat.side_lobe_db)
+    att = np.minimum(att, pat.front_to_back_db)
+    return np.exp(-_LN10_10 * att), -att
+
+
 def _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m):
     dx, dy, dz, rh2 = _geometry(src, x_m, y_m, z_m)
     r2 = np.maximum(rh2 + dz * dz, min_distance_m * min_distance_m)
     pat = src.pattern
+    k = ground_factor * src.eirp_w / (4.0 * np.pi)
     if pat is None:
         g_db = np.zeros(r2.shape)
-        s = (ground_factor * src.eirp_w / (4.0 * np.pi)) / r2
+        s = k / r2
     else:
-        need_az = pat.h_beamwidth_deg < 360.0 or (pat.v_beamwidth_deg is not None and pat.mechanical_tilt_deg)
-        az = np.degrees(np.arctan2(dx, dy)) - src.azimuth_deg if need_az else np.zeros(r2.shape)
-        el = (np.degrees(np.arctan2(dz, np.sqrt(rh2))) if pat.v_beamwidth_deg is not None
-              else np.zeros(r2.shape))
-        g_db = relative_gain_db(pat, az, el)
-        s = (ground_factor * src.eirp_w / (4.0 * np.pi)) * 10.0 ** (g_db / 10.0) / r2
+        g, g_db = _pattern_factor(pat, src.azimuth_deg, dx, dy, dz, rh2)
+        s = k * g / r2
     cyl = np.zeros(r2.shape, dtype=bool)
     if src.array_length_m is not None:
         bw = pat.h_beamwidth_deg if pat is not None else 360.0

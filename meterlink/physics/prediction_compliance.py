@@ -126,10 +126,14 @@ def predict_exposure(sources, x_m, y_m, z_m, *, standard: str, tier: str, ground
     for i, (src, terms) in enumerate(zip(sources, src_terms)):
         s, _, cyl, _ = _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m)
         cyl_any |= cyl
+        done: dict = {}
         for t in terms:
-            ratio = s / t.s_equiv_w_per_m2
-            if t.power != 1.0:
-                ratio = ratio ** t.power
+            ratio = done.get((t.s_equiv_w_per_m2, t.power))   # groups often share a divisor
+            if ratio is None:
+                ratio = s * (1.0 / t.s_equiv_w_per_m2)
+                if t.power != 1.0:
+                    ratio = ratio ** t.power
+                done[(t.s_equiv_w_per_m2, t.power)] = ratio
             acc = sums.get(t.group)
             if acc is None:
                 sums[t.group] = np.array(ratio, dtype=float, copy=True)
