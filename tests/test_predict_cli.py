@@ -145,3 +145,14 @@ def test_example_file_in_deploy_runs(capsys):
     doc = json.loads(capsys.readouterr().out)
     assert len(doc["sources"]) == 3 and doc["safety"] == SAFETY_LINE
 
+
+
+def test_zone_cut_by_the_grid_edge_says_so(site_file, tmp_path, capsys):
+    # the isotropic source's public zone has a radius of 3.64 m (hand-worked above); a grid of +-2 m
+    # cannot hold it, so the exported polygon must say it was clipped
+    gj = tmp_path / "z.geojson"
+    assert main(["predict", str(site_file), "--tier", "public", "--grid", "2", "--step", "0.1",
+                 "--geojson", str(gj)]) == 0
+    capsys.readouterr()
+    polys = [f for f in json.loads(gj.read_text())["features"] if f["geometry"]["type"] == "Polygon"]
+    assert polys and all(f["properties"]["clipped_by_grid_edge"] for f in polys)
