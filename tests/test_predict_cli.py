@@ -156,3 +156,12 @@ def test_zone_cut_by_the_grid_edge_says_so(site_file, tmp_path, capsys):
     capsys.readouterr()
     polys = [f for f in json.loads(gj.read_text())["features"] if f["geometry"]["type"] == "Polygon"]
     assert polys and all(f["properties"]["clipped_by_grid_edge"] for f in polys)
+
+
+def test_point_inside_far_field_distance_is_noted(site_file, capsys):
+    # 900 MHz: lambda = 299792458/900e6 = 0.3331 m; a point 0.2 m from the source is inside it
+    assert main(["predict", str(site_file), "--tier", "public", "--at", "0,0.2,1.5", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    p = doc["points"][0]
+    assert p["by_source"][0]["inside_far_field_distance"] is True
+    assert any("iso: the point is 0.2 m away" in m and "overestimates" in m for m in p["messages"])

@@ -271,3 +271,15 @@ def test_grid_pattern_path_matches_the_pattern_definition():
     el = np.degrees(np.arctan2(dz, np.hypot(dx, dy)))
     want = 2.56 * src.eirp_w / (4 * np.pi * (dx * dx + dy * dy + dz * dz)) * 10 ** (relative_gain_db(pat, az, el) / 10)
     assert source_s(src, x, y, z, ground_factor=2.56) == pytest.approx(want, rel=1e-9)
+
+
+def test_far_field_distance_and_near_flag():
+    from meterlink.physics.prediction import far_field_distance_m
+
+    # lambda = c/f = 299792458/156.8e6 = 1.911942 m (c exact, scipy.constants); 2*L^2/lambda for
+    # L = 3 m: 18/1.911942 = 9.414504 m (the usual 2*D^2/lambda criterion, common practice)
+    src = Source("c", 25.0, 6.0, 156.8e6, height_m=5.0, array_length_m=3.0)
+    assert far_field_distance_m(src) == pytest.approx(9.414504, rel=1e-6)
+    assert far_field_distance_m(Source("d", 1.0, 0.0, 156.8e6)) == pytest.approx(1.911942, rel=1e-6)
+    pp = predict_points(src, np.array([5.0, 20.0]), 0.0, 5.0)
+    assert pp.near.tolist() == [True, False]

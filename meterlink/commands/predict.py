@@ -69,7 +69,7 @@ def compute(args):
     import numpy as np
 
     from meterlink.physics import limits
-    from meterlink.physics.prediction import predict_points
+    from meterlink.physics.prediction import far_field_distance_m, predict_points
     from meterlink.physics.prediction_compliance import (
         compliance_distance,
         exposure_grid,
@@ -122,13 +122,15 @@ def compute(args):
                                     keep_sources=True)
             prow["percent"][tier] = float(100 * pred.total)
             prow.setdefault("status", pred.status)
-            prow["messages"] = list(pred.messages)
+            prow["messages"] = list(pred.messages) + [_near_note(s, predict_points(s, x, y, z), far_field_distance_m(s))
+                                                      for s in site.sources if bool(predict_points(s, x, y, z).near)]
             if tier == tiers[0]:
                 for i, s in enumerate(site.sources):
                     pp = predict_points(s, x, y, z, ground_factor=gf)
                     prow["by_source"].append({"name": s.name, "s_w_per_m2": float(pp.s_w_per_m2),
                                               "e_v_per_m": float(pp.e_v_per_m), "distance_m": float(pp.distance_m),
                                               "model": "cylindrical" if bool(pp.cylindrical) else "far field",
+                                              "inside_far_field_distance": bool(pp.near),
                                               "percent_" + tier: float(100 * pred.per_source[i])})
         out["points"].append(prow)
     grids = []
@@ -152,6 +154,14 @@ def compute(args):
                                      "half_width_m": hw, "step_m": step, "status": g.status})
     out["model_note"] = MODEL_NOTE
     return out, site, grids, [100 * t for t in targets]
+
+
+def _near_note(src, pp, d_ff: float) -> str:
+    """What a point inside a source's far-field distance means for its predicted value."""
+    where = f"{src.name}: the point is {float(pp.distance_m):.3g} m away, inside its far-field distance of {d_ff:.3g} m"
+    if bool(pp.cylindrical):
+        return where + "; the cylindrical model (a spatial average over the array's height) was used"
+    return where + ": the far-field value overestimates there"
 
 
 def _ring_area(ring) -> float:

@@ -142,6 +142,15 @@ def rayleigh_distance_m(aperture_m: float, freq_hz: float) -> float:
     return 2.0 * aperture_m ** 2 * freq_hz / C_M_PER_S
 
 
+def far_field_distance_m(src: Source) -> float:
+    """Where the far-field formula starts to hold for a source, by common practice: beyond one
+    wavelength, and beyond 2*D^2/lambda when its size D (array_length_m) is declared."""
+    d = src.wavelength_m
+    if src.array_length_m is not None:
+        d = max(d, rayleigh_distance_m(src.array_length_m, src.freq_hz))
+    return d
+
+
 # ----------------------------------------------------------------------------- pattern
 
 
@@ -183,6 +192,7 @@ class PointPrediction:
     distance_m: np.ndarray
     cylindrical: np.ndarray        # True where the cylindrical model was used
     gain_db: np.ndarray            # pattern attenuation applied (0 in the main beam)
+    near: np.ndarray               # True closer than far_field_distance_m: the far-field value overestimates
 
 
 def _geometry(src: Source, x_m, y_m, z_m):
@@ -257,4 +267,5 @@ def predict_points(src: Source, x_m, y_m, z_m, ground_factor: float = 1.0,
     """S, E = sqrt(Z0*S), distance, model and pattern attenuation of one source at points."""
     check_source(src)
     s, r, cyl, g = _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m)
-    return PointPrediction(s, field_from_s(s), r, cyl, np.broadcast_to(g, s.shape).copy())
+    return PointPrediction(s, field_from_s(s), r, cyl, np.broadcast_to(g, s.shape).copy(),
+                           r < far_field_distance_m(src))
