@@ -165,3 +165,17 @@ def test_point_inside_far_field_distance_is_noted(site_file, capsys):
     p = doc["points"][0]
     assert p["by_source"][0]["inside_far_field_distance"] is True
     assert any("iso: the point is 0.2 m away" in m and "overestimates" in m for m in p["messages"])
+
+
+def test_geojson_rings_follow_rfc7946_orientation(site_file, tmp_path, capsys):
+    # RFC 7946 section 3.1.6: exterior rings counterclockwise, holes clockwise (shoelace sign)
+    gj = tmp_path / "z.geojson"
+    assert main(["predict", str(site_file), "--grid", "12", "--step", "0.2", "--margin", "30",
+                 "--geojson", str(gj)]) == 0
+    capsys.readouterr()
+    polys = [f for f in json.loads(gj.read_text())["features"] if f["geometry"]["type"] == "Polygon"]
+    assert polys
+    for f in polys:
+        for i, ring in enumerate(f["geometry"]["coordinates"]):
+            area = 0.5 * sum(x0 * y1 - x1 * y0 for (x0, y0), (x1, y1) in zip(ring, ring[1:]))
+            assert (area > 0) == (i == 0)

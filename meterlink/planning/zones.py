@@ -32,6 +32,20 @@ def zone_polygons(grid, percent_level: float) -> list[list[np.ndarray]]:
     return out
 
 
+def _signed_area(ring) -> float:
+    x, y = ring[:, 0], ring[:, 1]
+    return float(0.5 * (x @ np.roll(y, -1) - y @ np.roll(x, -1)))
+
+
+def _oriented(rings):
+    """Rings as RFC 7946 asks: the outer one counterclockwise, holes clockwise."""
+    out = []
+    for i, r in enumerate(rings):
+        ccw = _signed_area(r) > 0
+        out.append(r if ccw == (i == 0) else r[::-1])
+    return out
+
+
 def _edge_touched(grid, polys) -> bool:
     x0, x1, y0, y1 = grid.x_m[0], grid.x_m[-1], grid.y_m[0], grid.y_m[-1]
     tol = 1e-9 * max(1.0, abs(x1 - x0))
@@ -55,7 +69,7 @@ def zones_geojson(grids, site, levels_percent=(100.0,)) -> dict:
                 feats.append({"type": "Feature",
                               "geometry": {"type": "Polygon",
                                            "coordinates": [[[round(float(x), 3), round(float(y), 3)]
-                                                            for x, y in ring] for ring in rings]},
+                                                            for x, y in ring] for ring in _oriented(rings)]},
                               "properties": {"kind": "exclusion zone", "standard": grid.standard,
                                              "tier": grid.tier, "percent_of_reference_level": lvl,
                                              "height_m": grid.z_m, "part": k + 1,
