@@ -216,7 +216,7 @@ _LN10_10 = math.log(10.0) / 10.0
 
 
 def _pattern_factor(pat: Pattern, azimuth_deg: float, dx, dy, dz, rh2):
-    """(linear pattern factor, attenuation dB) at points: relative_gain_db's model evaluated without
+    """(linear pattern factor, attenuation in dB >= 0) at points: relative_gain_db's model evaluated without
     wrapping or cosines (the offset comes from coordinates turned to the boresight, and the
     cosine of the azimuth offset is the along-boresight share of the horizontal distance)."""
     a0 = math.radians(azimuth_deg)
@@ -234,7 +234,7 @@ def _pattern_factor(pat: Pattern, azimuth_deg: float, dx, dy, dz, rh2):
             off = off + math.radians(pat.mechanical_tilt_deg) * np.where(rh > 0, u / np.where(rh > 0, rh, 1.0), 1.0)
         att = att + np.minimum((12.0 / math.radians(pat.v_beamwidth_deg) ** 2) * (off * off), pat.side_lobe_db)
     att = np.minimum(att, pat.front_to_back_db)
-    return np.exp(-_LN10_10 * att), -att
+    return np.exp(-_LN10_10 * att), att
 
 
 def _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m):
@@ -243,10 +243,10 @@ def _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m):
     pat = src.pattern
     k = ground_factor * src.eirp_w / (4.0 * np.pi)
     if pat is None:
-        g_db = np.zeros(r2.shape)
+        att = 0.0
         s = k / r2
     else:
-        g, g_db = _pattern_factor(pat, src.azimuth_deg, dx, dy, dz, rh2)
+        g, att = _pattern_factor(pat, src.azimuth_deg, dx, dy, dz, rh2)
         s = k * g / r2
     cyl = np.zeros(r2.shape, dtype=bool)
     if src.array_length_m is not None:
@@ -259,13 +259,14 @@ def _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m):
                 cyl &= np.abs(_wrap_deg(np.degrees(np.arctan2(dx, dy)) - src.azimuth_deg)) <= bw / 2.0
             s_cyl = ground_factor * cylindrical_s(src.power_w, rh, src.array_length_m, bw)
             s = np.where(cyl, s_cyl, s)
-    return s, np.sqrt(r2), cyl, g_db
+    return s, r2, cyl, att   # squared distance and attenuation: the grid path needs neither
 
 
 def predict_points(src: Source, x_m, y_m, z_m, ground_factor: float = 1.0,
                    min_distance_m: float = 0.1) -> PointPrediction:
     """S, E = sqrt(Z0*S), distance, model and pattern attenuation of one source at points."""
     check_source(src)
-    s, r, cyl, g = _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m)
+    s, r2, cyl, att = _source_s(src, x_m, y_m, z_m, ground_factor, min_distance_m)
+    r, g = np.sqrt(r2), -np.broadcast_to(np.asarray(att, dtype=float), s.shape)
     return PointPrediction(s, field_from_s(s), r, cyl, np.broadcast_to(g, s.shape).copy(),
                            r < far_field_distance_m(src))
