@@ -108,6 +108,18 @@ def zone_map_png(grids, site, levels_percent=(100.0,), title: str | None = None)
     from matplotlib.lines import Line2D
     from matplotlib.patches import FancyArrow
 
+    # Background: the first grid's percent of the reference level on a log colour scale, so that a
+    # map whose zones lie above head height (or off the grid) still shows where the field is.
+    from matplotlib.colors import LogNorm
+
+    g_bg = grids[0]
+    z_bg = np.asarray(g_bg.percent, dtype=float)
+    top = max(float(np.nanmax(z_bg)), 1e-3)
+    lo = max(top / 1e4, 1e-4)
+    mesh = ax.pcolormesh(g_bg.x_m, g_bg.y_m, np.clip(z_bg, lo, None), norm=LogNorm(vmin=lo, vmax=max(top, 100.0)),
+                         cmap="magma_r", shading="auto", alpha=0.55, rasterized=True)
+    cbar = fig.colorbar(mesh, ax=ax, shrink=0.7, pad=0.02)
+    cbar.set_label(f"% of the {g_bg.tier} reference level ({g_bg.standard}), log scale")
     for grid in grids:
         colour, ls = styles.get(grid.tier, ("#444444", ":"))
         z = np.asarray(grid.percent)
