@@ -12,9 +12,12 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
+import functools
 import math
 from html import escape
 from pathlib import Path
+
+from markupsafe import Markup
 
 from meterlink.cautions import SAFETY_LINE
 from meterlink.errors import MeterlinkError
@@ -45,8 +48,6 @@ def outcome_class(v) -> str:
 
 def _finalize(v):
     """Every value printed by a template: None as empty, text with control characters escaped."""
-    from markupsafe import Markup
-
     if v is None:
         return ""
     if isinstance(v, Markup):
@@ -66,13 +67,19 @@ def template_dir(path) -> Path | None:
 
 def environment(override_dir=None):
     """The Jinja2 environment: override folder first (templates or stylesheets by file name),
-    then the packaged templates; autoescaping for .html, StrictUndefined so a missing value fails."""
+    then the packaged templates; autoescaping for .html, StrictUndefined so a missing value fails.
+    One environment per folder is kept, so templates compile once (Jinja reloads a changed file)."""
+    over = template_dir(override_dir)
+    return _environment(None if over is None else str(over.resolve()))
+
+
+@functools.lru_cache(maxsize=16)
+def _environment(over: str | None):
     import jinja2
 
     loaders = [jinja2.PackageLoader("meterlink.reports", "templates")]
-    over = template_dir(override_dir)
     if over is not None:
-        loaders.insert(0, jinja2.FileSystemLoader(str(over)))
+        loaders.insert(0, jinja2.FileSystemLoader(over))
     env = jinja2.Environment(loader=jinja2.ChoiceLoader(loaders),
                              autoescape=jinja2.select_autoescape(["html", "htm", "xml"], default_for_string=True),
                              undefined=jinja2.StrictUndefined, finalize=_finalize, extensions=["jinja2.ext.do"],
