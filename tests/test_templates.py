@@ -76,12 +76,12 @@ def test_a_restyled_template_without_the_cautions_is_refused(cal, tmp_path):
 
 
 def test_a_misspelt_field_fails_instead_of_leaving_a_blank(tmp_path):
-    (tmp_path / "base.html").write_text("<p>{{ safety_line }} {{ titel }}</p>\n")
-    with pytest.raises(MeterlinkError, match="'titel' is undefined"):
-        render("base.html", tmp_path, title="x", ident="y")
-    (tmp_path / "base.html").write_text("<p>{{ safety_line }} {% if %}</p>\n")
-    with pytest.raises(MeterlinkError, match="line 1"):
-        render("base.html", tmp_path, title="x", ident="y")
+    for name, text, msg in (("undefined", "<p>{{ safety_line }} {{ titel }}</p>\n", "'titel' is undefined"),
+                            ("syntax", "<p>{{ safety_line }}\n{% if %}</p>\n", "line 2")):
+        (tmp_path / name).mkdir()
+        (tmp_path / name / "base.html").write_text(text)
+        with pytest.raises(MeterlinkError, match=msg):
+            render("base.html", tmp_path / name, title="x", ident="y")
 
 
 def test_packaged_templates_autoescape_and_non_html_files_do_not(tmp_path):
