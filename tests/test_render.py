@@ -150,3 +150,29 @@ def test_render_errors_are_one_line(tmp_path, capsys):
     assert main(["render", str(tmp_path / "none.db")]) == 2
     assert "does not exist" in capsys.readouterr().err
     assert not (tmp_path / "o").exists()
+
+
+def test_render_a_lab_folder_reproduces_the_issued_certificate_page(tmp_path, capsys):
+    # the page comes from the readings analysed again; it is accepted only when that analysis gives the
+    # issued certificate.toml byte for byte, and then equals the page 'meterlink lab import' wrote
+    from meterlink.cli import main
+    from test_lab_cli import _readings
+
+    _readings(tmp_path)
+    issued = tmp_path / "issued"
+    assert main(["lab", "import", str(tmp_path / "hand.csv"), "--session", str(tmp_path / "session.toml"),
+                 "--out", str(issued), "--register", str(tmp_path / "reg.tsv"), "--json"]) == 0
+    capsys.readouterr()
+    assert main(["render", str(issued), "--lab-session", str(tmp_path / "session.toml"), "--out",
+                 str(tmp_path / "again")]) == 0
+    assert "lab certificate" in capsys.readouterr().out
+    again = (tmp_path / "again" / "certificate.html").read_text()
+    assert again == (issued / "certificate.html").read_text() and "A &lt;b&gt;Tester&lt;/b&gt; &amp; co" in again
+    # another session (the demo one) does not reproduce the certificate: refused, one line
+    assert main(["render", str(issued), "--out", str(tmp_path / "wrong")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "do not reproduce the issued certificate LAB-CLI-1" in err[0]
+    assert not (tmp_path / "wrong").exists()
+    # never written into an issued certificate's folder
+    assert main(["render", str(issued), "--lab-session", str(tmp_path / "session.toml"), "--out", str(issued)]) == 2
+    assert "holds an issued certificate" in capsys.readouterr().err
