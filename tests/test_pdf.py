@@ -48,8 +48,8 @@ PLAN = {
 
 
 def layout_problems(html: str) -> tuple[int, list[str]]:
-    """(pages, problems) of WeasyPrint's layout of html: text or tables past the content box, table rows
-    split across pages; and, separately checked by callers, which rows repeat."""
+    """(pages, problems) of WeasyPrint's layout of html: figures, tables or text in tables past the page's
+    content box, table body rows split across pages."""
     doc = weasyprint.HTML(string=html).render()
     problems = []
     rows_on = defaultdict(set)
@@ -57,6 +57,9 @@ def layout_problems(html: str) -> tuple[int, list[str]]:
         pb = page._page_box
         assert pb.margin_width() == pytest.approx(A4_PX, abs=0.01)
         left, right = pb.content_box_x(), pb.content_box_x() + pb.width
+        for img in (b for b in pb.descendants() if isinstance(b, boxes.ReplacedBox)):     # figures
+            if img.position_x < left - 0.5 or img.position_x + img.margin_width() > right + 0.5:
+                problems.append(f"page {i + 1}: a figure spans {img.position_x:.1f}..{img.position_x + img.margin_width():.1f} px")
         for table in (b for b in pb.descendants() if isinstance(b, boxes.TableBox)):
             for b in table.descendants():
                 if isinstance(b, (boxes.TableBox, boxes.TableCellBox, boxes.TextBox)):
@@ -154,18 +157,24 @@ def test_a_long_wide_table_wraps_repeats_its_header_and_keeps_rows_whole(survey_
 
 
 def test_the_check_finds_a_table_past_the_page_without_print_css(survey_db, tmp_path):
-    # the same report with a print.css that lets tables size to their content: the long cells now run
-    # past the right margin, and layout_problems says so (the check above can fail)
+    # the same report with a print.css and report.css that let tables and figures size to their content:
+    # the long cells and the figure now run past the right margin, and layout_problems says so (the
+    # checks above can fail)
     from meterlink.survey.report import render_html
 
     db, sid = survey_db
     (tmp_path / "print.css").write_text("@page{size:A4;margin:18mm 15mm}\n"
                                         "@page{@bottom-right{content:'page ' counter(page) ' of ' counter(pages)}}\n")
     (tmp_path / "report.css").write_text("table{border-collapse:collapse}\n")
+    from meterlink.survey import plots
+
     with Store(db, readonly=True) as store:
         sv = load_survey(store, sid)
-    _, problems = layout_problems(render_html(sv, {}, tmp_path))
-    assert problems and all("spans" in p for p in problems)
+    figures = {"points": plots.points_plot(sv["points"])}          # 8 in at 110 dpi: wider than the page
+    assert layout_problems(render_html(sv, figures))[1] == []
+    _, problems = layout_problems(render_html(sv, figures, tmp_path))
+    assert any("a figure spans" in p for p in problems)
+    assert any(LONG[:20] in p for p in problems)                       # the unbroken cell runs off the page
 
 
 def test_session_report_pdf(tmp_path, capsys):
