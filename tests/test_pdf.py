@@ -227,3 +227,16 @@ def test_pdf_without_weasyprint_is_one_line_with_the_install_hint(survey_db, tmp
     lines = p.stderr.strip().splitlines()
     assert len(lines) == 1 and 'pip install "meterlink[pdf]"' in lines[0]
     assert not (tmp_path / "o").exists()            # refused before anything is written
+
+
+def test_lab_import_writes_the_certificate_pdf_beside_the_page(tmp_path, capsys):
+    from test_lab_cli import _readings
+
+    _readings(tmp_path)
+    out = tmp_path / "out"
+    assert main(["lab", "import", str(tmp_path / "hand.csv"), "--session", str(tmp_path / "session.toml"),
+                 "--out", str(out), "--register", str(tmp_path / "reg.tsv"), "--pdf", "--json"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["pdf"] == str(out / "certificate.pdf")
+    check_pdf(out / "certificate.pdf", (out / "certificate.html").read_text(encoding="utf-8"),
+              "Calibration certificate LAB-CLI-1")
