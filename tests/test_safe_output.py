@@ -21,7 +21,7 @@ import time
 import pytest
 
 from meterlink.cli import main
-from meterlink.reports.htmlpage import e as html_text
+from meterlink.reports.templating import environment
 from meterlink.station.monitor import Monitor
 from meterlink.reports.render import escape as render_escape
 from meterlink.safetext import clean_text, csv_cell
@@ -62,7 +62,8 @@ max_gap_s = 35
 def test_clean_text_and_csv_cell_rules():
     assert clean_text("a\x1b[2J\x00b\x9b\u202ec\nd\te") == "a\\x1b[2J\\x00b\\x9b\\u202ec\\nd\\te"
     assert clean_text("x\ny\tz\rw", keep="\n\t") == "x\ny\tz\\rw"
-    assert html_text("<b>\x1b\x00</b>\n") == "&lt;b&gt;\\x1b\\x00&lt;/b&gt;\n"
+    # a value printed by a report template: markup escaped, control characters shown
+    assert environment().from_string("{{ v }}").render(v="<b>\x1b\x00</b>\n") == "&lt;b&gt;\\x1b\\x00&lt;/b&gt;\n"
     # OWASP ASVS 5.0 V1.2.10 triggers; numbers (a negative one too) stay numbers
     for s in ("=1+1", "+1", "-1", "@SUM(A1)", "\t=1", "\x00=1"):
         assert csv_cell(s).startswith("'"), s

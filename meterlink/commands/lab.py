@@ -34,6 +34,10 @@ def add_arguments(parser) -> None:
         p.add_argument("--previous", metavar="CERT", help="previous certificate: as-found / as-left comparison")
         p.add_argument("--register", metavar="FILE", help="the lab's register of issued certificate numbers "
                                                           "(default: lab-register.tsv next to the out folder)")
+        p.add_argument("--pdf", action="store_true", help='also write certificate.pdf (needs pip install '
+                                                          '"meterlink[pdf]")')
+        p.add_argument("--template-dir", metavar="DIR", help="folder of templates or stylesheets replacing the "
+                                                             "packaged ones of the same name (e.g. certificate.html)")
     run.add_argument("--speed", type=float, default=100.0, help="simulated device ms per real ms (default 100)")
     run.add_argument("--seed", type=int, default=0)
     run.add_argument("--repeats", type=int, default=5, help="readings per step (default 5)")
@@ -174,6 +178,10 @@ def run(args) -> int:
             raise MeterlinkError("--speed must be > 0 and --repeats at least 2 (Type A needs repeats)")
         if args.temperatures:
             _temperatures(args.temperatures)   # bad input first, before the folder is looked at
+    from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir, write_outputs
+    template_dir(args.template_dir)
+    if args.pdf and not pdf_available():
+        raise MeterlinkError(PDF_HINT)
     _fresh_out(out)
     if args.action == "run":
         results = _simulated(session, args)
@@ -188,11 +196,12 @@ def run(args) -> int:
         try:
             out.mkdir(parents=True, exist_ok=True)
             (out / "certificate.toml").write_text(dump_certificate(cal.certificate), encoding="utf-8")
-            (out / "certificate.html").write_text(html.render(cal, cmp, SAFETY_LINE), encoding="utf-8")
+            write_outputs(html.render(cal, cmp, SAFETY_LINE, args.template_dir), out / "certificate.html", args.pdf)
             pr.export_csv(results, out / "readings.csv")
         except OSError as exc:
             raise MeterlinkError(f"{out}: cannot write the outputs ({exc.strerror})") from None
     summary = {"certificate": str(out / "certificate.toml"), "report": str(out / "certificate.html"),
+               **({"pdf": str(out / "certificate.pdf")} if args.pdf else {}),
                "certificate_number": cal.certificate.certificate_number, "register": str(reg_path),
                "u_expanded_db": cal.budget.u_expanded_db, "isotropy_db": cal.certificate.isotropy_db,
                "isotropy": [{"freq_hz": i.freq_hz, "tilt_deg": i.tilt_deg, "plus_minus_db": i.plus_minus_db,

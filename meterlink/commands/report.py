@@ -12,6 +12,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--standard", metavar="NAME", help="for a recorded session: standard (default: its last assessment's)")
     parser.add_argument("--tier", choices=("public", "occupational"), help="for a recorded session: tier")
     parser.add_argument("--rule", metavar="NAME", help="for a recorded session: decision rule")
+    parser.add_argument("--pdf", action="store_true", help='also write report.pdf (needs pip install "meterlink[pdf]")')
+    parser.add_argument("--template-dir", metavar="DIR", help="folder of templates or stylesheets replacing the "
+                        "packaged ones of the same name (see 'meterlink render')")
     parser.add_argument("--json", action="store_true", help="print the files written as JSON")
 
 
@@ -32,15 +35,17 @@ def run(args) -> int:
     with Store(args.db, readonly=True) as store:
         kind = store.session(sid)["kind"]
     if kind == "survey":
-        html = write_report(args.db, sid, args.out)
+        html = write_report(args.db, sid, args.out, template_dir=args.template_dir, pdf=args.pdf)
     else:
         from meterlink.reports.session_report import write_session_report
 
-        html = write_session_report(args.db, sid, args.out, standard=args.standard, tier=args.tier, rule=args.rule)
+        html = write_session_report(args.db, sid, args.out, standard=args.standard, tier=args.tier, rule=args.rule,
+                                    template_dir=args.template_dir, pdf=args.pdf)
     files = sorted(str(p) for p in html.parent.glob("*.csv"))
+    pdf = str(html.with_suffix(".pdf")) if args.pdf else None
     if args.json:
-        print(json.dumps({"html": str(html), "csv": files}, indent=2))
+        print(json.dumps({"html": str(html), "csv": files, **({"pdf": pdf} if pdf else {})}, indent=2))
     else:
-        print(f"report written: {html}")
+        print(f"report written: {html}" + (f" and {pdf}" if pdf else ""))
         print(SAFETY_LINE)
     return 0

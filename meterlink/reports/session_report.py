@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 
 from meterlink.reports import htmlpage as H
+from meterlink.reports import templating as T
 from meterlink.errors import MeterlinkError
 
 CAUTIONS = (
@@ -77,17 +78,23 @@ def _shares_plot(a) -> bytes:
     return H.figure_png(fig)
 
 
-def write_session_report(db_path, session_id: int, out_dir, *, standard=None, tier=None, rule=None) -> Path:
-    """Write report.html and values.csv for a recorded session; returns the HTML path."""
+def write_session_report(db_path, session_id: int, out_dir, *, standard=None, tier=None, rule=None,
+                         template_dir=None, pdf: bool = False) -> Path:
+    """Write report.html (and report.pdf when asked) and values.csv for a recorded session; returns
+    the HTML path. The page is laid out by the session.html template (restyled from template_dir)."""
     from meterlink.physics.assessment import assess_field, assess_spectrum
     from meterlink.physics.certificate import parse_certificate
-    from meterlink.cautions import SAFETY_LINE
+    from meterlink.reports.templating import PDF_HINT, pdf_available, render, template_dir as checked_dir
+    from meterlink.reports.templating import write_outputs
     from meterlink.storage.processing import FieldSeries, calibrated_series
     from meterlink.reports.render import value_label
     from meterlink.storage.store import Store
 
     if not Path(db_path).is_file():
         raise MeterlinkError(f"database {str(db_path)!r} does not exist")
+    checked_dir(template_dir)
+    if pdf and not pdf_available():
+        raise MeterlinkError(PDF_HINT)
     out = Path(out_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
@@ -111,57 +118,49 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
     kinds: dict[str, int] = {}
     for ev in events:
         kinds[ev["kind"]] = kinds.get(ev["kind"], 0) + 1
-    body = [f"<h1>Exposure record, session {session_id}</h1>",
-            f'<p class="caution"><b>Safety.</b> {H.e(SAFETY_LINE)}</p>',
-            "<h2>Instrument and calibration</h2>",
-            H.table(("item", "value"), [(H.e(k), H.e(v)) for k, v in (
-                ("meter", f"{s.get('device_model')} serial {s.get('device_serial')}"),
-                ("probe or antenna", s.get("device_probe_serial")),
-                ("firmware / protocol", f"{s.get('device_fw_version')} / {s.get('device_protocol_version')}"),
-                ("port", s.get("port")), ("session notes", s.get("notes")),
-                ("certificate applied", cal["certificate_name"]), ("certificate due", cert.due_date),
-                ("certificate SHA-256", cal["certificate_sha256"]),
-                ("recorded", f"{H.utc(float(np.nanmin(series.t_utc)))} to {H.utc(float(np.nanmax(series.t_utc)))} "
-                             f"(device clock)" if len(series.t_utc) else "-"))]),
-            "<h2>Assessment</h2>",
-            H.table(("item", "value"), [(H.e(k), v) for k, v in (
-                ("standard", H.e(f"{a.standard}, {a.tier_label}: {a.source}")),
-                ("reference level check", H.e(a.status)),
-                ("decision rule", H.e(a.rule)), ("mode", H.e(f"{a.mode}: {a.frequency_note}")),
-                ("reference level", H.e(f"{H.num(a.limit_v_per_m, '{:.4g}')} V/m" + (" (derived)" if a.limit_derived else ""))),
-                ("averaging time", H.e(f"{a.window_s / 60:g} min" if a.window_s else
-                                       "none in the standard: instantaneous values compared"
-                                       if a.averaging == "instantaneous" else "-")),
-                ("peak", H.e(f"{a.peak_v_per_m:.4g} V/m")),
-                (value_label(a), H.e(f"{a.value_v_per_m:.4g} V/m (coverage {100 * a.coverage:.1f} %)")),
-                *((("partial windows (start of record)",
-                    H.e(f"up to {a.partial_v_per_m:.4g} V/m, not the standard's average")),)
-                  if a.partial_v_per_m is not None else ()),
-                ("expanded uncertainty", H.e(f"U = {a.u_expanded_db:.2f} dB (k = 2)")),
-                ("percent of the field level", H.e(f"{a.percent_field:.1f} %")),
-                ("percent of the power-density level", H.e(f"{a.percent_power:.1f} %")),
-                ("outcome", H.verdict(a.verdict.outcome)),
-                *((("no conformity statement", H.e(a.verdict.reason)),) if a.verdict.reason else ()))]),
-            f"<p>{H.e(a.verdict.statement)}</p>"]
-    body += [f'<p class="note">note: {H.e(n)}</p>' for n in a.notes]
-    if isinstance(series, FieldSeries):
-        body += ["<h2>Field against time</h2>", H.img(_field_plot(series, a), "field against time")]
+    instrument_rows = [
+        ("meter", f"{s.get('device_model')} serial {s.get('device_serial')}"),
+        ("probe or antenna", s.get("device_probe_serial")),
+        ("firmware / protocol", f"{s.get('device_fw_version')} / {s.get('device_protocol_version')}"),
+        ("port", s.get("port")), ("session notes", s.get("notes")),
+        ("certificate applied", cal["certificate_name"]), ("certificate due", cert.due_date),
+        ("certificate SHA-256", cal["certificate_sha256"]),
+        ("recorded", f"{T.utc(float(np.nanmin(series.t_utc)))} to {T.utc(float(np.nanmax(series.t_utc)))} "
+                     f"(device clock)" if len(series.t_utc) else "-")]
+    assessment_rows = [
+        ("standard", f"{a.standard}, {a.tier_label}: {a.source}"),
+        ("reference level check", a.status),
+        ("decision rule", a.rule), ("mode", f"{a.mode}: {a.frequency_note}"),
+        ("reference level", f"{T.num(a.limit_v_per_m, '{:.4g}')} V/m" + (" (derived)" if a.limit_derived else "")),
+        ("averaging time", f"{a.window_s / 60:g} min" if a.window_s else
+         "none in the standard: instantaneous values compared" if a.averaging == "instantaneous" else "-"),
+        ("peak", f"{a.peak_v_per_m:.4g} V/m"),
+        (value_label(a), f"{a.value_v_per_m:.4g} V/m (coverage {100 * a.coverage:.1f} %)"),
+        *((("partial windows (start of record)", f"up to {a.partial_v_per_m:.4g} V/m, not the standard's average"),)
+          if a.partial_v_per_m is not None else ()),
+        ("expanded uncertainty", f"U = {a.u_expanded_db:.2f} dB (k = 2)"),
+        ("percent of the field level", f"{a.percent_field:.1f} %"),
+        ("percent of the power-density level", f"{a.percent_power:.1f} %")]
+    field = isinstance(series, FieldSeries)
+    if field:
         H.write_csv(out / "values.csv", ("reading_id", "t_utc", "e_v_per_m", "ex_v_per_m", "ey_v_per_m", "ez_v_per_m",
                                          "u_expanded_db", "flags"),
                     ([int(i), f"{t:.3f}", f"{v:.6g}", *(f"{x:.6g}" for x in ax), f"{u:.3f}", int(fl)]
                      for i, t, v, ax, u, fl in zip(series.reading_ids, series.t_utc, series.e_v_per_m,
                                                     series.axes_v_per_m, series.u_expanded_db, series.flags)))
     else:
-        body += ["<h2>Emitters</h2>", H.img(_shares_plot(a), "emitter shares"),
-                 H.table(("frequency (Hz)", "E (V/m)", "term", "uses", "share"),
-                         [(H.num(x.freq_hz, "{:.0f}"), H.num(x.e_v_per_m, "{:.4g}"), H.num(x.term_ratio, "{:.4g}"),
-                           H.e(x.quantity), H.num(100 * x.share, "{:.1f} %")) for x in a.emitters], numeric=(0, 1, 2, 4))]
         H.write_csv(out / "values.csv", ("freq_hz", "e_v_per_m", "term_ratio", "quantity", "share"),
                     ([x.freq_hz, x.e_v_per_m, x.term_ratio, x.quantity, x.share] for x in a.emitters))
-    body += ["<h2>Events</h2>", H.table(("kind", "count"), [(H.e(k), str(n)) for k, n in sorted(kinds.items())],
-                                        numeric=(1,)),
-             "<h2>Cautions</h2>", f'<p class="caution">{H.e(CAUTIONS)}</p>',
-             f'<p class="note">Assessment details as JSON: {H.e(json.dumps({"outcome": a.verdict.outcome, "not_assessable_reason": a.verdict.reason or None, "exposure_ratio_power": a.total_exposure_ratio}))}</p>']
+    title = f"Exposure record, session {session_id}"
+    page = render("session.html", template_dir, title=title,
+                  ident=f"{title}: {s.get('device_model')} serial {s.get('device_serial')}",
+                  a=a, instrument_rows=instrument_rows, assessment_rows=assessment_rows,
+                  field_plot=_field_plot(series, a) if field else None,
+                  shares_plot=None if field else _shares_plot(a),
+                  event_counts=sorted(kinds.items()), cautions=CAUTIONS,
+                  details_json=json.dumps({"outcome": a.verdict.outcome,
+                                           "not_assessable_reason": a.verdict.reason or None,
+                                           "exposure_ratio_power": a.total_exposure_ratio}))
     html = out / "report.html"
-    html.write_text(H.page(f"Exposure record, session {session_id}", "\n".join(body)), encoding="utf-8")
+    write_outputs(page, html, pdf)
     return html

@@ -183,3 +183,19 @@ def to_json(doc) -> str:
             return [clean(v) for v in x]
         return x
     return json.dumps(clean(doc), indent=2)
+
+
+def html_page(conn, now_utc: float, t0: float, t1: float, template_dir=None) -> str:
+    """The station's publication page: current state and period statistics as one HTML page
+    (template station.html, restyled from template_dir when given), with the cautions."""
+    from meterlink.cautions import SAFETY_LINE
+    from meterlink.reports.templating import render
+
+    st, _ = station_info(conn)
+    state, stats = current_state(conn, now_utc), statistics(conn, t0, t1)
+    title = f"Monitoring station {clean_text(st['name'])}"
+    return render("station.html", template_dir, title=title, ident=f"{title}, {iso(t0)} to {iso(t1)}",
+                  state=state, stats=stats, header=header_lines(st, SAFETY_LINE)[:-1], made_utc=now_utc,
+                  periods=("day", "week", "month"),
+                  running_keys=lambda rows: [k for k in (rows[0] if rows else {}) if k.endswith("s_max_pct")],
+                  running_label=lambda k: k.replace("running_", "").replace("s_max_pct", " s running max %"))

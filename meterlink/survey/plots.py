@@ -11,9 +11,13 @@ from meterlink.reports.htmlpage import figure_png
 _ACCENT, _MUTED, _LIMIT = "#2b6f77", "#b9c3c6", "#b3261e"
 
 
-def _safe(s) -> str:
-    """User text for a figure: no mathtext interpretation."""
-    return str(s).replace("$", r"\$")
+def _safe(s, max_chars: int = 32) -> str:
+    """User text for a figure: no mathtext interpretation, and shortened with an ellipsis so that a
+    long point or emitter name cannot squeeze the axes away (the tables carry the full text)."""
+    s = str(s)
+    if len(s) > max_chars:
+        s = s[:max_chars - 1] + "…"
+    return s.replace("$", r"\$")
 
 
 _png = figure_png

@@ -1,0 +1,171 @@
+"""``meterlink render``: one command for every report, as HTML or PDF, from what the database holds.
+
+The kind of record decides the report: a survey session gives the survey report, any other recorded
+session the session report, a station database (without --session) the station's publication page,
+and a lab folder (certificate.toml + readings.csv from 'meterlink lab') the certificate page, from the
+readings analysed again and accepted only if they reproduce the issued certificate exactly.
+"""
+
+from __future__ import annotations
+
+HELP = "render the report of a survey, a recorded session, a monitoring station or a lab certificate as HTML or PDF"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("db", metavar="DB", help="database file (recording, survey or monitoring station), or a "
+                        "folder written by 'meterlink lab run/import'")
+    parser.add_argument("--session", metavar="ID", help="session id (see 'meterlink sessions'); without it: the "
+                        "station page of a station database, or the only session of the file")
+    parser.add_argument("--format", choices=("html", "pdf"), default="html",
+                        help='html (default) or pdf (also writes the HTML; needs pip install "meterlink[pdf]")')
+    parser.add_argument("--out", metavar="DIR", default="rendered", help="output folder (default: ./rendered)")
+    parser.add_argument("--template-dir", metavar="DIR",
+                        help="folder whose templates or stylesheets (same file names as the packaged ones, e.g. "
+                             "report.css, print.css, survey.html) replace the packaged ones")
+    parser.add_argument("--standard", metavar="NAME", help="recorded session: standard (default: its last assessment's)")
+    parser.add_argument("--tier", choices=("public", "occupational"), help="recorded session: tier")
+    parser.add_argument("--rule", metavar="NAME", help="recorded session: decision rule")
+    parser.add_argument("--from", dest="t_from", metavar="DATE", help="station page: statistics from (UTC ISO date)")
+    parser.add_argument("--to", dest="t_to", metavar="DATE", help="station page: statistics to, exclusive")
+    parser.add_argument("--lab-session", metavar="TOML", help="lab folder: the session file the certificate was made "
+                        "with (default: the invented demo session of 'lab run')")
+    parser.add_argument("--previous", metavar="CERT", help="lab folder: the previous certificate it was compared with")
+    parser.add_argument("--json", action="store_true", help="print the kind of record and the files written as JSON")
+
+
+def _kind(db, session):
+    """('station', None) or (session kind, session id) of the record to render; one-line errors."""
+    import sqlite3
+
+    from meterlink.errors import MeterlinkError
+    from meterlink.storage.store import describe_sqlite_error, open_readonly
+
+    conn = open_readonly(db)
+    try:
+        tables = {r[0] for r in conn.execute("select name from sqlite_master where type = 'table'")}
+        if session is None and "mon_station" in tables:
+            return "station", None
+        if "sessions" not in tables:
+            raise MeterlinkError(f"{db}: holds neither recorded sessions nor a monitoring station")
+        if session is None:
+            ids = [r[0] for r in conn.execute("select id from sessions order by id")]
+            if len(ids) != 1:
+                listed = ", ".join(map(str, ids[:20])) + (", ..." if len(ids) > 20 else "")
+                raise MeterlinkError(f"{db}: holds {len(ids)} sessions ({listed or 'none'}): choose one with --session")
+            sid = ids[0]
+        else:
+            try:
+                sid = int(session)
+            except ValueError:
+                raise MeterlinkError(f"--session {session!r} is not a whole number") from None
+        row = conn.execute("select kind from sessions where id = ?", (sid,)).fetchone()
+        if row is None:
+            raise MeterlinkError(f"{db}: no session {sid}")
+        return ("survey" if row[0] == "survey" else "recording"), sid
+    except sqlite3.DatabaseError as exc:
+        raise describe_sqlite_error(db, exc) from None
+    finally:
+        conn.close()
+
+
+def _lab(folder, out, args, pdf):
+    """The certificate page of a lab folder, re-analysed from its readings; refused unless the analysis
+    reproduces the issued certificate.toml byte for byte (same session, readings, previous certificate)."""
+    import dataclasses
+
+    from meterlink.commands.lab import _session
+    from meterlink.errors import MeterlinkError
+    from meterlink.lab import certify, html, procedures as pr
+    from meterlink.physics.certificate import dump_certificate, load_certificate
+    from meterlink.reports.templating import write_outputs
+
+    cert_path, readings = folder / "certificate.toml", folder / "readings.csv"
+    if not (cert_path.is_file() and readings.is_file()):
+        raise MeterlinkError(f"{folder}: not a lab folder (needs certificate.toml and readings.csv from 'meterlink lab')")
+    if (out / "certificate.toml").exists():
+        raise MeterlinkError(f"{out}: holds an issued certificate; choose another --out folder")
+    issued = load_certificate(cert_path)
+    session = _session(args.lab_session)
+    if not args.lab_session:     # the demo session is dated the day it ran: take the issued dates
+        session = dataclasses.replace(session, cal_date=issued.cal_date, due_date=issued.due_date)
+    session = dataclasses.replace(session, certificate_number=issued.certificate_number)
+    previous = load_certificate(args.previous) if args.previous else None
+    results = pr.import_csv(readings, session)
+    cal = certify.analyse(session, results, previous)
+    if dump_certificate(cal.certificate) != cert_path.read_text(encoding="utf-8"):
+        raise MeterlinkError(f"{folder}: the readings analysed with this session do not reproduce the issued "
+                             f"certificate {issued.certificate_number} (give the --lab-session and --previous it was "
+                             f"made with)")
+    cmp = certify.compare(cal, previous, results) if previous else None
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
+    from meterlink.cli import SAFETY_LINE
+    return write_outputs(html.render(cal, cmp, SAFETY_LINE, args.template_dir), out / "certificate.html", pdf)
+
+
+def _database(kind, sid, out, args, pdf):
+    """The report of a database record: station page, survey report or session report; the files written."""
+    from meterlink.errors import MeterlinkError
+    from meterlink.reports.templating import write_outputs
+
+    if kind == "station":
+        import time
+
+        from meterlink.commands.stats import open_station
+        from meterlink.station.publish import html_page
+
+        conn, t0, t1 = open_station(args)
+        try:
+            page = html_page(conn, time.time(), t0, t1, args.template_dir)
+        finally:
+            conn.close()
+        try:
+            out.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
+        files = write_outputs(page, out / "station.html", pdf)
+    elif kind == "survey":
+        from meterlink.survey.report import write_report
+
+        html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf)
+        files = [html, *([html.with_suffix(".pdf")] if pdf else []), *sorted(html.parent.glob("*.csv"))]
+    else:
+        from meterlink.reports.session_report import write_session_report
+
+        html = write_session_report(args.db, sid, out, standard=args.standard, tier=args.tier, rule=args.rule,
+                                    template_dir=args.template_dir, pdf=pdf)
+        files = [html, *([html.with_suffix(".pdf")] if pdf else []), out / "values.csv"]
+    return files
+
+
+def run(args) -> int:
+    import json
+    from pathlib import Path
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir
+
+    pdf = args.format == "pdf"
+    template_dir(args.template_dir)                       # bad input first, before anything is read
+    if pdf and not pdf_available():
+        raise MeterlinkError(PDF_HINT)
+    out = Path(args.out)
+    if Path(args.db).is_dir():
+        kind, sid = "lab", None
+        files = _lab(Path(args.db), out, args, pdf)
+    elif not Path(args.db).is_file():
+        raise MeterlinkError(f"database {args.db!r} does not exist")
+    else:
+        kind, sid = _kind(args.db, args.session)
+        files = _database(kind, sid, out, args, pdf)
+    if args.json:
+        print(json.dumps({"kind": kind, "session": sid, "files": [str(f) for f in files], "safety": SAFETY_LINE},
+                         indent=2))
+    else:
+        what = {"station": "station page", "lab": "lab certificate"}.get(kind, f"{kind} session {sid}")
+        print(f"{what}: " + ", ".join(str(f) for f in files if f.suffix in (".html", ".pdf")))
+        print(SAFETY_LINE)
+    return 0
