@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 7
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -139,7 +139,22 @@ def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
     db.execute("CREATE UNIQUE INDEX spectra_key ON spectra (session_id, boot, epoch, seq)")
 
 
+def _schema_v7_sync(db: sqlite_utils.Database) -> None:
+    """Store-and-forward to a central store (docs/network.md): the file's own UUID, the outbox log and
+    one cursor per table. The log is filled by triggers that meterlink.network.outbox adds only once a
+    station is set to sync; a file that never syncs keeps two empty tables."""
+    import uuid
+
+    db["meta"].upsert({"key": "file_uuid", "value": str(uuid.uuid4())}, pk="key")
+    db.execute("CREATE TABLE sync_log (seq INTEGER PRIMARY KEY AUTOINCREMENT, tbl TEXT NOT NULL, rid INTEGER NOT NULL)")
+    db.execute("CREATE INDEX sync_log_tbl ON sync_log (tbl, seq)")
+    db.execute("CREATE TABLE sync_cursor (tbl TEXT PRIMARY KEY, acked INTEGER NOT NULL DEFAULT 0, "
+               "acked_utc REAL, rows_acked INTEGER NOT NULL DEFAULT 0)")
+
+
+# 5 and 6 are taken by other branches' migrations; the lead renumbers on merge if needed
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
-                                                                   3: _schema_v3_spans, 4: _schema_v4_epochs}
+                                                                   3: _schema_v3_spans, 4: _schema_v4_epochs,
+                                                                   7: _schema_v7_sync}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

@@ -1,0 +1,245 @@
+"""Central side of the sync: one checked batch applied to PostgreSQL in one transaction (docs/network.md).
+
+Rows go through COPY into a session-local staging table, then ``INSERT ... SELECT ... ON CONFLICT DO
+NOTHING`` into the (partitioned) target, so a re-sent row changes nothing. A staged row whose key is
+stored with other content is written to ``conflicts`` (once per distinct offered content) and the
+stored row stays as it was. Tokens are kept as SHA-256 hashes only.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import secrets
+import time
+
+from meterlink.network.batch import TABLES, BadBatch
+from meterlink.network.central_schema import Partitions
+
+
+def _target(source: str, table: str, key: tuple, rename=None, extra=("station_uuid", "file_uuid", "received_utc"),
+            bools=()) -> dict:
+    rename = rename or {}
+    sent = [rename.get(c, c) for c, _ in TABLES[source]]
+    cols = (*extra, *sent)
+    compare = tuple(c for c in cols if c not in key and c not in ("file_uuid", "received_utc", "first_seen_utc"))
+    return {"table": table, "sent": sent, "cols": cols, "extra": extra, "key": key, "compare": compare,
+            "bools": tuple(sent.index(b) for b in bools)}
+
+
+TARGETS = {
+    "mon_block": _target("mon_block", "blocks", ("station_uuid", "meter", "band", "t_start_utc"), bools=("complete",)),
+    "mon_running": _target("mon_running", "running", ("station_uuid", "meter", "band", "window_s", "t_start_utc")),
+    "events": _target("events", "events", ("file_uuid", "local_id", "t_utc"), rename={"id": "local_id"}),
+    "readings": _target("readings", "readings", ("file_uuid", "local_id", "t_utc"), rename={"id": "local_id"}),
+    "calibrations": _target("calibrations", "certificates", ("sha256",), extra=("first_seen_utc",),
+                            rename={"certificate_name": "name", "certificate_sha256": "sha256",
+                                    "certificate_text": "text"}),
+}
+
+
+class Refused(Exception):
+    """A batch or request refused: HTTP status and one-line reason."""
+
+    def __init__(self, status: int, reason: str):
+        super().__init__(reason)
+        self.status, self.reason = status, reason
+
+
+def hash_token(token: str) -> str:
+    return hashlib.sha256(token.encode("utf-8")).hexdigest()
+
+
+def new_token() -> str:
+    """A fresh bearer token (256 random bits, URL-safe text); only its hash is stored."""
+    return "mlt_" + secrets.token_urlsafe(32)
+
+
+def authenticate(conn, authorization: str | None) -> str:
+    """The station UUID a bearer token belongs to; Refused 401 (missing, unknown) or 403 (revoked)."""
+    if not authorization or not authorization.startswith("Bearer "):
+        raise Refused(401, "no bearer token (Authorization: Bearer ...)")
+    token = authorization[7:].strip()
+    row = conn.execute("SELECT token_id, station_uuid, revoked_utc FROM tokens WHERE token_sha256 = %s",
+                       (hash_token(token),)).fetchone()
+    if row is None:
+        raise Refused(401, "unknown token")
+    if row[2] is not None:
+        raise Refused(403, f"token {row[0]} was revoked")
+    conn.execute("UPDATE tokens SET last_used_utc = %s WHERE token_id = %s", (time.time(), row[0]))
+    return str(row[1])
+
+
+class Ingest:
+    """Applies batches to one central database connection at a time (one instance per worker)."""
+
+    def __init__(self):
+        self.parts = Partitions()
+        self._staged: dict[int, set] = {}
+
+    def _stage(self, conn, table: str) -> str:
+        name = f"stage_{table}"
+        made = self._staged.setdefault(id(conn), set())
+        if name not in made:
+            conn.execute(f"CREATE TEMP TABLE IF NOT EXISTS {name} (LIKE {table}) ON COMMIT DELETE ROWS")
+            made.add(name)
+        return name
+
+    def apply(self, conn, station_uuid: str, body: dict) -> dict:
+        """Store one checked batch for the authenticated station; the acknowledgement, or Refused."""
+        if body["station_uuid"] != station_uuid:
+            raise Refused(403, f"token belongs to station {station_uuid}, batch names {body['station_uuid']}")
+        now = time.time()
+        try:
+            with conn.transaction():
+                ack = self._apply(conn, station_uuid, body, now)
+        except BaseException:
+            self.parts.forget()
+            if conn.closed:
+                self._staged.pop(id(conn), None)
+            raise
+        return ack
+
+    def _apply(self, conn, station_uuid: str, body: dict, now: float) -> dict:
+        file_uuid, batch_no = body["file_uuid"], body["batch_no"]
+        conn.execute("INSERT INTO station_files (file_uuid, station_uuid, first_seen_utc, last_seen_utc) "
+                     "VALUES (%s, %s, %s, %s) ON CONFLICT DO NOTHING", (file_uuid, station_uuid, now, now))
+        owner, last = conn.execute("SELECT station_uuid, last_batch_no FROM station_files WHERE file_uuid = %s "
+                                   "FOR UPDATE", (file_uuid,)).fetchone()
+        if str(owner) != station_uuid:
+            raise Refused(403, f"database file {file_uuid} belongs to another station")
+        if batch_no < last:
+            raise Refused(409, f"replay of batch {batch_no}: this file's batches up to {last} are already stored")
+        conn.execute("UPDATE station_files SET last_seen_utc = %s, last_batch_no = %s, schema_version = %s, "
+                     "software_version = %s WHERE file_uuid = %s",
+                     (now, batch_no, body["schema_version"], body.get("software_version"), file_uuid))
+        self._snapshots(conn, station_uuid, body, now)
+        ack = {"ok": True, "batch_no": batch_no, "resent": batch_no == last, "table": body.get("table"),
+               "rows": len(body["rows"]), "new": 0, "duplicate": 0, "conflicts": 0}
+        if body["rows"]:
+            new, conflicts = self._rows(conn, station_uuid, body, now)
+            ack.update(new=new, conflicts=conflicts, duplicate=len(body["rows"]) - new - conflicts)
+        conn.execute("INSERT INTO ingest_log (t_utc, station_uuid, file_uuid, batch_no, tbl, status, rows_offered, "
+                     "rows_new, rows_conflict) VALUES (%s,%s,%s,%s,%s,200,%s,%s,%s)",
+                     (now, station_uuid, file_uuid, batch_no, body.get("table"), ack["rows"], ack["new"],
+                      ack["conflicts"]))
+        return ack
+
+    def _snapshots(self, conn, su: str, body: dict, now: float) -> None:
+        st = body.get("station")
+        if st:
+            conn.execute("UPDATE stations SET latitude_deg=%s, longitude_deg=%s, elevation_m=%s, standard=%s, tier=%s, "
+                         "convention=%s, block_s=%s, timezone=%s, last_seen_utc=%s, last_batch_utc=%s "
+                         "WHERE station_uuid=%s",
+                         (st.get("latitude_deg"), st.get("longitude_deg"), st.get("elevation_m"), st.get("standard"),
+                          st.get("tier"), st.get("convention"), st.get("block_s"), st.get("timezone"), now, now, su))
+        else:
+            conn.execute("UPDATE stations SET last_seen_utc=%s, last_batch_utc=%s WHERE station_uuid=%s", (now, now, su))
+        for m in body.get("meters") or []:
+            g = m.get
+            conn.execute("INSERT INTO meters VALUES (%s,%s,%s,%s,%s,%s,%s,%s,%s,%s,%s,%s) ON CONFLICT (station_uuid, meter) "
+                         "DO UPDATE SET port=EXCLUDED.port, certificate=EXCLUDED.certificate, "
+                         "certificate_sha256=EXCLUDED.certificate_sha256, cert_due=EXCLUDED.cert_due, "
+                         "freq_hz=EXCLUDED.freq_hz, band_lo_hz=EXCLUDED.band_lo_hz, band_hi_hz=EXCLUDED.band_hi_hz, "
+                         "e_ref_v_per_m=EXCLUDED.e_ref_v_per_m, s_ref_w_per_m2=EXCLUDED.s_ref_w_per_m2, "
+                         "updated_utc=EXCLUDED.updated_utc",
+                         (su, g("meter"), g("port"), g("certificate"), g("certificate_sha256"), g("cert_due"),
+                          g("freq_hz"), g("band_lo_hz"), g("band_hi_hz"), g("e_ref_v_per_m"), g("s_ref_w_per_m2"), now))
+            conn.execute("INSERT INTO health VALUES (%s,%s,%s,%s,%s,%s,%s,%s,%s,%s) ON CONFLICT (station_uuid, meter) "
+                         "DO UPDATE SET observed_utc=EXCLUDED.observed_utc, last_seen_utc=EXCLUDED.last_seen_utc, "
+                         "link_state=EXCLUDED.link_state, battery_pct=EXCLUDED.battery_pct, "
+                         "temperature_degc=EXCLUDED.temperature_degc, drift_ppm=EXCLUDED.drift_ppm, "
+                         "last_e_v_per_m=EXCLUDED.last_e_v_per_m, u_expanded_db=EXCLUDED.u_expanded_db",
+                         (su, g("meter"), now, g("last_seen_utc"), g("link_state"), g("battery_pct"),
+                          g("temperature_degc"), g("drift_ppm"), g("last_e_v_per_m"), g("u_expanded_db")))
+        for a in body.get("alarms") or []:
+            g = a.get
+            conn.execute("INSERT INTO alarms VALUES (%s,%s,%s,%s,%s,%s,%s,%s,%s,%s) ON CONFLICT (station_uuid, rule, "
+                         "meter, band) DO UPDATE SET state=EXCLUDED.state, t_on_utc=EXCLUDED.t_on_utc, "
+                         "peak_t_utc=EXCLUDED.peak_t_utc, peak_value=EXCLUDED.peak_value, "
+                         "last_t_utc=EXCLUDED.last_t_utc, updated_utc=EXCLUDED.updated_utc",
+                         (su, g("rule"), g("meter"), g("band"), g("state"), g("t_on_utc"), g("peak_t_utc"),
+                          g("peak_value"), g("last_t_utc"), now))
+
+    def _rows(self, conn, su: str, body: dict, now: float) -> tuple[int, int]:
+        """COPY the rows into staging, insert the new ones, record the conflicting ones: (new, conflicts)."""
+        source = body["table"]
+        tg = TARGETS[source]
+        table, rows = tg["table"], body["rows"]
+        if source in ("mon_block", "mon_running", "events", "readings"):
+            col = [c for c, _ in TABLES[source]].index({"mon_block": "t_start_utc", "mon_running": "t_start_utc"}
+                                                       .get(source, "t_utc"))
+            self.parts.ensure(conn, table, {r[col] for r in rows})
+        stage = self._stage(conn, table)
+        extra = {"station_uuid": su, "file_uuid": body["file_uuid"], "received_utc": now, "first_seen_utc": now}
+        head = tuple(extra[c] for c in tg["extra"])
+        bools = tg["bools"]
+        cols = ", ".join(tg["cols"])
+        with conn.cursor().copy(f"COPY {stage} ({cols}) FROM STDIN") as cp:
+            if bools:
+                for r in rows:
+                    r = list(r)
+                    for b in bools:
+                        r[b] = bool(r[b])
+                    cp.write_row((*head, *r))
+            else:
+                for r in rows:
+                    cp.write_row((*head, *r))
+        new = conn.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM {stage} ON CONFLICT DO NOTHING").rowcount
+        if source == "mon_block":
+            conn.execute("INSERT INTO bands SELECT station_uuid, meter, band, min(t_start_utc), max(t_start_utc) "
+                         f"FROM {stage} GROUP BY 1, 2, 3 ON CONFLICT (station_uuid, meter, band) DO UPDATE SET "
+                         "first_t_utc = least(bands.first_t_utc, EXCLUDED.first_t_utc), "
+                         "last_t_utc = greatest(bands.last_t_utc, EXCLUDED.last_t_utc)")
+        conflicts = 0
+        if new < len(rows):
+            on = " AND ".join(f"s.{k} = t.{k}" for k in tg["key"])
+            cmp_s = ", ".join(f"s.{c}" for c in tg["compare"])
+            cmp_t = ", ".join(f"t.{c}" for c in tg["compare"])
+            found = conn.execute(f"SELECT json_build_array({', '.join(f's.{k}' for k in tg['key'])})::text, "
+                                 f"row_to_json(t)::text, row_to_json(s)::text FROM {stage} s JOIN {table} t ON {on} "
+                                 f"WHERE ROW({cmp_s}) IS DISTINCT FROM ROW({cmp_t})").fetchall()
+            for key, stored, offered in found:
+                o = json.loads(offered)
+                for c in ("received_utc", "first_seen_utc"):
+                    o.pop(c, None)
+                offered = json.dumps(o, sort_keys=True)
+                digest = hashlib.sha256(offered.encode()).hexdigest()
+                conn.execute("INSERT INTO conflicts (tbl, station_uuid, file_uuid, batch_no, row_key, stored, offered, "
+                             "offered_sha256, received_utc) VALUES (%s,%s,%s,%s,%s,%s,%s,%s,%s) "
+                             "ON CONFLICT (tbl, row_key, offered_sha256) DO NOTHING",
+                             (table, su, body["file_uuid"], body["batch_no"], key, stored, offered, digest, now))
+            conflicts = len(found)
+        return new, conflicts
+
+    @staticmethod
+    def log_refusal(conn, status: int, reason: str, body: dict | None, station_uuid: str | None) -> None:
+        """One ingest_log row for a refused request (its own short transaction)."""
+        b = body if isinstance(body, dict) else {}
+        try:
+            with conn.transaction():
+                conn.execute("INSERT INTO ingest_log (t_utc, station_uuid, file_uuid, batch_no, tbl, status, reason) "
+                             "VALUES (%s,%s,%s,%s,%s,%s,%s)",
+                             (time.time(), station_uuid, _uuid_or_none(b.get("file_uuid")),
+                              b.get("batch_no") if isinstance(b.get("batch_no"), int) else None,
+                              b.get("table") if isinstance(b.get("table"), str) else None, status, reason[:500]))
+        except Exception:  # noqa: BLE001 - the refusal is logged to stderr anyway
+            pass
+
+
+def _uuid_or_none(v):
+    import uuid
+
+    try:
+        return str(uuid.UUID(str(v))) if v is not None else None
+    except ValueError:
+        return None
+
+
+def check_or_refuse(body) -> dict:
+    from meterlink.network.batch import check
+
+    try:
+        return check(body)
+    except BadBatch as exc:
+        raise Refused(exc.status, str(exc)) from None
