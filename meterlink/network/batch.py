@@ -39,6 +39,7 @@ METER_KEYS = {"meter": "s", "port": "s?", "certificate": "s?", "certificate_sha2
               "freq_hz": "f?", "band_lo_hz": "f?", "band_hi_hz": "f?", "e_ref_v_per_m": "f?", "s_ref_w_per_m2": "f?",
               "last_seen_utc": "f?", "link_state": "s?", "battery_pct": "f?", "temperature_degc": "f?",
               "drift_ppm": "f?", "last_e_v_per_m": "f?", "u_expanded_db": "f?"}
+CERT_KEYS = {"sha256": "s", "name": "s?", "text": "s"}
 ALARM_KEYS = {"rule": "s", "meter": "s", "band": "s", "state": "s", "t_on_utc": "f?", "peak_t_utc": "f?",
               "peak_value": "f?", "last_t_utc": "f?"}
 
@@ -93,7 +94,7 @@ def check(body) -> dict:
     if fmt < 1:
         raise BadBatch(f"format: unknown batch format {fmt}")
     known = {"format", "station_uuid", "file_uuid", "batch_no", "schema_version", "software_version", "station",
-             "meters", "alarms", "table", "columns", "rows"}
+             "meters", "alarms", "certificates", "table", "columns", "rows"}
     extra = set(body) - known
     if extra:
         raise BadBatch(f"unknown key {sorted(extra)[0]!r}")
@@ -112,12 +113,17 @@ def check(body) -> dict:
         raise BadBatch("software_version: expected text")
     if body.get("station") is not None:
         _check_record(body["station"], STATION_KEYS, "station")
-    for key, keys in (("meters", METER_KEYS), ("alarms", ALARM_KEYS)):
+    for key, keys in (("meters", METER_KEYS), ("alarms", ALARM_KEYS), ("certificates", CERT_KEYS)):
         items = body.get(key) or []
         if not isinstance(items, list) or len(items) > 1000:
             raise BadBatch(f"{key}: expected a list of at most 1000 objects")
         for i, m in enumerate(items):
             _check_record(m, keys, f"{key}[{i}]")
+    import hashlib
+
+    for i, c in enumerate(body.get("certificates") or []):
+        if hashlib.sha256(c["text"].encode("utf-8")).hexdigest() != c["sha256"]:
+            raise BadBatch(f"certificates[{i}].sha256: does not match the SHA-256 of its text")
     table = body.get("table")
     if table is None:
         if body.get("rows"):

@@ -152,6 +152,9 @@ class Ingest:
                          "last_e_v_per_m=EXCLUDED.last_e_v_per_m, u_expanded_db=EXCLUDED.u_expanded_db",
                          (su, g("meter"), now, g("last_seen_utc"), g("link_state"), g("battery_pct"),
                           g("temperature_degc"), g("drift_ppm"), g("last_e_v_per_m"), g("u_expanded_db")))
+        for c in body.get("certificates") or []:
+            conn.execute("INSERT INTO certificates (sha256, name, text, first_seen_utc) VALUES (%s,%s,%s,%s) "
+                         "ON CONFLICT (sha256) DO NOTHING", (c["sha256"], c.get("name"), c["text"], now))
         for a in body.get("alarms") or []:
             g = a.get
             conn.execute("INSERT INTO alarms VALUES (%s,%s,%s,%s,%s,%s,%s,%s,%s,%s) ON CONFLICT (station_uuid, rule, "

@@ -84,7 +84,7 @@ def next_rows(conn, tbl: str, limit: int) -> tuple[list[list], int | None]:
     return [list(r[2:]) for r in got if r[1]], got[-1][0]
 
 
-def acknowledge(store, tbl: str, upto: int, n_rows: int, batch_no: int) -> None:
+def acknowledge(store, tbl: str, upto: int, n_rows: int, batch_no: int, certificates=()) -> None:
     """The central store took the batch: advance the cursor and drop the log entries, in one transaction."""
     with store.write() as conn:
         conn.execute("UPDATE sync_cursor SET acked = max(acked, ?), acked_utc = ?, rows_acked = rows_acked + ? "
@@ -92,6 +92,8 @@ def acknowledge(store, tbl: str, upto: int, n_rows: int, batch_no: int) -> None:
         if tbl != "readings":
             conn.execute("DELETE FROM sync_log WHERE tbl = ? AND seq <= ?", (tbl, upto))
         set_batch_no(conn, batch_no)
+        if certificates:
+            certificates_sent(conn, certificates)
 
 
 def batch_no(conn) -> int:
@@ -129,7 +131,11 @@ def snapshot(conn) -> dict:
                                   "m.cert_due, m.freq_hz, m.band_lo_hz, m.band_hi_hz, m.e_ref_v_per_m, m.s_ref_w_per_m2, "
                                   "m.last_seen_utc, m.link_state, m.battery_pct, m.temperature_degc, m.drift_ppm, "
                                   "m.last_e_v_per_m, m.u_expanded_db FROM mon_meter m WHERE m.station_id = ?", (sid,)):
-                out["meters"].append({k: _finite(v) for k, v in dict(m).items()})
+                m = {k: _finite(v) for k, v in dict(m).items()}
+                if m["certificate_sha256"] is None and m["certificate"]:
+                    cert = certificate(m["certificate"])
+                    m["certificate_sha256"] = cert["sha256"] if cert else None
+                out["meters"].append(m)
         if _exists(conn, "mon_alarm"):
             out["alarms"] = [{k: _finite(v) for k, v in dict(a).items()} for a in conn.execute(
                 "SELECT rule, meter, band, state, t_on_utc, peak_t_utc, peak_value, last_t_utc FROM mon_alarm "
@@ -138,6 +144,45 @@ def snapshot(conn) -> dict:
     finally:
         conn.row_factory = None
     return out
+
+
+def certificate(ref: str) -> dict | None:
+    """{sha256, name, text} of a meter's certificate (a file, or a packaged one by name); None if unreadable."""
+    import hashlib
+    from pathlib import Path
+
+    from meterlink.physics.certificate import _packaged
+
+    try:
+        p = Path(ref)
+        text = p.read_text(encoding="utf-8") if p.is_file() else _packaged()[ref].read_text(encoding="utf-8")
+    except (OSError, KeyError, UnicodeDecodeError):
+        return None
+    return {"sha256": hashlib.sha256(text.encode("utf-8")).hexdigest(), "name": Path(ref).name, "text": text}
+
+
+def certificates_unsent(conn, meters: list[dict]) -> list[dict]:
+    """The meters' certificates the central store has not acknowledged yet (meta 'sync_certificates')."""
+    import json
+
+    row = conn.execute("SELECT value FROM meta WHERE key='sync_certificates'").fetchone()
+    sent = set(json.loads(row[0])) if row else set()
+    out = {}
+    for m in meters:
+        if m.get("certificate") and m.get("certificate_sha256") not in sent:
+            c = certificate(m["certificate"])
+            if c is not None and c["sha256"] == m["certificate_sha256"]:
+                out[c["sha256"]] = c
+    return list(out.values())
+
+
+def certificates_sent(conn, shas) -> None:
+    import json
+
+    row = conn.execute("SELECT value FROM meta WHERE key='sync_certificates'").fetchone()
+    sent = set(json.loads(row[0])) if row else set()
+    conn.execute("INSERT OR REPLACE INTO meta (key, value) VALUES ('sync_certificates', ?)",
+                 (json.dumps(sorted(sent | set(shas))),))
 
 
 def _finite(v):

@@ -192,14 +192,16 @@ def sync_once(store, settings: SyncSettings, client: Client | None = None, max_b
                 if upto is None:
                     break
                 n = outbox.batch_no(conn) + 1
+                snap = outbox.snapshot(conn)
+                certs = outbox.certificates_unsent(conn, snap["meters"])
                 body = {"format": FORMAT, "station_uuid": settings.station_uuid, "file_uuid": fid, "batch_no": n,
-                        "schema_version": schema, "software_version": __version__, **outbox.snapshot(conn),
+                        "schema_version": schema, "software_version": __version__, **snap, "certificates": certs,
                         "table": tbl, "columns": [c for c, _ in outbox.TABLES[tbl]], "rows": rows}
                 ack = client.post(body)
                 if not (isinstance(ack, dict) and ack.get("ok") is True and ack.get("batch_no") == n
                         and ack.get("rows") == len(rows)):
                     raise Unavailable(f"unexpected acknowledgement {str(ack)[:120]!r}")
-                outbox.acknowledge(store, tbl, upto, len(rows), n)
+                outbox.acknowledge(store, tbl, upto, len(rows), n, [c["sha256"] for c in certs])
                 out.batches += 1
                 out.rows += len(rows)
                 out.new += int(ack.get("new", 0))
@@ -207,12 +209,15 @@ def sync_once(store, settings: SyncSettings, client: Client | None = None, max_b
                 out.conflicts += int(ack.get("conflicts", 0))
         if out.batches == 0 and (max_batches is None or max_batches > 0):   # nothing to send: say we are alive
             n = outbox.batch_no(conn) + 1
+            snap = outbox.snapshot(conn)
+            certs = outbox.certificates_unsent(conn, snap["meters"])
             ack = client.post({"format": FORMAT, "station_uuid": settings.station_uuid, "file_uuid": fid,
                                "batch_no": n, "schema_version": schema, "software_version": __version__,
-                               **outbox.snapshot(conn)})
+                               **snap, "certificates": certs})
             if isinstance(ack, dict) and ack.get("ok") is True and ack.get("batch_no") == n:
                 with store.write() as c:
                     outbox.set_batch_no(c, n)
+                    outbox.certificates_sent(c, [x["sha256"] for x in certs])
     except (Unavailable, RefusedByCentral) as exc:
         out.error = str(exc)
         out.pending = outbox.pending(conn)
@@ -273,8 +278,18 @@ def start_for(station, log=None) -> Syncer | None:
     central = getattr(station, "central", None)
     if not central:
         return None
-    settings = settings_from_table(central, str(station.path), Path(station.path).parent)
+    try:
+        settings = settings_from_table(central, str(station.path), Path(station.path).parent)
+    except SyncError as exc:     # the file was checked when parsed; a token file gone since: say so, acquire on
+        (log or print)(f"{_iso()} ERROR   sync not started: {exc}")
+        return None
     return Syncer(station.database, settings, log).start()
+
+
+def stop(syncer: Syncer | None) -> None:
+    """Stop a background sync started by start_for (None: nothing to stop)."""
+    if syncer is not None:
+        syncer.stop()
 
 
 def _iso() -> str:

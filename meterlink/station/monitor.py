@@ -24,6 +24,7 @@ import numpy as np
 from meterlink.physics import calibrate
 
 from meterlink.station import derived, retention
+from meterlink.network import syncd
 from meterlink.station.alarms import AlarmEvent, AlarmMachine, command_call, percent_rules_instantaneous, rule_value
 from meterlink.physics.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.station.hooks import STOP_WAIT_S, HookRunner
@@ -664,6 +665,7 @@ class Monitor:
     # -- main loop -----------------------------------------------------------------------------
     def run(self) -> None:
         """Acquire until stop(); commits at most commit_s apart; always leaves a consistent database."""
+        self._sync = syncd.start_for(self.st, self.log)     # [central]: sync in the background (docs/network.md)
         for ms in self.meters:
             # while the file cannot be written, up to max_keep readings per meter wait in memory (about
             # 0.1 GB; 2.3 days at one reading a second); beyond, the oldest go, each drop an event
@@ -706,6 +708,7 @@ class Monitor:
             self._hook_outcomes(self.hooks.shutdown(STOP_WAIT_S))
             self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
             self._final_commit()
+            syncd.stop(self._sync)
             self.store.close()
             self._lock.release()
             self.notify.close()

@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError
+from meterlink.network.syncd import settings_from_table
 from meterlink.physics.units import parse_frequency_hz
 
 FORMAT = "meterlink-station/1"
@@ -352,6 +353,8 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
                f"got {retention.derived_days:g}")
     r.done()
     central = top.get("central", "table", None)
+    if central is not None:                      # checked now: a monitor never starts with unusable sync settings
+        settings_from_table(central, src, base)
     top.done()
     return Station(path=path, name=name, latitude_deg=lat, longitude_deg=lon, elevation_m=elev,
                    database=db if db.is_absolute() else base / db, standard=standard, tier=tier,
