@@ -297,3 +297,39 @@ def test_month_partition_bounds_are_calendar_months():
     assert suffix == "y2024m02" and (hi - lo) == 29 * 86400
     assert lo == 1_706_745_600                          # 2024-02-01T00:00:00Z
     assert math.isclose(month_bounds(lo)[0], lo) and month_bounds(hi)[2] == "y2024m03"
+
+
+def test_the_example_central_configuration_parses():
+    from meterlink.network.central import load_config
+
+    cfg = load_config(ROOT / "deploy" / "central.toml")
+    assert cfg.port == 8600 and cfg.pool == 4 and "dbname=meterlink_central" in cfg.dsn
+
+
+def test_the_central_unit_verifies_and_is_sandboxed(tmp_path):
+    """systemd-analyze (installed by .ci/run) parses the unit; its offline security score stays under 2.5."""
+    import re
+    import shutil
+
+    if shutil.which("systemd-analyze") is None:
+        pytest.skip("systemd-analyze not installed")
+    exe = Path(sys.executable).parent / "meterlink"
+    unit = tmp_path / "meterlink-central.service"
+    unit.write_text((ROOT / "deploy" / "meterlink-central.service").read_text()
+                    .replace("/opt/meterlink/venv/bin/meterlink", str(exe)))
+    v = subprocess.run(["systemd-analyze", "verify", str(unit)], capture_output=True, text=True, timeout=60)
+    assert v.returncode == 0 and v.stderr.strip() == "", v.stderr
+    sec = subprocess.run(["systemd-analyze", "security", "--offline=yes", str(unit)], capture_output=True,
+                         text=True, timeout=60)
+    m = re.search(r"Overall exposure level for \S+: ([0-9.]+)", sec.stdout)
+    assert m, sec.stdout[-500:] + sec.stderr
+    assert float(m.group(1)) < 2.5, sec.stdout
+
+
+def test_a_station_never_loads_the_central_libraries():
+    """The monitor and the sync client use the standard library only: psycopg, starlette and uvicorn stay
+    in the central commands (a station installs meterlink without the 'central' extra)."""
+    code = ("import sys, meterlink.station.monitor, meterlink.network.syncd, meterlink.commands.sync; "
+            "print(sorted(m for m in ('psycopg', 'starlette', 'uvicorn') if m in sys.modules))")
+    p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)
+    assert p.returncode == 0 and p.stdout.strip() == "[]", p.stdout + p.stderr

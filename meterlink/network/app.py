@@ -48,11 +48,12 @@ def create_app(cfg: CentralConfig):
     def ingest_sync(auth: str | None, raw: bytes, encoding: str | None, peer: str) -> JSONResponse:
         body, station = None, None
         try:
-            body = _decode(raw, encoding, cfg.max_body_bytes)
+            body, text = _decode(raw, encoding, cfg.max_body_bytes)
             with pool.connection() as conn:
                 try:
                     station = authenticate(conn, auth)
                     body = check_or_refuse(body)
+                    body["_raw"] = text           # the rows are unpacked from this text by PostgreSQL
                     ing = ingests.pop() if ingests else Ingest()
                     try:
                         ack = ing.apply(conn, station, body)
@@ -105,7 +106,7 @@ def create_app(cfg: CentralConfig):
 
 
 def _decode(raw: bytes, encoding: str | None, limit: int):
-    """The JSON body (gzip allowed), or Refused 400/413/415 in one line."""
+    """(the JSON body, its text) (gzip allowed), or Refused 400/413/415 in one line."""
     enc = (encoding or "identity").strip().lower()
     if enc == "gzip":
         try:
@@ -118,7 +119,8 @@ def _decode(raw: bytes, encoding: str | None, limit: int):
     elif enc != "identity":
         raise Refused(415, f"content encoding {enc[:20]!r} not supported (identity or gzip)")
     try:
-        return json.loads(raw)
+        text = raw.decode("utf-8")
+        return json.loads(text), text
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise Refused(400, f"body is not valid JSON: {str(exc)[:120]}") from None
 

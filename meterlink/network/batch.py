@@ -62,7 +62,7 @@ def _ok(v, kind: str) -> bool:
         return isinstance(v, int) and not isinstance(v, bool) and -2**63 <= v < 2**63
     if k == "b":
         return v in (0, 1) and not isinstance(v, float)
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+    return (type(v) is float and math.isfinite(v)) or (type(v) is int and -2**63 <= v < 2**63)
 
 
 def _check_record(obj, keys: dict, what: str) -> dict:
@@ -79,6 +79,12 @@ def _check_record(obj, keys: dict, what: str) -> dict:
 
 
 _KIND = {"s": "text", "i": "an integer", "f": "a finite number", "b": "0 or 1"}
+_ALLOWED = {"s": {str}, "s?": {str, type(None)}, "i": {int}, "i?": {int, type(None)}, "f": {int, float},
+            "f?": {int, float, type(None)}, "b": {int}, "b?": {int, type(None)}}
+
+
+def _floats(values):
+    return (v for v in values if type(v) is float)
 
 
 def check(body) -> dict:
@@ -141,17 +147,23 @@ def check(body) -> dict:
         raise BadBatch("rows: expected a list")
     if len(rows) > MAX_ROWS:
         raise BadBatch(f"rows: {len(rows)} rows, at most {MAX_ROWS} per batch", 413)
-    kinds = [k for _, k in spec]
     width = len(spec)
-    tcol = cols.index(TIME_COLUMN[table]) if table in TIME_COLUMN else None
-    from meterlink.network.central_schema import valid_time
-
     for i, r in enumerate(rows):
-        if not isinstance(r, list) or len(r) != width:
+        if type(r) is not list or len(r) != width:
             raise BadBatch(f"rows[{i}]: expected a list of {width} values")
-        for j, (v, kind) in enumerate(zip(r, kinds)):
-            if not _ok(v, kind):
-                raise BadBatch(f"rows[{i}].{cols[j]}: expected {_KIND[kind[0]]}, got {str(v)[:40]!r}")
-        if tcol is not None and not valid_time(r[tcol]):
-            raise BadBatch(f"rows[{i}].{cols[tcol]}: time {r[tcol]!r} is outside the years 1-9999")
+    if rows:
+        from meterlink.network.central_schema import valid_time
+
+        tname = TIME_COLUMN.get(table)
+        for (name, kind), values in zip(spec, zip(*rows)):    # column by column: one pass of C-level checks each
+            types = set(map(type, values))
+            if not types <= _ALLOWED[kind] or (float in types and not all(map(math.isfinite, _floats(values)))) \
+                    or (int in types and not all(-2**63 <= v < 2**63 for v in values if type(v) is int)) \
+                    or (kind[0] == "b" and not set(values) <= {0, 1}) \
+                    or (name == tname and not all(map(valid_time, values))):
+                i, v = next(((i, v) for i, v in enumerate(values) if not _ok(v, kind)
+                             or (name == tname and not valid_time(v))), (0, values[0]))
+                if name == tname and _ok(v, kind):
+                    raise BadBatch(f"rows[{i}].{name}: time {v!r} is outside the years 1-9999")
+                raise BadBatch(f"rows[{i}].{name}: expected {_KIND[kind[0]]}, got {str(v)[:40]!r}")
     return body

@@ -13,7 +13,7 @@ import json
 import secrets
 import time
 
-from meterlink.network.batch import TABLES, BadBatch
+from meterlink.network.batch import TABLES, TIME_COLUMN, BadBatch
 from meterlink.network.central_schema import Partitions
 
 
@@ -36,6 +36,12 @@ TARGETS = {
                             rename={"certificate_name": "name", "certificate_sha256": "sha256",
                                     "certificate_text": "text"}),
 }
+
+
+# how a sent value is unpacked from the JSON row e (by kind), and the per-batch values bound as parameters
+_CAST = {"s": "(e->>{i})", "f": "(e->>{i})::float8", "i": "(e->>{i})::int8", "b": "((e->>{i})::int <> 0)"}
+_PARAM = {"station_uuid": "%s::uuid", "file_uuid": "%s::uuid", "received_utc": "%s::float8",
+          "first_seen_utc": "%s::float8"}
 
 
 class Refused(Exception):
@@ -165,37 +171,45 @@ class Ingest:
                           g("peak_value"), g("last_t_utc"), now))
 
     def _rows(self, conn, su: str, body: dict, now: float) -> tuple[int, int]:
-        """COPY the rows into staging, insert the new ones, record the conflicting ones: (new, conflicts)."""
+        """Insert the new rows, record the conflicting ones: (new, conflicts).
+
+        The rows go to PostgreSQL as one JSON parameter and are unpacked there (json_array_elements: the
+        server's own parser, no per-row Python work); only a batch holding rows already stored is staged
+        in a temporary table, to compare those rows with what is stored."""
         source = body["table"]
         tg = TARGETS[source]
         table, rows = tg["table"], body["rows"]
-        if source in ("mon_block", "mon_running", "events", "readings"):
-            col = [c for c, _ in TABLES[source]].index({"mon_block": "t_start_utc", "mon_running": "t_start_utc"}
-                                                       .get(source, "t_utc"))
-            self.parts.ensure(conn, table, {r[col] for r in rows})
-        stage = self._stage(conn, table)
-        extra = {"station_uuid": su, "file_uuid": body["file_uuid"], "received_utc": now, "first_seen_utc": now}
-        head = tuple(extra[c] for c in tg["extra"])
-        bools = tg["bools"]
+        if source in TIME_COLUMN:
+            col = [c for c, _ in TABLES[source]].index(TIME_COLUMN[source])
+            days = {r[col] // 86400.0 for r in rows}                # a partition is a month: one time per day is enough
+            self.parts.ensure(conn, table, {d * 86400.0 for d in days})
         cols = ", ".join(tg["cols"])
-        with conn.cursor().copy(f"COPY {stage} ({cols}) FROM STDIN") as cp:
-            if bools:
-                for r in rows:
-                    r = list(r)
-                    for b in bools:
-                        r[b] = bool(r[b])
-                    cp.write_row((*head, *r))
-            else:
-                for r in rows:
-                    cp.write_row((*head, *r))
-        new = conn.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM {stage} ON CONFLICT DO NOTHING").rowcount
+        exprs = ", ".join([_PARAM[c] for c in tg["extra"]]
+                          + [_CAST[k[0]].format(i=i) for i, (_, k) in enumerate(TABLES[source])])
+        extra = {"station_uuid": su, "file_uuid": body["file_uuid"], "received_utc": now, "first_seen_utc": now}
+        raw = body.get("_raw")
+        if raw is not None:       # the body's own text: PostgreSQL takes "rows" from it, nothing re-encoded
+            args = (*(extra[c] for c in tg["extra"]), raw)
+            select = f"SELECT {exprs} FROM jsonb_array_elements((%s::jsonb)->'rows') AS e"
+        else:
+            args = (*(extra[c] for c in tg["extra"]), json.dumps(rows, separators=(",", ":")))
+            select = f"SELECT {exprs} FROM jsonb_array_elements(%s::jsonb) AS e"
+        new = conn.execute(f"INSERT INTO {table} ({cols}) {select} ON CONFLICT DO NOTHING", args).rowcount
         if source == "mon_block":
-            conn.execute("INSERT INTO bands SELECT station_uuid, meter, band, min(t_start_utc), max(t_start_utc) "
-                         f"FROM {stage} GROUP BY 1, 2, 3 ON CONFLICT (station_uuid, meter, band) DO UPDATE SET "
-                         "first_t_utc = least(bands.first_t_utc, EXCLUDED.first_t_utc), "
-                         "last_t_utc = greatest(bands.last_t_utc, EXCLUDED.last_t_utc)")
+            spans: dict = {}
+            for r in rows:
+                k = (r[0], r[1])
+                lo, hi = spans.get(k, (r[2], r[2]))
+                spans[k] = (min(lo, r[2]), max(hi, r[2]))
+            with conn.cursor() as cur:
+                cur.executemany("INSERT INTO bands VALUES (%s, %s, %s, %s, %s) ON CONFLICT (station_uuid, meter, band) "
+                                "DO UPDATE SET first_t_utc = least(bands.first_t_utc, EXCLUDED.first_t_utc), "
+                                "last_t_utc = greatest(bands.last_t_utc, EXCLUDED.last_t_utc)",
+                                [(su, m, b, lo, hi) for (m, b), (lo, hi) in spans.items()])
         conflicts = 0
         if new < len(rows):
+            stage = self._stage(conn, table)
+            conn.execute(f"INSERT INTO {stage} ({cols}) {select}", args)
             on = " AND ".join(f"s.{k} = t.{k}" for k in tg["key"])
             cmp_s = ", ".join(f"s.{c}" for c in tg["compare"])
             cmp_t = ", ".join(f"t.{c}" for c in tg["compare"])
