@@ -333,3 +333,19 @@ def test_a_station_never_loads_the_central_libraries():
             "print(sorted(m for m in ('psycopg', 'starlette', 'uvicorn') if m in sys.modules))")
     p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)
     assert p.returncode == 0 and p.stdout.strip() == "[]", p.stdout + p.stderr
+
+
+@pytest.mark.parametrize("args, config, words", [
+    (["central", "migrate"], None, "no such central configuration file"),
+    (["central", "serve"], 'format = "meterlink-central/1"\n[database]\ndsn = "host=127.0.0.1 port=1 '
+     'dbname=x user=x connect_timeout=2"\n', "cannot connect to the central database"),
+    (["central", "tokens"], 'format = "meterlink-central/2"\n', "format: expected"),
+])
+def test_central_commands_refuse_bad_input_in_one_line(tmp_path, args, config, words):
+    cfg = tmp_path / "central.toml"
+    if config is not None:
+        cfg.write_text(config)
+    p = subprocess.run([sys.executable, "-m", "meterlink", *args, "--config", str(cfg)], capture_output=True,
+                       text=True, cwd=ROOT, timeout=60)
+    assert p.returncode == 2 and words in p.stderr and "Traceback" not in p.stderr, p.stderr
+    assert len(p.stderr.strip().splitlines()) == 1, p.stderr

@@ -67,9 +67,12 @@ def create_app(cfg: CentralConfig):
         except Refused as exc:       # body not decodable: no database needed to say so
             log.warning("refused %d from %s: %s", exc.status, peer, exc.reason)
             return refuse(exc.status, exc.reason)
-        except (psycopg.Error, CentralError) as exc:
+        except (psycopg.OperationalError, CentralError) as exc:
             log.error("central database unavailable: %s", _line(exc))
             return refuse(503, f"central database unavailable: {_line(exc)}")
+        except psycopg.Error as exc:          # not the station's fault: it keeps the rows and tries again
+            log.error("central store error on a batch from %s: %s", peer, _line(exc))
+            return refuse(500, f"central store error: {_line(exc)}")
 
     async def batches(request):
         size = request.headers.get("content-length")

@@ -81,14 +81,12 @@ class Ingest:
 
     def __init__(self):
         self.parts = Partitions()
-        self._staged: dict[int, set] = {}
 
-    def _stage(self, conn, table: str) -> str:
+    @staticmethod
+    def _stage(conn, table: str) -> str:
+        """A temporary staging table like ``table`` on this connection (emptied at each commit)."""
         name = f"stage_{table}"
-        made = self._staged.setdefault(id(conn), set())
-        if name not in made:
-            conn.execute(f"CREATE TEMP TABLE IF NOT EXISTS {name} (LIKE {table}) ON COMMIT DELETE ROWS")
-            made.add(name)
+        conn.execute(f"CREATE TEMP TABLE IF NOT EXISTS {name} (LIKE {table}) ON COMMIT DELETE ROWS")
         return name
 
     def apply(self, conn, station_uuid: str, body: dict) -> dict:
@@ -101,8 +99,6 @@ class Ingest:
                 ack = self._apply(conn, station_uuid, body, now)
         except BaseException:
             self.parts.forget()
-            if conn.closed:
-                self._staged.pop(id(conn), None)
             raise
         return ack
 
