@@ -51,12 +51,12 @@ def create_app(cfg: CentralConfig):
             body, text = _decode(raw, encoding, cfg.max_body_bytes)
             with pool.connection() as conn:
                 try:
-                    station = authenticate(conn, auth)
+                    station, token_id = authenticate(conn, auth)
                     body = check_or_refuse(body)
                     body["_raw"] = text           # the rows are unpacked from this text by PostgreSQL
                     ing = ingests.pop() if ingests else Ingest()
                     try:
-                        ack = ing.apply(conn, station, body)
+                        ack = ing.apply(conn, station, body, token_id)
                     finally:
                         ingests.append(ing)
                 except Refused as exc:

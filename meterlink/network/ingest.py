@@ -61,8 +61,8 @@ def new_token() -> str:
     return "mlt_" + secrets.token_urlsafe(32)
 
 
-def authenticate(conn, authorization: str | None) -> str:
-    """The station UUID a bearer token belongs to; Refused 401 (missing, unknown) or 403 (revoked)."""
+def authenticate(conn, authorization: str | None) -> tuple[str, int]:
+    """(station UUID, token id) of a bearer token; Refused 401 (missing, unknown) or 403 (revoked)."""
     if not authorization or not authorization.startswith("Bearer "):
         raise Refused(401, "no bearer token (Authorization: Bearer ...)")
     token = authorization[7:].strip()
@@ -72,8 +72,7 @@ def authenticate(conn, authorization: str | None) -> str:
         raise Refused(401, "unknown token")
     if row[2] is not None:
         raise Refused(403, f"token {row[0]} was revoked")
-    conn.execute("UPDATE tokens SET last_used_utc = %s WHERE token_id = %s", (time.time(), row[0]))
-    return str(row[1])
+    return str(row[1]), int(row[0])
 
 
 class Ingest:
@@ -89,7 +88,7 @@ class Ingest:
         conn.execute(f"CREATE TEMP TABLE IF NOT EXISTS {name} (LIKE {table}) ON COMMIT DELETE ROWS")
         return name
 
-    def apply(self, conn, station_uuid: str, body: dict) -> dict:
+    def apply(self, conn, station_uuid: str, body: dict, token_id: int | None = None) -> dict:
         """Store one checked batch for the authenticated station; the acknowledgement, or Refused."""
         if body["station_uuid"] != station_uuid:
             raise Refused(403, f"token belongs to station {station_uuid}, batch names {body['station_uuid']}")
@@ -97,6 +96,8 @@ class Ingest:
         try:
             with conn.transaction():
                 ack = self._apply(conn, station_uuid, body, now)
+                if token_id is not None:      # in the batch's transaction: no commit of its own
+                    conn.execute("UPDATE tokens SET last_used_utc = %s WHERE token_id = %s", (now, token_id))
         except BaseException:
             self.parts.forget()
             raise
