@@ -110,7 +110,7 @@ class Client:
         self.s = settings
 
     def post(self, body: dict) -> dict:
-        data = gzip.compress(json.dumps(body, separators=(",", ":"), allow_nan=False).encode(), 3)
+        data = gzip.compress(json.dumps(body, separators=(",", ":"), allow_nan=False).encode(), 1)
         req = urllib.request.Request(self.s.url + "/api/v1/batches", data=data, method="POST", headers={
             "Content-Type": "application/json", "Content-Encoding": "gzip",
             "Authorization": f"Bearer {self.s.token}"})

@@ -665,7 +665,6 @@ class Monitor:
     # -- main loop -----------------------------------------------------------------------------
     def run(self) -> None:
         """Acquire until stop(); commits at most commit_s apart; always leaves a consistent database."""
-        self._sync = syncd.start_for(self.st, self.log)     # [central]: sync in the background (docs/network.md)
         for ms in self.meters:
             # while the file cannot be written, up to max_keep readings per meter wait in memory (about
             # 0.1 GB; 2.3 days at one reading a second); beyond, the oldest go, each drop an event
@@ -677,6 +676,7 @@ class Monitor:
             ms.link.start(require_open=False)
         next_commit = time.monotonic() + self.commit_s
         self.notify.ready(f"monitoring {self.st.name}: {len(self.meters)} meter(s)")
+        self._sync = syncd.start_for(self.st, self.log)     # [central]: sync in the background (docs/network.md)
         try:
             more = False
             while not self._stop.is_set():
