@@ -183,6 +183,19 @@ def test_bad_bodies_are_refused_with_a_reason_and_store_nothing(central, tmp_pat
     code, ans = post(url, {**good, "batch_no": 5}, token)           # the last batch again: a re-send, harmless
     assert code == 200 and ans["resent"] and ans["duplicate"] == 1
     assert count(dsn, "SELECT count(*) FROM events WHERE station_uuid=%s", (su,)) == 1
+    # a file restored from a backup numbers its batches from an older point: refused until an operator
+    # resets the file (meterlink central file-reset), then its rows are recognised by their keys
+    import subprocess
+    import sys
+
+    p = subprocess.run([sys.executable, "-m", "meterlink", "central", "file-reset", fid, "--config",
+                        str(central["cfg"])], capture_output=True, text=True, timeout=60)
+    assert p.returncode == 0 and "it had reached 5" in p.stdout, p.stdout + p.stderr
+    code, ans = post(url, {**good, "batch_no": 2}, token)
+    assert code == 200 and ans["duplicate"] == 1 and ans["new"] == 0
+    p = subprocess.run([sys.executable, "-m", "meterlink", "central", "file-reset", "nope", "--config",
+                        str(central["cfg"])], capture_output=True, text=True, timeout=60)
+    assert p.returncode == 2 and "expected a UUID" in p.stderr and "Traceback" not in p.stderr
 
 
 def test_link_cut_after_the_store_acted_then_resend(central, tmp_path):

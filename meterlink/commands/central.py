@@ -11,6 +11,8 @@ def add_arguments(parser) -> None:
                        ("token-create", "create a bearer token for a station (shown once, stored hashed)"),
                        ("token-revoke", "revoke a token by its id"),
                        ("tokens", "list tokens (never their value)"),
+                       ("file-reset", "accept a station file's batch numbers from 1 again (a file restored "
+                                      "from a backup)"),
                        ("stations", "list stations with their newest 6-minute block")):
         p = sub.add_parser(name, help=text, description=text)
         p.add_argument("--config", required=True, metavar="CENTRAL.toml", help="central configuration file "
@@ -23,6 +25,8 @@ def add_arguments(parser) -> None:
             p.add_argument("--out", metavar="FILE", help="write the token to FILE (mode 0600) instead of printing it")
         if name == "token-revoke":
             p.add_argument("token_id", type=int, help="the token's id (see 'tokens')")
+        if name == "file-reset":
+            p.add_argument("file_uuid", help="the file's UUID (meta.file_uuid in the station database)")
         if name in ("tokens", "stations"):
             p.add_argument("--json", action="store_true", help="print JSON")
 
@@ -65,6 +69,9 @@ def run(args) -> int:
         elif args.action == "token-revoke":
             central.revoke_token(conn, args.token_id)
             print(f"token {args.token_id} revoked")
+        elif args.action == "file-reset":
+            last = central.reset_file(conn, args.file_uuid)
+            print(f"file {args.file_uuid}: batch numbers accepted from 1 again (it had reached {last})")
         elif args.action == "tokens":
             rows = central.list_tokens(conn)
             if args.json:

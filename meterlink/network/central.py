@@ -165,6 +165,22 @@ def revoke_token(conn, token_id: int) -> None:
         raise CentralError(f"no token with id {token_id}")
 
 
+def reset_file(conn, file_uuid: str) -> int:
+    """Accept a station file's batch numbers from 1 again (a file restored from a backup sends numbers
+    already used: refused as replays until this). Rows sent again are recognised by their keys as
+    before. Returns the batch number the file had reached."""
+    try:
+        fid = str(uuid.UUID(file_uuid))
+    except ValueError:
+        raise CentralError(f"file {file_uuid!r}: expected a UUID (meta.file_uuid of the station file)") from None
+    with conn.transaction():
+        row = conn.execute("SELECT last_batch_no FROM station_files WHERE file_uuid = %s FOR UPDATE", (fid,)).fetchone()
+        if row is None:
+            raise CentralError(f"no station file {fid} has sent anything")
+        conn.execute("UPDATE station_files SET last_batch_no = 0 WHERE file_uuid = %s", (fid,))
+    return int(row[0])
+
+
 def list_tokens(conn) -> list[dict]:
     cur = conn.execute("SELECT t.token_id, s.name, t.station_uuid::text, t.label, t.created_utc, t.revoked_utc, "
                        "t.last_used_utc FROM tokens t JOIN stations s USING (station_uuid) ORDER BY t.token_id")
