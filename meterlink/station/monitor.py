@@ -24,6 +24,7 @@ import numpy as np
 from meterlink.physics import calibrate
 
 from meterlink.station import derived, retention
+from meterlink.network import syncd
 from meterlink.station.alarms import AlarmEvent, AlarmMachine, command_call, percent_rules_instantaneous, rule_value
 from meterlink.physics.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.station.hooks import STOP_WAIT_S, HookRunner
@@ -675,6 +676,7 @@ class Monitor:
             ms.link.start(require_open=False)
         next_commit = time.monotonic() + self.commit_s
         self.notify.ready(f"monitoring {self.st.name}: {len(self.meters)} meter(s)")
+        self._sync = syncd.start_for(self.st, self.log)     # [central]: sync in the background (docs/network.md)
         try:
             more = False
             while not self._stop.is_set():
@@ -706,6 +708,7 @@ class Monitor:
             self._hook_outcomes(self.hooks.shutdown(STOP_WAIT_S))
             self._event(None, "monitor_stopped", "info", f"monitor of {self.st.name} stopped cleanly")
             self._final_commit()
+            syncd.stop(self._sync)
             self.store.close()
             self._lock.release()
             self.notify.close()

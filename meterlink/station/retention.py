@@ -12,6 +12,7 @@ them with its commits and acquisition never waits long.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from meterlink.station import derived
@@ -64,13 +65,24 @@ def plan(conn, retention, station_id: int, meters, now_utc: float, longest_windo
     for name, sid, interval_s in meters:
         end = derived.last_final_block_end(conn, station_id, name)
         if end is not None:     # raw readings only once the derived series covers them
-            tasks.append(Task("readings", min(raw_cut, end - longest_window_s - 3.0 * interval_s), name, (sid,)))
+            tasks.append(Task("readings", min(raw_cut, end - longest_window_s - 3.0 * interval_s, unsent_from(conn, sid)),
+                              name, (sid,)))
         tasks.append(Task("status", now_utc - retention.status_days * DAY_S, name, (sid,)))
     tasks.append(Task("events", now_utc - retention.events_days * DAY_S,
                       session_ids=(*(sid for _, sid, _ in meters), None)))
     if retention.derived_days > 0:
         tasks.append(Task("derived", now_utc - retention.derived_days * DAY_S, station_id=station_id))
     return tasks
+
+
+def unsent_from(conn, session_id: int) -> float:
+    """Time of the session's oldest raw reading a central store has not acknowledged yet (docs/network.md);
+    inf where raw readings are not sent or all were acknowledged. Retention never deletes past it."""
+    row = conn.execute("SELECT acked FROM sync_cursor WHERE tbl = 'readings'").fetchone()
+    if row is None:
+        return math.inf
+    t = conn.execute("SELECT min(t_utc) FROM readings WHERE id > ? AND session_id = ?", (row[0], session_id)).fetchone()[0]
+    return math.inf if t is None else t
 
 
 def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) -> int:

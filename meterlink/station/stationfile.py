@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError
+from meterlink.network.syncd import settings_from_table
 from meterlink.physics.units import parse_frequency_hz
 
 FORMAT = "meterlink-station/1"
@@ -108,6 +109,7 @@ class Station:
     alarms: tuple[AlarmRule, ...] = ()
     health: HealthRules = field(default_factory=HealthRules)
     retention: Retention = field(default_factory=Retention)
+    central: dict | None = None      # [central]: url, token_file, station_uuid (checked by meterlink.network.syncd)
 
     def meter(self, name: str) -> MeterConfig:
         """The meter called ``name``."""
@@ -350,12 +352,15 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
         r.fail("derived_days", f"must be 0 (keep for ever) or at least raw_days ({raw_days:g}), "
                f"got {retention.derived_days:g}")
     r.done()
+    central = top.get("central", "table", None)
+    if central is not None:                      # checked now: a monitor never starts with unusable sync settings
+        settings_from_table(central, src, base)
     top.done()
     return Station(path=path, name=name, latitude_deg=lat, longitude_deg=lon, elevation_m=elev,
                    database=db if db.is_absolute() else base / db, standard=standard, tier=tier,
                    freq_hz=freq, band_hz=band, convention=conv, windows_s=windows, block_s=block_s,
                    min_coverage=min_cov, timezone=tz, heartbeat_s=heartbeat, meters=meters,
-                   alarms=alarms, health=health, retention=retention)
+                   alarms=alarms, health=health, retention=retention, central=central)
 
 
 def load_station(path) -> Station:

@@ -13,8 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 4
-
+SCHEMA_VERSION = 5
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
     db["meta"].create({"key": str, "value": str}, pk="key")
@@ -71,7 +70,6 @@ def _schema_v1(db: sqlite_utils.Database) -> None:
                                  foreign_keys=[("spectrum_line_id", "spectrum_lines", "id"),
                                                ("calibration_id", "calibrations", "id")])
 
-
 def _schema_v2_survey(db: sqlite_utils.Database) -> None:
     """Walk-around survey tables (docs/schema.md, "Survey tables"; written by meterlink.survey.store)."""
     db["survey"].create({"session_id": int, "title": str, "site_json": str, "standard": str, "tier": str,
@@ -115,12 +113,10 @@ def _schema_v2_survey(db: sqlite_utils.Database) -> None:
                               foreign_keys=[("session_id", "survey", "session_id")])
     db["survey_trace"].create_index(["session_id", "t_utc"])
 
-
 # version -> function bringing the schema from version-1 up to it; applied in order, in one transaction each
 def _schema_v3_spans(db: sqlite_utils.Database) -> None:
     """Readings lose their per-row indexes to the span index (meterlink/storage/spans.py)."""
     spans.create(db.conn)
-
 
 def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
     """Epochs: one per connection to a device, so that a meter reusing a boot count (a reflash, a
@@ -138,8 +134,20 @@ def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
     db.execute("DROP INDEX IF EXISTS idx_spectra_session_id_boot_seq")
     db.execute("CREATE UNIQUE INDEX spectra_key ON spectra (session_id, boot, epoch, seq)")
 
+def _schema_v5_sync(db: sqlite_utils.Database) -> None:
+    """Store-and-forward to a central store (docs/network.md): the file's own UUID, the outbox log and
+    one cursor per table. The log is filled by triggers that meterlink.network.outbox adds only once a
+    station is set to sync; a file that never syncs keeps two empty tables."""
+    import uuid
+
+    db["meta"].upsert({"key": "file_uuid", "value": str(uuid.uuid4())}, pk="key")
+    db.execute("CREATE TABLE sync_log (seq INTEGER PRIMARY KEY AUTOINCREMENT, tbl TEXT NOT NULL, rid INTEGER NOT NULL)")
+    db.execute("CREATE INDEX sync_log_tbl ON sync_log (tbl, seq)")
+    db.execute("CREATE TABLE sync_cursor (tbl TEXT PRIMARY KEY, acked INTEGER NOT NULL DEFAULT 0, "
+               "acked_utc REAL, rows_acked INTEGER NOT NULL DEFAULT 0)")
 
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
-                                                                   3: _schema_v3_spans, 4: _schema_v4_epochs}
+                                                                   3: _schema_v3_spans, 4: _schema_v4_epochs,
+                                                                   5: _schema_v5_sync}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}
