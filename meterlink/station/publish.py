@@ -13,10 +13,10 @@ import io
 import json
 import math
 import re
+from json.encoder import encode_basestring_ascii as _encode_str
 
 import numpy as np
 
-from meterlink.station import derived
 from meterlink.errors import MeterlinkError
 from meterlink.safetext import clean_text, clean_tree, csv_cell
 from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
@@ -107,6 +107,12 @@ def _reference(st: dict, m: dict) -> Reference:
     return Reference(st["standard"], st["tier"], m["e_ref_v_per_m"], m["s_ref_w_per_m2"], st["convention"] or "power")
 
 
+def _columns(conn, sql: str, params, ncols: int) -> np.ndarray:
+    """Rows of a numeric query as an (n, ncols) float array (NULL becomes NaN), without per-row dicts."""
+    rows = conn.execute(sql, params).fetchall()
+    return np.array(rows, dtype=float).reshape(len(rows), ncols)
+
+
 def statistics(conn, t0: float, t1: float, periods=("day", "week", "month")) -> dict:
     """Per-meter period statistics and profiles between t0 and t1 (UTC seconds)."""
     st, meters = station_info(conn)
@@ -115,18 +121,21 @@ def statistics(conn, t0: float, t1: float, periods=("day", "week", "month")) -> 
            "block_s": st["block_s"], "timezone": st["timezone"] or "UTC", "meters": []}
     for m in meters:
         ref = _reference(st, m)
-        b = derived.blocks(conn, st["id"], m["meter"], "total", t0, t1)
-        t = np.array([r["t_start_utc"] for r in b], dtype=float)
-        e = np.array([np.nan if r["e_rms_v_per_m"] is None else r["e_rms_v_per_m"] for r in b], dtype=float)
-        cov = np.array([r["covered_s"] for r in b], dtype=float)
-        ok = np.array([bool(r["complete"]) for r in b], dtype=bool)
+        key = (st["id"], m["meter"], "total", t0, t1)
+        b = _columns(conn, "SELECT t_start_utc, e_rms_v_per_m, covered_s, complete, n_overrange FROM mon_block "
+                     "WHERE station_id=? AND meter=? AND band=? AND t_start_utc >= ? AND t_start_utc < ? "
+                     "ORDER BY t_start_utc", key, 5)
+        t, e, cov = b[:, 0], b[:, 1], b[:, 2]
+        ok = b[:, 3] != 0
+        r = _columns(conn, "SELECT window_s, t_start_utc, e_max_v_per_m FROM mon_running WHERE station_id=? "
+                     "AND meter=? AND band=? AND t_start_utc >= ? AND t_start_utc < ? ORDER BY window_s, t_start_utc",
+                     key, 3)
         run = {}
-        for r in derived.running(conn, st["id"], m["meter"], "total", t0, t1):
-            run.setdefault(r["window_s"], ([], []))
-            run[r["window_s"]][0].append(r["t_start_utc"])
-            run[r["window_s"]][1].append(np.nan if r["e_max_v_per_m"] is None else r["e_max_v_per_m"])
+        if len(r):       # one (block times, largest values) pair per window, split where window_s changes
+            for part in np.split(r, np.flatnonzero(r[1:, 0] != r[:-1, 0]) + 1):
+                run[float(part[0, 0])] = (part[:, 1], part[:, 2])
         entry = {"meter": m["meter"], "e_ref_v_per_m": ref.e_ref_v_per_m, "s_ref_w_per_m2": ref.s_ref_w_per_m2,
-                 "label": ref.label(), "n_overrange_blocks": sum(1 for r in b if r["n_overrange"])}
+                 "label": ref.label(), "n_overrange_blocks": int(np.count_nonzero(b[:, 4]))}
         for p in periods:
             entry[p] = period_stats(ref, t, e, cov, ok, t0, t1, p, out["timezone"], run)
         entry.update(profiles(ref, t, e, ok, out["timezone"]))
@@ -134,21 +143,47 @@ def statistics(conn, t0: float, t1: float, periods=("day", "week", "month")) -> 
     return clean_tree(out)
 
 
-def series_rows(conn, t0: float, t1: float) -> tuple[dict, list[dict]]:
-    """The 6-minute series of every meter for publication."""
-    st, meters = station_info(conn)
-    rows = []
+SERIES_COLUMNS = ["meter", "start_utc", "end_utc", "e_rms_v_per_m", "percent_of_reference", "coverage", "complete",
+                  "overrange_lower_bound"]
+
+
+def iter_series(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
+    """The 6-minute series of every meter for publication, one row dict at a time (streams from the
+    database: a year of blocks is never held as one list)."""
+    if st is None or meters is None:
+        st, meters = station_info(conn)
     for m in meters:
         ref = _reference(st, m)
-        for r in derived.blocks(conn, st["id"], m["meter"], "total", t0, t1):
-            e = r["e_rms_v_per_m"]
-            rows.append({"meter": m["meter"], "start_utc": iso(r["t_start_utc"]),
-                         "end_utc": iso(r["t_start_utc"] + r["block_s"]),
-                         "e_rms_v_per_m": None if e is None else round(e, 6),
-                         "percent_of_reference": None if e is None else round(float(ref.pct(e)), 4),
-                         "coverage": round(min(r["covered_s"] / r["block_s"], 1.0), 4),
-                         "complete": bool(r["complete"]), "overrange_lower_bound": bool(r["n_overrange"])})
-    return st, rows
+        pct = _pct_function(ref)
+        cur = conn.execute("SELECT t_start_utc, block_s, e_rms_v_per_m, covered_s, complete, n_overrange FROM "
+                           "mon_block WHERE station_id=? AND band='total' AND meter=? AND t_start_utc >= ? AND "
+                           "t_start_utc < ? ORDER BY t_start_utc", (st["id"], m["meter"], t0, t1))
+        meter = m["meter"]
+        while True:
+            chunk = cur.fetchmany(4096)
+            if not chunk:
+                break
+            for ts, bs, e, covered, complete, nover in chunk:
+                yield {"meter": meter, "start_utc": iso(ts), "end_utc": iso(ts + bs),
+                       "e_rms_v_per_m": None if e is None else round(e, 6),
+                       "percent_of_reference": None if e is None else round(pct(e), 4),
+                       "coverage": round(min(covered / bs, 1.0), 4),
+                       "complete": bool(complete), "overrange_lower_bound": bool(nover)}
+
+
+def _pct_function(ref: Reference):
+    """ref.pct for one Python float, with the same arithmetic (and so the same result) without numpy."""
+    if ref.convention == "field":
+        e_ref = ref.e_ref_v_per_m
+        return lambda e: 100.0 * e / e_ref
+    s_ref = ref.s_ref_w_per_m2
+    return lambda e: 100.0 * (e * e / Z0_OHM) / s_ref
+
+
+def series_rows(conn, t0: float, t1: float) -> tuple[dict, list[dict]]:
+    """The 6-minute series of every meter for publication (as a list; exports use iter_series)."""
+    st, meters = station_info(conn)
+    return st, list(iter_series(conn, t0, t1, st, meters))
 
 
 def header_lines(st: dict, safety: str) -> list[str]:
@@ -171,6 +206,43 @@ def to_csv(st: dict, rows: list[dict], safety: str) -> str:
     w.writeheader()
     w.writerows({k: csv_cell(v) for k, v in r.items()} for r in rows)
     return buf.getvalue()
+
+
+def write_csv(out, st: dict, rows, safety: str) -> None:
+    """Write the series as :func:`to_csv` does, row by row to the text stream ``out``."""
+    for line in header_lines(st, safety):
+        out.write(f"# {clean_text(line)}\n")
+    w = csv.writer(out, lineterminator="\n")
+    w.writerow(SERIES_COLUMNS)
+    for r in rows:
+        w.writerow([csv_cell(r[k]) for k in SERIES_COLUMNS])
+
+
+def _json_scalar(x) -> str:
+    """One JSON value as json.dumps writes it (non-finite floats as null, as to_json)."""
+    if x is None or x is True or x is False:
+        return "null" if x is None else ("true" if x else "false")
+    if isinstance(x, float):
+        return float.__repr__(x) if math.isfinite(x) else "null"
+    if isinstance(x, str):
+        return _encode_str(x)
+    return json.dumps(x)
+
+
+def write_json(out, doc: dict, list_key: str, rows) -> None:
+    """Write ``doc`` with ``doc[list_key] = list(rows)`` exactly as :func:`to_json` would, streaming the
+    rows (flat dicts of scalars) one at a time instead of building the list."""
+    head = to_json({**doc, list_key: []})
+    empty = f'\n  {json.dumps(list_key)}: []\n}}'
+    if not head.endswith(empty):
+        raise ValueError(f"{list_key!r} must be the last key of the document")
+    out.write(head[:-len(empty)] + f"\n  {json.dumps(list_key)}: [")
+    first = True
+    for r in rows:
+        body = ",\n".join(f"      {_encode_str(k)}: {_json_scalar(v)}" for k, v in r.items())
+        out.write(("\n" if first else ",\n") + "    {\n" + body + "\n    }")
+        first = False
+    out.write("]\n}" if first else "\n  ]\n}")
 
 
 def to_json(doc) -> str:
