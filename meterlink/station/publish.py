@@ -7,6 +7,7 @@ safety cautions. Reads only the monitoring tables of meterlink.station.derived a
 
 from __future__ import annotations
 
+import bisect
 import csv
 import datetime as _dt
 import io
@@ -19,7 +20,7 @@ import numpy as np
 
 from meterlink.errors import MeterlinkError
 from meterlink.safetext import clean_text, clean_tree, csv_cell
-from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
+from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_bounds, period_stats, profiles
 from meterlink.physics.units import Z0_OHM
 
 
@@ -122,25 +123,66 @@ def statistics(conn, t0: float, t1: float, periods=("day", "week", "month")) -> 
     for m in meters:
         ref = _reference(st, m)
         key = (st["id"], m["meter"], "total", t0, t1)
-        b = _columns(conn, "SELECT t_start_utc, e_rms_v_per_m, covered_s, complete, n_overrange FROM mon_block "
-                     "WHERE station_id=? AND meter=? AND band=? AND t_start_utc >= ? AND t_start_utc < ? "
-                     "ORDER BY t_start_utc", key, 5)
+        span = "station_id=? AND meter=? AND band=? AND t_start_utc >= ? AND t_start_utc < ?"
+        # the value only where the block is complete (NaN otherwise): complete & finite is all the statistics need
+        b = _columns(conn, f"SELECT t_start_utc, CASE WHEN complete THEN e_rms_v_per_m END, covered_s FROM mon_block "
+                     f"WHERE {span} ORDER BY t_start_utc", key, 3)
         t, e, cov = b[:, 0], b[:, 1], b[:, 2]
-        ok = b[:, 3] != 0
-        r = _columns(conn, "SELECT window_s, t_start_utc, e_max_v_per_m FROM mon_running WHERE station_id=? "
-                     "AND meter=? AND band=? AND t_start_utc >= ? AND t_start_utc < ? ORDER BY window_s, t_start_utc",
-                     key, 3)
-        run = {}
-        if len(r):       # one (block times, largest values) pair per window, split where window_s changes
-            for part in np.split(r, np.flatnonzero(r[1:, 0] != r[:-1, 0]) + 1):
-                run[float(part[0, 0])] = (part[:, 1], part[:, 2])
+        ok = np.isfinite(e)
+        n_over = conn.execute(f"SELECT count(*) FROM mon_block WHERE {span} AND n_overrange", key).fetchone()[0]
+        windows = [w for w in _windows(conn, key[:3])
+                   if conn.execute(f"SELECT 1 FROM mon_running WHERE {span} AND window_s=? LIMIT 1", (*key, w)).fetchone()]
         entry = {"meter": m["meter"], "e_ref_v_per_m": ref.e_ref_v_per_m, "s_ref_w_per_m2": ref.s_ref_w_per_m2,
-                 "label": ref.label(), "n_overrange_blocks": int(np.count_nonzero(b[:, 4]))}
+                 "label": ref.label(), "n_overrange_blocks": n_over}
+        days = period_bounds(t0, t1, "day", out["timezone"])
+        day_max = {w: _running_max(conn, key[:3], w, days) for w in windows}
         for p in periods:
-            entry[p] = period_stats(ref, t, e, cov, ok, t0, t1, p, out["timezone"], run)
+            bounds = days if p == "day" else period_bounds(t0, t1, p, out["timezone"])
+            run = {w: v if p == "day" else _max_of_days(days, v, bounds) for w, v in day_max.items()}
+            entry[p] = period_stats(ref, t, e, cov, ok, t0, t1, p, out["timezone"], running_max=run)
         entry.update(profiles(ref, t, e, ok, out["timezone"]))
         out["meters"].append(entry)
     return clean_tree(out)
+
+
+_FINITE = "e_max_v_per_m BETWEEN -1.7976931348623157e308 AND 1.7976931348623157e308"   # not NULL or +-inf
+
+
+def _windows(conn, key: tuple) -> list[float]:
+    """The running-average windows stored for (station, meter, band), by index seeks (a skip scan)."""
+    out: list[float] = []
+    while True:
+        (w,) = conn.execute("SELECT min(window_s) FROM mon_running WHERE station_id=? AND meter=? AND band=? AND "
+                            "window_s > ?", (*key, out[-1] if out else -math.inf)).fetchone()
+        if w is None:
+            return out
+        out.append(w)
+
+
+def _running_max(conn, key: tuple, window_s: float, bounds) -> list:
+    """The largest finite running average of one window in each period [start, end) of ``bounds``: an SQL
+    max over the primary-key range of each period (exact, as a max is), 200 periods per statement."""
+    out = []
+    for i in range(0, len(bounds), 200):
+        part = bounds[i:i + 200]
+        values = ",".join("(?,?,?)" for _ in part)
+        sql = (f"WITH p(k, a, b) AS (VALUES {values}) SELECT (SELECT max(e_max_v_per_m) FROM mon_running WHERE "
+               f"station_id=? AND meter=? AND band=? AND window_s=? AND t_start_utc >= p.a AND t_start_utc < p.b "
+               f"AND {_FINITE}) FROM p ORDER BY p.k")
+        params = [x for k, (_, a, b) in enumerate(part) for x in (k, a, b)] + [*key, window_s]
+        out.extend(v for (v,) in conn.execute(sql, params))
+    return out
+
+
+def _max_of_days(days, day_max: list, bounds) -> list:
+    """Per-period maxima from per-day ones: a local week or month is a run of whole local days (both clipped
+    to the same span), so its largest value is the largest of its days' (None where all are None)."""
+    starts = [a for _, a, _ in days]
+    out = []
+    for _, a, b in bounds:
+        vals = [v for v in day_max[bisect.bisect_left(starts, a):bisect.bisect_left(starts, b)] if v is not None]
+        out.append(max(vals) if vals else None)
+    return out
 
 
 SERIES_COLUMNS = ["meter", "start_utc", "end_utc", "e_rms_v_per_m", "percent_of_reference", "coverage", "complete",

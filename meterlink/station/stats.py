@@ -129,10 +129,20 @@ def _sorted_by_time(t: np.ndarray, *arrays):
     return (t[order], *(a[order] for a in arrays))
 
 
+def period_bounds(t0_s: float, t1_s: float, period: str, timezone: str = "UTC") -> list[tuple[str, float, float]]:
+    """(label, start_utc, end_utc) of each day, week or month (station time zone) overlapping [t0_s, t1_s),
+    clipped to it."""
+    if period not in PERIODS:
+        raise ValueError(f"period must be one of {PERIODS}")
+    return _period_bounds(t0_s, t1_s, period, ZoneInfo(timezone))
+
+
 def period_stats(ref: Reference, t_start_s, e_rms_v_per_m, covered_s, complete, t0_s: float, t1_s: float,
-                 period: str, timezone: str = "UTC", running=None) -> list[dict]:
+                 period: str, timezone: str = "UTC", running=None, running_max=None) -> list[dict]:
     """One summary per period overlapping [t0_s, t1_s). ``running`` maps window_s -> (t_block_s, e_max)
-    arrays of the largest complete running average inside each block.
+    arrays of the largest complete running average inside each block; or ``running_max`` maps window_s
+    -> the largest of them in each period of :func:`period_bounds` (None where there is none), as a
+    database aggregate gives them.
 
     One pass: the blocks are put in time order once and each period is a slice found with
     np.searchsorted, so the work grows with the number of blocks, not blocks times periods."""
@@ -156,6 +166,7 @@ def period_stats(ref: Reference, t_start_s, e_rms_v_per_m, covered_s, complete, 
         fin = np.isfinite(emax)
         tr, emax = tr[fin], emax[fin]
         runs.append((ws, emax, np.searchsorted(tr, starts, side="left"), np.searchsorted(tr, ends, side="left")))
+    given = sorted((running_max or {}).items())
     out = []
     for k, (label, a, b) in enumerate(bounds):
         i0, i1 = int(lo[k]), int(hi[k])
@@ -166,6 +177,10 @@ def period_stats(ref: Reference, t_start_s, e_rms_v_per_m, covered_s, complete, 
         for ws, emax, r_lo, r_hi in runs:
             j0, j1 = int(r_lo[k]), int(r_hi[k])
             v = float(emax[j0:j1].max()) if j1 > j0 else None
+            row[f"running_{ws:g}s_max_e_v_per_m"] = v
+            row[f"running_{ws:g}s_max_pct"] = None if v is None else float(ref.pct(v))
+        for ws, vals in given:
+            v = None if vals[k] is None else float(vals[k])
             row[f"running_{ws:g}s_max_e_v_per_m"] = v
             row[f"running_{ws:g}s_max_pct"] = None if v is None else float(ref.pct(v))
         out.append(row)
