@@ -189,28 +189,58 @@ SERIES_COLUMNS = ["meter", "start_utc", "end_utc", "e_rms_v_per_m", "percent_of_
                   "overrange_lower_bound"]
 
 
-def iter_series(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
-    """The 6-minute series of every meter for publication, one row dict at a time (streams from the
-    database: a year of blocks is never held as one list)."""
+class _IsoTimes:
+    """iso(t) for many block times: whole seconds are put together from a cached date and a cached time of
+    day (the same text iso() gives), anything else goes through iso() itself."""
+
+    def __init__(self):
+        self.dates: dict[int, str] = {}
+        self.tods: dict[int, str] = {}
+
+    def __call__(self, t: float) -> str:
+        if not t.is_integer():
+            return iso(t)
+        s = int(t)
+        day, sec = divmod(s, 86400)
+        d = self.dates.get(day)
+        if d is None:
+            d = self.dates[day] = iso(day * 86400.0)[:10]
+        tod = self.tods.get(sec)
+        if tod is None:
+            tod = self.tods[sec] = f"T{sec // 3600:02d}:{sec // 60 % 60:02d}:{sec % 60:02d}Z"
+        return d + tod
+
+
+def series_tuples(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
+    """The 6-minute series of every meter for publication, one tuple (SERIES_COLUMNS order) at a time:
+    streamed from the database, a year of blocks is never held as one list."""
     if st is None or meters is None:
         st, meters = station_info(conn)
+    when = _IsoTimes()
     for m in meters:
-        ref = _reference(st, m)
-        pct = _pct_function(ref)
+        pct = _pct_function(_reference(st, m))
         cur = conn.execute("SELECT t_start_utc, block_s, e_rms_v_per_m, covered_s, complete, n_overrange FROM "
                            "mon_block WHERE station_id=? AND band='total' AND meter=? AND t_start_utc >= ? AND "
                            "t_start_utc < ? ORDER BY t_start_utc", (st["id"], m["meter"], t0, t1))
         meter = m["meter"]
+        end_t, end_text = None, None
         while True:
             chunk = cur.fetchmany(4096)
             if not chunk:
                 break
             for ts, bs, e, covered, complete, nover in chunk:
-                yield {"meter": meter, "start_utc": iso(ts), "end_utc": iso(ts + bs),
-                       "e_rms_v_per_m": None if e is None else round(e, 6),
-                       "percent_of_reference": None if e is None else round(pct(e), 4),
-                       "coverage": round(min(covered / bs, 1.0), 4),
-                       "complete": bool(complete), "overrange_lower_bound": bool(nover)}
+                start = end_text if ts == end_t else when(float(ts))     # back-to-back blocks: reuse the end
+                end_t = ts + bs
+                end_text = when(float(end_t))
+                yield (meter, start, end_text, None if e is None else round(e, 6),
+                       None if e is None else round(pct(e), 4), round(min(covered / bs, 1.0), 4),
+                       bool(complete), bool(nover))
+
+
+def iter_series(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
+    """The 6-minute series as row dicts (keys SERIES_COLUMNS), streamed as :func:`series_tuples`."""
+    for r in series_tuples(conn, t0, t1, st, meters):
+        yield dict(zip(SERIES_COLUMNS, r))
 
 
 def _pct_function(ref: Reference):
@@ -251,13 +281,27 @@ def to_csv(st: dict, rows: list[dict], safety: str) -> str:
 
 
 def write_csv(out, st: dict, rows, safety: str) -> None:
-    """Write the series as :func:`to_csv` does, row by row to the text stream ``out``."""
+    """Write the series as :func:`to_csv` does, row by row to the text stream ``out``. Rows are dicts (every
+    text cell passes csv_cell) or tuples as :func:`series_tuples` yields them, whose only text from outside
+    is the meter name (passed through csv_cell once per meter); the times come from iso()."""
     for line in header_lines(st, safety):
         out.write(f"# {clean_text(line)}\n")
     w = csv.writer(out, lineterminator="\n")
     w.writerow(SERIES_COLUMNS)
-    for r in rows:
-        w.writerow([csv_cell(r[k]) for k in SERIES_COLUMNS])
+    names: dict = {}
+
+    def name(v):
+        c = names.get(v)
+        if c is None:
+            c = names[v] = csv_cell(v)
+        return c
+
+    def cells(r):
+        if isinstance(r, dict):       # rows from elsewhere: every text cell made safe
+            return [csv_cell(r[k]) for k in SERIES_COLUMNS]
+        return (name(r[0]), *r[1:])   # series_tuples: times from iso(), numbers; the meter name is checked
+
+    w.writerows(map(cells, rows))
 
 
 def _json_scalar(x) -> str:
