@@ -22,8 +22,8 @@ import pytest
 
 from meterlink.physics.units import Z0_OHM
 from meterlink.station import derived
-from meterlink.station.publish import (SERIES_COLUMNS, iter_series, statistics, station_info, to_json, write_csv,
-                                       write_json)
+from meterlink.station.publish import (SERIES_COLUMNS, iter_series, series_rows, statistics, station_info, to_csv,
+                                       to_json, write_csv, write_json, write_series_csv)
 
 T0 = 1_711_000_000.0       # 2024-03-21, ten days before the spring change in Europe and Lord Howe's autumn one
 WINDOWS = (360.0, 1800.0, 86400.0)
@@ -172,12 +172,15 @@ def test_streamed_exports_equal_the_whole_document_writers(tmp_path):
     empty = io.StringIO()
     write_json(empty, doc, "series_6min", iter([]))
     assert empty.getvalue() == to_json({**doc, "series_6min": []})
-    buf = io.StringIO()
-    write_csv(buf, st, iter_series(conn, t0, t1), "c")
-    body = "".join(line for line in buf.getvalue().splitlines(keepends=True) if not line.startswith("#"))
     plain = io.StringIO()
     w = csv.DictWriter(plain, fieldnames=SERIES_COLUMNS, lineterminator="\n")
     w.writeheader()
     w.writerows(rows)
-    assert body == plain.getvalue()
+    for write in (lambda b: write_csv(b, st, iter_series(conn, t0, t1), "c"),
+                  lambda b: write_series_csv(b, conn, t0, t1, st, meters, "c")):
+        buf = io.StringIO()
+        write(buf)
+        assert buf.getvalue() == to_csv(*series_rows(conn, t0, t1), "c")
+        assert "".join(line for line in buf.getvalue().splitlines(keepends=True) if not line.startswith("#")) \
+            == plain.getvalue()
     conn.close()

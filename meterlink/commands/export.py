@@ -24,9 +24,8 @@ def run(args) -> int:
     from meterlink.commands.stats import open_station
     from meterlink.errors import MeterlinkError
     from meterlink.storage.store import describe_sqlite_error
-    from meterlink.station.publish import (export_file_name, header_lines, iter_series, series_tuples,
-                                           station_info, statistics,
-                                           write_csv, write_json)
+    from meterlink.station.publish import (export_file_name, header_lines, iter_series, station_info, statistics,
+                                           write_json, write_series_csv)
 
     conn, t0, t1 = open_station(args)
     try:
@@ -35,7 +34,7 @@ def run(args) -> int:
         def write(stream) -> None:
             """The export, streamed: rows go from the database cursor to the output one at a time."""
             if args.format == "csv":
-                write_csv(stream, st, series_tuples(conn, t0, t1, st, meters), SAFETY_LINE)
+                write_series_csv(stream, conn, t0, t1, st, meters, SAFETY_LINE)
             else:
                 doc = {"about": header_lines(st, SAFETY_LINE), "caution": SAFETY_LINE,
                        "summaries": statistics(conn, t0, t1)}

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import bisect
 import csv
+import itertools
 import datetime as _dt
 import io
 import json
@@ -189,67 +190,54 @@ SERIES_COLUMNS = ["meter", "start_utc", "end_utc", "e_rms_v_per_m", "percent_of_
                   "overrange_lower_bound"]
 
 
-class _IsoTimes:
-    """iso(t) for many block times: whole seconds are put together from a cached date and a cached time of
-    day (the same text iso() gives), anything else goes through iso() itself."""
-
-    def __init__(self):
-        self.dates: dict[int, str] = {}
-        self.tods: dict[int, str] = {}
-
-    def __call__(self, t: float) -> str:
-        if not t.is_integer():
-            return iso(t)
-        s = int(t)
-        day, sec = divmod(s, 86400)
-        d = self.dates.get(day)
-        if d is None:
-            d = self.dates[day] = iso(day * 86400.0)[:10]
-        tod = self.tods.get(sec)
-        if tod is None:
-            tod = self.tods[sec] = f"T{sec // 3600:02d}:{sec // 60 % 60:02d}:{sec % 60:02d}Z"
-        return d + tod
+_NUMPY_ISO_MAX_S = 253_402_300_800.0     # 10000-01-01: below it numpy and strftime write the same text
 
 
-def series_tuples(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
-    """The 6-minute series of every meter for publication, one tuple (SERIES_COLUMNS order) at a time:
-    streamed from the database, a year of blocks is never held as one list."""
-    if st is None or meters is None:
-        st, meters = station_info(conn)
-    when = _IsoTimes()
+def _iso_list(t: np.ndarray) -> list[str]:
+    """[iso(x) for x in t], vectorised where every time is a whole second of years 1970-9999 (the text is
+    then the same); any other time goes through iso() itself."""
+    if t.size and np.all((t >= 0) & (t < _NUMPY_ISO_MAX_S)) and np.all(t == np.floor(t)):
+        return np.datetime_as_string(t.astype(np.int64).astype("datetime64[s]"), timezone="UTC").tolist()
+    return [iso(x) for x in t.tolist()]
+
+
+def _series_chunks(conn, t0: float, t1: float, st: dict, meters: list[dict], name=lambda m: m):
+    """Iterators of series tuples (SERIES_COLUMNS order), one per chunk of 4096 blocks, built column-wise;
+    ``name`` maps the meter name for the first column (e.g. csv_cell)."""
     for m in meters:
-        pct = _pct_function(_reference(st, m))
+        ref = _reference(st, m)
         cur = conn.execute("SELECT t_start_utc, block_s, e_rms_v_per_m, covered_s, complete, n_overrange FROM "
                            "mon_block WHERE station_id=? AND band='total' AND meter=? AND t_start_utc >= ? AND "
                            "t_start_utc < ? ORDER BY t_start_utc", (st["id"], m["meter"], t0, t1))
-        meter = m["meter"]
-        end_t, end_text = None, None
+        meter = name(m["meter"])
         while True:
             chunk = cur.fetchmany(4096)
             if not chunk:
                 break
-            for ts, bs, e, covered, complete, nover in chunk:
-                start = end_text if ts == end_t else when(float(ts))     # back-to-back blocks: reuse the end
-                end_t = ts + bs
-                end_text = when(float(end_t))
-                yield (meter, start, end_text, None if e is None else round(e, 6),
-                       None if e is None else round(pct(e), 4), round(min(covered / bs, 1.0), 4),
-                       bool(complete), bool(nover))
+            ts, bs, e, covered, complete, nover = zip(*chunk)
+            tsa = np.array(ts, dtype=float)
+            bsa = np.array(bs, dtype=float)
+            ea = np.array(e, dtype=float)                      # NULL -> NaN
+            pct = ref.pct(ea).tolist()                         # the same IEEE operations as ref.pct(one value)
+            cov = np.minimum(np.array(covered, dtype=float) / bsa, 1.0).tolist()
+            yield zip(itertools.repeat(meter), _iso_list(tsa), _iso_list(tsa + bsa),
+                      [None if x is None else round(x, 6) for x in e],
+                      [None if x is None else round(p, 4) for x, p in zip(e, pct)],
+                      [1.0 if c == 1.0 else round(c, 4) for c in cov], map(bool, complete), map(bool, nover))
+
+
+def series_tuples(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
+    """The 6-minute series of every meter for publication, one tuple (SERIES_COLUMNS order) at a time:
+    streamed from the database in chunks, a year of blocks is never held as one list."""
+    if st is None or meters is None:
+        st, meters = station_info(conn)
+    return itertools.chain.from_iterable(_series_chunks(conn, t0, t1, st, meters))
 
 
 def iter_series(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
     """The 6-minute series as row dicts (keys SERIES_COLUMNS), streamed as :func:`series_tuples`."""
     for r in series_tuples(conn, t0, t1, st, meters):
         yield dict(zip(SERIES_COLUMNS, r))
-
-
-def _pct_function(ref: Reference):
-    """ref.pct for one Python float, with the same arithmetic (and so the same result) without numpy."""
-    if ref.convention == "field":
-        e_ref = ref.e_ref_v_per_m
-        return lambda e: 100.0 * e / e_ref
-    s_ref = ref.s_ref_w_per_m2
-    return lambda e: 100.0 * (e * e / Z0_OHM) / s_ref
 
 
 def series_rows(conn, t0: float, t1: float) -> tuple[dict, list[dict]]:
@@ -281,27 +269,25 @@ def to_csv(st: dict, rows: list[dict], safety: str) -> str:
 
 
 def write_csv(out, st: dict, rows, safety: str) -> None:
-    """Write the series as :func:`to_csv` does, row by row to the text stream ``out``. Rows are dicts (every
-    text cell passes csv_cell) or tuples as :func:`series_tuples` yields them, whose only text from outside
-    is the meter name (passed through csv_cell once per meter); the times come from iso()."""
+    """Write the series (row dicts) as :func:`to_csv` does, row by row to the text stream ``out``."""
+    _csv_head(out, st, safety).writerows([csv_cell(r[k]) for k in SERIES_COLUMNS] for r in rows)
+
+
+def _csv_head(out, st: dict, safety: str):
     for line in header_lines(st, safety):
         out.write(f"# {clean_text(line)}\n")
     w = csv.writer(out, lineterminator="\n")
     w.writerow(SERIES_COLUMNS)
-    names: dict = {}
+    return w
 
-    def name(v):
-        c = names.get(v)
-        if c is None:
-            c = names[v] = csv_cell(v)
-        return c
 
-    def cells(r):
-        if isinstance(r, dict):       # rows from elsewhere: every text cell made safe
-            return [csv_cell(r[k]) for k in SERIES_COLUMNS]
-        return (name(r[0]), *r[1:])   # series_tuples: times from iso(), numbers; the meter name is checked
-
-    w.writerows(map(cells, rows))
+def write_series_csv(out, conn, t0: float, t1: float, st: dict, meters: list[dict], safety: str) -> None:
+    """The series of the station between t0 and t1 as CSV (the text of to_csv), streamed from the database
+    in chunks. The meter name is the one text from outside (csv_cell, once per meter); the times come from
+    iso() or the same text vectorised, the rest are numbers."""
+    w = _csv_head(out, st, safety)
+    for chunk in _series_chunks(conn, t0, t1, st, meters, name=csv_cell):
+        w.writerows(chunk)
 
 
 def _json_scalar(x) -> str:
