@@ -111,6 +111,21 @@ def interleaved(fn, base, repeat: int) -> tuple[dict, dict]:
     return _stats(a), _stats(b)
 
 
+def rotated(fns: dict, repeat: int) -> dict:
+    """Time several callables in turn (a, b, c, a, b, c, ...) after one untimed warm-up each; returns
+    {name: timing as :func:`timed`}. Load changing during the run hits all of them alike."""
+    _untraced()
+    for f in fns.values():
+        f()
+    acc: dict = {k: [] for k in fns}
+    for _ in range(repeat):
+        for k, f in fns.items():
+            t = time.perf_counter()
+            f()
+            acc[k].append(time.perf_counter() - t)
+    return {k: _stats(v) for k, v in acc.items()}
+
+
 def timing_text(r: dict, unit: str = "auto") -> str:
     """'1.23 s (median of 5, 1.20-1.31)' or in ms below a second."""
     ms = unit == "ms" or (unit == "auto" and r["median"] < 1.0)

@@ -7,7 +7,9 @@ them. The commands run in this process through their own ``run(args)`` with outp
 Baselines: stats - SQL aggregates (count, sum of covered seconds, max, min, energy mean) grouped by
 day, week and month per meter; export CSV - select the same columns + csv.writer; export JSON -
 select the same columns + json.dump of row dicts, plus the stats baseline (the JSON holds summaries).
-Each figure is the median of several runs (spread min-max); tracemalloc is off while timing.
+Each figure is the median of several runs (spread min-max), the month, the year and the baseline taken
+in turn; every run writes a fresh file (none is deleted until the end: deletions slowed what followed on
+the test machine's disk); tracemalloc is off while timing; memory is the peak RSS of a separate run.
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import csv
+import itertools
 import json
 import math
 import sqlite3
@@ -114,37 +117,38 @@ def main(argv=None) -> list[dict]:
         build(db, np.random.default_rng(0), days)
         conn = sqlite3.connect(db)
         size_mb = db.stat().st_size / 1e6
-        dest = Path(d) / "out"
+        runs = itertools.count()
+        dest = lambda: Path(d) / f"out{next(runs)}"  # noqa: E731 - a fresh file per run: no deletion in between
         targets = [("stats", "meterlink stats --json", ours_stats, "SQL aggregates by day, week and month",
                     lambda a, b: base_stats(conn, a, b)),
                    ("export_csv", "meterlink export --format csv", ours_export("csv"), "select + csv.writer",
-                    lambda a, b: base_csv(conn, a, b, dest)),
+                    lambda a, b: base_csv(conn, a, b, dest())),
                    ("export_json", "meterlink export --format json", ours_export("json"),
-                    "select + json.dump (+ the SQL aggregates)", lambda a, b: base_json(conn, a, b, dest))]
+                    "select + json.dump (+ the SQL aggregates)", lambda a, b: base_json(conn, a, b, dest()))]
         for name, what, fn, base_what, base in targets:
-            span_t = {}
-            for label, (a, b) in (("month", month), ("year", year)):
-                # interleaved: ours, baseline, ours, ... so that drifting load hits both alike
-                ours_r, base_r = _common.interleaved(lambda: fn(db, a, b, dest), lambda: base(a, b), repeat)
-                span_t[label] = ours_r
-                if label == "year":
-                    ratio = ours_r["median"] / base_r["median"]
-                    out.append(_common.report(
-                        name, f"{what} over a year ({days} days, 2 meters, {2 * days * 240:,} blocks, "
-                        f"{size_mb:.0f} MB): {_common.timing_text(ours_r)}",
-                        f"{base_what}: {_common.timing_text(base_r)}", ratio, f"{ratio:.2f}x the baseline",
-                        "<= 1.5x the SQL baseline (a year)", ratio <= 1.5 if days >= 365 else None, args.json,
-                        peak_mb=_common.child_peak_rss_mib([sys.executable, __file__, "--memory-only", name,
-                                                            str(db), str(a), str(b)]),
-                        seconds=ours_r["median"], baseline_s=base_r["median"], runs=ours_r["runs"],
-                        baseline_runs=base_r["runs"]))
-            n_m, n_y = (month[1] - month[0]), (year[1] - year[0])
-            expo = math.log(span_t["year"]["median"] / span_t["month"]["median"]) / math.log(n_y / n_m)
+            # the month, the year and the year's baseline in turn, so that drifting load hits all alike
+            r = _common.rotated({"month": lambda: fn(db, *month, dest()), "year": lambda: fn(db, *year, dest()),
+                                 "base": lambda: base(*year)}, repeat)
+            ours_r, base_r = r["year"], r["base"]
+            ratio = ours_r["median"] / base_r["median"]
             out.append(_common.report(
-                f"{name}_scale", f"{what}: a month {_common.timing_text(span_t['month'])}, "
-                f"{'a year' if days >= 365 else f'{days} days'} {_common.timing_text(span_t['year'])}",
+                name, f"{what} over a year ({days} days, 2 meters, {2 * days * 240:,} blocks, "
+                f"{size_mb:.0f} MB): {_common.timing_text(ours_r)}",
+                f"{base_what}: {_common.timing_text(base_r)}", ratio, f"{ratio:.2f}x the baseline",
+                "<= 1.5x the SQL baseline (a year)", ratio <= 1.5 if days >= 365 else None, args.json,
+                peak_mb=_common.child_peak_rss_mib([sys.executable, __file__, "--memory-only", name,
+                                                    str(db), str(year[0]), str(year[1])]),
+                seconds=ours_r["median"], baseline_s=base_r["median"], runs=ours_r["runs"],
+                baseline_runs=base_r["runs"]))
+            n_m, n_y = (month[1] - month[0]), (year[1] - year[0])
+            expo = math.log(r["year"]["median"] / r["month"]["median"]) / math.log(n_y / n_m)
+            out.append(_common.report(
+                f"{name}_scale", f"{what}: a month {_common.timing_text(r['month'])}, "
+                f"{'a year' if days >= 365 else f'{days} days'} {_common.timing_text(r['year'])}",
                 "time ~ span^exponent (1 = linear)", expo, f"exponent {expo:.2f}", "exponent <= 1.1",
-                expo <= 1.1, args.json, exponent=expo))
+                expo <= 1.1, args.json, exponent=expo, month_runs=r["month"]["runs"]))
+        for f in Path(d).glob("out*"):
+            f.unlink()
         conn.close()
     return out
 
