@@ -1,87 +1,167 @@
-"""Time to compute a month's statistics from a year-long station database.
+"""`meterlink stats --json` and `meterlink export` (CSV, JSON) over a year-long station database, each
+against a plain SQL baseline in the same run, and how their time grows from a month to a year.
 
-The database is generated synthetically: two meters, one year of 6-minute blocks (87,600 each)
-with a daily cycle and noise, written through meterlink.station.derived as the monitor would, plus the
-running-average summaries of three windows. Prints the time and peak memory of the month query.
+The database is synthetic: two meters, one year of 6-minute blocks (87,600 each, a daily cycle and
+noise) with the running-average summaries of three windows, rows as meterlink.station.derived writes
+them. The commands run in this process through their own ``run(args)`` with output to a file.
+Baselines: stats - SQL aggregates (count, sum of covered seconds, max, min, energy mean) grouped by
+day, week and month per meter; export CSV - select the same columns + csv.writer; export JSON -
+select the same columns + json.dump of row dicts, plus the stats baseline (the JSON holds summaries).
+Each figure is the median of several runs (spread min-max), the month, the year and the baseline taken
+in turn; every run writes a fresh file (none is deleted until the end: deletions slowed what followed on
+the test machine's disk); tracemalloc is off while timing; memory is the peak RSS of a separate run.
 """
 
 from __future__ import annotations
 
+import argparse
+import contextlib
+import csv
+import itertools
+import json
+import math
 import sqlite3
+import sys
 import tempfile
-import time
-import tracemalloc
 from pathlib import Path
 
 import numpy as np
 
 import _common
 from meterlink.station import derived
-from meterlink.station.publish import statistics
 
 T0 = 1_704_067_200.0  # 2024-01-01T00:00:00Z
+WINDOWS = (360.0, 1800.0, 86400.0)
+MONTH = (T0 + 181 * 86400.0, T0 + 212 * 86400.0)   # July 2024
+YEAR = (T0, T0 + 365 * 86400.0)
 
 
-def build(path: Path, rng) -> None:
+def build(path: Path, rng, days: int = 365) -> None:
+    """Two meters of 6-minute blocks over ``days`` days, complete, with running-average summaries."""
     conn = sqlite3.connect(path)
     derived.ensure_schema(conn)
     conn.execute("INSERT INTO mon_station (id, name, standard, tier, convention, block_s, timezone, runs) "
                  "VALUES (1, 'Bench Hill (synthetic)', 'icnirp-2020', 'public', 'power', 360, 'UTC', 1)")
     conn.execute("CREATE TABLE IF NOT EXISTS events (id INTEGER PRIMARY KEY, session_id INT, t_utc REAL, kind TEXT, "
                  "severity TEXT, message TEXT, detail TEXT)")
-    n = 365 * 240
+    n = days * 240
     for meter in ("m1", "m2"):
         conn.execute("INSERT INTO mon_meter (station_id, meter, e_ref_v_per_m, s_ref_w_per_m2) VALUES (1,?,27.7,2.0)",
                      (meter,))
         t = T0 + 360.0 * np.arange(n)
-        e = 3.0 + np.sin(2 * np.pi * t / 86400.0) + rng.normal(0, 0.2, n)
-        blocks = []
-        for ti, ei in zip(t, np.abs(e)):
-            b = derived.Block(float(ti), 360.0, energy=float(ei * ei * 360.0), covered_s=360.0, n=36, e_max=float(ei))
-            for w in (360.0, 1800.0, 86400.0):
-                b.run_end[w] = (float(ei * ei), 1.0)
-                b.run_max[w] = (float(ei), float(ti + 180))
-            blocks.append(b)
-        derived.save_blocks(conn, 1, meter, "total", blocks, 0.9)
+        e = np.abs(3.0 + np.sin(2 * np.pi * t / 86400.0) + rng.normal(0, 0.2, n))
+        conn.executemany("INSERT INTO mon_block VALUES (1,?, 'total', ?, 360.0, ?, 360.0, 36, ?, ?, 1, 0)",
+                         zip([meter] * n, t.tolist(), (e * e * 360.0).tolist(), e.tolist(), e.tolist()))
+        for w in WINDOWS:
+            conn.executemany("INSERT INTO mon_running VALUES (1, ?, 'total', ?, ?, ?, 1.0, ?, ?)",
+                             zip([meter] * n, [w] * n, t.tolist(), e.tolist(), e.tolist(), (t + 180).tolist()))
     conn.commit()
     conn.close()
 
 
-BASELINE_SQL = ("SELECT meter, CAST((t_start_utc - ?) / 86400 AS INT) AS day, sqrt(sum(energy) / sum(covered_s)), "
-                "max(e_max_v_per_m), count(*) FROM mon_block WHERE station_id = 1 AND band = 'total' AND "
-                "t_start_utc >= ? AND t_start_utc < ? GROUP BY meter, day")
+AGG_SQL = ("SELECT meter, strftime(?, t_start_utc, 'unixepoch') AS p, count(*), sum(covered_s), max(e_rms_v_per_m), "
+           "min(e_rms_v_per_m), sqrt(sum(energy) / sum(covered_s)) FROM mon_block WHERE station_id = 1 AND "
+           "band = 'total' AND t_start_utc >= ? AND t_start_utc < ? GROUP BY meter, p")
+SERIES_SQL = ("SELECT meter, t_start_utc, t_start_utc + block_s, e_rms_v_per_m, covered_s / block_s, complete, "
+              "n_overrange FROM mon_block WHERE station_id = 1 AND band = 'total' AND t_start_utc >= ? AND "
+              "t_start_utc < ? ORDER BY meter, t_start_utc")
+SERIES_COLS = ("meter", "start", "end", "e", "coverage", "complete", "overrange")
 
 
-def main(argv=None) -> dict:
-    """Month statistics (meterlink.station.publish.statistics) vs one plain SQL aggregate of the same blocks by day."""
-    args = _common.parser(__doc__).parse_args(argv)
-    rng = np.random.default_rng(0)
-    t0, t1 = T0 + 181 * 86400.0, T0 + 212 * 86400.0   # July 2024
+def base_stats(conn, t0, t1) -> list:
+    return [conn.execute(AGG_SQL, (fmt, t0, t1)).fetchall() for fmt in ("%Y-%m-%d", "%Y-%W", "%Y-%m")]
+
+
+def base_csv(conn, t0, t1, out: Path) -> None:
+    with open(out, "w", newline="") as f:
+        csv.writer(f, lineterminator="\n").writerows(conn.execute(SERIES_SQL, (t0, t1)))
+
+
+def base_json(conn, t0, t1, out: Path) -> None:
+    agg = base_stats(conn, t0, t1)
+    with open(out, "w") as f:
+        json.dump({"summaries": agg, "series": [dict(zip(SERIES_COLS, r)) for r in conn.execute(SERIES_SQL, (t0, t1))]},
+                  f)
+
+
+def ours_stats(db: Path, t0, t1, out: Path) -> None:
+    from meterlink.commands import stats
+    with open(out, "w") as f, contextlib.redirect_stdout(f):
+        stats.run(_args(db, t0, t1, json=True))
+
+
+def ours_export(fmt: str):
+    def run(db: Path, t0, t1, out: Path) -> None:
+        from meterlink.commands import export
+        export.run(_args(db, t0, t1, format=fmt, out=str(out)))
+    return run
+
+
+def _args(db, t0, t1, **kw) -> argparse.Namespace:
+    iso = lambda t: __import__("datetime").datetime.fromtimestamp(t, __import__("datetime").timezone.utc).isoformat()  # noqa: E731
+    return argparse.Namespace(db=str(db), t_from=iso(t0), t_to=iso(t1), **kw)
+
+
+def main(argv=None) -> list[dict]:
+    ap = _common.parser(__doc__)
+    ap.add_argument("--repeat", type=int, default=None, help="runs per figure (default 5; 3 with --quick)")
+    args = ap.parse_args(argv)
+    repeat = args.repeat or (3 if args.quick else 5)
+    days = 120 if args.quick else 365
+    year = (T0, T0 + days * 86400.0)
+    month = MONTH if not args.quick else (T0 + 31 * 86400.0, T0 + 62 * 86400.0)
+    _common.print_machine()
+    out = []
     with tempfile.TemporaryDirectory() as d:
-        path = Path(d) / "year.db"
-        t = time.perf_counter()
-        build(path, rng)
-        t_build = time.perf_counter() - t
-        conn = sqlite3.connect(path)
-        tracemalloc.start()
-        t = time.perf_counter()
-        doc = statistics(conn, t0, t1)
-        dt = time.perf_counter() - t
-        _, peak = tracemalloc.get_traced_memory()
-        tracemalloc.stop()
-        t = time.perf_counter()
-        base_rows = conn.execute(BASELINE_SQL, (t0, t0, t1)).fetchall()
-        t_base = time.perf_counter() - t
-        size_mb = path.stat().st_size / 1e6
-    days = len(doc["meters"][0]["day"])
-    assert len(base_rows) == 2 * days
-    return _common.report(
-        "stats", f"month statistics (2 meters, {days} days, weeks, month, profiles) from a year of 6-minute blocks "
-        f"({size_mb:.0f} MB, built in {t_build:.0f} s): {dt * 1000:.0f} ms, peak traced {peak / 2**20:.1f} MiB",
-        f"one plain SQL aggregate by meter and day over the same blocks {t_base * 1000:.1f} ms", dt / t_base,
-        f"{dt / t_base:.1f}x the plain aggregate's time", "none set (report only)", None, args.json,
-        stats_s=dt, baseline_s=t_base)
+        db = Path(d) / "station.db"
+        build(db, np.random.default_rng(0), days)
+        conn = sqlite3.connect(db)
+        size_mb = db.stat().st_size / 1e6
+        runs = itertools.count()
+        dest = lambda: Path(d) / f"out{next(runs)}"  # noqa: E731 - a fresh file per run: no deletion in between
+        targets = [("stats", "meterlink stats --json", ours_stats, "SQL aggregates by day, week and month",
+                    lambda a, b: base_stats(conn, a, b)),
+                   ("export_csv", "meterlink export --format csv", ours_export("csv"), "select + csv.writer",
+                    lambda a, b: base_csv(conn, a, b, dest())),
+                   ("export_json", "meterlink export --format json", ours_export("json"),
+                    "select + json.dump (+ the SQL aggregates)", lambda a, b: base_json(conn, a, b, dest()))]
+        for name, what, fn, base_what, base in targets:
+            # the month, the year and the year's baseline in turn, so that drifting load hits all alike
+            r = _common.rotated({"month": lambda: fn(db, *month, dest()), "year": lambda: fn(db, *year, dest()),
+                                 "base": lambda: base(*year)}, repeat)
+            ours_r, base_r = r["year"], r["base"]
+            ratio = ours_r["median"] / base_r["median"]
+            out.append(_common.report(
+                name, f"{what} over a year ({days} days, 2 meters, {2 * days * 240:,} blocks, "
+                f"{size_mb:.0f} MB): {_common.timing_text(ours_r)}",
+                f"{base_what}: {_common.timing_text(base_r)}", ratio, f"{ratio:.2f}x the baseline",
+                "<= 1.5x the SQL baseline (a year)", ratio <= 1.5 if days >= 365 else None, args.json,
+                peak_mb=_common.child_peak_rss_mib([sys.executable, __file__, "--memory-only", name,
+                                                    str(db), str(year[0]), str(year[1])]),
+                seconds=ours_r["median"], baseline_s=base_r["median"], runs=ours_r["runs"],
+                baseline_runs=base_r["runs"]))
+            n_m, n_y = (month[1] - month[0]), (year[1] - year[0])
+            expo = math.log(r["year"]["median"] / r["month"]["median"]) / math.log(n_y / n_m)
+            out.append(_common.report(
+                f"{name}_scale", f"{what}: a month {_common.timing_text(r['month'])}, "
+                f"{'a year' if days >= 365 else f'{days} days'} {_common.timing_text(r['year'])}",
+                "time ~ span^exponent (1 = linear)", expo, f"exponent {expo:.2f}", "exponent <= 1.1",
+                expo <= 1.1, args.json, exponent=expo, month_runs=r["month"]["runs"]))
+        for f in Path(d).glob("out*"):
+            f.unlink()
+        conn.close()
+    return out
+
+
+def memory_only(name: str, db: str, t0: float, t1: float) -> None:
+    """One run of a target in a fresh process, for its peak RSS (timed runs keep tracemalloc off)."""
+    fn = {"stats": ours_stats, "export_csv": ours_export("csv"), "export_json": ours_export("json")}[name]
+    with tempfile.TemporaryDirectory() as d:
+        fn(Path(db), t0, t1, Path(d) / "out")
 
 
 if __name__ == "__main__":
-    main()
+    if len(sys.argv) > 1 and sys.argv[1] == "--memory-only":
+        memory_only(sys.argv[2], sys.argv[3], float(sys.argv[4]), float(sys.argv[5]))
+    else:
+        main()

@@ -14,7 +14,6 @@ import os
 import pkgutil
 import re
 import signal
-import sqlite3
 import sys
 
 from meterlink import __version__
@@ -22,25 +21,31 @@ from meterlink.cautions import SAFETY_LINE
 from meterlink.errors import MeterlinkError
 
 
-def _command_modules():
-    """Yield (name, module) for every module in meterlink.commands, sorted by name."""
+def _command_names() -> list[str]:
+    """Module names in meterlink.commands (found on disk, nothing imported), sorted."""
     import meterlink.commands as pkg
 
-    for info in sorted(pkgutil.iter_modules(pkg.__path__), key=lambda i: i.name):
-        if info.name.startswith("_"):
-            continue
-        yield info.name.replace("_", "-"), importlib.import_module(f"meterlink.commands.{info.name}")
+    return sorted(i.name for i in pkgutil.iter_modules(pkg.__path__) if not i.name.startswith("_"))
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """Build the argument parser with one sub-parser per command module."""
+def _command_modules(only: str | None = None):
+    """Yield (name, module) for every module in meterlink.commands, sorted by name (or just ``only``)."""
+    for name in _command_names():
+        if only is None or name == only:
+            yield name.replace("_", "-"), importlib.import_module(f"meterlink.commands.{name}")
+
+
+def build_parser(command: str | None = None) -> argparse.ArgumentParser:
+    """Build the argument parser with one sub-parser per command module; given the name of an existing
+    command, with that one only (start-up: the other command modules are not imported)."""
+    only = command.replace("-", "_") if command and command.replace("-", "_") in _command_names() else None
     parser = argparse.ArgumentParser(
         prog="meterlink",
         description="Host companion for an RF field-strength meter. " + SAFETY_LINE,
     )
     parser.add_argument("--version", action="version", version=f"meterlink {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for name, module in _command_modules():
+    for name, module in _command_modules(only):
         p = sub.add_parser(name, help=module.HELP, description=module.HELP)
         module.add_arguments(p)
         p.set_defaults(_run=module.run)
@@ -51,8 +56,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point: parse, dispatch, and turn known errors into one line on stderr."""
-    parser = build_parser()
-    args = parser.parse_args(_protect_negative_positionals(sys.argv[1:] if argv is None else argv))
+    argv = _protect_negative_positionals(sys.argv[1:] if argv is None else argv)
+    parser = build_parser(argv[0] if argv and not argv[0].startswith("-") else None)
+    args = parser.parse_args(argv)
     if not getattr(args, "_run", None):
         parser.print_help()
         return 1
@@ -72,16 +78,19 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"meterlink {args.command}: interrupted", file=sys.stderr)
         return 130
-    except sqlite3.DatabaseError as exc:
+    except Exception as exc:
+        sqlite3 = sys.modules.get("sqlite3")    # imported only by commands that use it: start-up stays light
+        if sqlite3 is None or not isinstance(exc, sqlite3.DatabaseError):
+            if isinstance(exc, (OSError, ValueError)):
+                # Last line of defence: a one-line message rather than a traceback.
+                print(f"meterlink {args.command}: error: {exc}", file=sys.stderr)
+                return 2
+            raise
         # a damaged page met in the middle of a command: name the file and say what to do
         from meterlink.storage.store import describe_sqlite_error
 
         db = getattr(args, "db", None) or "the database"
         print(f"meterlink {args.command}: error: {describe_sqlite_error(db, exc)}", file=sys.stderr)
-        return 2
-    except (OSError, ValueError) as exc:
-        # Last line of defence: a one-line message rather than a traceback.
-        print(f"meterlink {args.command}: error: {exc}", file=sys.stderr)
         return 2
 
 

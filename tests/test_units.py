@@ -162,3 +162,16 @@ def test_mw_per_cm2_and_w_per_m2():
     assert float(units.mw_per_cm2_to_w_per_m2(0.2)) == pytest.approx(2.0)
     assert float(units.mw_per_cm2_to_w_per_m2(1.0)) == pytest.approx(10.0)
     assert float(units.w_per_m2_to_mw_per_cm2(units.e_to_s(27.5))) == pytest.approx(0.2, rel=0.005)
+
+
+def test_constants_are_codata_2022_as_in_scipy():
+    # Literal constants (no scipy import at start-up) against scipy.constants and against the CODATA 2022
+    # recommended values as published by NIST (physics.nist.gov/constants): mu_0 = 1.256 637 061 27(20)e-6
+    # N/A^2, epsilon_0 = 8.854 187 8188(14)e-12 F/m, Z0 = 376.730 313 412(59) ohm, c = 299 792 458 m/s exact.
+    assert units.MU_0_N_PER_A2 == pytest.approx(constants.mu_0, rel=1e-9)
+    assert units.EPSILON_0_F_PER_M == pytest.approx(constants.epsilon_0, rel=1e-9)
+    assert units.C_M_PER_S == constants.c == 299792458.0
+    assert units.MU_0_N_PER_A2 == 1.25663706127e-6 and units.EPSILON_0_F_PER_M == 8.8541878188e-12
+    assert units.Z0_OHM == pytest.approx(376.730313412, abs=5.9e-8)
+    assert units.Z0_OHM == pytest.approx(constants.physical_constants["characteristic impedance of vacuum"][0],
+                                         rel=1e-9)

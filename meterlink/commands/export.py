@@ -17,42 +17,67 @@ def run(args) -> int:
     import os
     import sqlite3
     import sys
+    import tempfile
     from pathlib import Path
 
     from meterlink.cli import SAFETY_LINE
     from meterlink.commands.stats import open_station
     from meterlink.errors import MeterlinkError
     from meterlink.storage.store import describe_sqlite_error
-    from meterlink.station.publish import export_file_name, header_lines, series_rows, statistics, to_csv, to_json
+    from meterlink.station.publish import (export_file_name, header_lines, iter_series, station_info, statistics,
+                                           write_json, write_series_csv)
 
     conn, t0, t1 = open_station(args)
     try:
-        st, rows = series_rows(conn, t0, t1)
-        if args.format == "csv":
-            text = to_csv(st, rows, SAFETY_LINE)
-        else:
-            doc = {"about": header_lines(st, SAFETY_LINE), "caution": SAFETY_LINE,
-                   "summaries": statistics(conn, t0, t1), "series_6min": rows}
-            text = to_json(doc)
+        st, meters = station_info(conn)
+
+        def write(stream) -> None:
+            """The export, streamed: rows go from the database cursor to the output one at a time."""
+            if args.format == "csv":
+                write_series_csv(stream, conn, t0, t1, st, meters, SAFETY_LINE)
+            else:
+                doc = {"about": header_lines(st, SAFETY_LINE), "caution": SAFETY_LINE,
+                       "summaries": statistics(conn, t0, t1)}
+                write_json(stream, doc, "series_6min", iter_series(conn, t0, t1, st, meters))
+
+        if not args.out:
+            write(sys.stdout)
+            return 0
+        out = Path(args.out)
+        folder = args.out.endswith(("/", os.sep)) or out.is_dir()
+        if folder:
+            try:
+                out.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise MeterlinkError(f"{args.out}: cannot create the export folder: {exc.strerror or exc}") from None
+            out = out / export_file_name(st, t0, t1, args.format)
+        # written beside the target and renamed when complete: a failed export leaves no half file
+        try:
+            fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".part", dir=out.parent)
+        except OSError as exc:
+            raise MeterlinkError(f"{out}: cannot write: {exc.strerror}") from None
+        try:
+            with open(fd, "w", encoding="utf-8", newline="") as f:
+                write(f)
+            os.chmod(tmp, 0o666 & ~_umask())
+            os.replace(tmp, out)
+        except OSError as exc:
+            raise MeterlinkError(f"{out}: cannot write: {exc.strerror}") from None
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
     except sqlite3.DatabaseError as exc:
         raise describe_sqlite_error(args.db, exc) from None
     finally:
         conn.close()
-    if not args.out:
-        sys.stdout.write(text)
-        return 0
-    out = Path(args.out)
-    folder = args.out.endswith(("/", os.sep)) or out.is_dir()
-    if folder:
-        try:
-            out.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise MeterlinkError(f"{args.out}: cannot create the export folder: {exc.strerror or exc}") from None
-        out = out / export_file_name(st, t0, t1, args.format)
-    try:
-        out.write_text(text, encoding="utf-8")
-    except OSError as exc:
-        raise MeterlinkError(f"{out}: cannot write: {exc.strerror}") from None
     if folder:
         print(f"wrote {out}")
     return 0
+
+
+def _umask() -> int:
+    """The process umask (read by setting and restoring it), so the export gets the usual file mode."""
+    import os
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask

@@ -1,7 +1,10 @@
 """Unit conversions for RF field work: small pure functions, SI inside, names say the units.
 
-Free-space impedance comes from scipy.constants (mu_0 and epsilon_0 as measured since the
-2019 SI revision), never from the legacy 120*pi shortcut.
+Free-space impedance is sqrt(mu_0/epsilon_0) from the measured CODATA 2022 values (mu_0 is no longer
+exact since the 2019 SI revision), never the legacy 120*pi shortcut. The constants are literals so that
+importing this module costs no scipy (about 0.1 s); tests/test_units.py checks them against
+scipy.constants. numpy is imported on the first call that needs it, so a command that only parses a
+frequency does not pay for it.
 """
 
 from __future__ import annotations
@@ -9,13 +12,27 @@ from __future__ import annotations
 import math
 import re
 
-import numpy as np
-from scipy import constants as _c
 
-#: Impedance of free space, sqrt(mu_0/epsilon_0), about 376.730 ohm.
-Z0_OHM: float = math.sqrt(_c.mu_0 / _c.epsilon_0)
-#: Speed of light in vacuum (exact), m/s.
-C_M_PER_S: float = _c.c
+class _Numpy:
+    """Stands in for the numpy module until first use, then puts the real one in its place."""
+
+    def __getattr__(self, name):
+        import numpy
+        globals()["np"] = numpy
+        return getattr(numpy, name)
+
+
+np = _Numpy()
+
+#: Vacuum magnetic permeability, N/A^2: CODATA 2022 (NIST, physics.nist.gov/constants, "mu_0"),
+#: 1.256 637 061 27(20) e-6; CODATA 2018 gave 1.256 637 062 12(19) e-6.
+MU_0_N_PER_A2: float = 1.25663706127e-6
+#: Vacuum electric permittivity, F/m: CODATA 2022, 8.854 187 8188(14) e-12 (CODATA 2018: 8.854 187 8128(13) e-12).
+EPSILON_0_F_PER_M: float = 8.8541878188e-12
+#: Impedance of free space, sqrt(mu_0/epsilon_0), about 376.730 ohm (CODATA 2022: 376.730 313 412(59) ohm).
+Z0_OHM: float = math.sqrt(MU_0_N_PER_A2 / EPSILON_0_F_PER_M)
+#: Speed of light in vacuum (exact, SI definition of the metre), m/s.
+C_M_PER_S: float = 299792458.0
 #: Reference impedance of RF receivers and cables, ohm.
 R_50_OHM: float = 50.0
 

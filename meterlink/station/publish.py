@@ -7,19 +7,21 @@ safety cautions. Reads only the monitoring tables of meterlink.station.derived a
 
 from __future__ import annotations
 
+import bisect
 import csv
+import itertools
 import datetime as _dt
 import io
 import json
 import math
 import re
+from json.encoder import encode_basestring_ascii as _encode_str
 
 import numpy as np
 
-from meterlink.station import derived
 from meterlink.errors import MeterlinkError
 from meterlink.safetext import clean_text, clean_tree, csv_cell
-from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_stats, profiles
+from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_bounds, period_stats, profiles
 from meterlink.physics.units import Z0_OHM
 
 
@@ -107,6 +109,12 @@ def _reference(st: dict, m: dict) -> Reference:
     return Reference(st["standard"], st["tier"], m["e_ref_v_per_m"], m["s_ref_w_per_m2"], st["convention"] or "power")
 
 
+def _columns(conn, sql: str, params, ncols: int) -> np.ndarray:
+    """Rows of a numeric query as an (n, ncols) float array (NULL becomes NaN), without per-row dicts."""
+    rows = conn.execute(sql, params).fetchall()
+    return np.array(rows, dtype=float).reshape(len(rows), ncols)
+
+
 def statistics(conn, t0: float, t1: float, periods=("day", "week", "month")) -> dict:
     """Per-meter period statistics and profiles between t0 and t1 (UTC seconds)."""
     st, meters = station_info(conn)
@@ -115,40 +123,127 @@ def statistics(conn, t0: float, t1: float, periods=("day", "week", "month")) -> 
            "block_s": st["block_s"], "timezone": st["timezone"] or "UTC", "meters": []}
     for m in meters:
         ref = _reference(st, m)
-        b = derived.blocks(conn, st["id"], m["meter"], "total", t0, t1)
-        t = np.array([r["t_start_utc"] for r in b], dtype=float)
-        e = np.array([np.nan if r["e_rms_v_per_m"] is None else r["e_rms_v_per_m"] for r in b], dtype=float)
-        cov = np.array([r["covered_s"] for r in b], dtype=float)
-        ok = np.array([bool(r["complete"]) for r in b], dtype=bool)
-        run = {}
-        for r in derived.running(conn, st["id"], m["meter"], "total", t0, t1):
-            run.setdefault(r["window_s"], ([], []))
-            run[r["window_s"]][0].append(r["t_start_utc"])
-            run[r["window_s"]][1].append(np.nan if r["e_max_v_per_m"] is None else r["e_max_v_per_m"])
+        key = (st["id"], m["meter"], "total", t0, t1)
+        span = "station_id=? AND meter=? AND band=? AND t_start_utc >= ? AND t_start_utc < ?"
+        # the value only where the block is complete (NaN otherwise): complete & finite is all the statistics need
+        b = _columns(conn, f"SELECT t_start_utc, CASE WHEN complete THEN e_rms_v_per_m END, covered_s FROM mon_block "
+                     f"WHERE {span} ORDER BY t_start_utc", key, 3)
+        t, e, cov = b[:, 0], b[:, 1], b[:, 2]
+        ok = np.isfinite(e)
+        n_over = conn.execute(f"SELECT count(*) FROM mon_block WHERE {span} AND n_overrange", key).fetchone()[0]
+        windows = [w for w in _windows(conn, key[:3])
+                   if conn.execute(f"SELECT 1 FROM mon_running WHERE {span} AND window_s=? LIMIT 1", (*key, w)).fetchone()]
         entry = {"meter": m["meter"], "e_ref_v_per_m": ref.e_ref_v_per_m, "s_ref_w_per_m2": ref.s_ref_w_per_m2,
-                 "label": ref.label(), "n_overrange_blocks": sum(1 for r in b if r["n_overrange"])}
+                 "label": ref.label(), "n_overrange_blocks": n_over}
+        days = period_bounds(t0, t1, "day", out["timezone"])
+        day_max = {w: _running_max(conn, key[:3], w, days) for w in windows}
         for p in periods:
-            entry[p] = period_stats(ref, t, e, cov, ok, t0, t1, p, out["timezone"], run)
+            bounds = days if p == "day" else period_bounds(t0, t1, p, out["timezone"])
+            run = {w: v if p == "day" else _max_of_days(days, v, bounds) for w, v in day_max.items()}
+            entry[p] = period_stats(ref, t, e, cov, ok, t0, t1, p, out["timezone"], running_max=run)
         entry.update(profiles(ref, t, e, ok, out["timezone"]))
         out["meters"].append(entry)
     return clean_tree(out)
 
 
-def series_rows(conn, t0: float, t1: float) -> tuple[dict, list[dict]]:
-    """The 6-minute series of every meter for publication."""
-    st, meters = station_info(conn)
-    rows = []
+_FINITE = "e_max_v_per_m BETWEEN -1.7976931348623157e308 AND 1.7976931348623157e308"   # not NULL or +-inf
+
+
+def _windows(conn, key: tuple) -> list[float]:
+    """The running-average windows stored for (station, meter, band), by index seeks (a skip scan)."""
+    out: list[float] = []
+    while True:
+        (w,) = conn.execute("SELECT min(window_s) FROM mon_running WHERE station_id=? AND meter=? AND band=? AND "
+                            "window_s > ?", (*key, out[-1] if out else -math.inf)).fetchone()
+        if w is None:
+            return out
+        out.append(w)
+
+
+def _running_max(conn, key: tuple, window_s: float, bounds) -> list:
+    """The largest finite running average of one window in each period [start, end) of ``bounds``: an SQL
+    max over the primary-key range of each period (exact, as a max is), 200 periods per statement."""
+    out = []
+    for i in range(0, len(bounds), 200):
+        part = bounds[i:i + 200]
+        values = ",".join("(?,?,?)" for _ in part)
+        sql = (f"WITH p(k, a, b) AS (VALUES {values}) SELECT (SELECT max(e_max_v_per_m) FROM mon_running WHERE "
+               f"station_id=? AND meter=? AND band=? AND window_s=? AND t_start_utc >= p.a AND t_start_utc < p.b "
+               f"AND {_FINITE}) FROM p ORDER BY p.k")
+        params = [x for k, (_, a, b) in enumerate(part) for x in (k, a, b)] + [*key, window_s]
+        out.extend(v for (v,) in conn.execute(sql, params))
+    return out
+
+
+def _max_of_days(days, day_max: list, bounds) -> list:
+    """Per-period maxima from per-day ones: a local week or month is a run of whole local days (both clipped
+    to the same span), so its largest value is the largest of its days' (None where all are None)."""
+    starts = [a for _, a, _ in days]
+    out = []
+    for _, a, b in bounds:
+        vals = [v for v in day_max[bisect.bisect_left(starts, a):bisect.bisect_left(starts, b)] if v is not None]
+        out.append(max(vals) if vals else None)
+    return out
+
+
+SERIES_COLUMNS = ["meter", "start_utc", "end_utc", "e_rms_v_per_m", "percent_of_reference", "coverage", "complete",
+                  "overrange_lower_bound"]
+
+
+_NUMPY_ISO_MAX_S = 253_402_300_800.0     # 10000-01-01: below it numpy and strftime write the same text
+
+
+def _iso_list(t: np.ndarray) -> list[str]:
+    """[iso(x) for x in t], vectorised where every time is a whole second of years 1970-9999 (the text is
+    then the same); any other time goes through iso() itself."""
+    if t.size and np.all((t >= 0) & (t < _NUMPY_ISO_MAX_S)) and np.all(t == np.floor(t)):
+        return np.datetime_as_string(t.astype(np.int64).astype("datetime64[s]"), timezone="UTC").tolist()
+    return [iso(x) for x in t.tolist()]
+
+
+def _series_chunks(conn, t0: float, t1: float, st: dict, meters: list[dict], name=lambda m: m):
+    """Iterators of series tuples (SERIES_COLUMNS order), one per chunk of 4096 blocks, built column-wise;
+    ``name`` maps the meter name for the first column (e.g. csv_cell)."""
     for m in meters:
         ref = _reference(st, m)
-        for r in derived.blocks(conn, st["id"], m["meter"], "total", t0, t1):
-            e = r["e_rms_v_per_m"]
-            rows.append({"meter": m["meter"], "start_utc": iso(r["t_start_utc"]),
-                         "end_utc": iso(r["t_start_utc"] + r["block_s"]),
-                         "e_rms_v_per_m": None if e is None else round(e, 6),
-                         "percent_of_reference": None if e is None else round(float(ref.pct(e)), 4),
-                         "coverage": round(min(r["covered_s"] / r["block_s"], 1.0), 4),
-                         "complete": bool(r["complete"]), "overrange_lower_bound": bool(r["n_overrange"])})
-    return st, rows
+        cur = conn.execute("SELECT t_start_utc, block_s, e_rms_v_per_m, covered_s, complete, n_overrange FROM "
+                           "mon_block WHERE station_id=? AND band='total' AND meter=? AND t_start_utc >= ? AND "
+                           "t_start_utc < ? ORDER BY t_start_utc", (st["id"], m["meter"], t0, t1))
+        meter = name(m["meter"])
+        while True:
+            chunk = cur.fetchmany(4096)
+            if not chunk:
+                break
+            ts, bs, e, covered, complete, nover = zip(*chunk)
+            tsa = np.array(ts, dtype=float)
+            bsa = np.array(bs, dtype=float)
+            ea = np.array(e, dtype=float)                      # NULL -> NaN
+            pct = ref.pct(ea).tolist()                         # the same IEEE operations as ref.pct(one value)
+            cov = np.minimum(np.array(covered, dtype=float) / bsa, 1.0).tolist()
+            yield zip(itertools.repeat(meter), _iso_list(tsa), _iso_list(tsa + bsa),
+                      [None if x is None else round(x, 6) for x in e],
+                      [None if x is None else round(p, 4) for x, p in zip(e, pct)],
+                      [1.0 if c == 1.0 else round(c, 4) for c in cov], map(bool, complete), map(bool, nover))
+
+
+def series_tuples(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
+    """The 6-minute series of every meter for publication, one tuple (SERIES_COLUMNS order) at a time:
+    streamed from the database in chunks, a year of blocks is never held as one list."""
+    if st is None or meters is None:
+        st, meters = station_info(conn)
+    return itertools.chain.from_iterable(_series_chunks(conn, t0, t1, st, meters))
+
+
+def iter_series(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
+    """The 6-minute series as row dicts (keys SERIES_COLUMNS), streamed as :func:`series_tuples`."""
+    for r in series_tuples(conn, t0, t1, st, meters):
+        yield dict(zip(SERIES_COLUMNS, r))
+
+
+def series_rows(conn, t0: float, t1: float) -> tuple[dict, list[dict]]:
+    """The 6-minute series of every meter for publication (as a list; exports use iter_series)."""
+    st, meters = station_info(conn)
+    return st, list(iter_series(conn, t0, t1, st, meters))
 
 
 def header_lines(st: dict, safety: str) -> list[str]:
@@ -171,6 +266,55 @@ def to_csv(st: dict, rows: list[dict], safety: str) -> str:
     w.writeheader()
     w.writerows({k: csv_cell(v) for k, v in r.items()} for r in rows)
     return buf.getvalue()
+
+
+def write_csv(out, st: dict, rows, safety: str) -> None:
+    """Write the series (row dicts) as :func:`to_csv` does, row by row to the text stream ``out``."""
+    _csv_head(out, st, safety).writerows([csv_cell(r[k]) for k in SERIES_COLUMNS] for r in rows)
+
+
+def _csv_head(out, st: dict, safety: str):
+    for line in header_lines(st, safety):
+        out.write(f"# {clean_text(line)}\n")
+    w = csv.writer(out, lineterminator="\n")
+    w.writerow(SERIES_COLUMNS)
+    return w
+
+
+def write_series_csv(out, conn, t0: float, t1: float, st: dict, meters: list[dict], safety: str) -> None:
+    """The series of the station between t0 and t1 as CSV (the text of to_csv), streamed from the database
+    in chunks. The meter name is the one text from outside (csv_cell, once per meter); the times come from
+    iso() or the same text vectorised, the rest are numbers."""
+    w = _csv_head(out, st, safety)
+    for chunk in _series_chunks(conn, t0, t1, st, meters, name=csv_cell):
+        w.writerows(chunk)
+
+
+def _json_scalar(x) -> str:
+    """One JSON value as json.dumps writes it (non-finite floats as null, as to_json)."""
+    if x is None or x is True or x is False:
+        return "null" if x is None else ("true" if x else "false")
+    if isinstance(x, float):
+        return float.__repr__(x) if math.isfinite(x) else "null"
+    if isinstance(x, str):
+        return _encode_str(x)
+    return json.dumps(x)
+
+
+def write_json(out, doc: dict, list_key: str, rows) -> None:
+    """Write ``doc`` with ``doc[list_key] = list(rows)`` exactly as :func:`to_json` would, streaming the
+    rows (flat dicts of scalars) one at a time instead of building the list."""
+    head = to_json({**doc, list_key: []})
+    empty = f'\n  {json.dumps(list_key)}: []\n}}'
+    if not head.endswith(empty):
+        raise ValueError(f"{list_key!r} must be the last key of the document")
+    out.write(head[:-len(empty)] + f"\n  {json.dumps(list_key)}: [")
+    first = True
+    for r in rows:
+        body = ",\n".join(f"      {_encode_str(k)}: {_json_scalar(v)}" for k, v in r.items())
+        out.write(("\n" if first else ",\n") + "    {\n" + body + "\n    }")
+        first = False
+    out.write("]\n}" if first else "\n  ]\n}")
 
 
 def to_json(doc) -> str:

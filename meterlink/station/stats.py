@@ -110,10 +110,42 @@ def _power_mean(e: np.ndarray) -> float:
     return float(np.sqrt(np.mean(e * e))) if e.size else math.nan
 
 
+def _period_bounds(t0_s: float, t1_s: float, period: str, tz) -> list[tuple[str, float, float]]:
+    """(label, start, end) of every period overlapping [t0_s, t1_s), clipped to it."""
+    out = []
+    p = _period_start(_dt.datetime.fromtimestamp(t0_s, tz), period)
+    while _ts(p) < t1_s:
+        n = _next(p, period)
+        out.append((_label(p, period), max(_ts(p), t0_s), min(_ts(n), t1_s)))
+        p = n
+    return out
+
+
+def _sorted_by_time(t: np.ndarray, *arrays):
+    """The arrays in time order (stable: equal times keep their order); unchanged when already sorted."""
+    if t.size < 2 or not np.any(t[1:] < t[:-1]):
+        return (t, *arrays)
+    order = np.argsort(t, kind="stable")
+    return (t[order], *(a[order] for a in arrays))
+
+
+def period_bounds(t0_s: float, t1_s: float, period: str, timezone: str = "UTC") -> list[tuple[str, float, float]]:
+    """(label, start_utc, end_utc) of each day, week or month (station time zone) overlapping [t0_s, t1_s),
+    clipped to it."""
+    if period not in PERIODS:
+        raise ValueError(f"period must be one of {PERIODS}")
+    return _period_bounds(t0_s, t1_s, period, ZoneInfo(timezone))
+
+
 def period_stats(ref: Reference, t_start_s, e_rms_v_per_m, covered_s, complete, t0_s: float, t1_s: float,
-                 period: str, timezone: str = "UTC", running=None) -> list[dict]:
+                 period: str, timezone: str = "UTC", running=None, running_max=None) -> list[dict]:
     """One summary per period overlapping [t0_s, t1_s). ``running`` maps window_s -> (t_block_s, e_max)
-    arrays of the largest complete running average inside each block."""
+    arrays of the largest complete running average inside each block; or ``running_max`` maps window_s
+    -> the largest of them in each period of :func:`period_bounds` (None where there is none), as a
+    database aggregate gives them.
+
+    One pass: the blocks are put in time order once and each period is a slice found with
+    np.searchsorted, so the work grows with the number of blocks, not blocks times periods."""
     if period not in PERIODS:
         raise ValueError(f"period must be one of {PERIODS}")
     tz = ZoneInfo(timezone)
@@ -121,26 +153,74 @@ def period_stats(ref: Reference, t_start_s, e_rms_v_per_m, covered_s, complete, 
     e = np.asarray(e_rms_v_per_m, dtype=float)
     cov = np.asarray(covered_s, dtype=float)
     ok = np.asarray(complete, dtype=bool) & np.isfinite(e)
-    sel = (t >= t0_s) & (t < t1_s)
-    t, e, cov, ok = t[sel], e[sel], cov[sel], ok[sel]
+    t, e, cov, ok = _sorted_by_time(t, e, cov, ok)
+    bounds = _period_bounds(t0_s, t1_s, period, tz)
+    starts = np.array([a for _, a, _ in bounds], dtype=float)
+    ends = np.array([b for _, _, b in bounds], dtype=float)
+    # period k holds the blocks with t in [start_k, end_k): one slice of the sorted times
+    lo = np.searchsorted(t, starts, side="left")
+    hi = np.searchsorted(t, ends, side="left")
+    runs = []
+    for ws, (tr, emax) in sorted((running or {}).items()):
+        tr, emax = _sorted_by_time(np.asarray(tr, dtype=float), np.asarray(emax, dtype=float))
+        fin = np.isfinite(emax)
+        tr, emax = tr[fin], emax[fin]
+        runs.append((ws, emax, np.searchsorted(tr, starts, side="left"), np.searchsorted(tr, ends, side="left")))
+    given = sorted((running_max or {}).items())
     out = []
-    p = _period_start(_dt.datetime.fromtimestamp(t0_s, tz), period)
-    while _ts(p) < t1_s:
-        n = _next(p, period)
-        a, b = max(_ts(p), t0_s), min(_ts(n), t1_s)
-        m = (t >= a) & (t < b)
-        row = {"period": _label(p, period), "start_utc": a, "end_utc": b,
-               "coverage": float(cov[m].sum() / (b - a)) if b > a else 0.0}
-        row.update(_summary(ref, e[m & ok]))
-        for ws, (tr, emax) in sorted((running or {}).items()):
-            tr, emax = np.asarray(tr, dtype=float), np.asarray(emax, dtype=float)
-            mm = (tr >= a) & (tr < b) & np.isfinite(emax)
-            v = float(emax[mm].max()) if mm.any() else None
+    for k, (label, a, b) in enumerate(bounds):
+        i0, i1 = int(lo[k]), int(hi[k])
+        row = {"period": label, "start_utc": a, "end_utc": b,
+               "coverage": float(cov[i0:i1].sum() / (b - a)) if b > a else 0.0}
+        ek = e[i0:i1]
+        row.update(_summary(ref, ek[ok[i0:i1]]))
+        for ws, emax, r_lo, r_hi in runs:
+            j0, j1 = int(r_lo[k]), int(r_hi[k])
+            v = float(emax[j0:j1].max()) if j1 > j0 else None
+            row[f"running_{ws:g}s_max_e_v_per_m"] = v
+            row[f"running_{ws:g}s_max_pct"] = None if v is None else float(ref.pct(v))
+        for ws, vals in given:
+            v = None if vals[k] is None else float(vals[k])
             row[f"running_{ws:g}s_max_e_v_per_m"] = v
             row[f"running_{ws:g}s_max_pct"] = None if v is None else float(ref.pct(v))
         out.append(row)
-        p = n
     return out
+
+
+def _utc_offsets_s(t: np.ndarray, tz) -> np.ndarray:
+    """UTC offset (s) of the time zone at each time t: offsets are looked up on a 6-hour grid and
+    each change is located to the second by bisection, so a year costs a few thousand look-ups,
+    not one per block (tz database transitions fall on whole seconds)."""
+    def off(x: float) -> float:
+        return _dt.datetime.fromtimestamp(x, tz).utcoffset().total_seconds()
+
+    if t.size == 0:
+        return np.zeros(0)
+    step = 6 * 3600.0
+    g0 = math.floor(float(t.min()) / step) * step
+    grid = np.arange(g0, float(t.max()) + step, step)
+    offs = [off(float(g)) for g in grid]
+    starts, values = [-math.inf], [offs[0]]
+    for k in range(1, len(grid)):
+        if offs[k] != offs[k - 1]:
+            a, b = int(grid[k - 1]), int(grid[k])        # off(a) is the old offset, off(b) the new
+            while b - a > 1:
+                m = (a + b) // 2
+                a, b = (m, b) if off(m) == offs[k - 1] else (a, m)
+            starts.append(float(b))
+            values.append(offs[k])
+    idx = np.searchsorted(np.array(starts), t, side="right") - 1
+    return np.array(values)[idx]
+
+
+def _local_hour_weekday(t: np.ndarray, tz) -> tuple[np.ndarray, np.ndarray]:
+    """Local hour (0..23) and weekday (Monday 0) of each time, as datetime.fromtimestamp(t, tz) gives
+    them (times rounded to the microsecond as it does); vectorised."""
+    local = np.round(t, 6) + _utc_offsets_s(t, tz)
+    day = np.floor(local / 86400.0)
+    hour = np.floor((local - day * 86400.0) / 3600.0).astype(int)
+    weekday = ((day.astype(np.int64) + 3) % 7).astype(int)    # 1970-01-01 was a Thursday
+    return hour, weekday
 
 
 def profiles(ref: Reference, t_start_s, e_rms_v_per_m, complete, timezone: str = "UTC") -> dict:
@@ -150,9 +230,8 @@ def profiles(ref: Reference, t_start_s, e_rms_v_per_m, complete, timezone: str =
     e = np.asarray(e_rms_v_per_m, dtype=float)
     ok = np.asarray(complete, dtype=bool) & np.isfinite(e)
     t, e = t[ok], e[ok]
-    local = [_dt.datetime.fromtimestamp(x, tz) for x in t]
-    hour = np.array([d.hour for d in local], dtype=int)
-    weekend = np.array([d.weekday() >= 5 for d in local], dtype=bool)
+    hour, wd = _local_hour_weekday(t, tz)
+    weekend = wd >= 5
     hours = []
     for h in range(24):
         eh = e[hour == h]
