@@ -134,16 +134,21 @@ class Analyzer(Instrument):
                     return repr(c if h == "FREQ:CENT" else w)
                 v = number(arg, 0, 26.5e9)
                 c, w = (v, w) if h == "FREQ:CENT" else (c, v)
-                if c - w / 2 < 0:
-                    raise ScpiFault(-222, "Data out of range")
+                w = min(w, 2 * c)               # the span shrinks to keep the start at or above 0 Hz
                 s["start"], s["stop"] = c - w / 2, c + w / 2
                 return None
             key, lo, hi = spec
             if query:
                 return repr(int(s[key]) if key == "points" else float(s[key]))
+            span = s["stop"] - s["start"]
             s[key] = number(arg, lo, hi)
-            if s["start"] >= s["stop"]:
-                raise ScpiFault(-221, "Settings conflict")
+            # coupled edges, as swept analysers do: an edge set past the other one drags it along
+            if key == "start" and s["start"] >= s["stop"]:
+                s["stop"] = s["start"] + span
+            elif key == "stop" and s["stop"] <= s["start"]:
+                s["start"] = max(0.0, s["stop"] - span)
+                if s["start"] >= s["stop"]:
+                    raise ScpiFault(-221, "Settings conflict")
             return None
         if h in ("DET", "DET:FUNC"):
             if query:
