@@ -129,3 +129,15 @@ def test_lost_analyser_keeps_measured_bands(tmp_path):
     assert [x["band"] for x in lines[:3]] == [b.name for b in bands[:3]]
     assert lines[3]["event"] == "instrument_error"
     assert lines[3]["sweeps_measured"] == 3 and lines[3]["sweeps_not_measured"] == 5
+
+
+def test_extrapolation_factors_shown_beside_measured_values(point):
+    from meterlink.physics.extrapolation import lte_crs
+    res, _, _, _ = point
+    f = lte_crs(600)                                   # 10 MHz = 50 RB = 600 subcarriers, worked by hand: x sqrt(600)
+    a = assess_point(res, "icnirp-2020", "public", factors={"Pole LTE 800": f})
+    row = next(b for b in a["bands"] if b["name"] == "Pole LTE 800")
+    assert row["extrapolation"]["power_factor"] == 600 and row["extrapolation"]["inputs"]["n_subcarriers"] == 600
+    assert row["e_at_max_v_per_m"] == pytest.approx(row["e_v_per_m"] * math.sqrt(600))
+    assert a["total_exposure_ratio_at_max"] > a["total_exposure_ratio"]
+    assert "extrapolation" not in next(b for b in a["bands"] if b["name"] == "Tor FM A")
