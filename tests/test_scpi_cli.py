@@ -76,3 +76,36 @@ def test_bad_band_file_is_one_line(tmp_path):
     r = subprocess.run([*CMD, "selective", "TCPIP::127.0.0.1::1::SOCKET", "--bands", str(bad), "--journal",
                         str(tmp_path / "j")], capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "band 1: freq_hz" in r.stderr and "\n" not in r.stderr.strip()
+
+
+@pytest.mark.slow   # about 50 s on two cores: the --quick plan's 70 steps over SCPI and a pty at speed 5
+def test_lab_run_on_the_simulated_scpi_bench(tmp_path):
+    bench = tmp_path / "bench.toml"
+    p = subprocess.Popen([*CMD, "scpi-sim", "--lab-bench", str(bench)], stdout=subprocess.PIPE,
+                         stderr=subprocess.PIPE, text=True)
+    try:
+        names = [p.stdout.readline().split()[0] for _ in range(4)]
+        assert names == ["generator", "power_meter", "rotator", "meter"], p.stderr.read() if p.poll() else names
+        r = subprocess.run([*CMD, "lab", "run", "--bench", str(bench), "--quick", "--repeats", "2", "--out",
+                            str(tmp_path / "cert"), "--json"], capture_output=True, text=True, timeout=300)
+        assert r.returncode == 0, r.stderr
+        out = json.loads(r.stdout)
+        assert (tmp_path / "cert" / "certificate.toml").exists() and "qualified person" in out["safety"]
+        assert 0 < out["u_expanded_db"] < 3 and len(out["cf_db"]["freq_hz"]) == 6
+    finally:
+        p.send_signal(signal.SIGTERM)
+        p.communicate(timeout=10)
+    assert p.returncode == 0
+
+
+def test_lab_run_bench_errors_are_one_line(tmp_path):
+    bench = tmp_path / "bench.toml"
+    bench.write_text('[instruments]\ngenerator = "TCPIP::127.0.0.1::1::SOCKET"\npower_meter = "TCPIP::127.0.0.1::1::SOCKET"\n'
+                     'rotator = "TCPIP::127.0.0.1::1::SOCKET"\nmeter_port = "/nonexistent"\n[chain]\ncoupling_db = 20\n')
+    r = subprocess.run([*CMD, "lab", "run", "--bench", str(bench), "--temperatures", "5,40", "--out",
+                        str(tmp_path / "c1")], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "climatic chamber" in r.stderr and "\n" not in r.stderr.strip()
+    r = subprocess.run([*CMD, "lab", "run", "--bench", str(bench), "--out", str(tmp_path / "c2")],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "cannot open" in r.stderr and "\n" not in r.stderr.strip()
+    assert "Traceback" not in r.stderr

@@ -3,7 +3,8 @@
 Dialects: the generator and power meter speak the SCPI 1999.0 SOURce/OUTPut and SENSe/CALibration/
 FETCh subsystems (FREQ, POW, OUTP ON|OFF; CAL:ZERO:AUTO ONCE, SENS:FREQ, READ?), as most makers take
 them. A rotator (turntable, positioner) has no standard command set; this class speaks a small SCPI-
-styled one: POS:ANGL <deg>, POS:ANGL?, *OPC? after the move. A maker's own positioner needs its strings
+styled one: POS:ANGL <deg>, POS:ANGL?, *OPC? after the move; a multi-axis positioner also takes
+POS:DIR x,y,z and POS:TILT <deg>. A maker's own positioner needs its strings
 swapped in the class constants.
 """
 
@@ -56,16 +57,25 @@ class PowerMeter:
 class Rotator:
     """Azimuth angle of a turntable or antenna positioner, degrees."""
 
-    MOVE_TIMEOUT_S = 60.0
-
-    def __init__(self, session: ScpiSession):
+    def __init__(self, session: ScpiSession, move_timeout_s: float = 60.0):
         self.s = session
+        self.move_timeout_s = float(move_timeout_s)
 
     def move(self, angle_deg: float) -> None:
-        self.s.wait_complete(f"POS:ANGL {angle_deg:.2f}", timeout_s=self.MOVE_TIMEOUT_S)
+        self.s.wait_complete(f"POS:ANGL {angle_deg:.2f}", timeout_s=self.move_timeout_s)
         errs = self.s.errors()
         if errs:
             raise InstrumentError(f"{self.s.address}: POS:ANGL {angle_deg:.2f}: instrument reports {' | '.join(errs)}")
 
     def angle_deg(self) -> float:
         return self.s.query_float("POS:ANGL?")
+
+    def place(self, direction, tilt_deg: float) -> None:
+        """A multi-axis positioner: the field's direction in the probe holder's axes (POS:DIR x,y,z) and the
+        holder's tilt (POS:TILT deg); a plain turntable answers these with an error, and the operator places."""
+        x, y, z = (float(v) for v in direction)
+        self.s.wait_complete(f"POS:DIR {x:.6f},{y:.6f},{z:.6f};POS:TILT {float(tilt_deg):.2f}",
+                             timeout_s=self.move_timeout_s)
+        errs = self.s.errors()
+        if errs:
+            raise InstrumentError(f"{self.s.address}: POS:DIR/POS:TILT: instrument reports {' | '.join(errs)}")

@@ -85,7 +85,7 @@ class ScpiSession:
     def _fail(self, command: str, exc: Exception) -> InstrumentError:
         text = str(exc)
         if "TMO" in text or "imeout" in text:
-            why = f"no answer within {self.timeout_s:g} s"
+            why = f"no answer within {self._res.timeout / 1000 if self._res is not None else self.timeout_s:g} s"
         elif "CONN" in text or "closed" in text.lower() or isinstance(exc, (ConnectionError, BrokenPipeError)):
             why = "the connection was lost"
         else:
