@@ -83,3 +83,27 @@ def test_bench_file_errors_name_the_key(tmp_path):
         load_bench(p)
     p.write_text(p.read_text().replace('"twenty"', "20.0"))
     assert load_bench(p).coupling_db == 20.0
+
+
+def test_lab_run_keeps_the_steps_taken_when_the_bench_fails(tmp_path, capsys):
+    """`lab run --bench` stopping part-way (the generator cannot reach 10 V/m under its limit): exit 2, one line,
+    and the steps already measured saved as an importable readings file with an event giving the counts."""
+    import json
+
+    from meterlink.cli import main
+    from meterlink.lab.procedures import import_csv
+
+    with ScpiLabRig(SESSION.method, seed=3, speed=5.0) as rig:
+        a = rig.addresses()
+        bench = tmp_path / "bench.toml"
+        bench.write_text(f'[instruments]\ngenerator = "{a["generator"]}"\npower_meter = "{a["power_meter"]}"\n'
+                         f'rotator = "{a["rotator"]}"\nmeter_port = "{rig.port}"\npositioner = true\n'
+                         f'[chain]\ncoupling_db = {COUPLING_DB}\npath_gain_db = 25.0\nmax_level_dbm = -20.0\n')
+        code = main(["lab", "run", "--bench", str(bench), "--quick", "--repeats", "2", "--out", str(tmp_path / "o")])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and "\n" not in err and "max_level_dbm" in err and "steps measured, saved in" in err
+    ev = json.loads((tmp_path / "o" / "partial-event.json").read_text())
+    assert ev["steps_measured"] >= 2 and ev["steps_measured"] + ev["steps_not_measured"] == 70
+    kept = import_csv(tmp_path / "o" / "partial-readings.csv", SESSION)
+    assert len(kept) == ev["steps_measured"] and kept[0].step.procedure == "zero"
+    assert not (tmp_path / "o" / "certificate.toml").exists()

@@ -110,11 +110,36 @@ def _scpi_bench(session, args):
     def place(direction, tilt_deg):
         d = ", ".join(f"{v:+.3f}" for v in direction)
         input(f"place the probe: field along ({d}) in holder axes, tilt {tilt_deg:g} deg; press Enter ")
+    done = []     # StepResults as they are taken: saved if an instrument fails part-way
     with ScpiController(bench_file, session.method, place=place) as ctl, \
             MeterLink(bench_file.meter_port, interval_ms=100) as link:
         bench = ScpiMeterBench(ctl, link)
         bench.wait_connected()
-        return pr.run_plan(plan, bench, repeats=args.repeats)
+        try:
+            return pr.run_plan(plan, bench, repeats=args.repeats,
+                               progress=lambda i, n, st: done.append(pr.StepResult(st, bench.last_counts)))
+        except MeterlinkError as exc:
+            raise MeterlinkError(f"{exc}; {_save_partial(args.out, done, len(plan), str(exc))}") from None
+
+
+def _save_partial(out, done, planned: int, why: str) -> str:
+    """Write the steps taken so far (readings CSV, importable with 'lab import') and an event; say where."""
+    import datetime as dt
+    import json
+    from pathlib import Path
+
+    from meterlink.lab import procedures as pr
+
+    d = Path(out)
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+        pr.export_csv(done, d / "partial-readings.csv")
+        (d / "partial-event.json").write_text(json.dumps({
+            "event": "bench_stopped", "utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+            "reason": why, "steps_measured": len(done), "steps_not_measured": planned - len(done)}) + "\n")
+    except OSError as exc:
+        return f"{len(done)} of {planned} steps measured, NOT saved ({exc.strerror})"
+    return f"{len(done)} of {planned} steps measured, saved in {d / 'partial-readings.csv'}"
 
 
 def _temperatures(text: str) -> list[float]:

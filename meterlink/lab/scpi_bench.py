@@ -163,6 +163,7 @@ class ScpiMeterBench:
         self._mb = MeterBench(controller, link, timeout_s=timeout_s, settle_readings=settle_readings)
         self.link, self.quiet_s = link, float(quiet_s)
         self.discarded = 0
+        self.last_counts = None
 
     def wait_connected(self):
         return self._mb.wait_connected()
@@ -182,4 +183,5 @@ class ScpiMeterBench:
                 self.discarded += 1
 
     def read(self, n: int):
-        return self._mb.read(n)
+        self.last_counts = self._mb.read(n)
+        return self.last_counts
