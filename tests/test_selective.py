@@ -69,3 +69,16 @@ def test_field_from_input_power_by_hand():
 
 def test_three_orientations_add_in_power():
     assert combine_orientations([3.0, 4.0, 12.0]) == pytest.approx(13.0)
+
+
+def test_many_bands_of_one_wide_sweep_by_hand():
+    # two flat blocks of -90 dBm/Hz (1e-12 W/Hz): 2 MHz and 5 MHz wide -> 2e-6 W and 5e-6 W, as by hand
+    # (plus half a bin at each edge, (N+1)/N with N = width / spacing)
+    rbw = 100e3
+    f = np.linspace(0.0, 100e6, 40001)                        # 2.5 kHz spacing
+    density = np.where(np.abs(f - 20e6) <= 1e6, 1.0, 0.0) + np.where(np.abs(f - 60e6) <= 2.5e6, 1.0, 0.0)
+    level = np.where(density > 0, -90.0 + 10 * math.log10(GAUSSIAN_NBW_FACTOR * rbw), -300.0)
+    from meterlink.physics.selective import channel_powers_w
+    p = channel_powers_w(f, level, rbw, [(19e6, 21e6), (57.5e6, 62.5e6)])
+    assert p[0] == pytest.approx(2e-6 * 801 / 800, rel=1e-9)
+    assert p[1] == pytest.approx(5e-6 * 2001 / 2000, rel=1e-9)
