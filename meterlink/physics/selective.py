@@ -14,6 +14,7 @@ single-axis antenna add in power: E = sqrt(Ex^2 + Ey^2 + Ez^2).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
@@ -111,6 +112,5 @@ def selective_budget(cert, freq_hz: float, chain: ChainSpec = ChainSpec(), k: fl
              Component("RBW noise bandwidth and detector", chain.rbw_detector_db, "dB", "rectangular")]
     if chain.repeatability_db > 0:
         extra.append(Component("repeatability", chain.repeatability_db, "dB", "normal", 1.0))
-    import dataclasses
     own = tuple(c for c in cert.uncertainties if c.name != "receiver_level")
     return measurement_budget(dataclasses.replace(cert, uncertainties=own), freq_hz, k=k, extra=extra)
