@@ -43,6 +43,9 @@ def add_arguments(parser) -> None:
     run.add_argument("--repeats", type=int, default=5, help="readings per step (default 5)")
     run.add_argument("--quick", action="store_true", help="fewer frequencies, levels and angles")
     run.add_argument("--drift-db", type=float, default=0.0, help="simulate a sensitivity change of axis x (dB)")
+    run.add_argument("--bench", metavar="FILE",
+                     help="drive a bench of SCPI instruments (generator, power meter, rotator by VISA address) and "
+                          "the meter on its serial port, as named in this bench file (docs/instruments.md)")
     run.add_argument("--temperatures", metavar="LIST",
                      help="also measure the temperature coefficient in a climatic chamber at these degC, "
                           "e.g. 5,15,23,30,40 (the simulated bench has one)")
@@ -90,6 +93,57 @@ def _simulated(session, args):
                 def tick(i, n, st):
                     prog.update(task, completed=i, description=f"{st.procedure} {st.freq_hz / 1e6:g} MHz")
                 return pr.run_plan(plan, bench, repeats=args.repeats, progress=tick)
+
+
+def _scpi_bench(session, args):
+    """The same plan on SCPI instruments named in a bench file; the operator places the probe when asked."""
+    from meterlink.device.link import MeterLink
+    from meterlink.errors import MeterlinkError
+    from meterlink.lab import procedures as pr
+    from meterlink.lab.scpi_bench import ScpiController, ScpiMeterBench, load_bench
+
+    if args.temperatures:
+        raise MeterlinkError("--temperatures: a SCPI bench file names no climatic chamber")
+    bench_file = load_bench(args.bench)
+    if args.quick:
+        plan = pr.full_plan(session, freqs=(3e7, 1e8, 3e8, 1e9, 3e9, 6e9), levels=(0.1, 0.3, 1, 3, 10, 20),
+                            iso_step_deg=30)
+    else:
+        plan = pr.full_plan(session, levels=pr.TABLE_LEVELS_V_PER_M[:-2])
+
+    def place(direction, tilt_deg):
+        d = ", ".join(f"{v:+.3f}" for v in direction)
+        input(f"place the probe: field along ({d}) in holder axes, tilt {tilt_deg:g} deg; press Enter ")
+    done = []     # StepResults as they are taken: saved if an instrument fails part-way
+    with ScpiController(bench_file, session.method, place=place) as ctl, \
+            MeterLink(bench_file.meter_port, interval_ms=100) as link:
+        bench = ScpiMeterBench(ctl, link)
+        bench.wait_connected()
+        try:
+            return pr.run_plan(plan, bench, repeats=args.repeats,
+                               progress=lambda i, n, st: done.append(pr.StepResult(st, bench.last_counts)))
+        except MeterlinkError as exc:
+            raise MeterlinkError(f"{exc}; {_save_partial(args.out, done, len(plan), str(exc))}") from None
+
+
+def _save_partial(out, done, planned: int, why: str) -> str:
+    """Write the steps taken so far (readings CSV, importable with 'lab import') and an event; say where."""
+    import datetime as dt
+    import json
+    from pathlib import Path
+
+    from meterlink.lab import procedures as pr
+
+    d = Path(out)
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+        pr.export_csv(done, d / "partial-readings.csv")
+        (d / "partial-event.json").write_text(json.dumps({
+            "event": "bench_stopped", "utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+            "reason": why, "steps_measured": len(done), "steps_not_measured": planned - len(done)}) + "\n")
+    except OSError as exc:
+        return f"{len(done)} of {planned} steps measured, NOT saved ({exc.strerror})"
+    return f"{len(done)} of {planned} steps measured, saved in {d / 'partial-readings.csv'}"
 
 
 def _temperatures(text: str) -> list[float]:
@@ -184,7 +238,7 @@ def run(args) -> int:
         raise MeterlinkError(PDF_HINT)
     _fresh_out(out)
     if args.action == "run":
-        results = _simulated(session, args)
+        results = _scpi_bench(session, args) if args.bench else _simulated(session, args)
     else:
         results = pr.import_csv(args.csv, session)
     # the number is chosen under the register's lock and entered only once the certificate is written

@@ -1,0 +1,74 @@
+"""meterlink selective: a frequency-selective point with a spectrum analyser over SCPI."""
+
+from __future__ import annotations
+
+HELP = "measure one point band by band with a spectrum analyser (VISA address) and a calibrated antenna"
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("address", help="VISA address of the analyser, e.g. TCPIP::192.0.2.7::5025::SOCKET")
+    parser.add_argument("--bands", required=True, metavar="FILE", help="band file ([[band]] tables, docs/selective.md)")
+    parser.add_argument("--antenna-cert", default="demo-dipole", metavar="CERT",
+                        help="antenna certificate (meterlink-cert/1, kind dipole-receiver) with AF and cable loss")
+    parser.add_argument("--antenna", choices=("isotropic", "three"), default="isotropic",
+                        help="isotropic antenna, or a single-axis antenna turned to three orthogonal orientations")
+    parser.add_argument("--standard", default="icnirp-2020", help="standard of the summation rule (default icnirp-2020)")
+    parser.add_argument("--tier", default="public", choices=("public", "occupational"))
+    parser.add_argument("--journal", required=True, metavar="FILE", help="JSON-lines file each band is written to as measured")
+    parser.add_argument("--analyser-level-db", type=float, default=0.5, metavar="DB",
+                        help="analyser absolute level accuracy, half-width in dB (datasheet; default 0.5)")
+    parser.add_argument("--sweep-time", type=float, default=0.1, metavar="S", help="sweep time per band (default 0.1 s)")
+    parser.add_argument("--timeout", type=float, default=5.0, metavar="S", help="instrument answer timeout (default 5 s)")
+    parser.add_argument("--json", action="store_true", help="print the result as JSON")
+
+
+def run(args) -> int:
+    import json
+
+    from meterlink.cautions import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.instruments.analyzer import SpectrumAnalyzer
+    from meterlink.instruments.session import open_session
+    from meterlink.physics.certificate import load_certificate
+    from meterlink.physics.selective import ChainSpec
+    from meterlink.survey.capture import is_dipole
+    from meterlink.survey.selective import Journal, assess_point, load_bands, measure_point
+
+    for name in ("sweep_time", "timeout"):
+        if not 0 < getattr(args, name) <= 3600:
+            raise MeterlinkError(f"--{name.replace('_', '-')} {getattr(args, name)}: between 0 and 3600 s")
+    if not 0 <= args.analyser_level_db <= 10:
+        raise MeterlinkError(f"--analyser-level-db {args.analyser_level_db}: between 0 and 10 dB")
+    bands = load_bands(args.bands)
+    cert = load_certificate(args.antenna_cert)
+    if not is_dipole(cert):
+        raise MeterlinkError(f"--antenna-cert {args.antenna_cert}: not an antenna (dipole-receiver) certificate")
+
+    def orient(axis):
+        if args.antenna == "three":
+            input(f"turn the antenna to orientation {axis} and press Enter ")
+
+    journal = Journal(args.journal)
+    try:
+        with open_session(args.address, timeout_s=args.timeout) as s:
+            journal.write({"event": "analyser", "address": args.address, "idn": s.idn})
+            res = measure_point(SpectrumAnalyzer(s), bands, cert, antenna=args.antenna, orient=orient,
+                                chain=ChainSpec(analyser_level_db=args.analyser_level_db),
+                                sweep_time_s=args.sweep_time, journal=journal)
+        out = assess_point(res, args.standard, args.tier)
+        journal.write({"event": "result", **out})
+    finally:
+        journal.close()
+    if args.json:
+        print(json.dumps(out, default=float))
+        return 0
+    print(f"{'band':18s} {'f/MHz':>9s} {'E/(V/m)':>9s} {'U/dB':>6s} {'ratio':>8s} {'share':>6s}")
+    for b in out["bands"]:
+        print(f"{b['name'][:18]:18s} {b['freq_hz'] / 1e6:9.3f} {b['e_v_per_m']:9.3f} {b['u_expanded_db']:6.2f} "
+              f"{b['exposure_ratio']:8.4f} {100 * b['share']:5.1f}%")
+    print(f"total exposure ratio ({args.standard} {args.tier}, summation rule): {out['total_exposure_ratio']:.4f}")
+    print(f"check status: {out['check_status']}")
+    for m in out["messages"]:
+        print(f"note: {m}")
+    print(SAFETY_LINE)
+    return 0
