@@ -137,8 +137,6 @@ class Monitor:
             load_certificate(m.certificate)
         self.store = Store(station.database)
         self.conn = self.store.db.conn
-        with self.store.write():
-            derived.ensure_schema(self.conn)
         self._station_events: list[dict] = []
         self.station_id, prev = self._station_record()
         self.hooks = HookRunner()                        # alarm commands (meterlink/station/hooks.py)
@@ -159,9 +157,6 @@ class Monitor:
         prev = None
         text = st.path.read_text(encoding="utf-8") if st.path.exists() else ""
         with self.store.write():
-            self.conn.execute("CREATE TABLE IF NOT EXISTS mon_storage (station_id INTEGER PRIMARY KEY, "
-                              "storing INTEGER, "
-                              "since_utc REAL, error TEXT, pending_readings INTEGER, checked_utc REAL)")
             if row is None:
                 self.conn.execute("INSERT INTO mon_station (name, created_utc, runs) VALUES (?,?,0)",
                                   (st.name, time.time()))
