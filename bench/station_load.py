@@ -85,7 +85,8 @@ def run_station(tmp, n: int, intervals: int = 3, interval_s: float = 20.0, settl
                 c0, n0, w0, f0 = proc_cpu_s(mon.pid), stored(db), time.monotonic(), farm.cpu_s()
                 time.sleep(interval_s)
                 c1, n1, w1, f1 = proc_cpu_s(mon.pid), stored(db), time.monotonic(), farm.cpu_s()
-                out["samples"].append({"cpu_s": c1 - c0, "readings": n1 - n0, "wall_s": w1 - w0, "farm_cpu_s": f1 - f0})
+                out["samples"].append({"cpu_s": c1 - c0, "readings": n1 - n0, "wall_s": w1 - w0, "farm_cpu_s": f1 - f0,
+                                       "offered": n * (w1 - w0) / reading_interval_s})
             out["rss_mib"], out["hwm_mib"] = proc_rss_mb(mon.pid)
         finally:
             mon.send_signal(signal.SIGTERM)
