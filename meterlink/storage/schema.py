@@ -139,7 +139,7 @@ def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
     db.execute("CREATE UNIQUE INDEX spectra_key ON spectra (session_id, boot, epoch, seq)")
 
 
-# The monitoring tables (docs/schema.md, "Monitoring tables"; written by meterlink.station). Before
+# The monitoring tables (docs/schema.md, "Monitoring tables"; written by the station monitor). Before
 # version 5 the monitor created them itself with these same statements, so a version-4 file may hold
 # them already: IF NOT EXISTS keeps those, and _schema_v5_monitoring adds any column they lack.
 MONITORING_SQL = """
