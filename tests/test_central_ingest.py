@@ -141,7 +141,7 @@ def test_tokens_and_station_isolation(central, tmp_path):
     assert count(dsn, "SELECT count(*) FROM blocks WHERE station_uuid=%s", (su_a,)) == 3
     # station B may not write into station A's database file, even with its own valid token
     code, ans = post(url, {"format": 1, "station_uuid": su_b, "file_uuid": _file_uuid(db), "batch_no": 99,
-                           "schema_version": 5}, tok_b)
+                           "schema_version": 6}, tok_b)
     assert code == 403 and "belongs to another station" in ans["reason"]
     conn = admin.connect(dsn)
     admin.revoke_token(conn, tid_a)
@@ -158,7 +158,7 @@ def test_bad_bodies_are_refused_with_a_reason_and_store_nothing(central, tmp_pat
     db = tmp_path / "b.db"
     make_station_db(db, "bad-bodies", n_blocks=2, n_events=0)
     fid = _file_uuid(db)
-    good = {"format": 1, "station_uuid": su, "file_uuid": fid, "batch_no": 1, "schema_version": 5,
+    good = {"format": 1, "station_uuid": su, "file_uuid": fid, "batch_no": 1, "schema_version": 6,
             "table": "events", "columns": ["id", "session_id", "t_utc", "kind", "severity", "message", "detail"],
             "rows": [[1, None, 1.7e9, "k", "info", "m", None]]}
     cases = [
@@ -273,7 +273,7 @@ def test_a_station_clock_far_off_still_lands_in_its_own_partitions(central, tmp_
     assert count(dsn, "SELECT count(*) FROM blocks WHERE station_uuid=%s", (su,)) == 4
     assert count(dsn, "SELECT count(*) FROM pg_tables WHERE tablename IN ('blocks_y2000m01', 'blocks_y2040m01')") == 2
     code, ans = post(url, {"format": 1, "station_uuid": su, "file_uuid": _file_uuid(db), "batch_no": 1000,
-                           "schema_version": 5, "table": "events",
+                           "schema_version": 6, "table": "events",
                            "columns": ["id", "session_id", "t_utc", "kind", "severity", "message", "detail"],
                            "rows": [[9, None, 1e300, "k", "info", "m", None]]}, token)
     assert code == 400 and "outside the years" in ans["reason"]

@@ -14,10 +14,12 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
+import numpy as np
+
 from meterlink.device.clock import HALF_TICK, ClockMapping, DeviceClock
 from meterlink.errors import LinkError, ProtocolError
 from meterlink.safetext import clean_text
-from meterlink.device.protocol import (Ack, Axes, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident,
+from meterlink.device.protocol import (Ack, Axes, AxesBatch, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident,
                                 Junk, PROTOCOL_MAJOR, SetInterval, Spectrum, Status, encode_message,
                                 parse_payload, seq_delta)
 from meterlink.device.transport import Link, SerialLink
@@ -51,6 +53,23 @@ class Reading:
     tick_ms: int
     t_utc: float
     axes: Axes
+
+
+@dataclass(frozen=True)
+class ReadingBatch:
+    """Consecutive readings of one boot as arrays (a link started with ``batched=True``): each row is
+    what a Reading would carry; seq rises by one from row to row and no frame between them is missing."""
+
+    boot: int
+    seq: Any            # int64 (N,)
+    tick_ms: Any        # int64 (N,), unwrapped
+    t_utc: Any          # float (N,)
+    flags: Any          # int64 (N,)
+    range_index: Any    # int64 (N,)
+    raw: Any            # int64 (N, 3) [x, y, z]
+
+    def __len__(self) -> int:
+        return int(self.seq.size)
 
 
 @dataclass(frozen=True)
@@ -121,7 +140,8 @@ class MeterLink:
                  link_factory: Callable[[], Link] | None = None, max_reconnects: int | None = None,
                  backoff_initial_s: float = 0.1, backoff_max_s: float = 5.0, who_retries: int = 5,
                  reply_timeout_s: float = 0.5, min_silence_s: float = 3.0, drift_report_s: float = 10.0,
-                 queue_max: int = 20_000, read_timeout_s: float = 0.25, wake: threading.Event | None = None):
+                 queue_max: int = 20_000, read_timeout_s: float = 0.25, wake: threading.Event | None = None,
+                 batched: bool = False, read_pause_s: float = 0.0):
         if link_factory is None:
             if not port:
                 raise LinkError("no serial port given")
@@ -141,6 +161,11 @@ class MeterLink:
         # idle port goes unchecked (stop request, silence watchdog), so it need not be short.
         self.read_timeout_s = read_timeout_s
         self._wake = wake           # set after every item queued (and at the end), if given
+        # batched: runs of clean, consecutive AXES frames come out as one ReadingBatch (decoded in
+        # numpy) instead of a Reading each; read_pause_s: while streaming, a read that brought little
+        # is followed by this pause, so that the next one gathers several frames (fewer wake-ups)
+        self.batched, self.read_pause_s = bool(batched), float(read_pause_s)
+        self._last_read_n = 0
         self.stats = LinkStats()
         self.clock = DeviceClock()
         self.ident: Ident | None = None
@@ -210,6 +235,8 @@ class MeterLink:
                             self._pump(self.read_timeout_s)
                         except _Restart:
                             self._handshake()
+                        if self.read_pause_s and self._last_read_n < 1024:
+                            self._stop.wait(self.read_pause_s)
                         if time.monotonic() >= next_drift:
                             next_drift = time.monotonic() + self.drift_report_s
                             self._report_drift()
@@ -260,8 +287,9 @@ class MeterLink:
     def _pump(self, timeout_s: float = 0.05) -> list[tuple[Frame, Any]]:
         """Read once, handle everything that arrived; return (frame, message) pairs handled."""
         assert self._link is not None
-        data = self._link.read(4096, timeout_s)
+        data = self._link.read(16384 if self.batched else 4096, timeout_s)
         now = time.monotonic()
+        self._last_read_n = len(data)
         if not data:
             silence = now - self._last_frame_mono
             ratio = self.clock.rate_ratio() or 1.0
@@ -273,7 +301,16 @@ class MeterLink:
             return []
         junk: dict[str, int] = {}
         handled = []
-        for item in self._reader.feed(data):
+        items = self._reader.feed_batched(data) if self.batched else self._reader.feed(data)
+        for item in items:
+            if isinstance(item, AxesBatch):
+                self._last_frame_mono = now
+                if not self._deliver_batch(item, now):   # not a plain run: frame by frame, as feed() gives it
+                    for frame in item.frames():
+                        msg = self._handle(frame, now)
+                        if msg is not None:
+                            handled.append((frame, msg))
+                continue
             if isinstance(item, Junk):
                 junk[item.kind] = junk.get(item.kind, 0) + item.n_bytes
                 if item.kind == "crc":
@@ -393,6 +430,34 @@ class MeterLink:
         else:
             self.stats.statuses += 1
             self._put(StatusReport(self._boot, frame.seq, tick, t_utc, msg))
+
+    def _deliver_batch(self, b: AxesBatch, now: float) -> bool:
+        """Deliver a run of AXES frames as one ReadingBatch when it needs no frame-by-frame attention:
+        the clock is mapped, seq follows the last frame by one each, the tick neither wraps nor
+        goes back. Returns False (nothing done) otherwise."""
+        if self.clock.mapping is None or self._boot is None or self._last_seq is None or self._last_tick is None:
+            return False
+        seq, tick = b.seq, b.tick_ms
+        if seq_delta(self._last_seq, int(seq[0])) != 1 or (seq.size > 1 and not bool(np.all(np.diff(seq) == 1))):
+            return False
+        steps = np.diff(tick, prepend=self._last_tick)
+        if not bool(np.all((steps >= 0) & (steps < HALF_TICK))):
+            return False
+        n = len(b)
+        self.stats.frames += n
+        self.stats.readings += n
+        first = self.clock.unwrap(int(tick[0]))
+        if n > 1:
+            self.clock.unwrap(int(tick[-1]))
+        ticks = tick - int(tick[0]) + first
+        self.clock.utc_of(int(ticks[-1]))        # the latest time given out (a later boot starts after it)
+        m = self.clock.mapping
+        t_utc = m.utc0_s + (ticks - m.tick0_ms) / 1000.0
+        for tk in ticks[-256:].tolist():         # the drift estimate keeps the last 256 pairs anyway
+            self.clock.observe(now, tk)
+        self._last_seq, self._last_tick = int(seq[-1]), int(tick[-1])
+        self._put(ReadingBatch(self._boot, seq, ticks, t_utc, b.flags, b.range_index, b.raw))
+        return True
 
     # -- commands ------------------------------------------------------------------------------
     def _send(self, ftype: int, msg) -> int:

@@ -44,6 +44,61 @@ class Link:
         self.close()
 
 
+def _high_fd(ser) -> int | None:
+    """The descriptor of a local port when it or pyserial's pipes are numbered 1024 or above (a host with
+    hundreds of ports open), else None.
+
+    pyserial waits with select(), which cannot take such a descriptor (FD_SETSIZE); these ports are
+    read and written here with poll() instead. Ports below stay on pyserial's own path.
+    """
+    fd = getattr(ser, "fd", None)
+    if not isinstance(fd, int) or fd < 0:
+        return None
+    # pyserial's select() also waits on its own abort pipes, which may be the ones numbered that high
+    fds = [fd, *(getattr(ser, a, None) for a in ("pipe_abort_read_r", "pipe_abort_write_r"))]
+    return fd if max(f for f in fds if isinstance(f, int)) >= 1024 else None
+
+
+def _poll_read(fd: int, max_bytes: int, timeout_s: float) -> bytes:
+    """Up to max_bytes, waiting at most timeout_s for the first; b"" if none came. A port that reports
+    readiness and gives nothing (the other end gone) raises OSError, as pyserial's read would fail."""
+    import os
+    import select
+
+    p = select.poll()
+    p.register(fd, select.POLLIN)
+    if not p.poll(max(0, int(timeout_s * 1000))):
+        return b""
+    try:
+        data = os.read(fd, max_bytes)
+    except BlockingIOError:
+        return b""
+    if not data:
+        raise OSError("device reports readiness to read but returned no data (device disconnected?)")
+    return data
+
+
+def _poll_write(fd: int, data: bytes, timeout_s: float) -> None:
+    """Write all of data, waiting with poll() while the port's buffer is full (OSError after timeout_s)."""
+    import os
+    import select
+    import time
+
+    view = memoryview(data)
+    deadline = time.monotonic() + timeout_s
+    p = select.poll()
+    p.register(fd, select.POLLOUT)
+    while view:
+        try:
+            view = view[os.write(fd, view):]
+            continue
+        except BlockingIOError:
+            pass
+        left = deadline - time.monotonic()
+        if left <= 0 or not p.poll(int(left * 1000) + 1):
+            raise OSError("write timeout")
+
+
 def _one_line(exc: BaseException) -> str:
     return " ".join(str(exc).split()) or type(exc).__name__
 
@@ -90,6 +145,9 @@ class SerialLink(Link):
         return data
 
     def _read_some(self, ser, max_bytes: int, timeout_s: float) -> bytes:
+        fd = _high_fd(ser)
+        if fd is not None:
+            return _poll_read(fd, max_bytes, timeout_s)
         waiting = ser.in_waiting
         if waiting:
             return ser.read(min(waiting, max_bytes))
@@ -108,7 +166,11 @@ class SerialLink(Link):
 
         ser = self._require()
         try:
-            ser.write(data)
+            fd = _high_fd(ser)
+            if fd is not None:
+                _poll_write(fd, data, 2.0)
+            else:
+                ser.write(data)
             ser.flush()
         except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
             self._drop()

@@ -1,7 +1,7 @@
 """Station side of the sync: the station's SQLite file is the outbox (docs/network.md).
 
 Once a station is set to sync, a trigger on each synced table logs every inserted row in ``sync_log``
-(schema 5), and the rows already there are logged once, in the same transaction. A batch is the next
+(schema 6), and the rows already there are logged once, in the same transaction. A batch is the next
 rows of one table after its cursor; the cursor advances, and the acknowledged log entries go, in one
 local transaction only after the central store acknowledged the batch. Raw readings, where sent,
 follow their own id instead of the log (a trigger per reading would cost as much as the reading).

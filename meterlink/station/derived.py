@@ -4,7 +4,7 @@ Everything is in the power domain: a field E is accumulated as the integral of E
 root is taken only when a value is read out (RMS over time). The sampling model is that of
 :mod:`meterlink.physics.averaging`: a sample holds its value until the next sample, never longer than
 ``hold_s`` (3 nominal intervals); uncovered time is a gap, never a zero. The tables live next to
-the Store's own (``CREATE TABLE IF NOT EXISTS``; docs/monitoring.md) and are written in the same
+the Store's own (schema version 5, meterlink/storage/schema.py; docs/schema.md) and are written in the same
 transaction as the readings they come from, so a crash leaves them consistent.
 """
 
@@ -17,39 +17,14 @@ from itertools import islice
 
 import numpy as np
 
-SCHEMA = """
-CREATE TABLE IF NOT EXISTS mon_station (
-    id INTEGER PRIMARY KEY, name TEXT NOT NULL UNIQUE, config_path TEXT, config_text TEXT,
-    standard TEXT, tier TEXT, convention TEXT, block_s REAL, windows_s TEXT,
-    latitude_deg REAL, longitude_deg REAL, elevation_m REAL, timezone TEXT,
-    created_utc REAL, started_utc REAL, heartbeat_utc REAL, pid INTEGER, state TEXT, runs INTEGER DEFAULT 0);
-CREATE TABLE IF NOT EXISTS mon_meter (
-    station_id INTEGER NOT NULL, meter TEXT NOT NULL, session_id INTEGER, port TEXT, certificate TEXT,
-    freq_hz REAL, band_lo_hz REAL, band_hi_hz REAL, e_ref_v_per_m REAL, s_ref_w_per_m2 REAL,
-    cert_due TEXT, last_seen_utc REAL, link_state TEXT, battery_pct REAL, temperature_degc REAL,
-    drift_ppm REAL, last_e_v_per_m REAL, u_expanded_db REAL,
-    PRIMARY KEY (station_id, meter));
-CREATE TABLE IF NOT EXISTS mon_block (
-    station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, t_start_utc REAL NOT NULL,
-    block_s REAL NOT NULL, energy REAL NOT NULL, covered_s REAL NOT NULL, n INTEGER NOT NULL,
-    e_rms_v_per_m REAL, e_max_v_per_m REAL, complete INTEGER NOT NULL, n_overrange INTEGER NOT NULL,
-    PRIMARY KEY (station_id, meter, band, t_start_utc));
-CREATE TABLE IF NOT EXISTS mon_running (
-    station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, window_s REAL NOT NULL,
-    t_start_utc REAL NOT NULL, e_end_v_per_m REAL, coverage_end REAL, e_max_v_per_m REAL, t_max_utc REAL,
-    PRIMARY KEY (station_id, meter, band, window_s, t_start_utc));
-CREATE TABLE IF NOT EXISTS mon_alarm (
-    station_id INTEGER NOT NULL, rule TEXT NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL,
-    state TEXT NOT NULL, t_on_utc REAL, peak_t_utc REAL, peak_value REAL, last_t_utc REAL,
-    PRIMARY KEY (station_id, rule, meter, band));
-"""
+from meterlink.storage.schema import monitoring_statements
 
 
 def ensure_schema(conn) -> None:
-    """Create the monitoring tables if they do not exist (idempotent)."""
-    for stmt in SCHEMA.split(";"):
-        if stmt.strip():
-            conn.execute(stmt)
+    """Create the monitoring tables on a bare connection (idempotent). A file opened by the Store has
+    them already: they are schema version 5 (meterlink/storage/schema.py, MONITORING_SQL)."""
+    for stmt in monitoring_statements():
+        conn.execute(stmt)
 
 
 class SlidingWindow:

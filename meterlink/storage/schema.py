@@ -13,7 +13,8 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
+
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
     db["meta"].create({"key": str, "value": str}, pk="key")
@@ -134,7 +135,81 @@ def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
     db.execute("DROP INDEX IF EXISTS idx_spectra_session_id_boot_seq")
     db.execute("CREATE UNIQUE INDEX spectra_key ON spectra (session_id, boot, epoch, seq)")
 
-def _schema_v5_sync(db: sqlite_utils.Database) -> None:
+# The monitoring tables (docs/schema.md, "Monitoring tables"; written by the station monitor). Before
+# version 5 the monitor created them itself with these same statements, so a version-4 file may hold
+# them already: IF NOT EXISTS keeps those, and _schema_v5_monitoring adds any column they lack.
+MONITORING_SQL = """
+CREATE TABLE IF NOT EXISTS mon_station (
+    id INTEGER PRIMARY KEY, name TEXT NOT NULL UNIQUE, config_path TEXT, config_text TEXT,
+    standard TEXT, tier TEXT, convention TEXT, block_s REAL, windows_s TEXT,
+    latitude_deg REAL, longitude_deg REAL, elevation_m REAL, timezone TEXT,
+    created_utc REAL, started_utc REAL, heartbeat_utc REAL, pid INTEGER, state TEXT, runs INTEGER DEFAULT 0);
+CREATE TABLE IF NOT EXISTS mon_meter (
+    station_id INTEGER NOT NULL, meter TEXT NOT NULL, session_id INTEGER, port TEXT, certificate TEXT,
+    freq_hz REAL, band_lo_hz REAL, band_hi_hz REAL, e_ref_v_per_m REAL, s_ref_w_per_m2 REAL,
+    cert_due TEXT, last_seen_utc REAL, link_state TEXT, battery_pct REAL, temperature_degc REAL,
+    drift_ppm REAL, last_e_v_per_m REAL, u_expanded_db REAL,
+    PRIMARY KEY (station_id, meter));
+CREATE TABLE IF NOT EXISTS mon_block (
+    station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, t_start_utc REAL NOT NULL,
+    block_s REAL NOT NULL, energy REAL NOT NULL, covered_s REAL NOT NULL, n INTEGER NOT NULL,
+    e_rms_v_per_m REAL, e_max_v_per_m REAL, complete INTEGER NOT NULL, n_overrange INTEGER NOT NULL,
+    PRIMARY KEY (station_id, meter, band, t_start_utc));
+CREATE TABLE IF NOT EXISTS mon_running (
+    station_id INTEGER NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL, window_s REAL NOT NULL,
+    t_start_utc REAL NOT NULL, e_end_v_per_m REAL, coverage_end REAL, e_max_v_per_m REAL, t_max_utc REAL,
+    PRIMARY KEY (station_id, meter, band, window_s, t_start_utc));
+CREATE TABLE IF NOT EXISTS mon_alarm (
+    station_id INTEGER NOT NULL, rule TEXT NOT NULL, meter TEXT NOT NULL, band TEXT NOT NULL,
+    state TEXT NOT NULL, t_on_utc REAL, peak_t_utc REAL, peak_value REAL, last_t_utc REAL,
+    PRIMARY KEY (station_id, rule, meter, band));
+CREATE TABLE IF NOT EXISTS mon_storage (
+    station_id INTEGER PRIMARY KEY, storing INTEGER, since_utc REAL, error TEXT, pending_readings INTEGER,
+    checked_utc REAL)
+"""
+
+
+def monitoring_statements() -> list[str]:
+    """The CREATE TABLE statements of MONITORING_SQL, one per table."""
+    return [s.strip() for s in MONITORING_SQL.split(";") if s.strip()]
+
+
+def _columns_of(stmt: str) -> tuple[str, list[tuple[str, str]]]:
+    """(table, [(column, declaration)]) of one CREATE TABLE statement of MONITORING_SQL."""
+    head, body = stmt.split("(", 1)
+    table = head.split()[-1]
+    body = body.rsplit(")", 1)[0]
+    cols, depth, part = [], 0, ""
+    for ch in body + ",":
+        if ch == "," and depth == 0:
+            words = part.split()
+            if words and words[0].upper() not in ("PRIMARY", "UNIQUE", "FOREIGN", "CHECK"):
+                cols.append((words[0], " ".join(words[1:])))
+            part = ""
+            continue
+        depth += (ch == "(") - (ch == ")")
+        part += ch
+    return table, cols
+
+
+def _schema_v5_monitoring(db: sqlite_utils.Database) -> None:
+    """The monitoring tables become part of the numbered schema (until version 4 the monitor made them).
+
+    Tables a version-4 file already holds are kept with their rows; a column such a table lacks is
+    added (nullable: ADD COLUMN cannot add NOT NULL without a default, and no stored row is rewritten).
+    """
+    for stmt in monitoring_statements():
+        db.execute(stmt)
+        table, cols = _columns_of(stmt)
+        have = {r[1] for r in db.execute(f"PRAGMA table_info('{table}')")}
+        for name, decl in cols:
+            if name not in have:
+                kind = decl.split()[0] if decl else ""
+                default = " DEFAULT 0" if "DEFAULT 0" in decl.upper() else ""
+                db.execute(f"ALTER TABLE {table} ADD COLUMN {name} {kind}{default}")
+
+
+def _schema_v6_sync(db: sqlite_utils.Database) -> None:
     """Store-and-forward to a central store (docs/network.md): the file's own UUID, the outbox log and
     one cursor per table. The log is filled by triggers that meterlink.network.outbox adds only once a
     station is set to sync; a file that never syncs keeps two empty tables."""
@@ -146,8 +221,9 @@ def _schema_v5_sync(db: sqlite_utils.Database) -> None:
     db.execute("CREATE TABLE sync_cursor (tbl TEXT PRIMARY KEY, acked INTEGER NOT NULL DEFAULT 0, "
                "acked_utc REAL, rows_acked INTEGER NOT NULL DEFAULT 0)")
 
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
-                                                                   5: _schema_v5_sync}
+                                                                   5: _schema_v5_monitoring, 6: _schema_v6_sync}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}
