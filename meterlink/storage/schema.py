@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -139,7 +139,21 @@ def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
     db.execute("CREATE UNIQUE INDEX spectra_key ON spectra (session_id, boot, epoch, seq)")
 
 
+def _schema_v5_positions(db: sqlite_utils.Database) -> None:
+    """GNSS positions of survey samples and readings (meterlink.device.gnss): WGS 84 latitude and
+    longitude, altitude above mean sea level, the HDOP-based accuracy estimate and the fix time.
+    Columns are added (NULL for rows stored before, or stored while the receiver had no fix)."""
+    db.execute("ALTER TABLE survey ADD COLUMN gnss_port TEXT")
+    for col, typ in (("lat_deg", "REAL"), ("lon_deg", "REAL"), ("alt_m", "REAL"), ("pos_u_m", "REAL"),
+                     ("fix_utc", "REAL"), ("n_positioned", "INTEGER")):
+        db.execute(f"ALTER TABLE survey_samples ADD COLUMN {col} {typ}")
+    for col, typ in (("lat_deg", "REAL"), ("lon_deg", "REAL"), ("alt_m", "REAL"), ("pos_u_m", "REAL"),
+                     ("fix_utc", "REAL"), ("fix_quality", "INTEGER"), ("n_sats", "INTEGER"), ("hdop", "REAL")):
+        db.execute(f"ALTER TABLE survey_trace ADD COLUMN {col} {typ}")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
-                                                                   3: _schema_v3_spans, 4: _schema_v4_epochs}
+                                                                   3: _schema_v3_spans, 4: _schema_v4_epochs,
+                                                                   5: _schema_v5_positions}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

@@ -127,6 +127,8 @@ class Sample:
     sweeps: tuple = ()
     #: lowest and highest meter temperature (degC) while measuring; None: none reported
     temp_span_c: tuple[float, float] | None = None
+    #: GNSS position (meterlink.survey.capture.Geo) of the sample, None without a fix
+    geo: object | None = None
 
 
 @dataclass(frozen=True)
