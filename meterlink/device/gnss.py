@@ -243,6 +243,18 @@ class GnssLink:
         buf = bytearray()
         bad: dict[str, int] = {}
         last_report = time.monotonic()
+        try:
+            self._pump(buf, bad, last_report)
+        finally:           # lost or stopping: what was rejected since the last report is still counted
+            if bad:
+                self._report_bad(bad)
+
+    def _report_bad(self, bad: dict) -> None:
+        self._event("gnss_bad_sentences", "warning", "GNSS sentences not used: " + ", ".join(
+            f"{v} {k.replace('_', ' ')}" for k, v in sorted(bad.items())), **bad)
+        bad.clear()
+
+    def _pump(self, buf: bytearray, bad: dict, last_report: float) -> None:
         while not self._stop.is_set():
             data = self._link.read(4096, self.read_timeout_s)
             buf += data
@@ -260,13 +272,9 @@ class GnssLink:
                 self.stats.garbage_bytes += len(buf)
                 bad["garbage_bytes"] = bad.get("garbage_bytes", 0) + len(buf)
                 buf.clear()
-            if bad and time.monotonic() - last_report >= 1.0:     # one event a second at most, exact counts
-                self._event("gnss_bad_sentences", "warning", "GNSS sentences not used: " + ", ".join(
-                    f"{v} {k.replace('_', ' ')}" for k, v in sorted(bad.items())), **bad)
-                bad, last_report = {}, time.monotonic()
-        if bad:
-            self._event("gnss_bad_sentences", "warning", "GNSS sentences not used: " + ", ".join(
-                f"{v} {k.replace('_', ' ')}" for k, v in sorted(bad.items())), **bad)
+            if bad and (time.monotonic() - last_report >= 1.0 or not data):   # at most one event a second
+                self._report_bad(bad)
+                last_report = time.monotonic()
 
     def _line(self, line: bytes) -> str | None:
         """Handle one sentence; returns the kind of rejection, or None if it was fine."""

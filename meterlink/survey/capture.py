@@ -122,7 +122,6 @@ class Capture:
         self.names = names or (lambda f: f"{f / 1e6:.1f} MHz")
         self.followup = followup_v_per_m
         self.gnss, self.gnss_max_age_s = gnss, float(gnss_max_age_s)
-        self.n_positioned = self.n_unpositioned = 0
         self.connected: Connected | None = None
         self.temp_c: float | None = None
         self.temps_c: list[float] = []       # every temperature the meter reported, in order
@@ -269,13 +268,9 @@ class Capture:
         row = {"point_no": point_no, "sample_no": sample_no, "boot": v.boot, "seq": v.seq,
                "t_utc": v.t_utc, "t_device_s": v.t_s, "e_v_per_m": v.e_v_per_m,
                "x_m": pos[0], "y_m": pos[1], "z_m": pos[2], "used": int(bool(used))}
-        if self.gnss is not None:
-            if fix is None:
-                self.n_unpositioned += 1
-            else:
-                self.n_positioned += 1
-                row.update(lat_deg=fix.lat_deg, lon_deg=fix.lon_deg, alt_m=fix.alt_m, pos_u_m=fix.accuracy_m,
-                           fix_utc=fix.fix_utc, fix_quality=fix.quality, n_sats=fix.n_sats, hdop=fix.hdop)
+        if fix is not None:
+            row.update(lat_deg=fix.lat_deg, lon_deg=fix.lon_deg, alt_m=fix.alt_m, pos_u_m=fix.accuracy_m,
+                       fix_utc=fix.fix_utc, fix_quality=fix.quality, n_sats=fix.n_sats, hdop=fix.hdop)
         self.trace.append(row)
         return fix
 

@@ -50,10 +50,13 @@ class Survey:
 
     def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
                  on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
-                 link_factory=None, gnss_port: str | None = None, gnss_factory=None, **link_options):
+                 link_factory=None, gnss_port: str | None = None, gnss_factory=None, gnss_max_age_s: float = 2.0,
+                 **link_options):
         self.store, self.port, self.plan = store, port, plan
         self.gnss_port = gnss_port
         self.gnss = None
+        self.gnss_max_age_s = gnss_max_age_s    # host seconds a fix stays current (tests at speed: shorter)
+        self.n_positioned = self.n_unpositioned = 0     # survey_trace rows stored with and without a position
         if gnss_port is not None or gnss_factory is not None:
             from meterlink.device.gnss import GnssLink
             self.gnss = GnssLink(gnss_port or "gnss", link_factory=gnss_factory)
@@ -98,8 +101,10 @@ class Survey:
                 settle_s=plan.settle_s, on_view=self.on_view, stop_event=self.interrupt_event,
                 names=lambda f: next((n for sf, n in names.items() if abs(sf - f) <= 0.005 * sf),
                                      f"{f / 1e6:.1f} MHz"),
-                followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m), gnss=self.gnss)
+                followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m), gnss=self.gnss,
+                gnss_max_age_s=self.gnss_max_age_s)
             self._connect()
+            self._first_fix()
             sstore.create_survey(self.store, self.session_id, plan, self.cert, self.ref,
                                  "dipole" if self.dipole else "probe", gnss_port=self.gnss_port)
         except BaseException:
@@ -141,21 +146,34 @@ class Survey:
                     "session_id = ?", [self.session_id]):
                 sstore.end_survey(self.store, self.session_id)
 
+    def _first_fix(self, wait_s: float = 5.0) -> None:
+        """Give the receiver up to wait_s (host seconds) for a first fix; without one the survey
+        goes on and the event says so."""
+        if self.gnss is None:
+            return
+        deadline = time.monotonic() + wait_s
+        while self.gnss.latest(self.gnss_max_age_s) is None and time.monotonic() < deadline:
+            item = self.link.get(0.01)          # keep storing what the meter sends meanwhile
+            if item is not None:
+                self.capture._item(item)
+        if self.gnss.latest(self.gnss_max_age_s) is None:
+            self._writer.add_event("gnss_no_fix_at_start", "warning", f"no GNSS fix from {self.gnss.port} within "
+                                   f"{wait_s:g} s: the survey starts without positions")
+
     def _gnss_summary(self) -> None:
         """One closing event with exact counts: values with and without a position, sentences used
         and rejected, losses of the receiver."""
         if self.gnss is None or self.capture is None:
             return
-        cap = self.capture
-        cap.gnss_events()
+        self.capture.gnss_events()
         st = self.gnss.summary()
-        n_all = cap.n_positioned + cap.n_unpositioned
-        sev = "info" if cap.n_unpositioned == 0 else "warning"
+        n_all = self.n_positioned + self.n_unpositioned
+        sev = "info" if self.n_unpositioned == 0 else "warning"
         self._writer.add_event(
-            "gnss_summary", sev, f"GNSS on {self.gnss.port}: {cap.n_positioned} of {n_all} value(s) positioned, "
-            f"{cap.n_unpositioned} without position; {st['bad_checksum']} sentence(s) with a bad checksum and "
-            f"{st['malformed']} malformed not used; receiver lost {st['port_losses']} time(s)",
-            positioned=cap.n_positioned, unpositioned=cap.n_unpositioned, **st)
+            "gnss_summary", sev, f"GNSS on {self.gnss.port}: {self.n_positioned} of {n_all} stored value(s) "
+            f"positioned, {self.n_unpositioned} without position; {st['bad_checksum']} sentence(s) with a bad "
+            f"checksum and {st['malformed']} malformed not used; receiver lost {st['port_losses']} time(s)",
+            positioned=self.n_positioned, unpositioned=self.n_unpositioned, **st)
 
     # -- points --------------------------------------------------------------------------------
     def _duration(self, p: Point) -> float:
@@ -207,6 +225,10 @@ class Survey:
                                 and dur < self.ref.averaging_time_s - 1e-9), warnings=tuple(warn),
                      temperatures=point_temperatures(tuple(samples), self.cert.temp_range_c))
         self._writer.flush()
+        if self.gnss is not None:
+            n_pos = sum(1 for t in cap.trace if t.get("lat_deg") is not None)
+            self.n_positioned += n_pos
+            self.n_unpositioned += len(cap.trace) - n_pos
         sstore.add_point(self.store, self.session_id, no, res, cap.trace)
         cap.trace = []
         self.results.append(res)
