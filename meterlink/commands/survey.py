@@ -54,7 +54,12 @@ def run(args) -> int:
             def ready(point, height_m):
                 where = f" at x {point.x_m:g} m, y {point.y_m:g} m" if point.x_m is not None else ""
                 ask(f"Hold the probe at {point.label!r}{where}, {height_m:.2f} m, then press Enter", default="")
-        sid = run_plan(args.port, args.plan, args.db, console=console, ready=ready, gnss_port=args.gps)
+        from meterlink.planning.sourcefile import load_site
+        from meterlink.survey.plan import load_plan
+        plan = load_plan(args.plan)      # checked before the meter is touched; its sources file too
+        declared = load_site(plan.sources_file) if plan.sources_file else None
+        sid = run_plan(args.port, args.plan, args.db, console=console, ready=ready, gnss_port=args.gps,
+                       declared=declared)
     else:
         if args.json:
             raise MeterlinkError("--json needs --plan (the interactive survey asks at the terminal)")

@@ -141,9 +141,11 @@ def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
 
 def _schema_v5_positions(db: sqlite_utils.Database) -> None:
     """GNSS positions of survey samples and readings (meterlink.device.gnss): WGS 84 latitude and
-    longitude, altitude above mean sea level, the HDOP-based accuracy estimate and the fix time.
+    longitude, altitude above mean sea level, the HDOP-based accuracy estimate and the fix time; and
+    the declared sources the survey's predicted values come from.
     Columns are added (NULL for rows stored before, or stored while the receiver had no fix)."""
     db.execute("ALTER TABLE survey ADD COLUMN gnss_port TEXT")
+    db.execute("ALTER TABLE survey ADD COLUMN declared_json TEXT")    # the sources file as read, for predictions
     for col, typ in (("lat_deg", "REAL"), ("lon_deg", "REAL"), ("alt_m", "REAL"), ("pos_u_m", "REAL"),
                      ("fix_utc", "REAL"), ("n_positioned", "INTEGER")):
         db.execute(f"ALTER TABLE survey_samples ADD COLUMN {col} {typ}")

@@ -105,6 +105,8 @@ class SurveyPlan:
     sweep_s: float = 60.0
     source_text: str = ""
     source_path: str = ""
+    sources_file: str = ""          # declared sources (docs/sources.md) for the predicted values
+    prediction_u_db: float = 3.0    # declared expanded uncertainty (k = 2) of a predicted field, dB
 
 
 @dataclass(frozen=True)

@@ -51,9 +51,10 @@ class Survey:
     def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
                  on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
                  link_factory=None, gnss_port: str | None = None, gnss_factory=None, gnss_max_age_s: float = 2.0,
-                 **link_options):
+                 declared=None, **link_options):
         self.store, self.port, self.plan = store, port, plan
         self.gnss_port = gnss_port
+        self.declared = declared      # planning Site of the plan's sources file (read by the caller), or None
         self.gnss = None
         self.gnss_max_age_s = gnss_max_age_s    # host seconds a fix stays current (tests at speed: shorter)
         self.n_positioned = self.n_unpositioned = 0     # survey_trace rows stored with and without a position
@@ -106,7 +107,8 @@ class Survey:
             self._connect()
             self._first_fix()
             sstore.create_survey(self.store, self.session_id, plan, self.cert, self.ref,
-                                 "dipole" if self.dipole else "probe", gnss_port=self.gnss_port)
+                                 "dipole" if self.dipole else "probe", gnss_port=self.gnss_port,
+                                 declared=self.declared)
         except BaseException:
             self.__exit__(None, None, None)
             raise
@@ -253,7 +255,7 @@ class Survey:
 
 def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Callable | None = None,
              on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
-             gnss_port: str | None = None, **link_options) -> int:
+             gnss_port: str | None = None, declared=None, **link_options) -> int:
     """Measure every point of a plan against the meter on port; returns the survey session id.
 
     mover(position_m) is called to place the probe (the simulated meter's move_to); without it,
@@ -268,7 +270,7 @@ def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Call
                 ready(point, height_m)
 
         with Survey(store, port, plan, mover=mover, on_view=live.update, ready=ready_seen if ready else None,
-                    gnss_port=gnss_port, **link_options) as sv:
+                    gnss_port=gnss_port, declared=declared, **link_options) as sv:
             for p in plan.points:
                 try:
                     res = sv.measure(p)

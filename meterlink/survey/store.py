@@ -18,7 +18,7 @@ def _num(v):
 
 
 def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, sensor: str,
-                  gnss_port: str | None = None) -> None:
+                  gnss_port: str | None = None, declared=None) -> None:
     """Record the plan's fixed choices (standard, tier, rule, certificate) before measuring."""
     from meterlink.physics.certificate import dump_certificate
 
@@ -31,7 +31,11 @@ def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, se
            "e_ref_v_per_m": ref.e_v_per_m, "e_ref_freq_hz": ref.freq_hz, "averaging_time_s": ref.averaging_time_s,
            "followup_v_per_m": plan.followup.v_per_m, "followup_percent": plan.followup.percent_field,
            "plan_text": plan.source_text, "plan_path": plan.source_path, "created_utc": time.time(),
-           "software_version": __version__, "gnss_port": gnss_port}
+           "software_version": __version__, "gnss_port": gnss_port,
+           "declared_json": None if declared is None else json.dumps(
+               {"name": declared.name, "origin": declared.origin, "path": declared.path,
+                "ground_factor": declared.ground_factor, "prediction_u_db": plan.prediction_u_db,
+                "sources": [asdict(s) for s in declared.sources]})}
     with store.write():
         store.db["survey"].insert(row)
         store.db["survey_sources"].insert_all(
