@@ -94,3 +94,32 @@ def test_receiver_failing_mid_survey_loses_no_measurement(tmp_path, fault, expec
     assert summ["unpositioned"] == unpos > 0 and summ["positioned"] == n_trace - unpos
     if expect == "gnss_bad_sentences":
         assert summ["bad_checksum"] > 0
+
+
+def test_cli_survey_with_simulated_gps_and_bad_gps_port(tmp_path):
+    import subprocess
+    import sys
+
+    sim = subprocess.Popen([sys.executable, "-m", "meterlink", "simulate", "--speed", "100", "--gps"],
+                           stdout=subprocess.PIPE, text=True)
+    try:
+        meter_port, gnss_port = sim.stdout.readline().strip(), sim.stdout.readline().strip()
+        plan = tmp_path / "plan.toml"
+        plan.write_text('[survey]\nstandard = "icnirp-1998"\nrule = "guarded"\ncertificate = "demo-probe"\n'
+                        'spot_s = 3\nsettle_s = 1\n[site]\nname = "Brannock Tor (invented)"\n'
+                        '[[point]]\nlabel = "walk-in"\n', encoding="utf-8")
+        db = tmp_path / "c.db"
+        bad = subprocess.run([sys.executable, "-m", "meterlink", "survey", "--port", meter_port, "--plan", str(plan),
+                              "--db", str(db), "--gps", str(tmp_path / "no-receiver"), "--json"],
+                             capture_output=True, text=True, timeout=60)
+        assert bad.returncode == 2 and "Traceback" not in bad.stderr
+        assert len(bad.stderr.strip().splitlines()) == 1 and "GNSS receiver" in bad.stderr
+        ok = subprocess.run([sys.executable, "-m", "meterlink", "survey", "--port", meter_port, "--plan", str(plan),
+                             "--db", str(db), "--gps", gnss_port, "--json"], capture_output=True, text=True, timeout=120)
+        assert ok.returncode == 0, ok.stderr
+    finally:
+        sim.terminate()
+        sim.wait(10)
+        sim.stdout.close()
+    s = rows(db, "select * from survey_samples")
+    assert len(s) == 1 and s[0]["n_positioned"] == s[0]["n_readings"] >= 3 and s[0]["lat_deg"] is not None

@@ -111,6 +111,13 @@ def _heights(p) -> str:
 _cell, _csv = csv_cell, write_rows
 
 
+_GEO = ("lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "n_positioned")   # GNSS columns (schema version 5)
+
+
+_TRACE = ("point_no", "sample_no", "boot", "seq", "t_utc", "t_device_s", "e_v_per_m", "x_m", "y_m", "z_m", "used",
+          "lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "fix_quality", "n_sats", "hdop")
+
+
 def write_csv(sv: dict, out: Path) -> list[Path]:
     cols = ["point_no", "label", "mode", "scheme", "x_m", "y_m", "lat_deg", "lon_deg", "height_m", "near_field",
             "duration_s", "n_readings", "e_v_per_m", "e_max_v_per_m", "ex_v_per_m", "ey_v_per_m", "ez_v_per_m",
@@ -119,10 +126,10 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
             "exposure_ratio_extrapolated", "verdict_extrapolated", "notes"]
     files = {"points.csv": (cols, [[p[c] for c in cols] for p in sv["points"]]),
              "samples.csv": (["point_no", "label", "sample_no", "height_m", "x_m", "y_m", "e_v_per_m", "e_max_v_per_m",
-                              "u_expanded_db", "n_readings", "coverage"],
+                              "u_expanded_db", "n_readings", "coverage"] + list(_GEO),
                              [[p["point_no"], p["label"], s["sample_no"], s["height_m"], s["x_m"], s["y_m"],
                                s["e_v_per_m"], s["e_max_v_per_m"], s["u_expanded_db"], s["n_readings"], s["coverage"]]
-                              for p in sv["points"] for s in p["samples"]]),
+                              + [s.get(c) for c in _GEO] for p in sv["points"] for s in p["samples"]]),
              "sources.csv": (["name", "technology", "freq_hz", "power_w", "max_power_w"],
                              [[s["name"], s["technology"], s["freq_hz"], s["power_w"], s["max_power_w"]]
                               for s in sv["sources"]]),
@@ -131,10 +138,7 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
                               [[p["point_no"], p["label"], m["name"], m["freq_hz"], m["e_v_per_m"],
                                 m["e_extrapolated_v_per_m"], m["ratio"], m["share"]]
                                for p in sv["points"] for m in p["emitters"]]),
-             "trace.csv": (["point_no", "sample_no", "boot", "seq", "t_utc", "t_device_s", "e_v_per_m", "x_m", "y_m",
-                            "z_m", "used"], [[t[c] for c in ("point_no", "sample_no", "boot", "seq", "t_utc",
-                                                               "t_device_s", "e_v_per_m", "x_m", "y_m", "z_m", "used")]
-                                             for t in sv["trace"]])}
+             "trace.csv": (list(_TRACE), [[t.get(c) for c in _TRACE] for t in sv["trace"]])}
     paths = []
     for name, (head, rows) in files.items():
         _csv(out / name, head, rows)
