@@ -123,3 +123,18 @@ def test_cli_survey_with_simulated_gps_and_bad_gps_port(tmp_path):
         sim.stdout.close()
     s = rows(db, "select * from survey_samples")
     assert len(s) == 1 and s[0]["n_positioned"] == s[0]["n_readings"] >= 3 and s[0]["lat_deg"] is not None
+
+
+def test_missing_sources_file_is_refused_before_the_meter_is_touched(tmp_path):
+    import subprocess
+    import sys
+
+    plan = tmp_path / "plan.toml"
+    plan.write_text('[survey]\nstandard = "icnirp-1998"\nrule = "guarded"\ncertificate = "demo-probe"\n'
+                    'sources_file = "absent-sources.toml"\n[site]\nname = "Brannock Tor (invented)"\n'
+                    '[[point]]\nlabel = "walk-in"\n', encoding="utf-8")
+    r = subprocess.run([sys.executable, "-m", "meterlink", "survey", "--port", str(tmp_path / "no-meter"),
+                        "--plan", str(plan), "--db", str(tmp_path / "x.db"), "--json"],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "Traceback" not in r.stderr and len(r.stderr.strip().splitlines()) == 1
+    assert "absent-sources.toml" in r.stderr and not (tmp_path / "x.db").exists()

@@ -262,6 +262,9 @@ def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Call
     ready(point, height_m) (e.g. a prompt) waits for the technician; console (a rich Console)
     shows the live readout and one line per point."""
     plan = load_plan(plan_path_or_dict)
+    if plan.sources_file and declared is None:
+        raise MeterlinkError(f"the plan names the sources file {plan.sources_file!r}: read it with "
+                             "meterlink.planning.sourcefile.load_site and pass it as declared=")
     from meterlink.survey.readout import LiveReadout
 
     with Store(db_path) as store, LiveReadout(console, on_view) as live:
