@@ -17,7 +17,7 @@ import math
 import threading
 import time
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from meterlink.device.link import LinkEvent
 from meterlink.device.transport import Link, SerialLink
@@ -328,11 +328,3 @@ class GnssLink:
         elif before is False:
             self._event("gnss_fix", "info", f"GNSS receiver on {self.port} has a position fix again")
 
-
-@dataclass
-class Positioning:
-    """Counts of readings that got a position and that did not, for the survey's closing event."""
-
-    positioned: int = 0
-    without: int = 0
-    points_without: list = field(default_factory=list)
