@@ -15,10 +15,14 @@ from meterlink.simulators.gnss import SimulatedGnss
 
 # Dale DePriest, "NMEA data" (gpsinformation.org/dale/nmea.htm), GGA example, with its field notes:
 # fix at 12:35:19 UTC, latitude 48 deg 07.038' N, longitude 11 deg 31.000' E, fix quality 1,
-# 8 satellites, HDOP 0.9, altitude 545.4 m above mean sea level.
+# 8 satellites, HDOP 0.9, altitude 545.4 m above mean sea level. Typed from the reproduction of that
+# table on the University of Hohenheim "NMEA strings" wiki page (mpt-internal.uni-hohenheim.de).
 DEPRIEST_GGA = "$GPGGA,123519,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47"
-# The same page, RMC example: status A, date 23 March 1994, same position.
-DEPRIEST_RMC = "$GPRMC,123519,A,4807.038,N,01131.000,E,022.4,084.4,230394,003.1,W*6A"
+# NOAA Physical Sciences Laboratory, PISTON 2019 cruise (R/V Sally Ride), raw GPS file
+# flux/Raw/19259/gps01925920_raw.txt (downloads.psl.noaa.gov), the RMC and GGA of 19:59:59 UTC on
+# 16 September 2019: a real receiver's output with 8-decimal minutes and a DGPS fix (quality 2).
+NOAA_RMC = "$GPRMC,195959.00,A,1813.38282955,N,12606.12767097,E,1.31,262.13,160919,3.0,W,D*21"
+NOAA_GGA = "$GPGGA,195959.00,1813.38282955,N,12606.12767097,E,2,07,1.4,17.2,M,36.5,M,4.0,0129*78"
 # Cypress Solutions CTM-200 report message 80 ($GPGGA), documented example: west longitude,
 # negative altitude (-15 m).
 CYPRESS_GGA = "$GPGGA,000512.00,4910.9588,N,12254.6560,W,1,8,01.1,-00015,M,,M,,0000*5C"
@@ -34,11 +38,16 @@ def test_depriest_gga_fields():
     assert (m.time.hour, m.time.minute, m.time.second) == (12, 35, 19)
 
 
-def test_depriest_rmc_fields():
-    m = parse_sentence(DEPRIEST_RMC)
-    assert m.msgID == "RMC" and m.status == "A"
-    assert (m.date.year, m.date.month, m.date.day) == (1994, 3, 23)
-    assert m.lat == pytest.approx(48.1173, abs=1e-9)
+def test_noaa_rmc_and_gga_fields():
+    rmc, gga = parse_sentence(NOAA_RMC), parse_sentence(NOAA_GGA)
+    assert rmc.msgID == "RMC" and rmc.status == "A"
+    assert (rmc.date.year, rmc.date.month, rmc.date.day) == (2019, 9, 16)
+    # hand-worked: 1813.38282955 = 18 + 13.38282955/60 = 18.2230471592 deg;
+    # 12606.12767097 = 126 + 6.12767097/60 = 126.1021278495 deg
+    for m in (rmc, gga):
+        assert m.lat == pytest.approx(18.2230471592, abs=1e-10)
+        assert m.lon == pytest.approx(126.1021278495, abs=1e-10)
+    assert (int(gga.quality), int(gga.numSV), float(gga.HDOP), float(gga.alt)) == (2, 7, 1.4, 17.2)
 
 
 def test_cypress_gga_west_and_negative_altitude():
@@ -60,9 +69,9 @@ def test_bad_checksum_is_refused(bad):
 
 
 def test_checksum_is_the_xor_between_dollar_and_star():
-    # NMEA 0183: XOR of the characters between '$' and '*': the published examples carry 47 and 6A
+    # NMEA 0183: XOR of the characters between '$' and '*': the published sentences carry 47, 21 and 78
     assert nmea_checksum(DEPRIEST_GGA[1:-3]) == 0x47
-    assert nmea_checksum(DEPRIEST_RMC[1:-3]) == 0x6A
+    assert nmea_checksum(NOAA_RMC[1:-3]) == 0x21 and nmea_checksum(NOAA_GGA[1:-3]) == 0x78
     with pytest.raises(SentenceError) as e:
         parse_sentence(DEPRIEST_GGA[:-3])
     assert e.value.kind == "no_checksum"
