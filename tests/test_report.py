@@ -65,7 +65,7 @@ def test_report_sections_values_and_escaping(survey):
     assert "guarded" in html and "ILAC-G8" in html
     assert "1.00, 1.60" in html                     # both heights of the custom spatial scheme
     assert "frequency-selective measurement needed" in html   # 5 V/m follow-up threshold exceeded
-    assert len(re.findall(r"data:image/png;base64,", html)) == 2   # walk and per-point figures (no emitters)
+    assert len(re.findall(r"data:image/png;base64,", html)) == 3   # walk, per-point figures and the map (no emitters)
 
 
 def test_report_csv_files(survey):

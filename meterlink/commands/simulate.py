@@ -16,6 +16,8 @@ def add_arguments(parser) -> None:
     parser.add_argument("--corrupt", type=float, default=0.0, metavar="P", help="probability a reading is damaged")
     parser.add_argument("--garbage", type=float, default=0.0, metavar="P", help="probability of junk bytes before a frame")
     parser.add_argument("--start-tick", type=int, default=0, metavar="MS", help="device tick at power-up")
+    parser.add_argument("--gps", action="store_true", help="also serve a simulated GNSS receiver (NMEA GGA/RMC, "
+                        "1 Hz of device time) that follows the probe; its port is printed on the second line")
     parser.add_argument("--json", action="store_true", help="print the final stats as JSON")
 
 
@@ -46,9 +48,20 @@ def run(args) -> int:
     try:
         with meter:
             print(meter.port, flush=True)
-            while not done.wait(0.2):
-                pass
+            gnss = None
+            if args.gps:
+                from meterlink.simulators.gnss import SimulatedGnss
+                gnss = SimulatedGnss.following(meter).start()
+                print(gnss.port, flush=True)
+            try:
+                while not done.wait(0.2):
+                    pass
+            finally:
+                if gnss is not None:
+                    gnss.stop()
             stats = meter.stats
+            if gnss is not None:
+                stats = {**stats, **{f"gnss_{k}": v for k, v in gnss.sent.items()}}
     finally:
         for s, h in old.items():
             signal.signal(s, h)

@@ -13,6 +13,8 @@ def add_arguments(parser) -> None:
                         "the survey is entered point by point at the terminal")
     parser.add_argument("--db", metavar="FILE", default=DEFAULT_DB,
                         help=f"database file, created if missing (default: {DEFAULT_DB})")
+    parser.add_argument("--gps", metavar="PORT", help="serial device or pyserial URL of a GNSS receiver (NMEA 0183 "
+                        "GGA/RMC): every sample is stored with its position (docs/gps.md)")
     parser.add_argument("--json", action="store_true", help="no live readout; print the point results as JSON")
 
 
@@ -52,12 +54,17 @@ def run(args) -> int:
             def ready(point, height_m):
                 where = f" at x {point.x_m:g} m, y {point.y_m:g} m" if point.x_m is not None else ""
                 ask(f"Hold the probe at {point.label!r}{where}, {height_m:.2f} m, then press Enter", default="")
-        sid = run_plan(args.port, args.plan, args.db, console=console, ready=ready)
+        from meterlink.planning.sourcefile import load_site
+        from meterlink.survey.plan import load_plan
+        plan = load_plan(args.plan)      # checked before the meter is touched; its sources file too
+        declared = load_site(plan.sources_file) if plan.sources_file else None
+        sid = run_plan(args.port, args.plan, args.db, console=console, ready=ready, gnss_port=args.gps,
+                       declared=declared)
     else:
         if args.json:
             raise MeterlinkError("--json needs --plan (the interactive survey asks at the terminal)")
         from meterlink.survey.interactive import run_interactive
-        sid = run_interactive(args.port, args.db, console=console)
+        sid = run_interactive(args.port, args.db, console=console, gnss_port=args.gps)
     with Store(args.db) as store:
         sv = load_survey(store, sid)
     if args.json:

@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 6
+SCHEMA_VERSION = 7
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -222,8 +222,24 @@ def _schema_v6_sync(db: sqlite_utils.Database) -> None:
                "acked_utc REAL, rows_acked INTEGER NOT NULL DEFAULT 0)")
 
 
+def _schema_v7_positions(db: sqlite_utils.Database) -> None:
+    """GNSS positions of survey samples and readings (meterlink.device.gnss): WGS 84 latitude and
+    longitude, altitude above mean sea level, the HDOP-based accuracy estimate and the fix time; and
+    the declared sources the survey's predicted values come from.
+    Columns are added (NULL for rows stored before, or stored while the receiver had no fix)."""
+    db.execute("ALTER TABLE survey ADD COLUMN gnss_port TEXT")
+    db.execute("ALTER TABLE survey ADD COLUMN declared_json TEXT")    # the sources file as read, for predictions
+    for col, typ in (("lat_deg", "REAL"), ("lon_deg", "REAL"), ("alt_m", "REAL"), ("pos_u_m", "REAL"),
+                     ("fix_utc", "REAL"), ("n_positioned", "INTEGER")):
+        db.execute(f"ALTER TABLE survey_samples ADD COLUMN {col} {typ}")
+    for col, typ in (("lat_deg", "REAL"), ("lon_deg", "REAL"), ("alt_m", "REAL"), ("pos_u_m", "REAL"),
+                     ("fix_utc", "REAL"), ("fix_quality", "INTEGER"), ("n_sats", "INTEGER"), ("hdop", "REAL")):
+        db.execute(f"ALTER TABLE survey_trace ADD COLUMN {col} {typ}")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
-                                                                   5: _schema_v5_monitoring, 6: _schema_v6_sync}
+                                                                   5: _schema_v5_monitoring, 6: _schema_v6_sync,
+                                                                   7: _schema_v7_positions}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

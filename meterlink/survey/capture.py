@@ -72,6 +72,36 @@ class View:
     sample: str = ""               # e.g. "height 2 of 3"
 
 
+@dataclass(frozen=True)
+class Geo:
+    """A sample's GNSS position: mean of its readings' fixes, with an accuracy estimate."""
+
+    lat_deg: float
+    lon_deg: float
+    alt_m: float | None
+    u_m: float | None          # sqrt(largest HDOP-based estimate^2 + RMS scatter^2), m
+    fix_utc: float | None      # the middle fix
+    n_positioned: int
+
+
+def geo_of(fixes) -> Geo | None:
+    """Combine the fixes of a sample's readings (None entries: readings without a position)."""
+    from meterlink.device.gnss import to_local_m
+
+    got = [f for f in fixes if f is not None]
+    if not got:
+        return None
+    lat = sum(f.lat_deg for f in got) / len(got)
+    lon = sum(f.lon_deg for f in got) / len(got)
+    alts = [f.alt_m for f in got if f.alt_m is not None]
+    x, y = to_local_m([f.lat_deg for f in got], [f.lon_deg for f in got], lat, lon)
+    scatter2 = float(np.mean(np.asarray(x) ** 2 + np.asarray(y) ** 2))
+    accs = [f.accuracy_m for f in got if f.accuracy_m is not None]
+    u = math.sqrt(max(accs) ** 2 + scatter2) if accs else None
+    mid = got[len(got) // 2]
+    return Geo(lat, lon, sum(alts) / len(alts) if alts else None, u, mid.fix_utc, len(got))
+
+
 class Interrupted(Exception):
     """The capture was stopped (stop event or Ctrl-C); what was collected is still used."""
 
@@ -81,7 +111,8 @@ class Capture:
 
     def __init__(self, link, writer, cert, *, standard: str, tier: str, e_ref_v_per_m: float,
                  freq_hz=None, band_hz=None, settle_s: float = 2.0, on_view: Callable[[View], None] | None = None,
-                 stop_event: threading.Event | None = None, names=None, followup_v_per_m=None):
+                 stop_event: threading.Event | None = None, names=None, followup_v_per_m=None, gnss=None,
+                 gnss_max_age_s: float = 2.0):
         self.link, self.writer, self.cert = link, writer, cert
         self.standard, self.tier, self.e_ref = standard, tier, float(e_ref_v_per_m)
         self.freq = freq_hz if freq_hz is not None else band_hz
@@ -90,6 +121,7 @@ class Capture:
         self.stop_event = stop_event or threading.Event()
         self.names = names or (lambda f: f"{f / 1e6:.1f} MHz")
         self.followup = followup_v_per_m
+        self.gnss, self.gnss_max_age_s = gnss, float(gnss_max_age_s)
         self.connected: Connected | None = None
         self.temp_c: float | None = None
         self.temps_c: list[float] = []       # every temperature the meter reported, in order
@@ -123,8 +155,15 @@ class Capture:
             w.add_event(item.kind, item.severity, item.message, item.t_utc, **item.detail)
         elif isinstance(item, Connected):
             self.connected = item
+        self.gnss_events()
         w.flush_if_due()
         return None
+
+    def gnss_events(self) -> None:
+        """Store what the GNSS receiver reported (lost, back, no fix, bad sentences) as events."""
+        if self.gnss is not None:
+            for e in self.gnss.events():
+                self.writer.add_event(e.kind, e.severity, e.message, e.t_utc, **e.detail)
 
     def _probe(self, r: Reading) -> Value:
         a = r.axes
@@ -222,11 +261,18 @@ class Capture:
             tot += (e / self._lim[f]) ** 2
         return tot
 
-    def _trace(self, v: Value, point_no, sample_no, used) -> None:
+    def _trace(self, v: Value, point_no, sample_no, used):
+        """Keep one value in the trace with the probe's position and the GNSS fix; returns the fix."""
         pos = self.position or (None, None, None)
-        self.trace.append({"point_no": point_no, "sample_no": sample_no, "boot": v.boot, "seq": v.seq,
-                           "t_utc": v.t_utc, "t_device_s": v.t_s, "e_v_per_m": v.e_v_per_m,
-                           "x_m": pos[0], "y_m": pos[1], "z_m": pos[2], "used": int(bool(used))})
+        fix = self.gnss.latest(self.gnss_max_age_s) if self.gnss is not None else None
+        row = {"point_no": point_no, "sample_no": sample_no, "boot": v.boot, "seq": v.seq,
+               "t_utc": v.t_utc, "t_device_s": v.t_s, "e_v_per_m": v.e_v_per_m,
+               "x_m": pos[0], "y_m": pos[1], "z_m": pos[2], "used": int(bool(used))}
+        if fix is not None:
+            row.update(lat_deg=fix.lat_deg, lon_deg=fix.lon_deg, alt_m=fix.alt_m, pos_u_m=fix.accuracy_m,
+                       fix_utc=fix.fix_utc, fix_quality=fix.quality, n_sats=fix.n_sats, hdop=fix.hdop)
+        self.trace.append(row)
+        return fix
 
     def _view(self, base: dict, v: Value, t0, dur, es, phase) -> None:
         if self.on_view is None:
@@ -260,6 +306,7 @@ class Capture:
                 walk=None, mover=None, host_timeout_s: float | None = None) -> tuple[Sample, bool]:
         """Collect values over duration_s of device time; returns (sample, interrupted)."""
         vals: list[Value] = []
+        fixes = []
         host_timeout_s = host_timeout_s if host_timeout_s is not None else 2 * duration_s + 30
         host_deadline = time.monotonic() + host_timeout_s
         interrupted = False
@@ -275,7 +322,7 @@ class Capture:
                     break
                 vals.append(v)
                 t0 = vals[0].t_s if t0 is None else t0
-                self._trace(v, point_no, sample_no, True)
+                fixes.append(self._trace(v, point_no, sample_no, True))
                 if walk is not None and mover is not None:
                     self.position = walk(min(1.0, (v.t_s - t0) / duration_s), height_m)
                     mover(self.position)
@@ -292,7 +339,8 @@ class Capture:
         floor = (lambda f: math.sqrt(3.0) * self.floor_v_per_m(f)) if is_dipole(self.cert) else None
         temps = ([] if t_before is None else [t_before]) + self.temps_c[i_temp:]
         s = _sample(vals, duration_s, height_m, self.position, floor)
-        return dataclasses.replace(s, temp_span_c=(min(temps), max(temps)) if temps else None), interrupted
+        return dataclasses.replace(s, temp_span_c=(min(temps), max(temps)) if temps else None,
+                                   geo=geo_of(fixes)), interrupted
 
 
 def _step(vals) -> float:

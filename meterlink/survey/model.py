@@ -105,6 +105,8 @@ class SurveyPlan:
     sweep_s: float = 60.0
     source_text: str = ""
     source_path: str = ""
+    sources_file: str = ""          # declared sources (docs/sources.md) for the predicted values
+    prediction_u_db: float = 3.0    # declared expanded uncertainty (k = 2) of a predicted field, dB
 
 
 @dataclass(frozen=True)
@@ -127,6 +129,8 @@ class Sample:
     sweeps: tuple = ()
     #: lowest and highest meter temperature (degC) while measuring; None: none reported
     temp_span_c: tuple[float, float] | None = None
+    #: GNSS position (meterlink.survey.capture.Geo) of the sample, None without a fix
+    geo: object | None = None
 
 
 @dataclass(frozen=True)

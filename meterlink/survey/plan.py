@@ -15,7 +15,8 @@ from meterlink.survey.spatial import SCHEMES, scheme_from
 
 _TOP = {"survey", "site", "source", "point"}
 _SURVEY = {"title", "standard", "tier", "rule", "certificate", "interval_ms", "freq_hz", "band_hz",
-           "followup_v_per_m", "followup_percent", "settle_s", "spot_s", "sweep_s"}
+           "followup_v_per_m", "followup_percent", "settle_s", "spot_s", "sweep_s", "sources_file",
+           "prediction_u_db"}
 _SITE = {"name", "address", "operator", "technician", "latitude_deg", "longitude_deg", "notes"}
 _SOURCE = {"name", "freq_hz", "technology", "power_w", "max_power_w", "notes"}
 _POINT = {"label", "mode", "height_m", "x_m", "y_m", "lat_deg", "lon_deg", "notes", "near_field",
@@ -204,4 +205,17 @@ def load_plan(path_or_dict) -> SurveyPlan:
         settle_s=c.num(sv, "settle_s", "[survey]", default=2.0, lo=0.0, hi=600.0),
         spot_s=c.num(sv, "spot_s", "[survey]", default=5.0, positive=True, hi=MAX_DURATION_S),
         sweep_s=c.num(sv, "sweep_s", "[survey]", default=60.0, positive=True, hi=MAX_DURATION_S),
-        source_text=text, source_path=where if where != "<dict>" else "")
+        source_text=text, source_path=where if where != "<dict>" else "",
+        sources_file=_sources_file(c, sv, where),
+        prediction_u_db=c.num(sv, "prediction_u_db", "[survey]", default=3.0, positive=True, hi=60.0))
+
+
+def _sources_file(c: _Ctx, sv: dict, where: str) -> str:
+    """The plan's sources file (docs/sources.md), relative to the plan's folder; "" without one."""
+    name = c.text(sv, "sources_file", "[survey]")
+    if not name:
+        return ""
+    p = Path(name)
+    if not p.is_absolute() and where != "<dict>":
+        p = Path(where).parent / p
+    return str(p)

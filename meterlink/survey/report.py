@@ -25,7 +25,8 @@ CAUTIONS = (
     "value is compared with the most restrictive reference level in its band. Keep clear of energised "
     "antennas and observe the site's access rules, barriers and signage at all times.")
 
-def render_html(sv: dict, figures: dict[str, bytes], template_dir=None) -> str:
+def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, *, comparisons=(), gis_files=(),
+                positions=None) -> str:
     """The report as one HTML string from a loaded survey (meterlink.survey.store.load_survey),
     laid out by the survey.html template (restyled from template_dir when given)."""
     from meterlink.physics.limits import describe_standard
@@ -44,7 +45,36 @@ def render_html(sv: dict, figures: dict[str, bytes], template_dir=None) -> str:
                   std=describe_standard(sv["standard"]), rule=get_rule(sv["decision_rule"]),
                   check_status=_check_status(sv), followup=_followup(sv), heights=_heights,
                   strongest=lambda p: max(p["emitters"], key=lambda m: m["share"] or 0)["name"],
-                  figures=figures, cautions=CAUTIONS)
+                  figures=figures, cautions=CAUTIONS, comparisons=list(comparisons), gis_files=list(gis_files),
+                  positions=positions if positions is not None else _positions(sv),
+                  predicted_u_db=_prediction_u(sv), declared_name=_declared_name(sv))
+
+
+def _positions(sv) -> dict:
+    """Rows of the positions table and the GNSS summary line (empty without a receiver)."""
+    rows = []
+    for p in sv["points"]:
+        for s in p["samples"]:
+            rows.append([p["point_no"], p["label"], s["sample_no"], num(s.get("lat_deg"), "{:.6f}"),
+                         num(s.get("lon_deg"), "{:.6f}"), num(s.get("alt_m"), "{:.1f}"), num(s.get("pos_u_m"), "{:.1f}"),
+                         s.get("fix_utc"), f"{s.get('n_positioned') or 0} of {s['n_readings']}"])
+    return {"port": sv.get("gnss_port"), "rows": rows}
+
+
+def _prediction_u(sv):
+    import json
+
+    d = json.loads(sv["declared_json"]) if sv.get("declared_json") else {}
+    return d.get("prediction_u_db")
+
+
+def _declared_name(sv) -> str:
+    import json
+
+    if not sv.get("declared_json"):
+        return ""
+    d = json.loads(sv["declared_json"])
+    return f"{d.get('name', '')} ({d.get('path', '')}), origin: {d.get('origin', '')}"
 
 
 def _check_status(sv) -> str:
@@ -81,6 +111,13 @@ def _heights(p) -> str:
 _cell, _csv = csv_cell, write_rows
 
 
+_GEO = ("lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "n_positioned")   # GNSS columns (schema version 5)
+
+
+_TRACE = ("point_no", "sample_no", "boot", "seq", "t_utc", "t_device_s", "e_v_per_m", "x_m", "y_m", "z_m", "used",
+          "lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "fix_quality", "n_sats", "hdop")
+
+
 def write_csv(sv: dict, out: Path) -> list[Path]:
     cols = ["point_no", "label", "mode", "scheme", "x_m", "y_m", "lat_deg", "lon_deg", "height_m", "near_field",
             "duration_s", "n_readings", "e_v_per_m", "e_max_v_per_m", "ex_v_per_m", "ey_v_per_m", "ez_v_per_m",
@@ -89,10 +126,10 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
             "exposure_ratio_extrapolated", "verdict_extrapolated", "notes"]
     files = {"points.csv": (cols, [[p[c] for c in cols] for p in sv["points"]]),
              "samples.csv": (["point_no", "label", "sample_no", "height_m", "x_m", "y_m", "e_v_per_m", "e_max_v_per_m",
-                              "u_expanded_db", "n_readings", "coverage"],
+                              "u_expanded_db", "n_readings", "coverage"] + list(_GEO),
                              [[p["point_no"], p["label"], s["sample_no"], s["height_m"], s["x_m"], s["y_m"],
                                s["e_v_per_m"], s["e_max_v_per_m"], s["u_expanded_db"], s["n_readings"], s["coverage"]]
-                              for p in sv["points"] for s in p["samples"]]),
+                              + [s.get(c) for c in _GEO] for p in sv["points"] for s in p["samples"]]),
              "sources.csv": (["name", "technology", "freq_hz", "power_w", "max_power_w"],
                              [[s["name"], s["technology"], s["freq_hz"], s["power_w"], s["max_power_w"]]
                               for s in sv["sources"]]),
@@ -101,10 +138,7 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
                               [[p["point_no"], p["label"], m["name"], m["freq_hz"], m["e_v_per_m"],
                                 m["e_extrapolated_v_per_m"], m["ratio"], m["share"]]
                                for p in sv["points"] for m in p["emitters"]]),
-             "trace.csv": (["point_no", "sample_no", "boot", "seq", "t_utc", "t_device_s", "e_v_per_m", "x_m", "y_m",
-                            "z_m", "used"], [[t[c] for c in ("point_no", "sample_no", "boot", "seq", "t_utc",
-                                                               "t_device_s", "e_v_per_m", "x_m", "y_m", "z_m", "used")]
-                                             for t in sv["trace"]])}
+             "trace.csv": (list(_TRACE), [[t.get(c) for c in _TRACE] for t in sv["trace"]])}
     paths = []
     for name, (head, rows) in files.items():
         _csv(out / name, head, rows)
@@ -143,7 +177,16 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
     sel = [p for p in pts if p["emitters"]]
     if sel:
         figures["shares"] = plots.shares_plot(max(sel, key=lambda p: p["exposure_ratio"] or 0))
+    from meterlink.survey import gis, map as smap, predicted
+
+    frame = smap.site_frame(sv)
+    png = smap.survey_map_png(sv, frame)
+    if png is not None:
+        figures["map"] = png
+    comparisons = predicted.compare(sv, frame)
+    gis_files = [p.name for p in gis.write_gis(sv, frame, out)]
     html_path = out / "report.html"
-    write_outputs(render_html(sv, figures, template_dir), html_path, pdf)
+    write_outputs(render_html(sv, figures, template_dir, comparisons=comparisons, gis_files=gis_files), html_path,
+                  pdf)
     write_csv(sv, out)
     return html_path

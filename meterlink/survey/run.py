@@ -50,8 +50,17 @@ class Survey:
 
     def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
                  on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
-                 link_factory=None, **link_options):
+                 link_factory=None, gnss_port: str | None = None, gnss_factory=None, gnss_max_age_s: float = 2.0,
+                 declared=None, **link_options):
         self.store, self.port, self.plan = store, port, plan
+        self.gnss_port = gnss_port
+        self.declared = declared      # planning Site of the plan's sources file (read by the caller), or None
+        self.gnss = None
+        self.gnss_max_age_s = gnss_max_age_s    # host seconds a fix stays current (tests at speed: shorter)
+        self.n_positioned = self.n_unpositioned = 0     # survey_trace rows stored with and without a position
+        if gnss_port is not None or gnss_factory is not None:
+            from meterlink.device.gnss import GnssLink
+            self.gnss = GnssLink(gnss_port or "gnss", link_factory=gnss_factory)
         self.cert = load_certificate(plan.certificate)
         self.dipole = isinstance(self.cert, DipoleCertificate)
         band = plan.freq_hz if plan.freq_hz is not None else (plan.band_hz or self.cert.freq_range_hz)
@@ -72,7 +81,14 @@ class Survey:
     # -- lifecycle -----------------------------------------------------------------------------
     def __enter__(self) -> "Survey":
         plan = self.plan
-        self.link.start(require_open=True)
+        if self.gnss is not None:
+            self.gnss.start(require_open=True)      # a --gps port that cannot be opened: one-line error now
+        try:
+            self.link.start(require_open=True)
+        except BaseException:
+            if self.gnss is not None:
+                self.gnss.stop()
+            raise
         try:
             self.session_id = self.store.begin_session(
                 "survey", self.port, interval_ms=plan.interval_ms, freq_hz=plan.freq_hz,
@@ -86,10 +102,13 @@ class Survey:
                 settle_s=plan.settle_s, on_view=self.on_view, stop_event=self.interrupt_event,
                 names=lambda f: next((n for sf, n in names.items() if abs(sf - f) <= 0.005 * sf),
                                      f"{f / 1e6:.1f} MHz"),
-                followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m))
+                followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m), gnss=self.gnss,
+                gnss_max_age_s=self.gnss_max_age_s)
             self._connect()
+            self._first_fix()
             sstore.create_survey(self.store, self.session_id, plan, self.cert, self.ref,
-                                 "dipole" if self.dipole else "probe")
+                                 "dipole" if self.dipole else "probe", gnss_port=self.gnss_port,
+                                 declared=self.declared)
         except BaseException:
             self.__exit__(None, None, None)
             raise
@@ -116,15 +135,47 @@ class Survey:
 
     def __exit__(self, *exc) -> None:
         self.link.stop()
+        if self.gnss is not None:
+            self.gnss.stop()
         if self._writer is not None:
             if self.capture is not None:
                 self.capture.drain()
+                self._gnss_summary()
             self._writer.close()
         if self.session_id is not None:
             self.store.end_session(self.session_id)
             if "survey" in self.store.db.table_names() and self.store.db["survey"].count_where(
                     "session_id = ?", [self.session_id]):
                 sstore.end_survey(self.store, self.session_id)
+
+    def _first_fix(self, wait_s: float = 5.0) -> None:
+        """Give the receiver up to wait_s (host seconds) for a first fix; without one the survey
+        goes on and the event says so."""
+        if self.gnss is None:
+            return
+        deadline = time.monotonic() + wait_s
+        while self.gnss.latest(self.gnss_max_age_s) is None and time.monotonic() < deadline:
+            item = self.link.get(0.01)          # keep storing what the meter sends meanwhile
+            if item is not None:
+                self.capture._item(item)
+        if self.gnss.latest(self.gnss_max_age_s) is None:
+            self._writer.add_event("gnss_no_fix_at_start", "warning", f"no GNSS fix from {self.gnss.port} within "
+                                   f"{wait_s:g} s: the survey starts without positions")
+
+    def _gnss_summary(self) -> None:
+        """One closing event with exact counts: values with and without a position, sentences used
+        and rejected, losses of the receiver."""
+        if self.gnss is None or self.capture is None:
+            return
+        self.capture.gnss_events()
+        st = self.gnss.summary()
+        n_all = self.n_positioned + self.n_unpositioned
+        sev = "info" if self.n_unpositioned == 0 else "warning"
+        self._writer.add_event(
+            "gnss_summary", sev, f"GNSS on {self.gnss.port}: {self.n_positioned} of {n_all} stored value(s) "
+            f"positioned, {self.n_unpositioned} without position; {st['bad_checksum']} sentence(s) with a bad "
+            f"checksum and {st['malformed']} malformed not used; receiver lost {st['port_losses']} time(s)",
+            positioned=self.n_positioned, unpositioned=self.n_unpositioned, **st)
 
     # -- points --------------------------------------------------------------------------------
     def _duration(self, p: Point) -> float:
@@ -163,6 +214,12 @@ class Survey:
             raise MeterlinkError(f"point {p.label!r}: no readings arrived from {self.port}")
         samples = [s for s in samples if s.n_readings]
         warn = list(certificate_status(self.cert, datetime.date.today()))
+        if self.gnss is not None:
+            n_geo = sum(s.geo.n_positioned for s in samples if s.geo is not None)
+            n_all = sum(s.n_readings for s in samples)
+            if n_geo < n_all:
+                warn.append(f"GNSS: {n_all - n_geo} of {n_all} reading(s) without a position (receiver lost, "
+                            "no fix or bad sentences; see the events)")
         if p.mode == "sweep":
             warn.append("sweep: maximum hold of single readings, not an average")
         res = assess(self.plan, p, tuple(samples), self.ref, interrupted=interrupted,
@@ -170,6 +227,10 @@ class Survey:
                                 and dur < self.ref.averaging_time_s - 1e-9), warnings=tuple(warn),
                      temperatures=point_temperatures(tuple(samples), self.cert.temp_range_c))
         self._writer.flush()
+        if self.gnss is not None:
+            n_pos = sum(1 for t in cap.trace if t.get("lat_deg") is not None)
+            self.n_positioned += n_pos
+            self.n_unpositioned += len(cap.trace) - n_pos
         sstore.add_point(self.store, self.session_id, no, res, cap.trace)
         cap.trace = []
         self.results.append(res)
@@ -182,18 +243,28 @@ class Survey:
             return s
         best = max(used, key=lambda t: t["e_v_per_m"])
         pos = (best["x_m"], best["y_m"], best["z_m"]) if best["x_m"] is not None else s.position_m
-        return dataclasses.replace(s, e_v_per_m=s.e_max_v_per_m, position_m=pos)
+        geo = s.geo
+        if best.get("lat_deg") is not None:     # the maximum's own fix
+            from meterlink.survey.capture import Geo
+            geo = Geo(best["lat_deg"], best["lon_deg"], best["alt_m"], best["pos_u_m"], best["fix_utc"],
+                      s.geo.n_positioned if s.geo else 1)
+        elif self.gnss is not None:
+            geo = None
+        return dataclasses.replace(s, e_v_per_m=s.e_max_v_per_m, position_m=pos, geo=geo)
 
 
 def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Callable | None = None,
              on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
-             **link_options) -> int:
+             gnss_port: str | None = None, declared=None, **link_options) -> int:
     """Measure every point of a plan against the meter on port; returns the survey session id.
 
     mover(position_m) is called to place the probe (the simulated meter's move_to); without it,
     ready(point, height_m) (e.g. a prompt) waits for the technician; console (a rich Console)
     shows the live readout and one line per point."""
     plan = load_plan(plan_path_or_dict)
+    if plan.sources_file and declared is None:
+        raise MeterlinkError(f"the plan names the sources file {plan.sources_file!r}: read it with "
+                             "meterlink.planning.sourcefile.load_site and pass it as declared=")
     from meterlink.survey.readout import LiveReadout
 
     with Store(db_path) as store, LiveReadout(console, on_view) as live:
@@ -202,7 +273,7 @@ def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Call
                 ready(point, height_m)
 
         with Survey(store, port, plan, mover=mover, on_view=live.update, ready=ready_seen if ready else None,
-                    **link_options) as sv:
+                    gnss_port=gnss_port, declared=declared, **link_options) as sv:
             for p in plan.points:
                 try:
                     res = sv.measure(p)

@@ -17,7 +17,8 @@ def _num(v):
     return None if v is None or (isinstance(v, float) and not math.isfinite(v)) else v
 
 
-def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, sensor: str) -> None:
+def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, sensor: str,
+                  gnss_port: str | None = None, declared=None) -> None:
     """Record the plan's fixed choices (standard, tier, rule, certificate) before measuring."""
     from meterlink.physics.certificate import dump_certificate
 
@@ -30,7 +31,11 @@ def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, se
            "e_ref_v_per_m": ref.e_v_per_m, "e_ref_freq_hz": ref.freq_hz, "averaging_time_s": ref.averaging_time_s,
            "followup_v_per_m": plan.followup.v_per_m, "followup_percent": plan.followup.percent_field,
            "plan_text": plan.source_text, "plan_path": plan.source_path, "created_utc": time.time(),
-           "software_version": __version__}
+           "software_version": __version__, "gnss_port": gnss_port,
+           "declared_json": None if declared is None else json.dumps(
+               {"name": declared.name, "origin": declared.origin, "path": declared.path,
+                "ground_factor": declared.ground_factor, "prediction_u_db": plan.prediction_u_db,
+                "sources": [asdict(s) for s in declared.sources]})}
     with store.write():
         store.db["survey"].insert(row)
         store.db["survey_sources"].insert_all(
@@ -63,14 +68,26 @@ def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trac
               "x_m": s.position_m[0] if s.position_m else None, "y_m": s.position_m[1] if s.position_m else None,
               "e_v_per_m": _num(s.e_v_per_m), "e_max_v_per_m": _num(s.e_max_v_per_m),
               "u_expanded_db": s.u_expanded_db, "n_readings": s.n_readings, "coverage": s.coverage,
-              "t_start_utc": _num(s.t_start_utc), "t_end_utc": _num(s.t_end_utc)} for i, s in enumerate(r.samples)])
+              "t_start_utc": _num(s.t_start_utc), "t_end_utc": _num(s.t_end_utc), **_geo_cols(s.geo)}
+             for i, s in enumerate(r.samples)])
         store.db["survey_emitters"].insert_all(
             [{"point_id": pid, "name": m.name, "freq_hz": m.freq_hz, "e_v_per_m": m.e_v_per_m,
               "e_extrapolated_v_per_m": m.e_extrapolated_v_per_m, "ratio": m.ratio, "share": m.share}
              for m in r.emitters])
-        store.db["survey_trace"].insert_all([{**t, "session_id": session_id, "e_v_per_m": _num(t["e_v_per_m"])}
-                                             for t in trace])
+        store.db["survey_trace"].insert_all([{**_TRACE_GNSS, **t, "session_id": session_id,
+                                              "e_v_per_m": _num(t["e_v_per_m"])} for t in trace])
     return pid
+
+
+#: the GNSS columns of a trace row (schema version 5), NULL for a value without a fix
+_TRACE_GNSS = dict.fromkeys(("lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "fix_quality", "n_sats", "hdop"))
+
+
+def _geo_cols(geo) -> dict:
+    if geo is None:
+        return dict.fromkeys(("lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "n_positioned"))
+    return {"lat_deg": geo.lat_deg, "lon_deg": geo.lon_deg, "alt_m": geo.alt_m, "pos_u_m": geo.u_m,
+            "fix_utc": geo.fix_utc, "n_positioned": geo.n_positioned}
 
 
 def end_survey(store: Store, session_id: int) -> None:

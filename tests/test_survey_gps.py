@@ -1,0 +1,140 @@
+"""Surveys with a GNSS receiver: the simulated meter and the simulated receiver each on a real pty
+(pyserial), accelerated clock. Every sample is positioned where the probe was; a receiver that
+sends garbage, loses its fix or vanishes leaves the survey going, without positions, and says so."""
+
+import json
+import sqlite3
+
+import pytest
+
+from meterlink.device.gnss import to_local_m
+from meterlink.simulators.gnss import DEMO_ORIGIN, SimulatedGnss
+from meterlink.simulators.pty_meter import SimulatedMeter
+from meterlink.survey.run import run_plan
+
+SPEED = 100.0
+LAT0, LON0, ALT0 = DEMO_ORIGIN
+
+PLAN = {
+    "survey": {"standard": "icnirp-1998", "tier": "public", "rule": "guarded", "certificate": "demo-probe",
+               "settle_s": 2, "spot_s": 5},
+    "site": {"name": "Brannock Tor transmitting site", "latitude_deg": LAT0, "longitude_deg": LON0},
+    "point": [
+        {"label": "gate", "x_m": -60, "y_m": 40, "mode": "spot"},
+        {"label": "mast foot", "x_m": 4, "y_m": -4, "mode": "spatial", "scheme": "three-heights"},
+        {"label": "bench", "x_m": 26, "y_m": -14, "mode": "spot"},
+        {"label": "fence", "x_m": -8, "y_m": 6, "mode": "sweep", "duration_s": 20,
+         "walk_m": [[-8, 6], [4, -4], [26, -14]]},
+    ],
+}
+
+
+def rows(db, sql, *args):
+    con = sqlite3.connect(db)
+    con.row_factory = sqlite3.Row
+    try:
+        return [dict(r) for r in con.execute(sql, args)]
+    finally:
+        con.close()
+
+
+def test_every_sample_positioned_where_the_probe_was(tmp_path):
+    db = tmp_path / "s.db"
+    with SimulatedMeter("demo", seed=1, speed=SPEED) as sim, SimulatedGnss.following(sim) as gnss:
+        sid = run_plan(sim.port, PLAN, db, mover=sim.move_to, gnss_port=gnss.port)
+    samples = rows(db, "select s.*, p.label, p.mode from survey_samples s join survey_points p on p.id = s.point_id")
+    assert len(samples) == 6                      # 1 + 3 heights + 1 + 1
+    for s in samples:
+        assert s["n_positioned"] == s["n_readings"] > 0, s
+        x, y = to_local_m(s["lat_deg"], s["lon_deg"], LAT0, LON0)
+        # the receiver reports minutes to 5 decimals (under 2 cm); the fix may lag the probe by a fix interval
+        tol = 0.05 if s["mode"] != "sweep" else 2.0
+        assert float(x) == pytest.approx(s["x_m"], abs=tol) and float(y) == pytest.approx(s["y_m"], abs=tol)
+        assert s["pos_u_m"] == pytest.approx(0.9 * 5.0, abs=0.05)   # simulator's HDOP 0.9 x 5 m, no scatter at a spot
+        assert s["alt_m"] == pytest.approx(ALT0 + s["height_m"], abs=0.06)
+    fix_t = [s["fix_utc"] for s in samples]
+    assert fix_t == sorted(fix_t) and len(set(fix_t)) == len(fix_t)   # each sample its own, later fix
+    # the sweep is a track: every used reading of it has its own position, and they move
+    track = rows(db, "select * from survey_trace where session_id = ? and point_no = 4 and used = 1", sid)
+    assert len(track) >= 19 and all(t["lat_deg"] is not None for t in track)
+    assert len({(round(t["lat_deg"], 6), round(t["lon_deg"], 6)) for t in track}) >= 10
+    assert rows(db, "select gnss_port from survey")[0]["gnss_port"] == gnss.port
+    ev = rows(db, "select * from events where session_id = ? and kind = 'gnss_summary'", sid)
+    assert len(ev) == 1 and json.loads(ev[0]["detail"])["unpositioned"] == 0
+
+
+@pytest.mark.parametrize("fault, expect", [
+    ("garbage", "gnss_bad_sentences"), ("no_fix", "gnss_no_fix"), ("vanish", "gnss_lost")])
+def test_receiver_failing_mid_survey_loses_no_measurement(tmp_path, fault, expect):
+    db = tmp_path / "f.db"
+    # a fix counts as current for 0.05 s of host time (5 s of device time at SPEED): the settle of 6 s
+    # lets the last good fix go stale before the second point is measured
+    plan = {**PLAN, "survey": {**PLAN["survey"], "settle_s": 6},
+            "point": PLAN["point"][:1] + PLAN["point"][2:3]}
+    with SimulatedMeter("demo", seed=3, speed=SPEED) as sim, SimulatedGnss.following(sim) as gnss:
+        def on_view(v):     # the fault starts as the probe is placed at the second point
+            if v.label == "bench" and not gnss.sent["vanished"] and not (gnss.garbage or gnss.no_fix):
+                gnss.vanish() if fault == "vanish" else setattr(gnss, fault, True)
+        sid = run_plan(sim.port, plan, db, mover=sim.move_to, gnss_port=gnss.port, on_view=on_view,
+                       gnss_max_age_s=0.05)
+    pts = rows(db, "select * from survey_points where session_id = ? order by point_no", sid)
+    assert [p["label"] for p in pts] == ["gate", "bench"] and all(p["complete"] for p in pts)
+    samples = rows(db, "select * from survey_samples order by id")
+    assert samples[0]["n_positioned"] == samples[0]["n_readings"]          # before the fault
+    assert samples[1]["lat_deg"] is None and samples[1]["n_positioned"] is None   # after it: no position
+    assert any("without a position" in w for w in json.loads(pts[1]["warnings"]))
+    # nothing measured is lost: every trace value is a stored reading, the second point has its readings
+    n_read = rows(db, "select count(*) n from readings where session_id = ?", sid)[0]["n"]
+    n_trace = rows(db, "select count(*) n from survey_trace where session_id = ?", sid)[0]["n"]
+    assert n_read >= n_trace and pts[1]["n_readings"] >= 5
+    kinds = [e["kind"] for e in rows(db, "select kind from events where session_id = ?", sid)]
+    assert expect in kinds
+    summ = json.loads(rows(db, "select detail from events where kind = 'gnss_summary'")[0]["detail"])
+    unpos = rows(db, "select count(*) n from survey_trace where session_id = ? and lat_deg is null", sid)[0]["n"]
+    assert summ["unpositioned"] == unpos > 0 and summ["positioned"] == n_trace - unpos
+    if expect == "gnss_bad_sentences":
+        assert summ["bad_checksum"] > 0
+
+
+def test_cli_survey_with_simulated_gps_and_bad_gps_port(tmp_path):
+    import subprocess
+    import sys
+
+    sim = subprocess.Popen([sys.executable, "-m", "meterlink", "simulate", "--speed", "100", "--gps"],
+                           stdout=subprocess.PIPE, text=True)
+    try:
+        meter_port, gnss_port = sim.stdout.readline().strip(), sim.stdout.readline().strip()
+        plan = tmp_path / "plan.toml"
+        plan.write_text('[survey]\nstandard = "icnirp-1998"\nrule = "guarded"\ncertificate = "demo-probe"\n'
+                        'spot_s = 3\nsettle_s = 1\n[site]\nname = "Brannock Tor (invented)"\n'
+                        '[[point]]\nlabel = "walk-in"\n', encoding="utf-8")
+        db = tmp_path / "c.db"
+        bad = subprocess.run([sys.executable, "-m", "meterlink", "survey", "--port", meter_port, "--plan", str(plan),
+                              "--db", str(db), "--gps", str(tmp_path / "no-receiver"), "--json"],
+                             capture_output=True, text=True, timeout=60)
+        assert bad.returncode == 2 and "Traceback" not in bad.stderr
+        assert len(bad.stderr.strip().splitlines()) == 1 and "GNSS receiver" in bad.stderr
+        ok = subprocess.run([sys.executable, "-m", "meterlink", "survey", "--port", meter_port, "--plan", str(plan),
+                             "--db", str(db), "--gps", gnss_port, "--json"], capture_output=True, text=True, timeout=120)
+        assert ok.returncode == 0, ok.stderr
+    finally:
+        sim.terminate()
+        sim.wait(10)
+        sim.stdout.close()
+    s = rows(db, "select * from survey_samples")
+    assert len(s) == 1 and s[0]["n_positioned"] == s[0]["n_readings"] >= 3 and s[0]["lat_deg"] is not None
+
+
+def test_missing_sources_file_is_refused_before_the_meter_is_touched(tmp_path):
+    import subprocess
+    import sys
+
+    plan = tmp_path / "plan.toml"
+    plan.write_text('[survey]\nstandard = "icnirp-1998"\nrule = "guarded"\ncertificate = "demo-probe"\n'
+                    'sources_file = "absent-sources.toml"\n[site]\nname = "Brannock Tor (invented)"\n'
+                    '[[point]]\nlabel = "walk-in"\n', encoding="utf-8")
+    r = subprocess.run([sys.executable, "-m", "meterlink", "survey", "--port", str(tmp_path / "no-meter"),
+                        "--plan", str(plan), "--db", str(tmp_path / "x.db"), "--json"],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "Traceback" not in r.stderr and len(r.stderr.strip().splitlines()) == 1
+    assert "absent-sources.toml" in r.stderr and not (tmp_path / "x.db").exists()
