@@ -111,7 +111,7 @@ def _heights(p) -> str:
 _cell, _csv = csv_cell, write_rows
 
 
-_GEO = ("lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "n_positioned")   # GNSS columns (schema version 5)
+_GEO = ("lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "n_positioned")   # GNSS columns (schema version 7)
 
 
 _TRACE = ("point_no", "sample_no", "boot", "seq", "t_utc", "t_device_s", "e_v_per_m", "x_m", "y_m", "z_m", "used",

@@ -79,7 +79,7 @@ def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trac
     return pid
 
 
-#: the GNSS columns of a trace row (schema version 5), NULL for a value without a fix
+#: the GNSS columns of a trace row (schema version 7), NULL for a value without a fix
 _TRACE_GNSS = dict.fromkeys(("lat_deg", "lon_deg", "alt_m", "pos_u_m", "fix_utc", "fix_quality", "n_sats", "hdop"))
 
 
