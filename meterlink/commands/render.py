@@ -43,7 +43,8 @@ def _kind(db, session):
     conn = open_readonly(db)
     try:
         tables = {r[0] for r in conn.execute("select name from sqlite_master where type = 'table'")}
-        if session is None and "mon_station" in tables:
+        # every file has the monitoring tables (schema 5); a station file is one the monitor wrote a station to
+        if session is None and "mon_station" in tables and conn.execute("select 1 from mon_station limit 1").fetchone():
             return "station", None
         if "sessions" not in tables:
             raise MeterlinkError(f"{db}: holds neither recorded sessions nor a monitoring station")
