@@ -112,19 +112,79 @@ class SessionQueries:
             return list(self.db["calibrations"].rows_where("session_id = ?", [session_id], order_by="id"))
 
     def add_field_values(self, calibration_id: int, reading_ids, e_v_per_m, axes_v_per_m, h_a_per_m,
-                         s_w_per_m2, u_expanded_db, flags) -> None:
-        """Store one calibration's values for many readings in one transaction (NaN stored as NULL)."""
-        def f(x):
-            x = float(x)
-            return x if x == x else None
-
-        rows = [(int(i), calibration_id, f(e), f(a[0]), f(a[1]), f(a[2]), f(h), f(s_), f(u), int(fl))
-                for i, e, a, h, s_, u, fl in zip(reading_ids, e_v_per_m, axes_v_per_m, h_a_per_m, s_w_per_m2,
-                                                 u_expanded_db, flags)]
+                         s_w_per_m2, u_expanded_db, flags, t_utc=None) -> None:
+        """Store one calibration's values for many readings in one transaction (NaN stored as NULL);
+        given the readings' times too, also packed per run of readings (field_spans, for streaming)."""
+        axes = np.asarray(axes_v_per_m, dtype=float).reshape(-1, 3)
+        n = axes.shape[0]
+        cols = [np.asarray(reading_ids, dtype=np.int64).tolist(), [calibration_id] * n]
+        for c in (e_v_per_m, axes[:, 0], axes[:, 1], axes[:, 2], h_a_per_m, s_w_per_m2, u_expanded_db):
+            a = np.asarray(c, dtype=float)
+            lst = a.tolist()
+            if not np.isfinite(a).all():   # NULL for NaN, as before; infinities stay numbers
+                lst = [None if x != x else x for x in lst]
+            cols.append(lst)
+        cols.append(np.asarray(flags, dtype=np.int64).tolist())
+        packed = [] if t_utc is None else _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes,
+                                                         u_expanded_db, flags)
         with self.write():
             self.db.conn.executemany(
                 "insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
-                "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)", rows)
+                "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)", zip(*cols))
+            self.db.conn.executemany(
+                "insert into field_spans (calibration_id, id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, e_v_per_m, "
+                "axes_v_per_m, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?,?,?)", packed)
+
+    def packed_count(self, calibration_id: int) -> int:
+        """How many readings a calibration holds packed in field_spans (0: none, read field_values)."""
+        with self._lock:
+            return int(self.db.execute("select coalesce(sum(n), 0) from field_spans where calibration_id = ?",
+                                       [calibration_id]).fetchone()[0])
+
+    def packed_chunks(self, calibration_id: int):
+        """Generator: a calibration's field_spans rows in id order, each as a dict of numpy arrays."""
+        with self._lock:
+            cur = self.db.conn.cursor()
+            cur.execute("select reading_id, t_utc, e_v_per_m, axes_v_per_m, u_expanded_db, flags from field_spans "
+                        "where calibration_id = ? order by id_lo", [calibration_id])
+        try:
+            while True:
+                with self._lock:
+                    got = cur.fetchmany(8)
+                if not got:
+                    return
+                for r in got:
+                    yield {"reading_id": np.frombuffer(r[0], "<i8"), "t_utc": np.frombuffer(r[1], "<f8"),
+                           "e_v_per_m": np.frombuffer(r[2], "<f8"), "axes_v_per_m": np.frombuffer(r[3], "<f8").reshape(-1, 3),
+                           "u_expanded_db": np.frombuffer(r[4], "<f8"), "flags": np.frombuffer(r[5], "<i8")}
+        finally:
+            cur.close()
+
+    def drop_calibration(self, calibration_id: int) -> None:
+        """Remove a calibration and its values: only for one whose writing failed part-way (streamed)."""
+        with self.write() as conn:
+            conn.execute("delete from field_values where calibration_id = ?", [calibration_id])
+            conn.execute("delete from calibrations where id = ?", [calibration_id])
+
+    # -- streaming: a session span by span (meterlink.storage.recording) ----------------------
+    def reading_spans(self, session_id: int) -> list[tuple]:
+        """The session's span index rows (id_lo, id_hi, n, t_lo, t_hi), by id: where its readings lie."""
+        with self._lock:
+            return self.db.execute("select id_lo, id_hi, n, t_lo, t_hi from reading_spans where session_id = ? "
+                                   "order by id_lo", [session_id]).fetchall()
+
+    def row_chunks(self, sql: str, params_of, id_ranges, rows: int):
+        """Generator: fetchall() of ``sql`` for id sub-ranges [lo, hi] of about ``rows`` ids each.
+
+        ``params_of(lo, hi)`` gives the statement's parameters; each chunk is a list of tuples,
+        so memory stays bounded by one chunk however long the session."""
+        for lo, hi in id_ranges:
+            for a in range(lo, hi + 1, rows):
+                b = min(a + rows - 1, hi)
+                with self._lock:
+                    got = self.db.execute(sql, params_of(a, b)).fetchall()
+                if got:
+                    yield got
 
     def field_values(self, calibration_id: int) -> dict[str, np.ndarray]:
         """One calibration's values joined with reading times, ordered by time (NULL -> NaN)."""
@@ -168,3 +228,23 @@ class SessionQueries:
         return {"boot": a[:, 0].astype(np.int64), "sweep": a[:, 1].astype(np.int64),
                 "orientation": a[:, 2].astype(np.int64), "t_utc": a[:, 3], "freq_hz": a[:, 4],
                 "e_v_per_m": a[:, 5], "u_expanded_db": a[:, 6], "flags": a[:, 7].astype(np.int64)}
+
+
+#: Readings per field_spans row.
+PACKED_ROWS = 16384
+
+
+def _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes, u_expanded_db, flags) -> list[tuple]:
+    """field_spans rows of one calibration's values: sorted by reading id, PACKED_ROWS at a time."""
+    ids = np.asarray(reading_ids, dtype=np.int64)
+    order = np.argsort(ids, kind="stable") if np.any(np.diff(ids) < 0) else slice(None)
+    cols = [ids[order], np.asarray(t_utc, dtype="<f8")[order], np.asarray(e_v_per_m, dtype="<f8")[order],
+            np.asarray(axes, dtype="<f8")[order], np.asarray(u_expanded_db, dtype="<f8")[order],
+            np.asarray(flags, dtype="<i8")[order]]
+    out = []
+    for a in range(0, ids.size, PACKED_ROWS):
+        part = [c[a:a + PACKED_ROWS] for c in cols]
+        i, t = part[0], part[1]
+        out.append((calibration_id, int(i[0]), int(i[-1]), int(i.size), float(np.min(t)), float(np.max(t)),
+                    *(np.ascontiguousarray(c, dtype=c.dtype.newbyteorder("<")).tobytes() for c in part)))
+    return out
