@@ -173,6 +173,19 @@ class SessionQueries:
             return self.db.execute("select id_lo, id_hi, n, t_lo, t_hi from reading_spans where session_id = ? "
                                    "order by id_lo", [session_id]).fetchall()
 
+    def recording_rows(self, session_id: int, calibration_id: int | None = None, events: bool = False) -> dict:
+        """Everything the recording loader reads about a session, in one call under one lock: the
+        session row with its device, calibrations, temperatures, span index rows, how many values
+        the calibration in force (the latest, or calibration_id) holds packed, and optionally events."""
+        with self._lock:
+            cals = self.calibrations(session_id)
+            cal = (cals[-1] if cals else None) if calibration_id is None else \
+                next((c for c in cals if c["id"] == calibration_id), None)
+            return {"session": self.session(session_id), "calibrations": cals, "calibration": cal,
+                    "temperatures": self.status_temperatures(session_id), "spans": self.reading_spans(session_id),
+                    "packed": self.packed_count(cal["id"]) if cal is not None else 0,
+                    "events": self.events(session_id) if events else None}
+
     def row_chunks(self, sql: str, params_of, id_ranges, rows: int):
         """Generator: fetchall() of ``sql`` for id sub-ranges [lo, hi] of about ``rows`` ids each.
 

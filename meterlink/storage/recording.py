@@ -1,7 +1,7 @@
 """The recording loader: everything a computation needs about one session, read in one place.
 
-``load_recording`` asks the Store a handful of questions (session and device, calibrations,
-temperatures, span index, optionally events) and returns a frozen ``Recording``. Its readings and
+``load_recording`` asks the Store once (session and device, calibrations, temperatures, span
+index, packed count, optionally events: Store.recording_rows) and returns a frozen ``Recording``. Its readings and
 calibrated values are not loaded: the generators ``times``, ``readings`` and ``values`` hand
 them out span by span (chunks of about ``rows`` readings, in id order), so a year at 1 Hz
 streams through a few megabytes instead of being held whole.
@@ -189,24 +189,21 @@ class Recording:
 
 def load_recording(store, session_id: int, *, calibration_id: int | None = None,
                    events: bool = False) -> Recording:
-    """Read what any computation on a session needs, once: five Store calls (six with events)."""
+    """Read what any computation on a session needs in one Store call (Store.recording_rows)."""
     from meterlink.physics.certificate import parse_certificate
 
-    s = store.session(session_id)
-    cals = tuple(types.MappingProxyType(c) for c in store.calibrations(session_id))
-    cal = None
-    if calibration_id is not None:
-        cal = next((c for c in cals if c["id"] == calibration_id), None)
-        if cal is None:
-            raise MeterlinkError(f"session {session_id} has no calibration {calibration_id}")
-    elif cals:
-        cal = cals[-1]
+    got = store.recording_rows(session_id, calibration_id, events)
+    s = got["session"]
+    cals = tuple(types.MappingProxyType(c) for c in got["calibrations"])
+    if calibration_id is not None and got["calibration"] is None:
+        raise MeterlinkError(f"session {session_id} has no calibration {calibration_id}")
+    cal = None if got["calibration"] is None else types.MappingProxyType(got["calibration"])
     cert = parse_certificate(cal["certificate_text"], f"calibration {cal['id']}") if cal is not None else None
-    temps = tuple(float(t) for t in store.status_temperatures(session_id) if t is not None)
-    spans = tuple(tuple(r) for r in store.reading_spans(session_id))
+    temps = tuple(float(t) for t in got["temperatures"] if t is not None)
+    spans = tuple(tuple(r) for r in got["spans"])
     band = (s["band_lo_hz"], s["band_hi_hz"]) if s.get("band_lo_hz") and s.get("band_hi_hz") else None
     kind = s.get("device_sensor_kind")
-    evs = tuple(store.events(session_id)) if events else None
-    packed = store.packed_count(cal["id"]) if cal is not None else 0
+    evs = tuple(got["events"]) if events else None
+    packed = got["packed"]
     return Recording(session_id, s["kind"], types.MappingProxyType(dict(s)), None if kind is None else int(kind),
                      cals, cal, cert, s.get("freq_hz"), band, temps, spans, evs, packed, store)
