@@ -116,8 +116,7 @@ class SessionQueries:
         """Store one calibration's values for many readings in one transaction (NaN stored as NULL);
         given the readings' times too, also packed per run of readings (field_spans, for streaming)."""
         axes = np.asarray(axes_v_per_m, dtype=float).reshape(-1, 3)
-        n = axes.shape[0]
-        cols = [np.asarray(reading_ids, dtype=np.int64).tolist(), [calibration_id] * n]
+        cols = [np.asarray(reading_ids, dtype=np.int64).tolist()]
         for c in (e_v_per_m, axes[:, 0], axes[:, 1], axes[:, 2], h_a_per_m, s_w_per_m2, u_expanded_db):
             a = np.asarray(c, dtype=float)
             lst = a.tolist()
@@ -127,11 +126,30 @@ class SessionQueries:
         cols.append(np.asarray(flags, dtype=np.int64).tolist())
         packed = [] if t_utc is None else _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes,
                                                          u_expanded_db, flags)
-        with self.write():
-            self.db.conn.executemany(
-                "insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
-                "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)", zip(*cols))
-            self.db.conn.executemany(
+        cal = int(calibration_id)            # goes into the statement: one value fewer to bind per row
+        conn = self.db.conn
+        with self._lock:
+            own = not conn.in_transaction    # the pragma is a no-op inside a transaction
+            if own:
+                # as in _session_tx: no per-row foreign-key checks (reading and calibration) in this bulk
+                # insert; the calibration is checked once here, the reading ids were read from readings
+                conn.execute("PRAGMA foreign_keys=OFF")
+            try:
+                with self.write():
+                    if conn.execute("select 1 from calibrations where id = ?", [cal]).fetchone() is None:
+                        raise StorageError(f"no calibration {cal} in {str(self.path)!r}")
+                    self._insert_values(conn, cal, cols, packed)
+            finally:
+                if own:
+                    conn.execute("PRAGMA foreign_keys=ON")
+
+    @staticmethod
+    def _insert_values(conn, cal: int, cols: list, packed: list) -> None:
+        conn.executemany(
+            "insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
+            f"ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,{cal},?,?,?,?,?,?,?,?)", zip(*cols))
+        if packed:
+            conn.executemany(
                 "insert into field_spans (calibration_id, id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, e_v_per_m, "
                 "axes_v_per_m, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?,?,?)", packed)
 
@@ -145,8 +163,8 @@ class SessionQueries:
         """Generator: a calibration's field_spans rows in id order, each as a dict of numpy arrays."""
         with self._lock:
             cur = self.db.conn.cursor()
-            cur.execute("select reading_id, t_utc, e_v_per_m, axes_v_per_m, u_expanded_db, flags from field_spans "
-                        "where calibration_id = ? order by id_lo", [calibration_id])
+            cur.execute("select id_lo, id_hi, n, reading_id, t_utc, e_v_per_m, axes_v_per_m, u_expanded_db, flags "
+                        "from field_spans where calibration_id = ? order by id_lo", [calibration_id])
         try:
             while True:
                 with self._lock:
@@ -154,9 +172,7 @@ class SessionQueries:
                 if not got:
                     return
                 for r in got:
-                    yield {"reading_id": np.frombuffer(r[0], "<i8"), "t_utc": np.frombuffer(r[1], "<f8"),
-                           "e_v_per_m": np.frombuffer(r[2], "<f8"), "axes_v_per_m": np.frombuffer(r[3], "<f8").reshape(-1, 3),
-                           "u_expanded_db": np.frombuffer(r[4], "<f8"), "flags": np.frombuffer(r[5], "<i8")}
+                    yield _unpack(r)
         finally:
             cur.close()
 
@@ -164,6 +180,7 @@ class SessionQueries:
         """Remove a calibration and its values: only for one whose writing failed part-way (streamed)."""
         with self.write() as conn:
             conn.execute("delete from field_values where calibration_id = ?", [calibration_id])
+            conn.execute("delete from field_spans where calibration_id = ?", [calibration_id])
             conn.execute("delete from calibrations where id = ?", [calibration_id])
 
     # -- streaming: a session span by span (meterlink.storage.recording) ----------------------
@@ -248,7 +265,10 @@ PACKED_ROWS = 16384
 
 
 def _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes, u_expanded_db, flags) -> list[tuple]:
-    """field_spans rows of one calibration's values: sorted by reading id, PACKED_ROWS at a time."""
+    """field_spans rows of one calibration's values: sorted by reading id, PACKED_ROWS at a time.
+
+    Ids that run without a hole (id_hi - id_lo + 1 == n, one meter per file) are stored as an empty
+    blob, and an uncertainty or flags column that is the same for the whole row as one element."""
     ids = np.asarray(reading_ids, dtype=np.int64)
     order = np.argsort(ids, kind="stable") if np.any(np.diff(ids) < 0) else slice(None)
     cols = [ids[order], np.asarray(t_utc, dtype="<f8")[order], np.asarray(e_v_per_m, dtype="<f8")[order],
@@ -256,8 +276,27 @@ def _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes, u_expanded
             np.asarray(flags, dtype="<i8")[order]]
     out = []
     for a in range(0, ids.size, PACKED_ROWS):
-        part = [c[a:a + PACKED_ROWS] for c in cols]
+        part = [np.ascontiguousarray(c[a:a + PACKED_ROWS]) for c in cols]
         i, t = part[0], part[1]
-        out.append((calibration_id, int(i[0]), int(i[-1]), int(i.size), float(np.min(t)), float(np.max(t)),
-                    *(np.ascontiguousarray(c, dtype=c.dtype.newbyteorder("<")).tobytes() for c in part)))
+        lo, hi = int(i[0]), int(i[-1])
+        if hi - lo + 1 == i.size:
+            part[0] = part[0][:0]
+        for k in (4, 5):
+            c = part[k]
+            if c.size and (np.all(c == c[0]) if k == 5 else np.array_equal(c, np.full(c.size, c[0]), equal_nan=True)):
+                part[k] = c[:1]
+        out.append((calibration_id, lo, hi, int(i.size), float(np.min(t)), float(np.max(t)),
+                    *(c.tobytes() for c in part)))
     return out
+
+
+def _unpack(r) -> dict:
+    """A field_spans row (id_lo, id_hi, n, then the six blobs) as a dict of arrays (see _packed_rows)."""
+    lo, hi, n = r[0], r[1], r[2]
+    ids = np.frombuffer(r[3], "<i8") if r[3] else np.arange(lo, hi + 1, dtype=np.int64)
+    u = np.frombuffer(r[7], "<f8")
+    fl = np.frombuffer(r[8], "<i8")
+    return {"reading_id": ids, "t_utc": np.frombuffer(r[4], "<f8"), "e_v_per_m": np.frombuffer(r[5], "<f8"),
+            "axes_v_per_m": np.frombuffer(r[6], "<f8").reshape(-1, 3),
+            "u_expanded_db": np.broadcast_to(u, (n,)) if u.size == 1 and n != 1 else u,
+            "flags": np.broadcast_to(fl, (n,)) if fl.size == 1 and n != 1 else fl}
