@@ -192,3 +192,30 @@ def test_accumulator_matches_running_average_on_an_irregular_record():
                 assert got.partial_max_v_per_m == pytest.approx(ref.partial_max_v_per_m, rel=1e-12)
             assert (got.peak_v_per_m, got.t_peak_s) == (ref.peak_v_per_m, ref.t_peak_s)
             assert (got.n_above, got.n_below) == (ref.n_above, ref.n_below)
+
+
+def test_packed_rows_round_trip_with_holes_and_varying_columns():
+    """Ids with holes (two meters in one file), a varying uncertainty and flags, NaN values: the packed
+    form gives back exactly what went in; contiguous ids and constant columns take the short form."""
+    from meterlink.storage.queries import PACKED_ROWS, _packed_rows, _unpack
+
+    rng = np.random.default_rng(3)
+    n = PACKED_ROWS + 500
+    ids = np.cumsum(rng.choice([1, 1, 2], size=n)) + 100
+    t = 1e9 + np.arange(n, dtype=float)
+    e = rng.uniform(0, 5, n)
+    e[::97] = np.nan
+    axes = rng.uniform(0, 3, (n, 3))
+    u = np.where(np.arange(n) < PACKED_ROWS, 1.5, rng.uniform(1, 2, n))
+    flags = rng.choice([0, 1], size=n)
+    for ids_, fl in ((ids, flags), (np.arange(n) + 7, np.zeros(n, np.int64))):
+        rows = _packed_rows(9, ids_, t, e, axes, u, fl)
+        assert len(rows) == 2 and [r[3] for r in rows] == [PACKED_ROWS, 500]
+        back = [_unpack((r[1], r[2], r[3], *r[6:])) for r in rows]   # as selected: no t_lo, t_hi
+        got = {k: np.concatenate([b[k] for b in back]) for k in back[0]}
+        np.testing.assert_array_equal(got["reading_id"], ids_)
+        for k, want in (("t_utc", t), ("e_v_per_m", e), ("axes_v_per_m", axes), ("u_expanded_db", u), ("flags", fl)):
+            np.testing.assert_array_equal(got[k], want)
+        contiguous = bool(np.all(np.diff(ids_) == 1))
+        assert (rows[0][6] == b"") == contiguous
+        assert len(rows[0][10]) == 8          # the first row's uncertainty is constant: one element
