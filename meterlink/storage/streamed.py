@@ -2,11 +2,15 @@
 
 The in-memory functions of processing.py load a whole session; these read it chunk by chunk
 through a Recording (recording.py) and give the same results: calibrating is elementwise, and the
-running averages carry their state across chunks (physics.streaming). Calibrated values are kept
-per reading (field_values), one executemany per chunk: measured in bench/bench_streaming.py,
-reading them back costs about what recomputing them from the raw counts costs (both are bound
-by fetching rows from SQLite), and stored values keep their provenance (computed once, under the
-software version and certificate status of the day they were applied).
+running averages carry their state across chunks (physics.streaming).
+
+Where calibrated values live (schema 6): per reading in field_values as before (the record other
+tools, retention and salvage use), and packed per run of readings in field_spans, written in the
+same transaction. Measured on 30 days at 1 Hz (2.59 M readings): reading the per-reading rows back
+through the join with readings took 9.5 s, recomputing the values from the raw counts 3.7 s (the
+select alone 3.3 s), the packed copy 0.3 s. Recomputing on demand would also lose provenance:
+stored values are those computed once, under the software version and certificate status of the
+day they were applied.
 """
 
 from __future__ import annotations
