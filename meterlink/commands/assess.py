@@ -107,6 +107,10 @@ def _assess_streamed(store, sid, args, rule, freq, band):
     rec = load_recording(store, sid)
     if rec.is_dipole or rec.sensor_kind is None or not rec.in_time_order:
         return None
+    try:        # first, before anything is written: the times must be in id order to stream
+        med = S.interval_median(rec)
+    except S.NotStreamable:
+        return None
     if args.certificate or not rec.calibrations or freq is not None or band is not None or args.near_field:
         if args.certificate:
             from meterlink.physics.certificate import load_certificate
@@ -124,10 +128,6 @@ def _assess_streamed(store, sid, args, rule, freq, band):
     b = band or _band(cal) or _band(session)
     governing_level(args.standard, args.tier, f, b, cert.freq_range_hz)     # no frequency known: a clear error
     window = averaging_time_s(args.standard, args.tier, f, b or cert.freq_range_hz)
-    try:
-        med = S.interval_median(rec)
-    except S.NotStreamable:
-        return None
     env = ColumnEnvelope(med.first or 0.0, med.last or 0.0, 1000)
     stats = S.feed_values(rec, S.field_accumulator(med, window), sinks=(lambda v: env.feed(v.t_utc, v.e_v_per_m),))
     result = assess_field_stats(stats, S.series_facts(rec), args.standard, args.tier, rule.name, freq_hz=f, band=b,
