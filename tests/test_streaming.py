@@ -219,3 +219,36 @@ def test_packed_rows_round_trip_with_holes_and_varying_columns():
         contiguous = bool(np.all(np.diff(ids_) == 1))
         assert (rows[0][6] == b"") == contiguous
         assert len(rows[0][10]) == 8          # the first row's uncertainty is constant: one element
+
+
+def test_a_clock_step_back_takes_the_in_memory_path_with_one_calibration(tmp_path, capsys):
+    """Times that go back inside a boot (a host clock step) cannot stream: assess says so by loading
+    the session whole, and applies its certificate once, not once per path."""
+    import json
+
+    from meterlink.cli import main
+
+    cert = load_certificate("demo-probe")
+    path = tmp_path / "step.db"
+    n = 2000
+    t = 1_790_000_000.0 + np.arange(n, dtype=float)
+    t[1200:] -= 30.0                                         # the clock stepped back 30 s
+    e = 3.0 + np.sin(np.arange(n) / 200.0)
+    with Store(path) as store:
+        dev = store.device_id("TEST-1", "T-0002", cert.serial, cert.certificate_number, int(SensorKind.E_PROBE),
+                              "1.0.0", "1.0")
+        sid = store.begin_session("record", "test", dev, 1000, freq_hz=FREQ_HZ)
+        seq = np.arange(n)
+        store.add_reading_arrays(sid, 1, seq, seq * 1000, t, _counts(cert, e / np.sqrt(3.0)), 0, 0)
+        with pytest.raises(S.NotStreamable):
+            S.interval_median(load_recording(store, sid))
+    assert main(["assess", "--db", str(path), "--standard", STANDARD, "--tier", TIER, "--freq", "101.8MHz",
+                 "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    with Store(path) as store:
+        assert len(store.calibrations(sid)) == 1
+        series = field_series(store, sid)
+    assert np.all(np.diff(series.t_utc) >= 0)               # the in-memory path sorts by time
+    want = assess_field(series, STANDARD, TIER, RULE, freq_hz=FREQ_HZ, fallback_range=cert.freq_range_hz)
+    assert out["session_id"] == sid and out["averaged_e_v_per_m"] == pytest.approx(want.value_v_per_m, rel=1e-12)
+    assert out["peak_e_v_per_m"] == pytest.approx(want.peak_v_per_m) and out["outcome"] == want.verdict.outcome
