@@ -109,10 +109,23 @@ def baseline_report(path: Path, sid: int, cal: int, out: Path) -> None:
     conn.close()
 
 
+def baseline_raw_dump(path: Path, sid: int, out: Path) -> None:
+    """The earlier bench_report baseline: select the raw readings (no join) and csv.writer them."""
+    conn = sqlite3.connect(path)
+    with open(out, "w", newline="") as f:
+        w = csv.writer(f)
+        for row in conn.execute("select id, t_utc, raw_x, raw_y, raw_z from readings where session_id = ? "
+                                "order by id", [sid]):
+            w.writerow(row)
+    conn.close()
+
+
 def drop_calibration(path: Path, cal: int) -> None:
-    """Remove a timed run's calibration again (not timed), so every run starts from the same file."""
+    """Remove a timed run's calibration again and checkpoint the write-ahead log (not timed), so that every
+    run starts from the same file and none pays for moving the previous run's pages into it."""
     with Store(path) as store:
         store.drop_calibration(cal)
+        store.make_room()
 
 
 # -- the streamed paths ---------------------------------------------------------------------------
@@ -191,7 +204,7 @@ from meterlink.physics.certificate import load_certificate
 from meterlink.reports.session_report import write_session_report
 from meterlink.storage.processing import apply_certificate
 from meterlink.storage.store import Store
-d = Path(tempfile.mkdtemp())
+d = Path(tempfile.mkdtemp(dir="."))     # inside the caller's temporary directory, removed with it
 cert = load_certificate("demo-probe")
 with Store(d / "s.db") as store:           # a small probe session with one calibration and an assessment
     dev = store.device_id("BENCH-1", "B-0001", cert.serial, cert.certificate_number, 1, "1.0.0", "1.0")
@@ -246,7 +259,10 @@ def main(argv=None) -> list[dict]:
     ap.add_argument("--runs", type=int, default=3, help="paired runs per target (default 3)")
     ap.add_argument("--year", action="store_true", help="also peak RSS on a year at 1 Hz (31.5 M readings; minutes)")
     ap.add_argument("--count-before", metavar="COMMIT", help="also count Store calls with the code of COMMIT")
+    ap.add_argument("--only", metavar="T", action="append", choices=("recalibrate", "assess", "report", "rss", "calls"),
+                    help="run only these targets (repeatable; default all)")
     args = ap.parse_args(argv)
+    want = lambda t: not args.only or t in args.only  # noqa: E731
     n = 172_800 if args.quick else 2_592_000
     days = n / 86400
     cert = load_certificate("demo-probe")
@@ -258,83 +274,99 @@ def main(argv=None) -> list[dict]:
         streamed_recalibrate(db, sid, cert)          # the calibration in force for assess and report
         host = machine()
 
-        # 1. recalibrate: streamed vs select + numpy + executemany, streamed too
-        def mine():
-            t, cal = timed(streamed_recalibrate, db, sid, cert)
-            drop_calibration(db, cal)
-            return t
+        if want("recalibrate"):
+            # 1. recalibrate: streamed vs select + numpy + executemany, streamed too
+            def mine():
+                t, cal = timed(streamed_recalibrate, db, sid, cert)
+                drop_calibration(db, cal)
+                return t
 
-        def base():
-            t, cal = timed(baseline_recalibrate, db, sid, cert)
-            drop_calibration(db, cal)
-            return t
+            def base():
+                t, cal = timed(baseline_recalibrate, db, sid, cert)
+                drop_calibration(db, cal)
+                return t
 
-        m, b, r = paired(args.runs, mine, base)
-        ratio = m / b
-        recs.append(_common.report(
-            "streaming-recalibrate", f"recalibrate {days:g} days at 1 Hz ({n} readings), streamed: {m:.2f} s "
-            f"(median of {args.runs})", f"select + numpy + executemany of the per-reading rows, streamed by the same "
-            f"chunks: {b:.2f} s", ratio, f"{ratio:.2f}x the baseline (pairs {spread(r)})", "<= 1.0x the baseline",
-            ratio <= 1.0, args.json, recalibrate_s=m, baseline_s=b, pair_ratios=r, build_s=t_build, **host))
+            m, b, r = paired(args.runs, mine, base)
+            ratio = m / b
+            recs.append(_common.report(
+                "streaming-recalibrate", f"recalibrate {days:g} days at 1 Hz ({n} readings), streamed: {m:.2f} s "
+                f"(median of {args.runs})", f"select + numpy + executemany of the per-reading rows, streamed by the same "
+                f"chunks: {b:.2f} s", ratio, f"{ratio:.2f}x the baseline (pairs {spread(r)})", "<= 1.0x the baseline",
+                ratio <= 1.0, args.json, recalibrate_s=m, baseline_s=b, pair_ratios=r, build_s=t_build, **host))
 
-        # 2. assess: streamed vs the in-memory path (whole series loaded)
-        m, b, r = paired(args.runs, lambda: timed(streamed_assess, db, sid)[0],
-                         lambda: timed(in_memory_assess, db, sid)[0])
-        a_s, a_m = streamed_assess(db, sid), in_memory_assess(db, sid)
-        same = (a_s.verdict.outcome == a_m.verdict.outcome
-                and abs(a_s.value_v_per_m - a_m.value_v_per_m) <= 1e-12 * a_m.value_v_per_m)
-        recs.append(_common.report(
-            "streaming-assess", f"assess {days:g} days at 1 Hz, streamed: {m:.2f} s (median of {args.runs}); "
-            f"same verdict and value as in memory: {same}", f"in-memory path (whole series loaded): {b:.2f} s",
-            m / b, f"{m / b:.2f}x the in-memory time (pairs {spread(r)})", "< 1.5 s on 30 days",
-            (m < 1.5) if not args.quick else None, args.json, assess_s=m, in_memory_s=b, pair_ratios=r, **host))
+        if want("assess"):
+            # 2. assess: streamed vs the in-memory path (whole series loaded)
+            m, b, r = paired(args.runs, lambda: timed(streamed_assess, db, sid)[0],
+                             lambda: timed(in_memory_assess, db, sid)[0])
+            a_s, a_m = streamed_assess(db, sid), in_memory_assess(db, sid)
+            same = (a_s.verdict.outcome == a_m.verdict.outcome
+                    and abs(a_s.value_v_per_m - a_m.value_v_per_m) <= 1e-12 * a_m.value_v_per_m)
+            recs.append(_common.report(
+                "streaming-assess", f"assess {days:g} days at 1 Hz, streamed: {m:.2f} s (median of {args.runs}); "
+                f"same verdict and value as in memory: {same}", f"in-memory path (whole series loaded): {b:.2f} s",
+                m / b, f"{m / b:.2f}x the in-memory time (pairs {spread(r)})", "< 1.5 s on 30 days",
+                (m < 1.5) if not args.quick else None, args.json, assess_s=m, in_memory_s=b, pair_ratios=r, **host))
 
-        # 3. report: streamed (assess + CSV + envelope plot + HTML) vs select + csv of the same rows
-        with Store(db, readonly=True) as store:
-            cal = store.calibrations(sid)[-1]["id"]
-        runs = itertools.count()
+        if want("report"):
+            # 3. report: streamed (assess + CSV + envelope plot + HTML) vs select + csv of the same rows
+            with Store(db, readonly=True) as store:
+                cal = store.calibrations(sid)[-1]["id"]
+            runs = itertools.count()
 
-        def mine_report():
-            out = d / f"rep{next(runs)}"
-            t = timed(write_session_report, db, sid, out)[0]
-            shutil.rmtree(out)
-            return t
+            def mine_report():
+                out = d / f"rep{next(runs)}"
+                t = timed(write_session_report, db, sid, out)[0]
+                shutil.rmtree(out)
+                return t
 
-        def base_report():
-            out = d / "base.csv"
-            t = timed(baseline_report, db, sid, cal, out)[0]
-            out.unlink()
-            return t
+            def base_report():
+                out = d / "base.csv"
+                t = timed(baseline_report, db, sid, cal, out)[0]
+                out.unlink()
+                return t
 
-        m, b, r = paired(args.runs, mine_report, base_report)
-        recs.append(_common.report(
-            "streaming-report", f"HTML report + values.csv of {days:g} days at 1 Hz, streamed: {m:.2f} s "
-            f"(median of {args.runs})", f"select of the same rows + csv.writer: {b:.2f} s", m / b,
-            f"{m / b:.2f}x the baseline (pairs {spread(r)})", "<= 1.5x the baseline", m / b <= 1.5, args.json,
-            report_s=m, baseline_s=b, pair_ratios=r, **host))
+            def raw_report():
+                out = d / "raw.csv"
+                t = timed(baseline_raw_dump, db, sid, out)[0]
+                out.unlink()
+                return t
 
-        # 4. peak RSS, each command in its own process
-        rss = rss_of_commands(db, d / "rss-rep")
-        year = {}
-        if args.year:
-            ydb = d / "year.db"
-            t_year = timed(build, ydb, 365 * 86400)[0]
-            year = rss_of_commands(ydb, d / "rss-year")
-            ydb.unlink()
-        worst = max([*rss.values(), *year.values()])
-        figure = ("peak RSS, 30 days: " + ", ".join(f"{k} {v:.0f} MiB" for k, v in rss.items())
-                  + ("; a year: " + ", ".join(f"{k} {v:.0f} MiB" for k, v in year.items()) if year else ""))
-        recs.append(_common.report(
-            "streaming-rss", figure, "in-memory path: about 520 bytes per reading (1.35 GiB for 30 days)",
-            worst / 150.0, f"worst {worst:.0f} MiB of the 150 MiB allowed", "< 150 MiB per command",
-            worst < 150.0, args.json, peak_mb=worst, rss_month_mib=rss, rss_year_mib=year or None,
-            **({"year_build_s": t_year} if year else {}), **host))
+            m, b, r = paired(args.runs, mine_report, base_report)
+            m2, b2, r2 = paired(args.runs, mine_report, raw_report)
+            worst = max(m / b, m2 / b2)
+            recs.append(_common.report(
+                "streaming-report", f"HTML report + values.csv of {days:g} days at 1 Hz, streamed: {m:.2f} s and "
+                f"{m2:.2f} s (medians of {args.runs}, one set per baseline)",
+                f"select of the same rows (values joined with reading times) + csv.writer: {b:.2f} s; select of the raw "
+                f"readings (no join) + csv.writer: {b2:.2f} s", worst,
+                f"{m / b:.2f}x (pairs {spread(r)}) and {m2 / b2:.2f}x (pairs {spread(r2)}) the baselines",
+                "<= 1.5x the baseline", worst <= 1.5, args.json, report_s=m, baseline_s=b, pair_ratios=r,
+                report_raw_pairs_s=m2, raw_baseline_s=b2, raw_pair_ratios=r2, **host))
 
-    # 5. Store calls for one session report (a small session; the count does not depend on its length)
-    after, whole = count_store_calls(), count_store_calls(whole=True)
-    before = count_before(args.count_before) if args.count_before else None
-    print(f"[streaming-calls] Store calls for one session report (closing the file not counted): streamed {after}; "
-          f"in-memory path {whole}" + (f"; code of {args.count_before}: {before}" if before else ""))
+        if want("rss"):
+            # 4. peak RSS, each command in its own process
+            rss = rss_of_commands(db, d / "rss-rep")
+            year = {}
+            if args.year:
+                ydb = d / "year.db"
+                t_year = timed(build, ydb, 365 * 86400)[0]
+                year = rss_of_commands(ydb, d / "rss-year")
+                ydb.unlink()
+            worst = max([*rss.values(), *year.values()])
+            figure = ("peak RSS, 30 days: " + ", ".join(f"{k} {v:.0f} MiB" for k, v in rss.items())
+                      + ("; a year: " + ", ".join(f"{k} {v:.0f} MiB" for k, v in year.items()) if year else ""))
+            recs.append(_common.report(
+                "streaming-rss", figure, "in-memory path: about 520 bytes per reading (1.35 GiB for 30 days)",
+                worst / 150.0, f"worst {worst:.0f} MiB of the 150 MiB allowed", "< 150 MiB per command",
+                worst < 150.0, args.json, peak_mb=worst, rss_month_mib=rss, rss_year_mib=year or None,
+                **({"year_build_s": t_year} if year else {}), **host))
+
+    if want("calls"):
+        # 5. Store calls for one session report (a small session; the count does not depend on its length)
+        after, whole = count_store_calls(), count_store_calls(whole=True)
+        before = count_before(args.count_before) if args.count_before else None
+        print(f"[streaming-calls] Store calls for one session report (closing the file not counted): streamed {after}; "
+              f"in-memory path {whole}" + (f"; code of {args.count_before}: {before}" if before else ""))
     return recs
 
 
