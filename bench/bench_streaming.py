@@ -80,6 +80,7 @@ def _ranges(conn, sid, rows):
 def baseline_recalibrate(path: Path, sid: int, cert) -> int:
     """Streamed select of raw counts, numpy calibration, executemany of the per-reading rows."""
     conn = sqlite3.connect(path)
+    conn.execute("PRAGMA synchronous=NORMAL")     # as the Store's connection: no fsync per commit in WAL mode
     cal = conn.execute("insert into calibrations (session_id, certificate_name, applied_utc) values (?, 'baseline', ?)",
                        [sid, time.time()]).lastrowid
     conn.commit()
