@@ -23,7 +23,9 @@ def run(args) -> int:
 
     from meterlink.physics.certificate import load_certificate
     from meterlink.commands.record import parse_declared
+    from meterlink.storage import streamed
     from meterlink.storage.processing import FieldSeries, apply_certificate, latest_session
+    from meterlink.storage.recording import load_recording
     from meterlink.storage.store import Store
 
     cert = load_certificate(args.certificate)
@@ -31,16 +33,24 @@ def run(args) -> int:
     with Store(args.db, create=False) as store:
         store.check_sound()      # never write into a damaged file
         sid = args.session if args.session is not None else latest_session(store)
-        before = store.calibrations(sid)
-        series = apply_certificate(store, sid, cert, freq_hz=freq, band=band)
-        store.add_event(sid, "recalibrated", "info", f"certificate {series.certificate_name} applied",
-                        calibration_id=series.calibration_id, previous=[c["id"] for c in before])
+        rec = load_recording(store, sid)
+        before = rec.calibrations
+        try:        # probe sessions stream chunk by chunk; dipole sessions are small and go whole
+            done = streamed.recalibrate(store, rec, cert, freq_hz=freq, band=band)
+            cal_id, name, warnings = done.calibration_id, done.certificate_name, done.warnings
+            n_values, rms = done.n_values, done.e_rms_v_per_m
+        except streamed.NotStreamable:
+            series = apply_certificate(store, sid, cert, freq_hz=freq, band=band)
+            cal_id, name, warnings = series.calibration_id, series.certificate_name, series.warnings
+            vals = series.e_v_per_m if isinstance(series, FieldSeries) else series.e_v_per_m.ravel()
+            ok = np.isfinite(vals)
+            n_values = int(ok.sum())
+            rms = float(np.sqrt(np.mean(vals[ok] ** 2))) if ok.any() else None
+        store.add_event(sid, "recalibrated", "info", f"certificate {name} applied",
+                        calibration_id=cal_id, previous=[c["id"] for c in before])
         cals = store.calibrations(sid)
-    vals = series.e_v_per_m if isinstance(series, FieldSeries) else series.e_v_per_m.ravel()
-    ok = np.isfinite(vals)
-    out = {"session_id": sid, "calibration_id": series.calibration_id, "certificate": series.certificate_name,
-           "values": int(ok.sum()), "e_rms_v_per_m": float(np.sqrt(np.mean(vals[ok] ** 2))) if ok.any() else None,
-           "warnings": list(series.warnings),
+    out = {"session_id": sid, "calibration_id": cal_id, "certificate": name,
+           "values": n_values, "e_rms_v_per_m": rms, "warnings": list(warnings),
            "calibrations": [{"id": c["id"], "certificate": c["certificate_name"], "sha256": c["certificate_sha256"],
                              "applied_utc": c["applied_utc"]} for c in cals]}
     if args.json:
@@ -56,12 +66,12 @@ def run(args) -> int:
     from meterlink.reports.render import utc_text
 
     for c in cals:
-        mark = " (new)" if c["id"] == series.calibration_id else ""
+        mark = " (new)" if c["id"] == cal_id else ""
         t.add_row(str(c["id"]) + mark, escape(c["certificate_name"]), c["certificate_sha256"][:12], utc_text(c["applied_utc"]))
     con = Console()
     con.print(t)
     if out["e_rms_v_per_m"] is not None:
         con.print(f"{out['values']} values, rms {out['e_rms_v_per_m']:.4g} V/m under the new calibration")
-    for w in series.warnings:
+    for w in warnings:
         con.print(f"[yellow]warning:[/] {escape(w)}")
     return 0

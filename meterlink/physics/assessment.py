@@ -16,6 +16,7 @@ from meterlink.physics.averaging import HOLD_FACTOR, running_average
 from meterlink.physics.calibrate import ABOVE_RANGE, BELOW_RANGE, FREQ_ASSUMED, FREQ_OUT
 from meterlink.errors import MeterlinkError
 from meterlink.physics.exposure import multi_frequency, near_field_check
+from meterlink.physics.streaming import FieldStats
 from meterlink.physics.limits import ReferenceLevel, most_restrictive_level, reference_level
 from meterlink.physics.verdict import Verdict, decide_field, decide_ratio, get_rule, lower_bound, not_assessable, upper_bound
 
@@ -182,21 +183,46 @@ def _time_average(t_s, e, window_s):
 def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, band=None,
                  fallback_range=None, near_field: bool = False, has_h: bool = False) -> Assessment:
     """Assess a broadband (isotropic probe) series against a standard's whole-body level."""
+    governing_level(standard, tier, freq_hz, band, fallback_range)     # no frequency known: a clear error first
+    window = averaging_time_s(standard, tier, freq_hz, band or fallback_range)
+    return assess_field_stats(field_stats(series, window), series, standard, tier, rule, freq_hz=freq_hz,
+                              band=band, fallback_range=fallback_range, near_field=near_field, has_h=has_h)
+
+
+def field_stats(series, window_s) -> FieldStats:
+    """The statistics assess_field judges, from a series held in memory."""
+    e = np.asarray(series.e_v_per_m, dtype=float)
+    t = np.asarray(series.t_utc, dtype=float)
+    flags = np.asarray(series.flags)
+    finite = np.isfinite(e)
+    n_above = int(np.count_nonzero(flags & ABOVE_RANGE))
+    n_below = int(np.count_nonzero(flags & BELOW_RANGE))
+    freq_out, freq_assumed = bool(np.any(flags & FREQ_OUT)), bool(np.any(flags & FREQ_ASSUMED))
+    if not finite.any():
+        return FieldStats(0, math.nan, math.nan, math.nan, None, False, 0.0, None, math.nan, n_above, n_below,
+                          freq_out, freq_assumed)
+    ipk = int(np.nanargmax(np.where(finite, e, -np.inf)))
+    value, t_end, complete, coverage, pmax = _time_average(t, e, window_s)
+    u = float(np.nanmax(np.asarray(series.u_expanded_db)[finite]))
+    return FieldStats(int(finite.sum()), float(e[ipk]), float(t[ipk]), value, t_end, complete, coverage, pmax, u,
+                      n_above, n_below, freq_out, freq_assumed)
+
+
+def assess_field_stats(st: FieldStats, series, standard: str, tier: str, rule: str, *, freq_hz=None, band=None,
+                       fallback_range=None, near_field: bool = False, has_h: bool = False) -> Assessment:
+    """Judge a broadband record from its statistics (held in memory or streamed, see physics.streaming).
+
+    ``series`` gives only session_id, certificate_name, warnings and temperatures."""
     r = get_rule(rule)
     rl, fnote = governing_level(standard, tier, freq_hz, band, fallback_range)
     window = averaging_time_s(standard, tier, freq_hz, band or fallback_range)
-    e = np.asarray(series.e_v_per_m, dtype=float)
-    t = np.asarray(series.t_utc, dtype=float)
     notes = list(series.warnings)
-    flags = np.asarray(series.flags)
-    above = int(np.count_nonzero(flags & ABOVE_RANGE))
+    above, below, freq_out = st.n_above, st.n_below, st.freq_out
     if above:
         notes.append(f"{above} readings above the probe's calibrated range: the average is a lower bound")
-    below = int(np.count_nonzero(flags & BELOW_RANGE))
     if below:
         notes.append(f"{below} readings below the calibrated range (reported at the range floor, an upper bound)")
-    freq_out = bool(np.any(flags & FREQ_OUT))
-    if np.any(flags & FREQ_ASSUMED):
+    if st.freq_assumed:
         notes.append("frequency not known exactly: worst-case frequency correction applied")
     nf = near_field_check(rl.freq_hz, has_e=True, has_h=has_h, near_field=near_field)
     if nf is not None:
@@ -204,11 +230,10 @@ def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, b
     t_reason, t_note = temperature_check(getattr(series, "temperatures", None))
     if t_note:
         notes.append(t_note)
-    finite = np.isfinite(e)
-    if not finite.any():
+    if st.n_finite == 0:
         raise MeterlinkError(f"session {series.session_id} has no usable calibrated values")
-    ipk = int(np.nanargmax(np.where(finite, e, -np.inf)))
-    value, t_end, complete, coverage, pmax = _time_average(t, e, window)
+    value, t_end, complete, coverage, pmax = st.value_v_per_m, st.t_value_end_s, st.complete, st.coverage, \
+        st.partial_max_v_per_m
     if window is None:
         notes.append(f"{standard} prescribes no averaging time here: instantaneous values are compared "
                      f"(the highest reading is judged)")
@@ -221,7 +246,7 @@ def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, b
     if pmax is not None and window is not None:
         notes.append(f"partial windows at the start of the record (shorter than {window / 60:g} min, not the "
                      f"standard's average) reach at most {pmax:.4g} V/m")
-    u = float(np.nanmax(series.u_expanded_db[finite])) if finite.any() else math.nan
+    u = st.u_max_db
     limit = rl.e_v_per_m
     verdict = decide_field(value, limit, u, r)
     reasons = []
@@ -248,9 +273,9 @@ def assess_field(series, standard: str, tier: str, rule: str, *, freq_hz=None, b
         if below:
             verdict = upper_bound(verdict, "readings below the calibrated range make the value an upper bound")
     return Assessment(series.session_id, standard, tier, rl.tier_label, r.name, "broadband", fnote, window,
-                      float(e[ipk]), float(t[ipk]), value, t_end, complete, coverage, limit, rl.e_derived,
+                      st.peak_v_per_m, st.t_peak_s, value, t_end, complete, coverage, limit, rl.e_derived,
                       verdict.ratio_power, u, verdict, rl.source, rl.status, series.certificate_name,
-                      int(finite.sum()), (), tuple(notes),
+                      st.n_finite, (), tuple(notes),
                       "instantaneous" if window is None else "time average", pmax)
 
 

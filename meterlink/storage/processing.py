@@ -128,7 +128,7 @@ def apply_certificate(store: Store, session_id: int, cert: ProbeCertificate | Di
     res = calibrate_axes(cert, r.raw, freq_arg, _session_temperature(store, session_id), near_field, today)
     cal_id = store.add_calibration(cal)
     store.add_field_values(cal_id, r.ids, res.e_v_per_m, res.axes_v_per_m, res.h_a_per_m, res.s_w_per_m2,
-                           res.u_expanded_db, res.flags)
+                           res.u_expanded_db, res.flags, t_utc=r.t_utc)
     return FieldSeries(session_id, cal_id, name, r.ids, r.t_utc, res.e_v_per_m, res.axes_v_per_m,
                        res.h_a_per_m, res.s_w_per_m2, res.u_expanded_db, res.flags, res.warnings, cert.quantity,
                        session_temperatures(store, session_id, cert))

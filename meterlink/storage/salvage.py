@@ -25,6 +25,7 @@ _OWNED_BY = {
     "sessions": "id = :sid",
     "spectrum_lines": "spectrum_id in (select id from spectra where session_id = :sid)",
     "field_values": "calibration_id in (select id from calibrations where session_id = :sid)",
+    "field_spans": "calibration_id in (select id from calibrations where session_id = :sid)",
     "spectrum_values": "calibration_id in (select id from calibrations where session_id = :sid)",
     "survey_samples": "point_id in (select id from survey_points where session_id = :sid)",
     "survey_emitters": "point_id in (select id from survey_points where session_id = :sid)",
@@ -32,7 +33,7 @@ _OWNED_BY = {
 _GLOBAL_EVENTS = "events of no session"
 # parents before children, so that foreign keys hold while copying
 _ORDER = ("devices", "sessions", "readings", "reading_spans", "spectra", "spectrum_lines", "status", "events",
-          "calibrations", "field_values", "spectrum_values", "survey", "survey_sources", "survey_points",
+          "calibrations", "field_values", "field_spans", "spectrum_values", "survey", "survey_sources", "survey_points",
           "survey_samples", "survey_emitters", "survey_trace")
 
 

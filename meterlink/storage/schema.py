@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 7
+SCHEMA_VERSION = 8
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -237,9 +237,21 @@ def _schema_v7_positions(db: sqlite_utils.Database) -> None:
         db.execute(f"ALTER TABLE survey_trace ADD COLUMN {col} {typ}")
 
 
+def _schema_v8_field_spans(db: sqlite_utils.Database) -> None:
+    """Calibrated values also kept per run of readings as packed arrays (field_spans), beside the
+    per-reading rows of field_values: long records then stream back at the speed of a file read.
+    Calibrations made before have none and are read from field_values."""
+    db.execute("CREATE TABLE field_spans (id INTEGER PRIMARY KEY, calibration_id INTEGER NOT NULL "
+               "REFERENCES calibrations(id), id_lo INTEGER NOT NULL, id_hi INTEGER NOT NULL, n INTEGER NOT NULL, "
+               "t_lo REAL NOT NULL, t_hi REAL NOT NULL, reading_id BLOB NOT NULL, t_utc BLOB NOT NULL, "
+               "e_v_per_m BLOB NOT NULL, axes_v_per_m BLOB NOT NULL, u_expanded_db BLOB NOT NULL, "
+               "flags BLOB NOT NULL)")
+    db.execute("CREATE INDEX field_spans_calibration ON field_spans (calibration_id, id_lo)")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
                                                                    5: _schema_v5_monitoring, 6: _schema_v6_sync,
-                                                                   7: _schema_v7_positions}
+                                                                   7: _schema_v7_positions, 8: _schema_v8_field_spans}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

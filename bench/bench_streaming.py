@@ -1,0 +1,375 @@
+"""Long probe records streamed: recalibrate, assess and report 30 days at 1 Hz, each against a baseline
+run alongside in the same run; peak RSS of the three commands (30 days, and a year with --year);
+Store calls made while producing one session report.
+
+The database is made fast with the Store's batched writer (add_reading_arrays), its counts from the
+demo certificate's own detector law. Timed runs are paired (baseline and streamed back to back,
+alternating which goes first) with tracemalloc off; the tables give medians of the runs and the
+spread of the per-pair ratios. Peak RSS is measured apart, each command in its own subprocess
+(ru_maxrss of that process).
+"""
+
+from __future__ import annotations
+
+import csv
+import itertools
+import os
+import platform
+import shutil
+import sqlite3
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+import _common
+from meterlink.physics.assessment import assess_field, assess_field_stats, averaging_time_s
+from meterlink.physics.calibrate import calibrate_axes, expected_counts
+from meterlink.physics.certificate import load_certificate
+from meterlink.reports.session_report import write_session_report
+from meterlink.storage import streamed as S
+from meterlink.storage.processing import field_series
+from meterlink.storage.recording import CHUNK_ROWS, load_recording
+from meterlink.storage.store import Store
+
+FREQ_HZ = 101.8e6
+T0 = 1_790_000_000.0
+STANDARD, TIER, RULE = "icnirp-2020", "public", "guarded"
+
+
+def machine() -> dict:
+    """CPU model and load average, so that a figure can be read against the machine it came from."""
+    cpu = platform.processor() or "?"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return {"cpu": cpu, "cores": os.cpu_count(), "load_avg_1m": round(os.getloadavg()[0], 2)}
+
+
+def build(path: Path, n: int) -> int:
+    """A probe session of n readings at 1 Hz (one boot), stored with add_reading_arrays."""
+    cert = load_certificate("demo-probe")
+    with Store(path) as store:
+        dev = store.device_id("BENCH-1", "B-0001", cert.serial, cert.certificate_number, 1, "1.0.0", "1.0")
+        sid = store.begin_session("record", "bench", dev, 1000, freq_hz=FREQ_HZ)
+        step = 1 << 20
+        for k in range(0, n, step):
+            i = np.arange(k, min(k + step, n))
+            e_axis = (4.0 + 2.0 * np.sin(2 * np.pi * i / 86400.0) + 0.3 * np.sin(i / 7.0)) / np.sqrt(3.0)
+            counts = np.stack([np.round(expected_counts(ax, e_axis)) for ax in cert.axes], axis=1).astype(np.int64)
+            store.add_reading_arrays(sid, 1, i, i * 1000, T0 + i, counts, 0, 0)
+        store.add_event(sid, "assessment", "info", "bench", outcome="-", standard=STANDARD, tier=TIER, rule=RULE)
+    return sid
+
+
+# -- baselines: the plain way, in the same run ----------------------------------------------------
+def _ranges(conn, sid, rows):
+    for lo, hi in conn.execute("select id_lo, id_hi from reading_spans where session_id = ? order by id_lo", [sid]):
+        for a in range(lo, hi + 1, rows):
+            yield a, min(a + rows - 1, hi)
+
+
+def baseline_recalibrate(path: Path, sid: int, cert) -> int:
+    """Streamed select of raw counts, numpy calibration, executemany of the per-reading rows."""
+    conn = sqlite3.connect(path)
+    conn.execute("PRAGMA synchronous=NORMAL")     # as the Store's connection: no fsync per commit in WAL mode
+    cal = conn.execute("insert into calibrations (session_id, certificate_name, applied_utc) values (?, 'baseline', ?)",
+                       [sid, time.time()]).lastrowid
+    conn.commit()
+    for lo, hi in list(_ranges(conn, sid, CHUNK_ROWS)):
+        a = np.array(conn.execute("select id, raw_x, raw_y, raw_z from readings where id between ? and ? and "
+                                  "session_id = ? order by id", [lo, hi, sid]).fetchall(), dtype=np.int64)
+        res = calibrate_axes(cert, a[:, 1:4], FREQ_HZ, None)
+        conn.executemany("insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
+                         "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)",
+                         zip(a[:, 0].tolist(), itertools.repeat(cal), res.e_v_per_m.tolist(),
+                             *(res.axes_v_per_m[:, j].tolist() for j in range(3)), res.h_a_per_m.tolist(),
+                             res.s_w_per_m2.tolist(), res.u_expanded_db.tolist(), res.flags.tolist()))
+        conn.commit()
+    conn.close()
+    return cal
+
+
+def baseline_report(path: Path, sid: int, cal: int, out: Path) -> None:
+    """Select the rows values.csv holds (values joined with reading times) and csv.writer them."""
+    conn = sqlite3.connect(path)
+    with open(out, "w", newline="") as f:
+        w = csv.writer(f)
+        for row in conn.execute("select r.id, r.t_utc, v.e_v_per_m, v.ex_v_per_m, v.ey_v_per_m, v.ez_v_per_m, "
+                                "v.u_expanded_db, v.flags from readings r join field_values v on v.reading_id = r.id "
+                                "and v.calibration_id = ? where r.session_id = ? order by r.id", [cal, sid]):
+            w.writerow(row)
+    conn.close()
+
+
+def baseline_raw_dump(path: Path, sid: int, out: Path) -> None:
+    """The earlier bench_report baseline: select the raw readings (no join) and csv.writer them."""
+    conn = sqlite3.connect(path)
+    with open(out, "w", newline="") as f:
+        w = csv.writer(f)
+        for row in conn.execute("select id, t_utc, raw_x, raw_y, raw_z from readings where session_id = ? "
+                                "order by id", [sid]):
+            w.writerow(row)
+    conn.close()
+
+
+def drop_calibration(path: Path, cal: int) -> None:
+    """Remove a timed run's calibration again and checkpoint the write-ahead log (not timed), so that every
+    run starts from the same file and none pays for moving the previous run's pages into it."""
+    with Store(path) as store:
+        store.drop_calibration(cal)
+        store.make_room()
+
+
+# -- the streamed paths ---------------------------------------------------------------------------
+def streamed_recalibrate(path: Path, sid: int, cert) -> int:
+    with Store(path) as store:
+        return S.recalibrate(store, load_recording(store, sid), cert).calibration_id
+
+
+def streamed_assess(path: Path, sid: int):
+    with Store(path, readonly=True) as store:
+        rec = load_recording(store, sid)
+        window = averaging_time_s(STANDARD, TIER, FREQ_HZ)
+        stats = S.field_stats(rec, window)
+        return assess_field_stats(stats, S.series_facts(rec), STANDARD, TIER, RULE, freq_hz=FREQ_HZ,
+                                  fallback_range=rec.certificate.freq_range_hz)
+
+
+def in_memory_assess(path: Path, sid: int):
+    with Store(path, readonly=True) as store:
+        series = field_series(store, sid)
+        cert = load_recording(store, sid).certificate
+    return assess_field(series, STANDARD, TIER, RULE, freq_hz=FREQ_HZ, fallback_range=cert.freq_range_hz)
+
+
+def timed(f, *a):
+    t = time.perf_counter()
+    out = f(*a)
+    return time.perf_counter() - t, out
+
+
+def paired(runs: int, mine, base):
+    """(medians mine, base; per-pair ratios) of runs paired back to back, alternating which goes first."""
+    m, b = [], []
+    for k in range(runs):
+        if k % 2:
+            b.append(base())
+            m.append(mine())
+        else:
+            m.append(mine())
+            b.append(base())
+    ratios = [x / y for x, y in zip(m, b)]
+    return statistics.median(m), statistics.median(b), ratios
+
+
+def spread(ratios) -> str:
+    return f"{min(ratios):.2f}..{max(ratios):.2f}"
+
+
+# -- peak RSS, each command in a subprocess ------------------------------------------------------
+# VmHWM, not ru_maxrss: a forked child's ru_maxrss starts from its parent's peak
+_CHILD = ("import sys; from meterlink.cli import main; rc = main(sys.argv[1:]); "
+          "hwm = [ln for ln in open('/proc/self/status') if ln.startswith('VmHWM')][0].split()[1]; "
+          "print('RSS_MIB', int(hwm) / 1024); sys.exit(rc)")
+
+
+def peak_rss_mib(argv: list[str]) -> float:
+    out = subprocess.run([sys.executable, "-c", _CHILD, *argv], capture_output=True, text=True, cwd=_common.ROOT)
+    if out.returncode != 0:
+        raise RuntimeError(f"meterlink {' '.join(argv)} failed: {out.stderr.strip()[-400:]}")
+    return float(next(ln.split()[1] for ln in out.stdout.splitlines() if ln.startswith("RSS_MIB")))
+
+
+def rss_of_commands(db: Path, out: Path) -> dict[str, float]:
+    return {"recalibrate": peak_rss_mib(["recalibrate", "--db", str(db), "--certificate", "demo-probe", "--json"]),
+            "assess": peak_rss_mib(["assess", "--db", str(db), "--standard", STANDARD, "--tier", TIER, "--json"]),
+            "report": peak_rss_mib(["report", "--db", str(db), "--session", "1", "--out", str(out), "--json"])}
+
+
+# -- Store calls while producing one session report ---------------------------------------------
+_COUNT_CHILD = """
+import collections, sys, tempfile
+from pathlib import Path
+import numpy as np
+from meterlink.physics.calibrate import expected_counts
+from meterlink.physics.certificate import load_certificate
+from meterlink.reports.session_report import write_session_report
+from meterlink.storage.processing import apply_certificate
+from meterlink.storage.store import Store
+d = Path(tempfile.mkdtemp(dir="."))     # inside the caller's temporary directory, removed with it
+cert = load_certificate("demo-probe")
+with Store(d / "s.db") as store:           # a small probe session with one calibration and an assessment
+    dev = store.device_id("BENCH-1", "B-0001", cert.serial, cert.certificate_number, 1, "1.0.0", "1.0")
+    sid = store.begin_session("record", "bench", dev, 1000, freq_hz=101.8e6)
+    i = np.arange(5000)
+    e = (4.0 + np.sin(i / 300.0)) / np.sqrt(3.0)
+    counts = np.stack([np.round(expected_counts(ax, e)) for ax in cert.axes], axis=1).astype(np.int64)
+    store.add_reading_arrays(sid, 1, i, i * 1000, 1.79e9 + i, counts, 0, 0)
+    apply_certificate(store, sid, cert)
+    store.add_event(sid, "assessment", "info", "bench", outcome="-", standard="icnirp-2020", tier="public",
+                    rule="guarded")
+calls, depth = collections.Counter(), [0]
+def wrap(name, f):       # calls into the Store from outside it; the Store calling itself is not counted
+    def g(*a, **k):
+        if depth[0] == 0:
+            calls[name] += 1
+        depth[0] += 1
+        try:
+            return f(*a, **k)
+        finally:
+            depth[0] -= 1
+    return g
+for n in [n for n in dir(Store) if not n.startswith("_") and callable(getattr(Store, n))]:
+    setattr(Store, n, wrap(n, getattr(Store, n)))
+write_session_report(d / "s.db", sid, d / "rep", **({"streamed": False} if sys.argv[1:] == ["whole"] else {}))
+calls.pop("close", None)
+print("CALLS", sum(calls.values()), dict(calls))
+"""
+
+
+def count_store_calls(tree: Path | None = None, whole: bool = False) -> str:
+    """Store calls made producing one session report, with the code of ``tree`` (default: this one)."""
+    with tempfile.TemporaryDirectory() as cwd:
+        got = subprocess.run([sys.executable, "-c", _COUNT_CHILD, *(["whole"] if whole else [])], capture_output=True,
+                             text=True, cwd=cwd, env={**os.environ, "PYTHONPATH": str(tree or _common.ROOT)})
+    if got.returncode != 0:
+        return f"failed: {got.stderr.strip()[-300:]}"
+    return next(ln for ln in got.stdout.splitlines() if ln.startswith("CALLS"))[6:]
+
+
+def count_before(commit: str) -> str:
+    """The same count with the code of an earlier commit (git archive into a temporary tree)."""
+    with tempfile.TemporaryDirectory() as d:
+        arch = subprocess.run(["git", "archive", commit], cwd=_common.ROOT, capture_output=True, check=True).stdout
+        subprocess.run(["tar", "-x", "-C", d], input=arch, check=True)
+        return count_store_calls(Path(d))
+
+
+def main(argv=None) -> list[dict]:
+    """30 days at 1 Hz (--quick: 2 days): recalibrate, assess and report against baselines; RSS; Store calls."""
+    ap = _common.parser(__doc__)
+    ap.add_argument("--runs", type=int, default=3, help="paired runs per target (default 3)")
+    ap.add_argument("--year", action="store_true", help="also peak RSS on a year at 1 Hz (31.5 M readings; minutes)")
+    ap.add_argument("--count-before", metavar="COMMIT", help="also count Store calls with the code of COMMIT")
+    ap.add_argument("--only", metavar="T", action="append", choices=("recalibrate", "assess", "report", "rss", "calls"),
+                    help="run only these targets (repeatable; default all)")
+    args = ap.parse_args(argv)
+    want = lambda t: not args.only or t in args.only  # noqa: E731
+    n = 172_800 if args.quick else 2_592_000
+    days = n / 86400
+    cert = load_certificate("demo-probe")
+    recs = []
+    with tempfile.TemporaryDirectory() as d:
+        d = Path(d)
+        db = d / "month.db"
+        t_build, sid = timed(build, db, n)
+        streamed_recalibrate(db, sid, cert)          # the calibration in force for assess and report
+        host = machine()
+
+        if want("recalibrate"):
+            # 1. recalibrate: streamed vs select + numpy + executemany, streamed too
+            def mine():
+                t, cal = timed(streamed_recalibrate, db, sid, cert)
+                drop_calibration(db, cal)
+                return t
+
+            def base():
+                t, cal = timed(baseline_recalibrate, db, sid, cert)
+                drop_calibration(db, cal)
+                return t
+
+            m, b, r = paired(args.runs, mine, base)
+            ratio = m / b
+            recs.append(_common.report(
+                "streaming-recalibrate", f"recalibrate {days:g} days at 1 Hz ({n} readings), streamed: {m:.2f} s "
+                f"(median of {args.runs})", f"select + numpy + executemany of the per-reading rows, streamed by the same "
+                f"chunks: {b:.2f} s", ratio, f"{ratio:.2f}x the baseline (pairs {spread(r)})", "<= 1.0x the baseline",
+                ratio <= 1.0, args.json, recalibrate_s=m, baseline_s=b, pair_ratios=r, build_s=t_build, **host))
+
+        if want("assess"):
+            # 2. assess: streamed vs the in-memory path (whole series loaded)
+            m, b, r = paired(args.runs, lambda: timed(streamed_assess, db, sid)[0],
+                             lambda: timed(in_memory_assess, db, sid)[0])
+            a_s, a_m = streamed_assess(db, sid), in_memory_assess(db, sid)
+            same = (a_s.verdict.outcome == a_m.verdict.outcome
+                    and abs(a_s.value_v_per_m - a_m.value_v_per_m) <= 1e-12 * a_m.value_v_per_m)
+            recs.append(_common.report(
+                "streaming-assess", f"assess {days:g} days at 1 Hz, streamed: {m:.2f} s (median of {args.runs}); "
+                f"same verdict and value as in memory: {same}", f"in-memory path (whole series loaded): {b:.2f} s",
+                m / b, f"{m / b:.2f}x the in-memory time (pairs {spread(r)})", "< 1.5 s on 30 days",
+                (m < 1.5) if not args.quick else None, args.json, assess_s=m, in_memory_s=b, pair_ratios=r, **host))
+
+        if want("report"):
+            # 3. report: streamed (assess + CSV + envelope plot + HTML) vs select + csv of the same rows
+            with Store(db, readonly=True) as store:
+                cal = store.calibrations(sid)[-1]["id"]
+            runs = itertools.count()
+
+            def mine_report():
+                out = d / f"rep{next(runs)}"
+                t = timed(write_session_report, db, sid, out)[0]
+                shutil.rmtree(out)
+                return t
+
+            def base_report():
+                out = d / "base.csv"
+                t = timed(baseline_report, db, sid, cal, out)[0]
+                out.unlink()
+                return t
+
+            def raw_report():
+                out = d / "raw.csv"
+                t = timed(baseline_raw_dump, db, sid, out)[0]
+                out.unlink()
+                return t
+
+            m, b, r = paired(args.runs, mine_report, base_report)
+            m2, b2, r2 = paired(args.runs, mine_report, raw_report)
+            worst = max(m / b, m2 / b2)
+            recs.append(_common.report(
+                "streaming-report", f"HTML report + values.csv of {days:g} days at 1 Hz, streamed: {m:.2f} s and "
+                f"{m2:.2f} s (medians of {args.runs}, one set per baseline)",
+                f"select of the same rows (values joined with reading times) + csv.writer: {b:.2f} s; select of the raw "
+                f"readings (no join) + csv.writer: {b2:.2f} s", worst,
+                f"{m / b:.2f}x (pairs {spread(r)}) and {m2 / b2:.2f}x (pairs {spread(r2)}) the baselines",
+                "<= 1.5x the baseline", worst <= 1.5, args.json, report_s=m, baseline_s=b, pair_ratios=r,
+                report_raw_pairs_s=m2, raw_baseline_s=b2, raw_pair_ratios=r2, **host))
+
+        if want("rss"):
+            # 4. peak RSS, each command in its own process
+            rss = rss_of_commands(db, d / "rss-rep")
+            year = {}
+            if args.year:
+                ydb = d / "year.db"
+                t_year = timed(build, ydb, 365 * 86400)[0]
+                year = rss_of_commands(ydb, d / "rss-year")
+                ydb.unlink()
+            worst = max([*rss.values(), *year.values()])
+            figure = ("peak RSS, 30 days: " + ", ".join(f"{k} {v:.0f} MiB" for k, v in rss.items())
+                      + ("; a year: " + ", ".join(f"{k} {v:.0f} MiB" for k, v in year.items()) if year else ""))
+            recs.append(_common.report(
+                "streaming-rss", figure, "in-memory path: about 520 bytes per reading (1.35 GiB for 30 days)",
+                worst / 150.0, f"worst {worst:.0f} MiB of the 150 MiB allowed", "< 150 MiB per command",
+                worst < 150.0, args.json, peak_mb=worst, rss_month_mib=rss, rss_year_mib=year or None,
+                **({"year_build_s": t_year} if year else {}), **host))
+
+    if want("calls"):
+        # 5. Store calls for one session report (a small session; the count does not depend on its length)
+        after, whole = count_store_calls(), count_store_calls(whole=True)
+        before = count_before(args.count_before) if args.count_before else None
+        print(f"[streaming-calls] Store calls for one session report (closing the file not counted): streamed {after}; "
+              f"in-memory path {whole}" + (f"; code of {args.count_before}: {before}" if before else ""))
+    return recs
+
+
+if __name__ == "__main__":
+    main()
