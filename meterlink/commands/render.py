@@ -87,7 +87,8 @@ def _lab(folder, out, args, pdf):
     issued = load_certificate(cert_path)
     session = _session(args.lab_session)
     if not args.lab_session:     # the demo session is dated the day it ran: take the issued dates
-        session = dataclasses.replace(session, cal_date=issued.cal_date, due_date=issued.due_date)
+        session = dataclasses.replace(session, cal_date=issued.cal_date, due_date=issued.due_date,
+                                      issue_date=issued.cal_date)
     session = dataclasses.replace(session, certificate_number=issued.certificate_number)
     previous = load_certificate(args.previous) if args.previous else None
     results = pr.import_csv(readings, session)
@@ -101,8 +102,7 @@ def _lab(folder, out, args, pdf):
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
-    from meterlink.cli import SAFETY_LINE
-    return write_outputs(html.render(cal, cmp, SAFETY_LINE, args.template_dir), out / "certificate.html", pdf)
+    return write_outputs(html.render(cal, cmp, args.template_dir), out / "certificate.html", pdf)
 
 
 def _database(kind, sid, out, args, pdf):
