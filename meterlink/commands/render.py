@@ -27,6 +27,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--rule", metavar="NAME", help="recorded session: decision rule")
     parser.add_argument("--from", dest="t_from", metavar="DATE", help="station page: statistics from (UTC ISO date)")
     parser.add_argument("--to", dest="t_to", metavar="DATE", help="station page: statistics to, exclusive")
+    parser.add_argument("--report-number", metavar="TEXT", help="survey: report number (default: the plan's [report] "
+                        "number)")
+    parser.add_argument("--revision", metavar="TEXT", help="survey: report revision (default: the plan's, else 0)")
     parser.add_argument("--lab-session", metavar="TOML", help="lab folder: the session file the certificate was made "
                         "with (default: the invented demo session of 'lab run')")
     parser.add_argument("--previous", metavar="CERT", help="lab folder: the previous certificate it was compared with")
@@ -129,7 +132,8 @@ def _database(kind, sid, out, args, pdf):
     elif kind == "survey":
         from meterlink.survey.report import write_report
 
-        html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf)
+        html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf,
+                            meta={"number": args.report_number, "revision": args.revision})
         files = [html, *([html.with_suffix(".pdf")] if pdf else []), *sorted(html.parent.glob("*.csv"))]
     else:
         from meterlink.reports.session_report import write_session_report
