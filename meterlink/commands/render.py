@@ -27,6 +27,8 @@ def add_arguments(parser) -> None:
     parser.add_argument("--rule", metavar="NAME", help="recorded session: decision rule")
     parser.add_argument("--from", dest="t_from", metavar="DATE", help="station page: statistics from (UTC ISO date)")
     parser.add_argument("--to", dest="t_to", metavar="DATE", help="station page: statistics to, exclusive")
+    parser.add_argument("--period", metavar="PERIOD", help="station database: the period report of a month (YYYY-MM) "
+                        "or a quarter (YYYY-Qn) instead of the publication page")
     parser.add_argument("--report-number", metavar="TEXT", help="survey: report number (default: the plan's [report] "
                         "number)")
     parser.add_argument("--revision", metavar="TEXT", help="survey: report revision (default: the plan's, else 0)")
@@ -113,6 +115,12 @@ def _database(kind, sid, out, args, pdf):
     from meterlink.errors import MeterlinkError
     from meterlink.reports.templating import write_outputs
 
+    if kind != "station" and args.period:
+        raise MeterlinkError("--period applies to a monitoring station database only")
+    if kind == "station" and args.period:
+        from meterlink.station.period_report import write_period_report
+
+        return write_period_report(args.db, args.period, out, template_dir=args.template_dir, pdf=pdf)
     if kind == "station":
         import time
 
