@@ -116,3 +116,47 @@ def test_bad_period_and_period_on_a_survey_are_one_line(station, tmp_path, capsy
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and "--period" in err[0] and "YYYY-MM" in err[0]
     assert not (tmp_path / "x").exists()
+
+
+def test_previous_period_across_year_ends():
+    from meterlink.station.period_report import previous_period
+
+    t = lambda *a: dt.datetime(*a, tzinfo=dt.timezone.utc).timestamp()   # noqa: E731
+    assert previous_period(t(2026, 12, 3), "month") == "2026-11"
+    assert previous_period(t(2027, 1, 1, 0, 5), "month") == "2026-12"
+    assert previous_period(t(2026, 12, 3), "quarter") == "2026-Q3"
+    assert previous_period(t(2027, 2, 10), "quarter") == "2026-Q4"
+    # the station's zone decides: 2027-01-01 00:30 in Berlin is still 2026-12-31 23:30 UTC
+    assert previous_period(t(2026, 12, 31, 23, 30), "month", "Europe/Berlin") == "2026-12"
+
+
+def test_the_daemon_writes_each_finished_period_once(station):
+    from meterlink.station import period_report
+    from meterlink.station.stationfile import parse_station
+
+    tmp, db, month = station
+    st = parse_station(STATION.replace("PORT", "/dev/null") + '[reports]\nperiod = "month"\nfolder = "published"\n',
+                       tmp / "station.toml")
+    assert st.database == db and st.reports.folder == tmp / "published"
+    _, t1, _ = period_bounds(month)
+    events = []
+    period_report._next_check.clear()
+    # during the month: nothing finished yet with data (the month before has none)
+    assert period_report.housekeeping(st, t1 - 3600, lambda *e: events.append(e)) is None
+    assert not (tmp / "published").exists() and events == []
+    period_report._next_check.clear()
+    path = period_report.housekeeping(st, t1 + 86400, lambda *e: events.append(e))
+    assert path == tmp / "published" / f"station-{month}.html" and path.is_file()
+    assert events == [("period_report", "info", f"period report {month} written: {path}")]
+    assert SAFETY_LINE in path.read_text(encoding="utf-8")
+    mtime = path.stat().st_mtime_ns
+    period_report._next_check.clear()
+    assert period_report.housekeeping(st, t1 + 2 * 86400, lambda *e: events.append(e)) is None
+    assert path.stat().st_mtime_ns == mtime and len(events) == 1           # written once
+
+
+def test_a_bad_reports_table_is_one_line(tmp_path):
+    from meterlink.station.stationfile import StationFileError, parse_station
+
+    with pytest.raises(StationFileError, match=r"reports\.period: expected 'month' or 'quarter', got 'weekly'"):
+        parse_station(STATION.replace("PORT", "/dev/null") + '[reports]\nperiod = "weekly"\n', tmp_path / "s.toml")

@@ -23,7 +23,7 @@ import numpy as np
 
 from meterlink.physics import calibrate
 
-from meterlink.station import derived, retention
+from meterlink.station import derived, period_report, retention
 from meterlink.station.alarms import AlarmEvent, AlarmMachine, command_call, percent_rules_instantaneous, rule_value
 from meterlink.physics.certificate import KIND_DIPOLE, certificate_status, load_certificate
 from meterlink.station.hooks import STOP_WAIT_S, HookRunner
@@ -779,6 +779,7 @@ class Monitor:
         self._hook_outcomes(self.hooks.outcomes())
         if not closing and self._store_fail is None:
             self._retention()
+            period_report.housekeeping(self.st, self.now_utc(), lambda *e: self._event(None, *e))
 
 
 def _iso(t: float | None) -> str:

@@ -193,3 +193,50 @@ def write_period_report(db_path, spec: str, out_dir, *, template_dir=None, pdf: 
     except OSError as exc:
         raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
     return write_outputs(html, out / f"station-{label}.html", pdf)
+
+
+#: How often (monotonic seconds) the daemon looks whether a period has finished.
+CHECK_EVERY_S = 600.0
+_next_check: dict[str, float] = {}
+
+
+def previous_period(now_utc: float, period: str, timezone: str = "UTC") -> str:
+    """The label of the last finished month ('2026-11') or quarter ('2026-Q3') before now."""
+    d = _dt.datetime.fromtimestamp(now_utc, ZoneInfo(timezone))
+    months = 1 if period == "month" else 3
+    first = (d.month - 1) // months * months + 1 - months          # the first month of the previous period
+    year = d.year + (first - 1) // 12
+    first = (first - 1) % 12 + 1
+    return f"{year}-{first:02d}" if months == 1 else f"{year}-Q{(first + 2) // 3}"
+
+
+def housekeeping(st, now_utc: float, event) -> Path | None:
+    """Called by the monitor's housekeeping: when the station file has [reports] and a period has
+    finished that has data and no report yet, write it; event(kind, severity, message) records the
+    outcome. A failure is an event, never an exception: the monitor keeps measuring."""
+    import sqlite3
+    import time
+
+    cfg = getattr(st, "reports", None)
+    key = str(st.database)
+    if cfg is None or time.monotonic() < _next_check.get(key, 0.0):
+        return None
+    _next_check[key] = time.monotonic() + CHECK_EVERY_S
+    label = previous_period(now_utc, cfg.period, st.timezone)
+    if (cfg.folder / f"station-{label}.html").exists():
+        return None
+    try:
+        t0, t1, _ = period_bounds(label, st.timezone)
+        conn = sqlite3.connect(f"file:{Path(st.database).resolve()}?mode=ro", uri=True, timeout=10)
+        try:
+            first = conn.execute("SELECT min(t_start_utc) FROM mon_block").fetchone()[0]
+        finally:
+            conn.close()
+        if first is None or first >= t1:
+            return None                     # the station did not measure in that period
+        files = write_period_report(st.database, label, cfg.folder, pdf=cfg.pdf)
+    except (MeterlinkError, OSError, sqlite3.Error) as exc:
+        event("period_report", "warning", f"period report {label} not written: {exc}")
+        return None
+    event("period_report", "info", f"period report {label} written: {', '.join(str(f) for f in files)}")
+    return files[0]
