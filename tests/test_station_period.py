@@ -160,3 +160,24 @@ def test_a_bad_reports_table_is_one_line(tmp_path):
 
     with pytest.raises(StationFileError, match=r"reports\.period: expected 'month' or 'quarter', got 'weekly'"):
         parse_station(STATION.replace("PORT", "/dev/null") + '[reports]\nperiod = "weekly"\n', tmp_path / "s.toml")
+
+
+def test_status_fits_an_80_column_terminal_without_cutting_names_or_times(station):
+    import os
+    import subprocess
+    import sys
+
+    _, db, _ = station
+    env = {**os.environ, "COLUMNS": "80"}
+    p = subprocess.run([sys.executable, "-m", "meterlink", "status", "--db", str(db)], capture_output=True,
+                       text=True, env=env, timeout=60)
+    assert p.returncode == 0, p.stderr
+    lines = p.stdout.splitlines()
+    assert lines and max(len(x) for x in lines) <= 80
+    conn = sqlite3.connect(db)
+    last_seen = conn.execute("SELECT last_seen_utc FROM mon_meter").fetchone()[0]
+    conn.close()
+    stamp = dt.datetime.fromtimestamp(last_seen, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    whole = [x for x in lines if "roof-east" in x]
+    assert len(whole) == 2 and stamp in whole[0]                    # the name and the time on one line each
+    assert any("cert due" in x for x in lines) and "(" in whole[1]  # the certificate's due date with days left
