@@ -18,7 +18,7 @@ LAYOUT = {
     "device": ["protocol", "transport", "link", "commander", "clock", "conformance"],
     "storage": ["schema", ("storage", "store"), "spans", "salvage", "recorder", "processing"],
     "station": [("station", "stationfile"), "monitor", "derived", "spectral", "alarms", "stats", "publish",
-                "hooks", "lock", "notify", "retention"],
+                "hooks", "lock", "notify", "retention", "period_report"],
     "reports": ["render", "htmlpage", "session_report"],
 }
 MAP = {}  # old flat module -> new dotted path below meterlink
