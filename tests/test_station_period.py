@@ -109,6 +109,17 @@ def test_the_period_report_html_and_pdf(station, capsys):
     assert pages >= 2
 
 
+def test_a_quarter_with_months_without_data(station, capsys):
+    tmp, db, month = station
+    year, mon = (int(x) for x in month.split("-"))
+    quarter = f"{year}-Q{(mon + 2) // 3}"
+    assert main(["render", str(db), "--period", quarter, "--out", str(tmp / "q")]) == 0
+    html = (tmp / "q" / f"station-{quarter}.html").read_text(encoding="utf-8")
+    t0, t1, _ = period_bounds(quarter)
+    assert round((t1 - t0) / 86400) in (90, 91, 92) and html.count("<td>%d-" % year) >= 90   # every day listed
+    capsys.readouterr()
+
+
 def test_bad_period_and_period_on_a_survey_are_one_line(station, tmp_path, capsys):
     _, db, _ = station
     for period in ("2026-13", "Nov 2026", "2026-Q5"):

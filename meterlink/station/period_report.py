@@ -142,6 +142,7 @@ def report_html(conn, spec: str, template_dir=None, now_utc: float | None = None
         per_meter.append({
             "meter": ms["meter"], "label": ms["label"], "days": ms["day"], "months": ms["month"],
             "coverage_pct": 100.0 * total,
+            "highest_pct": max((r["max_pct"] for r in ms["month"] if r.get("max_pct") is not None), default=None),
             "gaps": [(iso(a), iso(b), _hours(b - a)) for a, b in gap], "n_gaps": len(gap),
             "gap_hours": sum(b - a for a, b in gap) / 3600.0,
             "certificate": m["certificate"], "certificate_due": due,
