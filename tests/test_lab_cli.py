@@ -13,6 +13,7 @@ from meterlink.lab import procedures as pr
 from meterlink.lab.session import LabSession
 from meterlink.simulators.lab import InProcessLab
 from tests.conftest import ROOT
+from labitems import ITEMS_TOML
 
 SESSION_TOML = """
 operator = "A <b>Tester</b> & co"
@@ -21,13 +22,17 @@ model = "ML-EP3 (simulated)"
 serial = "EP-4417"
 [calibration]
 lab = "Test lab (invented)"
+address = "2 Bench Street, Labtown (invented)"
 certificate_number = "LAB-CLI-1"
 date = 2027-06-01
 due = 2028-06-01
 [method]
 kind = "tem-cell"
 spacing_m = 0.15
-"""
+[ambient]
+temp_c = 23.0
+humidity_pct = 45.0
+""" + ITEMS_TOML
 
 
 def _readings(tmp_path):

@@ -14,6 +14,7 @@ from meterlink.lab.budget import calibration_budget, mismatch_limit_db
 from meterlink.lab.certify import decide_tolerance
 from meterlink.lab.procedures import import_csv
 from meterlink.lab.session import LabError, LabSession, load_session, orientation_matrix, session_from_dict
+from labitems import ITEMS_TOML, with_certificate_items
 
 SESSION = LabSession("probe (invented)", "P-1", "lab (invented)", "N-1", dt.date(2027, 1, 1), dt.date(2028, 1, 1))
 
@@ -120,7 +121,7 @@ def test_certificate_and_page_carry_the_corrected_field_standard_part():
     cal = certify.analyse(SESSION, pr.run_plan(plan, InProcessLab(seed=3), repeats=3))
     ref = next(c for c in cal.certificate.uncertainties if c.name == "reference_field")
     assert ref.value == pytest.approx(0.26) and ref.k == 2.0
-    page = html.render(cal, None, "")
+    page = html.render(dataclasses.replace(cal, session=with_certificate_items(cal.session)))
     assert "<td>power measurement</td><td>0.128</td><td>normal</td><td>2.000</td><td>1</td><td>0.064</td>" in page
 
 
@@ -205,7 +206,8 @@ def test_csv_import_groups_steps_and_computes_field_from_power(tmp_path):
 def test_session_file_errors(tmp_path):
     p = tmp_path / "s.toml"
     p.write_text('[probe]\nmodel = "m"\nserial = "s"\n[calibration]\nlab = "l"\ncertificate_number = "n"\n'
-                 '[method]\nkind = "tem-cell"\nspacing_m = 0.0\n')
+                 'address = "a"\n[method]\nkind = "tem-cell"\nspacing_m = 0.0\n[ambient]\ntemp_c = 23\n'
+                 'humidity_pct = 40\n' + ITEMS_TOML)
     with pytest.raises(LabError, match="spacing_m must be > 0"):
         load_session(p)
     p.write_text("[probe\n")

@@ -30,6 +30,7 @@ from meterlink.storage.recorder import Recorder
 from meterlink.storage.store import Store
 from meterlink.survey.run import run_plan
 from meterlink.survey.store import load_survey
+from labitems import with_certificate_items
 
 A4_PT = (210 / 25.4 * 72, 297 / 25.4 * 72)        # ISO 216 A4 in PDF points
 A4_PX = 210 / 25.4 * 96                            # its width in CSS px
@@ -102,7 +103,7 @@ def repeated_header_rows(html: str) -> int:
     return sum(1 for pages in on.values() if len(pages) > 1)
 
 
-def check_pdf(pdf_path, html: str, ident: str) -> int:
+def check_pdf(pdf_path, html: str, ident: str, statement: str = SAFETY_LINE) -> int:
     """The PDF against the layout: same page count, A4, footer on every page; returns the page count."""
     pages, problems = layout_problems(html)
     assert problems == []
@@ -115,7 +116,7 @@ def check_pdf(pdf_path, html: str, ident: str) -> int:
         assert f"page {i} of {pages}" in text
         assert ident in text
     whole = " ".join(" ".join(p.extract_text().split()) for p in reader.pages)
-    assert " ".join(SAFETY_LINE.split()[:6]) in whole            # the cautions come with the report
+    assert " ".join(statement.split()[:6]) in whole     # the cautions (a certificate: the lab's statement)
     return pages
 
 
@@ -136,6 +137,7 @@ def test_survey_report_pdf_pages_footer_and_tables_within_the_page(survey_db, tm
     out = json.loads(capsys.readouterr().out)
     html = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
     assert out["pdf"] == str(tmp_path / "r" / "report.pdf")
+    assert '<p class="caution"><strong>Safety.</strong>' in html     # the exposure cautions stay on surveys
     pages = check_pdf(tmp_path / "r" / "report.pdf", html, f"survey session {sid}")
     assert pages >= 2            # the survey report of two points does not fit one A4 page
     # the long unbroken label is wrapped over several lines of its cell, whole, not cut
@@ -189,6 +191,7 @@ def test_session_report_pdf(tmp_path, capsys):
     assert out["kind"] == "recording" and out["session"] == 1
     html = (tmp_path / "rep" / "report.html").read_text(encoding="utf-8")
     assert "<b>north gate</b>" not in html and "&lt;b&gt;north gate&lt;/b&gt;" in html
+    assert '<p class="caution"><strong>Safety.</strong>' in html     # and on recorded-session reports
     check_pdf(tmp_path / "rep" / "report.pdf", html, "Exposure record, session 1")
 
 
@@ -201,12 +204,14 @@ def test_lab_certificate_pdf(tmp_path):
 
     s = LabSession("three-axis probe (invented)", "P-77", "Test lab <i>(invented)</i>", "CERT-PDF-1",
                    dt.date(2027, 6, 1), dt.date(2028, 6, 1))
+    s = with_certificate_items(s)
     plan = pr.full_plan(s, freqs=(3e7, 1e8, 3e8, 1e9, 3e9, 6e9), levels=(0.2, 1, 5, 20), iso_step_deg=30)
     cal = certify.analyse(s, pr.run_plan(plan + pr.temperature_plan(s, (10.0, 23.0, 35.0)), InProcessLab(seed=4),
                                          repeats=3))
-    page = lab_html.render(cal, None, SAFETY_LINE)
+    page = lab_html.render(cal)
     assert "Test lab &lt;i&gt;(invented)&lt;/i&gt;" in page
-    pages = check_pdf(write_pdf(page, tmp_path / "certificate.pdf"), page, "Calibration certificate CERT-PDF-1")
+    pages = check_pdf(write_pdf(page, tmp_path / "certificate.pdf"), page, "Calibration certificate CERT-PDF-1",
+                      lab_html.RESULTS_STATEMENT)
     assert pages >= 2
     # the budget's rows reach the PDF as numbers (the 9-column response table included)
     text = " ".join(" ".join(p.extract_text().split()) for p in pypdf.PdfReader(str(tmp_path / "certificate.pdf")).pages)
@@ -238,5 +243,6 @@ def test_lab_import_writes_the_certificate_pdf_beside_the_page(tmp_path, capsys)
                  "--out", str(out), "--register", str(tmp_path / "reg.tsv"), "--pdf", "--json"]) == 0
     summary = json.loads(capsys.readouterr().out)
     assert summary["pdf"] == str(out / "certificate.pdf")
+    from meterlink.lab.html import RESULTS_STATEMENT
     check_pdf(out / "certificate.pdf", (out / "certificate.html").read_text(encoding="utf-8"),
-              "Calibration certificate LAB-CLI-1")
+              "Calibration certificate LAB-CLI-1", RESULTS_STATEMENT)

@@ -19,6 +19,7 @@ from meterlink.cautions import SAFETY_LINE
 from meterlink.cli import main
 from meterlink.errors import MeterlinkError
 from meterlink.reports.templating import render
+from labitems import with_certificate_items
 
 
 @pytest.fixture(scope="module")
@@ -29,6 +30,7 @@ def cal():
 
     s = LabSession("<script>alert('model')</script>", "S\x1b[2J-1", "Lab \"quoted\" & <b>bold</b>", "N-<1>",
                    dt.date(2027, 6, 1), dt.date(2028, 6, 1), operator="\u202eevil")
+    s = with_certificate_items(s)
     plan = pr.full_plan(s, freqs=(1e8, 1e9, 3e9), levels=(0.2, 1, 5, 20), iso_step_deg=45)
     return certify.analyse(s, pr.run_plan(plan, InProcessLab(seed=2), repeats=3))
 
@@ -36,7 +38,7 @@ def cal():
 def test_hostile_text_stays_text_in_every_place(cal):
     from meterlink.lab import html
 
-    page = html.render(cal, None, SAFETY_LINE)
+    page = html.render(cal)
     assert "<script>" not in page and "&lt;script&gt;alert(&#39;model&#39;)&lt;/script&gt;" in page
     assert "<b>bold</b>" not in page and "Lab &#34;quoted&#34; &amp; &lt;b&gt;bold&lt;/b&gt;" in page
     assert "\x1b" not in page and "S\\x1b[2J-1" in page               # ESC shown, never sent
@@ -51,28 +53,35 @@ def test_a_template_dir_overrides_the_stylesheet_and_a_template_by_file_name(cal
     (tmp_path / "report.css").write_text("h1{color:#0a5c36;font-family:serif}\n")
     (tmp_path / "certificate.html").write_text(
         '{% extends "base.html" %}{% block content %}<p id="ours">Issued by {{ summary_rows[1][1] }}</p>'
-        "<p>{{ safety_line }}</p>{% endblock %}\n")
-    plain = html.render(cal, None, SAFETY_LINE)
-    styled = html.render(cal, None, SAFETY_LINE, tmp_path)
+        "<p>{{ results_statement }}</p>{% endblock %}\n")
+    plain = html.render(cal)
+    styled = html.render(cal, None, tmp_path)
     assert "h1{color:#0a5c36;font-family:serif}" in styled and "h1{color:#0a5c36" not in plain
     assert "border-bottom:3px solid #2b6f77" in plain and "border-bottom:3px solid #2b6f77" not in styled
     assert '<p id="ours">Issued by Lab &#34;quoted&#34; &amp; &lt;b&gt;bold&lt;/b&gt;</p>' in styled
     assert "@page" in styled                        # print.css not overridden: the packaged one fills in
     # only report.css overridden: the packaged certificate layout with the new look
     (tmp_path / "certificate.html").unlink()
-    assert "Uncertainty budget" in html.render(cal, None, SAFETY_LINE, tmp_path)
+    assert "Measurement uncertainty" in html.render(cal, None, tmp_path)
 
 
-def test_a_restyled_template_without_the_cautions_is_refused(cal, tmp_path):
+def test_a_restyled_template_without_the_cautions_is_refused(tmp_path):
+    # the base's cautions block stays unless a template empties it on purpose
+    (tmp_path / "kept.html").write_text('{% extends "base.html" %}{% block content %}x{% endblock %}\n')
+    assert SAFETY_LINE in render("kept.html", tmp_path, title="t", ident="i")
+    (tmp_path / "dropped.html").write_text('{% extends "base.html" %}{% block cautions %}{% endblock %}'
+                                           '{% block content %}x{% endblock %}\n')
+    with pytest.raises(MeterlinkError, match="lacks the safety cautions"):
+        render("dropped.html", tmp_path, title="t", ident="i")
+
+
+def test_a_restyled_certificate_without_the_lab_statement_is_refused(cal, tmp_path):
     from meterlink.lab import html
 
-    # the base's cautions block stays unless a template empties it on purpose
+    # a certificate's cautions block holds the lab's statements; the exposure cautions alone do not do
     (tmp_path / "certificate.html").write_text('{% extends "base.html" %}{% block content %}x{% endblock %}\n')
-    assert SAFETY_LINE in html.render(cal, None, SAFETY_LINE, tmp_path)
-    (tmp_path / "certificate.html").write_text('{% extends "base.html" %}{% block cautions %}{% endblock %}'
-                                               '{% block content %}x{% endblock %}\n')
-    with pytest.raises(MeterlinkError, match="lacks the safety cautions"):
-        html.render(cal, None, SAFETY_LINE, tmp_path)
+    with pytest.raises(MeterlinkError, match="lacks the statement 'The results in this certificate relate only"):
+        html.render(cal, None, tmp_path)
 
 
 def test_a_misspelt_field_fails_instead_of_leaving_a_blank(tmp_path):

@@ -19,7 +19,8 @@ LAYOUT = {
     "storage": ["schema", ("storage", "store"), "spans", "salvage", "recorder", "processing", "files", "rows", "batch",
                 "writing", "queries", "recording", "streamed"],
     "station": [("station", "stationfile"), "monitor", "derived", "spectral", "alarms", "stats", "publish",
-                "hooks", "lock", "notify", "retention", "ingest", "persist", "health", "meterwriter"],
+                "hooks", "lock", "notify", "retention", "ingest", "persist", "health", "meterwriter",
+                "period_report"],
     "reports": ["render", "htmlpage", "session_report"],
 }
 MAP = {}  # old flat module -> new dotted path below meterlink

@@ -52,15 +52,23 @@ def add_arguments(parser) -> None:
 
 
 def _session(path):
+    """The session file given, else the packaged example session (invented) dated today."""
+    import dataclasses
     import datetime as dt
+    import importlib.resources
 
-    from meterlink.lab.session import LabSession, load_session
+    from meterlink.lab.session import load_session
     if path:
         return load_session(path)
+    with importlib.resources.as_file(importlib.resources.files("meterlink.lab") / "examples" / "session.toml") as p:
+        s = load_session(p)
     today = dt.date.today()
-    return LabSession("ML-EP3 three-axis E-field probe (simulated)", "EP-4417",
-                      "Quillmoor Field Metrology Laboratory (invented)", "", today,   # number: from the register
-                      today + dt.timedelta(days=365), operator="demo")
+    year = dt.timedelta(days=365)
+    # dated the day it runs, numbered from the register; the invented standards stay in calibration
+    return dataclasses.replace(
+        s, certificate_number="", cal_date=today, due_date=today + year, issue_date=today, received_date=None,
+        operator="demo", references=tuple(dataclasses.replace(r, due_date=max(r.due_date, today + year))
+                                          for r in s.references))
 
 
 def _simulated(session, args):
@@ -250,7 +258,7 @@ def run(args) -> int:
         try:
             out.mkdir(parents=True, exist_ok=True)
             (out / "certificate.toml").write_text(dump_certificate(cal.certificate), encoding="utf-8")
-            write_outputs(html.render(cal, cmp, SAFETY_LINE, args.template_dir), out / "certificate.html", args.pdf)
+            write_outputs(html.render(cal, cmp, args.template_dir), out / "certificate.html", args.pdf)
             pr.export_csv(results, out / "readings.csv")
         except OSError as exc:
             raise MeterlinkError(f"{out}: cannot write the outputs ({exc.strerror})") from None

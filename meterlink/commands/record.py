@@ -25,6 +25,11 @@ def add_arguments(parser) -> None:
     parser.add_argument("--certificate", metavar="FILE",
                         help="certificate to calibrate the readings with afterwards (default: the packaged "
                              "certificate matching the probe serial, if any); raw counts are stored either way")
+    parser.add_argument("--standard", metavar="NAME", default="icnirp-2020",
+                        help="reference levels for the live percent shown while recording (default icnirp-2020); "
+                             "only the display, nothing stored depends on it")
+    parser.add_argument("--tier", choices=("public", "occupational"), default="public",
+                        help="tier of the live percent (default public)")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
 
 
@@ -88,7 +93,8 @@ def run(args) -> int:
     new_file = not db_path.exists()
     empty = False
     try:
-        with Store(args.db) as store, _progress(show, duration) as on_item:
+        live = _Live(args.certificate, freq, band, args.standard, args.tier)
+        with Store(args.db) as store, _progress(show, duration, live) as on_item:
             rec = Recorder(store, args.port, interval_ms=interval, duration_s=duration, freq_hz=freq, band_hz=band,
                            notes=args.notes, on_item=on_item)
             # SIGTERM (a service manager, kill) ends the recording as Ctrl-C does: the last batch is
@@ -158,11 +164,67 @@ def _field_dict(series) -> dict:
     return d
 
 
-class _progress:
-    """Context giving an on_item callback that shows device time recorded (rich, on stderr)."""
+class _Live:
+    """The live field of a probe reading and its percent of the reference level (display only): the
+    certificate given, else the packaged one of the probe the meter announces; none: counts only."""
 
-    def __init__(self, show: bool, duration_s: float | None):
-        self.show, self.duration_s = show, duration_s
+    def __init__(self, certificate, freq_hz, band, standard: str, tier: str):
+        self.certificate, self.freq, self.band = certificate, freq_hz, band
+        self.standard, self.tier = standard, tier
+        self.cert = self.e_ref = self.temp_c = None     # temp_c: the meter's last reported temperature
+        self.why = ""
+
+    def connected(self, ident) -> None:
+        """Choose the certificate and the broadband reference level once the meter has said who it is."""
+        from meterlink.errors import MeterlinkError
+        from meterlink.physics.certificate import ProbeCertificate, load_certificate, packaged_certificates
+        from meterlink.survey.assess import broadband_reference
+
+        try:
+            if self.certificate:
+                cert = load_certificate(self.certificate)
+            else:
+                cert = next((c for c in map(load_certificate, packaged_certificates())
+                             if c.serial == (ident.probe_serial or "").strip()), None)
+            if not isinstance(cert, ProbeCertificate):
+                self.why = "no probe certificate for a live field value"
+                return
+            rng = self.freq if self.freq is not None else (self.band or cert.freq_range_hz)
+            self.e_ref = broadband_reference(self.standard, self.tier, rng).e_v_per_m
+            self.cert = cert
+        except MeterlinkError as exc:     # the recording goes on; only the live value is missing
+            self.why = f"no live field value: {exc}"
+
+    def value(self, axes) -> tuple[float, float] | None:
+        """(E in V/m, percent of the power-density reference level) of one reading, or None."""
+        if self.cert is None:
+            return None
+        from meterlink.physics.calibrate import calibrate_axes
+
+        rng = self.freq if self.freq is not None else (self.band or self.cert.freq_range_hz)
+        e = float(calibrate_axes(self.cert, [[axes.x, axes.y, axes.z]], rng, self.temp_c).e_v_per_m[0])
+        return e, 100.0 * (e / self.e_ref) ** 2
+
+    def text(self, axes) -> str:
+        """Rich markup of the live value, coloured by the shared percent scale."""
+        v = self.value(axes)
+        if v is None:
+            return self.why
+        from meterlink.reports.percent_scale import style_power
+
+        e, pct = v
+        if not math.isfinite(e):
+            return "[bold red]E out of the probe's range[/]"
+        return (f"[{style_power(pct / 100)}]E {e:.3g} V/m  {pct:.1f} % of the power-density level "
+                f"({self.standard} {self.tier})[/]")
+
+
+class _progress:
+    """Context giving an on_item callback that shows device time recorded and the live field with its
+    percent of the reference level (rich, on stderr)."""
+
+    def __init__(self, show: bool, duration_s: float | None, live: _Live | None = None, console=None):
+        self.show, self.duration_s, self.live, self.console = show, duration_s, live, console
         self.first = None
 
     def __enter__(self):
@@ -172,15 +234,22 @@ class _progress:
         from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
         self.bar = Progress(TextColumn("recording"), BarColumn(), TextColumn("{task.fields[what]}"),
-                            TimeElapsedColumn(), console=Console(stderr=True), transient=True)
+                            TimeElapsedColumn(), TextColumn("{task.fields[field]}"),
+                            console=self.console or Console(stderr=True), transient=True)
         self.bar.start()
-        self.task = self.bar.add_task("rec", total=self.duration_s, what="")
+        self.task = self.bar.add_task("rec", total=self.duration_s, what="", field="")
         self.n = 0
         return self.on_item
 
     def on_item(self, item) -> None:
-        from meterlink.device.link import Reading, SpectrumReading
+        from meterlink.device.link import Connected, Reading, SpectrumReading, StatusReport
 
+        if isinstance(item, Connected) and self.live is not None:
+            self.live.connected(item.ident)
+            return
+        if isinstance(item, StatusReport) and self.live is not None and item.status.temp_centi_c is not None:
+            self.live.temp_c = item.status.temp_centi_c / 100.0     # as the stored series is corrected
+            return
         if not isinstance(item, (Reading, SpectrumReading)):
             return
         t = item.t_utc
@@ -188,7 +257,8 @@ class _progress:
         if self.first is None:
             self.first = t
         done = t - self.first
-        self.bar.update(self.task, completed=done, what=f"{done:.0f} s device time, {self.n} readings")
+        field = self.live.text(item.axes) if self.live is not None and isinstance(item, Reading) else ""
+        self.bar.update(self.task, completed=done, what=f"{done:.0f} s device time, {self.n} readings", field=field)
 
     def __exit__(self, *exc) -> None:
         if self.show:

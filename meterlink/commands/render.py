@@ -27,6 +27,11 @@ def add_arguments(parser) -> None:
     parser.add_argument("--rule", metavar="NAME", help="recorded session: decision rule")
     parser.add_argument("--from", dest="t_from", metavar="DATE", help="station page: statistics from (UTC ISO date)")
     parser.add_argument("--to", dest="t_to", metavar="DATE", help="station page: statistics to, exclusive")
+    parser.add_argument("--period", metavar="PERIOD", help="station database: the period report of a month (YYYY-MM) "
+                        "or a quarter (YYYY-Qn) instead of the publication page")
+    parser.add_argument("--report-number", metavar="TEXT", help="survey: report number (default: the plan's [report] "
+                        "number)")
+    parser.add_argument("--revision", metavar="TEXT", help="survey: report revision (default: the plan's, else 0)")
     parser.add_argument("--lab-session", metavar="TOML", help="lab folder: the session file the certificate was made "
                         "with (default: the invented demo session of 'lab run')")
     parser.add_argument("--previous", metavar="CERT", help="lab folder: the previous certificate it was compared with")
@@ -88,7 +93,8 @@ def _lab(folder, out, args, pdf):
     issued = load_certificate(cert_path)
     session = _session(args.lab_session)
     if not args.lab_session:     # the demo session is dated the day it ran: take the issued dates
-        session = dataclasses.replace(session, cal_date=issued.cal_date, due_date=issued.due_date)
+        session = dataclasses.replace(session, cal_date=issued.cal_date, due_date=issued.due_date,
+                                      issue_date=issued.cal_date)
     session = dataclasses.replace(session, certificate_number=issued.certificate_number)
     previous = load_certificate(args.previous) if args.previous else None
     results = pr.import_csv(readings, session)
@@ -102,8 +108,7 @@ def _lab(folder, out, args, pdf):
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
-    from meterlink.cli import SAFETY_LINE
-    return write_outputs(html.render(cal, cmp, SAFETY_LINE, args.template_dir), out / "certificate.html", pdf)
+    return write_outputs(html.render(cal, cmp, args.template_dir), out / "certificate.html", pdf)
 
 
 def _database(kind, sid, out, args, pdf):
@@ -111,6 +116,12 @@ def _database(kind, sid, out, args, pdf):
     from meterlink.errors import MeterlinkError
     from meterlink.reports.templating import write_outputs
 
+    if kind != "station" and args.period:
+        raise MeterlinkError("--period applies to a monitoring station database only")
+    if kind == "station" and args.period:
+        from meterlink.station.period_report import write_period_report
+
+        return write_period_report(args.db, args.period, out, template_dir=args.template_dir, pdf=pdf)
     if kind == "station":
         import time
 
@@ -130,7 +141,8 @@ def _database(kind, sid, out, args, pdf):
     elif kind == "survey":
         from meterlink.survey.report import write_report
 
-        html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf)
+        html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf,
+                            meta={"number": args.report_number, "revision": args.revision})
         files = [html, *([html.with_suffix(".pdf")] if pdf else []), *sorted(html.parent.glob("*.csv"))]
     else:
         from meterlink.reports.session_report import write_session_report

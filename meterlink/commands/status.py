@@ -48,6 +48,7 @@ def run(args) -> int:
         print(to_json(s))
         return 0
     from rich.console import Console
+    from rich import box
     from rich.table import Table
     from rich.markup import escape
 
@@ -63,17 +64,29 @@ def run(args) -> int:
     if s["stale"]:
         con.print(f"[bold red]stale[/bold red]: recorded as running but no heartbeat for more than "
                   f"{3 * s['heartbeat_s']:g} s (heartbeat every {s['heartbeat_s']:g} s); is the monitor still alive?")
-    t = Table("meter", "link", "last seen", "E V/m", "U dB", s["pct_label"], "cov 24h", "battery", "temp C",
-              "drift ppm", "cert due", "alarms")
     f = lambda v, spec: "-" if v is None else format(v, spec)  # noqa: E731
-    for m in s["meters"]:
-        t.add_row(escape(m["meter"]), m["link"] or "-", m["last_seen_utc"] or "-", f(m["last_e_v_per_m"], ".3g"),
-                  f(m["u_expanded_db"], ".2f"), f(m["last_pct"], ".1f"), f(m["coverage_24h"], ".0%"),
-                  "mains" if m["battery_pct"] is None else f"{m['battery_pct']:.0f} %", f(m["temperature_degc"], ".1f"),
-                  f(m["drift_ppm"], "+.0f"), f"{m['certificate_due']} ({m['certificate_days_left']} d)",
-                  ", ".join(a["rule"] for a in m["active_alarms"]) or "none")
-    con.print(t)
-    for ev in s["recent_events"]:
-        con.print(f"  {ev['t_utc']} {ev['severity']:7s} {escape(ev['kind'])}: {escape(ev['message'])}")
+    cols = {
+        "meter": lambda m: escape(m["meter"]), "link": lambda m: m["link"] or "-",
+        "last seen (UTC)": lambda m: m["last_seen_utc"] or "-", "E V/m": lambda m: f(m["last_e_v_per_m"], ".3g"),
+        "U dB": lambda m: f(m["u_expanded_db"], ".2f"), s["pct_label"]: lambda m: f(m["last_pct"], ".1f"),
+        "cov 24h": lambda m: f(m["coverage_24h"], ".0%"),
+        "battery": lambda m: "mains" if m["battery_pct"] is None else f"{m['battery_pct']:.0f} %",
+        "temp C": lambda m: f(m["temperature_degc"], ".1f"), "drift ppm": lambda m: f(m["drift_ppm"], "+.0f"),
+        "cert due": lambda m: f"{m['certificate_due']} ({m['certificate_days_left']} d)",
+        "alarms": lambda m: ", ".join(a["rule"] for a in m["active_alarms"]) or "none"}
+    # a narrow terminal (80 columns) gets two tables, values then health, instead of one that cuts names and times
+    heads = list(cols)
+    groups = [heads] if con.width >= 160 else [[h for h in heads[:7] if h != "link"], ["meter", "link", *heads[7:]]]
+    for group in groups:
+        t = Table(*group, box=None if len(groups) > 1 else box.HEAVY_HEAD, pad_edge=len(groups) == 1)
+        for name in group:
+            t.columns[group.index(name)].overflow = "fold"
+            t.columns[group.index(name)].no_wrap = name in ("last seen (UTC)", "cert due", "E V/m", "U dB")
+        for m in s["meters"]:
+            t.add_row(*(cols[name](m) for name in group))
+        con.print(t)
+    for ev in s["recent_events"]:      # wrapped by the console at its width, never cut
+        con.print(f"  {ev['t_utc']} {ev['severity']:7s} {escape(ev['kind'])}: {escape(ev['message'])}",
+                  overflow="fold")
     con.print(SAFETY_LINE)
     return 0

@@ -107,6 +107,32 @@ class ProbeSpec:
 
 
 @dataclass(frozen=True)
+class ReferenceStandard:
+    """A reference standard the applied field is traceable through, with its own calibration."""
+
+    name: str
+    certificate_number: str
+    due_date: _dt.date
+    calibrated_by: str = ""
+
+
+@dataclass(frozen=True)
+class Party:
+    """A name with a postal address (the customer)."""
+
+    name: str
+    address: str
+
+
+@dataclass(frozen=True)
+class Signatory:
+    """The person who authorises the certificate and their function in the laboratory."""
+
+    name: str
+    function: str
+
+
+@dataclass(frozen=True)
 class LabSession:
     """Everything recorded about a calibration besides the readings."""
 
@@ -124,6 +150,30 @@ class LabSession:
     decision_rule: str = "guarded"
     budget: dict = field(default_factory=dict)   # overrides of meterlink.lab.budget.DEFAULTS
     orientation: str = "handle = sensor (1,1,1); rotator about the handle; see docs/lab.md"
+    # what a certificate states besides the results (ISO/IEC 17025:2017 7.8.2.1, 7.8.4.1); a session
+    # file must give them (session_from_dict), a session built in code is checked when the page is made
+    lab_address: str = ""
+    customer: Party | None = None
+    references: tuple[ReferenceStandard, ...] = ()
+    signatory: Signatory | None = None
+    issue_date: _dt.date | None = None       # None: the calibration date
+    received_date: _dt.date | None = None    # optional: when the item reached the laboratory
+    item_condition: str = ""                 # optional: the item's condition on receipt
+    procedure: str = ""                      # optional: the lab's own procedure document and revision
+    location: str = ""                       # optional: where calibrated, if not at the lab's address
+
+    def missing_certificate_items(self) -> list[str]:
+        """Names of the session items a certificate needs that are not given (empty: complete)."""
+        miss = []
+        if not self.lab_address.strip():
+            miss.append("calibration.address")
+        if self.customer is None:
+            miss.append("customer")
+        if not self.references:
+            miss.append("[[reference]]")
+        if self.signatory is None:
+            miss.append("signatory")
+        return miss
 
     def reference_field(self, e_ref_v_per_m: float, net_power_w: float) -> float:
         """The step's reference field: entered if given, else computed from the net power."""
@@ -174,6 +224,49 @@ def _cert_number(where, cal) -> str:
     return v
 
 
+def _text(where, d, key, optional=False) -> str:
+    """A printable one-paragraph text item (names, addresses); "" when optional and absent."""
+    if optional and key not in d:
+        return ""
+    v = d.get(key)
+    if v is None:
+        raise LabError(f"{where}: missing key '{key}'")
+    if not isinstance(v, str) or not v.strip():
+        raise LabError(f"{where}: '{key}' must be a non-empty string")
+    return v.strip()
+
+
+def _table(where, d, key) -> dict:
+    v = d.get(key)
+    if v is None:
+        raise LabError(f"{where}: missing table [{key}] (a certificate needs it, see docs/lab.md)")
+    if not isinstance(v, dict):
+        raise LabError(f"{where}: '{key}' must be a table")
+    return v
+
+
+def _references(where, d, cal_date) -> tuple[ReferenceStandard, ...]:
+    """[[reference]]: each standard with its own certificate number and due date, in force on the day."""
+    refs = d.get("reference")
+    if refs is None:
+        raise LabError(f"{where}: missing [[reference]]: name the reference standards (name, certificate_number, "
+                       "due) the field is traceable through")
+    if not isinstance(refs, list) or not refs or not all(isinstance(r, dict) for r in refs):
+        raise LabError(f"{where}: 'reference' must be one or more [[reference]] tables")
+    out = []
+    for i, r in enumerate(refs):
+        w = f"{where}: reference {i + 1}"
+        if "due" not in r:
+            raise LabError(f"{w}: missing key 'due'")
+        ref = ReferenceStandard(_text(w, r, "name"), _text(w, r, "certificate_number"),
+                                _date(w, r, "due", None), _text(w, r, "calibrated_by", optional=True))
+        if ref.due_date < cal_date:
+            raise LabError(f"{w}: {ref.name!r} was due for calibration on {ref.due_date} before the calibration "
+                           f"date {cal_date}: a standard out of its calibration gives no traceability")
+        out.append(ref)
+    return tuple(out)
+
+
 def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
     """Build a session from a parsed TOML document; LabError names the key on any problem."""
     probe, cal = d.get("probe", {}), d.get("calibration", {})
@@ -209,9 +302,27 @@ def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
         get_rule(rule)
     except MeterlinkError as exc:
         raise LabError(f"{where}: 'decision_rule': {exc}") from None
+    model, serial, lab = _str(where, probe, "model"), _str(where, probe, "serial"), _str(where, cal, "lab")
+    for key in ("temp_c", "humidity_pct"):     # the conditions are stated on the certificate, never assumed
+        if key not in amb:
+            raise LabError(f"{where}: missing key 'ambient.{key}' (the conditions of the calibration)")
+    address = _text(where, cal, "address") if "address" in cal else ""
+    if not address:
+        raise LabError(f"{where}: missing key 'calibration.address' (the laboratory's address)")
+    cust, sig = _table(where, d, "customer"), _table(where, d, "signatory")
+    customer = Party(_text(f"{where}: customer", cust, "name"), _text(f"{where}: customer", cust, "address"))
+    signatory = Signatory(_text(f"{where}: signatory", sig, "name"), _text(f"{where}: signatory", sig, "function"))
+    issued = _date(where, cal, "issued", cal_date)
+    if issued < cal_date:
+        raise LabError(f"{where}: issue date {issued} is before the calibration date {cal_date}")
+    received = _date(where, cal, "received", None) if "received" in cal else None
+    if received is not None and received > cal_date:
+        raise LabError(f"{where}: received date {received} is after the calibration date {cal_date}")
     return LabSession(
-        probe_model=_str(where, probe, "model"), probe_serial=_str(where, probe, "serial"),
-        lab=_str(where, cal, "lab"), certificate_number=_cert_number(where, cal),
+        lab_address=address, customer=customer, signatory=signatory, references=_references(where, d, cal_date),
+        issue_date=issued, received_date=received, item_condition=_text(where, probe, "condition", optional=True),
+        procedure=_text(where, m, "procedure", optional=True), location=_text(where, cal, "location", optional=True),
+        probe_model=model, probe_serial=serial, lab=lab, certificate_number=_cert_number(where, cal),
         cal_date=cal_date, due_date=due, method=method,
         # bounds no calibration lab comes near (engineering judgement): they catch typing slips
         ambient=Ambient(_num(where, amb, "temp_c", 23.0, -60.0, 100.0),

@@ -15,6 +15,7 @@ from rich.table import Table
 from rich.text import Text
 
 from meterlink.cautions import SAFETY_LINE
+from meterlink.reports.percent_scale import style_field, style_power
 from meterlink.safetext import clean_text
 from meterlink.physics.units import format_frequency
 
@@ -45,11 +46,12 @@ def utc_text(t_s: float | None) -> str:
     return _dt.datetime.fromtimestamp(t_s, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
 
 
-def bar(fraction: float, width: int = 30) -> Text:
-    """A horizontal gauge of a fraction of a limit (1.0 = the reference level), marked at 100 %."""
+def bar(fraction: float, width: int = 30, style: str | None = None) -> Text:
+    """A horizontal gauge of a fraction of a limit (1.0 = the reference level), marked at 100 %;
+    coloured by the shared scale (a field fraction unless the caller gives the style)."""
     f = max(0.0, fraction) if math.isfinite(fraction) else 0.0
     filled = min(width, int(round(f * width)))
-    style = "green" if f < 0.5 else ("yellow" if f < 1.0 else "red")
+    style = style or style_field(f)
     t = Text("▕")
     t.append("█" * filled, style=style)
     t.append("·" * (width - filled), style="grey50")
@@ -78,8 +80,10 @@ def assessment_renderable(a) -> Panel:
     if a.partial_v_per_m is not None:
         t.add_row("partial windows", f"up to {a.partial_v_per_m:.4g} V/m (start of record, not the standard's average)")
     t.add_row("expanded uncertainty", f"U = {a.u_expanded_db:.2f} dB (k = 2)")
-    t.add_row("exposure, field terms", Text.assemble(bar(a.percent_field / 100), f" {a.percent_field:.1f} % of the field level"))
-    t.add_row("exposure, power terms", Text.assemble(bar(a.percent_power / 100), f" {a.percent_power:.1f} % of the power-density level"))
+    t.add_row("exposure, field terms", Text.assemble(bar(a.percent_field / 100, style=style_power(a.percent_power / 100)),
+                                                           f" {a.percent_field:.1f} % of the field level"))
+    t.add_row("exposure, power terms", Text.assemble(bar(a.percent_power / 100, style=style_power(a.percent_power / 100)),
+                                                           f" {a.percent_power:.1f} % of the power-density level"))
     parts = [t]
     if a.emitters:
         et = Table(title="emitters (largest share first)", title_justify="left")

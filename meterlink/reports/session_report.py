@@ -6,7 +6,6 @@ rule is fixed before the assessment, see `meterlink assess`), unless the caller 
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import numpy as np
@@ -236,9 +235,6 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
 
                 a = assess_spectrum(series, standard, tier, rule, floor_v_per_m=floor_e_v_per_m(cert, series.freq_hz))
         events = rec.events
-    kinds: dict[str, int] = {}
-    for ev in events:
-        kinds[ev["kind"]] = kinds.get(ev["kind"], 0) + 1
     instrument_rows = [
         ("meter", f"{s.get('device_model')} serial {s.get('device_serial')}"),
         ("probe or antenna", s.get("device_probe_serial")),
@@ -272,10 +268,25 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
                   a=a, instrument_rows=instrument_rows, assessment_rows=assessment_rows,
                   field_plot=_field_plot(field_env, a) if field else None,
                   shares_plot=None if field else _shares_plot(a),
-                  event_counts=sorted(kinds.items()), cautions=CAUTIONS,
-                  details_json=json.dumps({"outcome": a.verdict.outcome,
-                                           "not_assessable_reason": a.verdict.reason or None,
-                                           "exposure_ratio_power": a.total_exposure_ratio}))
+                  event_rows=event_summary(events), cautions=CAUTIONS)
     html = out / "report.html"
     write_outputs(page, html, pdf)
     return html
+
+
+_SEVERITY_RANK = {"error": 0, "warning": 1, "info": 2}
+
+
+def event_summary(events) -> list[list]:
+    """The events table: one row per kind (most severe kinds first), with how many, first and last time
+    (UTC) and the latest message, so 51 repeated entries read as one line."""
+    groups: dict[str, list] = {}
+    for ev in events:
+        groups.setdefault(ev["kind"], []).append(ev)
+    rows = []
+    for kind, evs in groups.items():
+        evs = sorted(evs, key=lambda e: e["t_utc"] or 0.0)
+        sev = min((e["severity"] for e in evs), key=lambda v: _SEVERITY_RANK.get(v, 3))
+        rows.append([kind, sev, len(evs), T.utc(evs[0]["t_utc"]), T.utc(evs[-1]["t_utc"]) if len(evs) > 1 else "",
+                     evs[-1]["message"] or ""])
+    return sorted(rows, key=lambda r: (_SEVERITY_RANK.get(r[1], 3), -r[2], r[0]))

@@ -90,10 +90,11 @@ def _environment(over: str | None):
     return env
 
 
-def render(name: str, override_dir=None, **context) -> str:
+def render(name: str, override_dir=None, *, required: str = SAFETY_LINE, **context) -> str:
     """Render one report template to an HTML string.
 
-    The cautions are checked in the result: a restyled template that drops them is refused."""
+    The `required` statement is checked in the result, by default the safety cautions: a restyled
+    template that drops it is refused. A lab certificate requires the lab's own statement instead."""
     import jinja2
 
     try:
@@ -104,8 +105,9 @@ def render(name: str, override_dir=None, **context) -> str:
         raise MeterlinkError(f"template {exc.filename or exc.name}: line {exc.lineno}: {exc.message}") from None
     except jinja2.UndefinedError as exc:
         raise MeterlinkError(f"template {name}: {exc.message}") from None
-    if escape(SAFETY_LINE, quote=True) not in html:
-        raise MeterlinkError(f"template {name}: the rendered report lacks the safety cautions "
+    if escape(required, quote=True) not in html:
+        what = "the safety cautions" if required == SAFETY_LINE else f"the statement {required!r}"
+        raise MeterlinkError(f"template {name}: the rendered report lacks {what} "
                              f"(a restyled template must keep the 'cautions' block)")
     return html
 

@@ -21,6 +21,7 @@ from meterlink.station.hooks import STOP_WAIT_S, HookRunner
 from meterlink.station.ingest import Ingest, MeterState, Persist, _iso, band_reference  # noqa: F401 - importable here
 from meterlink.station.lock import StationLock
 from meterlink.station.meterwriter import MeterWriter
+from meterlink.station import period_report
 from meterlink.station.notify import Notifier
 from meterlink.station.persist import Persistence
 from meterlink.station.retention import thin_readings  # noqa: F401 - kept importable from here
@@ -201,4 +202,5 @@ class Monitor(Ingest, Persistence, Health):
         self._hook_outcomes(self.hooks.outcomes())
         if not closing and self._store_fail is None:
             self._retention()
+            period_report.housekeeping(self.st, self.now_utc(), lambda *e: self._event(None, *e))
 

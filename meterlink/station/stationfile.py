@@ -86,6 +86,16 @@ class Retention:
 
 
 @dataclass(frozen=True)
+class Reports:
+    """[reports]: the daemon writes the period report of each finished month or quarter into folder
+    (meterlink/station/period_report.py)."""
+
+    period: str              # "month" or "quarter"
+    folder: Path
+    pdf: bool = False
+
+
+@dataclass(frozen=True)
 class Station:
     """A parsed station file."""
 
@@ -110,6 +120,7 @@ class Station:
     health: HealthRules = field(default_factory=HealthRules)
     retention: Retention = field(default_factory=Retention)
     central: dict | None = None      # [central]: url, token_file, station_uuid (checked by meterlink.network.syncd)
+    reports: Reports | None = None
 
     def meter(self, name: str) -> MeterConfig:
         """The meter called ``name``."""
@@ -355,12 +366,21 @@ def parse_station(text: str, path: Path | str = "<station>") -> Station:
     central = top.get("central", "table", None)
     if central is not None:                      # checked now: a monitor never starts with unusable sync settings
         settings_from_table(central, src, base)
+    reports = None
+    if "reports" in top.t:
+        rp = top.sub("reports")
+        period = rp.get("period", "str")
+        if period not in ("month", "quarter"):
+            rp.fail("period", f"expected 'month' or 'quarter', got {period!r}")
+        folder = Path(rp.get("folder", "str", "reports"))
+        reports = Reports(period, folder if folder.is_absolute() else base / folder, rp.get("pdf", "bool", False))
+        rp.done()
     top.done()
     return Station(path=path, name=name, latitude_deg=lat, longitude_deg=lon, elevation_m=elev,
                    database=db if db.is_absolute() else base / db, standard=standard, tier=tier,
                    freq_hz=freq, band_hz=band, convention=conv, windows_s=windows, block_s=block_s,
                    min_coverage=min_cov, timezone=tz, heartbeat_s=heartbeat, meters=meters,
-                   alarms=alarms, health=health, retention=retention, central=central)
+                   alarms=alarms, health=health, retention=retention, central=central, reports=reports)
 
 
 def load_station(path) -> Station:

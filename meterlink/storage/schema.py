@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 8
+SCHEMA_VERSION = 9
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -249,9 +249,20 @@ def _schema_v8_field_spans(db: sqlite_utils.Database) -> None:
     db.execute("CREATE INDEX field_spans_calibration ON field_spans (calibration_id, id_lo)")
 
 
+def _schema_v9_remeasure(db: sqlite_utils.Database) -> None:
+    """A survey point may be measured again: each capture is kept (capture_no 1, 2, ...), the earlier one
+    pointing to the capture that replaced it, the new one carrying the reason. ADD COLUMN: no row rewritten."""
+    db.execute("ALTER TABLE survey_points ADD COLUMN capture_no INTEGER NOT NULL DEFAULT 1")
+    db.execute("ALTER TABLE survey_points ADD COLUMN replaced_by INTEGER REFERENCES survey_points(id)")
+    db.execute("ALTER TABLE survey_points ADD COLUMN remeasure_reason TEXT")
+    db.execute("DROP INDEX IF EXISTS idx_survey_points_session_id_point_no")
+    db.execute("CREATE UNIQUE INDEX survey_points_capture ON survey_points (session_id, point_no, capture_no)")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
                                                                    5: _schema_v5_monitoring, 6: _schema_v6_sync,
-                                                                   7: _schema_v7_positions, 8: _schema_v8_field_spans}
+                                                                   7: _schema_v7_positions, 8: _schema_v8_field_spans,
+                                                                   9: _schema_v9_remeasure}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

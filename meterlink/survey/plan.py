@@ -13,14 +13,14 @@ from meterlink.errors import MeterlinkError, read_input_text
 from meterlink.survey.model import MODES, FollowUp, Point, Site, Source, SurveyPlan
 from meterlink.survey.spatial import SCHEMES, scheme_from
 
-_TOP = {"survey", "site", "source", "point"}
+_TOP = {"survey", "site", "source", "point", "report"}   # [report]: read by survey/report.py
 _SURVEY = {"title", "standard", "tier", "rule", "certificate", "interval_ms", "freq_hz", "band_hz",
            "followup_v_per_m", "followup_percent", "settle_s", "spot_s", "sweep_s", "sources_file",
            "prediction_u_db"}
 _SITE = {"name", "address", "operator", "technician", "latitude_deg", "longitude_deg", "notes"}
 _SOURCE = {"name", "freq_hz", "technology", "power_w", "max_power_w", "notes"}
 _POINT = {"label", "mode", "height_m", "x_m", "y_m", "lat_deg", "lon_deg", "notes", "near_field",
-          "duration_s", "scheme", "n", "heights_m", "walk_m"}
+          "duration_s", "scheme", "n", "heights_m", "walk_m", "photos"}   # photos: read by survey/report.py
 
 
 # Bounds that no real survey comes near, so that a typing slip is caught when the plan is loaded

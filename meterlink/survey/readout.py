@@ -20,7 +20,7 @@ from rich.text import Text
 
 from meterlink.survey.capture import View
 
-BANDS = ((0.05, "green"), (0.25, "yellow"), (1.0, "dark_orange"), (math.inf, "red"))  # power-ratio bands
+from meterlink.reports.percent_scale import style_power
 
 
 def _fmt(v: float, unit: str = "V/m") -> str:
@@ -28,11 +28,8 @@ def _fmt(v: float, unit: str = "V/m") -> str:
 
 
 def band_style(ratio_power: float) -> str:
-    """Colour of a power-domain exposure ratio: below 5 %, 25 %, 100 %, above."""
-    for lim, style in BANDS:
-        if ratio_power < lim:
-            return style
-    return "red"
+    """Colour of a power-domain exposure ratio: the shared scale of meterlink.reports.percent_scale."""
+    return style_power(ratio_power)
 
 
 def gauge(ratio_power: float, width: int = 30) -> Text:

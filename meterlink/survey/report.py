@@ -25,8 +25,84 @@ CAUTIONS = (
     "value is compared with the most restrictive reference level in its band. Keep clear of energised "
     "antennas and observe the site's access rules, barriers and signage at all times.")
 
-def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, *, comparisons=(), gis_files=(),
-                positions=None) -> str:
+#: Site outcomes, worst first: the site takes the worst outcome of its assessable points.
+_WORST_FIRST = ("not compliant", "conditional fail", "conditional pass", "compliant")
+_REPORT_KEYS = {"number", "revision", "assessor", "qualification", "organisation", "date"}
+_IMAGE_MAGIC = {b"\x89PNG\r\n\x1a\n": "image/png", b"\xff\xd8\xff": "image/jpeg"}
+
+
+def site_outcome(verdicts) -> str:
+    """The site's outcome: the worst of the points' outcomes that carry a conformity statement,
+    "not assessable" when none does."""
+    present = [v for v in verdicts if v in _WORST_FIRST]
+    return min(present, key=_WORST_FIRST.index) if present else "not assessable"
+
+
+def conclusion(sv: dict) -> dict:
+    """What a reader needs first: outcome under the chosen rule (as measured and at maximum declared
+    power), the highest percent of the reference level and where, the follow-ups, the points without
+    a conformity statement and why."""
+    pts = sv["points"]
+    measured = [p for p in pts if p["percent_power"] is not None]
+    top = max(measured, key=lambda p: p["percent_power"], default=None)
+    extrap = [p["verdict_extrapolated"] for p in pts if p["verdict_extrapolated"]]
+    return {"outcome": site_outcome(p["verdict"] for p in pts),
+            "outcome_extrapolated": site_outcome(extrap) if extrap and sv["sources"] else None,
+            "n_points": len(pts), "top": top,
+            "followup": [p for p in pts if p["followup"]],
+            "not_assessable": [p for p in pts if p["verdict"] not in _WORST_FIRST or not p["complete"]]}
+
+
+def _plan_doc(sv: dict) -> dict:
+    import tomllib
+    try:
+        return tomllib.loads(sv.get("plan_text") or "")
+    except tomllib.TOMLDecodeError:
+        return {}
+
+
+def report_meta(sv: dict, overrides: dict | None = None) -> dict:
+    """Report number, revision and sign-off (assessor, qualification, organisation, date) from the
+    plan's [report] table, options overriding; every value is text ("" when not given)."""
+    rep = _plan_doc(sv).get("report", {})
+    where = sv.get("plan_path") or "the stored plan"
+    if not isinstance(rep, dict):
+        raise MeterlinkError(f"plan {where}: [report] must be a table")
+    extra = sorted(set(rep) - _REPORT_KEYS)
+    if extra:
+        raise MeterlinkError(f"plan {where}: [report]: unknown key {extra[0]!r} (known: {', '.join(sorted(_REPORT_KEYS))})")
+    meta = {k: str(rep.get(k, "")) for k in sorted(_REPORT_KEYS)}
+    meta.update({k: str(v) for k, v in (overrides or {}).items() if v not in (None, "")})
+    meta["revision"] = meta["revision"] or "0"
+    return meta
+
+
+def point_photos(sv: dict) -> dict[str, list[tuple[str, str]]]:
+    """Per point label, its photos as (file name, data: URI), read from the files the plan names
+    (relative to the plan's folder); a missing or non-image file is a one-line error."""
+    import base64
+
+    base = Path(sv.get("plan_path") or ".").parent
+    out = {}
+    for i, pt in enumerate(_plan_doc(sv).get("point", []), 1):
+        names = pt.get("photos", []) if isinstance(pt, dict) else []
+        if isinstance(names, str) or not isinstance(names, list) or not all(isinstance(n, str) for n in names):
+            raise MeterlinkError(f"plan {sv.get('plan_path')}: point {i}: photos must be a list of file names")
+        for name in names:
+            path = base / name
+            try:
+                data = path.read_bytes()
+            except OSError as exc:
+                raise MeterlinkError(f"photo {str(path)!r} of point {pt.get('label')!r}: {exc.strerror}") from None
+            mime = next((m for magic, m in _IMAGE_MAGIC.items() if data.startswith(magic)), None)
+            if mime is None:
+                raise MeterlinkError(f"photo {str(path)!r} of point {pt.get('label')!r} is not a PNG or JPEG image")
+            out.setdefault(pt.get("label"), []).append((name, f"data:{mime};base64,{base64.b64encode(data).decode()}"))
+    return out
+
+
+def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, meta: dict | None = None, *,
+                comparisons=(), gis_files=(), positions=None) -> str:
     """The report as one HTML string from a loaded survey (meterlink.survey.store.load_survey),
     laid out by the survey.html template (restyled from template_dir when given)."""
     from meterlink.physics.limits import describe_standard
@@ -38,8 +114,11 @@ def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, *, compa
     due = sv["certificate_due"]
     expired = bool(due) and _dt.date.fromisoformat(due) < _dt.datetime.fromtimestamp(
         sv["created_utc"], _dt.timezone.utc).date()
+    meta = report_meta(sv, meta)
+    number = f"report {meta['number']} rev. {meta['revision']}, " if meta["number"] else ""
     return render("survey.html", template_dir, sv=sv, ses=sv["session"], pts=sv["points"], title=title,
-                  ident=f"{title}, survey session {int(sv['session_id'])}", expired=expired,
+                  ident=f"{title}, {number}survey session {int(sv['session_id'])}", expired=expired,
+                  meta=meta, conclusion=conclusion(sv), photos=point_photos(sv),
                   made_utc=_dt.datetime.now(_dt.timezone.utc).timestamp(),
                   site_rows=[(k.replace("_", " "), v) for k, v in site.items() if v not in (None, "")],
                   std=describe_standard(sv["standard"]), rule=get_rule(sv["decision_rule"]),
@@ -146,9 +225,10 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
     return paths
 
 
-def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: bool = False) -> Path:
+def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: bool = False,
+                 meta: dict | None = None) -> Path:
     """Write report.html (and report.pdf when asked) and the CSV files of a survey session into
-    out_dir; returns the HTML path."""
+    out_dir; returns the HTML path. meta overrides the plan's [report] (number, revision, sign-off)."""
     from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir as checked_dir, write_outputs
     from meterlink.storage.store import Store
     from meterlink.survey import plots
@@ -186,7 +266,7 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
     comparisons = predicted.compare(sv, frame)
     gis_files = [p.name for p in gis.write_gis(sv, frame, out)]
     html_path = out / "report.html"
-    write_outputs(render_html(sv, figures, template_dir, comparisons=comparisons, gis_files=gis_files), html_path,
-                  pdf)
+    write_outputs(render_html(sv, figures, template_dir, meta, comparisons=comparisons, gis_files=gis_files),
+                  html_path, pdf)
     write_csv(sv, out)
     return html_path

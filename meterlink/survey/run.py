@@ -70,6 +70,7 @@ class Survey:
         self.link = MeterLink(port, plan.interval_ms, link_factory=link_factory, **link_options)
         self.session_id: int | None = None
         self.results: list[PointResult] = []
+        self._numbers: dict[str, int] = {}      # point label -> point_no, for re-measurements
         self.interrupt_event = threading.Event()
         self._writer = None
         self.capture: Capture | None = None
@@ -184,11 +185,20 @@ class Survey:
         return {"spot": self.plan.spot_s, "spatial": self.plan.spot_s, "sweep": self.plan.sweep_s,
                 "average": self.ref.averaging_time_s or self.plan.spot_s}[p.mode]
 
-    def measure(self, p: Point) -> PointResult:
-        """Place, settle and capture every height of the point, then assess and store it."""
+    def measure(self, p: Point, reason: str | None = None) -> PointResult:
+        """Place, settle and capture every height of the point, then assess and store it. With a
+        reason, a point measured before is measured again: the new capture replaces the old one in
+        the conclusion, and both stay in the record."""
         cap = self.capture
         self.interrupt_event.clear()
-        no = len(self.results) + 1
+        if reason is not None:
+            if p.label not in self._numbers:
+                raise MeterlinkError(f"point {p.label!r} has not been measured in this survey: nothing to re-measure")
+            if not reason.strip():
+                raise MeterlinkError(f"point {p.label!r}: a re-measurement needs its reason")
+            no = self._numbers[p.label]
+        else:
+            no = len(self._numbers) + 1
         heights = p.scheme.heights_m if p.mode == "spatial" and p.scheme else (p.height_m,)
         dur = self._duration(p)
         samples, interrupted = [], False
@@ -231,7 +241,8 @@ class Survey:
             n_pos = sum(1 for t in cap.trace if t.get("lat_deg") is not None)
             self.n_positioned += n_pos
             self.n_unpositioned += len(cap.trace) - n_pos
-        sstore.add_point(self.store, self.session_id, no, res, cap.trace)
+        sstore.add_point(self.store, self.session_id, no, res, cap.trace, reason)
+        self._numbers.setdefault(p.label, no)
         cap.trace = []
         self.results.append(res)
         return res

@@ -9,6 +9,7 @@ import time
 from dataclasses import asdict
 
 from meterlink import __version__
+from meterlink.errors import MeterlinkError
 from meterlink.storage.store import Store, StorageError
 from meterlink.survey.model import PointResult, SurveyPlan
 
@@ -43,8 +44,12 @@ def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, se
               "power_w": s.power_w, "max_power_w": s.max_power_w, "notes": s.notes} for s in plan.sources])
 
 
-def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trace: list[dict]) -> int:
-    """Store one assessed point with its samples, emitters and reading trace, in one transaction."""
+def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trace: list[dict],
+              reason: str | None = None) -> int:
+    """Store one assessed point with its samples, emitters and reading trace, in one transaction.
+
+    With a reason, the point is a re-measurement: the new capture replaces the current one of that
+    point_no (which stays, pointing to it via replaced_by); without one, point_no must be new."""
     p = r.point
     row = {"session_id": session_id, "point_no": point_no, "label": p.label, "mode": p.mode, "scheme": r.scheme,
            "x_m": p.x_m, "y_m": p.y_m, "lat_deg": p.lat_deg, "lon_deg": p.lon_deg, "height_m": p.height_m,
@@ -62,7 +67,17 @@ def add_point(store: Store, session_id: int, point_no: int, r: PointResult, trac
            "percent_power_extrapolated": _num(r.percent_power_extrapolated),
            "verdict_extrapolated": r.verdict_extrapolated}
     with store.write():
+        prev = store.db.execute("SELECT id, capture_no FROM survey_points WHERE session_id = ? AND point_no = ? "
+                                "AND replaced_by IS NULL", [session_id, point_no]).fetchone()
+        if (prev is None) != (reason is None):
+            raise MeterlinkError(f"survey {session_id}: point {point_no} "
+                                 + ("has no capture to re-measure" if prev is None else
+                                    "is already measured: give the reason to re-measure it"))
+        if prev is not None:
+            row.update(capture_no=prev[1] + 1, remeasure_reason=reason)
         pid = int(store.db["survey_points"].insert(row).last_pk)
+        if prev is not None:
+            store.db.execute("UPDATE survey_points SET replaced_by = ? WHERE id = ?", [pid, prev[0]])
         store.db["survey_samples"].insert_all(
             [{"point_id": pid, "sample_no": i, "height_m": s.height_m,
               "x_m": s.position_m[0] if s.position_m else None, "y_m": s.position_m[1] if s.position_m else None,
@@ -107,12 +122,17 @@ def load_survey(store: Store, session_id: int) -> dict:
         sv = rows[0]
         sv["site"] = json.loads(sv["site_json"] or "{}")
         sv["sources"] = list(db["survey_sources"].rows_where("session_id = ?", [session_id], order_by="id"))
-        pts = list(db["survey_points"].rows_where("session_id = ?", [session_id], order_by="point_no"))
-        for p in pts:
+        every = list(db["survey_points"].rows_where("session_id = ?", [session_id], order_by="point_no, capture_no"))
+        for p in every:
             p["warnings"] = json.loads(p["warnings"] or "[]")
             p["samples"] = list(db["survey_samples"].rows_where("point_id = ?", [p["id"]], order_by="sample_no"))
             p["emitters"] = list(db["survey_emitters"].rows_where("point_id = ?", [p["id"]], order_by="freq_hz"))
-        sv["points"] = pts
+        # the current capture of each point; earlier ones stay in the record, with the reason they were replaced
+        sv["points"] = [p for p in every if p["replaced_by"] is None]
+        by_id = {p["id"]: p for p in every}
+        sv["replaced"] = [dict(p, reason=by_id[p["replaced_by"]]["remeasure_reason"],
+                               replaced_by_capture=by_id[p["replaced_by"]]["capture_no"])
+                          for p in every if p["replaced_by"] is not None]
         sv["trace"] = list(db["survey_trace"].rows_where("session_id = ?", [session_id], order_by="t_utc, id"))
     sv["session"] = store.session(session_id)
     return sv
