@@ -20,7 +20,7 @@ import pytest
 
 from meterlink.cautions import SAFETY_LINE
 from meterlink.planning.sourcefile import parse_site
-from meterlink.reports.colours import PERCENT_COLOURS, kml_colour, percent_band, percent_colour
+from meterlink.reports.percent_scale import PERCENT_COLOURS, kml_colour, percent_band, percent_colour
 from meterlink.simulators.gnss import DEMO_ORIGIN, SimulatedGnss
 from meterlink.simulators.pty_meter import SimulatedMeter
 from meterlink.storage.store import Store

@@ -7,7 +7,7 @@ import numpy as np
 from rich.console import Console
 
 from meterlink.physics.assessment import assess_field
-from meterlink.reports.percent_scale import style_field, style_power
+from meterlink.reports.percent_scale import PERCENT_COLOURS, percent_colour, style_field, style_power
 from meterlink.reports.render import assessment_renderable
 from meterlink.storage.processing import FieldSeries
 from meterlink.survey.readout import band_style, gauge
@@ -28,10 +28,12 @@ def test_field_ratio_takes_the_colour_of_its_power_density_equivalent():
     for rf in (0.1, 0.2236, 0.2237, 0.49, 0.51, 0.99, 1.0, 1.5, float("inf")):
         assert style_field(rf) == style_power(rf * rf)
     # and the bands are ordered: a higher exposure never gets an earlier colour
-    order = ["green", "yellow", "dark_orange", "red"]
+    order = list(PERCENT_COLOURS)
     ratios = np.linspace(0, 1.5, 301)
     idx = [order.index(style_power(r)) for r in ratios]
-    assert idx == sorted(idx) and idx[0] == 0 and idx[-1] == 3 and style_power(1.0) == "red"
+    assert idx == sorted(idx) and idx[0] == 0 and idx[-1] == len(order) - 1
+    assert style_power(1.0) == PERCENT_COLOURS[-1] and style_power(0.999) != PERCENT_COLOURS[-1]
+    assert style_power(float("nan")) == PERCENT_COLOURS[-1]   # a value that could not be computed never looks safe
 
 
 def test_live_readout_and_assess_panel_share_the_scale():
@@ -44,4 +46,5 @@ def test_live_readout_and_assess_panel_share_the_scale():
     assert abs(a.percent_power - 36.0) < 0.1
     panel = set(_bar_styles(assessment_renderable(a)))
     live = set(_bar_styles(gauge(a.percent_power / 100)))
-    assert panel == live == {"dark_orange"} == {band_style(0.36)}
+    # 36 % of the power-density level falls in the 20-50 % band, on the map and KML scale as well
+    assert panel == live == {band_style(0.36)} == {percent_colour(36.0)}

@@ -32,7 +32,7 @@ def test_live_field_and_percent_while_recording(tmp_path):
             summary = rec.run()
         series = calibrated_series(store, summary.session_id, freq_hz=101.8e6)
     last = [s for s in shown if s.startswith("[")][-1]
-    m = re.match(r"\[(\w+)\]E (\S+) V/m  (\S+) % of the power-density level \(icnirp-2020 public\)\[/\]", last)
+    m = re.match(r"\[(#?\w+)\]E (\S+) V/m  (\S+) % of the power-density level \(icnirp-2020 public\)\[/\]", last)
     assert m, last
     e_live, pct_live = float(m.group(2)), float(m.group(3))
     # the last reading as stored and calibrated after the recording

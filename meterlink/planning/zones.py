@@ -108,18 +108,19 @@ def zone_map_png(grids, site, levels_percent=(100.0,), title: str | None = None)
     from matplotlib.lines import Line2D
     from matplotlib.patches import FancyArrow
 
-    # Background: the first grid's percent of the reference level on a log colour scale, so that a
+    # Background: the first grid's percent of the reference level on the shared banded scale
+    # (meterlink.reports.percent_scale: the colours of the live readout, assess and survey maps), so that a
     # map whose zones lie above head height (or off the grid) still shows where the field is.
-    from matplotlib.colors import LogNorm
+    from meterlink.reports.percent_scale import PERCENT_EDGES, PERCENT_LABELS, percent_cmap_norm
 
     g_bg = grids[0]
-    z_bg = np.asarray(g_bg.percent, dtype=float)
-    top = max(float(np.nanmax(z_bg)), 1e-3)
-    lo = max(top / 1e4, 1e-4)
-    mesh = ax.pcolormesh(g_bg.x_m, g_bg.y_m, np.clip(z_bg, lo, None), norm=LogNorm(vmin=lo, vmax=max(top, 100.0)),
-                         cmap="magma_r", shading="auto", alpha=0.55, rasterized=True)
-    cbar = fig.colorbar(mesh, ax=ax, shrink=0.7, pad=0.02)
-    cbar.set_label(f"% of the {g_bg.tier} reference level ({g_bg.standard}), log scale")
+    cmap, norm = percent_cmap_norm()
+    mesh = ax.pcolormesh(g_bg.x_m, g_bg.y_m, np.asarray(g_bg.percent, dtype=float), cmap=cmap, norm=norm,
+                         shading="auto", alpha=0.45, rasterized=True)
+    mids = [(a + b) / 2 for a, b in zip(PERCENT_EDGES, list(PERCENT_EDGES[1:]) + [1000.0])]
+    cbar = fig.colorbar(mesh, ax=ax, shrink=0.7, pad=0.02, ticks=mids)
+    cbar.ax.set_yticklabels(PERCENT_LABELS)
+    cbar.set_label(f"% of the {g_bg.tier} reference level ({g_bg.standard}), power terms")
     for grid in grids:
         colour, ls = styles.get(grid.tier, ("#444444", ":"))
         z = np.asarray(grid.percent)

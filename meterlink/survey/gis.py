@@ -15,7 +15,7 @@ from pathlib import Path
 
 from meterlink.cautions import SAFETY_LINE
 from meterlink.device.gnss import from_local_m
-from meterlink.reports.colours import PERCENT_COLOURS, PERCENT_LABELS, kml_colour, percent_band
+from meterlink.reports.percent_scale import PERCENT_COLOURS, PERCENT_LABELS, kml_colour, percent_band
 
 KML_NS = "http://www.opengis.net/kml/2.2"
 GPX_NS = "http://www.topografix.com/GPX/1/1"

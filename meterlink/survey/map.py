@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 
 from meterlink.cautions import SAFETY_LINE
 from meterlink.device.gnss import to_local_m
-from meterlink.reports.colours import PERCENT_LABELS, percent_cmap_norm, percent_colour
+from meterlink.reports.percent_scale import PERCENT_LABELS, percent_cmap_norm, percent_colour
 
 
 @dataclass
