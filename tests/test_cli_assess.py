@@ -73,7 +73,14 @@ def test_assess_bad_input_is_one_line(recorded_db, capsys, argv, needle):
 def test_recalibrate_keeps_earlier_calibrations(recorded_db, capsys):
     assert main(["recalibrate", "--db", str(recorded_db), "--certificate", "demo-probe", "--json"]) == 0
     first = json.loads(capsys.readouterr().out)
-    assert main(["recalibrate", "--db", str(recorded_db), "--certificate", "demo-probe", "--json"]) == 0
+    # the same certificate with the same declared frequency again: refused in one line, nothing added
+    assert main(["recalibrate", "--db", str(recorded_db), "--certificate", "demo-probe", "--json"]) == 2
+    err = capsys.readouterr().err
+    assert "already the calibration in force" in err and len(err.strip().splitlines()) == 1
+    con = sqlite3.connect(recorded_db)
+    assert con.execute("select count(*) from calibrations").fetchone()[0] == len(first["calibrations"])
+    con.close()
+    assert main(["recalibrate", "--db", str(recorded_db), "--certificate", "demo-probe", "--again", "--json"]) == 0
     second = json.loads(capsys.readouterr().out)
     assert len(second["calibrations"]) == len(first["calibrations"]) + 1
     assert second["e_rms_v_per_m"] == pytest.approx(first["e_rms_v_per_m"])

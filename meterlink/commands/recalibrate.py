@@ -13,7 +13,23 @@ def add_arguments(parser) -> None:
     group = parser.add_mutually_exclusive_group()
     group.add_argument("--freq", metavar="F", help="declared frequency (default: the session's)")
     group.add_argument("--band", metavar="LO:HI", help="declared band (default: the session's)")
+    parser.add_argument("--again", action="store_true",
+                        help="apply even when this certificate, with the same declared frequency or band, is already the "
+                             "calibration in force (it would add an identical calibration)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
+
+
+def already_in_force(calibrations, cert_sha256: str, freq_hz, band) -> dict | None:
+    """The session's calibration in force when it used the same certificate text and the same declared
+    frequency or band (re-applying it would only add an identical copy), else None."""
+    if not calibrations:
+        return None
+    last = calibrations[-1]
+    same_band = (band is None and last.get("band_lo_hz") is None) or (
+        band is not None and (last.get("band_lo_hz"), last.get("band_hi_hz")) == tuple(band))
+    same_freq = (freq_hz is None and last.get("freq_hz") is None) or (
+        freq_hz is not None and last.get("freq_hz") is not None and float(last["freq_hz"]) == float(freq_hz))
+    return last if last.get("certificate_sha256") == cert_sha256 and same_band and same_freq else None
 
 
 def run(args) -> int:
@@ -35,6 +51,20 @@ def run(args) -> int:
         sid = args.session if args.session is not None else latest_session(store)
         rec = load_recording(store, sid)
         before = rec.calibrations
+        if not args.again:
+            import hashlib
+
+            from meterlink.errors import MeterlinkError
+            from meterlink.physics.certificate import dump_certificate
+            from meterlink.reports.render import utc_text
+
+            sha = hashlib.sha256(dump_certificate(cert).encode()).hexdigest()
+            eff_freq, eff_band = (freq, band) if (freq is not None or band is not None) else (rec.freq_hz, rec.band)
+            same = already_in_force(before, sha, eff_freq, eff_band)
+            if same is not None:
+                raise MeterlinkError(f"session {sid}: certificate {same['certificate_name']} is already the calibration "
+                                     f"in force (calibration {same['id']}, applied {utc_text(same['applied_utc'])}) with "
+                                     "the same declared frequency or band; nothing added (--again adds a copy)")
         try:        # probe sessions stream chunk by chunk; dipole sessions are small and go whole
             done = streamed.recalibrate(store, rec, cert, freq_hz=freq, band=band)
             cal_id, name, warnings = done.calibration_id, done.certificate_name, done.warnings
