@@ -227,3 +227,31 @@ def test_export_out_folder_over_a_file_is_one_line(db, tmp_path, capsys):
     err = capsys.readouterr().err.strip()
     assert err.count("\n") == 0 and "cannot create the export folder" in err and "taken" in err
     assert (tmp_path / "taken").read_text() == "not a folder"
+
+
+def test_status_and_stats_share_one_coverage_definition(db, capsys):
+    """status' 24-hour coverage and stats' coverage are one definition (covered seconds / seconds of the window
+    inside the record), computed by two code paths: publish.current_state and stats.period_stats."""
+    import numpy as np
+
+    from meterlink.station.publish import COVERAGE_NOTE, current_state
+    from meterlink.station.stats import Reference, period_stats
+
+    conn = sqlite3.connect(db)
+    t, cov, ok, e, bs = map(np.array, zip(*conn.execute(
+        "SELECT t_start_utc, covered_s, complete, e_rms_v_per_m, block_s FROM mon_block WHERE band='total' "
+        "ORDER BY t_start_utc").fetchall()))
+    now = float(t[-1] + bs[-1])                  # just after the last block: the window is the whole record
+    m, = current_state(conn, now)["meters"]
+    rows = period_stats(Reference("icnirp-2020", "public", 27.7, 2.0, "power"), t, e, cov, ok.astype(bool),
+                        float(t[0]), now, "day")
+    spans = [min(now, datetime.datetime.fromisoformat(r["period"]).replace(tzinfo=datetime.timezone.utc).timestamp()
+                 + 86400.0) - max(float(t[0]), datetime.datetime.fromisoformat(r["period"]).replace(
+                     tzinfo=datetime.timezone.utc).timestamp()) for r in rows]
+    stats_cov = sum(r["coverage"] * s for r, s in zip(rows, spans)) / sum(spans)
+    assert 0.5 < stats_cov <= 1.0                # a monitor that ran the whole time: mostly covered
+    assert m["coverage_24h"] == pytest.approx(stats_cov, rel=1e-9)
+    conn.close()
+    assert main(["status", "--db", str(db)]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "cov 24h = coverage: seconds covered" in out and COVERAGE_NOTE.split(":")[0] in out

@@ -110,5 +110,8 @@ def run(args) -> int:
                   f"{f(max((h for h in hours if h is not None), default=None))} %")
         ww = m["weekday_weekend"]
         con.print(f"weekday mean {f(ww['weekday']['mean_pct'])} %, weekend mean {f(ww['weekend']['mean_pct'])} %")
+    from meterlink.station.publish import COVERAGE_NOTE
+
+    con.print(f"[dim]{COVERAGE_NOTE}[/dim]", overflow="fold")
     con.print(SAFETY_LINE)
     return 0

@@ -85,6 +85,9 @@ def run(args) -> int:
         for m in s["meters"]:
             t.add_row(*(cols[name](m) for name in group))
         con.print(t)
+    from meterlink.station.publish import COVERAGE_NOTE
+
+    con.print(f"[dim]cov 24h = {COVERAGE_NOTE}, over the last 24 h[/dim]", overflow="fold")
     for ev in s["recent_events"]:      # wrapped by the console at its width, never cut
         con.print(f"  {ev['t_utc']} {ev['severity']:7s} {escape(ev['kind'])}: {escape(ev['message'])}",
                   overflow="fold")

@@ -25,6 +25,11 @@ from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_bounds,
 from meterlink.physics.units import Z0_OHM
 
 
+
+#: How coverage is defined, shown beside every coverage figure (status, stats, reports).
+COVERAGE_NOTE = ("coverage: seconds covered by stored readings / seconds of the period inside the record "
+                 "(from the meter's first 6-minute block on)")
+
 def _rows(conn, sql, params=()):
     cur = conn.execute(sql, params)
     cols = [c[0] for c in cur.description]
@@ -82,8 +87,15 @@ def current_state(conn, now_utc: float, recent_events: int = 10) -> dict:
     for m in meters:
         active = _rows(conn, "SELECT rule, t_on_utc, peak_value FROM mon_alarm WHERE station_id=? AND meter=? "
                        "AND state='active'", (st["id"], m["meter"]))
-        day = _rows(conn, "SELECT sum(covered_s) AS c FROM mon_block WHERE station_id=? AND meter=? AND band='total' "
-                    "AND t_start_utc >= ?", (st["id"], m["meter"], now_utc - 86400.0))[0]["c"] or 0.0
+        # Coverage, one definition with `stats` (meterlink.station.stats): covered seconds / seconds of the
+        # window that lie inside the record, here the last 24 h from the meter's first block on (a station
+        # started 3 h ago and never down shows 100 %, not 12.5 %); COVERAGE_NOTE says so wherever it is shown.
+        w = _rows(conn, "SELECT sum(covered_s) AS c, min(t_start_utc) AS t0 FROM mon_block WHERE station_id=? AND "
+                  "meter=? AND band='total' AND t_start_utc >= ?", (st["id"], m["meter"], now_utc - 86400.0))[0]
+        first = _rows(conn, "SELECT min(t_start_utc) AS t0 FROM mon_block WHERE station_id=? AND meter=? AND "
+                      "band='total'", (st["id"], m["meter"]))[0]["t0"]
+        day = w["c"] or 0.0
+        span_s = now_utc - max(now_utc - 86400.0, first if first is not None else now_utc)
         e = m["last_e_v_per_m"]
         due = m["cert_due"]
         days = None if not due else (_dt.date.fromisoformat(due) - _dt.date.fromtimestamp(now_utc)).days
@@ -93,7 +105,8 @@ def current_state(conn, now_utc: float, recent_events: int = 10) -> dict:
             "meter": m["meter"], "port": m["port"], "link": m["link_state"], "last_seen_utc": iso(m["last_seen_utc"]),
             "last_e_v_per_m": e, "u_expanded_db": m["u_expanded_db"],
             "last_pct": pct_p if conv == "power" else pct_f, "last_pct_field": pct_f, "last_pct_power": pct_p,
-            "coverage_24h": min(day / 86400.0, 1.0), "battery_pct": m["battery_pct"],
+            "coverage_24h": min(day / span_s, 1.0) if span_s > 0 else None, "coverage_24h_window_s": span_s,
+            "battery_pct": m["battery_pct"],
             "temperature_degc": m["temperature_degc"], "drift_ppm": m["drift_ppm"],
             "certificate": m["certificate"], "certificate_due": due, "certificate_days_left": days,
             "active_alarms": active})
