@@ -1,8 +1,9 @@
-"""The meter link: handshake, one reader thread, sequence and restart checks, reconnection.
+"""The meter link: handshake, one reader thread, reconnection; sequence and restart checks in intake.py.
 
 ``MeterLink`` owns a transport and a background thread that deframes, parses and checks every
-frame, then hands typed items (Connected, Reading, SpectrumReading, StatusReport, LinkEvent) to
-consumers through a queue. A frame with a bad CRC or a malformed payload is never delivered as
+frame (the frames-in logic is meterlink.device.intake.FrameIntake, which MeterLink takes in), then
+hands typed items (meterlink.device.items: Connected, Reading, ReadingBatch, SpectrumReading,
+StatusReport, LinkEvent) to consumers through a queue. A frame with a bad CRC or a malformed payload is never delivered as
 a reading; it becomes a LinkEvent. Device strings are untrusted data.
 """
 
@@ -11,118 +12,23 @@ from __future__ import annotations
 import queue
 import threading
 import time
-from dataclasses import dataclass, field
 from typing import Any, Callable
 
-import numpy as np
-
-from meterlink.device.clock import HALF_TICK, ClockMapping, DeviceClock
-from meterlink.errors import LinkError, ProtocolError
+from meterlink.device.clock import DeviceClock
+from meterlink.errors import LinkError
 from meterlink.safetext import clean_text
-from meterlink.device.protocol import (Ack, Axes, AxesBatch, Boot, Empty, Fault, FaultCode, Frame, FrameReader, FrameType, Ident,
-                                Junk, PROTOCOL_MAJOR, SetInterval, Spectrum, Status, encode_message,
-                                parse_payload, seq_delta)
+from meterlink.device.protocol import (Ack, AxesBatch, Empty, Fault, Frame, FrameReader, FrameType, Ident,
+                                Junk, PROTOCOL_MAJOR, SetInterval, Status, encode_message)
+from meterlink.device.intake import RESTART_SEQ_MAX, FrameIntake  # noqa: F401 (RESTART_SEQ_MAX re-exported)
+from meterlink.device.items import (  # noqa: F401 (re-exported: what the link delivers)
+    Connected, LinkEvent, LinkStats, Reading, ReadingBatch, SpectrumReading, StatusReport,
+)
 from meterlink.device.transport import Link, SerialLink
-
-RESTART_SEQ_MAX = 64  # seq this close to 0 with the tick going back = the device restarted
 
 
 def safe_text(s: str) -> str:
     """A device string made safe to print (control and bidi characters escaped): meterlink.safetext."""
     return clean_text(s)
-
-
-@dataclass(frozen=True)
-class Connected:
-    """A handshake completed: who the device is and how its clock maps to UTC."""
-
-    ident: Ident
-    status: Status | None
-    boot: int
-    interval_ms: int
-    mapping: ClockMapping
-    port: str
-
-
-@dataclass(frozen=True)
-class Reading:
-    """One three-axis reading, timed by the device clock (tick_ms unwrapped, t_utc epoch s)."""
-
-    boot: int
-    seq: int
-    tick_ms: int
-    t_utc: float
-    axes: Axes
-
-
-@dataclass(frozen=True)
-class ReadingBatch:
-    """Consecutive readings of one boot as arrays (a link started with ``batched=True``): each row is
-    what a Reading would carry; seq rises by one from row to row and no frame between them is missing."""
-
-    boot: int
-    seq: Any            # int64 (N,)
-    tick_ms: Any        # int64 (N,), unwrapped
-    t_utc: Any          # float (N,)
-    flags: Any          # int64 (N,)
-    range_index: Any    # int64 (N,)
-    raw: Any            # int64 (N, 3) [x, y, z]
-
-    def __len__(self) -> int:
-        return int(self.seq.size)
-
-
-@dataclass(frozen=True)
-class SpectrumReading:
-    boot: int
-    seq: int
-    tick_ms: int
-    t_utc: float
-    spectrum: Spectrum
-
-
-@dataclass(frozen=True)
-class StatusReport:
-    boot: int
-    seq: int
-    tick_ms: int
-    t_utc: float
-    status: Status
-
-
-@dataclass(frozen=True)
-class LinkEvent:
-    """Something the link noticed: kind (crc_error, seq_gap, ...), severity info|warning|error."""
-
-    kind: str
-    severity: str
-    message: str
-    t_utc: float
-    detail: dict = field(default_factory=dict)
-
-
-@dataclass
-class LinkStats:
-    frames: int = 0
-    readings: int = 0
-    spectra: int = 0
-    statuses: int = 0
-    crc_errors: int = 0
-    length_errors: int = 0
-    garbage_bytes: int = 0
-    gaps: int = 0
-    lost_frames: int = 0
-    duplicates: int = 0
-    restarts: int = 0
-    faults: int = 0
-    malformed: int = 0
-    port_losses: int = 0
-    reconnects: int = 0
-    handshakes: int = 0
-    unsynced: int = 0
-    queue_overflow: int = 0
-    backpressure_waits: int = 0      # times the reader waited for the consumer (queue full)
-    backpressure_s: float = 0.0      # host seconds spent waiting
 
 
 class _Restart(Exception):
@@ -133,7 +39,7 @@ class _Fatal(Exception):
     """Internal: the device cannot be used (wrong protocol major version)."""
 
 
-class MeterLink:
+class MeterLink(FrameIntake):
     """Acquire from one meter on a background thread; consumers call get()."""
 
     def __init__(self, port: str | None = None, interval_ms: int = 1000, *,
@@ -331,133 +237,6 @@ class MeterLink:
             self._restart_pending = False
             raise _Restart
         return handled
-
-    def _handle(self, frame: Frame, now: float):
-        """Check one frame's sequence and deliver it; returns the parsed message or None."""
-        self.stats.frames += 1
-        try:
-            msg = parse_payload(frame)
-        except ProtocolError as exc:
-            self.stats.malformed += 1
-            self._event("malformed", "warning", f"frame type 0x{frame.type:02x} seq {frame.seq}: {exc}",
-                        type=frame.type, seq=frame.seq)
-            self._track_seq(frame)
-            return None
-        if isinstance(msg, Boot) and self.ident is None:
-            self._event("device_boot", "info", f"device booted (boot count {msg.boot_count}, reset cause "
-                        f"{msg.reset_cause})", boot=msg.boot_count, reset_cause=msg.reset_cause)
-            self._boot = msg.boot_count
-            self._last_seq, self._last_tick = frame.seq, frame.tick_ms
-            return msg
-        if isinstance(msg, Boot):
-            self._on_restart(f"device sent BOOT (boot count {msg.boot_count}, reset cause {msg.reset_cause})",
-                             boot=msg.boot_count, reset_cause=msg.reset_cause)
-            self._boot = msg.boot_count
-            self._last_seq, self._last_tick = frame.seq, frame.tick_ms
-            return msg
-        if self._looks_restarted(frame):
-            self._on_restart(f"sequence fell back from {self._last_seq} to {frame.seq} and the device "
-                             "clock went back", seq=frame.seq, prev_seq=self._last_seq)
-            self._last_seq, self._last_tick = frame.seq, frame.tick_ms
-            if isinstance(msg, Ident):
-                self._boot = msg.boot_count
-            return msg
-        self._track_seq(frame)
-        if isinstance(msg, Fault):
-            self._on_fault(msg)
-        elif isinstance(msg, (Axes, Spectrum, Status)):
-            self._deliver_data(frame, msg, now)
-        return msg
-
-    def _looks_restarted(self, frame: Frame) -> bool:
-        if self._last_seq is None or self._last_tick is None:
-            return False
-        delta = seq_delta(self._last_seq, frame.seq)
-        back = (self._last_tick - frame.tick_ms) % (1 << 32)
-        return delta > HALF_TICK and frame.seq < RESTART_SEQ_MAX and 0 < back < HALF_TICK
-
-    def _track_seq(self, frame: Frame) -> None:
-        if self._last_seq is not None:
-            delta = seq_delta(self._last_seq, frame.seq)
-            if delta == 0:
-                self.stats.duplicates += 1
-                self._event("duplicate_frame", "warning", f"frame seq {frame.seq} repeated", seq=frame.seq)
-            elif 1 < delta <= HALF_TICK:
-                self.stats.gaps += 1
-                self.stats.lost_frames += delta - 1
-                self._event("seq_gap", "warning", f"{delta - 1} frame(s) lost between seq {self._last_seq} and "
-                            f"{frame.seq}", lost=delta - 1, prev_seq=self._last_seq, seq=frame.seq,
-                            boot=self._boot)
-            elif delta > HALF_TICK:
-                self._event("seq_backward", "warning", f"frame seq {frame.seq} arrived after {self._last_seq}",
-                            seq=frame.seq, prev_seq=self._last_seq)
-                return
-        self._last_seq, self._last_tick = frame.seq, frame.tick_ms
-
-    def _on_restart(self, message: str, **detail) -> None:
-        self._restart_pending = True
-        self.stats.restarts += 1
-        self.clock.restart()
-        self._event("device_restart", "warning", message, **detail)
-
-    def _on_fault(self, f: Fault) -> None:
-        self.stats.faults += 1
-        try:
-            name = FaultCode(f.code).name
-        except ValueError:
-            name = f"code {f.code}"
-        sev = "error" if f.code == FaultCode.SENSOR else "warning"
-        self._event("fault", sev, f"device FAULT {name} (command 0x{f.cmd_type:02x} seq {f.cmd_seq}): "
-                    f"{safe_text(f.text)}", code=f.code, name=name, cmd_type=f.cmd_type, cmd_seq=f.cmd_seq,
-                    text=f.text)
-
-    def _deliver_data(self, frame: Frame, msg, now: float) -> None:
-        if self.clock.mapping is None or self._boot is None:
-            self.stats.unsynced += 1
-            if self.stats.unsynced == 1:
-                self._event("unsynced", "warning", "data frame before the handshake ignored", seq=frame.seq)
-            return
-        tick = self.clock.unwrap(frame.tick_ms)
-        t_utc = self.clock.utc_of(tick)
-        if isinstance(msg, Axes):
-            self.stats.readings += 1
-            self.clock.observe(now, tick)
-            self._put(Reading(self._boot, frame.seq, tick, t_utc, msg))
-        elif isinstance(msg, Spectrum):
-            self.stats.spectra += 1
-            self.clock.observe(now, tick)
-            self._put(SpectrumReading(self._boot, frame.seq, tick, t_utc, msg))
-        else:
-            self.stats.statuses += 1
-            self._put(StatusReport(self._boot, frame.seq, tick, t_utc, msg))
-
-    def _deliver_batch(self, b: AxesBatch, now: float) -> bool:
-        """Deliver a run of AXES frames as one ReadingBatch when it needs no frame-by-frame attention:
-        the clock is mapped, seq follows the last frame by one each, the tick neither wraps nor
-        goes back. Returns False (nothing done) otherwise."""
-        if self.clock.mapping is None or self._boot is None or self._last_seq is None or self._last_tick is None:
-            return False
-        seq, tick = b.seq, b.tick_ms
-        if seq_delta(self._last_seq, int(seq[0])) != 1 or (seq.size > 1 and not bool(np.all(np.diff(seq) == 1))):
-            return False
-        steps = np.diff(tick, prepend=self._last_tick)
-        if not bool(np.all((steps >= 0) & (steps < HALF_TICK))):
-            return False
-        n = len(b)
-        self.stats.frames += n
-        self.stats.readings += n
-        first = self.clock.unwrap(int(tick[0]))
-        if n > 1:
-            self.clock.unwrap(int(tick[-1]))
-        ticks = tick - int(tick[0]) + first
-        self.clock.utc_of(int(ticks[-1]))        # the latest time given out (a later boot starts after it)
-        m = self.clock.mapping
-        t_utc = m.utc0_s + (ticks - m.tick0_ms) / 1000.0
-        for tk in ticks[-256:].tolist():         # the drift estimate keeps the last 256 pairs anyway
-            self.clock.observe(now, tk)
-        self._last_seq, self._last_tick = int(seq[-1]), int(tick[-1])
-        self._put(ReadingBatch(self._boot, seq, ticks, t_utc, b.flags, b.range_index, b.raw))
-        return True
 
     # -- commands ------------------------------------------------------------------------------
     def _send(self, ftype: int, msg) -> int:
