@@ -97,7 +97,7 @@ def net(tmp_path_factory):
                 stations[name] = {"uuid": su, "db": db, "e": _latest_e(db)}
             su, _ = _register(dsn, "Quarry road (not yet installed)")
             stations["Quarry road (not yet installed)"] = {"uuid": su}
-            yield {"url": svc.url, "stations": stations, "tmp": tmp}
+            yield {"url": svc.url, "stations": stations, "tmp": tmp, "dsn": dsn}
         finally:
             svc.stop()
 
@@ -225,3 +225,18 @@ def test_public_pages_show_levels_and_cautions_without_internal_detail(net, brow
     assert ans["latest"]["pct"] == pytest.approx(100 * (e_p * e_p / Z0) / S_REF_ICNIRP2020_100MHZ, rel=1e-9)
     code, ans = _json(net["url"] + "/api/v1/public/stations/Nowhere")
     assert code == 404 and ans["reason"] == "no station named 'Nowhere' is published here"
+
+
+@pytest.mark.parametrize("content, words", [(None, "cannot read"), ("short\n", "at least 16 characters")])
+def test_a_bad_operator_token_file_stops_the_service_in_one_line(net, tmp_path, content, words):
+    import subprocess
+    import sys
+
+    if content is not None:
+        (tmp_path / "op.token").write_text(content)
+    cfg = write_central_config(tmp_path / "central.toml", net["dsn"], free_port())
+    cfg.write_text(cfg.read_text() + 'operator_token_file = "op.token"\n')
+    p = subprocess.run([sys.executable, "-m", "meterlink", "central", "serve", "--config", str(cfg)],
+                       capture_output=True, text=True, timeout=60, cwd=ROOT)
+    assert p.returncode == 2 and words in p.stderr and "operator_token_file" in p.stderr
+    assert "Traceback" not in p.stderr and len(p.stderr.strip().splitlines()) == 1, p.stderr

@@ -13,6 +13,7 @@ cautions); plots are inline SVG drawn here; no asset is fetched from anywhere. d
 
 from __future__ import annotations
 
+import asyncio
 import base64
 import hashlib
 import hmac
@@ -26,6 +27,7 @@ from meterlink.network.central import CentralError
 
 log = logging.getLogger("meterlink.central")
 PERIODS = {"24h": 86400.0, "30d": 30 * 86400.0}
+CACHE_S = 5.0              # an overview page is rebuilt at most every 5 s (data arrive in 6-minute blocks)
 BUCKETS = 240              # a plot's time axis in 240 slices: one 6-minute block each over 24 h, 3 h over 30 days
 REALM = 'Basic realm="meterlink operator", charset="UTF-8"'
 
@@ -113,8 +115,28 @@ def add_routes(routes: list, pool, operator_sha256: bytes | None) -> None:
             return await run_in_threadpool(work)
         return endpoint
 
-    def operator(fn, as_json: bool):
-        inner = guarded(fn, as_json)
+    cache: dict[tuple, tuple[float, bytes, str]] = {}
+    locks: dict[tuple, asyncio.Lock] = {}
+
+    def cached(inner):
+        """An overview page built at most once per CACHE_S (for every client asking meanwhile): 500 stations
+        take milliseconds of the database and of Jinja, 20 clients asking at once would queue for them."""
+        async def endpoint(request):
+            key = (request.url.path, sort_of(request))
+            hit = cache.get(key)
+            if hit is None or hit[0] <= time.monotonic():
+                async with locks.setdefault(key, asyncio.Lock()):     # one builds, the others wait for it
+                    hit = cache.get(key)
+                    if hit is None or hit[0] <= time.monotonic():
+                        resp = await inner(request)
+                        if resp.status_code != 200:
+                            return resp
+                        hit = cache[key] = (time.monotonic() + CACHE_S, bytes(resp.body), resp.media_type)
+            return Response(hit[1], media_type=hit[2])
+        return endpoint
+
+    def operator(fn, as_json: bool, cache_it: bool = False):
+        inner = cached(guarded(fn, as_json)) if cache_it else guarded(fn, as_json)
 
         async def endpoint(request):
             if operator_sha256 is None:
@@ -250,15 +272,15 @@ def add_routes(routes: list, pool, operator_sha256: bytes | None) -> None:
 
     routes += [
         Route("/", home),
-        Route("/public", guarded(public_overview, False)),
+        Route("/public", cached(guarded(public_overview, False))),
         Route("/public/stations/{name:path}", guarded(public_page, False)),
         Route("/public/plot/{period}/{name:path}", guarded(public_plot, False)),
-        Route("/api/v1/public/stations", guarded(public_overview_json, True)),
+        Route("/api/v1/public/stations", cached(guarded(public_overview_json, True))),
         Route("/api/v1/public/stations/{name:path}", guarded(public_page_json, True)),
-        Route("/status", operator(status, False)),
+        Route("/status", operator(status, False, cache_it=True)),
         Route("/status/stations/{uuid}", operator(status_station, False)),
         Route("/status/plot/{period}/{uuid}", operator(status_plot, False)),
-        Route("/api/v1/status", operator(status_json, True)),
+        Route("/api/v1/status", operator(status_json, True, cache_it=True)),
         Route("/api/v1/status/stations/{uuid}", operator(status_station_json, True)),
     ]
 

@@ -138,10 +138,12 @@ def envelope(conn, su: str, meter: str, t0: float, t1: float, buckets: int = 240
     """(bucket start, min E, max E, blocks) of the 'total' blocks of one meter in [t0, t1), reduced in the
     database to at most ``buckets`` min/max pairs, so that a 30-day plot moves a few hundred rows, not 7200."""
     width = (t1 - t0) / buckets
-    cur = conn.execute(
-        "SELECT %s + width * k AS t, min(e_rms_v_per_m), max(e_rms_v_per_m), count(*) FROM "
-        "(SELECT floor((t_start_utc - %s) / %s) AS k, %s::float8 AS width, e_rms_v_per_m FROM blocks "
-        " WHERE station_uuid = %s AND meter = %s AND band = 'total' AND t_start_utc >= %s AND t_start_utc < %s "
-        " AND e_rms_v_per_m IS NOT NULL) q GROUP BY k, width ORDER BY k",
-        (t0, t0, width, width, su, meter, t0, t1))
+    cur = conn.execute(ENVELOPE, (t0, t0, width, width, su, meter, t0, t1))
     return [tuple(r) for r in cur.fetchall()]
+
+
+ENVELOPE = (
+    "SELECT %s + width * k AS t, min(e_rms_v_per_m), max(e_rms_v_per_m), count(*) FROM "
+    "(SELECT floor((t_start_utc - %s) / %s) AS k, %s::float8 AS width, e_rms_v_per_m FROM blocks "
+    " WHERE station_uuid = %s AND meter = %s AND band = 'total' AND t_start_utc >= %s AND t_start_utc < %s "
+    " AND e_rms_v_per_m IS NOT NULL) q GROUP BY k, width ORDER BY k")
