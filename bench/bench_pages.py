@@ -173,7 +173,7 @@ def main() -> int:
         print(f"  seeded {args.stations} stations, {stored:,} blocks with COPY in {time.perf_counter() - t0:.1f} s")
         for k, p in plans(dsn, uuids[1]).items():
             print(f"  plan of the {k} query (first lines):")
-            for line in p.splitlines()[:8]:
+            for line in p.splitlines()[:12]:
                 print("    " + line)
         with tempfile.TemporaryDirectory() as tmp:
             with socket.socket() as s:

@@ -12,6 +12,7 @@ import json
 import math
 import sqlite3
 import urllib.error
+import urllib.parse
 import urllib.request
 from pathlib import Path
 
@@ -95,8 +96,9 @@ def net(tmp_path_factory):
                 _station_file(db, name, conv, n, alarm)
                 _sync(db, svc.url, token, su)
                 stations[name] = {"uuid": su, "db": db, "e": _latest_e(db)}
-            su, _ = _register(dsn, "Quarry road (not yet installed)")
-            stations["Quarry road (not yet installed)"] = {"uuid": su}
+            for name in ("Quarry road (not yet installed)", "Mill lane <b>north</b> & annex"):
+                su, _ = _register(dsn, name)
+                stations[name] = {"uuid": su}
             yield {"url": svc.url, "stations": stations, "tmp": tmp, "dsn": dsn}
         finally:
             svc.stop()
@@ -145,9 +147,12 @@ def test_the_status_page_shows_every_station_worst_first_with_its_percentage(net
     assert resp.status == 200
     text = page.inner_text("body")
     assert SAFETY_LINE in text
-    names = [page.inner_text(f"table.net tbody tr:nth-child({i}) td:first-child") for i in (1, 2, 3)]
-    # worst first: the station with an active alarm, then the one never seen, then the one that is fine
-    assert names == ["Riverside school roof", "Quarry road (not yet installed)", "Hilltop mast east"], names
+    names = [page.inner_text(f"table.net tbody tr:nth-child({i}) td:first-child") for i in (1, 2, 3, 4)]
+    # worst first: the station with an active alarm, then those never seen, then the one that is fine; a
+    # name holding markup is shown as the characters it is made of, never as markup
+    assert names == ["Riverside school roof", "Mill lane <b>north</b> & annex", "Quarry road (not yet installed)",
+                     "Hilltop mast east"], names
+    assert page.locator("table.net b").count() == 0
     rows = {n: page.inner_text(f"table.net tbody tr:nth-child({i})") for i, n in enumerate(names, 1)}
     e_p, e_f = st["Hilltop mast east"]["e"], st["Riverside school roof"]["e"]
     pct_power = 100 * (e_p * e_p / Z0) / S_REF_ICNIRP2020_100MHZ
@@ -223,6 +228,9 @@ def test_public_pages_show_levels_and_cautions_without_internal_detail(net, brow
     code, ans = _json(net["url"] + "/api/v1/public/stations/Hilltop%20mast%20east")
     assert code == 200 and "station_uuid" not in ans["station"] and "events" not in ans
     assert ans["latest"]["pct"] == pytest.approx(100 * (e_p * e_p / Z0) / S_REF_ICNIRP2020_100MHZ, rel=1e-9)
+    code, ans = _json(net["url"] + "/api/v1/public/stations/" + urllib.parse.quote("Mill lane <b>north</b> & annex"))
+    assert code == 200 and ans["station"]["name"] == "Mill lane <b>north</b> & annex"
+    assert ans["latest"]["state"] == "awaiting first data" and ans["plots"] == []
     code, ans = _json(net["url"] + "/api/v1/public/stations/Nowhere")
     assert code == 404 and ans["reason"] == "no station named 'Nowhere' is published here"
 
