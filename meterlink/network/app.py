@@ -1,9 +1,9 @@
 """The ingest service: a Starlette (ASGI) app served by uvicorn (docs/network.md).
 
 Routes: ``GET /health``; ``POST /api/v1/batches`` (a station's batch, bearer token); ``GET /api/v1/stations``
-(every station with its newest 6-minute block, for the status pages to come). A refusal is a 4xx with a
-one-line ``reason``, logged, and nothing stored; a database that cannot be reached gives 503, so the
-station keeps its rows and tries again later.
+(every station with its newest 6-minute block); the status and public pages with their JSON API
+(meterlink.network.pages). A refusal is a 4xx with a one-line ``reason``, logged, and nothing stored; a
+database that cannot be reached gives 503, so the station keeps its rows and tries again later.
 """
 
 from __future__ import annotations
@@ -28,6 +28,9 @@ def create_app(cfg: CentralConfig):
     from starlette.responses import JSONResponse
     from starlette.routing import Route
 
+    from meterlink.network.pages import add_routes, read_operator_token
+
+    operator_sha256 = read_operator_token(cfg.operator_token_file)     # a bad file stops the start, in one line
     pool = Pool(cfg.dsn, cfg.pool)
     ingests: list[Ingest] = []
 
@@ -102,8 +105,10 @@ def create_app(cfg: CentralConfig):
         yield
         pool.close()
 
-    app = Starlette(routes=[Route("/health", health), Route("/api/v1/batches", batches, methods=["POST"]),
-                            Route("/api/v1/stations", stations)], lifespan=lifespan)
+    routes = [Route("/health", health), Route("/api/v1/batches", batches, methods=["POST"]),
+              Route("/api/v1/stations", stations)]
+    add_routes(routes, pool, operator_sha256)      # status pages (operator login) and public pages
+    app = Starlette(routes=routes, lifespan=lifespan)
     app.state.pool = pool
     return app
 

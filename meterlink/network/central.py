@@ -31,6 +31,7 @@ class CentralConfig:
     port: int = 8600
     max_body_bytes: int = 16 * 1024 * 1024
     pool: int = 4
+    operator_token_file: str | None = None      # the operator's token for the status pages (None: no status pages)
 
 
 def parse_config(text: str, src: str = "<central>") -> CentralConfig:
@@ -50,7 +51,7 @@ def parse_config(text: str, src: str = "<central>") -> CentralConfig:
         raise CentralError(f"{src}: database: unknown key {sorted(set(db) - {'dsn'})[0]!r}")
     if not isinstance(sv, dict):
         raise CentralError(f"{src}: service: expected a table")
-    known = {"host": str, "port": int, "max_body_bytes": int, "pool": int}
+    known = {"host": str, "port": int, "max_body_bytes": int, "pool": int, "operator_token_file": str}
     for k, v in sv.items():
         if k not in known:
             raise CentralError(f"{src}: service: unknown key {k!r}")
@@ -63,7 +64,11 @@ def parse_config(text: str, src: str = "<central>") -> CentralConfig:
         raise CentralError(f"{src}: service.pool: expected 1..64 connections, got {pool}")
     if not 1024 <= mb <= 1 << 30:
         raise CentralError(f"{src}: service.max_body_bytes: expected 1024..1073741824, got {mb}")
-    return CentralConfig(dsn=db["dsn"], host=sv.get("host", "127.0.0.1"), port=port, max_body_bytes=mb, pool=pool)
+    otf = sv.get("operator_token_file")
+    if otf is not None and not Path(otf).is_absolute() and src != "<central>":
+        otf = str(Path(src).parent / otf)            # relative to the configuration file
+    return CentralConfig(dsn=db["dsn"], host=sv.get("host", "127.0.0.1"), port=port, max_body_bytes=mb, pool=pool,
+                         operator_token_file=otf)
 
 
 def load_config(path) -> CentralConfig:
