@@ -1,0 +1,179 @@
+"""Fused one-pass running average at the sample times, in cache-sized chunks (pure).
+
+The same sampling model and results as the general path in :mod:`meterlink.physics.averaging`
+(held samples, holds capped at ``hold``, gaps never filled, coverage, partial windows), computed
+for windows (t_k - window_s, t_k] ending at every sample in one forward pass: each chunk of
+``chunk_blocks`` blocks checks its samples, forms p*dt, its block cumulative sums and the
+compensated block offsets, and writes its windows' mean, coverage and flags while the chunk is
+still in cache. On a regular stretch the window start is a constant index offset (checked
+exactly, no search); elsewhere it is searched. Anything it does not handle (invalid input, a
+window spanning more than ``span_max`` samples) makes it return None: the caller then takes the
+general path, which also gives the error messages.
+
+Precision: within a block the cumulative sum restarts (as in the general path); block offsets
+are a compensated (two-float) sum, taken relative to the first block of the chunk's span, so a
+window's error is a few ulps of max(p) times (span duration / window), whatever the record length.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def _neumaier(tot, hi, lo, b0: int, s_hi: float, s_lo: float):
+    """Extend the compensated prefix sums hi/lo (entry b = sum of blocks before b) from block b0."""
+    for k, v in enumerate(tot.tolist()):
+        u = s_hi + v
+        s_lo += (s_hi - u) + v if abs(s_hi) >= abs(v) else (v - u) + s_hi
+        s_hi = u
+        hi[b0 + k + 1], lo[b0 + k + 1] = s_hi, s_lo
+    return s_hi, s_lo
+
+
+def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float, hold: float,
+                       last_hold: float, cover_tol: float, block: int, chunk_blocks: int,
+                       span_max: int):
+    """(mean, coverage, complete, partial) of the windows ending at each sample, or None.
+
+    mean is the RMS (square) or the linear mean, NaN where nothing is covered."""
+    n, B = t.size, block
+    if n < 2 or not np.isfinite(t[0]):
+        return None
+    t0 = float(t[0])
+    t_end = float(t[-1]) + last_hold
+    cover_eps = 16.0 * np.finfo(np.float64).eps * (t_end - t0 + abs(t0))
+    thr = min_coverage - cover_tol
+    mean = np.empty(n)
+    cov = np.empty(n)
+    complete = np.empty(n, dtype=bool)
+    partial = np.empty(n, dtype=bool)
+    nblk = -(-n // B)
+    off_hi = np.zeros(nblk + 1)
+    off_lo = np.zeros(nblk + 1)
+    s_hi = s_lo = 0.0
+    done = 0                                     # blocks whose offsets are known
+    C = chunk_blocks * B
+    for k0 in range(0, n, C):
+        k1 = min(k0 + C, n)
+        q0 = t[k0:k1] - window_s
+        # Searches look only at samples already checked (t[k0] is checked below; a NaN there
+        # gives k0 - 1 here, and the check then refuses the chunk).
+        i_first = int(np.searchsorted(t[:k0], q0[0], side="right")) - 1
+        s0 = (max(i_first, 0) // B) * B
+        e0 = min(((k1 - 1) // B + 1) * B, n)
+        L = e0 - s0
+        if L > span_max:
+            return None
+        nb = -(-L // B)
+        bs = s0 // B
+        # Hold durations d = min(dt, hold) (the last sample: last_hold); checks on the way.
+        m1 = L if e0 < n else L - 1
+        d = np.empty(L)
+        np.subtract(t[s0 + 1:s0 + 1 + m1], t[s0:s0 + m1], out=d[:m1])
+        if m1 < L:
+            d[-1] = last_hold
+        dmin = float(d.min())
+        dmax = float(d.max())
+        if not (dmin >= 0.0 and dmax < np.inf):
+            return None                          # non-finite or decreasing times
+        gaps = dmax > hold
+        if gaps:
+            gx = np.zeros(L + 1)                 # gx[j]: gap seconds before span index j
+            ex = d - hold
+            np.maximum(ex, 0.0, out=ex)
+            np.cumsum(ex, out=gx[1:])
+            np.minimum(d, hold, out=d)
+        p = np.empty(L)
+        if square:
+            np.multiply(x[s0:e0], x[s0:e0], out=p)
+        else:
+            p[:] = x[s0:e0]
+            if not float(p.min()) >= 0.0:
+                return None
+        w = np.zeros(nb * B)
+        np.multiply(p, d, out=w[:L])
+        w2 = w.reshape(nb, B)
+        loc = np.empty((nb, B))
+        loc[:, 0] = 0.0
+        np.cumsum(w2[:, :-1], axis=1, out=loc[:, 1:])
+        tot = loc[:, -1] + w2[:, -1]
+        if not np.all(np.isfinite(tot)):
+            return None                          # a NaN or infinite value (or an overflow)
+        if done < bs + nb:
+            s_hi, s_lo = _neumaier(tot[done - bs:], off_hi, off_lo, done, s_hi, s_lo)
+            done = bs + nb
+        # Offsets relative to the span's first block (compensated), added to each block's row.
+        rel = (off_hi[bs:bs + nb] - off_hi[bs]) + (off_lo[bs:bs + nb] - off_lo[bs])
+        loc += rel[:, None]
+        G = loc.ravel()                          # G[j] = integral of p from t[s0] to t[s0 + j]
+        del w, w2, loc
+        j1 = slice(k0 - s0, k1 - s0)
+        mv, cv = mean[k0:k1], cov[k0:k1]
+        energy = np.empty(k1 - k0)
+        covered = np.empty(k1 - k0)
+        # Windows starting before the first sample (record start): nothing to subtract.
+        nbef = int(np.searchsorted(q0, t0, side="left"))
+        if nbef:
+            energy[:nbef] = G[k0 - s0:k0 - s0 + nbef]    # s0 == 0 here
+            np.subtract(t[k0:k0 + nbef], t0, out=covered[:nbef])
+            if gaps:
+                covered[:nbef] -= gx[k0:k0 + nbef]
+        ka = k0 + nbef
+        if ka < k1:
+            c = k1 - ka
+            qa = q0[nbef:]
+            ia = int(np.searchsorted(t[:ka], qa[0], side="right")) - 1
+            ja = slice(ia - s0, ia - s0 + c)
+            part = qa - t[ia:ia + c]
+            pmin = float(part.min())
+            pmax = float(part.max())
+            regular = pmin >= 0.0 and (
+                (pmax == 0.0 and dmin > 0.0) or float(np.max(qa - t[ia + 1:ia + 1 + c])) < 0.0)
+            jb = slice(nbef, c + nbef)
+            if regular:
+                # Start index ia + j for the j-th window: slices, no search.
+                np.subtract(G[j1][nbef:], G[ja], out=energy[jb])
+                np.subtract(t[ka:k1], t[ia:ia + c], out=covered[jb])
+                if pmax > 0.0:
+                    if gaps:
+                        np.minimum(part, d[ja], out=part)
+                    covered[jb] -= part
+                    part *= p[ja]
+                    energy[jb] -= part
+                if gaps:
+                    covered[jb] -= gx[ka - s0:k1 - s0]
+                    covered[jb] += gx[ja]
+            else:
+                i0 = np.searchsorted(t[ia:k1], qa, side="right")
+                i0 += ia - 1 - s0                # span index of each window's start sample
+                np.subtract(qa, t[i0 + s0], out=part)
+                np.clip(part, 0.0, d[i0], out=part)
+                np.subtract(t[ka:k1], t[i0 + s0], out=covered[jb])
+                covered[jb] -= part
+                part *= p[i0]
+                np.subtract(G[j1][nbef:], G[i0], out=energy[jb])
+                energy[jb] -= part
+                if gaps:
+                    covered[jb] -= gx[ka - s0:k1 - s0]
+                    covered[jb] += gx[i0]
+        np.maximum(energy, 0.0, out=energy)
+        if float(covered.min()) <= cover_eps:
+            covered[covered <= cover_eps] = 0.0
+            with np.errstate(invalid="ignore", divide="ignore"):
+                np.divide(energy, covered, out=mv)
+            mv[covered == 0.0] = np.nan
+        else:
+            np.divide(energy, covered, out=mv)
+        if square:
+            np.sqrt(mv, out=mv)
+        np.divide(covered, window_s, out=cv)
+        np.minimum(cv, 1.0, out=cv)
+        pv = partial[k0:k1]
+        if q0[0] < t0 - cover_eps:
+            np.less(q0, t0 - cover_eps, out=pv)
+            np.greater_equal(cv, thr, out=complete[k0:k1])
+            complete[k0:k1] &= ~pv
+        else:
+            pv[:] = False
+            np.greater_equal(cv, thr, out=complete[k0:k1])
+    return mean, cov, complete, partial
