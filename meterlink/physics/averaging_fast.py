@@ -90,7 +90,8 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
             p[:] = x[s0:e0]
             if not float(p.min()) >= 0.0:
                 return None
-        w = np.zeros(nb * B)
+        w = np.empty(nb * B)
+        w[L:] = 0.0
         np.multiply(p, d, out=w[:L])
         w2 = w.reshape(nb, B)
         loc = np.empty((nb, B))
@@ -124,11 +125,13 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
             qa = q0[nbef:]
             ia = int(np.searchsorted(t[:ka], qa[0], side="right")) - 1
             ja = slice(ia - s0, ia - s0 + c)
-            part = qa - t[ia:ia + c]
-            pmin = float(part.min())
-            pmax = float(part.max())
-            regular = pmin >= 0.0 and (
-                (pmax == 0.0 and dmin > 0.0) or float(np.max(qa - t[ia + 1:ia + 1 + c])) < 0.0)
+            # Constant offset: t[ia + j] <= qa[j] < t[ia + j + 1] for every j (exactly checked).
+            if dmin > 0.0 and np.array_equal(qa, t[ia:ia + c]):
+                part, pmax, regular = None, 0.0, True     # starts exactly at samples
+            else:
+                part = qa - t[ia:ia + c]
+                pmax = float(part.max())
+                regular = float(part.min()) >= 0.0 and float(np.max(qa - t[ia + 1:ia + 1 + c])) < 0.0
             jb = slice(nbef, c + nbef)
             if regular:
                 # Start index ia + j for the j-th window: slices, no search.
@@ -156,7 +159,8 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
                 if gaps:
                     covered[jb] -= gx[ka - s0:k1 - s0]
                     covered[jb] += gx[i0]
-        np.maximum(energy, 0.0, out=energy)
+        if float(energy.min()) < 0.0:          # rounding of a difference (clamps cost a pass)
+            np.maximum(energy, 0.0, out=energy)
         if float(covered.min()) <= cover_eps:
             covered[covered <= cover_eps] = 0.0
             with np.errstate(invalid="ignore", divide="ignore"):
@@ -167,7 +171,8 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
         if square:
             np.sqrt(mv, out=mv)
         np.divide(covered, window_s, out=cv)
-        np.minimum(cv, 1.0, out=cv)
+        if float(cv.max()) > 1.0:
+            np.minimum(cv, 1.0, out=cv)
         pv = partial[k0:k1]
         if q0[0] < t0 - cover_eps:
             np.less(q0, t0 - cover_eps, out=pv)
