@@ -30,6 +30,24 @@ def _neumaier(tot, hi, lo, b0: int, s_hi: float, s_lo: float):
     return s_hi, s_lo
 
 
+def _near_offset(t, q, ia: int):
+    """Start samples of windows starting at sorted q when each lies at most one sample off the
+    constant offset ia + j (jittered sample times); None otherwise (then a search is needed)."""
+    c = q.size
+    if ia + 2 + c > t.size:
+        return None
+    up = t[ia + 1:ia + 1 + c] <= q              # one sample later
+    if np.any(up & (t[ia + 2:ia + 2 + c] <= q)):
+        return None
+    dn = t[ia:ia + c] > q                       # one sample earlier (never for j = 0)
+    if np.any(dn[1:] & (t[ia:ia + c - 1] > q[1:])):
+        return None
+    i = np.arange(ia, ia + c)
+    i += up
+    i -= dn
+    return i
+
+
 def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float, hold: float,
                        last_hold: float, cover_tol: float, block: int, chunk_blocks: int,
                        span_max: int):
@@ -147,11 +165,15 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
                     covered[jb] -= gx[ka - s0:k1 - s0]
                     covered[jb] += gx[ja]
             else:
-                i0 = np.searchsorted(t[ia:k1], qa, side="right")
-                i0 += ia - 1 - s0                # span index of each window's start sample
-                np.subtract(qa, t[i0 + s0], out=part)
+                i0 = _near_offset(t, qa, ia)
+                if i0 is None:
+                    i0 = np.searchsorted(t[ia:k1], qa, side="right")
+                    i0 += ia - 1
+                ti = t[i0]
+                i0 -= s0                         # span index of each window's start sample
+                np.subtract(qa, ti, out=part)
                 np.clip(part, 0.0, d[i0], out=part)
-                np.subtract(t[ka:k1], t[i0 + s0], out=covered[jb])
+                np.subtract(t[ka:k1], ti, out=covered[jb])
                 covered[jb] -= part
                 part *= p[i0]
                 np.subtract(G[j1][nbef:], G[i0], out=energy[jb])
