@@ -21,6 +21,11 @@ the block offsets are carried as a compensated (two-float) sum, so a window far 
 record loses no digits to the size of the running total. What remains is the rounding of a
 cumulative sum inside one block: the absolute error of a window's mean of p is a few float64
 ulps of max(p) times (block duration / window), negligible unless p spans ~14 decades.
+
+Running averages ending at the sample times (``at_s`` not given, the common case) take a fused
+path (:mod:`meterlink.physics.averaging_fast`): one forward pass in cache-sized chunks that does
+the checks, the integrals and the window values together, with the same results within rounding
+(a property test compares the two); whatever it does not handle is done by the general path.
 """
 
 from __future__ import annotations

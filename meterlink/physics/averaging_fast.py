@@ -30,21 +30,23 @@ def _neumaier(tot, hi, lo, b0: int, s_hi: float, s_lo: float):
     return s_hi, s_lo
 
 
-def _near_offset(t, q, ia: int):
-    """Start samples of windows starting at sorted q when each lies at most one sample off the
-    constant offset ia + j (jittered sample times); None otherwise (then a search is needed)."""
+def _start_samples(t, q, ia: int, k1: int):
+    """Index of the last sample at or before each sorted q (all in t[ia:k1]): the constant offset
+    ia + j corrected by one sample where exact comparisons allow (jittered sample times), a binary
+    search only for the windows where that does not hold (after a gap, or at a change of rate)."""
     c = q.size
     if ia + 2 + c > t.size:
-        return None
+        return np.searchsorted(t[ia:k1], q, side="right") + (ia - 1)
     up = t[ia + 1:ia + 1 + c] <= q              # one sample later
-    if np.any(up & (t[ia + 2:ia + 2 + c] <= q)):
-        return None
     dn = t[ia:ia + c] > q                       # one sample earlier (never for j = 0)
-    if np.any(dn[1:] & (t[ia:ia + c - 1] > q[1:])):
-        return None
+    bad = up & (t[ia + 2:ia + 2 + c] <= q)      # more than one sample later
+    bad[1:] |= dn[1:] & (t[ia:ia + c - 1] > q[1:])
     i = np.arange(ia, ia + c)
     i += up
     i -= dn
+    if bad.any():
+        j = np.flatnonzero(bad)
+        i[j] = np.searchsorted(t[ia:k1], q[j], side="right") + (ia - 1)
     return i
 
 
@@ -165,14 +167,12 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
                     covered[jb] -= gx[ka - s0:k1 - s0]
                     covered[jb] += gx[ja]
             else:
-                i0 = _near_offset(t, qa, ia)
-                if i0 is None:
-                    i0 = np.searchsorted(t[ia:k1], qa, side="right")
-                    i0 += ia - 1
+                i0 = _start_samples(t, qa, ia, k1)
                 ti = t[i0]
                 i0 -= s0                         # span index of each window's start sample
-                np.subtract(qa, ti, out=part)
-                np.clip(part, 0.0, d[i0], out=part)
+                np.subtract(qa, ti, out=part)    # >= 0, and below t[i0 + 1] - ti
+                if gaps:
+                    np.minimum(part, d[i0], out=part)
                 np.subtract(t[ka:k1], ti, out=covered[jb])
                 covered[jb] -= part
                 part *= p[i0]
