@@ -353,3 +353,26 @@ def test_fused_path_reports_bad_samples_like_the_general_path():
     t3[170_000] = np.nan
     with pytest.raises(MeterlinkError, match="sample times must be finite"):
         running_average(t3, np.ones(t.size), 60.0, max_hold_s=2.0)
+
+
+def test_fused_path_gap_in_a_long_record_by_hand():
+    # 1 Hz from 1.7e9 s, E = 2 V/m, then a jump of 101 s after sample 149999 and E = 5 V/m. The
+    # median interval is 1 s, so the default hold is 3 s: sample 149999 holds [149999, 150002] and
+    # 98 s are a gap. Worked by hand (offsets from 1.7e9), 360-s windows:
+    # ending 150100: (149740, 150100] covers 149740..150002 = 262 s of 2 V/m -> 2 V/m, 262/360;
+    # ending 150300: 62 s of 2 V/m and 200 s of 5 V/m -> sqrt((62*4 + 200*25)/262), 262/360;
+    # ending 150500: (150140, 150500] all 5 V/m -> 5 V/m, coverage 1.
+    t = np.arange(200_000.0)
+    t[150_000:] += 100.0
+    t += 1.7e9
+    e = np.where(np.arange(t.size) < 150_000, 2.0, 5.0)
+    r = running_average(t, e, 360.0)
+    k = np.searchsorted(t, 1.7e9 + np.array([150_100.0, 150_300.0, 150_500.0]))
+    np.testing.assert_allclose(r.e_rms_v_per_m[k], [2.0, math.sqrt(5248.0 / 262.0), 5.0], rtol=1e-12)
+    np.testing.assert_allclose(r.coverage[k], [262 / 360, 262 / 360, 1.0], rtol=0, atol=1e-9)
+    assert list(r.complete[k]) == [False, False, True]
+    assert not r.partial[k].any() and r.partial[:359].all() and not r.partial[360:].any()
+    # A window wholly in the gap has nothing covered: no value, coverage 0.
+    q = running_average(t, e, 50.0)
+    j = int(np.searchsorted(t, 1.7e9 + 150_100.0))
+    assert q.coverage[j] == 0.0 and math.isnan(q.e_rms_v_per_m[j])
