@@ -30,6 +30,19 @@ def _neumaier(tot, hi, lo, b0: int, s_hi: float, s_lo: float):
     return s_hi, s_lo
 
 
+class _Work:
+    """Work arrays reused from chunk to chunk (same memory, so it stays in cache; no allocation)."""
+
+    def __init__(self):
+        self.arrays: dict = {}
+
+    def __call__(self, name: str, size: int, dtype=np.float64) -> np.ndarray:
+        a = self.arrays.get(name)
+        if a is None or a.size < size:
+            a = self.arrays[name] = np.empty(size, dtype=dtype)
+        return a[:size]
+
+
 def _start_samples(t, q, ia: int, k1: int):
     """Index of the last sample at or before each sorted q (all in t[ia:k1]): the constant offset
     ia + j corrected by one sample where exact comparisons allow (jittered sample times), a binary
@@ -73,9 +86,10 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
     s_hi = s_lo = 0.0
     done = 0                                     # blocks whose offsets are known
     C = chunk_blocks * B
+    work = _Work()
     for k0 in range(0, n, C):
         k1 = min(k0 + C, n)
-        q0 = t[k0:k1] - window_s
+        q0 = np.subtract(t[k0:k1], window_s, out=work("q0", k1 - k0))
         # Searches look only at samples already checked (t[k0] is checked below; a NaN there
         # gives k0 - 1 here, and the check then refuses the chunk).
         i_first = int(np.searchsorted(t[:k0], q0[0], side="right")) - 1
@@ -88,7 +102,7 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
         bs = s0 // B
         # Hold durations d = min(dt, hold) (the last sample: last_hold); checks on the way.
         m1 = L if e0 < n else L - 1
-        d = np.empty(L)
+        d = work("d", L)
         np.subtract(t[s0 + 1:s0 + 1 + m1], t[s0:s0 + m1], out=d[:m1])
         if m1 < L:
             d[-1] = last_hold
@@ -103,18 +117,18 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
             np.maximum(ex, 0.0, out=ex)
             np.cumsum(ex, out=gx[1:])
             np.minimum(d, hold, out=d)
-        p = np.empty(L)
+        p = work("p", L)
         if square:
             np.multiply(x[s0:e0], x[s0:e0], out=p)
         else:
             p[:] = x[s0:e0]
             if not float(p.min()) >= 0.0:
                 return None
-        w = np.empty(nb * B)
+        w = work("w", nb * B)
         w[L:] = 0.0
         np.multiply(p, d, out=w[:L])
         w2 = w.reshape(nb, B)
-        loc = np.empty((nb, B))
+        loc = work("loc", nb * B).reshape(nb, B)
         loc[:, 0] = 0.0
         np.cumsum(w2[:, :-1], axis=1, out=loc[:, 1:])
         tot = loc[:, -1] + w2[:, -1]
@@ -130,8 +144,9 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
         del w, w2, loc
         j1 = slice(k0 - s0, k1 - s0)
         mv, cv = mean[k0:k1], cov[k0:k1]
-        energy = np.empty(k1 - k0)
-        covered = np.empty(k1 - k0)
+        energy = work("energy", k1 - k0)
+        covered = work("covered", k1 - k0)
+        tmp = work("tmp", k1 - k0)
         # Windows starting before the first sample (record start): nothing to subtract.
         nbef = int(np.searchsorted(q0, t0, side="left"))
         if nbef:
@@ -149,9 +164,10 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
             if dmin > 0.0 and np.array_equal(qa, t[ia:ia + c]):
                 part, pmax, regular = None, 0.0, True     # starts exactly at samples
             else:
-                part = qa - t[ia:ia + c]
+                part = np.subtract(qa, t[ia:ia + c], out=work("part", c))
                 pmax = float(part.max())
-                regular = float(part.min()) >= 0.0 and float(np.max(qa - t[ia + 1:ia + 1 + c])) < 0.0
+                regular = (float(part.min()) >= 0.0
+                           and float(np.subtract(qa, t[ia + 1:ia + 1 + c], out=tmp[:c]).max()) < 0.0)
             jb = slice(nbef, c + nbef)
             if regular:
                 # Start index ia + j for the j-th window: slices, no search.
@@ -168,15 +184,16 @@ def running_at_samples(t, x, square: bool, window_s: float, min_coverage: float,
                     covered[jb] += gx[ja]
             else:
                 i0 = _start_samples(t, qa, ia, k1)
-                ti = t[i0]
+                ti = np.take(t, i0, out=work("ti", c))
                 i0 -= s0                         # span index of each window's start sample
                 np.subtract(qa, ti, out=part)    # >= 0, and below t[i0 + 1] - ti
+                g = tmp[:c]
                 if gaps:
-                    np.minimum(part, d[i0], out=part)
+                    np.minimum(part, np.take(d, i0, out=g), out=part)
                 np.subtract(t[ka:k1], ti, out=covered[jb])
                 covered[jb] -= part
-                part *= p[i0]
-                np.subtract(G[j1][nbef:], G[i0], out=energy[jb])
+                part *= np.take(p, i0, out=g)
+                np.subtract(G[j1][nbef:], np.take(G, i0, out=g), out=energy[jb])
                 energy[jb] -= part
                 if gaps:
                     covered[jb] -= gx[ka - s0:k1 - s0]
