@@ -59,9 +59,14 @@ def _median_interval(t: np.ndarray) -> float:
     if n < 2:
         return 0.0
     if n - 1 <= _MEDIAN_SAMPLES:
-        return float(np.median(np.diff(t)))
-    idx = np.linspace(0, n - 2, _MEDIAN_SAMPLES).astype(np.int64)
-    return float(np.median(t[idx + 1] - t[idx]))
+        d = np.diff(t)
+    else:
+        idx = np.linspace(0, n - 2, _MEDIAN_SAMPLES).astype(np.int64)
+        d = t[idx + 1] - t[idx]
+    lo, hi = float(d.min()), float(d.max())
+    if lo == hi:                     # evenly spaced: the median without sorting (NaN fails this test)
+        return lo
+    return float(np.median(d))
 
 
 class _Held:
