@@ -6,7 +6,8 @@ for windows (t_k - window_s, t_k] ending at every sample in one forward pass: ea
 ``chunk_blocks`` blocks checks its samples, forms p*dt, its block cumulative sums and the
 compensated block offsets, and writes its windows' mean, coverage and flags while the chunk is
 still in cache. On a regular stretch the window start is a constant index offset (checked
-exactly, no search); elsewhere it is searched. Anything it does not handle (invalid input, a
+exactly, no search); with jittered times it is that offset or one sample before (checked exactly,
+no search); after a gap, only the windows off by more are searched. Anything it does not handle (invalid input, a
 window spanning more than ``span_max`` samples) makes it return None: the caller then takes the
 general path, which also gives the error messages.
 
