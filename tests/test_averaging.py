@@ -274,3 +274,105 @@ def test_windows_reaching_outside_the_record_are_partial_never_complete():
     assert list(b.partial) == [True, False]
     assert list(b.complete) == [False, True]
     assert b.coverage[0] == pytest.approx(340 / 360)
+
+
+def _general(fn, *args, **kw):
+    """The same call with the fused path switched off (the general path)."""
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(averaging, "_FAST", False)
+        return fn(*args, **kw)
+
+
+_fast_records = st.lists(st.tuples(st.integers(1, 30), st.floats(0.25, 4.0), st.floats(0.0, 40.0),
+                                   st.sampled_from(["even", "jitter", "repeat"])), min_size=1, max_size=8)
+
+
+@settings(max_examples=150, deadline=None)
+@given(_fast_records, st.floats(0.5, 120.0), st.sampled_from([None, 0.7, 6.0]),
+       st.sampled_from([(2, 1), (4, 2), (8, 3), (4096, 16)]), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
+def test_property_fused_path_equals_general_path(stretches, window, hold, sizes, min_cov, seed):
+    # Records with gaps, explicit and default holds, even, jittered and repeated sample times, and
+    # tiny blocks and chunks so that windows cross chunks, starts fall before the record over
+    # several chunks and both the constant-offset and the searched starts are taken.
+    rng = np.random.default_rng(seed)
+    steps = []
+    for count, dt, gap, kind in stretches:
+        s = np.full(count, dt)
+        if kind == "jitter":
+            s = s * rng.uniform(0.5, 1.5, count)
+        elif kind == "repeat":
+            s[rng.random(count) < 0.3] = 0.0
+        s[0] += gap
+        steps.append(s)
+    t = 1.7e9 + np.concatenate(([0.0], np.cumsum(np.concatenate(steps))))
+    e = rng.uniform(0.0, 30.0, t.size)
+    e[rng.random(t.size) < 0.1] = 0.0
+    block, chunk_blocks = sizes
+    if hold is None and not np.median(np.diff(t)) > 0:
+        hold = 1.0                       # no default hold without a positive median interval
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(averaging, "_BLOCK", block)
+        mp.setattr(averaging, "_FAST_CHUNK_BLOCKS", chunk_blocks)
+        fast = running_average(t, e, window, max_hold_s=hold, min_coverage=min_cov)
+        fast_s = running_average_s(t, e * e, window, max_hold_s=hold, min_coverage=min_cov)
+        slow = _general(running_average, t, e, window, max_hold_s=hold, min_coverage=min_cov)
+        # The fused path did run (it returns None where it would hand over to the general path).
+        med = float(np.median(np.diff(t)))
+        h = 3.0 * med if hold is None else hold
+        assert averaging.averaging_fast.running_at_samples(
+            t, e, True, window, min_cov, h, min(med, h) if med > 0 else h, averaging._COVER_TOL,
+            block, chunk_blocks, averaging._SPAN) is not None
+    # Rounding bound of a cumulative integral (float64 eps from numpy finfo), as in the properties above.
+    tol = 64 * np.finfo(float).eps * max(e.max() ** 2, 1e-300) * (t[-1] - t[0] + 1.0) / window
+    np.testing.assert_allclose(fast.coverage, slow.coverage, rtol=0, atol=1e-9)
+    assert np.array_equal(np.isnan(fast.e_rms_v_per_m), np.isnan(slow.e_rms_v_per_m))
+    ok = ~np.isnan(slow.e_rms_v_per_m)
+    np.testing.assert_allclose(fast.e_rms_v_per_m[ok] ** 2, slow.e_rms_v_per_m[ok] ** 2, rtol=1e-9, atol=tol)
+    np.testing.assert_allclose(fast_s.s_w_per_m2[ok], slow.e_rms_v_per_m[ok] ** 2, rtol=1e-9, atol=tol)
+    assert np.array_equal(fast.partial, slow.partial)
+    assert np.array_equal(fast.complete, slow.complete)
+    assert np.array_equal(fast.t_end_s, t)
+
+
+def test_fused_path_reports_bad_samples_like_the_general_path():
+    # Bad input far into a long record (past the first chunks): the same one-line errors.
+    t = np.arange(200_000.0)
+    e = np.ones(t.size)
+    e[150_001] = np.inf
+    with pytest.raises(MeterlinkError, match="sample 150001 is not a finite"):
+        running_average(t, e, 60.0)
+    t2 = t.copy()
+    t2[123_456] = 10.0
+    with pytest.raises(MeterlinkError, match="must not decrease \\(sample 123456\\)"):
+        running_average(t2, np.ones(t.size), 60.0)
+    s = np.ones(t.size)
+    s[99_999] = -1.0
+    with pytest.raises(MeterlinkError, match="sample 99999 is not a finite, non-negative"):
+        running_average_s(t, s, 60.0)
+    t3 = t.copy()
+    t3[170_000] = np.nan
+    with pytest.raises(MeterlinkError, match="sample times must be finite"):
+        running_average(t3, np.ones(t.size), 60.0, max_hold_s=2.0)
+
+
+def test_fused_path_gap_in_a_long_record_by_hand():
+    # 1 Hz from 1.7e9 s, E = 2 V/m, then a jump of 101 s after sample 149999 and E = 5 V/m. The
+    # median interval is 1 s, so the default hold is 3 s: sample 149999 holds [149999, 150002] and
+    # 98 s are a gap. Worked by hand (offsets from 1.7e9), 360-s windows:
+    # ending 150100: (149740, 150100] covers 149740..150002 = 262 s of 2 V/m -> 2 V/m, 262/360;
+    # ending 150300: 62 s of 2 V/m and 200 s of 5 V/m -> sqrt((62*4 + 200*25)/262), 262/360;
+    # ending 150500: (150140, 150500] all 5 V/m -> 5 V/m, coverage 1.
+    t = np.arange(200_000.0)
+    t[150_000:] += 100.0
+    t += 1.7e9
+    e = np.where(np.arange(t.size) < 150_000, 2.0, 5.0)
+    r = running_average(t, e, 360.0)
+    k = np.searchsorted(t, 1.7e9 + np.array([150_100.0, 150_300.0, 150_500.0]))
+    np.testing.assert_allclose(r.e_rms_v_per_m[k], [2.0, math.sqrt(5248.0 / 262.0), 5.0], rtol=1e-12)
+    np.testing.assert_allclose(r.coverage[k], [262 / 360, 262 / 360, 1.0], rtol=0, atol=1e-9)
+    assert list(r.complete[k]) == [False, False, True]
+    assert not r.partial[k].any() and r.partial[:359].all() and not r.partial[360:].any()
+    # A window wholly in the gap has nothing covered: no value, coverage 0.
+    q = running_average(t, e, 50.0)
+    j = int(np.searchsorted(t, 1.7e9 + 150_100.0))
+    assert q.coverage[j] == 0.0 and math.isnan(q.e_rms_v_per_m[j])

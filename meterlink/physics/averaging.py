@@ -21,6 +21,11 @@ the block offsets are carried as a compensated (two-float) sum, so a window far 
 record loses no digits to the size of the running total. What remains is the rounding of a
 cumulative sum inside one block: the absolute error of a window's mean of p is a few float64
 ulps of max(p) times (block duration / window), negligible unless p spans ~14 decades.
+
+Running averages ending at the sample times (``at_s`` not given, the common case) take a fused
+path (:mod:`meterlink.physics.averaging_fast`): one forward pass in cache-sized chunks that does
+the checks, the integrals and the window values together, with the same results within rounding
+(a property test compares the two); whatever it does not handle is done by the general path.
 """
 
 from __future__ import annotations
@@ -30,6 +35,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from meterlink.errors import MeterlinkError
+from meterlink.physics import averaging_fast
 
 #: Default minimum coverage of a complete window (90 % of the window's seconds held by samples).
 DEFAULT_MIN_COVERAGE = 0.9
@@ -43,6 +49,24 @@ _SPAN = 1 << 20        # samples per evaluation pass (memory)
 _QCHUNK = 1 << 18      # window ends per pass (memory)
 _MEDIAN_SAMPLES = 2_000_000
 _COVER_TOL = 1e-9      # coverage comparisons tolerate rounding of covered seconds
+_FAST = True           # windows at the sample times: fused one-pass path (averaging_fast)
+_FAST_CHUNK_BLOCKS = 16  # blocks per chunk of that path (64k samples: its steps stay in cache)
+
+
+def _median_interval(t: np.ndarray) -> float:
+    """Median sample interval (from evenly spaced intervals when the record is very long)."""
+    n = t.size
+    if n < 2:
+        return 0.0
+    if n - 1 <= _MEDIAN_SAMPLES:
+        d = np.diff(t)
+    else:
+        idx = np.linspace(0, n - 2, _MEDIAN_SAMPLES).astype(np.int64)
+        d = t[idx + 1] - t[idx]
+    lo, hi = float(d.min()), float(d.max())
+    if lo == hi:                     # evenly spaced: the median without sorting (NaN fails this test)
+        return lo
+    return float(np.median(d))
 
 
 class _Held:
@@ -58,7 +82,7 @@ class _Held:
         if n == 0:
             raise MeterlinkError(f"{what}: no samples")
         self.t, self.x, self.n, self.square = t, x, n, square
-        med = self._median_interval()
+        med = _median_interval(t)
         if max_hold_s is None:
             if not med > 0:
                 raise MeterlinkError(f"{what}: cannot infer the hold time from the sample times; "
@@ -71,15 +95,6 @@ class _Held:
         self.hold = hold
         self.last_hold = min(med, hold) if med > 0 else hold
         self._first_pass(what)
-
-    def _median_interval(self) -> float:
-        """Median sample interval (from evenly spaced intervals when the record is very long)."""
-        if self.n < 2:
-            return 0.0
-        if self.n - 1 <= _MEDIAN_SAMPLES:
-            return float(np.median(np.diff(self.t)))
-        idx = np.linspace(0, self.n - 2, _MEDIAN_SAMPLES).astype(np.int64)
-        return float(np.median(self.t[idx + 1] - self.t[idx]))
 
     def _p(self, s: int, e: int) -> np.ndarray:
         v = self.x[s:e]
@@ -353,7 +368,44 @@ class RunningAverageS:
     partial: np.ndarray | None = None   # window reaches outside the record (start or end)
 
 
-def _running(held, window_s, min_coverage, at_s):
+def _fast_running(t_s, x, square, w, m, max_hold_s):
+    """The fused path for windows at the sample times, or None where it does not apply."""
+    t = np.asarray(t_s, dtype=np.float64)
+    x = np.asarray(x, dtype=np.float64)
+    if t.ndim != 1 or x.shape != t.shape or t.size < 2:
+        return None
+    med = _median_interval(t)
+    if max_hold_s is None:
+        if not med > 0:
+            return None
+        hold = HOLD_FACTOR * med
+    else:
+        hold = float(max_hold_s)
+        if not (np.isfinite(hold) and hold > 0):
+            return None
+    last_hold = min(med, hold) if med > 0 else hold
+    got = averaging_fast.running_at_samples(t, x, square, w, m, hold, last_hold, _COVER_TOL, _BLOCK,
+                                            _FAST_CHUNK_BLOCKS, _SPAN)
+    if got is None:
+        return None
+    ends = t.view()
+    ends.flags.writeable = False
+    mean, cov, ok, partial = got
+    return ends, mean, cov, ok, w, partial
+
+
+def _running(t_s, x, square, what, window_s, min_coverage, max_hold_s, at_s):
+    """(ends, mean (RMS if square), coverage, complete, window, partial) of a running average."""
+    if at_s is None and _FAST:
+        try:
+            w, m = _check_window(window_s, min_coverage)
+        except MeterlinkError:
+            w = None                         # reported after the record's own checks, as below
+        if w is not None:
+            got = _fast_running(t_s, x, square, w, m, max_hold_s)
+            if got is not None:
+                return got
+    held = _Held(t_s, x, max_hold_s, square, what)
     w, m = _check_window(window_s, min_coverage)
     ends, order = _ends(held, at_s)
     srt = ends if order is None else ends[order]
@@ -365,6 +417,8 @@ def _running(held, window_s, min_coverage, at_s):
     if order is not None:
         mean[order] = mean.copy()
         cov[order] = cov.copy()
+    if square:
+        np.sqrt(mean, out=mean)
     partial = _partial(held, ends - w, ends)
     return ends, mean, cov, (cov >= m - _COVER_TOL) & ~partial, w, partial
 
@@ -379,18 +433,15 @@ def running_average(t_s, e_v_per_m, window_s, *, min_coverage=DEFAULT_MIN_COVERA
                     max_hold_s=None, at_s=None) -> RunningAverage:
     """Sliding-window RMS of a field, sqrt(time-weighted mean of E^2), ending at each sample time
     (the window is (t_end - window_s, t_end]) or at each of ``at_s``."""
-    held = _Held(t_s, e_v_per_m, max_hold_s, True, "running average")
-    ends, mean, cov, ok, w, partial = _running(held, window_s, min_coverage, at_s)
-    np.sqrt(mean, out=mean)
-    return RunningAverage(ends, mean, cov, ok, w, partial)
+    return RunningAverage(*_running(t_s, e_v_per_m, True, "running average", window_s, min_coverage,
+                                    max_hold_s, at_s))
 
 
 def running_average_s(t_s, s_w_per_m2, window_s, *, min_coverage=DEFAULT_MIN_COVERAGE,
                       max_hold_s=None, at_s=None) -> RunningAverageS:
     """Sliding-window time-weighted linear mean of power density S (no root)."""
-    held = _Held(t_s, s_w_per_m2, max_hold_s, False, "running average")
-    ends, mean, cov, ok, w, partial = _running(held, window_s, min_coverage, at_s)
-    return RunningAverageS(ends, mean, cov, ok, w, partial)
+    return RunningAverageS(*_running(t_s, s_w_per_m2, False, "running average", window_s, min_coverage,
+                                     max_hold_s, at_s))
 
 
 def _one_window(held, t0_s, t1_s):
