@@ -1,5 +1,5 @@
 """Re-measuring a survey point: the new capture replaces the old one in the conclusion, both stay in
-the record with the reason (schema migration 6); a file of schema 4 is migrated with nothing lost."""
+the record with the reason (schema migration 9); a file of schema 4 is migrated with nothing lost."""
 
 from __future__ import annotations
 
@@ -78,7 +78,7 @@ def test_a_point_not_measured_cannot_be_remeasured(tmp_path):
                 sv.measure(plan.points[0], reason="again")
 
 
-def test_a_schema_4_file_gets_migration_6_with_its_points_as_first_captures(tmp_path):
+def test_a_schema_4_file_gets_migration_9_with_its_points_as_first_captures(tmp_path):
     import sqlite_utils
 
     path = tmp_path / "v4.db"
@@ -91,7 +91,7 @@ def test_a_schema_4_file_gets_migration_6_with_its_points_as_first_captures(tmp_
     db.conn.commit()
     db.conn.close()
     with Store(path) as store:
-        assert store.schema_version == SCHEMA_VERSION == 6
+        assert store.schema_version == SCHEMA_VERSION  # 9 and every migration before it
         row = store.db["survey_points"].get(1)
         assert (row["capture_no"], row["replaced_by"], row["remeasure_reason"], row["e_v_per_m"]) == (1, None, None, 1.5)
         with pytest.raises(sqlite3.IntegrityError):       # one row per (session, point, capture)
