@@ -90,12 +90,14 @@ def current_state(conn, now_utc: float, recent_events: int = 10) -> dict:
         # Coverage, one definition with `stats` (meterlink.station.stats): covered seconds / seconds of the
         # window that lie inside the record, here the last 24 h from the meter's first block on (a station
         # started 3 h ago and never down shows 100 %, not 12.5 %); COVERAGE_NOTE says so wherever it is shown.
-        w = _rows(conn, "SELECT sum(covered_s) AS c, min(t_start_utc) AS t0 FROM mon_block WHERE station_id=? AND "
-                  "meter=? AND band='total' AND t_start_utc >= ?", (st["id"], m["meter"], now_utc - 86400.0))[0]
-        first = _rows(conn, "SELECT min(t_start_utc) AS t0 FROM mon_block WHERE station_id=? AND meter=? AND "
-                      "band='total'", (st["id"], m["meter"]))[0]["t0"]
-        day = w["c"] or 0.0
-        span_s = now_utc - max(now_utc - 86400.0, first if first is not None else now_utc)
+        # The window ends now, or at the newest block if the data run ahead of this host's clock.
+        rec = _rows(conn, "SELECT min(t_start_utc) AS t0, max(t_start_utc + block_s) AS t1 FROM mon_block WHERE "
+                    "station_id=? AND meter=? AND band='total'", (st["id"], m["meter"]))[0]
+        end = max(now_utc, rec["t1"]) if rec["t1"] is not None else now_utc
+        start = max(end - 86400.0, rec["t0"]) if rec["t0"] is not None else end
+        day = _rows(conn, "SELECT sum(covered_s) AS c FROM mon_block WHERE station_id=? AND meter=? AND "
+                    "band='total' AND t_start_utc >= ?", (st["id"], m["meter"], start))[0]["c"] or 0.0
+        span_s = end - start
         e = m["last_e_v_per_m"]
         due = m["cert_due"]
         days = None if not due else (_dt.date.fromisoformat(due) - _dt.date.fromtimestamp(now_utc)).days
