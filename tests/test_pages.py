@@ -231,6 +231,12 @@ def test_public_pages_show_levels_and_cautions_without_internal_detail(net, brow
     code, ans = _json(net["url"] + "/api/v1/public/stations/" + urllib.parse.quote("Mill lane <b>north</b> & annex"))
     assert code == 200 and ans["station"]["name"] == "Mill lane <b>north</b> & annex"
     assert ans["latest"]["state"] == "awaiting first data" and ans["plots"] == []
+    try:                                                             # no anonymous list of stations and UUIDs
+        urllib.request.urlopen(net["url"] + "/api/v1/stations", timeout=10)
+        raise AssertionError("/api/v1/stations answered without a login")
+    except urllib.error.HTTPError as exc:
+        body = exc.read().decode("utf-8", "replace")
+        assert exc.code in (401, 404) and all(s["uuid"] not in body for s in st.values())
     code, ans = _json(net["url"] + "/api/v1/public/stations/Nowhere")
     assert code == 404 and ans["reason"] == "no station named 'Nowhere' is published here"
 

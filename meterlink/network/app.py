@@ -1,7 +1,6 @@
 """The ingest service: a Starlette (ASGI) app served by uvicorn (docs/network.md).
 
-Routes: ``GET /health``; ``POST /api/v1/batches`` (a station's batch, bearer token); ``GET /api/v1/stations``
-(every station with its newest 6-minute block); the status and public pages with their JSON API
+Routes: ``GET /health``; ``POST /api/v1/batches`` (a station's batch, bearer token); the status and public pages with their JSON API
 (meterlink.network.pages). A refusal is a 4xx with a one-line ``reason``, logged, and nothing stored; a
 database that cannot be reached gives 503, so the station keeps its rows and tries again later.
 """
@@ -14,7 +13,7 @@ import json
 import logging
 import zlib
 
-from meterlink.network.central import CentralConfig, CentralError, Pool, stations_overview
+from meterlink.network.central import CentralConfig, CentralError, Pool
 from meterlink.network.ingest import Ingest, Refused, authenticate, check_or_refuse
 
 log = logging.getLogger("meterlink.central")
@@ -90,23 +89,14 @@ def create_app(cfg: CentralConfig):
         return await run_in_threadpool(ingest_sync, request.headers.get("authorization"), bytes(raw),
                                        request.headers.get("content-encoding"), peer)
 
-    def stations_sync() -> JSONResponse:
-        try:
-            with pool.connection() as conn:
-                return JSONResponse({"stations": stations_overview(conn)})
-        except (psycopg.Error, CentralError) as exc:
-            return refuse(503, f"central database unavailable: {_line(exc)}")
-
-    async def stations(request):
-        return await run_in_threadpool(stations_sync)
-
     @contextlib.asynccontextmanager
     async def lifespan(app):
         yield
         pool.close()
 
-    routes = [Route("/health", health), Route("/api/v1/batches", batches, methods=["POST"]),
-              Route("/api/v1/stations", stations)]
+    # No anonymous station list: stations with their UUIDs are in the operator's /api/v1/status, and what
+    # may be published in /api/v1/public/stations (pages.py).
+    routes = [Route("/health", health), Route("/api/v1/batches", batches, methods=["POST"])]
     add_routes(routes, pool, operator_sha256)      # status pages (operator login) and public pages
     app = Starlette(routes=routes, lifespan=lifespan)
     app.state.pool = pool
