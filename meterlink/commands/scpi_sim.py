@@ -21,8 +21,6 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    import signal
-    import threading
 
     from meterlink.errors import MeterlinkError
     from meterlink.simulators.scenario import load_scenario
@@ -55,6 +53,19 @@ def run(args) -> int:
         raise MeterlinkError(f"--port {args.port}: cannot listen: {exc.strerror}") from None
     for (name, _), s in zip(insts, servers):
         print(f"{name} {s.address}", flush=True)
+    try:
+        _wait_for_signal()
+    finally:
+        for s in servers:
+            s.close()
+    return 0
+
+
+def _wait_for_signal() -> None:
+    """Block until SIGINT or SIGTERM, then put the previous handlers back."""
+    import signal
+    import threading
+
     done = threading.Event()
     old = {s: signal.signal(s, lambda *_: done.set()) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
@@ -63,15 +74,10 @@ def run(args) -> int:
     finally:
         for s, h in old.items():
             signal.signal(s, h)
-        for s in servers:
-            s.close()
-    return 0
 
 
 def _lab_bench(args) -> int:
     """Serve the simulated SCPI calibration bench until interrupted; its bench file names the addresses."""
-    import signal
-    import threading
     from pathlib import Path
 
     from meterlink.errors import MeterlinkError
@@ -92,12 +98,5 @@ def _lab_bench(args) -> int:
         for name, addr in a.items():
             print(f"{name} {addr}", flush=True)
         print(f"meter {rig.port}", flush=True)
-        done = threading.Event()
-        old = {s: signal.signal(s, lambda *_: done.set()) for s in (signal.SIGINT, signal.SIGTERM)}
-        try:
-            while not done.wait(0.2):
-                pass
-        finally:
-            for s, h in old.items():
-                signal.signal(s, h)
+        _wait_for_signal()
     return 0

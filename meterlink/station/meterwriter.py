@@ -14,7 +14,7 @@ import time
 
 import numpy as np
 
-from meterlink.storage.store import BatchWriter, event_row
+from meterlink.storage.store import BatchWriter
 
 COLUMNS = ("boot", "epoch", "seq", "tick_ms", "t_utc", "raw", "flags", "range_index")
 
@@ -111,20 +111,4 @@ class MeterWriter(BatchWriter):
                 self._chunks[0] = {k: (v[left:] if k not in ("boot", "epoch") else v) for k, v in c.items()}
                 left = 0
         self._n_arrays -= extra
-        self.dropped += extra
-        events = self._buf["events"]
-        count, ranges = extra, _ranges(gone)
-        if self._drop_row is not None and events and events[-1] is self._drop_row:  # one event per episode
-            events.pop()
-            count += self._drop_count
-            old = self._drop_ranges
-            if old and ranges and old[-1][:2] == ranges[0][:2] and old[-1][3] + 1 == ranges[0][2]:
-                ranges = old[:-1] + [[*old[-1][:3], ranges[0][3]]] + ranges[1:]
-            else:
-                ranges = old + ranges
-        self._drop_count, self._drop_ranges = count, ranges
-        self._drop_row = event_row(
-            "readings_dropped", "error", f"{count} reading(s) dropped: the database could not be written "
-            f"({self.last_error}) and at most {self.max_keep} are kept in memory", count=count,
-            reason="not_storing", ranges=ranges)
-        events.append(self._drop_row)
+        self._record_drop(extra, _ranges(gone))

@@ -119,9 +119,14 @@ class BatchWriter:
         if extra <= 0:
             return
         gone, self._buf["readings"] = rows[:extra], rows[extra:]
+        self._record_drop(extra, seq_ranges(gone))
+
+    def _record_drop(self, extra: int, ranges: list) -> None:
+        """Count `extra` readings dropped for want of storage: ONE readings_dropped event per episode, kept
+        last among the buffered events and grown in place, with adjacent seq ranges merged (lock held)."""
         self.dropped += extra
         events = self._buf["events"]
-        count, ranges = extra, seq_ranges(gone)
+        count = extra
         if self._drop_row is not None and events and events[-1] is self._drop_row:  # one event per episode
             events.pop()
             count += self._drop_count
