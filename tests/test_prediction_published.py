@@ -19,7 +19,8 @@ What could be read, and what could not (searched in the stored public corpora, 2
   Supplement B (Edition 97-01), but the stored copy names neither the document nor the page, so
   it is cited by its title. Legible rows (transmitter power, distance in feet to the controlled
   and to the uncontrolled limit): 500 W -> 166 ft (controlled); 1500 W -> 287 ft and 642 ft. The
-  other printed digits (150 W row, 500 W uncontrolled) are cut off in the OCR and not used.
+  other printed values (150 W row, 500 W uncontrolled) are cut off in the OCR ("90", "20", "37")
+  and not used; computed, they are 90.9, 203.3 and 371.1 ft, consistent with those digits.
 - ITU-T K.52 (08/2024): its table of contents (read at itu.int) confirms Annex B "Basic criteria
   for determining the installation category" (B.1 inherently compliant sources, B.2 normally
   compliant installations), Appendix II "Example of simple evaluation of EMF exposure" and
@@ -89,7 +90,7 @@ EME_ROWS = [  # (transmitter power W, tier, printed distance ft, limit mW/cm^2)
     (1500.0, "public", 642.0, 0.2),
 ]
 # The printed values are whole feet, but the table does not say whether it rounds or truncates:
-# computed from its own inputs they are 165.95, 287.44 and 642.74 ft, so each printed value agrees
+# computed from its own inputs they are 165.95, 287.44 and 642.73 ft, so each printed value agrees
 # within one unit of its last digit, and that is the tolerance.
 PRINTED_FT_TOL = 1.0
 
