@@ -117,9 +117,11 @@ class SimulatedMeter:
         """Simulated seconds since start(): the time at which scenes are evaluated."""
         return self._now_ms() / 1000
 
-    def move_to(self, position_m=None) -> None:
+    def move_to(self, position_m=None) -> tuple[int, int]:
         """Hold the probe at position_m (x, y, z in site metres) from now on, as a technician would;
-        None resumes the scenario's walk. Readings already due keep the old position."""
+        None resumes the scenario's walk. Readings already due keep the old position. Returns
+        (boot count, sequence number) of the first frame sent after the move: a host that lags
+        behind the device can tell the readings taken before the move from those after it."""
         with self._lock:
             out = self.fw.poll(self._now_ms())
             if self._master is not None:
@@ -131,6 +133,7 @@ class SimulatedMeter:
             self._walk = base
             path = base if position_m is None else Path.fixed([float(v) for v in position_m])
             self.fw.spec = dataclasses.replace(spec, scene=dataclasses.replace(spec.scene, path=path))
+            return int(self.fw.boot_count), int(self.fw.seq)
 
     @property
     def connected(self) -> bool:

@@ -105,6 +105,16 @@ def test_demo_runs_end_to_end(tmp_path, capsys):
     assert out["sessions"][0]["readings"] >= 110
     assert out["sessions"][1]["assessment"]["emitters"]
     assert (tmp_path / "d" / "demo.db").is_file()
+    # the survey: every sample positioned by the simulated GNSS receiver, and measured against
+    # predicted flags only the picnic site, next to the emitter the demo's sources file leaves out
+    sv = out["survey"]
+    assert sv["samples"] == sv["samples_positioned"] == 7
+    checks = {c["label"]: c for c in sv["measured_vs_predicted"]}
+    assert len(checks) == 5 and [k for k, c in checks.items() if c["flagged"]] == ["P5 picnic site"]
+    assert checks["P5 picnic site"]["diff_db"] > checks["P5 picnic site"]["u_combined_db"]
+    assert any("unknown source" in r for r in checks["P5 picnic site"]["reasons"])
+    html = (tmp_path / "d" / "survey-report" / "report.html").read_text()
+    assert "DISAGREE" in html and (tmp_path / "d" / "survey-report" / "survey.geojson").is_file()
 
 
 def test_report_of_a_recorded_session_uses_its_assessment_and_escapes_text(tmp_path, capsys):

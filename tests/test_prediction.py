@@ -7,10 +7,11 @@ Sources used and how far each was read:
   S = 1.0 mW/cm2 (as packaged in fcc-1310.toml, checked there against a published reproduction).
 - FCC OET Bulletin 65, Edition 97-01: the far-field equation S = P*G/(4*pi*R^2), the ground
   reflection factor 1.6 in field (1.6^2 = 2.56 in power density) and the cylindrical model for
-  collinear arrays are the forms that bulletin uses; its text could NOT be retrieved in this
-  session (only an unreadable word-processor copy was stored), so no OET 65 worked-example value
-  is typed here. The expected numbers below are hand-worked from the formulas (arithmetic shown),
-  not values read in the bulletin.
+  collinear arrays are the forms that bulletin uses; its worked examples could not be read (only
+  an unreadable word-processor copy was stored; equations (5)-(7) as quoted elsewhere and a
+  published distance table are checked in tests/test_prediction_published.py). The expected
+  numbers below are hand-worked from the formulas (arithmetic shown), not values read in the
+  bulletin.
 - ITU-T K.52 Annex B: the three installation categories. Its EIRP threshold tables (Appendix III)
   were not read in a primary text; the K.52 tests check the decision logic on declared thresholds,
   not K.52's numbers.

@@ -141,17 +141,72 @@ def _print_end(con, res) -> None:
     con.print(f"finished in {res['elapsed_s']:.1f} s.  {SAFETY_LINE}")
 
 
+#: An emitter the demo's survey scene has and its sources file does not declare (invented: another
+#: operator's link mast at the edge of the field by the picnic site of demo-survey-gps.toml).
+UNDECLARED = dict(name="Undeclared link mast (invented)", freq_hz=450.0e6, erp_w=300.0,
+                  position_m=(-140.0, -120.0, 3.0), polarisation="vertical", technology="link")
+
+
+def _survey_scenario():
+    """The demo scene with one undeclared emitter added, and the pole's carriers at their declared
+    busy-hour power (constant), so that measured against predicted shows the undeclared one."""
+    import dataclasses
+
+    from meterlink.simulators.scenario import load_scenario
+    from meterlink.simulators.scene import Transmitter
+
+    sc = load_scenario("demo")
+    extra = Transmitter(**UNDECLARED)
+
+    def scene(sc_):
+        txs = tuple(dataclasses.replace(t, profile="constant") for t in sc_.transmitters) + (extra,)
+        return dataclasses.replace(sc_, transmitters=txs)
+
+    return dataclasses.replace(sc, meters=tuple(dataclasses.replace(m, scene=scene(m.scene)) for m in sc.meters))
+
+
 def _survey(con, db, out, seed, quiet):
-    """A short scripted survey of the demo site (plan packaged with the scenarios) and its report."""
+    """A short scripted survey of the demo site with the simulated GNSS receiver following the probe
+    and the declared sources (plan and sources file packaged with the scenarios), and its report."""
     from importlib.resources import files
 
+    from meterlink.planning.sourcefile import load_site
+    from meterlink.simulators.gnss import SimulatedGnss
+    from meterlink.simulators.pty_meter import SimulatedMeter
+    from meterlink.storage.store import Store
+    from meterlink.survey import map as smap
+    from meterlink.survey import predicted
+    from meterlink.survey.plan import load_plan
     from meterlink.survey.report import write_report
     from meterlink.survey.run import run_plan
-    from meterlink.simulators.pty_meter import SimulatedMeter
+    from meterlink.survey.store import load_survey
 
-    plan = files("meterlink.simulators.scenarios").joinpath("demo-survey.toml")
-    con.rule("scripted walk-around survey")
-    with SimulatedMeter("demo", sensor="probe", seed=seed, speed=100.0) as sim:
-        sid = run_plan(sim.port, str(plan), db, console=None if quiet else con, mover=sim.move_to)
+    plan = files("meterlink.simulators.scenarios").joinpath("demo-survey-gps.toml")
+    declared = load_site(load_plan(str(plan)).sources_file)
+    con.rule("scripted walk-around survey with a GNSS receiver")
+    with SimulatedMeter(_survey_scenario(), sensor="probe", seed=seed, speed=100.0) as sim, \
+            SimulatedGnss.following(sim) as gnss:
+        sid = run_plan(sim.port, str(plan), db, console=None if quiet else con, mover=sim.move_to,
+                       gnss_port=gnss.port, declared=declared)
     html = write_report(db, sid, out / "survey-report")
-    return {"session_id": sid, "plan": str(plan), "report": str(html)}
+    with Store(db, readonly=True) as st:
+        sv = load_survey(st, sid)
+    samples = [s for p in sv["points"] for s in p["samples"]]
+    checks = predicted.compare(sv, smap.site_frame(sv))
+    res = {"session_id": sid, "plan": str(plan), "report": str(html),
+           "samples": len(samples), "samples_positioned": sum(s.get("lat_deg") is not None for s in samples),
+           "measured_vs_predicted": [{"label": c.label, "e_measured_v_per_m": c.e_measured_v_per_m,
+                                      "e_predicted_v_per_m": c.e_predicted_v_per_m, "diff_db": c.diff_db,
+                                      "u_combined_db": c.u_combined_db, "flagged": c.flagged,
+                                      "reasons": list(c.reasons)} for c in checks]}
+    if not quiet:
+        from rich.markup import escape
+
+        con.print(f"{res['samples_positioned']} of {res['samples']} samples positioned by the GNSS receiver")
+        for c in checks:
+            word = "DISAGREE" if c.flagged else "agrees"
+            con.print(f"  {escape(c.label)}: measured {c.e_measured_v_per_m:.3g} V/m, predicted "
+                      f"{c.e_predicted_v_per_m:.3g} V/m from the declared sources, {c.diff_db:+.1f} dB "
+                      f"(combined U {c.u_combined_db:.1f} dB): {word}"
+                      + (f"; likely {escape(c.reasons[0])}" if c.flagged and c.reasons else ""))
+    return res

@@ -19,8 +19,16 @@ from meterlink.errors import MeterlinkError
 from meterlink.physics.units import C_M_PER_S, Z0_OHM
 
 #: Ground-reflection factor for power density: a reflected field adding in phase up to 1.6 times
-#: the direct field, (1.6)^2 = 2.56 in power (FCC OET Bulletin 65, Edition 97-01, section 2).
+#: the direct field, (1.6)^2 = 2.56 in power ("the EPA-recommended reflection factor", FCC OET
+#: Bulletin 65, Edition 97-01, section 2, equation (7)).
 OET65_GROUND_FACTOR = 1.6 ** 2
+#: Power-density factor for 100 % reflection, the direct field doubled: 2^2 = 4 (OET 65,
+#: equation (6)); an upper bound that OET 65 keeps for worst cases.
+FULL_REFLECTION_FACTOR = 2.0 ** 2
+#: Gain of a half-wave dipole over an isotropic radiator as OET 65 rounds it: EIRP = 1.64 x ERP
+#: (equation (5)); 10*log10(1.64) = 2.15 dB, the usual dBi = dBd + 2.15.
+DIPOLE_GAIN_LIN = 1.64
+DIPOLE_GAIN_DB = 10.0 * math.log10(DIPOLE_GAIN_LIN)
 #: Models reported beside every predicted value.
 FAR_FIELD = "far field S = P*G/(4*pi*r^2)"
 CYLINDRICAL = "cylindrical S = P*(360/bw)/(2*pi*R*L)"
@@ -117,6 +125,27 @@ def far_field_s(power_w, gain_lin, r_m, ground_factor: float = 1.0):
     """Far-field power density S = F*P*G/(4*pi*r^2), W/m^2 (F = 2.56 with ground reflection)."""
     r = np.asarray(r_m, dtype=float)
     return ground_factor * np.multiply(power_w, gain_lin) / (4.0 * np.pi * r * r)
+
+
+def eirp_from_erp_w(erp_w):
+    """EIRP from an ERP (power relative to a half-wave dipole): EIRP = 1.64 x ERP (OET 65 eq. (5))."""
+    return np.multiply(erp_w, DIPOLE_GAIN_LIN)
+
+
+def erp_from_eirp_w(eirp_w):
+    """ERP (relative to a half-wave dipole) from an EIRP: ERP = EIRP / 1.64."""
+    return np.divide(eirp_w, DIPOLE_GAIN_LIN)
+
+
+def gain_dbi_from_dbd(gain_dbd):
+    """Gain over isotropic from a gain over a half-wave dipole: dBi = dBd + 10*log10(1.64)."""
+    return np.add(gain_dbd, DIPOLE_GAIN_DB)
+
+
+def far_field_distance_for_s_m(eirp_w, s_w_per_m2, ground_factor: float = 1.0):
+    """Main-beam distance where the far-field density F*EIRP/(4*pi*r^2) falls to s_w_per_m2, m:
+    r = sqrt(F*EIRP/(4*pi*S)), the inverse of far_field_s."""
+    return np.sqrt(np.multiply(ground_factor, eirp_w) / (4.0 * np.pi * np.asarray(s_w_per_m2, dtype=float)))
 
 
 def field_from_s(s_w_per_m2):

@@ -24,6 +24,7 @@ from meterlink.physics.prediction import (
     _source_s,
     check_source,
     cylindrical_s,
+    far_field_distance_for_s_m,
     transition_distance_m,
 )
 from meterlink.physics.units import Z0_OHM
@@ -200,7 +201,7 @@ def compliance_distance(src: Source, *, standard: str, tier: str, ground_factor:
     if not (math.isfinite(target_ratio) and target_ratio > 0):
         raise PredictionError(f"target ratio must be positive, got {target_ratio!r}")
     s_t, term = _governing(src, standard, tier, target_ratio)
-    d = math.sqrt(ground_factor * src.eirp_w / (4.0 * math.pi * s_t))
+    d = float(far_field_distance_for_s_m(src.eirp_w, s_t, ground_factor))
     model = FAR_FIELD
     if src.array_length_m is not None:
         bw = src.pattern.h_beamwidth_deg if src.pattern is not None else 360.0

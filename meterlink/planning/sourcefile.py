@@ -9,10 +9,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError
-from meterlink.physics.prediction import Pattern, PredictionError, Source, check_source
+from meterlink.physics.prediction import Pattern, PredictionError, Source, check_source, gain_dbi_from_dbd
 from meterlink.physics.units import parse_frequency_hz
 
-_SOURCE_KEYS = {"name", "power_w", "gain_dbi", "frequency", "freq_hz", "x_m", "y_m", "height_m", "azimuth_deg",
+_SOURCE_KEYS = {"name", "power_w", "gain_dbi", "gain_dbd", "frequency", "freq_hz", "x_m", "y_m", "height_m", "azimuth_deg",
                 "h_beamwidth_deg", "v_beamwidth_deg", "electrical_tilt_deg", "mechanical_tilt_deg",
                 "front_to_back_db", "side_lobe_db", "array_length_m", "notes"}
 _SITE_KEYS = {"name", "origin", "notes", "standard", "ground_factor", "grid_height_m"}
@@ -67,12 +67,16 @@ def _source(spec, where: str) -> Source:
     else:
         f = _num(where, "freq_hz", spec["freq_hz"], required=True)
     g = lambda k, **kw: _num(where, k, spec.get(k), **kw)  # noqa: E731
+    if ("gain_dbi" in spec) == ("gain_dbd" in spec):
+        raise SourceFileError(f"{where}: give exactly one of gain_dbi or gain_dbd (over a half-wave dipole)")
+    gain_dbi = (g("gain_dbi", required=True) if "gain_dbi" in spec
+                else float(gain_dbi_from_dbd(g("gain_dbd", required=True))))
     has_pattern = any(k in spec for k in ("h_beamwidth_deg", "v_beamwidth_deg", "electrical_tilt_deg",
                                           "mechanical_tilt_deg", "front_to_back_db", "side_lobe_db"))
     pattern = Pattern(g("h_beamwidth_deg", default=360.0), g("v_beamwidth_deg"),
                       g("electrical_tilt_deg", default=0.0), g("mechanical_tilt_deg", default=0.0),
                       g("front_to_back_db", default=25.0), g("side_lobe_db", default=20.0)) if has_pattern else None
-    src = Source(name.strip(), g("power_w", required=True), g("gain_dbi", required=True), f,
+    src = Source(name.strip(), g("power_w", required=True), gain_dbi, f,
                  g("x_m", default=0.0), g("y_m", default=0.0), g("height_m", required=True),
                  g("azimuth_deg", default=0.0), pattern, g("array_length_m"))
     try:

@@ -287,8 +287,14 @@ class Capture:
                           battery_low=self.battery_low, overrange=v.overrange or self.status_over,
                           emitters=tuple(ems), followup_v_per_m=self.followup, **base))
 
-    def settle(self, base: dict, point_no: int, sample_no: int, host_timeout_s: float) -> None:
-        """Skip readings for settle_s of device time after the probe was placed (kept, not used)."""
+    def settle(self, base: dict, point_no: int, sample_no: int, host_timeout_s: float,
+               placed_at: tuple[int, int] | None = None) -> None:
+        """Skip readings for settle_s of device time after the probe was placed (kept, not used).
+
+        placed_at, when the mover knows it, is (boot, sequence number) of the device's first frame
+        after the move: readings before it were taken at the old place, however late the host
+        reads them (a host behind the device, say on a loaded machine), and do not start the
+        settling time."""
         self.drain()
         t_end = None
         host_deadline = time.monotonic() + host_timeout_s
@@ -297,6 +303,9 @@ class Capture:
             if v is None:
                 continue
             self._trace(v, point_no, sample_no, False)
+            if placed_at is not None and v.boot == placed_at[0] and (v.seq - placed_at[1]) % 2 ** 32 >= 2 ** 31:
+                self._view({**base}, v, None, 0.0, [], "settling")
+                continue
             t_end = v.t_s + self.settle_s if t_end is None else t_end
             self._view({**base}, v, None, 0.0, [], "settling")
             if v.t_s >= t_end:

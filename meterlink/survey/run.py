@@ -207,11 +207,13 @@ class Survey:
             base = {"label": p.label, "mode": p.mode, "height_m": h,
                     "sample": f"height {k + 1} of {len(heights)}" if len(heights) > 1 else ""}
             cap.position = p.position_m(h)
+            placed_at = None
             if cap.position is not None and self.mover is not None:
-                self.mover(cap.position)
+                placed_at = self.mover(cap.position)     # the simulator says which frame is the first after
             elif self.ready is not None:
                 self.ready(p, h)
-            cap.settle(base, no, k, host_timeout_s=2 * self.plan.settle_s + 30)
+            cap.settle(base, no, k, host_timeout_s=2 * self.plan.settle_s + 30,
+                       placed_at=placed_at if isinstance(placed_at, tuple) and len(placed_at) == 2 else None)
             walk = walk_path(p.walk_m, cap.position) if p.mode == "sweep" else None
             s, interrupted = cap.collect(dur, base, no, k, height_m=h, walk=walk,
                                          mover=self.mover if walk else None)
