@@ -228,3 +228,26 @@ def test_bench_file_errors_name_the_key(tmp_path):
     p.write_text(text.replace("[standard_field]", "[standard]"))
     with pytest.raises(LabError, match=r"needs \[instruments\], \[chain\] and \[standard_field\]"):
         afcal.load_af_bench(p)
+
+
+def test_scpi_sim_serves_the_standard_field_bench(tmp_path):
+    import signal
+    import subprocess
+    import sys
+
+    from meterlink.instruments.session import open_session
+
+    bench = tmp_path / "af-bench.toml"
+    p = subprocess.Popen([sys.executable, "-m", "meterlink", "scpi-sim", "--af-bench", str(bench)],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        names = [p.stdout.readline().split()[0] for _ in range(3)]
+        assert names == ["generator", "power_meter", "analyzer"], p.stderr.read() if p.poll() else names
+        b = afcal.load_af_bench(bench)
+        afcal.check_plan(b)
+        with open_session(b.analyzer, timeout_s=5.0) as s:
+            assert s.query("*IDN?").split(",")[1] == "SIM-SA"
+    finally:
+        p.send_signal(signal.SIGTERM)
+        p.communicate(timeout=10)
+    assert p.returncode == 0
