@@ -251,3 +251,30 @@ def test_scpi_sim_serves_the_standard_field_bench(tmp_path):
         p.send_signal(signal.SIGTERM)
         p.communicate(timeout=10)
     assert p.returncode == 0
+
+
+@pytest.mark.parametrize("extra, needle", [
+    (["--temperatures", "5,40"], "belong to the probe procedures"),
+    (["--repeats", "1"], "at least 2"),
+    (["--previous", "demo-probe"], "not a dipole certificate"),
+])
+def test_dipole_af_bad_input_is_one_line_before_any_rf(tmp_path, capsys, extra, needle):
+    from meterlink.cli import main
+
+    out = tmp_path / "o"
+    assert main(["lab", "run", "dipole-af", "--out", str(out), *extra]) == 2
+    err = capsys.readouterr().err.strip()
+    assert needle in err and "\n" not in err
+    assert not out.exists()                                # nothing started, nothing written
+
+
+def test_a_base_certificate_of_another_antenna_is_refused(tmp_path, capsys):
+    import importlib.resources
+
+    from meterlink.cli import main
+
+    session = tmp_path / "s.toml"
+    text = (importlib.resources.files("meterlink.lab") / "examples" / "af-session.toml").read_text()
+    session.write_text(text.replace('serial = "DA-2093"', 'serial = "DA-9999"'))
+    assert main(["lab", "run", "dipole-af", "--session", str(session), "--out", str(tmp_path / "o")]) == 2
+    assert "is for antenna s/n DA-2093, not DA-9999" in capsys.readouterr().err
