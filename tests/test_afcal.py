@@ -194,10 +194,10 @@ def test_cli_bench_failure_is_one_line_and_the_journal_is_kept(tmp_path, capsys)
         real = pm.command
         reads = []
 
-        def command(h, arg, query):                       # the power meter starts queuing errors after 5 reads
+        def command(h, arg, query):     # the power meter queues errors after 10 reads (two frequencies' worth)
             if h == "READ" and query:
                 reads.append(1)
-                if len(reads) >= 5:
+                if len(reads) >= 10:
                     pm.faults.scpi_error = True
             return real(h, arg, query)
         pm.command = command
@@ -207,12 +207,19 @@ def test_cli_bench_failure_is_one_line_and_the_journal_is_kept(tmp_path, capsys)
     assert code == 2 and "\n" not in err and "readings measured, kept in" in err and "-222" in err
     ev = json.loads((out / "partial-event.json").read_text())
     kept = afcal.read_journal(out / "af-journal.csv")
-    assert ev["readings_measured"] == len(kept) >= 1 and ev["readings_measured"] + ev["readings_not_measured"] == 6
+    assert ev["readings_measured"] == len(kept) == 4 and ev["readings_measured"] + ev["readings_not_measured"] == 6
     assert not (out / "certificate.toml").exists()
     # the journal of the stopped run is never overwritten
     assert main(["lab", "run", "dipole-af", "--bench", str(bench), "--out", str(out)]) == 2
     assert "journal of an earlier run" in capsys.readouterr().err
     assert len(afcal.read_journal(out / "af-journal.csv")) == len(kept)
+    # the readings kept make a certificate of the frequencies measured (lab import --af-bench)
+    assert main(["lab", "import", str(out / "af-journal.csv"), "--af-bench", str(bench), "--json",
+                 "--out", str(tmp_path / "imported")]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    cert = load_certificate(tmp_path / "imported" / "certificate.toml")
+    assert cert.af_freq_hz == (500e6, 1e9) and [p["freq_hz"] for p in summary["points"]] == [500e6, 1e9]
+    assert afcal.read_journal(tmp_path / "imported" / "af-journal.csv") == kept
 
 
 def test_bench_file_errors_name_the_key(tmp_path):

@@ -24,7 +24,10 @@ def add_arguments(parser) -> None:
                          description="Build a certificate from readings taken by hand on a bench meterlink does not "
                                      "drive: a CSV of reference field and meter reading per step (columns in "
                                      "docs/lab.md). The analysis, budget and outputs are those of 'lab run'.")
-    imp.add_argument("csv", help="readings file (columns in docs/lab.md)")
+    imp.add_argument("csv", help="readings file (columns in docs/lab.md), or with --af-bench a dipole-af journal")
+    imp.add_argument("--af-bench", metavar="FILE",
+                     help="the csv is an af-journal.csv of 'lab run dipole-af' (e.g. of a stopped run) measured on "
+                          "this standard-field bench: build the dipole certificate from its readings")
     bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method",
                          description="Show the GUM uncertainty budget of the lab session's method: each contribution "
                                      "with its distribution, divisor and sensitivity, the combined standard "
@@ -231,6 +234,8 @@ def run(args) -> int:
     console = Console()
     if args.action == "run" and args.procedure == "dipole-af":
         return _dipole_af(args, console)
+    if args.action == "import" and args.af_bench:
+        return _dipole_af(args, console, journal_in=args.csv)
     session = _session(args.session)
     if args.action == "budget":
         b = calibration_budget(session, args.type_a_db)
@@ -313,8 +318,9 @@ def run(args) -> int:
     return 1 if cmp and cmp.notice else 0
 
 
-def _dipole_af(args, console) -> int:
-    """lab run dipole-af: the standard-field antenna-factor calibration over SCPI (meterlink.lab.afcal)."""
+def _dipole_af(args, console, journal_in=None) -> int:
+    """lab run dipole-af: the standard-field antenna-factor calibration over SCPI (meterlink.lab.afcal);
+    with journal_in (lab import --af-bench), the certificate from a journal's readings instead."""
     import dataclasses
     import datetime as dt
     import json
@@ -326,16 +332,25 @@ def _dipole_af(args, console) -> int:
     from meterlink.physics.certificate import dump_certificate, load_certificate
     from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir, write_outputs
 
-    if args.temperatures or args.drift_db:
+    if journal_in is None and (args.temperatures or args.drift_db):
         raise MeterlinkError("dipole-af: --temperatures and --drift-db belong to the probe procedures")
-    if args.repeats < 2:
+    if journal_in is None and args.repeats < 2:
         raise MeterlinkError("--repeats must be at least 2 (Type A needs repeats)")
     session = _session(args.session, "af-session.toml")
     base = load_certificate(args.previous or "demo-dipole")
     afcal_report.check_base(session, base)
-    bench = afcal.load_af_bench(args.bench) if args.bench else None
+    bench_path = args.af_bench if journal_in is not None else args.bench
+    bench = afcal.load_af_bench(bench_path) if bench_path else None
     if bench is not None:
         afcal.check_plan(bench)
+    taken = None
+    if journal_in is not None:
+        taken = afcal.read_journal(journal_in)
+        freqs = tuple(sorted({r.freq_hz for r in taken}))
+        if len(freqs) < 2:
+            raise MeterlinkError(f"{journal_in}: readings at {len(freqs)} frequencies; an antenna-factor table needs "
+                                 "two or more")
+        afcal.check_plan(dataclasses.replace(bench, freq_hz=freqs))   # in the far field and the bench's tables
     out = Path(args.out)
     reg_path = Path(args.register) if args.register else register.default_register(out)
     template_dir(args.template_dir)
@@ -345,15 +360,23 @@ def _dipole_af(args, console) -> int:
     journal = afcal.Journal(out / "af-journal.csv")
     rig = None
     try:
-        if bench is None:                      # the simulated standard-field bench on loopback TCP
-            from meterlink.simulators.scpi_afcal import FREQS_HZ, AfRig
-            rig = AfRig(seed=args.seed).__enter__()
-            (out / "simulated-bench.toml").write_text(
-                rig.bench_toml(freqs_hz=(2e8, 1e9, 6e9) if args.quick else FREQS_HZ), encoding="utf-8")
-            bench = afcal.load_af_bench(out / "simulated-bench.toml")
-        readings = afcal.run(bench, journal, repeats=args.repeats)
+        if taken is not None:                  # imported: the readings are copied into the new journal
+            for r in taken:
+                journal.add(r)
+            readings = taken
+        else:
+            if bench is None:                  # the simulated standard-field bench on loopback TCP
+                from meterlink.simulators.scpi_afcal import FREQS_HZ, AfRig
+                rig = AfRig(seed=args.seed).__enter__()
+                try:
+                    (out / "simulated-bench.toml").write_text(
+                        rig.bench_toml(freqs_hz=(2e8, 1e9, 6e9) if args.quick else FREQS_HZ), encoding="utf-8")
+                except OSError as exc:
+                    raise MeterlinkError(f"{out}: cannot write simulated-bench.toml ({exc.strerror})") from None
+                bench = afcal.load_af_bench(out / "simulated-bench.toml")
+            readings = afcal.run(bench, journal, repeats=args.repeats)
     except MeterlinkError as exc:
-        planned = len(bench.freq_hz) * args.repeats if bench else 0
+        planned = len(bench.freq_hz) * getattr(args, "repeats", 0) if bench else 0
         try:
             (out / "partial-event.json").write_text(json.dumps({
                 "event": "bench_stopped", "procedure": "dipole-af",
