@@ -285,3 +285,24 @@ def test_a_base_certificate_of_another_antenna_is_refused(tmp_path, capsys):
     session.write_text(text.replace('serial = "DA-2093"', 'serial = "DA-9999"'))
     assert main(["lab", "run", "dipole-af", "--session", str(session), "--out", str(tmp_path / "o")]) == 2
     assert "is for antenna s/n DA-2093, not DA-9999" in capsys.readouterr().err
+
+
+def test_a_frequency_with_one_repeat_is_left_out_and_said_so(tmp_path):
+    import dataclasses
+    import datetime as dt
+
+    from meterlink.commands.lab import _session
+    from meterlink.lab import afcal_report
+
+    with AfRig() as rig:
+        (tmp_path / "b.toml").write_text(rig.bench_toml(freqs_hz=(500e6, 1e9, 2e9)))
+    bench = afcal.load_af_bench(tmp_path / "b.toml")
+    rs = [AfReading(f, k, 20.0, 20.0, -20.0 - k / 10) for f in (500e6, 1e9) for k in (1, 2)]
+    rs.append(AfReading(2e9, 1, 20.0, 20.0, -25.0))
+    session = dataclasses.replace(_session(None, "af-session.toml"), certificate_number="T-1",
+                                  cal_date=dt.date(2027, 6, 1), due_date=dt.date(2028, 6, 1))
+    cal = afcal_report.analyse(session, bench, rs, load_certificate("demo-dipole"))
+    assert cal.left_out_freq_hz == (2e9,) and cal.certificate.af_freq_hz == (500e6, 1e9)
+    assert "2000 MHz: one repeat only" in afcal_report.render(cal)
+    with pytest.raises(LabError, match="1 frequencies measured with two or more repeats"):
+        afcal_report.analyse(session, bench, rs[2:], load_certificate("demo-dipole"))

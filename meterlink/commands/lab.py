@@ -347,9 +347,9 @@ def _dipole_af(args, console, journal_in=None) -> int:
     if journal_in is not None:
         taken = afcal.read_journal(journal_in)
         freqs = tuple(sorted({r.freq_hz for r in taken}))
-        if len(freqs) < 2:
-            raise MeterlinkError(f"{journal_in}: readings at {len(freqs)} frequencies; an antenna-factor table needs "
-                                 "two or more")
+        if sum(1 for f in freqs if sum(r.freq_hz == f for r in taken) >= 2) < 2:
+            raise MeterlinkError(f"{journal_in}: fewer than two frequencies with two or more repeats; an "
+                                 "antenna-factor table needs two or more")
         afcal.check_plan(dataclasses.replace(bench, freq_hz=freqs))   # in the far field and the bench's tables
     out = Path(args.out)
     reg_path = Path(args.register) if args.register else register.default_register(out)
@@ -413,6 +413,9 @@ def _dipole_af(args, console, journal_in=None) -> int:
         t.add_row(f"{p['freq_hz'] / 1e6:g} MHz", f"{p['af_db_per_m']:.2f}", f"{p['u_expanded_db']:.2f}",
                   f"{p['previous_af_db_per_m']:.2f}", f"{p['af_db_per_m'] - p['previous_af_db_per_m']:+.2f}")
     console.print(t)
+    if cal.left_out_freq_hz:
+        console.print("left out (one repeat only): " + ", ".join(f"{f / 1e6:g} MHz" for f in cal.left_out_freq_hz),
+                      markup=False)
     console.print(f"certificate {no}: {summary['certificate']}, report {summary['report']} (entered in the register "
                   f"{reg_path}); readings in {journal.path}", markup=False)
     console.print(SAFETY_LINE, markup=False)

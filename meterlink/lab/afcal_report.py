@@ -38,6 +38,7 @@ class AfCalibration:
     notes: tuple[str, ...]                # the budget rows' notes (the same for every point)
     base: DipoleCertificate
     certificate: DipoleCertificate
+    left_out_freq_hz: tuple[float, ...] = ()   # frequencies with a single repeat (a stopped run): no Type A
 
     @property
     def u_expanded_db(self) -> np.ndarray:
@@ -68,9 +69,11 @@ def analyse(session: LabSession, bench: AfBench, readings, base: DipoleCertifica
     by_f: dict[float, list] = {}
     for r in readings:
         by_f.setdefault(r.freq_hz, []).append(r)
-    if len(by_f) < 2 or any(len(v) < 2 for v in by_f.values()):
-        raise LabError(f"{len(by_f)} frequencies measured: an antenna-factor table needs two or more, "
-                       "each with two or more repeats")
+    left_out = tuple(sorted(f for f, v in by_f.items() if len(v) < 2))
+    by_f = {f: v for f, v in by_f.items() if len(v) >= 2}
+    if len(by_f) < 2:
+        raise LabError(f"{len(by_f)} frequencies measured with two or more repeats: an antenna-factor table "
+                       "needs two or more")
     inputs = budget_inputs(session)
     pts, buds, notes = [], [], ()
     for f in sorted(by_f):
@@ -90,7 +93,7 @@ def analyse(session: LabSession, bench: AfBench, readings, base: DipoleCertifica
                    certificate_number=session.certificate_number, cal_date=session.cal_date,
                    due_date=session.due_date, freq_range_hz=(lo, hi), af_freq_hz=f,
                    af_db_per_m=tuple(round(p.af_db_per_m, 2) + 0.0 for p in pts), uncertainties=us, source="")
-    return AfCalibration(session, bench, tuple(pts), tuple(buds), notes, base, cert)
+    return AfCalibration(session, bench, tuple(pts), tuple(buds), notes, base, cert, left_out)
 
 
 def summary(cal: AfCalibration) -> dict:
@@ -102,7 +105,7 @@ def summary(cal: AfCalibration) -> dict:
                         "previous_af_db_per_m": float(pv)}
                        for p, b, pv in zip(cal.points, cal.budgets, prev)],
             "u_antenna_factor_db": next(c.value for c in cal.certificate.uncertainties if c.name == "antenna_factor"),
-            "base_certificate": cal.base.certificate_number}
+            "base_certificate": cal.base.certificate_number, "left_out_freq_hz": list(cal.left_out_freq_hz)}
 
 
 def _plot(cal: AfCalibration) -> bytes:
@@ -168,6 +171,8 @@ def render(cal: AfCalibration, template_dir=None) -> str:
                            f"{s.ambient.humidity_pct:g} %"),
             ("operator", s.operator or "-"),
             ("valid range", f"{c.freq_range_hz[0] / 1e6:g}..{c.freq_range_hz[1] / 1e6:g} MHz"),
+            *([("left out", ", ".join(f"{f / 1e6:g} MHz" for f in cal.left_out_freq_hz)
+                + ": one repeat only (the run stopped), no Type A evaluation")] if cal.left_out_freq_hz else []),
             ("calibration due", c.due_date.isoformat())],
         result_rows=[[f"{p.freq_hz / 1e6:g}", f"{p.af_db_per_m:.2f}", f"{10 ** (p.af_db_per_m / 20):.3f}",
                       f"{b.u_expanded_db:.2f}", f"{b.k:g}", f"{pv:.2f}", f"{p.af_db_per_m - pv:+.2f}"]
