@@ -8,18 +8,26 @@ HELP = "calibration lab: run procedures, import readings, show the budget, write
 def add_arguments(parser) -> None:
     sub = parser.add_subparsers(dest="action", required=True, metavar="ACTION")
     run = sub.add_parser("run", help="run zero, linearity, frequency, isotropy (and temperature) on the simulated "
-                                     "lab bench",
+                                     "lab bench, or (dipole-af) a dipole's antenna factor over SCPI",
                          description="Calibrate a probe on the simulated lab bench (meter, signal chain and turntable "
                                      "over its pty): zero, linearity per axis, frequency response, isotropy and, with "
                                      "--temperatures, the temperature coefficient. Writes certificate.toml/.html and "
                                      "readings.csv to --out and prints the calibration factors with their expanded "
                                      "uncertainty. The lab session file (docs/lab.md) names the lab, the customer, "
-                                     "the reference standards and the method.")
+                                     "the reference standards and the method. 'lab run dipole-af' calibrates a "
+                                     "dipole's antenna factor by the standard-field method over SCPI instruments "
+                                     "(simulated on loopback TCP, or --bench FILE) and writes the dipole certificate "
+                                     "the host loads (docs/lab.md).")
+    run.add_argument("procedure", nargs="?", choices=("probe", "dipole-af"), default="probe",
+                     help="probe (default): the probe procedures; dipole-af: antenna factor of a dipole")
     imp = sub.add_parser("import", help="build a certificate from readings taken by hand (CSV)",
                          description="Build a certificate from readings taken by hand on a bench meterlink does not "
                                      "drive: a CSV of reference field and meter reading per step (columns in "
                                      "docs/lab.md). The analysis, budget and outputs are those of 'lab run'.")
-    imp.add_argument("csv", help="readings file (columns in docs/lab.md)")
+    imp.add_argument("csv", help="readings file (columns in docs/lab.md), or with --af-bench a dipole-af journal")
+    imp.add_argument("--af-bench", metavar="FILE",
+                     help="the csv is an af-journal.csv of 'lab run dipole-af' (e.g. of a stopped run) measured on "
+                          "this standard-field bench: build the dipole certificate from its readings")
     bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method",
                          description="Show the GUM uncertainty budget of the lab session's method: each contribution "
                                      "with its distribution, divisor and sensitivity, the combined standard "
@@ -31,7 +39,9 @@ def add_arguments(parser) -> None:
     for p in (run, imp):
         p.add_argument("--out", default="lab-out", help="new folder for certificate.toml/.html, readings.csv "
                                                          "(an issued certificate is never overwritten)")
-        p.add_argument("--previous", metavar="CERT", help="previous certificate: as-found / as-left comparison")
+        p.add_argument("--previous", metavar="CERT", help="previous certificate: as-found / as-left comparison "
+                                                          "(dipole-af: the antenna's previous certificate, which "
+                                                          "also gives the receiver and cable; default demo-dipole)")
         p.add_argument("--register", metavar="FILE", help="the lab's register of issued certificate numbers "
                                                           "(default: lab-register.tsv next to the out folder)")
         p.add_argument("--pdf", action="store_true", help='also write certificate.pdf (needs pip install '
@@ -45,13 +55,14 @@ def add_arguments(parser) -> None:
     run.add_argument("--drift-db", type=float, default=0.0, help="simulate a sensitivity change of axis x (dB)")
     run.add_argument("--bench", metavar="FILE",
                      help="drive a bench of SCPI instruments (generator, power meter, rotator by VISA address) and "
-                          "the meter on its serial port, as named in this bench file (docs/instruments.md)")
+                          "the meter on its serial port, as named in this bench file (docs/instruments.md); "
+                          "dipole-af: generator, power meter and analyser, and the standard-field set-up")
     run.add_argument("--temperatures", metavar="LIST",
                      help="also measure the temperature coefficient in a climatic chamber at these degC, "
                           "e.g. 5,15,23,30,40 (the simulated bench has one)")
 
 
-def _session(path):
+def _session(path, example: str = "session.toml"):
     """The session file given, else the packaged example session (invented) dated today."""
     import dataclasses
     import datetime as dt
@@ -60,7 +71,7 @@ def _session(path):
     from meterlink.lab.session import load_session
     if path:
         return load_session(path)
-    with importlib.resources.as_file(importlib.resources.files("meterlink.lab") / "examples" / "session.toml") as p:
+    with importlib.resources.as_file(importlib.resources.files("meterlink.lab") / "examples" / example) as p:
         s = load_session(p)
     today = dt.date.today()
     year = dt.timedelta(days=365)
@@ -221,6 +232,10 @@ def run(args) -> int:
     from meterlink.lab.budget import calibration_budget
 
     console = Console()
+    if args.action == "run" and args.procedure == "dipole-af":
+        return _dipole_af(args, console)
+    if args.action == "import" and args.af_bench:
+        return _dipole_af(args, console, journal_in=args.csv)
     session = _session(args.session)
     if args.action == "budget":
         b = calibration_budget(session, args.type_a_db)
@@ -301,3 +316,107 @@ def run(args) -> int:
                 console.print(cmp.notice, style="bold red", markup=False)
         console.print(SAFETY_LINE, markup=False)
     return 1 if cmp and cmp.notice else 0
+
+
+def _dipole_af(args, console, journal_in=None) -> int:
+    """lab run dipole-af: the standard-field antenna-factor calibration over SCPI (meterlink.lab.afcal);
+    with journal_in (lab import --af-bench), the certificate from a journal's readings instead."""
+    import dataclasses
+    import datetime as dt
+    import json
+    from pathlib import Path
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.lab import afcal, afcal_report, register
+    from meterlink.physics.certificate import dump_certificate, load_certificate
+    from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir, write_outputs
+
+    if journal_in is None and (args.temperatures or args.drift_db):
+        raise MeterlinkError("dipole-af: --temperatures and --drift-db belong to the probe procedures")
+    if journal_in is None and args.repeats < 2:
+        raise MeterlinkError("--repeats must be at least 2 (Type A needs repeats)")
+    session = _session(args.session, "af-session.toml")
+    base = load_certificate(args.previous or "demo-dipole")
+    afcal_report.check_base(session, base)
+    bench_path = args.af_bench if journal_in is not None else args.bench
+    bench = afcal.load_af_bench(bench_path) if bench_path else None
+    if bench is not None:
+        afcal.check_plan(bench)
+    taken = None
+    if journal_in is not None:
+        taken = afcal.read_journal(journal_in)
+        freqs = tuple(sorted({r.freq_hz for r in taken}))
+        if sum(1 for f in freqs if sum(r.freq_hz == f for r in taken) >= 2) < 2:
+            raise MeterlinkError(f"{journal_in}: fewer than two frequencies with two or more repeats; an "
+                                 "antenna-factor table needs two or more")
+        afcal.check_plan(dataclasses.replace(bench, freq_hz=freqs))   # in the far field and the bench's tables
+    out = Path(args.out)
+    reg_path = Path(args.register) if args.register else register.default_register(out)
+    template_dir(args.template_dir)
+    if args.pdf and not pdf_available():
+        raise MeterlinkError(PDF_HINT)
+    _fresh_out(out)
+    journal = afcal.Journal(out / "af-journal.csv")
+    rig = None
+    try:
+        if taken is not None:                  # imported: the readings are copied into the new journal
+            for r in taken:
+                journal.add(r)
+            readings = taken
+        else:
+            if bench is None:                  # the simulated standard-field bench on loopback TCP
+                from meterlink.simulators.scpi_afcal import FREQS_HZ, AfRig
+                rig = AfRig(seed=args.seed).__enter__()
+                try:
+                    (out / "simulated-bench.toml").write_text(
+                        rig.bench_toml(freqs_hz=(2e8, 1e9, 6e9) if args.quick else FREQS_HZ), encoding="utf-8")
+                except OSError as exc:
+                    raise MeterlinkError(f"{out}: cannot write simulated-bench.toml ({exc.strerror})") from None
+                bench = afcal.load_af_bench(out / "simulated-bench.toml")
+            readings = afcal.run(bench, journal, repeats=args.repeats)
+    except MeterlinkError as exc:
+        planned = len(bench.freq_hz) * getattr(args, "repeats", 0) if bench else 0
+        try:
+            (out / "partial-event.json").write_text(json.dumps({
+                "event": "bench_stopped", "procedure": "dipole-af",
+                "utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), "reason": str(exc),
+                "readings_measured": journal.count, "readings_not_measured": planned - journal.count}) + "\n")
+        except OSError:
+            pass
+        raise MeterlinkError(f"{exc}; {journal.count} of {planned} readings measured, kept in {journal.path}") from None
+    finally:
+        journal.close()
+        if rig is not None:
+            rig.__exit__()
+    with register.issue(reg_path, session.probe_serial, out / "certificate.toml", session.certificate_number) as no:
+        session = dataclasses.replace(session, certificate_number=no)
+        cal = afcal_report.analyse(session, bench, readings, base)
+        _fresh_out(out)
+        try:
+            (out / "certificate.toml").write_text(dump_certificate(cal.certificate), encoding="utf-8")
+            write_outputs(afcal_report.render(cal, args.template_dir), out / "certificate.html", args.pdf)
+        except OSError as exc:
+            raise MeterlinkError(f"{out}: cannot write the outputs ({exc.strerror})") from None
+    summary = {**afcal_report.summary(cal), "certificate": str(out / "certificate.toml"),
+               "report": str(out / "certificate.html"), "journal": str(journal.path), "register": str(reg_path),
+               "safety": SAFETY_LINE}
+    if args.json:
+        print(json.dumps(summary))
+        return 0
+    from rich.table import Table
+    t = Table(title=f"Antenna factor, dB(1/m) into 50 ohm; certificate U = {summary['u_antenna_factor_db']:.2f} dB, "
+                    "k = 2", title_justify="left")
+    for h in ("frequency", "AF", "U (k = 2)", "previous", "change"):
+        t.add_column(h, justify="right")
+    for p in summary["points"]:
+        t.add_row(f"{p['freq_hz'] / 1e6:g} MHz", f"{p['af_db_per_m']:.2f}", f"{p['u_expanded_db']:.2f}",
+                  f"{p['previous_af_db_per_m']:.2f}", f"{p['af_db_per_m'] - p['previous_af_db_per_m']:+.2f}")
+    console.print(t)
+    if cal.left_out_freq_hz:
+        console.print("left out (one repeat only): " + ", ".join(f"{f / 1e6:g} MHz" for f in cal.left_out_freq_hz),
+                      markup=False)
+    console.print(f"certificate {no}: {summary['certificate']}, report {summary['report']} (entered in the register "
+                  f"{reg_path}); readings in {journal.path}", markup=False)
+    console.print(SAFETY_LINE, markup=False)
+    return 0

@@ -18,6 +18,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--lab-bench", metavar="FILE",
                         help="serve instead a calibration bench (generator, power meter, positioner driving a "
                              "simulated probe on a pty) and write its bench file here, for 'lab run --bench'")
+    parser.add_argument("--af-bench", metavar="FILE",
+                        help="serve instead a standard-field bench (generator, power meter, analyser seeing a "
+                             "simulated dipole) and write its bench file here, for 'lab run dipole-af --bench'")
 
 
 def run(args) -> int:
@@ -37,6 +40,8 @@ def run(args) -> int:
         raise MeterlinkError(f"--port {args.port}: 0 (free ports) or 1..65532")
     if args.lab_bench:
         return _lab_bench(args)
+    if args.af_bench:
+        return _af_bench(args)
     sc = load_scenario(args.scenario)
     analyser = Analyzer(SiteAntenna(sc, at, antenna=args.antenna), seed=args.seed)
     for fault in ("timeout", "garbage", "scpi_error", "disconnect"):
@@ -98,5 +103,24 @@ def _lab_bench(args) -> int:
         for name, addr in a.items():
             print(f"{name} {addr}", flush=True)
         print(f"meter {rig.port}", flush=True)
+        _wait_for_signal()
+    return 0
+
+
+def _af_bench(args) -> int:
+    """Serve the simulated standard-field bench until interrupted; its bench file names the addresses."""
+    from pathlib import Path
+
+    from meterlink.errors import MeterlinkError
+    from meterlink.simulators.scpi_afcal import AfRig
+
+    out = Path(args.af_bench)
+    with AfRig(seed=args.seed) as rig:
+        try:
+            out.write_text(rig.bench_toml(), encoding="utf-8")
+        except OSError as exc:
+            raise MeterlinkError(f"--af-bench {out}: cannot write: {exc.strerror}") from None
+        for name, addr in rig.addresses().items():
+            print(f"{name} {addr}", flush=True)
         _wait_for_signal()
     return 0
