@@ -46,10 +46,14 @@ def conclusion(sv: dict) -> dict:
     measured = [p for p in pts if p["percent_power"] is not None]
     top = max(measured, key=lambda p: p["percent_power"], default=None)
     extrap = [p["verdict_extrapolated"] for p in pts if p["verdict_extrapolated"]]
+    # a selective point at the label of a broadband point above the threshold is that point's follow-up
+    selective = {p["label"] for p in pts if p["mode"] == "selective"}
+    has_max = bool(sv["sources"]) or any(b["extrapolation"] for s in sv.get("selective", []) for b in s["bands"])
     return {"outcome": site_outcome(p["verdict"] for p in pts),
-            "outcome_extrapolated": site_outcome(extrap) if extrap and sv["sources"] else None,
-            "n_points": len(pts), "top": top,
-            "followup": [p for p in pts if p["followup"]],
+            "outcome_extrapolated": site_outcome(extrap) if extrap and has_max else None,
+            "n_points": len(pts), "top": top, "n_selective": len(selective),
+            "followup": [p for p in pts if p["followup"] and p["label"] not in selective],
+            "followup_done": [p for p in pts if p["followup"] and p["label"] in selective],
             "not_assessable": [p for p in pts if p["verdict"] not in _WORST_FIRST or not p["complete"]]}
 
 
