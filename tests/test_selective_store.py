@@ -20,6 +20,7 @@ from pathlib import Path
 
 import pytest
 
+from meterlink.instruments.session import InstrumentError
 from meterlink.physics.certificate import dump_certificate, load_certificate
 from meterlink.simulators.pty_meter import SimulatedMeter
 from meterlink.simulators.scenario import load_scenario
@@ -72,7 +73,7 @@ def test_plan_point_stored_and_reported(surveyed):
     assert sp["label"] == "mast foot" and sp["point_no"] == 2 and sp["analyser_address"] == address
     assert sp["antenna_sha256"] == __import__("hashlib").sha256(
         dump_certificate(load_certificate("demo-dipole")).encode()).hexdigest()
-    assert "simulated" in sp["analyser_idn"].lower() or sp["analyser_idn"]
+    assert sp["analyser_idn"] == Analyzer.IDN
     bands = con.execute("select * from sel_bands where point_id = ? order by band_no", [sp["id"]]).fetchall()
     by_truth = {t["name"]: t["e_v_per_m"] for t in truth}
     assert [b["name"] for b in bands] == list(by_truth)
@@ -102,7 +103,9 @@ def test_plan_point_stored_and_reported(surveyed):
         assert name in text
     assert "P_max/P_during" in text and "operator declaration (invented example)" in text
     assert "1 of the 2 point(s) were measured band by band" in text
-    assert "do not replace" in text or "does not replace" in text or "not replace" in text
+    assert "do not replace" in text
+    rows = (tmp / "report" / "selective.csv").read_text(encoding="utf-8").splitlines()
+    assert len(rows) == 1 + len(by_truth) and rows[0].startswith("point_no,label,band")
 
 
 def test_stored_sweeps_reevaluated_with_another_antenna_file(surveyed, tmp_path):
@@ -129,6 +132,37 @@ def test_stored_sweeps_reevaluated_with_another_antenna_file(surveyed, tmp_path)
         assert abs(20 * math.log10(a["e_v_per_m"] / a["e_stored_v_per_m"])) < 1e-3
         assert b["af_db_per_m"] - b["af_stored_db_per_m"] == pytest.approx(2.0, abs=1e-6)
         assert b["e_v_per_m"] / b["e_stored_v_per_m"] == pytest.approx(1.333521, rel=2e-4)
+
+
+def test_lost_analyser_stops_the_survey_and_keeps_what_was_measured(tmp_path):
+    db = tmp_path / "lost.db"
+    site = SiteAntenna(load_scenario("demo"), POINT_M, antenna="isotropic")
+    inst = Analyzer(site)
+    with ScpiServer(inst) as srv, SimulatedMeter("demo", sensor="probe", seed=6, speed=100.0) as sim:
+        d = plan(srv.address)
+        from meterlink.instruments.analyzer import SpectrumAnalyzer
+        original = SpectrumAnalyzer.sweep
+
+        def sweep_then_fail(self, binary=True):      # the analyser goes away during the fourth sweep
+            if inst.sweeps == 3:
+                inst.faults.disconnect = True
+            return original(self, binary)
+        SpectrumAnalyzer.sweep = sweep_then_fail
+        try:
+            with pytest.raises(InstrumentError) as e:
+                run_plan(sim.port, d, db, mover=sim.move_to)
+        finally:
+            SpectrumAnalyzer.sweep = original
+    assert "\n" not in str(e.value) and srv.address in str(e.value)
+    con = sqlite3.connect(db)
+    # the broadband point measured before stays; no half-stored selective point
+    assert [r[0] for r in con.execute("select mode from survey_points")] == ["spot"]
+    assert con.execute("select count(*) from sel_points").fetchone()[0] == 0
+    (journal,) = tmp_path.glob("lost-survey*-point2-selective.jsonl")
+    lines = [json.loads(x) for x in journal.read_text(encoding="utf-8").splitlines()]
+    assert [x.get("band") for x in lines[1:4]] == ["Tor FM A", "Tor FM B", "Tor DAB"]
+    assert lines[4]["event"] == "instrument_error" and lines[4]["sweeps_measured"] == 3
+    assert lines[4]["sweeps_not_measured"] == 5
 
 
 def test_cli_stores_a_point_in_a_database(tmp_path):

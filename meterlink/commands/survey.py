@@ -55,7 +55,8 @@ def run(args) -> int:
 
             def ready(point, height_m):
                 where = f" at x {point.x_m:g} m, y {point.y_m:g} m" if point.x_m is not None else ""
-                ask(f"Hold the probe at {point.label!r}{where}, {height_m:.2f} m, then press Enter", default="")
+                what = "the antenna" if point.mode == "selective" else "the probe"
+                ask(f"Hold {what} at {point.label!r}{where}, {height_m:.2f} m, then press Enter", default="")
         from meterlink.planning.sourcefile import load_site
         from meterlink.survey.plan import load_plan
         plan = load_plan(args.plan)      # checked before the meter is touched; its sources file too

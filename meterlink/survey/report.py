@@ -222,6 +222,13 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
                                 m["e_extrapolated_v_per_m"], m["ratio"], m["share"]]
                                for p in sv["points"] for m in p["emitters"]]),
              "trace.csv": (list(_TRACE), [[t.get(c) for c in _TRACE] for t in sv["trace"]])}
+    if sv.get("selective"):
+        head = ["point_no", "label", "band", "technology", "freq_hz", "bandwidth_hz", "rbw_hz", "e_v_per_m",
+                "u_expanded_db", "e_limit_v_per_m", "percent_field", "exposure_ratio", "share", "power_factor",
+                "e_at_max_v_per_m", "exposure_ratio_at_max", "antenna_sha256", "analyser_idn"]
+        files["selective.csv"] = (head, [[sp["point_no"], sp["label"], b["name"]] + [b[c] for c in head[3:16]]
+                                         + [sp["antenna_sha256"], sp["analyser_idn"]]
+                                         for sp in sv["selective"] for b in sp["bands"]])
     paths = []
     for name, (head, rows) in files.items():
         _csv(out / name, head, rows)
