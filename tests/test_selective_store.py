@@ -134,6 +134,22 @@ def test_stored_sweeps_reevaluated_with_another_antenna_file(surveyed, tmp_path)
         assert b["e_v_per_m"] / b["e_stored_v_per_m"] == pytest.approx(1.333521, rel=2e-4)
 
 
+def test_salvage_copies_the_selective_rows(surveyed, tmp_path):
+    from meterlink.storage.salvage import salvage
+
+    db = surveyed[0]
+    salvage(db, tmp_path / "copy.db")
+    counts = {}
+    for path in (db, tmp_path / "copy.db"):
+        con = sqlite3.connect(path)
+        counts[path] = [con.execute(f"select count(*), sum(length(quote(id))) from {t}").fetchone()
+                        for t in ("sel_points", "sel_bands", "sel_traces")]
+        blob = con.execute("select group_concat(hex(level_dbm)) from sel_traces order by id").fetchone()[0]
+        counts[path].append(blob)
+        con.close()
+    assert counts[db] == counts[tmp_path / "copy.db"] and counts[db][2][0] == 8
+
+
 def test_lost_analyser_stops_the_survey_and_keeps_what_was_measured(tmp_path):
     db = tmp_path / "lost.db"
     site = SiteAntenna(load_scenario("demo"), POINT_M, antenna="isotropic")

@@ -57,7 +57,11 @@ def run(args) -> int:
     if args.db:
         from meterlink.storage.store import Store
         store = Store(args.db)          # opened first: a database that cannot be used stops before any sweep
-        sid = _session(store, args)
+        try:
+            sid = _session(store, args)
+        except BaseException:
+            store.close()
+            raise
     import time
     t0 = time.time()
     journal = Journal(args.journal)
