@@ -108,7 +108,7 @@ def test_plan_point_stored_and_reported(surveyed):
     assert len(rows) == 1 + len(by_truth) and rows[0].startswith("point_no,label,band")
 
 
-def test_stored_sweeps_reevaluated_with_another_antenna_file(surveyed, tmp_path):
+def test_stored_sweeps_reevaluated_with_another_antenna_file(surveyed, tmp_path, capsys):
     db, sid, _, _, _ = surveyed
     base = load_certificate("demo-dipole")
     # another antenna file: every antenna factor 2.0 dB higher and every cable loss 0.5 dB higher. By hand:
@@ -132,6 +132,16 @@ def test_stored_sweeps_reevaluated_with_another_antenna_file(surveyed, tmp_path)
         assert abs(20 * math.log10(a["e_v_per_m"] / a["e_stored_v_per_m"])) < 1e-3
         assert b["af_db_per_m"] - b["af_stored_db_per_m"] == pytest.approx(2.0, abs=1e-6)
         assert b["e_v_per_m"] / b["e_stored_v_per_m"] == pytest.approx(1.333521, rel=2e-4)
+    # the command shows the same, read only; every band's ratio scales by 10^0.25 = 1.778279 in power
+    from meterlink.cli import main
+    assert main(["reevaluate", "--db", str(db), "--point", str(sp["id"]), "--antenna-cert", str(other), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert [round(b["change_db"], 3) for b in out["bands"]] == [2.5] * 8
+    assert out["total_exposure_ratio"] == pytest.approx(out["total_exposure_ratio_stored"] * 1.778279, rel=5e-4)
+    with Store(db, readonly=True) as store:
+        assert load_points(store, sid)[0]["total_exposure_ratio"] == sp["total_exposure_ratio"]
+    assert main(["reevaluate", "--db", str(db), "--point", "99", "--antenna-cert", str(other)]) == 2
+    assert capsys.readouterr().err.count("\n") == 1
 
 
 def test_salvage_copies_the_selective_rows(surveyed, tmp_path):
