@@ -25,6 +25,9 @@ def test_gsm_four_trx():
 
 
 def test_umts_cpich_ten_percent():
+    # The relation as the "EMF-Messprojekt Berlin" report describes it (read in a reproduction): the CPICH
+    # field is scaled by a factor formed from the CPICH power as set and the installation's maximum transmit
+    # power. It gives no numbers; the values below are worked by hand.
     # P_max 20 W (43 dBm), CPICH 2 W (33 dBm): F = 10 (10 dB); 0.5 V/m -> 0.5 * 3.16228 = 1.58114 V/m
     f = umts_cpich(20.0, 2.0)
     assert f.factor_db == pytest.approx(10.0)
