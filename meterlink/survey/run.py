@@ -197,6 +197,9 @@ class Survey:
         cap = self.capture
         self.interrupt_event.clear()
         if p.mode == "selective":
+            if reason is not None:
+                raise MeterlinkError(f"point {p.label!r}: a selective point is not re-measured in place; every "
+                                     "selective point is kept, so measure it again as a new point")
             return self._measure_selective(p)
         if reason is not None:
             if p.label not in self._numbers:
