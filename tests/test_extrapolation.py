@@ -1,8 +1,10 @@
 """Extrapolation to maximum traffic against values worked by hand from the defining relations.
 
-No worked example of the published guidance (IEC 62232, ITU-T K.100, ECC/REC(02)04) could be read from
-the primary text while this was written, so each expected value below is computed by hand from the
-defining formula in meterlink/physics/extrapolation.py, with the arithmetic shown.
+No numeric worked example of the published guidance (IEC 62232, ITU-T K.100, ECC/REC(02)04, national
+measurement recommendations) could be read from its text when this was written: the stored copies reached
+showed only front matter and introductions. One published relation could be read, the GSM one (test below,
+source named beside it); the other expected values are computed by hand from the defining formulas in
+meterlink/physics/extrapolation.py, with the arithmetic shown.
 """
 
 from __future__ import annotations
@@ -12,7 +14,7 @@ import math
 import pytest
 
 from meterlink.physics.extrapolation import (NR_BEAM_CAVEAT, ExtrapolationError, gsm_bcch, lte_crs, nr_ssb,
-                                             subcarriers, umts_cpich)
+                                             power_ratio, subcarriers, umts_cpich)
 
 
 def test_gsm_four_trx():
@@ -23,6 +25,9 @@ def test_gsm_four_trx():
 
 
 def test_umts_cpich_ten_percent():
+    # The relation as the "EMF-Messprojekt Berlin" report describes it (read in a reproduction): the CPICH
+    # field is scaled by a factor formed from the CPICH power as set and the installation's maximum transmit
+    # power. It gives no numbers; the values below are worked by hand.
     # P_max 20 W (43 dBm), CPICH 2 W (33 dBm): F = 10 (10 dB); 0.5 V/m -> 0.5 * 3.16228 = 1.58114 V/m
     f = umts_cpich(20.0, 2.0)
     assert f.factor_db == pytest.approx(10.0)
@@ -61,3 +66,28 @@ def test_nonsense_inputs_are_refused():
         nr_ssb(3276, tdd_downlink_fraction=1.5)
     with pytest.raises(ExtrapolationError, match="source"):
         lte_crs(1200, actual_max_factor=0.5)
+
+
+def test_gsm_sectors_by_the_published_relation():
+    # Final report "Entwicklung geeigneter Mess- und Berechnungsverfahren zur Ermittlung der Exposition der
+    # Bevölkerung durch elektromagnetische Felder in der Umgebung von Mobilfunk Basisstationen" (research
+    # project for the German Federal Environment Ministry, BMU), annex page A5, eq. (5.4), typed from the text:
+    #   E_max,gesamt = sqrt( sum_{i=1..n} E_i,max^2 * N_i ),  N_i channels of sector i, E_i,max its BCCH field:
+    # "the total of a sector is the BCCH field times the square root of the sector's channel count, and the
+    # sectors' totals add geometrically". Its example station (ch. 2.5, figure 2.5.18) has three sectors of two
+    # channels; the BCCH fields here are invented inputs: 0.30, 0.20, 0.10 V/m, N = 2 each. By the relation:
+    # sqrt(2 * (0.09 + 0.04 + 0.01)) = sqrt(0.28) = 0.529150 V/m.
+    sectors = [(0.30, 2), (0.20, 2), (0.10, 2)]
+    e = math.sqrt(sum((e_bcch * gsm_bcch(n).field_factor) ** 2 for e_bcch, n in sectors))
+    assert e == pytest.approx(0.529150, abs=1e-6)
+    # the same report (same page): when the operator runs below the maximum power applied for, "the ratio of
+    # both transmit powers is to be included": 0.529150 V/m at 10 W of 20 W -> x sqrt(2) = 0.748331 V/m
+    assert e * power_ratio(20.0, 10.0, "operator declaration (invented example)").field_factor == pytest.approx(
+        0.748331, abs=1e-6)
+
+
+def test_power_ratio_needs_its_source_and_sane_powers():
+    with pytest.raises(ExtrapolationError, match="source"):
+        power_ratio(20.0, 10.0, " ")
+    with pytest.raises(ExtrapolationError, match="exceeds"):
+        power_ratio(10.0, 20.0, "declared")

@@ -19,6 +19,11 @@ def add_arguments(parser) -> None:
                         help="analyser absolute level accuracy, half-width in dB (datasheet; default 0.5)")
     parser.add_argument("--sweep-time", type=float, default=0.1, metavar="S", help="sweep time per band (default 0.1 s)")
     parser.add_argument("--timeout", type=float, default=5.0, metavar="S", help="instrument answer timeout (default 5 s)")
+    parser.add_argument("--db", metavar="FILE", help="also store the point in this database (sel_* tables; created if "
+                        "missing); the journal stays the crash-safe log")
+    parser.add_argument("--label", default="selective point", help="label of the point in the database")
+    parser.add_argument("--survey", type=int, metavar="SESSION", help="with --db: add the point to this survey "
+                        "session (its standard and tier apply) instead of a new session of kind 'selective'")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
 
 
@@ -48,17 +53,40 @@ def run(args) -> int:
         if args.antenna == "three":
             input(f"turn the antenna to orientation {axis} and press Enter ")
 
+    store = sid = None
+    if args.db:
+        from meterlink.storage.store import Store
+        store = Store(args.db)          # opened first: a database that cannot be used stops before any sweep
+        try:
+            sid = _session(store, args)
+        except BaseException:
+            store.close()
+            raise
+    import time
+    t0 = time.time()
     journal = Journal(args.journal)
     try:
         with open_session(args.address, timeout_s=args.timeout) as s:
+            idn = s.idn
             journal.write({"event": "analyser", "address": args.address, "idn": s.idn})
             res = measure_point(SpectrumAnalyzer(s), bands, cert, antenna=args.antenna, orient=orient,
                                 chain=ChainSpec(analyser_level_db=args.analyser_level_db),
                                 sweep_time_s=args.sweep_time, journal=journal)
         out = assess_point(res, args.standard, args.tier)
         journal.write({"event": "result", **out})
+        if store is not None:
+            from meterlink.survey.selstore import store_point
+            out["point_id"] = store_point(store, sid, label=args.label, results=res, assessed=out, cert=cert,
+                                          cert_name=args.antenna_cert, antenna_mode=args.antenna, address=args.address,
+                                          idn=idn, t_start_utc=t0, bands_path=str(args.bands),
+                                          analyser_level_db=args.analyser_level_db, journal_path=str(args.journal))
+            out["session_id"] = sid
+            if args.survey is None:
+                store.end_session(sid)
     finally:
         journal.close()
+        if store is not None:
+            store.close()
     if args.json:
         print(json.dumps(out, default=float))
         return 0
@@ -70,5 +98,22 @@ def run(args) -> int:
     print(f"check status: {out['check_status']}")
     for m in out["messages"]:
         print(f"note: {m}")
+    if store is not None:
+        print(f"stored in {args.db}: session {out['session_id']}, selective point {out['point_id']}")
     print(SAFETY_LINE)
     return 0
+
+
+def _session(store, args) -> int:
+    """The survey session named by --survey (its standard and tier must be the ones given), or a new one."""
+    from meterlink.errors import MeterlinkError
+
+    if args.survey is None:
+        return store.begin_session("selective", args.address, notes=args.label)
+    rows = list(store.db["survey"].rows_where("session_id = ?", [args.survey]))
+    if not rows:
+        raise MeterlinkError(f"--survey {args.survey}: no such survey session in {args.db}")
+    if (rows[0]["standard"], rows[0]["tier"]) != (args.standard, args.tier):
+        raise MeterlinkError(f"--survey {args.survey}: that survey uses {rows[0]['standard']} {rows[0]['tier']}; "
+                             f"give --standard {rows[0]['standard']} --tier {rows[0]['tier']}")
+    return args.survey

@@ -15,6 +15,8 @@ def add_arguments(parser) -> None:
                         help=f"database file, created if missing (default: {DEFAULT_DB})")
     parser.add_argument("--gps", metavar="PORT", help="serial device or pyserial URL of a GNSS receiver (NMEA 0183 "
                         "GGA/RMC): every sample is stored with its position (docs/gps.md)")
+    parser.add_argument("--analyser", metavar="ADDRESS", help="VISA address of the spectrum analyser for the plan's "
+                        "selective points (overrides their analyser = ...), e.g. TCPIP::192.0.2.7::5025::SOCKET")
     parser.add_argument("--json", action="store_true", help="no live readout; print the point results as JSON")
 
 
@@ -53,13 +55,18 @@ def run(args) -> int:
 
             def ready(point, height_m):
                 where = f" at x {point.x_m:g} m, y {point.y_m:g} m" if point.x_m is not None else ""
-                ask(f"Hold the probe at {point.label!r}{where}, {height_m:.2f} m, then press Enter", default="")
+                what = "the antenna" if point.mode == "selective" else "the probe"
+                ask(f"Hold {what} at {point.label!r}{where}, {height_m:.2f} m, then press Enter", default="")
         from meterlink.planning.sourcefile import load_site
         from meterlink.survey.plan import load_plan
         plan = load_plan(args.plan)      # checked before the meter is touched; its sources file too
         declared = load_site(plan.sources_file) if plan.sources_file else None
+        orient = None
+        if sys.stdin.isatty():      # a single-axis antenna of a selective point is turned by hand
+            def orient(axis):
+                input(f"turn the antenna to orientation {axis} and press Enter ")
         sid = run_plan(args.port, args.plan, args.db, console=console, ready=ready, gnss_port=args.gps,
-                       declared=declared)
+                       declared=declared, analyser=args.analyser, orient=orient)
     else:
         if args.json:
             raise MeterlinkError("--json needs --plan (the interactive survey asks at the terminal)")
@@ -70,7 +77,8 @@ def run(args) -> int:
     if args.json:
         clean = lambda v: None if isinstance(v, float) and not math.isfinite(v) else v  # noqa: E731
         pts = [{k: clean(v) for k, v in p.items() if k not in ("samples", "emitters")} | {
-            "heights_m": [s["height_m"] for s in p["samples"]]} for p in sv["points"]]
+            "heights_m": [s["height_m"] for s in p["samples"]],
+            "emitters": [{k: clean(v) for k, v in m.items()} for m in p["emitters"]]} for p in sv["points"]]
         print(json.dumps({"session_id": sid, "db": str(args.db), "standard": sv["standard"], "tier": sv["tier"],
                           "decision_rule": sv["decision_rule"], "points": pts, "safety": SAFETY_LINE},
                          indent=2, default=str))

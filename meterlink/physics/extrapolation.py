@@ -144,6 +144,20 @@ def nr_ssb(n_subcarriers: int, *, data_to_sss_db: float = 0.0, tdd_downlink_frac
     return _with_actual_maximum(f, actual_max_factor, actual_max_source)
 
 
+def power_ratio(p_max_w: float, p_measured_w: float, source: str) -> ExtrapolationFactor:
+    """Any technology measured as channel power: F = P_max / P_during, both declared by the operator
+    for the time of the measurement, with the declaration's source."""
+    pm, pd = _pos("P_max", p_max_w), _pos("P during the measurement", p_measured_w)
+    if pd > pm:
+        raise ExtrapolationError("extrapolation: the power during the measurement exceeds P_max")
+    if not str(source).strip():
+        raise ExtrapolationError("extrapolation: a power ratio needs its source (operator declaration, document)")
+    return ExtrapolationFactor("any", "channel power x P_max/P_during", pm / pd,
+                               {"p_max_w": pm, "p_measured_w": pd, "source": str(source).strip()},
+                               "declared transmitter powers: the field scales with the square root of the power",
+                               ("valid only for the powers declared for the time of the measurement",))
+
+
 def subcarriers(bandwidth_resource_blocks: int) -> int:
     """12 subcarriers per resource block (LTE and NR)."""
     return 12 * int(bandwidth_resource_blocks)

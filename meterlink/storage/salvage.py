@@ -29,12 +29,15 @@ _OWNED_BY = {
     "spectrum_values": "calibration_id in (select id from calibrations where session_id = :sid)",
     "survey_samples": "point_id in (select id from survey_points where session_id = :sid)",
     "survey_emitters": "point_id in (select id from survey_points where session_id = :sid)",
+    "sel_bands": "point_id in (select id from sel_points where session_id = :sid)",
+    "sel_traces": "band_id in (select b.id from sel_bands b join sel_points p on p.id = b.point_id "
+                  "where p.session_id = :sid)",
 }
 _GLOBAL_EVENTS = "events of no session"
 # parents before children, so that foreign keys hold while copying
 _ORDER = ("devices", "sessions", "readings", "reading_spans", "spectra", "spectrum_lines", "status", "events",
           "calibrations", "field_values", "field_spans", "spectrum_values", "survey", "survey_sources", "survey_points",
-          "survey_samples", "survey_emitters", "survey_trace")
+          "survey_samples", "survey_emitters", "survey_trace", "sel_points", "sel_bands", "sel_traces")
 
 
 @dataclass

@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 9
+SCHEMA_VERSION = 10
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -259,10 +259,38 @@ def _schema_v9_remeasure(db: sqlite_utils.Database) -> None:
     db.execute("CREATE UNIQUE INDEX survey_points_capture ON survey_points (session_id, point_no, capture_no)")
 
 
+def _schema_v10_selective(db: sqlite_utils.Database) -> None:
+    """Frequency-selective points (meterlink.survey.selstore, docs/selective.md): the point with its
+    analyser and antenna identity, one row per band with its assessed values and extrapolation, and
+    each sweep's trace packed (float32 levels over a linear frequency axis) so that a point can be
+    re-evaluated later with another antenna-factor file."""
+    db.execute("CREATE TABLE sel_points (id INTEGER PRIMARY KEY, session_id INTEGER NOT NULL REFERENCES sessions(id), "
+               "point_no INTEGER, label TEXT NOT NULL, x_m REAL, y_m REAL, height_m REAL, lat_deg REAL, lon_deg REAL, "
+               "antenna_name TEXT NOT NULL, antenna_sha256 TEXT NOT NULL, antenna_text TEXT NOT NULL, "
+               "antenna_mode TEXT NOT NULL, cable TEXT, analyser_address TEXT NOT NULL, analyser_idn TEXT, "
+               "bands_path TEXT, standard TEXT NOT NULL, tier TEXT NOT NULL, summation_rule TEXT, check_status TEXT, "
+               "total_exposure_ratio REAL, total_exposure_ratio_at_max REAL, e_total_v_per_m REAL, "
+               "e_total_at_max_v_per_m REAL, u_expanded_db REAL, analyser_level_db REAL, journal_path TEXT, "
+               "t_start_utc REAL NOT NULL, t_end_utc REAL, complete INTEGER NOT NULL, software_version TEXT)")
+    db.execute("CREATE INDEX sel_points_session ON sel_points (session_id, point_no)")
+    db.execute("CREATE TABLE sel_bands (id INTEGER PRIMARY KEY, point_id INTEGER NOT NULL REFERENCES sel_points(id), "
+               "band_no INTEGER NOT NULL, name TEXT NOT NULL, technology TEXT, freq_hz REAL NOT NULL, "
+               "bandwidth_hz REAL NOT NULL, rbw_hz REAL NOT NULL, window_lo_hz REAL NOT NULL, window_hi_hz REAL NOT NULL, "
+               "p_dbm_json TEXT, af_db_per_m REAL, cable_loss_db REAL, e_v_per_m REAL, u_expanded_db REAL, "
+               "e_limit_v_per_m REAL, percent_field REAL, exposure_ratio REAL, share REAL, "
+               "extrapolation_json TEXT, power_factor REAL, e_at_max_v_per_m REAL, exposure_ratio_at_max REAL, "
+               "UNIQUE (point_id, band_no))")
+    db.execute("CREATE TABLE sel_traces (id INTEGER PRIMARY KEY, band_id INTEGER NOT NULL REFERENCES sel_bands(id), "
+               "orientation TEXT NOT NULL, start_hz REAL NOT NULL, stop_hz REAL NOT NULL, n INTEGER NOT NULL, "
+               "rbw_hz REAL NOT NULL, detector TEXT, sweep_time_s REAL, level_dbm BLOB NOT NULL, t_utc REAL, "
+               "UNIQUE (band_id, orientation))")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
                                                                    5: _schema_v5_monitoring, 6: _schema_v6_sync,
                                                                    7: _schema_v7_positions, 8: _schema_v8_field_spans,
-                                                                   9: _schema_v9_remeasure}
+                                                                   9: _schema_v9_remeasure,
+                                                                   10: _schema_v10_selective}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

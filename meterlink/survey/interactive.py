@@ -87,7 +87,7 @@ def _ask_point(ask, n: int, console=None):
         label = ask(f"Point {n} label (empty to finish)", default="")
         if not label.strip():
             return None
-        d = {"label": label, "mode": ask("Mode", default="spot", choices=list(MODES))}
+        d = {"label": label, "mode": ask("Mode", default="spot", choices=[m for m in MODES if m != "selective"])}
         try:
             d["height_m"] = float(ask("Height above ground (m)", default="1.5"))
             if d["mode"] == "spatial":

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-MODES = ("spot", "sweep", "average", "spatial")
+MODES = ("spot", "sweep", "average", "spatial", "selective")
 
 
 @dataclass(frozen=True)
@@ -48,6 +48,21 @@ class Scheme:
 
 
 @dataclass(frozen=True)
+class SelectiveSpec:
+    """A frequency-selective point's chain (docs/selective.md): band file, antenna certificate and how the
+    antenna is used, the analyser's VISA address (the command line's --analyser overrides), and per band
+    the declared extrapolation ((band name, ((key, value), ...)), ...)."""
+
+    bands_path: str
+    antenna_cert: str
+    antenna: str = "isotropic"
+    analyser: str = ""
+    extrapolation: tuple = ()
+    analyser_level_db: float = 0.5
+    sweep_time_s: float = 0.1
+
+
+@dataclass(frozen=True)
 class Point:
     """One measurement point of the plan; x/y are local site metres, lat/lon optional."""
 
@@ -63,6 +78,7 @@ class Point:
     duration_s: float | None = None     # device seconds; None = mode default
     scheme: Scheme | None = None        # spatial mode only
     walk_m: tuple[tuple[float, float], ...] = ()   # sweep mode: x/y waypoints walked at height_m
+    selective: SelectiveSpec | None = None         # selective mode only
 
     def position_m(self, height_m: float | None = None) -> tuple[float, float, float] | None:
         """(x, y, z) of the probe at this point, or None without a local position."""

@@ -10,7 +10,7 @@ import tomllib
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError, read_input_text
-from meterlink.survey.model import MODES, FollowUp, Point, Site, Source, SurveyPlan
+from meterlink.survey.model import MODES, FollowUp, Point, SelectiveSpec, Site, Source, SurveyPlan
 from meterlink.survey.spatial import SCHEMES, scheme_from
 
 _TOP = {"survey", "site", "source", "point", "report"}   # [report]: read by survey/report.py
@@ -20,7 +20,9 @@ _SURVEY = {"title", "standard", "tier", "rule", "certificate", "interval_ms", "f
 _SITE = {"name", "address", "operator", "technician", "latitude_deg", "longitude_deg", "notes"}
 _SOURCE = {"name", "freq_hz", "technology", "power_w", "max_power_w", "notes"}
 _POINT = {"label", "mode", "height_m", "x_m", "y_m", "lat_deg", "lon_deg", "notes", "near_field",
-          "duration_s", "scheme", "n", "heights_m", "walk_m", "photos"}   # photos: read by survey/report.py
+          "duration_s", "scheme", "n", "heights_m", "walk_m", "photos",   # photos: read by survey/report.py
+          "bands", "antenna_cert", "antenna", "analyser", "extrapolation", "analyser_level_db", "sweep_time_s"}
+_SELECTIVE = ("bands", "antenna_cert", "antenna", "analyser", "extrapolation", "analyser_level_db", "sweep_time_s")
 
 
 # Bounds that no real survey comes near, so that a typing slip is caught when the plan is loaded
@@ -93,6 +95,34 @@ def _read(path_or_dict) -> tuple[dict, str, str]:
         raise PlanError(f"plan {p}: not valid TOML ({exc})") from None
 
 
+def _selective(c: _Ctx, d: dict, what: str) -> SelectiveSpec:
+    """The chain of a selective point; the band file is checked here, relative to the plan's folder."""
+    from meterlink.survey.selective import ORIENTATIONS, check_extrapolation, load_bands
+
+    bands = c.text(d, "bands", what, required=True)
+    p = Path(bands)
+    if not p.is_absolute() and c.where != "<dict>":
+        p = Path(c.where).parent / p
+    try:
+        loaded = load_bands(p)
+    except MeterlinkError as exc:
+        c.fail(what, str(exc))
+    antenna = c.text(d, "antenna", what, default="isotropic")
+    if antenna not in ORIENTATIONS:
+        c.fail(what, f"antenna {antenna!r} is not one of {', '.join(ORIENTATIONS)}")
+    ex = d.get("extrapolation", {})
+    if not isinstance(ex, dict) or not all(isinstance(v, dict) for v in ex.values()):
+        c.fail(what, "extrapolation must be a table of band name -> table of inputs")
+    try:
+        check_extrapolation(ex, loaded)
+    except MeterlinkError as exc:
+        c.fail(what, str(exc))
+    return SelectiveSpec(str(p), c.text(d, "antenna_cert", what, required=True), antenna, c.text(d, "analyser", what),
+                         tuple((k, tuple(sorted(v.items()))) for k, v in ex.items()),
+                         c.num(d, "analyser_level_db", what, default=0.5, lo=0.0, hi=10.0),
+                         c.num(d, "sweep_time_s", what, default=0.1, positive=True, hi=3600.0))
+
+
 def _point(c: _Ctx, d: dict, i: int) -> Point:
     what = f"point {i}"
     c.known(d, _POINT, what)
@@ -121,6 +151,9 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
             c.fail(what, str(exc))
     elif any(k in d for k in ("scheme", "n", "heights_m")):
         c.fail(what, "scheme, n and heights_m belong to mode 'spatial'")
+    sel = _selective(c, d, what) if mode == "selective" else None
+    if sel is None and any(k in d for k in _SELECTIVE):
+        c.fail(what, f"{next(k for k in _SELECTIVE if k in d)} belongs to mode 'selective'")
     walk = d.get("walk_m", [])
     if walk and mode != "sweep":
         c.fail(what, "walk_m belongs to mode 'sweep'")
@@ -139,7 +172,7 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
                  lon_deg=c.num(d, "lon_deg", what, lo=-180, hi=180), notes=c.text(d, "notes", what),
                  near_field=near, duration_s=c.num(d, "duration_s", what, positive=True, hi=MAX_DURATION_S),
                  scheme=scheme,
-                 walk_m=tuple((float(a), float(b)) for a, b in walk))
+                 walk_m=tuple((float(a), float(b)) for a, b in walk), selective=sel)
 
 
 def load_plan(path_or_dict) -> SurveyPlan:
@@ -191,8 +224,9 @@ def load_plan(path_or_dict) -> SurveyPlan:
                               c.text(s, "notes", what)))
     raw_points = c.tables(doc, "point")
     points = tuple(_point(c, p, i) for i, p in enumerate(raw_points, 1))
-    labels = [p.label for p in points]
-    dup = next((lb for lb in labels if labels.count(lb) > 1), None)
+    # a label names one broadband point and at most one selective point (its frequency-selective follow-up)
+    labels = [(p.label, p.mode == "selective") for p in points]
+    dup = next((lb for lb, s in labels if labels.count((lb, s)) > 1), None)
     if dup is not None:
         c.fail("points", f"label {dup!r} is used twice")
     interval = c.num(sv, "interval_ms", "[survey]", default=1000, lo=10, hi=3_600_000)

@@ -46,10 +46,14 @@ def conclusion(sv: dict) -> dict:
     measured = [p for p in pts if p["percent_power"] is not None]
     top = max(measured, key=lambda p: p["percent_power"], default=None)
     extrap = [p["verdict_extrapolated"] for p in pts if p["verdict_extrapolated"]]
+    # a selective point at the label of a broadband point above the threshold is that point's follow-up
+    selective = {p["label"] for p in pts if p["mode"] == "selective"}
+    has_max = bool(sv["sources"]) or any(b["extrapolation"] for s in sv.get("selective", []) for b in s["bands"])
     return {"outcome": site_outcome(p["verdict"] for p in pts),
-            "outcome_extrapolated": site_outcome(extrap) if extrap and sv["sources"] else None,
-            "n_points": len(pts), "top": top,
-            "followup": [p for p in pts if p["followup"]],
+            "outcome_extrapolated": site_outcome(extrap) if extrap and has_max else None,
+            "n_points": len(pts), "top": top, "n_selective": len(selective),
+            "followup": [p for p in pts if p["followup"] and p["label"] not in selective],
+            "followup_done": [p for p in pts if p["followup"] and p["label"] in selective],
             "not_assessable": [p for p in pts if p["verdict"] not in _WORST_FIRST or not p["complete"]]}
 
 
@@ -218,6 +222,13 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
                                 m["e_extrapolated_v_per_m"], m["ratio"], m["share"]]
                                for p in sv["points"] for m in p["emitters"]]),
              "trace.csv": (list(_TRACE), [[t.get(c) for c in _TRACE] for t in sv["trace"]])}
+    if sv.get("selective"):
+        head = ["point_no", "label", "band", "technology", "freq_hz", "bandwidth_hz", "rbw_hz", "e_v_per_m",
+                "u_expanded_db", "e_limit_v_per_m", "percent_field", "exposure_ratio", "share", "power_factor",
+                "e_at_max_v_per_m", "exposure_ratio_at_max", "antenna_sha256", "analyser_idn"]
+        files["selective.csv"] = (head, [[sp["point_no"], sp["label"], b["name"]] + [b[c] for c in head[3:16]]
+                                         + [sp["antenna_sha256"], sp["analyser_idn"]]
+                                         for sp in sv["selective"] for b in sp["bands"]])
     paths = []
     for name, (head, rows) in files.items():
         _csv(out / name, head, rows)

@@ -51,8 +51,13 @@ class Survey:
     def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
                  on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
                  link_factory=None, gnss_port: str | None = None, gnss_factory=None, gnss_max_age_s: float = 2.0,
-                 declared=None, **link_options):
+                 declared=None, analyser: str | None = None, journal_dir=None, orient: Callable | None = None,
+                 analyser_timeout_s: float = 5.0, **link_options):
         self.store, self.port, self.plan = store, port, plan
+        self.analyser = analyser        # VISA address of the spectrum analyser for selective points (overrides the plan)
+        self.journal_dir = journal_dir  # where selective points' journals go (default: beside the database)
+        self.orient = orient            # orient(axis): turn a single-axis antenna (selective points, antenna "three")
+        self.analyser_timeout_s = analyser_timeout_s
         self.gnss_port = gnss_port
         self.declared = declared      # planning Site of the plan's sources file (read by the caller), or None
         self.gnss = None
@@ -191,6 +196,11 @@ class Survey:
         the conclusion, and both stay in the record."""
         cap = self.capture
         self.interrupt_event.clear()
+        if p.mode == "selective":
+            if reason is not None:
+                raise MeterlinkError(f"point {p.label!r}: a selective point is not re-measured in place; every "
+                                     "selective point is kept, so measure it again as a new point")
+            return self._measure_selective(p)
         if reason is not None:
             if p.label not in self._numbers:
                 raise MeterlinkError(f"point {p.label!r} has not been measured in this survey: nothing to re-measure")
@@ -198,7 +208,7 @@ class Survey:
                 raise MeterlinkError(f"point {p.label!r}: a re-measurement needs its reason")
             no = self._numbers[p.label]
         else:
-            no = len(self._numbers) + 1
+            no = max(self._numbers.values(), default=0) + 1
         heights = p.scheme.heights_m if p.mode == "spatial" and p.scheme else (p.height_m,)
         dur = self._duration(p)
         samples, interrupted = [], False
@@ -249,6 +259,30 @@ class Survey:
         self.results.append(res)
         return res
 
+    def _measure_selective(self, p: Point) -> PointResult:
+        """A frequency-selective point over the analyser: bands swept, journal written band by band, then the
+        point stored (survey_points and survey_emitters as for any point, the full record in sel_*)."""
+        from meterlink.survey.selective_point import measure_selective_point
+
+        spec = p.selective
+        address = self.analyser or spec.analyser
+        if not address:
+            raise MeterlinkError(f"point {p.label!r}: no analyser address (give analyser = \"...\" in the plan "
+                                 "or --analyser)")
+        no = max(self._numbers.values(), default=0) + 1
+        if p.position_m() is not None and self.mover is not None:
+            self.mover(p.position_m())
+        elif self.ready is not None:
+            self.ready(p, p.height_m)
+        from pathlib import Path
+        jdir = Path(self.journal_dir) if self.journal_dir else Path(self.store.path).parent
+        journal = jdir / f"{Path(self.store.path).stem}-survey{self.session_id}-point{no}-selective.jsonl"
+        res = measure_selective_point(self.store, self.session_id, no, self.plan, p, address, journal, self.ref,
+                                      orient=self.orient, timeout_s=self.analyser_timeout_s)
+        self._numbers[f"{p.label}\x00selective"] = no
+        self.results.append(res)
+        return res
+
     def _max_hold(self, s, no, k):
         used = [t for t in self.capture.trace if t["point_no"] == no and t["sample_no"] == k and t["used"]
                 and t["e_v_per_m"] is not None and math.isfinite(t["e_v_per_m"])]
@@ -268,7 +302,8 @@ class Survey:
 
 def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Callable | None = None,
              on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
-             gnss_port: str | None = None, declared=None, **link_options) -> int:
+             gnss_port: str | None = None, declared=None, analyser: str | None = None, orient: Callable | None = None,
+             **link_options) -> int:
     """Measure every point of a plan against the meter on port; returns the survey session id.
 
     mover(position_m) is called to place the probe (the simulated meter's move_to); without it,
@@ -286,7 +321,8 @@ def run_plan(port: str, plan_path_or_dict, db_path, *, console=None, mover: Call
                 ready(point, height_m)
 
         with Survey(store, port, plan, mover=mover, on_view=live.update, ready=ready_seen if ready else None,
-                    gnss_port=gnss_port, declared=declared, **link_options) as sv:
+                    gnss_port=gnss_port, declared=declared, analyser=analyser, orient=orient,
+                    **link_options) as sv:
             for p in plan.points:
                 try:
                     res = sv.measure(p)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import math
+import time
 import tomllib
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -76,6 +77,53 @@ def load_bands(path) -> list[Band]:
     return out
 
 
+#: extrapolation methods a plan may declare for a swept band, and the inputs each takes
+_METHODS = {"gsm-bcch": ({"n_trx"}, {"actual_max_factor", "actual_max_source"}),
+            "power-ratio": ({"p_max_w", "p_measured_w", "source"}, set())}
+#: pilot-based methods that need the pilot's own level (a decoder), which a swept channel power does not give
+_PILOT = {"umts-cpich": "the CPICH code power", "lte-rs": "the reference signal per resource element",
+          "nr-ssb": "the SSS per resource element of the SS/PBCH block"}
+CARRIER_MAX_HZ = 300e3
+
+
+def check_extrapolation(spec: dict, bands) -> dict:
+    """Band name -> ExtrapolationFactor from a plan's declarations; a one-line error names the band and the
+    problem (unknown band or method, missing or unknown input, a method the swept band cannot support)."""
+    from meterlink.physics.extrapolation import ExtrapolationError, gsm_bcch, power_ratio
+
+    by_name = {b.name: b for b in bands}
+    out = {}
+    for name, d in spec.items():
+        where = f"extrapolation of band {name!r}"
+        if name not in by_name:
+            raise ExtrapolationError(f"{where}: no such band in the band file (bands: {', '.join(by_name)})")
+        method = d.get("method")
+        if method in _PILOT:
+            raise ExtrapolationError(f"{where}: {method} scales {_PILOT[method]}, which a swept channel power does "
+                                     "not give (it needs a decoder); declare method \"power-ratio\" with the "
+                                     "operator's powers instead")
+        if method not in _METHODS:
+            raise ExtrapolationError(f"{where}: method {method!r} is not one of {', '.join(_METHODS)}")
+        need, optional = _METHODS[method]
+        keys = set(d) - {"method"}
+        if need - keys or keys - need - optional:
+            bad = sorted(need - keys) or sorted(keys - need - optional)
+            raise ExtrapolationError(f"{where}: {'missing' if need - keys else 'unknown'} input {bad[0]!r} "
+                                     f"(method {method} takes {', '.join(sorted(need | optional))})")
+        try:
+            if method == "gsm-bcch":
+                if by_name[name].bandwidth_hz > CARRIER_MAX_HZ:
+                    raise ExtrapolationError(f"{where}: gsm-bcch needs the BCCH carrier swept alone (bandwidth at "
+                                             f"most {CARRIER_MAX_HZ / 1e3:g} kHz), not a {by_name[name].bandwidth_hz / 1e6:g} MHz band")
+                out[name] = gsm_bcch(d["n_trx"], actual_max_factor=d.get("actual_max_factor"),
+                                     actual_max_source=str(d.get("actual_max_source", "")))
+            else:
+                out[name] = power_ratio(d["p_max_w"], d["p_measured_w"], d["source"])
+        except (TypeError, ValueError):
+            raise ExtrapolationError(f"{where}: inputs must be numbers (and the source text)") from None
+    return out
+
+
 @dataclass
 class BandResult:
     """One band measured in each orientation: channel powers (dBm at the analyser input) and fields."""
@@ -91,6 +139,9 @@ class BandResult:
     e_v_per_m: float = float("nan")
     u_expanded_db: float = float("nan")
     budget: list = field(default_factory=list)
+    af_db_per_m: float = float("nan")                   # antenna factor and cable loss at the centre, as applied
+    cable_loss_db: float = float("nan")
+    traces: dict = field(default_factory=dict)          # orientation -> the sweep as taken (Trace), kept for storing
 
 
 class Journal:
@@ -109,6 +160,23 @@ class Journal:
 
     def close(self) -> None:
         self.f.close()
+
+
+@dataclass(frozen=True)
+class Trace:
+    """One sweep as the analyser gave it: a linear frequency axis and float32 levels (dBm at its input)."""
+
+    start_hz: float
+    stop_hz: float
+    rbw_hz: float
+    detector: str
+    sweep_time_s: float
+    level_dbm: np.ndarray
+    t_utc: float
+
+    @property
+    def freq_hz(self) -> np.ndarray:
+        return np.linspace(self.start_hz, self.stop_hz, self.level_dbm.size)
 
 
 def _sweep_band(analyser, band: Band, sweep_time_s: float):
@@ -145,7 +213,10 @@ def measure_point(analyser, bands, cert, *, antenna: str = "isotropic", orient=N
                                    "sweeps_not_measured": total - done, "band": b.name, "orientation": axis})
                 raise
             p_w = channel_power_w(sw.freq_hz, sw.level_dbm, sw.rbw_hz, *win)
-            e = float(e_from_input_power_v_per_m(p_w, af_db_per_m(cert, b.freq_hz), cable_loss_db(cert, b.freq_hz)))
+            r.af_db_per_m, r.cable_loss_db = float(af_db_per_m(cert, b.freq_hz)), float(cable_loss_db(cert, b.freq_hz))
+            e = float(e_from_input_power_v_per_m(p_w, r.af_db_per_m, r.cable_loss_db))
+            r.traces[axis] = Trace(float(sw.freq_hz[0]), float(sw.freq_hz[-1]), float(sw.rbw_hz), sw.detector,
+                                   float(sw.sweep_time_s), np.asarray(sw.level_dbm, dtype=np.float32), time.time())
             r.p_dbm[axis] = 10 * math.log10(p_w / 1e-3) if p_w > 0 else float("-inf")
             r.e_axes_v_per_m[axis] = e
             done += 1
@@ -180,7 +251,7 @@ def assess_point(results: list[BandResult], standard: str, tier: str, factors=No
         ex = multi_frequency(f, standard=standard, tier=tier, e_v_per_m=e * fe, labels=names)
         out["total_exposure_ratio_at_max"] = ex.total
     for i, r in enumerate(results):
-        row = asdict(r)
+        row = {k: v for k, v in asdict(r).items() if k != "traces"}
         row["exposure_ratio"] = float(mf.emitter_ratio[i])
         row["share"] = float(mf.share[i])
         u = r.u_expanded_db

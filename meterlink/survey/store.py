@@ -134,5 +134,7 @@ def load_survey(store: Store, session_id: int) -> dict:
                                replaced_by_capture=by_id[p["replaced_by"]]["capture_no"])
                           for p in every if p["replaced_by"] is not None]
         sv["trace"] = list(db["survey_trace"].rows_where("session_id = ?", [session_id], order_by="t_utc, id"))
+    from meterlink.survey.selstore import load_points
+    sv["selective"] = load_points(store, session_id)
     sv["session"] = store.session(session_id)
     return sv
