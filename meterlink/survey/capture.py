@@ -123,6 +123,7 @@ class Capture:
         self.followup = followup_v_per_m
         self.gnss, self.gnss_max_age_s = gnss, float(gnss_max_age_s)
         self.connected: Connected | None = None
+        self.epoch = 0          # a resumed survey (a re-measurement later) stores its readings in a new epoch
         self.temp_c: float | None = None
         self.temps_c: list[float] = []       # every temperature the meter reported, in order
         self.battery_pct: int | None = None
@@ -138,10 +139,10 @@ class Capture:
     def _item(self, item) -> Value | None:
         w = self.writer
         if isinstance(item, Reading):
-            w.add_reading(reading_row(item))
+            w.add_reading(reading_row(item, self.epoch))
             return self._probe(item)
         if isinstance(item, SpectrumReading):
-            w.add_spectrum(spectrum_row(item))
+            w.add_spectrum(spectrum_row(item, self.epoch))
             return self._dipole(item)
         if isinstance(item, StatusReport):
             w.add_status(status_row(item))
