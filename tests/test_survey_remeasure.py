@@ -159,3 +159,30 @@ def test_cli_remeasure_bad_input_is_one_line_before_the_meter(stored, capsys, ar
     assert main(["survey", "--port", str(tmp / "no-meter"), "--db", str(tmp / "s.db"), *args]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and message in err[0], err
+
+
+def test_cli_remeasure_with_another_instrument_is_refused_and_changes_nothing(stored, capsys):
+    from meterlink.cli import main
+
+    tmp, sid, _ = stored
+    with Store(tmp / "s.db", readonly=True) as store:
+        before = load_survey(store, sid)
+        n_first = store.db.execute("select count(*) from readings where session_id = ? and epoch = 0",
+                                   [sid]).fetchone()[0]
+    with SimulatedMeter("demo", sensor="dipole", seed=34, speed=100.0) as other:
+        assert main(["survey", "--port", other.port, "--db", str(tmp / "s.db"), "--session", str(sid),
+                     "--remeasure", "far", "--reason", "r"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"is not the one of survey {sid}" in err[0] and "same instrument" in err[0], err
+    with Store(tmp / "s.db", readonly=True) as store:
+        after = load_survey(store, sid)
+    assert [p["id"] for p in after["points"]] == [p["id"] for p in before["points"]]
+    assert after["session"]["ended_utc"] == before["session"]["ended_utc"]
+    with Store(tmp / "s.db", readonly=True) as store:      # what the other meter sent is kept apart, and said
+        (msg,) = store.db.execute("select message from events where session_id = ? and kind = 'remeasure_refused'",
+                                  [sid]).fetchone()
+        epoch = int(msg.rsplit("epoch ", 1)[1])
+        assert store.db.execute("select reason from epochs where id = ? and session_id = ?",
+                                [epoch, sid]).fetchone() == ("re-measurement",)
+        assert store.db.execute("select count(*) from readings where session_id = ? and epoch = 0",
+                                [sid]).fetchone()[0] == n_first

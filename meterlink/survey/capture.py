@@ -140,10 +140,11 @@ class Capture:
         w = self.writer
         if isinstance(item, Reading):
             w.add_reading(reading_row(item, self.epoch))
-            return self._probe(item)
+            # a meter of the other sensor kind (refused at the handshake): stored raw, never calibrated
+            return None if isinstance(self.cert, DipoleCertificate) else self._probe(item)
         if isinstance(item, SpectrumReading):
             w.add_spectrum(spectrum_row(item, self.epoch))
-            return self._dipole(item)
+            return self._dipole(item) if isinstance(self.cert, DipoleCertificate) else None
         if isinstance(item, StatusReport):
             w.add_status(status_row(item))
             st = item.status

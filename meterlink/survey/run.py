@@ -112,6 +112,10 @@ class Survey:
                                      f"{f / 1e6:.1f} MHz"),
                 followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m), gnss=self.gnss,
                 gnss_max_age_s=self.gnss_max_age_s)
+            if self.resume is not None:     # from the first reading on: never among the earlier ones
+                row = epoch_row(self.session_id, None, "re-measurement")
+                self._writer.add_epoch(row)
+                self.capture.epoch = row["id"]
             self._connect()
             self._first_fix()
             if self.resume is None:
@@ -137,9 +141,9 @@ class Survey:
                                    f"{i.fw_major}.{i.fw_minor}.{i.fw_patch}", f"{i.proto_major}.{i.proto_minor}")
         if self.resume is not None:
             self._resumed(c, dev)
-            return
-        self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
-                                  clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
+        else:
+            self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
+                                      clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
         if (i.sensor_kind == SensorKind.DIPOLE_RX) != self.dipole:
             raise MeterlinkError(f"certificate {self.plan.certificate!r} is for a "
                                  f"{'dipole receiver' if self.dipole else 'probe'} but the meter on {self.port} "
@@ -152,14 +156,15 @@ class Survey:
         i = c.ident
         if ses["device_id"] is not None and (ses["device_serial"], ses["device_probe_serial"]) != (i.serial,
                                                                                                 i.probe_serial):
+            self._writer.add_event("remeasure_refused", "warning", f"another instrument on {self.port} (serial "
+                                   f"{i.serial}, probe {i.probe_serial}): nothing measured; its readings stay in "
+                                   f"epoch {self.capture.epoch}", epoch=self.capture.epoch, device_id=dev)
             raise MeterlinkError(f"the meter on {self.port} (serial {i.serial}, probe {i.probe_serial}) is not the one "
                                  f"of survey {self.session_id} (serial {ses['device_serial']}, probe "
                                  f"{ses['device_probe_serial']}): re-measure with the same instrument")
-        row = epoch_row(self.session_id, c.boot, "re-measurement", dev)
-        self._writer.add_epoch(row)
-        self.capture.epoch = row["id"]
         self._writer.add_event("survey_resumed", "info", f"survey {self.session_id} resumed on {self.port} to "
-                               "re-measure", epoch=row["id"])
+                               f"re-measure (meter serial {i.serial}, probe {i.probe_serial}, boot {c.boot})",
+                               epoch=self.capture.epoch, device_id=dev)
 
     def __exit__(self, *exc) -> None:
         self.link.stop()
