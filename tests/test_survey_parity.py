@@ -131,7 +131,7 @@ def both(tmp_path_factory):
     (tmp / "gate.png").rename(tmp / "gate-moved.png")
     out = {}
     for name, db, sid in (("scripted", tmp / "s.db", sid_s), ("interactive", tmp / "i.db", sid_i)):
-        html = write_report(db, sid, tmp / name, pdf=True).read_text(encoding="utf-8")
+        html = write_report(db, sid, tmp / name, pdf=name == "interactive").read_text(encoding="utf-8")
         with Store(db, readonly=True) as store:
             out[name] = (html, load_survey(store, sid), tmp / name / "report.pdf")
     return tmp, out
