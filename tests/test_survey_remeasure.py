@@ -96,3 +96,93 @@ def test_a_schema_4_file_gets_migration_9_with_its_points_as_first_captures(tmp_
         assert (row["capture_no"], row["replaced_by"], row["remeasure_reason"], row["e_v_per_m"]) == (1, None, None, 1.5)
         with pytest.raises(sqlite3.IntegrityError):       # one row per (session, point, capture)
             store.db["survey_points"].insert({"session_id": 1, "point_no": 1, "label": "a", "mode": "spot"})
+
+
+@pytest.fixture(scope="module")
+def stored(tmp_path_factory):
+    """A survey stored by run_plan and closed: the one a technician comes back to."""
+    tmp = tmp_path_factory.mktemp("cli-remeasure")
+    sim = SimulatedMeter("demo", seed=33, speed=100.0)
+    with sim:
+        from meterlink.survey.run import run_plan
+        sid = run_plan(sim.port, PLAN, tmp / "s.db", mover=sim.move_to)
+        yield tmp, sid, sim
+
+
+def test_cli_measures_a_point_of_a_stored_survey_again_with_its_reason_and_photo(stored, capsys):
+    import json
+
+    from meterlink.cli import main
+    from test_survey_parity import _png
+
+    tmp, sid, sim = stored
+    (tmp / "gate.png").write_bytes(_png())
+    with Store(tmp / "s.db", readonly=True) as store:
+        before = load_survey(store, sid)
+    sim.move_to((4.0, -4.0, 1.5))          # the technician stands where the plan meant: near the mast
+    assert main(["survey", "--port", sim.port, "--db", str(tmp / "s.db"), "--session", str(sid),
+                 "--remeasure", "1", "--reason", "gate <i>misread</i>", "--photo", str(tmp / "gate.png"),
+                 "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["point"]["label"] == "gate" and out["reason"] == "gate <i>misread</i>"
+    with Store(tmp / "s.db", readonly=True) as store:
+        sv = load_survey(store, sid)
+        epochs = store.db.execute("select reason from epochs where session_id = ?", [sid]).fetchall()
+        n_epoch = store.db.execute("select count(*) from readings where session_id = ? and epoch != 0",
+                                   [sid]).fetchone()[0]
+    gate = next(p for p in sv["points"] if p["label"] == "gate")
+    (old,) = sv["replaced"]
+    assert gate["capture_no"] == 2 and gate["point_no"] == 1 and old["id"] == before["points"][0]["id"]
+    assert old["reason"] == "gate <i>misread</i>" and gate["percent_power"] == out["point"]["percent_power"]
+    assert gate["percent_power"] > 2 * old["percent_power"]
+    assert [p["label"] for p in sv["points"]] == ["gate", "far"] and sv["standard"] == before["standard"]
+    # the new capture's readings are in a new epoch of the same session, the earlier ones untouched
+    assert ("re-measurement",) in epochs and n_epoch >= gate["n_readings"]
+    assert sv["photos"][1][0][0] == "gate.png"
+    html = render_html(sv, {})
+    assert "gate &lt;i&gt;misread&lt;/i&gt;" in html and "<i>misread</i>" not in html
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--session", "99", "--remeasure", "gate", "--reason", "r"], "session 99"),
+    (["--session", "SID", "--remeasure", "gatepost", "--reason", "r"], "has no point 'gatepost' (points: 1 'gate', 2 'far')"),
+    (["--session", "SID", "--remeasure", "gate", "--reason", "  "], "needs its reason"),
+    (["--session", "SID", "--remeasure", "gate"], "needs its reason"),
+    (["--session", "SID", "--reason", "r"], "go with --remeasure POINT"),
+    (["--session", "SID", "--remeasure", "gate", "--reason", "r", "--photo", "nowhere.jpg"], "nowhere.jpg"),
+])
+def test_cli_remeasure_bad_input_is_one_line_before_the_meter(stored, capsys, args, message):
+    from meterlink.cli import main
+
+    tmp, sid, _ = stored
+    args = [str(sid) if a == "SID" else a for a in args]
+    assert main(["survey", "--port", str(tmp / "no-meter"), "--db", str(tmp / "s.db"), *args]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and message in err[0], err
+
+
+def test_cli_remeasure_with_another_instrument_is_refused_and_changes_nothing(stored, capsys):
+    from meterlink.cli import main
+
+    tmp, sid, _ = stored
+    with Store(tmp / "s.db", readonly=True) as store:
+        before = load_survey(store, sid)
+        n_first = store.db.execute("select count(*) from readings where session_id = ? and epoch = 0",
+                                   [sid]).fetchone()[0]
+    with SimulatedMeter("demo", sensor="dipole", seed=34, speed=100.0) as other:
+        assert main(["survey", "--port", other.port, "--db", str(tmp / "s.db"), "--session", str(sid),
+                     "--remeasure", "far", "--reason", "r"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"is not the one of survey {sid}" in err[0] and "same instrument" in err[0], err
+    with Store(tmp / "s.db", readonly=True) as store:
+        after = load_survey(store, sid)
+    assert [p["id"] for p in after["points"]] == [p["id"] for p in before["points"]]
+    assert after["session"]["ended_utc"] == before["session"]["ended_utc"]
+    with Store(tmp / "s.db", readonly=True) as store:      # what the other meter sent is kept apart, and said
+        (msg,) = store.db.execute("select message from events where session_id = ? and kind = 'remeasure_refused'",
+                                  [sid]).fetchone()
+        epoch = int(msg.rsplit("epoch ", 1)[1])
+        assert store.db.execute("select reason from epochs where id = ? and session_id = ?",
+                                [epoch, sid]).fetchone() == ("re-measurement",)
+        assert store.db.execute("select count(*) from readings where session_id = ? and epoch = 0",
+                                [sid]).fetchone()[0] == n_first

@@ -134,10 +134,23 @@ def test_options_override_number_and_revision(survey, capsys):
     assert "Report SR-9, revision 3" in html and "SR-&lt;b&gt;77" not in html
 
 
-def test_a_missing_photo_is_one_line(survey, capsys):
+def test_a_moved_photo_is_still_embedded_and_without_a_kept_copy_a_missing_one_is_one_line(survey, capsys):
+    import sqlite3
+
     tmp, _ = survey
+    png = (tmp / "near.png").read_bytes()
+    uri = "data:image/png;base64," + base64.b64encode(png).decode()
     (tmp / "near.png").rename(tmp / "moved.png")
     try:
+        # copied into the database when the point was measured (schema version 10)
+        assert main(["render", str(tmp / "s.db"), "--out", str(tmp / "k")]) == 0
+        assert uri in (tmp / "k" / "report.html").read_text(encoding="utf-8")
+        # a survey stored before photos were kept: the plan's file is read, and its absence is one line
+        con = sqlite3.connect(tmp / "s.db")
+        con.execute("delete from survey_photos")
+        con.commit()
+        con.close()
+        capsys.readouterr()
         assert main(["render", str(tmp / "s.db"), "--out", str(tmp / "m")]) == 2
     finally:
         (tmp / "moved.png").rename(tmp / "near.png")

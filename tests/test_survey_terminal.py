@@ -131,12 +131,15 @@ def test_interactive_survey_ctrl_d_at_the_next_label_keeps_the_point_measured(tm
     term = Terminal("survey", "--port", meter.port, "--db", db)
     for prompt, answer in (("Site name", b"Harrow Common\r"), ("Technician", b"\r"), ("Standard", b"\r"),
                            ("Tier", b"\r"), ("Decision rule", b"\r"), ("Certificate", b"\r"), ("Follow-up", b"\r"),
-                           ("Point 1 label", b"stile\r"), ("Mode", b"\r"), ("Height", b"\r"),
-                           ("Duration", b"3\r"), ("Notes", b"\r")):
+                           ("Declared frequency", b"\r"), ("Source 1 name", b"\r"), ("Sources file", b"\r"),
+                           ("Report number", b"\r"), ("Point 1 label", b"stile\r"), ("Mode", b"\r"), ("Height", b"\r"),
+                           ("Position", b"\r"), ("Duration", b"3\r"), ("Notes", b"\r"), ("Photo of", b"\r")):
         term.expect(prompt)
         term.send(answer)
     term.expect("Hold the probe at 'stile'")
     assert "survey readout" not in term.shown_within(0.5)
+    term.send(b"\r")
+    term.expect("Measure a point again")
     term.send(b"\r")
     term.expect("Point 2 label")
     term.send(CTRL_D)
@@ -169,8 +172,9 @@ def test_interactive_ctrl_d_at_the_hold_prompt_ends_cleanly(tmp_path, meter):
     term = Terminal("survey", "--port", meter.port, "--db", db)
     for prompt, answer in (("Site name", b"Harrow Common\r"), ("Technician", b"\r"), ("Standard", b"\r"),
                            ("Tier", b"\r"), ("Decision rule", b"\r"), ("Certificate", b"\r"), ("Follow-up", b"\r"),
-                           ("Point 1 label", b"stile\r"), ("Mode", b"\r"), ("Height", b"\r"),
-                           ("Duration", b"3\r"), ("Notes", b"\r")):
+                           ("Declared frequency", b"\r"), ("Source 1 name", b"\r"), ("Sources file", b"\r"),
+                           ("Report number", b"\r"), ("Point 1 label", b"stile\r"), ("Mode", b"\r"), ("Height", b"\r"),
+                           ("Position", b"\r"), ("Duration", b"3\r"), ("Notes", b"\r"), ("Photo of", b"\r")):
         term.expect(prompt)
         term.send(answer)
     term.expect("Hold the probe at 'stile'")

@@ -18,6 +18,13 @@ def add_arguments(parser) -> None:
     parser.add_argument("--analyser", metavar="ADDRESS", help="VISA address of the spectrum analyser for the plan's "
                         "selective points (overrides their analyser = ...), e.g. TCPIP::192.0.2.7::5025::SOCKET")
     parser.add_argument("--json", action="store_true", help="no live readout; print the point results as JSON")
+    again = parser.add_argument_group("measure a point of a stored survey again")
+    again.add_argument("--session", metavar="ID", help="the stored survey (see 'meterlink sessions')")
+    again.add_argument("--remeasure", metavar="POINT", help="label or number of the point to measure again: the new "
+                       "capture replaces the old one in the conclusion, both stay in the record")
+    again.add_argument("--reason", metavar="TEXT", help="why the point is measured again (shown in the report)")
+    again.add_argument("--photo", metavar="FILE", action="append", default=[],
+                       help="a PNG or JPEG photo of the point, copied into the database (repeatable)")
 
 
 def result_dict(r) -> dict:
@@ -43,6 +50,8 @@ def run(args) -> int:
 
     if not args.port:
         raise MeterlinkError("no --port given (see 'meterlink ports')")
+    if args.remeasure is not None or args.session is not None or args.reason is not None or args.photo:
+        return _remeasure(args)
     console = None if args.json else Console()
     if args.plan:
         import sys
@@ -70,8 +79,9 @@ def run(args) -> int:
     else:
         if args.json:
             raise MeterlinkError("--json needs --plan (the interactive survey asks at the terminal)")
+        from meterlink.planning.sourcefile import load_site
         from meterlink.survey.interactive import run_interactive
-        sid = run_interactive(args.port, args.db, console=console, gnss_port=args.gps)
+        sid = run_interactive(args.port, args.db, console=console, gnss_port=args.gps, load_declared=load_site)
     with Store(args.db) as store:
         sv = load_survey(store, sid)
     if args.json:
@@ -85,5 +95,48 @@ def run(args) -> int:
     else:
         console.print(f"survey session {sid} stored in {args.db}: {len(sv['points'])} point(s); "
                       f"'meterlink report --db {args.db} --session {sid} --out DIR' writes the report")
+        console.print(SAFETY_LINE, style="bold")
+    return 0
+
+
+def _remeasure(args) -> int:
+    """``--session ID --remeasure POINT --reason TEXT``: one point of a stored survey measured again."""
+    import json
+    import sys
+
+    from rich.console import Console
+
+    from meterlink.cli import SAFETY_LINE
+    from meterlink.errors import MeterlinkError
+    from meterlink.survey.remeasure import remeasure
+
+    if args.remeasure is None or args.session is None:
+        raise MeterlinkError("--session, --reason and --photo go with --remeasure POINT: give the survey "
+                             "(--session ID) and the point to measure again")
+    if args.plan:
+        raise MeterlinkError("--remeasure measures a point of a stored survey: it takes no --plan")
+    try:
+        sid = int(args.session)
+    except ValueError:
+        raise MeterlinkError(f"--session {args.session!r} is not a whole number") from None
+    console = None if args.json else Console()
+    ready = None
+    if console is not None and sys.stdin.isatty():
+        from meterlink.survey.interactive import rich_ask
+        ask = rich_ask(console)
+
+        def ready(point, height_m):
+            ask(f"Hold the probe at {point.label!r}, {height_m:.2f} m, then press Enter", default="")
+    try:
+        res = remeasure(args.port, args.db, sid, args.remeasure, args.reason or "", photos=args.photo,
+                        console=console, ready=ready, gnss_port=args.gps)
+    except EOFError:
+        raise MeterlinkError("input ended before the point was measured again: the survey is unchanged") from None
+    if args.json:
+        print(json.dumps({"session_id": sid, "db": str(args.db), "reason": args.reason.strip(),
+                          "point": result_dict(res), "safety": SAFETY_LINE}, indent=2, default=str))
+    else:
+        console.print(f"point {res.point.label!r} of survey {sid} measured again; the earlier capture stays in "
+                      "the record with the reason")
         console.print(SAFETY_LINE, style="bold")
     return 0

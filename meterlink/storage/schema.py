@@ -13,7 +13,7 @@ import sqlite_utils
 from meterlink.storage import spans
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 10
+SCHEMA_VERSION = 11
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -286,11 +286,21 @@ def _schema_v10_selective(db: sqlite_utils.Database) -> None:
                "UNIQUE (band_id, orientation))")
 
 
+def _schema_v11_photos(db: sqlite_utils.Database) -> None:
+    """Photos of survey points kept in the file itself (bytes, type, checksum), so that a report still
+    embeds them when the original image file has moved or gone."""
+    db.execute("CREATE TABLE survey_photos (id INTEGER PRIMARY KEY, session_id INTEGER NOT NULL "
+               "REFERENCES survey(session_id), point_no INTEGER NOT NULL, name TEXT NOT NULL, mime TEXT NOT NULL, "
+               "data BLOB NOT NULL, sha256 TEXT NOT NULL, source_path TEXT, added_utc REAL NOT NULL, "
+               "UNIQUE (session_id, point_no, sha256))")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
                                                                    5: _schema_v5_monitoring, 6: _schema_v6_sync,
                                                                    7: _schema_v7_positions, 8: _schema_v8_field_spans,
                                                                    9: _schema_v9_remeasure,
-                                                                   10: _schema_v10_selective}
+                                                                   10: _schema_v10_selective,
+                                                                   11: _schema_v11_photos}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

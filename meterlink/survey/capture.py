@@ -123,6 +123,7 @@ class Capture:
         self.followup = followup_v_per_m
         self.gnss, self.gnss_max_age_s = gnss, float(gnss_max_age_s)
         self.connected: Connected | None = None
+        self.epoch = 0          # a resumed survey (a re-measurement later) stores its readings in a new epoch
         self.temp_c: float | None = None
         self.temps_c: list[float] = []       # every temperature the meter reported, in order
         self.battery_pct: int | None = None
@@ -138,11 +139,12 @@ class Capture:
     def _item(self, item) -> Value | None:
         w = self.writer
         if isinstance(item, Reading):
-            w.add_reading(reading_row(item))
-            return self._probe(item)
+            w.add_reading(reading_row(item, self.epoch))
+            # a meter of the other sensor kind (refused at the handshake): stored raw, never calibrated
+            return None if isinstance(self.cert, DipoleCertificate) else self._probe(item)
         if isinstance(item, SpectrumReading):
-            w.add_spectrum(spectrum_row(item))
-            return self._dipole(item)
+            w.add_spectrum(spectrum_row(item, self.epoch))
+            return self._dipole(item) if isinstance(self.cert, DipoleCertificate) else None
         if isinstance(item, StatusReport):
             w.add_status(status_row(item))
             st = item.status

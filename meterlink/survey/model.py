@@ -79,6 +79,7 @@ class Point:
     scheme: Scheme | None = None        # spatial mode only
     walk_m: tuple[tuple[float, float], ...] = ()   # sweep mode: x/y waypoints walked at height_m
     selective: SelectiveSpec | None = None         # selective mode only
+    photos: tuple[str, ...] = ()        # image files (paths as resolved when the plan was read)
 
     def position_m(self, height_m: float | None = None) -> tuple[float, float, float] | None:
         """(x, y, z) of the probe at this point, or None without a local position."""

@@ -20,7 +20,7 @@ _SURVEY = {"title", "standard", "tier", "rule", "certificate", "interval_ms", "f
 _SITE = {"name", "address", "operator", "technician", "latitude_deg", "longitude_deg", "notes"}
 _SOURCE = {"name", "freq_hz", "technology", "power_w", "max_power_w", "notes"}
 _POINT = {"label", "mode", "height_m", "x_m", "y_m", "lat_deg", "lon_deg", "notes", "near_field",
-          "duration_s", "scheme", "n", "heights_m", "walk_m", "photos",   # photos: read by survey/report.py
+          "duration_s", "scheme", "n", "heights_m", "walk_m", "photos",
           "bands", "antenna_cert", "antenna", "analyser", "extrapolation", "analyser_level_db", "sweep_time_s"}
 _SELECTIVE = ("bands", "antenna_cert", "antenna", "analyser", "extrapolation", "analyser_level_db", "sweep_time_s")
 
@@ -39,8 +39,9 @@ class PlanError(MeterlinkError):
 
 
 class _Ctx:
-    def __init__(self, where: str):
+    def __init__(self, where: str, base: Path | None = None):
         self.where = where
+        self.base = base if base is not None else Path(".")   # folder that relative photo names start from
 
     def fail(self, what: str, problem: str):
         raise PlanError(f"plan {self.where}: {what}: {problem}")
@@ -161,6 +162,10 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
             isinstance(w, list) and len(w) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
                                                          and abs(v) <= MAX_SITE_M for v in w) for w in walk):
         c.fail(what, "walk_m must be a list of [x, y] pairs in metres")
+    photos = d.get("photos", [])
+    if isinstance(photos, str) or not isinstance(photos, list) or not all(
+            isinstance(f, str) and f.strip() for f in photos):
+        c.fail(what, "photos must be a list of file names")
     near = d.get("near_field", False)
     if not isinstance(near, bool):
         c.fail(what, f"near_field must be true or false, got {near!r}")
@@ -172,16 +177,18 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
                  lon_deg=c.num(d, "lon_deg", what, lo=-180, hi=180), notes=c.text(d, "notes", what),
                  near_field=near, duration_s=c.num(d, "duration_s", what, positive=True, hi=MAX_DURATION_S),
                  scheme=scheme,
-                 walk_m=tuple((float(a), float(b)) for a, b in walk), selective=sel)
+                 walk_m=tuple((float(a), float(b)) for a, b in walk), selective=sel,
+                 photos=tuple(str(c.base / f) for f in photos))
 
 
-def load_plan(path_or_dict) -> SurveyPlan:
-    """Load and check a plan (a TOML file path or an already parsed dict)."""
+def load_plan(path_or_dict, *, check_photos: bool = True) -> SurveyPlan:
+    """Load and check a plan (a TOML file path or an already parsed dict); the photos it names must
+    be PNG or JPEG files (relative to the plan's folder) unless check_photos is false."""
     from meterlink.physics.limits import reference_level
     from meterlink.physics.verdict import get_rule
 
     doc, where, text = _read(path_or_dict)
-    c = _Ctx(where)
+    c = _Ctx(where, Path(where).parent if where != "<dict>" else None)
     c.known(doc, _TOP, "top level")
     sv, st = doc.get("survey", {}), doc.get("site", {})
     c.known(sv, _SURVEY, "[survey]")
@@ -229,6 +236,15 @@ def load_plan(path_or_dict) -> SurveyPlan:
     dup = next((lb for lb, s in labels if labels.count((lb, s)) > 1), None)
     if dup is not None:
         c.fail("points", f"label {dup!r} is used twice")
+    if check_photos:
+        from meterlink.survey.photos import read_photo
+
+        for p in points:      # before the meter is touched: a photo that cannot be kept is found now
+            for f in p.photos:
+                try:
+                    read_photo(f, p.label)
+                except MeterlinkError as exc:
+                    raise PlanError(f"plan {where}: {exc}") from None
     interval = c.num(sv, "interval_ms", "[survey]", default=1000, lo=10, hi=3_600_000)
     return SurveyPlan(
         site=site, standard=std, tier=tier, rule=rule,
@@ -253,3 +269,35 @@ def _sources_file(c: _Ctx, sv: dict, where: str) -> str:
     if not p.is_absolute() and where != "<dict>":
         p = Path(where).parent / p
     return str(p)
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        if isinstance(v, float) and not math.isfinite(v):
+            raise ValueError(f"not a finite number: {v!r}")
+        return repr(v)
+    if isinstance(v, str):      # a TOML basic string: JSON's escapes, and DEL escaped too
+        import json
+        return json.dumps(v, ensure_ascii=False).replace("\x7f", "\\u007f")
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise ValueError(f"cannot write {v!r} to a plan")
+
+
+def dump_plan(doc: dict) -> str:
+    """A plan dict (tables [survey], [site], [report] and arrays [[source]], [[point]]) as TOML text
+    that load_plan reads back to the same dict: what an interactive survey stores as its plan."""
+    out = []
+    for key, val in doc.items():
+        tables = val if isinstance(val, list) else [val]
+        for t in tables:
+            out.append(f"[[{key}]]" if isinstance(val, list) else f"[{key}]")
+            out += [f"{k} = {_toml_value(v)}" for k, v in t.items() if v is not None]
+            out.append("")
+    text = "\n".join(out)
+    if tomllib.loads(text) != {k: ([{a: b for a, b in t.items() if b is not None} for t in v] if isinstance(v, list)
+                                   else {a: b for a, b in v.items() if b is not None}) for k, v in doc.items()}:
+        raise ValueError("the plan does not read back as written")       # a bug, never the user's input
+    return text

@@ -23,6 +23,21 @@ def _safe(s, max_chars: int = 32) -> str:
 _png = figure_png
 
 
+def _runs(rows: list[dict]) -> list[tuple[int, list[dict]]]:
+    """The used rows of each capture, in trace order: a run ends where another point starts, or where
+    the same point settles again at the same or an earlier height (it was measured again)."""
+    runs: list[tuple[int, list[dict]]] = []
+    prev = None
+    for t in rows:
+        again = (prev is not None and not t["used"] and prev["used"] and t["sample_no"] <= prev["sample_no"])
+        if prev is None or t["point_no"] != prev["point_no"] or again:
+            runs.append((t["point_no"], []))
+        if t["used"]:
+            runs[-1][1].append(t)
+        prev = t
+    return [(no, run) for no, run in runs if run]
+
+
 def walk_plot(trace: list[dict], points: list[dict], e_ref_v_per_m: float, followup_v_per_m=None) -> bytes:
     """Field of every reading along the survey (device time), points labelled, limit marked."""
     fig = Figure(figsize=(8.0, 3.2), layout="constrained")
@@ -34,12 +49,16 @@ def walk_plot(trace: list[dict], points: list[dict], e_ref_v_per_m: float, follo
             sel = [t for t in rows if t["used"] == used]
             ax.plot([(t["t_device_s"] - t0) / 60 for t in sel], [t["e_v_per_m"] for t in sel], ".", ms=2.5,
                     color=colour, label=lab)
-        for p in points:
-            ts = [t["t_device_s"] for t in rows if t["point_no"] == p["point_no"] and t["used"]]
-            if ts:
-                ax.annotate(_safe(p["label"]), ((sum(ts) / len(ts) - t0) / 60, max(
-                    t["e_v_per_m"] for t in rows if t["point_no"] == p["point_no"] and t["used"])),
-                    textcoords="offset points", xytext=(0, 6), ha="center", fontsize=7)
+        labels = {p["point_no"]: p["label"] for p in points}
+        runs = _runs(rows)
+        for i, (no, run) in enumerate(runs):
+            if no not in labels:
+                continue
+            later = any(n == no for n, _ in runs[i + 1:])      # a capture replaced by a re-measurement
+            ax.annotate(_safe(labels[no]) + (" (replaced)" if later else ""),
+                        ((sum(t["t_device_s"] for t in run) / len(run) - t0) / 60, max(t["e_v_per_m"] for t in run)),
+                        textcoords="offset points", xytext=(0, 6), ha="center", fontsize=7,
+                        color=_MUTED if later else "black")
     ax.axhline(e_ref_v_per_m, color=_LIMIT, lw=1, label=f"reference level {e_ref_v_per_m:.1f} V/m")
     if followup_v_per_m:
         ax.axhline(followup_v_per_m, color=_LIMIT, lw=0.8, ls=":", label="follow-up threshold")

@@ -28,7 +28,6 @@ CAUTIONS = (
 #: Site outcomes, worst first: the site takes the worst outcome of its assessable points.
 _WORST_FIRST = ("not compliant", "conditional fail", "conditional pass", "compliant")
 _REPORT_KEYS = {"number", "revision", "assessor", "qualification", "organisation", "date"}
-_IMAGE_MAGIC = {b"\x89PNG\r\n\x1a\n": "image/png", b"\xff\xd8\xff": "image/jpeg"}
 
 
 def site_outcome(verdicts) -> str:
@@ -82,26 +81,24 @@ def report_meta(sv: dict, overrides: dict | None = None) -> dict:
 
 
 def point_photos(sv: dict) -> dict[str, list[tuple[str, str]]]:
-    """Per point label, its photos as (file name, data: URI), read from the files the plan names
-    (relative to the plan's folder); a missing or non-image file is a one-line error."""
-    import base64
+    """Per point label, its photos as (file name, data: URI): those kept in the database (copied when
+    the point was measured, schema version 11); for a point with none kept (a survey recorded before),
+    read from the files the plan names (relative to the plan's folder), a missing or non-image file
+    being a one-line error."""
+    from meterlink.survey.photos import data_uri, read_photo
 
+    kept = sv.get("photos") or {}
+    out = {p["label"]: kept[p["point_no"]] for p in sv["points"] if p["point_no"] in kept}
     base = Path(sv.get("plan_path") or ".").parent
-    out = {}
     for i, pt in enumerate(_plan_doc(sv).get("point", []), 1):
         names = pt.get("photos", []) if isinstance(pt, dict) else []
         if isinstance(names, str) or not isinstance(names, list) or not all(isinstance(n, str) for n in names):
             raise MeterlinkError(f"plan {sv.get('plan_path')}: point {i}: photos must be a list of file names")
+        if pt.get("label") in out:
+            continue
         for name in names:
-            path = base / name
-            try:
-                data = path.read_bytes()
-            except OSError as exc:
-                raise MeterlinkError(f"photo {str(path)!r} of point {pt.get('label')!r}: {exc.strerror}") from None
-            mime = next((m for magic, m in _IMAGE_MAGIC.items() if data.startswith(magic)), None)
-            if mime is None:
-                raise MeterlinkError(f"photo {str(path)!r} of point {pt.get('label')!r} is not a PNG or JPEG image")
-            out.setdefault(pt.get("label"), []).append((name, f"data:{mime};base64,{base64.b64encode(data).decode()}"))
+            mime, data = read_photo(base / name, pt.get("label"))
+            out.setdefault(pt.get("label"), []).append((name, data_uri(mime, data)))
     return out
 
 

@@ -14,7 +14,7 @@ from meterlink.physics.certificate import DipoleCertificate, certificate_status,
 from meterlink.errors import LinkError, MeterlinkError
 from meterlink.device.link import Connected, MeterLink
 from meterlink.device.protocol import SensorKind
-from meterlink.storage.store import BatchWriter, Store
+from meterlink.storage.store import BatchWriter, Store, epoch_row
 from meterlink.survey import store as sstore
 from meterlink.survey.assess import assess, broadband_reference, point_temperatures
 from meterlink.survey.capture import Capture, View
@@ -52,12 +52,13 @@ class Survey:
                  on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
                  link_factory=None, gnss_port: str | None = None, gnss_factory=None, gnss_max_age_s: float = 2.0,
                  declared=None, analyser: str | None = None, journal_dir=None, orient: Callable | None = None,
-                 analyser_timeout_s: float = 5.0, **link_options):
+                 analyser_timeout_s: float = 5.0, resume: int | None = None, **link_options):
         self.store, self.port, self.plan = store, port, plan
         self.analyser = analyser        # VISA address of the spectrum analyser for selective points (overrides the plan)
         self.journal_dir = journal_dir  # where selective points' journals go (default: beside the database)
         self.orient = orient            # orient(axis): turn a single-axis antenna (selective points, antenna "three")
         self.analyser_timeout_s = analyser_timeout_s
+        self.resume = resume            # session id of a stored survey to add re-measurements to, or None
         self.gnss_port = gnss_port
         self.declared = declared      # planning Site of the plan's sources file (read by the caller), or None
         self.gnss = None
@@ -96,10 +97,16 @@ class Survey:
                 self.gnss.stop()
             raise
         try:
-            self.session_id = self.store.begin_session(
-                "survey", self.port, interval_ms=plan.interval_ms, freq_hz=plan.freq_hz,
-                band_lo_hz=plan.band_hz[0] if plan.band_hz else None,
-                band_hi_hz=plan.band_hz[1] if plan.band_hz else None, notes=plan.title or plan.site.name)
+            if self.resume is not None:
+                self.session_id = self.resume
+                self._numbers = {str(lb): int(no) for lb, no in self.store.db.execute(
+                    "SELECT label, point_no FROM survey_points WHERE session_id = ? AND replaced_by IS NULL",
+                    [self.resume]).fetchall()}
+            else:
+                self.session_id = self.store.begin_session(
+                    "survey", self.port, interval_ms=plan.interval_ms, freq_hz=plan.freq_hz,
+                    band_lo_hz=plan.band_hz[0] if plan.band_hz else None,
+                    band_hi_hz=plan.band_hz[1] if plan.band_hz else None, notes=plan.title or plan.site.name)
             self._writer = BatchWriter(self.store, self.session_id)
             names = {s.freq_hz: s.name for s in plan.sources}
             self.capture = Capture(
@@ -110,11 +117,16 @@ class Survey:
                                      f"{f / 1e6:.1f} MHz"),
                 followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m), gnss=self.gnss,
                 gnss_max_age_s=self.gnss_max_age_s)
+            if self.resume is not None:     # from the first reading on: never among the earlier ones
+                row = epoch_row(self.session_id, None, "re-measurement")
+                self._writer.add_epoch(row)
+                self.capture.epoch = row["id"]
             self._connect()
             self._first_fix()
-            sstore.create_survey(self.store, self.session_id, plan, self.cert, self.ref,
-                                 "dipole" if self.dipole else "probe", gnss_port=self.gnss_port,
-                                 declared=self.declared)
+            if self.resume is None:
+                sstore.create_survey(self.store, self.session_id, plan, self.cert, self.ref,
+                                     "dipole" if self.dipole else "probe", gnss_port=self.gnss_port,
+                                     declared=self.declared)
         except BaseException:
             self.__exit__(None, None, None)
             raise
@@ -132,12 +144,32 @@ class Survey:
         i = c.ident
         dev = self.store.device_id(i.model, i.serial, i.probe_serial, i.cert_ref, i.sensor_kind,
                                    f"{i.fw_major}.{i.fw_minor}.{i.fw_patch}", f"{i.proto_major}.{i.proto_minor}")
-        self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
-                                  clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
+        if self.resume is not None:
+            self._resumed(c, dev)
+        else:
+            self.store.update_session(self.session_id, device_id=dev, interval_ms=c.interval_ms, clock_boot=c.boot,
+                                      clock_tick0_ms=c.mapping.tick0_ms, clock_utc0_s=c.mapping.utc0_s)
         if (i.sensor_kind == SensorKind.DIPOLE_RX) != self.dipole:
             raise MeterlinkError(f"certificate {self.plan.certificate!r} is for a "
                                  f"{'dipole receiver' if self.dipole else 'probe'} but the meter on {self.port} "
                                  f"reports sensor kind {i.sensor_kind}")
+
+    def _resumed(self, c: Connected, dev: int) -> None:
+        """A stored survey measured again: the same meter and probe as before (its certificate was fixed
+        with the survey), its readings in a new epoch of the session so they never meet the earlier ones."""
+        ses = self.store.session(self.session_id)
+        i = c.ident
+        if ses["device_id"] is not None and (ses["device_serial"], ses["device_probe_serial"]) != (i.serial,
+                                                                                                i.probe_serial):
+            self._writer.add_event("remeasure_refused", "warning", f"another instrument on {self.port} (serial "
+                                   f"{i.serial}, probe {i.probe_serial}): nothing measured; its readings stay in "
+                                   f"epoch {self.capture.epoch}", epoch=self.capture.epoch, device_id=dev)
+            raise MeterlinkError(f"the meter on {self.port} (serial {i.serial}, probe {i.probe_serial}) is not the one "
+                                 f"of survey {self.session_id} (serial {ses['device_serial']}, probe "
+                                 f"{ses['device_probe_serial']}): re-measure with the same instrument")
+        self._writer.add_event("survey_resumed", "info", f"survey {self.session_id} resumed on {self.port} to "
+                               f"re-measure (meter serial {i.serial}, probe {i.probe_serial}, boot {c.boot})",
+                               epoch=self.capture.epoch, device_id=dev)
 
     def __exit__(self, *exc) -> None:
         self.link.stop()
@@ -148,7 +180,7 @@ class Survey:
                 self.capture.drain()
                 self._gnss_summary()
             self._writer.close()
-        if self.session_id is not None:
+        if self.session_id is not None and (self.resume is None or self.results):
             self.store.end_session(self.session_id)
             if "survey" in self.store.db.table_names() and self.store.db["survey"].count_where(
                     "session_id = ?", [self.session_id]):
@@ -255,6 +287,12 @@ class Survey:
             self.n_unpositioned += len(cap.trace) - n_pos
         sstore.add_point(self.store, self.session_id, no, res, cap.trace, reason)
         self._numbers.setdefault(p.label, no)
+        if p.photos:        # checked when given; one gone since is kept as an event, the point stays stored
+            from meterlink.survey.photos import store_photos
+            try:
+                store_photos(self.store, self.session_id, no, p.label, p.photos)
+            except MeterlinkError as exc:
+                self._writer.add_event("photo_not_kept", "warning", f"{exc}: not copied into the survey")
         cap.trace = []
         self.results.append(res)
         return res

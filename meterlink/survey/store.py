@@ -12,6 +12,7 @@ from meterlink import __version__
 from meterlink.errors import MeterlinkError
 from meterlink.storage.store import Store, StorageError
 from meterlink.survey.model import PointResult, SurveyPlan
+from meterlink.survey.photos import stored_photos
 
 
 def _num(v):
@@ -105,13 +106,20 @@ def _geo_cols(geo) -> dict:
             "fix_utc": geo.fix_utc, "n_positioned": geo.n_positioned}
 
 
+def set_plan_text(store: Store, session_id: int, text: str) -> None:
+    """The plan text of an interactive survey, grown by one [[point]] per point measured."""
+    with store.write():
+        store.db["survey"].update(session_id, {"plan_text": text})
+
+
 def end_survey(store: Store, session_id: int) -> None:
     with store.write():
         store.db["survey"].update(session_id, {"ended_utc": time.time()})
 
 
 def load_survey(store: Store, session_id: int) -> dict:
-    """The survey row, its sources, points (each with samples and emitters) and trace."""
+    """The survey row, its sources, points (each with samples and emitters), the captures replaced by
+    a re-measurement, the photos kept in the file (point_no -> [(name, data URI)]) and the trace."""
     db = store.db
     with store._lock:
         if "survey" not in db.table_names():
@@ -133,6 +141,7 @@ def load_survey(store: Store, session_id: int) -> dict:
         sv["replaced"] = [dict(p, reason=by_id[p["replaced_by"]]["remeasure_reason"],
                                replaced_by_capture=by_id[p["replaced_by"]]["capture_no"])
                           for p in every if p["replaced_by"] is not None]
+        sv["photos"] = stored_photos(db, session_id)
         sv["trace"] = list(db["survey_trace"].rows_where("session_id = ?", [session_id], order_by="t_utc, id"))
     from meterlink.survey.selstore import load_points
     sv["selective"] = load_points(store, session_id)
