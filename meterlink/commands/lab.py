@@ -66,7 +66,7 @@ def _session(path):
     year = dt.timedelta(days=365)
     # dated the day it runs, numbered from the register; the invented standards stay in calibration
     return dataclasses.replace(
-        s, certificate_number="", cal_date=today, due_date=today + year, issue_date=today, received_date=None,
+        s, certificate_number="", cal_date=today, due_date=today + year if s.due_date else None, issue_date=today, received_date=None,
         operator="demo", references=tuple(dataclasses.replace(r, due_date=max(r.due_date, today + year))
                                           for r in s.references))
 

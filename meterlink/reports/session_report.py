@@ -240,7 +240,7 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
         ("probe or antenna", s.get("device_probe_serial")),
         ("firmware / protocol", f"{s.get('device_fw_version')} / {s.get('device_protocol_version')}"),
         ("port", s.get("port")), ("session notes", s.get("notes")),
-        ("certificate applied", cal["certificate_name"]), ("certificate due", cert.due_date),
+        ("certificate applied", cal["certificate_name"]), ("certificate due", cert.due_date or "not stated on the certificate"),
         ("certificate SHA-256", cal["certificate_sha256"]),
         ("recorded", f"{T.utc(float(np.nanmin(series.t_utc)))} to {T.utc(float(np.nanmax(series.t_utc)))} "
                      f"(device clock)" if len(series.t_utc) else "-")]
