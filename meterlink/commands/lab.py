@@ -138,6 +138,7 @@ def _save_partial(out, done, planned: int, why: str) -> str:
     """Write the steps taken so far (readings CSV, importable with 'lab import') and an event; say where."""
     import datetime as dt
     import json
+
     from pathlib import Path
 
     from meterlink.lab import procedures as pr
@@ -207,7 +208,8 @@ def _factor_table(cal):
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
     from pathlib import Path
 
     from rich.console import Console
@@ -225,7 +227,7 @@ def run(args) -> int:
     if args.action == "budget":
         b = calibration_budget(session, args.type_a_db)
         if args.json:
-            print(json.dumps({"rows": [{"name": r.name, "value_db": r.value, "distribution": r.distribution,
+            print(digits.dumps({"rows": [{"name": r.name, "value_db": r.value, "distribution": r.distribution,
                                         "divisor": r.divisor, "sensitivity": r.sensitivity, "u_db": r.u_db,
                                         "note": n} for r, n in zip(b.budget.rows, b.notes)],
                               "u_c_db": b.budget.u_c_db, "k": b.budget.k, "u_expanded_db": b.u_expanded_db}))
@@ -282,7 +284,7 @@ def run(args) -> int:
                "statement": cmp.statement if cmp else None, "notice": cmp.notice if cmp else "",
                "safety": SAFETY_LINE}
     if args.json:
-        print(json.dumps(summary))
+        print(digits.dumps(summary))
     else:
         console.print(_budget_table(cal.budget))
         console.print(_factor_table(cal))

@@ -29,7 +29,8 @@ def result_dict(r) -> dict:
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
     import math
 
     from rich.console import Console
@@ -71,7 +72,7 @@ def run(args) -> int:
         clean = lambda v: None if isinstance(v, float) and not math.isfinite(v) else v  # noqa: E731
         pts = [{k: clean(v) for k, v in p.items() if k not in ("samples", "emitters")} | {
             "heights_m": [s["height_m"] for s in p["samples"]]} for p in sv["points"]]
-        print(json.dumps({"session_id": sid, "db": str(args.db), "standard": sv["standard"], "tier": sv["tier"],
+        print(digits.dumps({"session_id": sid, "db": str(args.db), "standard": sv["standard"], "tier": sv["tier"],
                           "decision_rule": sv["decision_rule"], "points": pts, "safety": SAFETY_LINE},
                          indent=2, default=str))
     else:

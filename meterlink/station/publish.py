@@ -20,6 +20,7 @@ from json.encoder import encode_basestring_ascii as _encode_str
 import numpy as np
 
 from meterlink.errors import MeterlinkError
+from meterlink.reports.digits import rounded, rounded_array, tidy
 from meterlink.safetext import clean_text, clean_tree, csv_cell
 from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_bounds, period_stats, profiles
 from meterlink.physics.units import Z0_OHM
@@ -235,10 +236,13 @@ def _series_chunks(conn, t0: float, t1: float, st: dict, meters: list[dict], nam
             ea = np.array(e, dtype=float)                      # NULL -> NaN
             pct = ref.pct(ea).tolist()                         # the same IEEE operations as ref.pct(one value)
             cov = np.minimum(np.array(covered, dtype=float) / bsa, 1.0).tolist()
+            # numbers as every writer rounds them (meterlink.reports.digits), vectorised
+            er = rounded_array(ea, "e_rms_v_per_m").tolist()
+            pr = rounded_array(pct, "percent_of_reference").tolist()
             yield zip(itertools.repeat(meter), _iso_list(tsa), _iso_list(tsa + bsa),
-                      [None if x is None else round(x, 6) for x in e],
-                      [None if x is None else round(p, 4) for x, p in zip(e, pct)],
-                      [1.0 if c == 1.0 else round(c, 4) for c in cov], map(bool, complete), map(bool, nover))
+                      [None if x is None else r for x, r in zip(e, er)],
+                      [None if x is None else r for x, r in zip(e, pr)],
+                      rounded_array(cov, "coverage").tolist(), map(bool, complete), map(bool, nover))
 
 
 def series_tuples(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
@@ -305,12 +309,12 @@ def write_series_csv(out, conn, t0: float, t1: float, st: dict, meters: list[dic
         w.writerows(chunk)
 
 
-def _json_scalar(x) -> str:
+def _json_scalar(x, key: str | None = None) -> str:
     """One JSON value as json.dumps writes it (non-finite floats as null, as to_json)."""
     if x is None or x is True or x is False:
         return "null" if x is None else ("true" if x else "false")
     if isinstance(x, float):
-        return float.__repr__(x) if math.isfinite(x) else "null"
+        return float.__repr__(rounded(x, key)) if math.isfinite(x) else "null"
     if isinstance(x, str):
         return _encode_str(x)
     return json.dumps(x)
@@ -326,7 +330,7 @@ def write_json(out, doc: dict, list_key: str, rows) -> None:
     out.write(head[:-len(empty)] + f"\n  {json.dumps(list_key)}: [")
     first = True
     for r in rows:
-        body = ",\n".join(f"      {_encode_str(k)}: {_json_scalar(v)}" for k, v in r.items())
+        body = ",\n".join(f"      {_encode_str(k)}: {_json_scalar(v, k)}" for k, v in r.items())
         out.write(("\n" if first else ",\n") + "    {\n" + body + "\n    }")
         first = False
     out.write("]\n}" if first else "\n  ]\n}")
@@ -341,7 +345,7 @@ def to_json(doc) -> str:
         if isinstance(x, (list, tuple)):
             return [clean(v) for v in x]
         return x
-    return json.dumps(clean(doc), indent=2)
+    return json.dumps(tidy(clean(doc)), indent=2)     # numbers: meterlink.reports.digits
 
 
 def html_page(conn, now_utc: float, t0: float, t1: float, template_dir=None) -> str:
