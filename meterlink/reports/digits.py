@@ -19,6 +19,7 @@ Python's repr (json, csv) writes the short decimal.
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import numbers
@@ -34,8 +35,12 @@ RULES: tuple[tuple[re.Pattern, str, int], ...] = (
 )
 
 
+_INF = float("inf")
+
+
+@functools.lru_cache(maxsize=1024)
 def rule(name: str | None) -> tuple[str, int]:
-    """("sig", n) or ("dec", n) for a column or key name."""
+    """("sig", n) or ("dec", n) for a column or key name (cached: writers ask once per cell)."""
     if name:
         low = str(name).lower()
         for pat, kind, n in RULES:
@@ -60,6 +65,11 @@ def dec(x: float, n: int) -> float:
 
 def rounded(v, name: str | None = None):
     """v as written under the rule of ``name``: floats (numpy floats too) rounded, the rest unchanged."""
+    if type(v) is float:                              # the common case first
+        kind, n = rule(name)
+        if v != v or v in (_INF, -_INF) or v == 0.0:
+            return v
+        return float(f"{v:.{n}g}") if kind == "sig" else float(f"{v:.{n}f}")
     if isinstance(v, bool) or v is None or isinstance(v, str):
         return v
     if isinstance(v, numbers.Integral):               # numpy integers too
