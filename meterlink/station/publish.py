@@ -20,7 +20,7 @@ from json.encoder import encode_basestring_ascii as _encode_str
 import numpy as np
 
 from meterlink.errors import MeterlinkError
-from meterlink.reports.digits import rounded, rounded_array, tidy
+from meterlink.reports.digits import rounded_array, tidy
 from meterlink.safetext import clean_text, clean_tree, csv_cell
 from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_bounds, period_stats, profiles
 from meterlink.physics.units import Z0_OHM
@@ -309,12 +309,12 @@ def write_series_csv(out, conn, t0: float, t1: float, st: dict, meters: list[dic
         w.writerows(chunk)
 
 
-def _json_scalar(x, key: str | None = None) -> str:
+def _json_scalar(x) -> str:
     """One JSON value as json.dumps writes it (non-finite floats as null, as to_json)."""
     if x is None or x is True or x is False:
         return "null" if x is None else ("true" if x else "false")
     if isinstance(x, float):
-        return float.__repr__(rounded(x, key)) if math.isfinite(x) else "null"
+        return float.__repr__(x) if math.isfinite(x) else "null"
     if isinstance(x, str):
         return _encode_str(x)
     return json.dumps(x)
@@ -322,7 +322,8 @@ def _json_scalar(x, key: str | None = None) -> str:
 
 def write_json(out, doc: dict, list_key: str, rows) -> None:
     """Write ``doc`` with ``doc[list_key] = list(rows)`` exactly as :func:`to_json` would, streaming the
-    rows (flat dicts of scalars) one at a time instead of building the list."""
+    rows (flat dicts of scalars) one at a time instead of building the list. The rows' numbers are written
+    as they come: iter_series has rounded them already (meterlink.reports.digits.rounded_array)."""
     head = to_json({**doc, list_key: []})
     empty = f'\n  {json.dumps(list_key)}: []\n}}'
     if not head.endswith(empty):
@@ -330,7 +331,7 @@ def write_json(out, doc: dict, list_key: str, rows) -> None:
     out.write(head[:-len(empty)] + f"\n  {json.dumps(list_key)}: [")
     first = True
     for r in rows:
-        body = ",\n".join(f"      {_encode_str(k)}: {_json_scalar(v, k)}" for k, v in r.items())
+        body = ",\n".join(f"      {_encode_str(k)}: {_json_scalar(v)}" for k, v in r.items())
         out.write(("\n" if first else ",\n") + "    {\n" + body + "\n    }")
         first = False
     out.write("]\n}" if first else "\n  ]\n}")
