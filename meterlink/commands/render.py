@@ -206,7 +206,8 @@ def run(args) -> int:
         print(json.dumps({"kind": kind, "session": sid, "files": [str(f) for f in files], "safety": SAFETY_LINE},
                          indent=2))
     else:
-        what = {"station": "station page", "lab": "lab certificate",
+        what = {"station": f"station period report {args.period}" if args.period else "station page",
+                "lab": "lab certificate",
                 "stations": f"period report of {len(dbs)} stations"}.get(kind, f"{kind} session {sid}")
         print(f"{what}: " + ", ".join(str(f) for f in files if f.suffix in (".html", ".pdf")))
         print(SAFETY_LINE)
