@@ -40,6 +40,7 @@ certificate_number = "T78-0001"
 date = 2027-03-02
 received = 2027-02-27
 issued = 2027-03-05
+interval_agreed_with_customer = true
 due = 2028-03-02
 [customer]
 name = "Customer <i>&</i> Sons"
@@ -191,4 +192,26 @@ def test_the_shipped_example_runs_as_docs_lab_md_shows(tmp_path, capsys):
                  str(tmp_path / "out"), "--json"]) == 0
     summary = json.loads(capsys.readouterr().out)
     assert summary["certificate_number"].startswith("LAB-") and math.isfinite(summary["u_expanded_db"])
-    assert RESULTS_STATEMENT in (tmp_path / "out" / "certificate.html").read_text(encoding="utf-8")
+    page = (tmp_path / "out" / "certificate.html").read_text(encoding="utf-8")
+    assert RESULTS_STATEMENT in page
+    # ISO/IEC 17025:2017 7.8.4.3: the example's customer agreed no interval, so no due date anywhere
+    assert "calibration due" not in page and "none was agreed with the customer" in page
+    cert = (tmp_path / "out" / "certificate.toml").read_text(encoding="utf-8")
+    assert "due" not in cert.split("[calibration]")[1].split("[")[0]
+    from meterlink.physics.certificate import certificate_status, load_certificate
+    loaded = load_certificate(tmp_path / "out" / "certificate.toml")
+    assert loaded.due_date is None and certificate_status(loaded, dt.date(2040, 1, 1)) == []
+
+
+def test_a_due_date_agreed_with_the_customer_is_stated(issued):
+    # ISO/IEC 17025:2017 7.8.4.3: stated only when agreed (this session says it was)
+    html = (issued / "certificate.html").read_text(encoding="utf-8")
+    assert "<td>calibration due (as agreed with the customer)</td><td>2028-03-02</td>" in html
+    assert 'due = 2028-03-02' in (issued / "certificate.toml").read_text(encoding="utf-8")
+
+
+def test_a_due_date_not_agreed_with_the_customer_is_refused(tmp_path, capsys):
+    (tmp_path / "s.toml").write_text(SESSION.replace("interval_agreed_with_customer = true\n", ""), encoding="utf-8")
+    assert main(["lab", "budget", "--session", str(tmp_path / "s.toml")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "7.8.4.3" in err and "interval_agreed_with_customer" in err and len(err.splitlines()) == 1

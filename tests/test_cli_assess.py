@@ -24,7 +24,8 @@ def test_assess_json_labels_both_percent_terms_and_records_the_rule(recorded_db,
     out = json.loads(capsys.readouterr().out)
     assert out["decision_rule"] == "guarded"
     assert out["reference_level_e_v_per_m"] == pytest.approx(27.7)   # ICNIRP 2020 Table 5, 30-400 MHz public
-    assert out["percent_of_power_density_level"] == pytest.approx(out["percent_of_field_level"] ** 2 / 100)
+    # both written to 5 significant digits (docs/formats.md): the relation holds to that precision
+    assert out["percent_of_power_density_level"] == pytest.approx(out["percent_of_field_level"] ** 2 / 100, rel=3e-4)
     # 120 s recorded against a 30-min average (ICNIRP 2020 Table 5): a partial value, no statement
     assert out["outcome"] == "not assessable" and not out["conformity_statement_made"]
     assert "incomplete" in out["not_assessable_reason"]

@@ -25,6 +25,7 @@ lab = "Test lab (invented)"
 address = "2 Bench Street, Labtown (invented)"
 certificate_number = "LAB-CLI-1"
 date = 2027-06-01
+interval_agreed_with_customer = true
 due = 2028-06-01
 [method]
 kind = "tem-cell"

@@ -89,7 +89,7 @@ def changed(doc: dict, path: tuple, value) -> dict:
 LAB_SESSION = {
     "probe": {"model": "ML-EP3 (invented)", "serial": "EP-0001"},
     "calibration": {"lab": "Invented lab", "certificate_number": "CAL-T-1", "date": dt.date(2026, 1, 5),
-                    "due": dt.date(2027, 1, 5), "address": "1 Invented Road"},
+                    "due": dt.date(2027, 1, 5), "address": "1 Invented Road", "interval_agreed_with_customer": True},
     "customer": {"name": "Invented customer", "address": "2 Invented Road"},
     "signatory": {"name": "Invented signatory", "function": "Technical manager"},
     "reference": [{"name": "Invented power sensor", "certificate_number": "REF-1", "due": dt.date(2026, 6, 1)}],

@@ -23,7 +23,8 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
 
     from meterlink.commands.record import parse_declared
     from meterlink.errors import MeterlinkError
@@ -57,7 +58,7 @@ def run(args) -> int:
     if args.json:
         from meterlink.reports.render import assessment_dict
 
-        print(json.dumps(assessment_dict(result), indent=2, default=float))
+        print(digits.dumps(assessment_dict(result), indent=2, default=float))
     else:
         from rich.console import Console
 

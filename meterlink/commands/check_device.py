@@ -70,7 +70,8 @@ def render(report, console) -> None:
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
 
     from rich.console import Console
 
@@ -87,7 +88,7 @@ def run(args) -> int:
     finally:
         link.close()
     if args.json:
-        print(json.dumps(report.to_dict(), indent=2))
+        print(digits.dumps(report.to_dict(), indent=2))
     else:
         render(report, Console())
     return 0 if report.passed and report.restored else 1

@@ -21,7 +21,8 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
     import time
     from pathlib import Path
 
@@ -44,7 +45,7 @@ def run(args) -> int:
     results = _run_steps(con, db, out, args, rule.name)
     results["elapsed_s"] = time.monotonic() - t_start
     if args.json:
-        print(json.dumps(results, indent=2, default=float))
+        print(digits.dumps(results, indent=2, default=float))
     else:
         _print_end(con, results)
     return 0

@@ -103,7 +103,8 @@ def iso_utc(t_s: float, digits: int = 0) -> str:
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
     import time
 
     from rich.console import Console
@@ -125,7 +126,7 @@ def run(args) -> int:
             settings = {k.name.lower(): c.get_setting(k) for k in SettingKey}
             if args.json:
                 from dataclasses import asdict
-                print(json.dumps({"ident": asdict(ident), "status": asdict(status), "settings": settings}, indent=2))
+                print(digits.dumps({"ident": asdict(ident), "status": asdict(status), "settings": settings}, indent=2))
                 return 0
             t = Table("field", "value", title="device", title_justify="left")
             for name in ("model", "serial", "probe_serial", "cert_ref"):
@@ -151,7 +152,7 @@ def run(args) -> int:
                 store.end_session(sid)
                 out = {"key": key.name.lower(), "old": old, "new": new, "asked": value}
                 if args.json:
-                    print(json.dumps(out, indent=2))
+                    print(digits.dumps(out, indent=2))
                 else:
                     con.print(f"{key.name.lower()}: {_show_value(old)} -> {_show_value(new)}")
                     if new != value:
@@ -173,7 +174,7 @@ def run(args) -> int:
     finally:
         link.close()
     if args.json:
-        print(json.dumps(out, indent=2))
+        print(digits.dumps(out, indent=2))
         return 0
     for label, r in out.items():
         if r["offset_s"] is None:

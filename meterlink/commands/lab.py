@@ -77,7 +77,7 @@ def _session(path, example: str = "session.toml"):
     year = dt.timedelta(days=365)
     # dated the day it runs, numbered from the register; the invented standards stay in calibration
     return dataclasses.replace(
-        s, certificate_number="", cal_date=today, due_date=today + year, issue_date=today, received_date=None,
+        s, certificate_number="", cal_date=today, due_date=today + year if s.due_date else None, issue_date=today, received_date=None,
         operator="demo", references=tuple(dataclasses.replace(r, due_date=max(r.due_date, today + year))
                                           for r in s.references))
 
@@ -149,6 +149,7 @@ def _save_partial(out, done, planned: int, why: str) -> str:
     """Write the steps taken so far (readings CSV, importable with 'lab import') and an event; say where."""
     import datetime as dt
     import json
+
     from pathlib import Path
 
     from meterlink.lab import procedures as pr
@@ -218,7 +219,8 @@ def _factor_table(cal):
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
     from pathlib import Path
 
     from rich.console import Console
@@ -240,7 +242,7 @@ def run(args) -> int:
     if args.action == "budget":
         b = calibration_budget(session, args.type_a_db)
         if args.json:
-            print(json.dumps({"rows": [{"name": r.name, "value_db": r.value, "distribution": r.distribution,
+            print(digits.dumps({"rows": [{"name": r.name, "value_db": r.value, "distribution": r.distribution,
                                         "divisor": r.divisor, "sensitivity": r.sensitivity, "u_db": r.u_db,
                                         "note": n} for r, n in zip(b.budget.rows, b.notes)],
                               "u_c_db": b.budget.u_c_db, "k": b.budget.k, "u_expanded_db": b.u_expanded_db}))
@@ -297,7 +299,7 @@ def run(args) -> int:
                "statement": cmp.statement if cmp else None, "notice": cmp.notice if cmp else "",
                "safety": SAFETY_LINE}
     if args.json:
-        print(json.dumps(summary))
+        print(digits.dumps(summary))
     else:
         console.print(_budget_table(cal.budget))
         console.print(_factor_table(cal))

@@ -174,7 +174,8 @@ def draw_chart(path: str, freq_hz: float, standard: str | None, tier: str | None
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
     import shutil
 
     from rich.console import Console
@@ -198,7 +199,7 @@ def run(args) -> int:
         doc = levels_to_json(levels, freq_hz)
         if brief is not None:
             doc["brief_exposure"] = brief
-        print(json.dumps(doc, indent=2))
+        print(digits.dumps(doc, indent=2))
         return 0
     console = Console(width=max(shutil.get_terminal_size((160, 24)).columns, 100), highlight=False)
     console.print(render_table(levels, freq_hz))

@@ -174,6 +174,8 @@ def _ring_area(ring) -> float:
 
 def run(args) -> int:
     import json
+
+    from meterlink.reports import digits
     import shutil
     from pathlib import Path
 
@@ -194,7 +196,7 @@ def run(args) -> int:
     if args.geojson:
         Path(args.geojson).write_text(json.dumps(zones_geojson(grids, site, levels), indent=1), encoding="utf-8")
     if args.json:
-        print(json.dumps(out, indent=2))
+        print(digits.dumps(out, indent=2))
         return 0
     console = Console(width=max(shutil.get_terminal_size((160, 24)).columns, 100), highlight=False)
     console.print(f"Site {site.name}: origin {site.origin}; {out['standard']}; ground factor {out['ground_factor']:g}")

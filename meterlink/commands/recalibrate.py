@@ -33,7 +33,8 @@ def already_in_force(calibrations, cert_sha256: str, freq_hz, band) -> dict | No
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
 
     import numpy as np
 
@@ -84,7 +85,7 @@ def run(args) -> int:
            "calibrations": [{"id": c["id"], "certificate": c["certificate_name"], "sha256": c["certificate_sha256"],
                              "applied_utc": c["applied_utc"]} for c in cals]}
     if args.json:
-        print(json.dumps(out, indent=2))
+        print(digits.dumps(out, indent=2))
         return 0
     from rich.console import Console
     from rich.markup import escape

@@ -71,7 +71,8 @@ def parse_declared(freq_text: str | None, band_text: str | None) -> tuple[float 
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
 
     from meterlink.errors import MeterlinkError
     from meterlink.storage.recorder import Recorder
@@ -124,7 +125,7 @@ def run(args) -> int:
     if args.json:
         out = summary.as_dict()
         out["calibrated"] = _field_dict(field) if field is not None else {"error": field_error}
-        print(json.dumps(out, indent=2, sort_keys=True))
+        print(digits.dumps(out, indent=2, sort_keys=True))
     else:
         print_summary(summary)
         from rich.console import Console

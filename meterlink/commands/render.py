@@ -3,7 +3,8 @@
 The kind of record decides the report: a survey session gives the survey report, any other recorded
 session the session report, a station database (without --session) the station's publication page,
 and a lab folder (certificate.toml + readings.csv from 'meterlink lab') the certificate page, from the
-readings analysed again and accepted only if they reproduce the issued certificate exactly.
+readings analysed again and accepted only if they reproduce the issued certificate exactly. Several
+station databases (or station files) with --period give one period report of the set of stations.
 """
 
 from __future__ import annotations
@@ -12,8 +13,9 @@ HELP = "render the report of a survey, a recorded session, a monitoring station 
 
 
 def add_arguments(parser) -> None:
-    parser.add_argument("db", metavar="DB", help="database file (recording, survey or monitoring station), or a "
-                        "folder written by 'meterlink lab run/import'")
+    parser.add_argument("db", metavar="DB", nargs="+", help="database file (recording, survey or monitoring "
+                        "station), or a folder written by 'meterlink lab run/import'; with --period, one or more "
+                        "station databases or station files (.toml): several give one report of the set")
     parser.add_argument("--session", metavar="ID", help="session id (see 'meterlink sessions'); without it: the "
                         "station page of a station database, or the only session of the file")
     parser.add_argument("--format", choices=("html", "pdf"), default="html",
@@ -27,8 +29,8 @@ def add_arguments(parser) -> None:
     parser.add_argument("--rule", metavar="NAME", help="recorded session: decision rule")
     parser.add_argument("--from", dest="t_from", metavar="DATE", help="station page: statistics from (UTC ISO date)")
     parser.add_argument("--to", dest="t_to", metavar="DATE", help="station page: statistics to, exclusive")
-    parser.add_argument("--period", metavar="PERIOD", help="station database: the period report of a month (YYYY-MM) "
-                        "or a quarter (YYYY-Qn) instead of the publication page")
+    parser.add_argument("--period", metavar="PERIOD", help="station database(s): the period report of a month "
+                        "(YYYY-MM) or a quarter (YYYY-Qn) instead of the publication page")
     parser.add_argument("--report-number", metavar="TEXT", help="survey: report number (default: the plan's [report] "
                         "number)")
     parser.add_argument("--revision", metavar="TEXT", help="survey: report revision (default: the plan's, else 0)")
@@ -36,6 +38,17 @@ def add_arguments(parser) -> None:
                         "with (default: the invented demo session of 'lab run')")
     parser.add_argument("--previous", metavar="CERT", help="lab folder: the previous certificate it was compared with")
     parser.add_argument("--json", action="store_true", help="print the kind of record and the files written as JSON")
+
+
+def _station_database(path: str) -> str:
+    """A station file (.toml) names its database; anything else is taken as the database itself."""
+    from pathlib import Path
+
+    if Path(path).suffix.lower() != ".toml":
+        return path
+    from meterlink.station.stationfile import load_station
+
+    return str(load_station(path).database)
 
 
 def _kind(db, session):
@@ -166,7 +179,22 @@ def run(args) -> int:
     if pdf and not pdf_available():
         raise MeterlinkError(PDF_HINT)
     out = Path(args.out)
-    if Path(args.db).is_dir():
+    dbs = [_station_database(d) if args.period else d for d in args.db]
+    if len(dbs) > 1 and not args.period:
+        raise MeterlinkError(f"{len(dbs)} files given: several station databases make one report with --period "
+                             "YYYY-MM or YYYY-Qn; every other report takes one file")
+    args.db = dbs[0]
+    if len(dbs) > 1:
+        from meterlink.station.period_report import write_set_report
+
+        for d in dbs:
+            if not Path(d).is_file():
+                raise MeterlinkError(f"database {d!r} does not exist")
+            if _kind(d, None)[0] != "station":
+                raise MeterlinkError(f"{d}: not a monitoring station database (--period with several files)")
+        kind, sid = "stations", None
+        files = write_set_report(dbs, args.period, out, template_dir=args.template_dir, pdf=pdf)
+    elif Path(args.db).is_dir():
         kind, sid = "lab", None
         files = _lab(Path(args.db), out, args, pdf)
     elif not Path(args.db).is_file():
@@ -178,7 +206,9 @@ def run(args) -> int:
         print(json.dumps({"kind": kind, "session": sid, "files": [str(f) for f in files], "safety": SAFETY_LINE},
                          indent=2))
     else:
-        what = {"station": "station page", "lab": "lab certificate"}.get(kind, f"{kind} session {sid}")
+        what = {"station": f"station period report {args.period}" if args.period else "station page",
+                "lab": "lab certificate",
+                "stations": f"period report of {len(dbs)} stations"}.get(kind, f"{kind} session {sid}")
         print(f"{what}: " + ", ".join(str(f) for f in files if f.suffix in (".html", ".pdf")))
         print(SAFETY_LINE)
     return 0

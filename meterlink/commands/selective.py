@@ -28,7 +28,8 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
 
     from meterlink.cautions import SAFETY_LINE
     from meterlink.errors import MeterlinkError
@@ -88,7 +89,7 @@ def run(args) -> int:
         if store is not None:
             store.close()
     if args.json:
-        print(json.dumps(out, default=float))
+        print(digits.dumps(out, default=float))
         return 0
     print(f"{'band':18s} {'f/MHz':>9s} {'E/(V/m)':>9s} {'U/dB':>6s} {'ratio':>8s} {'share':>6s}")
     for b in out["bands"]:

@@ -87,7 +87,7 @@ def run(args) -> int:
         print(to_json(doc))
         return 0
     from rich.console import Console
-    from rich.table import Table
+    from rich.table import Column, Table
 
     con = Console()
     con.print(f"[bold]{doc['station']}[/bold] {doc['from_utc']} .. {doc['to_utc']}; percentiles: "
@@ -97,14 +97,19 @@ def run(args) -> int:
         con.print(f"[bold]{m['meter']}[/bold]: {m['label']} (E_ref {m['e_ref_v_per_m']:.4g} V/m, "
                   f"S_ref {m['s_ref_w_per_m2']:.4g} W/m2)")
         for period in ("day", "week", "month"):
-            t = Table(period, "coverage", "max %", "min %", "median %", "p95 %", "max V/m",
-                      *(k.replace("_max_e_v_per_m", "").replace("running_", "run ") + " max %"
-                        for k in (m[period][0] if m[period] else {}) if k.endswith("_max_e_v_per_m")))
+            # short headers, nothing cut: fits an 80-column terminal (running maxima as "6min %", "30min %")
+            runs_h = [f"{int(k.split('_')[1].rstrip('s')) // 60}min %" if k.split("_")[1].rstrip("s").isdigit()
+                      else k.replace("_max_e_v_per_m", "").replace("running_", "run ") + " max %"
+                      for k in (m[period][0] if m[period] else {}) if k.endswith("_max_e_v_per_m")]
+            t = Table(*(Column(h, no_wrap=True, justify="left" if i == 0 else "right") for i, h in enumerate(
+                [period, "cover", "max %", "min %", "med %", "p95 %", "max V/m", *runs_h])),
+                box=None, pad_edge=False, header_style="bold")
             for r in m[period]:
                 runs = [f(r[k.replace("_e_v_per_m", "_pct")]) for k in r if k.endswith("s_max_e_v_per_m")]
                 t.add_row(r["period"], f"{r['coverage']:.1%}", f(r.get("max_pct")), f(r.get("min_pct")),
                           f(r.get("median_pct")), f(r.get("p95_pct")), f(r.get("max_e_v_per_m")), *runs)
             con.print(t)
+        con.print("[dim]max/min/med/p95 %: of the 6-minute blocks; 6min %, 30min %: highest running mean[/dim]")
         hours = [h["mean_pct"] for h in m["hour_of_day"]]
         con.print(f"hour-of-day profile (mean % of reference, 00..23): |{sparkline(hours)}|  peak "
                   f"{f(max((h for h in hours if h is not None), default=None))} %")

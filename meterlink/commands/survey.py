@@ -38,7 +38,8 @@ def result_dict(r) -> dict:
 
 
 def run(args) -> int:
-    import json
+
+    from meterlink.reports import digits
     import math
 
     from rich.console import Console
@@ -89,7 +90,7 @@ def run(args) -> int:
         pts = [{k: clean(v) for k, v in p.items() if k not in ("samples", "emitters")} | {
             "heights_m": [s["height_m"] for s in p["samples"]],
             "emitters": [{k: clean(v) for k, v in m.items()} for m in p["emitters"]]} for p in sv["points"]]
-        print(json.dumps({"session_id": sid, "db": str(args.db), "standard": sv["standard"], "tier": sv["tier"],
+        print(digits.dumps({"session_id": sid, "db": str(args.db), "standard": sv["standard"], "tier": sv["tier"],
                           "decision_rule": sv["decision_rule"], "points": pts, "safety": SAFETY_LINE},
                          indent=2, default=str))
     else:

@@ -124,7 +124,10 @@ def render(cal: Calibration, comparison: Comparison | None = None, template_dir=
             ("reference frequency", f"{c.ref_freq_hz / 1e6:g} MHz"),
             ("valid range", f"{c.freq_range_hz[0] / 1e6:g}..{c.freq_range_hz[1] / 1e6:g} MHz, "
                             f"{c.level_range[0]:g}..{c.level_range[1]:g} V/m"),
-            ("calibration due", c.due_date.isoformat())],
+            # ISO/IEC 17025:2017 7.8.4.3: only an interval agreed with the customer is stated
+            ("calibration due (as agreed with the customer)", c.due_date.isoformat()) if c.due_date else
+            ("calibration interval", "not stated: none was agreed with the customer; the user's own calibration "
+                                     "programme sets when to recalibrate")],
         uncertainty_text=(f"The expanded uncertainty U = {u:.2f} dB stated with the results is the combined standard "
                           f"uncertainty multiplied by the coverage factor k = {k:g}, which for a normal distribution "
                           f"gives a coverage probability of approximately {coverage_probability_pct(k):.0f} %. It was "

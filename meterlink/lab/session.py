@@ -141,7 +141,9 @@ class LabSession:
     lab: str
     certificate_number: str        # "" until issued from the lab's register (meterlink.lab.register)
     cal_date: _dt.date
-    due_date: _dt.date
+    # stated on the certificate only when the interval was agreed with the customer (ISO/IEC 17025:2017
+    # 7.8.4.3, session key calibration.interval_agreed_with_customer); None: no due date on the certificate
+    due_date: _dt.date | None
     method: FieldMethod = field(default_factory=FieldMethod)
     ambient: Ambient = field(default_factory=Ambient)
     spec: ProbeSpec = field(default_factory=ProbeSpec)
@@ -275,8 +277,18 @@ def session_from_dict(d: dict, where: str = "<session>") -> LabSession:
         if not isinstance(t, dict):
             raise LabError(f"{where}: '{name}' must be a table")
     cal_date = _date(where, cal, "date", _dt.date.today())
-    due = _date(where, cal, "due", cal_date + _dt.timedelta(days=365))
-    if due <= cal_date:
+    agreed = cal.get("interval_agreed_with_customer", False)
+    if not isinstance(agreed, bool):
+        raise LabError(f"{where}: 'calibration.interval_agreed_with_customer' must be true or false, got {agreed!r}")
+    # ISO/IEC 17025:2017 7.8.4.3: no recommended calibration interval on a certificate unless agreed
+    if "due" in cal and not agreed:
+        raise LabError(f"{where}: 'calibration.due' is stated on the certificate only when the interval was agreed "
+                       "with the customer (ISO/IEC 17025:2017 7.8.4.3): set calibration.interval_agreed_with_customer "
+                       "= true, or remove due")
+    if agreed and "due" not in cal:
+        raise LabError(f"{where}: missing key 'calibration.due' (the due date agreed with the customer)")
+    due = _date(where, cal, "due", None) if agreed else None
+    if due is not None and due <= cal_date:
         raise LabError(f"{where}: due date {due} is not after calibration date {cal_date}")
     try:
         method = FieldMethod(kind=_str(where, m, "kind", "tem-cell"),

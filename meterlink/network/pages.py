@@ -23,6 +23,7 @@ import time
 from pathlib import Path
 
 from meterlink.network import plots, queries
+from meterlink.reports.digits import tidy   # numbers in the JSON API: meaningful digits
 from meterlink.network.central import CentralError
 
 log = logging.getLogger("meterlink.central")
@@ -215,7 +216,7 @@ def add_routes(routes: list, pool, operator_sha256: bytes | None) -> None:
         rows = queries.overview(conn, time.time(), sort_of(request))
         for r in rows:
             r["state"] = PUBLIC_STATE[r["state"]]
-        return JSONResponse({"stations": _clean(rows, PUBLIC_DROP), "cautions": _cautions()})
+        return JSONResponse(tidy({"stations": _clean(rows, PUBLIC_DROP), "cautions": _cautions()}))
 
     def public_page(conn, request):
         d = station_detail(conn, public_station(conn, request.path_params["name"]), public=True)
@@ -224,7 +225,7 @@ def add_routes(routes: list, pool, operator_sha256: bytes | None) -> None:
 
     def public_page_json(conn, request):
         d = station_detail(conn, public_station(conn, request.path_params["name"]), public=True)
-        return JSONResponse(_json_detail(d, public=True))
+        return JSONResponse(tidy(_json_detail(d, public=True)))
 
     def public_plot(conn, request):
         return plot_response(conn, public_station(conn, request.path_params["name"]), request)
@@ -253,7 +254,7 @@ def add_routes(routes: list, pool, operator_sha256: bytes | None) -> None:
 
     def status_json(conn, request):
         rows = queries.overview(conn, time.time(), sort_of(request))
-        return JSONResponse({"stations": _clean(rows), "stale_after_s": queries.STALE_S, "cautions": _cautions()})
+        return JSONResponse(tidy({"stations": _clean(rows), "stale_after_s": queries.STALE_S, "cautions": _cautions()}))
 
     def status_station(conn, request):
         d = station_detail(conn, operator_station(conn, request.path_params["uuid"]), public=False)
@@ -262,7 +263,7 @@ def add_routes(routes: list, pool, operator_sha256: bytes | None) -> None:
 
     def status_station_json(conn, request):
         d = station_detail(conn, operator_station(conn, request.path_params["uuid"]), public=False)
-        return JSONResponse(_json_detail(d, public=False))
+        return JSONResponse(tidy(_json_detail(d, public=False)))
 
     def status_plot(conn, request):
         return plot_response(conn, operator_station(conn, request.path_params["uuid"]), request)

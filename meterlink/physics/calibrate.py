@@ -128,7 +128,7 @@ def frequency_correction_db(cert: ProbeCertificate, freq_hz) -> tuple[np.ndarray
 def _expiry(cert, today):
     from meterlink.physics.certificate import certificate_status
     on = today or _dt.date.today()
-    return tuple(certificate_status(cert, on)), (EXPIRED if on > cert.due_date else 0)
+    return tuple(certificate_status(cert, on)), (EXPIRED if cert.due_date and on > cert.due_date else 0)
 
 
 def calibrate_axes(cert: ProbeCertificate, counts, freq_hz, temp_c=None, near_field=False,

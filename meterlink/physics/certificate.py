@@ -49,7 +49,7 @@ class ProbeCertificate:
     lab: str
     certificate_number: str
     cal_date: _dt.date
-    due_date: _dt.date
+    due_date: _dt.date | None           # None: the certificate states no due date (ISO/IEC 17025:2017 7.8.4.3)
     quantity: str
     ref_freq_hz: float
     freq_range_hz: tuple[float, float]
@@ -78,7 +78,7 @@ class DipoleCertificate:
     lab: str
     certificate_number: str
     cal_date: _dt.date
-    due_date: _dt.date
+    due_date: _dt.date | None           # None: the certificate states no due date (ISO/IEC 17025:2017 7.8.4.3)
     freq_range_hz: tuple[float, float]
     level_range_dbuv: tuple[float, float]
     af_freq_hz: tuple[float, ...]
@@ -208,8 +208,12 @@ def _common(r: _Reader) -> dict:
     fmt = r.get("format", "str")
     if fmt != FORMAT:
         r.fail(f"unsupported format {fmt!r} (this meterlink reads {FORMAT!r})")
-    cal, due = r.get("calibration.date", "date"), r.get("calibration.due", "date")
-    if due <= cal:
+    cal = r.get("calibration.date", "date")
+    # optional: a calibration certificate states a due date only when agreed with the customer
+    # (ISO/IEC 17025:2017 clause 7.8.4.3); without one the user's own calibration programme sets it
+    cal_tbl = r.doc.get("calibration")
+    due = r.get("calibration.due", "date") if isinstance(cal_tbl, dict) and "due" in cal_tbl else None
+    if due is not None and due <= cal:
         r.fail(f"due date {due} is not after calibration date {cal}")
     return dict(model=r.get("device.model", "str"), serial=r.get("device.serial", "str"),
                 lab=r.get("calibration.lab", "str"),
@@ -343,7 +347,9 @@ def certificate_status(cert, on: _dt.date) -> list[str]:
     """Warnings for using `cert` on date `on`: expired, due soon, calibrated in the future."""
     who = f"certificate {cert.certificate_number} ({cert.model} s/n {cert.serial})"
     out = []
-    if on > cert.due_date:
+    if cert.due_date is None:
+        pass                         # no due date stated: the user's calibration programme decides
+    elif on > cert.due_date:
         out.append(f"{who} expired on {cert.due_date.isoformat()}; recalibrate before relying on results")
     elif (cert.due_date - on).days <= DUE_SOON_DAYS:
         out.append(f"{who} is due on {cert.due_date.isoformat()} ({(cert.due_date - on).days} days)")
@@ -410,7 +416,7 @@ def dump_certificate(cert) -> str:
         doc["receiver"] = {"model": cert.receiver_model, "serial": cert.receiver_serial,
                            "level_correction_db": cert.receiver_level_correction_db}
     doc["calibration"] = {"lab": cert.lab, "certificate_number": cert.certificate_number,
-                          "date": cert.cal_date, "due": cert.due_date}
+                          "date": cert.cal_date, **({"due": cert.due_date} if cert.due_date else {})}
     if cert.kind == KIND_PROBE:
         fkey = _FIELD_KEY[cert.quantity]
         doc["range"] = {"freq_hz": list(cert.freq_range_hz), f"level_{fkey}": list(cert.level_range)}

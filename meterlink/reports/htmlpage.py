@@ -9,6 +9,7 @@ import csv
 import io
 from pathlib import Path
 
+from meterlink.reports.digits import row as rounded_row
 from meterlink.safetext import csv_cell
 
 
@@ -23,9 +24,10 @@ def figure_png(fig, dpi: int = 110) -> bytes:
 
 
 def write_csv(path: Path, head, rows) -> None:
-    """Write a CSV file with a header row, guarding every cell."""
+    """Write a CSV file with a header row, guarding every cell; numbers rounded by their column's rule
+    (meterlink.reports.digits)."""
     with open(path, "w", newline="", encoding="utf-8") as f:
         w = csv.writer(f)
         w.writerow(head)
         for r in rows:
-            w.writerow([csv_cell(v) for v in r])
+            w.writerow([csv_cell(v) for v in rounded_row(head, r)])

@@ -12,6 +12,7 @@ import numpy as np
 
 from meterlink.reports import htmlpage as H
 from meterlink.reports import templating as T
+from meterlink.reports.digits import DEFAULT_SIG as SIG  # values.csv: times in s to 1 ms, U in dB to 0.001
 from meterlink.errors import MeterlinkError
 
 CAUTIONS = (
@@ -98,14 +99,14 @@ def _field_plot(env: _Envelopes, a) -> bytes:
 
 def _csv_rows(ids, t, e, axes, u, flags):
     """values.csv rows of calibrated values, each cell as the report has always written it."""
-    return ([int(i), f"{tt:.3f}", f"{v:.6g}", *(f"{x:.6g}" for x in ax), f"{uu:.3f}", int(fl)]
+    return ([int(i), f"{tt:.3f}", f"{v:.{SIG}g}", *(f"{x:.{SIG}g}" for x in ax), f"{uu:.3f}", int(fl)]
             for i, tt, v, ax, uu, fl in zip(ids, t, e, axes, u, flags))
 
 
 class _CsvSink:
     """values.csv written chunk by chunk, the same bytes as H.write_csv of the whole series."""
 
-    _LINE = "%d,%.3f,%.6g,%.6g,%.6g,%.6g,%.3f,%d\r\n"
+    _LINE = "%d,%.3f,%.{0}g,%.{0}g,%.{0}g,%.{0}g,%.3f,%d\r\n".format(SIG)
 
     def __init__(self, path: Path):
         import csv
@@ -240,7 +241,7 @@ def write_session_report(db_path, session_id: int, out_dir, *, standard=None, ti
         ("probe or antenna", s.get("device_probe_serial")),
         ("firmware / protocol", f"{s.get('device_fw_version')} / {s.get('device_protocol_version')}"),
         ("port", s.get("port")), ("session notes", s.get("notes")),
-        ("certificate applied", cal["certificate_name"]), ("certificate due", cert.due_date),
+        ("certificate applied", cal["certificate_name"]), ("certificate due", cert.due_date or "not stated on the certificate"),
         ("certificate SHA-256", cal["certificate_sha256"]),
         ("recorded", f"{T.utc(float(np.nanmin(series.t_utc)))} to {T.utc(float(np.nanmax(series.t_utc)))} "
                      f"(device clock)" if len(series.t_utc) else "-")]

@@ -37,6 +37,8 @@ class Health:
             return
         self._day_checked = today.isoformat()
         for ms in self.meters:
+            if ms.cert.due_date is None:        # no due date stated: the operator's calibration programme decides
+                continue
             days = (ms.cert.due_date - today).days
             if days < 0:
                 self._event(ms, "certificate_expired", "error", "; ".join(certificate_status(ms.cert, today)),

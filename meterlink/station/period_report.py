@@ -118,12 +118,9 @@ def _hours(s: float) -> str:
     return f"{s / 3600:.1f} h" if s >= 3600 else f"{s / 60:.0f} min"
 
 
-def report_html(conn, spec: str, template_dir=None, now_utc: float | None = None) -> tuple[str, str]:
-    """(HTML, label) of the period report of the station recorded in conn for spec ('2026-11', '2026-Q4')."""
-    import time
-
-    from meterlink.reports.templating import render
-
+def station_section(conn, spec: str) -> dict:
+    """Everything the period report shows of the station recorded in conn for spec ('2026-11', '2026-Q4'),
+    in the station's time zone: per meter statistics, plots and gaps; alarms; health events."""
     st, meters = station_info(conn)
     tz = st["timezone"] or "UTC"
     t0, t1, label = period_bounds(spec, tz)
@@ -145,7 +142,8 @@ def report_html(conn, spec: str, template_dir=None, now_utc: float | None = None
             "highest_pct": max((r["max_pct"] for r in ms["month"] if r.get("max_pct") is not None), default=None),
             "gaps": [(iso(a), iso(b), _hours(b - a)) for a, b in gap], "n_gaps": len(gap),
             "gap_hours": sum(b - a for a, b in gap) / 3600.0,
-            "certificate": m["certificate"], "certificate_due": due,
+            # the certificate by its file name (a station file may give a long path)
+            "certificate": Path(m["certificate"]).name if m["certificate"] else None, "certificate_due": due,
             "certificate_lapsed": bool(due) and _dt.date.fromisoformat(due) < _dt.datetime.fromtimestamp(t1, _dt.timezone.utc).date(),
             "plots": _plots(clean_text(ms["meter"]), ms["day"], series, t0, t1, pct_label),
             "n_blocks": len(series)})
@@ -158,12 +156,47 @@ def report_html(conn, spec: str, template_dir=None, now_utc: float | None = None
         "ORDER BY t_utc LIMIT 200", (t0, t1))]
     counts = [list(r) for r in conn.execute("SELECT kind, severity, count(*) AS n FROM events WHERE t_utc >= ? AND "
                                             "t_utc < ? GROUP BY kind, severity ORDER BY n DESC", (t0, t1))]
+    highest = [m["highest_pct"] for m in per_meter if m["highest_pct"] is not None]
+    return {"st": st, "stats": stats, "meters": per_meter, "alarms": alarms, "events": events,
+            "event_counts": counts, "pct_label": pct_label, "label": label, "timezone": tz, "t0": t0, "t1": t1,
+            "from_utc": iso(t0), "to_utc": iso(t1),
+            # the station in one line of a set's summary: its worst meter
+            "highest_pct": max(highest) if highest else None,
+            "coverage_pct": min((m["coverage_pct"] for m in per_meter), default=0.0),
+            "n_alarms": len(alarms),
+            "certificates": "; ".join(f"{m['certificate'] or '-'} ({m['certificate_due'] or 'due not stated'})"
+                                      + (" LAPSED" if m["certificate_lapsed"] else "") for m in per_meter) or "-"}
+
+
+def report_html(conn, spec: str, template_dir=None, now_utc: float | None = None) -> tuple[str, str]:
+    """(HTML, label) of the period report of the station recorded in conn for spec ('2026-11', '2026-Q4')."""
+    import time
+
+    from meterlink.reports.templating import render
+
+    s = station_section(conn, spec)
+    st, label = s["st"], s["label"]
     title = f"Monitoring station {clean_text(st['name'])}: report for {label}"
-    html = render("station_period.html", template_dir, title=title, ident=f"{title} ({iso(t0)} to {iso(t1)})",
-                  st=st, stats=stats, meters=per_meter, alarms=alarms, events=events, event_counts=counts,
-                  pct_label=pct_label, label=label, from_utc=iso(t0), to_utc=iso(t1), timezone=tz,
-                  made_utc=time.time() if now_utc is None else now_utc)
+    html = render("station_period.html", template_dir, title=title,
+                  ident=f"{title} ({s['from_utc']} to {s['to_utc']})", st=st, section=s,
+                  pct_label=s["pct_label"], label=label, from_utc=s["from_utc"], to_utc=s["to_utc"],
+                  timezone=s["timezone"], made_utc=time.time() if now_utc is None else now_utc)
     return html, label
+
+
+def set_report_html(sections: list[dict], template_dir=None, now_utc: float | None = None) -> str:
+    """The period report of a set of stations (sections from station_section, one per station, each with
+    'source', the database it was read from): a summary table, then a section per station."""
+    import time
+
+    from meterlink.reports.templating import render
+
+    label = sections[0]["label"]
+    names = ", ".join(clean_text(s["st"]["name"]) for s in sections)
+    title = f"Monitoring stations: report for {label}"
+    return render("station_period_set.html", template_dir, title=title,
+                  ident=f"{title} ({len(sections)} stations: {names})"[:200], stations=sections, label=label,
+                  made_utc=time.time() if now_utc is None else now_utc)
 
 
 def _rows(conn, sql, params=()):
@@ -172,28 +205,68 @@ def _rows(conn, sql, params=()):
     return [dict(zip(cols, r)) for r in cur.fetchall()]
 
 
-def write_period_report(db_path, spec: str, out_dir, *, template_dir=None, pdf: bool = False) -> list[Path]:
-    """Write station-<label>.html (and .pdf) of a station database into out_dir; the files written."""
+def _open(db_path):
     import sqlite3
-
-    from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir as checked, write_outputs
 
     if not Path(db_path).is_file():
         raise MeterlinkError(f"database {str(db_path)!r} does not exist")
-    checked(template_dir)
-    if pdf and not pdf_available():
-        raise MeterlinkError(PDF_HINT)
-    conn = sqlite3.connect(f"file:{Path(db_path).resolve()}?mode=ro", uri=True, timeout=10)
-    try:
-        html, label = report_html(conn, spec, template_dir)
-    finally:
-        conn.close()
+    return sqlite3.connect(f"file:{Path(db_path).resolve()}?mode=ro", uri=True, timeout=10)
+
+
+def _outputs(html: str, out_dir, name: str, pdf: bool) -> list[Path]:
+    from meterlink.reports.templating import write_outputs
+
     out = Path(out_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
-    return write_outputs(html, out / f"station-{label}.html", pdf)
+    return write_outputs(html, out / name, pdf)
+
+
+def _checks(template_dir, pdf: bool) -> None:
+    from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir as checked
+
+    checked(template_dir)
+    if pdf and not pdf_available():
+        raise MeterlinkError(PDF_HINT)
+
+
+def write_period_report(db_path, spec: str, out_dir, *, template_dir=None, pdf: bool = False) -> list[Path]:
+    """Write station-<label>.html (and .pdf) of a station database into out_dir; the files written."""
+    _checks(template_dir, pdf)
+    conn = _open(db_path)
+    try:
+        html, label = report_html(conn, spec, template_dir)
+    finally:
+        conn.close()
+    return _outputs(html, out_dir, f"station-{label}.html", pdf)
+
+
+def write_set_report(db_paths, spec: str, out_dir, *, template_dir=None, pdf: bool = False) -> list[Path]:
+    """Write stations-<label>.html (and .pdf): the period report of the stations of several databases, one
+    section each, in the order given; the files written. A database named twice, or one without a
+    station, is refused before anything is written."""
+    import sqlite3
+
+    _checks(template_dir, pdf)
+    seen, sections = set(), []
+    for db in db_paths:
+        key = Path(db).resolve()
+        if key in seen:
+            raise MeterlinkError(f"database {str(db)!r} is named twice")
+        seen.add(key)
+        conn = _open(db)
+        try:
+            s = station_section(conn, spec)
+        except sqlite3.DatabaseError as exc:
+            raise MeterlinkError(f"{db}: not a station database ({exc})") from None
+        except MeterlinkError as exc:
+            raise MeterlinkError(f"{db}: {exc}") from None
+        finally:
+            conn.close()
+        sections.append(dict(s, source=str(db)))
+    return _outputs(set_report_html(sections, template_dir), out_dir, f"stations-{sections[0]['label']}.html", pdf)
 
 
 #: How often (monotonic seconds) the daemon looks whether a period has finished.

@@ -82,7 +82,7 @@ class Persistence:
                               "band_hi_hz=?, e_ref_v_per_m=?, s_ref_w_per_m2=?, cert_due=?, link_state=? "
                               "WHERE station_id=? AND meter=?",
                               (sid, m.port, m.certificate, None if isinstance(freq, tuple) else freq, lo, hi, e_ref,
-                               s_ref, cert.due_date.isoformat(), "connecting", self.station_id, m.name))
+                               s_ref, cert.due_date.isoformat() if cert.due_date else None, "connecting", self.station_id, m.name))
         dipole = cert.kind == KIND_DIPOLE
         top = math.nan if dipole else cert.level_range[1] * (Z0_OHM if cert.quantity == "H" else 1.0)
         ms = MeterState(m, cert, freq, e_ref, s_ref, sid, top)

@@ -20,6 +20,7 @@ from json.encoder import encode_basestring_ascii as _encode_str
 import numpy as np
 
 from meterlink.errors import MeterlinkError
+from meterlink.reports.digits import rounded_array, tidy
 from meterlink.safetext import clean_text, clean_tree, csv_cell
 from meterlink.station.stats import PERCENTILE_METHOD, Reference, period_bounds, period_stats, profiles
 from meterlink.physics.units import Z0_OHM
@@ -235,10 +236,13 @@ def _series_chunks(conn, t0: float, t1: float, st: dict, meters: list[dict], nam
             ea = np.array(e, dtype=float)                      # NULL -> NaN
             pct = ref.pct(ea).tolist()                         # the same IEEE operations as ref.pct(one value)
             cov = np.minimum(np.array(covered, dtype=float) / bsa, 1.0).tolist()
+            # numbers as every writer rounds them (meterlink.reports.digits), vectorised
+            er = rounded_array(ea, "e_rms_v_per_m").tolist()
+            pr = rounded_array(pct, "percent_of_reference").tolist()
             yield zip(itertools.repeat(meter), _iso_list(tsa), _iso_list(tsa + bsa),
-                      [None if x is None else round(x, 6) for x in e],
-                      [None if x is None else round(p, 4) for x, p in zip(e, pct)],
-                      [1.0 if c == 1.0 else round(c, 4) for c in cov], map(bool, complete), map(bool, nover))
+                      [None if x is None else r for x, r in zip(e, er)],
+                      [None if x is None else r for x, r in zip(e, pr)],
+                      rounded_array(cov, "coverage").tolist(), map(bool, complete), map(bool, nover))
 
 
 def series_tuples(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
@@ -318,7 +322,8 @@ def _json_scalar(x) -> str:
 
 def write_json(out, doc: dict, list_key: str, rows) -> None:
     """Write ``doc`` with ``doc[list_key] = list(rows)`` exactly as :func:`to_json` would, streaming the
-    rows (flat dicts of scalars) one at a time instead of building the list."""
+    rows (flat dicts of scalars) one at a time instead of building the list. The rows' numbers are written
+    as they come: iter_series has rounded them already (meterlink.reports.digits.rounded_array)."""
     head = to_json({**doc, list_key: []})
     empty = f'\n  {json.dumps(list_key)}: []\n}}'
     if not head.endswith(empty):
@@ -341,7 +346,7 @@ def to_json(doc) -> str:
         if isinstance(x, (list, tuple)):
             return [clean(v) for v in x]
         return x
-    return json.dumps(clean(doc), indent=2)
+    return json.dumps(tidy(clean(doc)), indent=2)     # numbers: meterlink.reports.digits
 
 
 def html_page(conn, now_utc: float, t0: float, t1: float, template_dir=None) -> str:

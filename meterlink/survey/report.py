@@ -12,6 +12,7 @@ from pathlib import Path
 
 from meterlink.errors import MeterlinkError
 from meterlink.reports.htmlpage import write_csv as write_rows
+from meterlink.reports.digits import iso_utc
 from meterlink.reports.templating import num
 from meterlink.safetext import csv_cell
 
@@ -209,7 +210,8 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
                               "u_expanded_db", "n_readings", "coverage"] + list(_GEO),
                              [[p["point_no"], p["label"], s["sample_no"], s["height_m"], s["x_m"], s["y_m"],
                                s["e_v_per_m"], s["e_max_v_per_m"], s["u_expanded_db"], s["n_readings"], s["coverage"]]
-                              + [s.get(c) for c in _GEO] for p in sv["points"] for s in p["samples"]]),
+                              + [iso_utc(s.get(c)) if c == "fix_utc" else s.get(c) for c in _GEO]
+                              for p in sv["points"] for s in p["samples"]]),
              "sources.csv": (["name", "technology", "freq_hz", "power_w", "max_power_w"],
                              [[s["name"], s["technology"], s["freq_hz"], s["power_w"], s["max_power_w"]]
                               for s in sv["sources"]]),
@@ -218,7 +220,9 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
                               [[p["point_no"], p["label"], m["name"], m["freq_hz"], m["e_v_per_m"],
                                 m["e_extrapolated_v_per_m"], m["ratio"], m["share"]]
                                for p in sv["points"] for m in p["emitters"]]),
-             "trace.csv": (list(_TRACE), [[t.get(c) for c in _TRACE] for t in sv["trace"]])}
+             # times a person reads: ISO 8601 UTC (the device's own seconds stay seconds)
+             "trace.csv": (list(_TRACE), [[iso_utc(t.get(c)) if c in ("t_utc", "fix_utc") else t.get(c)
+                                           for c in _TRACE] for t in sv["trace"]])}
     if sv.get("selective"):
         head = ["point_no", "label", "band", "technology", "freq_hz", "bandwidth_hz", "rbw_hz", "e_v_per_m",
                 "u_expanded_db", "e_limit_v_per_m", "percent_field", "exposure_ratio", "share", "power_factor",

@@ -28,7 +28,7 @@ def create_survey(store: Store, session_id: int, plan: SurveyPlan, cert, ref, se
     row = {"session_id": session_id, "title": plan.title, "site_json": json.dumps(asdict(plan.site)),
            "standard": plan.standard, "tier": plan.tier, "decision_rule": plan.rule,
            "certificate_name": plan.certificate, "certificate_number": cert.certificate_number,
-           "certificate_due": cert.due_date.isoformat(), "certificate_sha256": sha, "sensor": sensor,
+           "certificate_due": cert.due_date.isoformat() if cert.due_date else None, "certificate_sha256": sha, "sensor": sensor,
            "freq_hz": plan.freq_hz, "band_lo_hz": ref.band_hz[0], "band_hi_hz": ref.band_hz[1],
            "e_ref_v_per_m": ref.e_v_per_m, "e_ref_freq_hz": ref.freq_hz, "averaging_time_s": ref.averaging_time_s,
            "followup_v_per_m": plan.followup.v_per_m, "followup_percent": plan.followup.percent_field,
