@@ -22,8 +22,11 @@ import pytest
 
 from meterlink.physics.units import Z0_OHM
 from meterlink.station import derived
-from meterlink.station.publish import (SERIES_COLUMNS, iter_series, series_rows, statistics, station_info, to_csv,
-                                       to_json, write_csv, write_json, write_series_csv)
+from hypothesis import given, settings, strategies as st_
+
+from meterlink.station.publish import (SERIES_COLUMNS, _iso_list, iter_series, rounded_list, series_rows, statistics,
+                                       station_info, to_csv, to_json, write_csv, write_json, write_series_csv,
+                                       write_series_json)
 
 T0 = 1_711_000_000.0       # 2024-03-21, ten days before the spring change in Europe and Lord Howe's autumn one
 WINDOWS = (360.0, 1800.0, 86400.0)
@@ -168,10 +171,16 @@ def test_streamed_exports_equal_the_whole_document_writers(tmp_path):
     buf = io.StringIO()
     write_json(buf, doc, "series_6min", iter_series(conn, t0, t1))
     assert buf.getvalue() == json.dumps({**doc, "series_6min": rows}, indent=2)
+    fast = io.StringIO()
+    write_series_json(fast, doc, "series_6min", conn, t0, t1, st, meters)
+    assert fast.getvalue() == buf.getvalue()
     assert json.loads(buf.getvalue())["series_6min"] == rows
     empty = io.StringIO()
     write_json(empty, doc, "series_6min", iter([]))
     assert empty.getvalue() == to_json({**doc, "series_6min": []})
+    none = io.StringIO()
+    write_series_json(none, doc, "series_6min", conn, t1, t1 + 1.0, st, meters)   # a span without blocks
+    assert none.getvalue() == empty.getvalue()
     plain = io.StringIO()
     w = csv.DictWriter(plain, fieldnames=SERIES_COLUMNS, lineterminator="\n")
     w.writeheader()
@@ -184,3 +193,61 @@ def test_streamed_exports_equal_the_whole_document_writers(tmp_path):
         assert "".join(line for line in buf.getvalue().splitlines(keepends=True) if not line.startswith("#")) \
             == plain.getvalue()
     conn.close()
+
+
+def test_the_series_rows_equal_a_plain_computation_per_block(tmp_path):
+    """Each exported row against the plain way: datetime per block for the times, E^2/Z0 over S_ref for the
+    percent of the power-density reference level, round() per value, NULL field as empty/None."""
+    path = tmp_path / "station.db"
+    _build(path, "UTC", "power", 3, 7)
+    conn = sqlite3.connect(path)
+    conn.execute("UPDATE mon_block SET e_rms_v_per_m = NULL WHERE rowid % 97 = 0")     # some blocks without a value
+    st, meters = station_info(conn)
+    s_ref = {m["meter"]: m["s_ref_w_per_m2"] for m in meters}
+    want = []
+    for meter, t, b, e, cov, complete, over in conn.execute(
+            "SELECT meter, t_start_utc, block_s, e_rms_v_per_m, covered_s, complete, n_overrange FROM mon_block "
+            "WHERE band = 'total' ORDER BY meter, t_start_utc"):
+        fmt = lambda x: dt.datetime.fromtimestamp(x, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")  # noqa: E731
+        want.append({"meter": meter, "start_utc": fmt(t), "end_utc": fmt(t + b),
+                     "e_rms_v_per_m": None if e is None else round(e, 6),
+                     "percent_of_reference": None if e is None else round(100.0 * (e * e / Z0_OHM) / s_ref[meter], 4),
+                     "coverage": round(min(cov / b, 1.0), 4), "complete": bool(complete),
+                     "overrange_lower_bound": bool(over)})
+    assert any(r["e_rms_v_per_m"] is None for r in want) and len(want) > 1000
+    t0, t1 = T0, T0 + 4 * 86400.0
+    assert list(iter_series(conn, t0, t1)) == want
+    buf = io.StringIO()
+    write_series_json(buf, {"caution": "c"}, "series_6min", conn, t0, t1, st, meters)
+    assert json.loads(buf.getvalue())["series_6min"] == want
+    conn.close()
+
+
+_FLOATS = st_.floats(allow_nan=False, allow_infinity=False, min_value=-1e12, max_value=1e12)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st_.lists(_FLOATS, min_size=1, max_size=50), st_.sampled_from([0, 1, 4, 6]))
+def test_rounded_list_gives_the_values_of_round(values, ndigits):
+    # the reference: Python's round(x, n), correctly rounded decimal rounding of the exact binary value
+    assert rounded_list(np.array(values), ndigits) == [round(v, ndigits) for v in values]
+
+
+def test_rounded_list_on_halves_ties_and_the_edges():
+    rng = np.random.default_rng(3)
+    for nd in (4, 6):
+        x = rng.random(20_000) * 10.0 ** rng.integers(-3, 6, 20_000)
+        halves = np.round(x, nd) + 0.5 * 10.0 ** -nd     # values next to a decimal half: where rint(x * 10**n) can err
+        edge = np.array([0.0, -0.0, 2.675, 1.0005, 0.125, 2.5e-7, -2.5e-7, 4.5e-5, 2.0 ** 60, -(2.0 ** 60), 1e300,
+                         math.inf, -math.inf, math.nan, np.nextafter(0.5e-6, 1), np.nextafter(0.5e-6, 0)])
+        for a in (x, -x, halves, edge):
+            got, want = rounded_list(a, nd), [round(v, nd) for v in a.tolist()]
+            assert [repr(v) for v in got] == [repr(v) for v in want]      # repr: -0.0 and nan compared too
+
+
+def test_iso_list_writes_the_text_of_datetime_per_time():
+    t = np.concatenate([1_711_000_000.0 + 360.0 * np.arange(2000), [0.0, 86399.0, 951_782_400.0, 253_402_300_799.0],
+                        [1_711_000_000.5]])                             # a fraction: the per-value path
+    fmt = lambda x: dt.datetime.fromtimestamp(x, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")  # noqa: E731
+    assert _iso_list(t[:-1]) == [fmt(x) for x in t[:-1].tolist()]
+    assert _iso_list(t) == [fmt(x) for x in t.tolist()]
