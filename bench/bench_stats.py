@@ -11,7 +11,7 @@ the C encoder), plus the stats baseline (the JSON holds summaries). Each baselin
 once per run: "same rows as the export").
 Each figure is the median of several runs (spread min-max), the month, the year and the baseline taken
 in turn; every run writes a fresh file (none is deleted until the end: deletions slowed what followed on
-the test machine's disk); tracemalloc is off while timing; memory is the peak RSS of a separate run.
+the test machine's disk); tracemalloc is off while timing; memory is the peak RSS (VmHWM) of a separate run.
 """
 
 from __future__ import annotations
@@ -23,6 +23,7 @@ import itertools
 import json
 import math
 import sqlite3
+import subprocess
 import sys
 import tempfile
 from pathlib import Path
@@ -157,7 +158,7 @@ def main(argv=None) -> list[dict]:
                    ("export_csv", "meterlink export --format csv", ours_export("csv"), "select + round() + csv.writer of the same rows",
                     lambda a, b: base_csv(conn, a, b, dest())),
                    ("export_json", "meterlink export --format json", ours_export("json"),
-                    "select + round() + json.dump of the same rows (+ the SQL aggregates)", lambda a, b: base_json(conn, a, b, dest()))]
+                    "select + round() + json.dumps of the same rows (+ the SQL aggregates)", lambda a, b: base_json(conn, a, b, dest()))]
         same = {}
         for fmt in ("csv", "json"):
             ours_f, base_f = Path(d) / f"same.{fmt}", Path(d) / f"same-base.{fmt}"
@@ -177,8 +178,7 @@ def main(argv=None) -> list[dict]:
                 + ("" if name not in same else f"; same rows as the export: {'yes' if same[name] else 'NO'}"),
                 ratio, f"{ratio:.2f}x the baseline",
                 "<= 1.5x the SQL baseline (a year)", ratio <= 1.5 if days >= 365 else None, args.json,
-                peak_mb=_common.child_peak_rss_mib([sys.executable, __file__, "--memory-only", name,
-                                                    str(db), str(year[0]), str(year[1])]),
+                peak_mb=peak_of(name, db, *year),
                 seconds=ours_r["median"], baseline_s=base_r["median"], runs=ours_r["runs"],
                 baseline_runs=base_r["runs"], **({"same_output": same[name]} if name in same else {})))
             n_m, n_y = (month[1] - month[0]), (year[1] - year[0])
@@ -195,10 +195,21 @@ def main(argv=None) -> list[dict]:
 
 
 def memory_only(name: str, db: str, t0: float, t1: float) -> None:
-    """One run of a target in a fresh process, for its peak RSS (timed runs keep tracemalloc off)."""
+    """One run of a target in a fresh process, for its peak RSS (timed runs keep tracemalloc off); prints the
+    process's own VmHWM: a child's ru_maxrss starts from the parent's peak at the fork (Linux keeps the larger
+    across exec), which here is the year's arrays built by the parent."""
     fn = {"stats": ours_stats, "export_csv": ours_export("csv"), "export_json": ours_export("json")}[name]
     with tempfile.TemporaryDirectory() as d:
         fn(Path(db), t0, t1, Path(d) / "out")
+    with open("/proc/self/status") as f:
+        print("RSS_MIB", int(next(ln for ln in f if ln.startswith("VmHWM")).split()[1]) / 1024)
+
+
+def peak_of(name: str, db: Path, t0: float, t1: float) -> float:
+    """Peak RSS (MiB) of one run of a target in its own process (memory_only)."""
+    p = subprocess.run([sys.executable, __file__, "--memory-only", name, str(db), str(t0), str(t1)],
+                       capture_output=True, text=True, check=True)
+    return float(next(ln.split()[1] for ln in p.stdout.splitlines() if ln.startswith("RSS_MIB")))
 
 
 if __name__ == "__main__":
