@@ -4,7 +4,8 @@ turn), against a bare `python -c pass` of the same venv Python; also which heavy
 
 Baseline: `python -c pass`, the floor every Python command pays (interpreter and site start-up). A
 `python -c 'import numpy'` baseline would hide exactly the cost that lazy imports avoid, so it is not used.
-The children run with bytecode caching allowed (PYTHONDONTWRITEBYTECODE removed from their environment),
+Each child's CPU time (user + system, from its rusage) is printed beside the wall time: on a loaded machine it
+shows what the command costs without the wait for a core. The children run with bytecode caching allowed (PYTHONDONTWRITEBYTECODE removed from their environment),
 as an installed meterlink runs; the warm-up runs write the caches. `sessions` reads an empty database
 created by the Store (its cost is start-up, not the query).
 """
@@ -32,17 +33,25 @@ def loaded(argv: list[str], env: dict) -> list[str]:
     return [m for m in HEAVY if m in names]
 
 
-def run_in_turn(cmds: dict[str, list[str]], n: int, warmup: int, env: dict) -> dict[str, dict]:
-    """Wall time of each command, taken in turn n times after ``warmup`` untimed rounds."""
+def run_in_turn(cmds: dict[str, list[str]], n: int, warmup: int, env: dict) -> tuple[dict, dict]:
+    """Wall time and CPU time (user + system, the child's rusage) of each command, taken in turn n times
+    after ``warmup`` untimed rounds. The CPU time is the steadier figure on a loaded machine: time spent
+    waiting for a core is not in it."""
     times: dict[str, list[float]] = {k: [] for k in cmds}
+    cpu: dict[str, list[float]] = {k: [] for k in cmds}
     for i in range(warmup + n):
         for k, cmd in cmds.items():
             t = time.perf_counter()
-            subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=True,
-                           cwd=_common.ROOT, env=env)
+            p = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, cwd=_common.ROOT, env=env)
+            _, status, ru = os.wait4(p.pid, 0)
+            wall = time.perf_counter() - t
+            p.returncode = os.waitstatus_to_exitcode(status)
+            if p.returncode != 0:
+                raise RuntimeError(f"{' '.join(cmd)} failed (exit {p.returncode})")
             if i >= warmup:
-                times[k].append(time.perf_counter() - t)
-    return {k: _common._stats(v) for k, v in times.items()}
+                times[k].append(wall)
+                cpu[k].append(ru.ru_utime + ru.ru_stime)
+    return ({k: _common._stats(v) for k, v in times.items()}, {k: _common._stats(v) for k, v in cpu.items()})
 
 
 def main(argv=None) -> list[dict]:
@@ -59,7 +68,7 @@ def main(argv=None) -> list[dict]:
                 "limits": py + ["-m", "meterlink", "limits", "900MHz"],
                 "sessions": py + ["-m", "meterlink", "sessions", "--db", str(db)],
                 "help": py + ["-m", "meterlink", "--help"]}
-        r = run_in_turn(cmds, n, 3, env)
+        r, c = run_in_turn(cmds, n, 3, env)
         heavy = {k: loaded(cmds[k][3:], env) for k in ("limits", "sessions", "help")}
         peak = {k: _common.child_peak_rss_mib(cmds[k], cwd=_common.ROOT, env=env) for k in heavy}
     bare = r["bare"]
@@ -71,11 +80,13 @@ def main(argv=None) -> list[dict]:
         ratio = r[k]["median"] / bare["median"]
         met = r[k]["median"] < limit and (k != "help" or not heavy[k])
         out.append(_common.report(
-            f"cli_{k}", f"{what}: {_common.timing_text(r[k], 'ms')}; heavy modules loaded: "
-            f"{', '.join(heavy[k]) or 'none'}", f"python -c pass {_common.timing_text(bare, 'ms')}", ratio,
+            f"cli_{k}", f"{what}: {_common.timing_text(r[k], 'ms')}, CPU {c[k]['median'] * 1000:.0f} ms; heavy modules "
+            f"loaded: {', '.join(heavy[k]) or 'none'}", f"python -c pass {_common.timing_text(bare, 'ms')}, CPU "
+            f"{c['bare']['median'] * 1000:.0f} ms", ratio,
             f"{ratio:.1f}x the bare interpreter ({(r[k]['median'] - bare['median']) * 1000:.0f} ms more)", target, met,
             args.json, peak_mb=peak[k], seconds=r[k]["median"], baseline_s=bare["median"], runs=r[k]["runs"],
-            baseline_runs=bare["runs"], heavy_loaded=heavy[k]))
+            baseline_runs=bare["runs"], heavy_loaded=heavy[k], cpu_s=c[k]["median"], cpu_runs=c[k]["runs"],
+            baseline_cpu_s=c["bare"]["median"]))
     return out
 
 

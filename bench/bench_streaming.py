@@ -78,24 +78,55 @@ def _ranges(conn, sid, rows):
 
 
 def baseline_recalibrate(path: Path, sid: int, cert) -> int:
-    """Streamed select of raw counts, numpy calibration, executemany of the per-reading rows."""
+    """Streamed select of raw counts, numpy calibration, executemany of the per-reading rows (field_values)
+    and of the packed rows (field_spans) the streamed path writes beside them: the same output, so that
+    the comparison is fair (without the packed rows the baseline would write about a third less).
+
+    Packed rows, as docs/schema.md gives them: one per chunk, each column's little-endian bytes; the id
+    column empty when the ids run without a hole, uncertainty and flags one element when constant."""
     conn = sqlite3.connect(path)
     conn.execute("PRAGMA synchronous=NORMAL")     # as the Store's connection: no fsync per commit in WAL mode
     cal = conn.execute("insert into calibrations (session_id, certificate_name, applied_utc) values (?, 'baseline', ?)",
                        [sid, time.time()]).lastrowid
     conn.commit()
     for lo, hi in list(_ranges(conn, sid, CHUNK_ROWS)):
-        a = np.array(conn.execute("select id, raw_x, raw_y, raw_z from readings where id between ? and ? and "
-                                  "session_id = ? order by id", [lo, hi, sid]).fetchall(), dtype=np.int64)
-        res = calibrate_axes(cert, a[:, 1:4], FREQ_HZ, None)
+        a = np.array(conn.execute("select id, t_utc, raw_x, raw_y, raw_z from readings where id between ? and ? and "
+                                  "session_id = ? order by id", [lo, hi, sid]).fetchall(), dtype=np.float64)
+        if not a.size:
+            continue
+        ids, t = a[:, 0].astype(np.int64), a[:, 1]
+        res = calibrate_axes(cert, a[:, 2:5].astype(np.int64), FREQ_HZ, None)
         conn.executemany("insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
                          "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)",
-                         zip(a[:, 0].tolist(), itertools.repeat(cal), res.e_v_per_m.tolist(),
+                         zip(ids.tolist(), itertools.repeat(cal), res.e_v_per_m.tolist(),
                              *(res.axes_v_per_m[:, j].tolist() for j in range(3)), res.h_a_per_m.tolist(),
                              res.s_w_per_m2.tolist(), res.u_expanded_db.tolist(), res.flags.tolist()))
+        u, fl = res.u_expanded_db, res.flags
+        conn.execute("insert into field_spans (calibration_id, id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, "
+                     "e_v_per_m, axes_v_per_m, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?,?,?)",
+                     [cal, int(ids[0]), int(ids[-1]), ids.size, float(t.min()), float(t.max()),
+                      b"" if ids[-1] - ids[0] + 1 == ids.size else ids.astype("<i8").tobytes(),
+                      t.astype("<f8").tobytes(), res.e_v_per_m.astype("<f8").tobytes(),
+                      res.axes_v_per_m.astype("<f8").tobytes(),
+                      (u[:1] if np.all(u == u[0]) else u).astype("<f8").tobytes(),
+                      (fl[:1] if np.all(fl == fl[0]) else fl).astype("<i8").tobytes()])
         conn.commit()
     conn.close()
     return cal
+
+
+def same_calibration(path: Path, cal_a: int, cal_b: int) -> bool:
+    """Whether two calibrations hold the same values: field_values rows and field_spans rows alike."""
+    conn = sqlite3.connect(path)
+    try:
+        cols = ("reading_id, e_v_per_m, ex_v_per_m, ey_v_per_m, ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, "
+                "flags")
+        packed = "id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, e_v_per_m, axes_v_per_m, u_expanded_db, flags"
+        return all(conn.execute(f"select {c} from {tab} where calibration_id = ? order by {key}", [cal_a]).fetchall()
+                   == conn.execute(f"select {c} from {tab} where calibration_id = ? order by {key}", [cal_b]).fetchall()
+                   for tab, c, key in (("field_values", cols, "reading_id"), ("field_spans", packed, "id_lo")))
+    finally:
+        conn.close()
 
 
 def baseline_report(path: Path, sid: int, cal: int, out: Path) -> None:
@@ -287,13 +318,18 @@ def main(argv=None) -> list[dict]:
                 drop_calibration(db, cal)
                 return t
 
+            cal_m, cal_b = streamed_recalibrate(db, sid, cert), baseline_recalibrate(db, sid, cert)
+            same = same_calibration(db, cal_m, cal_b)
+            drop_calibration(db, cal_b)
+            drop_calibration(db, cal_m)
             m, b, r = paired(args.runs, mine, base)
             ratio = m / b
             recs.append(_common.report(
                 "streaming-recalibrate", f"recalibrate {days:g} days at 1 Hz ({n} readings), streamed: {m:.2f} s "
-                f"(median of {args.runs})", f"select + numpy + executemany of the per-reading rows, streamed by the same "
-                f"chunks: {b:.2f} s", ratio, f"{ratio:.2f}x the baseline (pairs {spread(r)})", "<= 1.0x the baseline",
-                ratio <= 1.0, args.json, recalibrate_s=m, baseline_s=b, pair_ratios=r, build_s=t_build, **host))
+                f"(median of {args.runs})", f"select + numpy + executemany of the per-reading rows and the packed rows, "
+                f"streamed by the same chunks: {b:.2f} s; same values in both tables: {'yes' if same else 'NO'}", ratio, f"{ratio:.2f}x the baseline (pairs {spread(r)})", "<= 1.0x the baseline",
+                ratio <= 1.0, args.json, recalibrate_s=m, baseline_s=b, pair_ratios=r, build_s=t_build, same_output=same,
+                **host))
 
         if want("assess"):
             # 2. assess: streamed vs the in-memory path (whole series loaded)

@@ -23,8 +23,10 @@ import pytest
 from meterlink.reports.digits import tidy
 from meterlink.physics.units import Z0_OHM
 from meterlink.station import derived
-from meterlink.station.publish import (SERIES_COLUMNS, iter_series, series_rows, statistics, station_info, to_csv,
-                                       to_json, write_csv, write_json, write_series_csv)
+
+from meterlink.station.publish import (SERIES_COLUMNS, _iso_list, iter_series, series_rows, statistics,
+                                       station_info, to_csv, to_json, write_csv, write_json, write_series_csv,
+                                       write_series_json)
 
 T0 = 1_711_000_000.0       # 2024-03-21, ten days before the spring change in Europe and Lord Howe's autumn one
 WINDOWS = (360.0, 1800.0, 86400.0)
@@ -170,10 +172,16 @@ def test_streamed_exports_equal_the_whole_document_writers(tmp_path):
     write_json(buf, doc, "series_6min", iter_series(conn, t0, t1))
     # the whole-document writer's text (numbers as meterlink.reports.digits writes them)
     assert buf.getvalue() == json.dumps(tidy({**doc, "series_6min": rows}), indent=2)
+    fast = io.StringIO()
+    write_series_json(fast, doc, "series_6min", conn, t0, t1, st, meters)
+    assert fast.getvalue() == buf.getvalue()
     assert json.loads(buf.getvalue())["series_6min"] == rows
     empty = io.StringIO()
     write_json(empty, doc, "series_6min", iter([]))
     assert empty.getvalue() == to_json({**doc, "series_6min": []})
+    none = io.StringIO()
+    write_series_json(none, doc, "series_6min", conn, t1, t1 + 1.0, st, meters)   # a span without blocks
+    assert none.getvalue() == empty.getvalue()
     plain = io.StringIO()
     w = csv.DictWriter(plain, fieldnames=SERIES_COLUMNS, lineterminator="\n")
     w.writeheader()
@@ -186,3 +194,41 @@ def test_streamed_exports_equal_the_whole_document_writers(tmp_path):
         assert "".join(line for line in buf.getvalue().splitlines(keepends=True) if not line.startswith("#")) \
             == plain.getvalue()
     conn.close()
+
+
+def test_the_series_rows_equal_a_plain_computation_per_block(tmp_path):
+    """Each exported row against the plain way: datetime per block for the times, E^2/Z0 over S_ref for the
+    percent of the power-density reference level, 5 significant digits per value ('%.5g', docs/formats.md),
+    NULL field as empty/None."""
+    path = tmp_path / "station.db"
+    _build(path, "UTC", "power", 3, 7)
+    conn = sqlite3.connect(path)
+    conn.execute("UPDATE mon_block SET e_rms_v_per_m = NULL WHERE rowid % 97 = 0")     # some blocks without a value
+    st, meters = station_info(conn)
+    s_ref = {m["meter"]: m["s_ref_w_per_m2"] for m in meters}
+    want = []
+    for meter, t, b, e, cov, complete, over in conn.execute(
+            "SELECT meter, t_start_utc, block_s, e_rms_v_per_m, covered_s, complete, n_overrange FROM mon_block "
+            "WHERE band = 'total' ORDER BY meter, t_start_utc"):
+        fmt = lambda x: dt.datetime.fromtimestamp(x, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")  # noqa: E731
+        g5 = lambda x: float(f"{x:.5g}")  # noqa: E731
+        want.append({"meter": meter, "start_utc": fmt(t), "end_utc": fmt(t + b),
+                     "e_rms_v_per_m": None if e is None else g5(e),
+                     "percent_of_reference": None if e is None else g5(100.0 * (e * e / Z0_OHM) / s_ref[meter]),
+                     "coverage": g5(min(cov / b, 1.0)), "complete": bool(complete),
+                     "overrange_lower_bound": bool(over)})
+    assert any(r["e_rms_v_per_m"] is None for r in want) and len(want) > 1000
+    t0, t1 = T0, T0 + 4 * 86400.0
+    assert list(iter_series(conn, t0, t1)) == want
+    buf = io.StringIO()
+    write_series_json(buf, {"caution": "c"}, "series_6min", conn, t0, t1, st, meters)
+    assert json.loads(buf.getvalue())["series_6min"] == want
+    conn.close()
+
+
+def test_iso_list_writes_the_text_of_datetime_per_time():
+    t = np.concatenate([1_711_000_000.0 + 360.0 * np.arange(2000), [0.0, 86399.0, 951_782_400.0, 253_402_300_799.0],
+                        [1_711_000_000.5]])                             # a fraction: the per-value path
+    fmt = lambda x: dt.datetime.fromtimestamp(x, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")  # noqa: E731
+    assert _iso_list(t[:-1]) == [fmt(x) for x in t[:-1].tolist()]
+    assert _iso_list(t) == [fmt(x) for x in t.tolist()]

@@ -17,7 +17,7 @@ LAYOUT = {
                 "exposure", "verdict", "assessment"],
     "device": ["protocol", "transport", "link", "commander", "clock", "conformance"],
     "storage": ["schema", ("storage", "store"), "spans", "salvage", "recorder", "processing", "files", "rows", "batch",
-                "writing", "queries", "recording", "streamed"],
+                "writing", "queries", "recording", "streamed", "listing"],
     "station": [("station", "stationfile"), "monitor", "derived", "spectral", "alarms", "stats", "publish",
                 "hooks", "lock", "notify", "retention", "ingest", "persist", "health", "meterwriter",
                 "period_report"],

@@ -24,8 +24,8 @@ def run(args) -> int:
     from meterlink.commands.stats import open_station
     from meterlink.errors import MeterlinkError
     from meterlink.storage.store import describe_sqlite_error
-    from meterlink.station.publish import (export_file_name, header_lines, iter_series, station_info, statistics,
-                                           write_json, write_series_csv)
+    from meterlink.station.publish import (export_file_name, header_lines, station_info, statistics,
+                                           write_series_csv, write_series_json)
 
     conn, t0, t1 = open_station(args)
     try:
@@ -38,7 +38,7 @@ def run(args) -> int:
             else:
                 doc = {"about": header_lines(st, SAFETY_LINE), "caution": SAFETY_LINE,
                        "summaries": statistics(conn, t0, t1)}
-                write_json(stream, doc, "series_6min", iter_series(conn, t0, t1, st, meters))
+                write_series_json(stream, doc, "series_6min", conn, t0, t1, st, meters)
 
         if not args.out:
             write(sys.stdout)

@@ -20,23 +20,11 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    import sqlite3
-
-    from meterlink.storage.store import Store, describe_sqlite_error
-
     if args.salvage:
         return _salvage(args)
     if args.verify:
         return _verify(args)
-    try:
-        with Store(args.db, readonly=True) as store:
-            if args.events is not None:
-                store.session(args.events)          # one-line error if there is no such session
-                rows = store.events(args.events, args.kind)
-            else:
-                rows = store.session_overview()
-    except sqlite3.DatabaseError as exc:    # a damaged page met while reading
-        raise describe_sqlite_error(args.db, exc) from None
+    rows = _listing(args)
     if args.json:
         print(json.dumps(rows, indent=2, default=str))
         return 0
@@ -45,6 +33,35 @@ def run(args) -> int:
     con = Console()
     con.print(_events_table(rows, args.events) if args.events is not None else _sessions_table(rows, args.db))
     return 0
+
+
+def _listing(args) -> list[dict]:
+    """The sessions, or one session's events, read on a bare read-only sqlite3 connection (no numpy, no
+    sqlite-utils: this command starts fast); a file of an older schema goes through the Store once, which
+    upgrades it."""
+    import sqlite3
+
+    from meterlink.storage import listing
+    from meterlink.storage.files import StorageError, describe_sqlite_error
+
+    try:
+        conn = listing.open_current(args.db)
+        if conn is None:
+            from meterlink.storage.store import Store
+
+            Store(args.db, readonly=True).close()      # upgrades the file (or says why it cannot)
+            conn = listing.open_current(args.db)
+            if conn is None:
+                raise StorageError(f"{args.db!r}: cannot bring the file to the current schema")
+        try:
+            if args.events is None:
+                return listing.session_overview(conn)
+            listing.require_session(conn, args.events, args.db)   # one-line error if there is no such session
+            return listing.events(conn, args.events, args.kind)
+        finally:
+            conn.close()
+    except sqlite3.DatabaseError as exc:    # a damaged page met while reading
+        raise describe_sqlite_error(args.db, exc) from None
 
 
 def _verify(args) -> int:

@@ -211,15 +211,30 @@ _NUMPY_ISO_MAX_S = 253_402_300_800.0     # 10000-01-01: below it numpy and strft
 
 def _iso_list(t: np.ndarray) -> list[str]:
     """[iso(x) for x in t], vectorised where every time is a whole second of years 1970-9999 (the text is
-    then the same); any other time goes through iso() itself."""
+    then the same): each distinct day and each distinct second of the day is written once, and the texts
+    joined per time; any other time goes through iso() itself."""
     if t.size and np.all((t >= 0) & (t < _NUMPY_ISO_MAX_S)) and np.all(t == np.floor(t)):
-        return np.datetime_as_string(t.astype(np.int64).astype("datetime64[s]"), timezone="UTC").tolist()
+        day, sec = np.divmod(t.astype(np.int64), 86400)
+        days, di = np.unique(day, return_inverse=True)
+        secs, si = np.unique(sec, return_inverse=True)
+        dtxt = np.array(np.datetime_as_string(days.astype("datetime64[D]")).tolist(), dtype=object)
+        stxt = np.array([f"T{x // 3600:02d}:{x % 3600 // 60:02d}:{x % 60:02d}Z" for x in secs.tolist()], dtype=object)
+        return (dtxt[di.reshape(-1)] + stxt[si.reshape(-1)]).tolist()
     return [iso(x) for x in t.tolist()]
 
 
-def _series_chunks(conn, t0: float, t1: float, st: dict, meters: list[dict], name=lambda m: m):
-    """Iterators of series tuples (SERIES_COLUMNS order), one per chunk of 4096 blocks, built column-wise;
-    ``name`` maps the meter name for the first column (e.g. csv_cell)."""
+def _none_where(values: list, missing: np.ndarray) -> list:
+    """values with None at the positions where ``missing`` is true (NULL in the database)."""
+    if missing.any():
+        for i in np.flatnonzero(missing).tolist():
+            values[i] = None
+    return values
+
+
+def _series_columns(conn, t0: float, t1: float, st: dict, meters: list[dict], name=lambda m: m):
+    """The 6-minute series, one chunk of 4096 blocks at a time, as a list of columns (SERIES_COLUMNS order;
+    the meter column as the one name, the others as lists), built column-wise from the cursor's rows.
+    Rounding: as every writer rounds (meterlink.reports.digits: 5 significant digits), vectorised."""
     for m in meters:
         ref = _reference(st, m)
         cur = conn.execute("SELECT t_start_utc, block_s, e_rms_v_per_m, covered_s, complete, n_overrange FROM "
@@ -233,16 +248,22 @@ def _series_chunks(conn, t0: float, t1: float, st: dict, meters: list[dict], nam
             ts, bs, e, covered, complete, nover = zip(*chunk)
             tsa = np.array(ts, dtype=float)
             bsa = np.array(bs, dtype=float)
-            ea = np.array(e, dtype=float)                      # NULL -> NaN
-            pct = ref.pct(ea).tolist()                         # the same IEEE operations as ref.pct(one value)
-            cov = np.minimum(np.array(covered, dtype=float) / bsa, 1.0).tolist()
+            ea = np.array(e, dtype=float)                      # NULL -> NaN (SQLite stores no NaN)
+            null = np.isnan(ea)
+            pct = ref.pct(ea)                                  # the same IEEE operations as ref.pct(one value)
+            cov = np.minimum(np.array(covered, dtype=float) / bsa, 1.0)
             # numbers as every writer rounds them (meterlink.reports.digits), vectorised
-            er = rounded_array(ea, "e_rms_v_per_m").tolist()
-            pr = rounded_array(pct, "percent_of_reference").tolist()
-            yield zip(itertools.repeat(meter), _iso_list(tsa), _iso_list(tsa + bsa),
-                      [None if x is None else r for x, r in zip(e, er)],
-                      [None if x is None else r for x, r in zip(e, pr)],
-                      rounded_array(cov, "coverage").tolist(), map(bool, complete), map(bool, nover))
+            yield [meter, _iso_list(tsa), _iso_list(tsa + bsa),
+                   _none_where(rounded_array(ea, "e_rms_v_per_m").tolist(), null),
+                   _none_where(rounded_array(pct, "percent_of_reference").tolist(), null),
+                   rounded_array(cov, "coverage").tolist(), list(map(bool, complete)), list(map(bool, nover))]
+
+
+def _series_chunks(conn, t0: float, t1: float, st: dict, meters: list[dict], name=lambda m: m):
+    """Iterators of series tuples (SERIES_COLUMNS order), one per chunk of 4096 blocks, built column-wise;
+    ``name`` maps the meter name for the first column (e.g. csv_cell)."""
+    for cols in _series_columns(conn, t0, t1, st, meters, name):
+        yield zip(itertools.repeat(cols[0]), *cols[1:])
 
 
 def series_tuples(conn, t0: float, t1: float, st: dict | None = None, meters: list[dict] | None = None):
@@ -335,6 +356,41 @@ def write_json(out, doc: dict, list_key: str, rows) -> None:
         out.write(("\n" if first else ",\n") + "    {\n" + body + "\n    }")
         first = False
     out.write("]\n}" if first else "\n  ]\n}")
+
+
+_JSON_BOOL = {False: "false", True: "true"}
+
+
+def _json_numbers(values: list) -> list[str]:
+    """JSON texts of a column of floats (None and non-finite as null), as json.dumps writes them."""
+    bad = ~np.isfinite(np.array(values, dtype=float))       # None becomes NaN here
+    if not bad.any():
+        return list(map(float.__repr__, values))
+    out = list(map(repr, values))
+    for i in np.flatnonzero(bad).tolist():
+        out[i] = "null"
+    return out
+
+
+def write_series_json(out, doc: dict, list_key: str, conn, t0: float, t1: float, st: dict,
+                      meters: list[dict]) -> None:
+    """Write ``doc`` with the station's series under ``list_key`` (its last key), the text of
+    :func:`write_json` of :func:`iter_series` (json.dumps with indent 2), streamed chunk by chunk: each
+    column is turned into JSON texts at once and every row is one %-format of a fixed template."""
+    head = to_json({**doc, list_key: []})
+    empty = f'\n  {json.dumps(list_key)}: []\n}}'
+    if not head.endswith(empty):
+        raise ValueError(f"{list_key!r} must be the last key of the document")
+    out.write(head[:-len(empty)] + f"\n  {json.dumps(list_key)}: [")
+    row = "    {\n" + ",\n".join(f"      {_encode_str(k)}: %s" for k in SERIES_COLUMNS) + "\n    }"
+    sep = "\n"
+    for meter, start, end, e, pct, cov, complete, nover in _series_columns(conn, t0, t1, st, meters):
+        texts = zip(itertools.repeat(_json_scalar(meter)), [f'"{x}"' for x in start], [f'"{x}"' for x in end],
+                    _json_numbers(e), _json_numbers(pct), _json_numbers(cov), map(_JSON_BOOL.__getitem__, complete),
+                    map(_JSON_BOOL.__getitem__, nover))
+        out.write(sep + ",\n".join(map(row.__mod__, texts)))
+        sep = ",\n"
+    out.write("]\n}" if sep == "\n" else "\n  ]\n}")
 
 
 def to_json(doc) -> str:

@@ -2,12 +2,11 @@
 
 from __future__ import annotations
 
-import json
 from typing import Any, Callable, Mapping
 
 import numpy as np
 
-from meterlink.storage import spans
+from meterlink.storage import listing, spans
 from meterlink.storage.files import StorageError
 from meterlink.storage.rows import ReadingArrays
 
@@ -34,18 +33,9 @@ class SessionQueries:
                              flags=ints(8)[order], range_index=ints(9)[order])
 
     def events(self, session_id: int | None = None, kind: str | None = None) -> list[dict]:
-        """Events (detail decoded from JSON), in time order."""
-        clauses, params = [], []
-        if session_id is not None:
-            clauses, params = ["session_id = ?"], [session_id]
-        if kind is not None:
-            clauses.append("kind = ?")
-            params.append(kind)
+        """Events (detail decoded from JSON), in time order (the query: meterlink.storage.listing)."""
         with self._lock:
-            rows = list(self.db["events"].rows_where(" and ".join(clauses) or None, params, order_by="t_utc, id"))
-        for r in rows:
-            r["detail"] = json.loads(r["detail"]) if r["detail"] else {}
-        return rows
+            return listing.events(self.db.conn, session_id, kind)
 
     def count(self, table: str, session_id: int) -> int:
         if table not in ("readings", "spectra", "status", "events"):
@@ -76,23 +66,9 @@ class SessionQueries:
 
     def session_overview(self) -> list[dict]:
         """One row per session with its device, span and counts of readings, spectra, events by
-        severity and calibrations, and the outcome of its latest assessment (if any)."""
-        sql = """
-            select s.id, s.kind, s.port, s.started_utc, s.ended_utc, s.notes, s.freq_hz, s.band_lo_hz, s.band_hi_hz,
-                   d.model, d.serial, d.probe_serial, d.sensor_kind,
-                   (select coalesce(sum(n), 0) from reading_spans r where r.session_id = s.id) as readings,
-                   (select count(*) from spectra p where p.session_id = s.id) as spectra,
-                   (select min(t_lo) from reading_spans r where r.session_id = s.id) as first_utc,
-                   (select max(t_hi) from reading_spans r where r.session_id = s.id) as last_utc,
-                   (select count(*) from events e where e.session_id = s.id) as events,
-                   (select count(*) from events e where e.session_id = s.id and e.severity = 'warning') as warnings,
-                   (select count(*) from events e where e.session_id = s.id and e.severity = 'error') as errors,
-                   (select count(*) from calibrations c where c.session_id = s.id) as calibrations,
-                   (select json_extract(e.detail, '$.outcome') from events e where e.session_id = s.id
-                      and e.kind = 'assessment' order by e.t_utc desc, e.id desc limit 1) as last_outcome
-            from sessions s left join devices d on d.id = s.device_id order by s.id"""
+        severity and calibrations, and the outcome of its latest assessment (meterlink.storage.listing)."""
         with self._lock:
-            return list(self.db.query(sql))
+            return listing.session_overview(self.db.conn)
 
     # -- derived values: calibrations with provenance ------------------------------------------
     def status_temperatures(self, session_id: int) -> list[float]:

@@ -6,11 +6,10 @@ records its version in ``meta``. A migration is never edited once released: a ch
 
 from __future__ import annotations
 
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
 
-import sqlite_utils
-
-from meterlink.storage import spans
+if TYPE_CHECKING:      # annotations only: the version constants below are read by lean listing commands
+    import sqlite_utils
 
 APP_ID = "meterlink"
 SCHEMA_VERSION = 11
@@ -117,6 +116,8 @@ def _schema_v2_survey(db: sqlite_utils.Database) -> None:
 # version -> function bringing the schema from version-1 up to it; applied in order, in one transaction each
 def _schema_v3_spans(db: sqlite_utils.Database) -> None:
     """Readings lose their per-row indexes to the span index (meterlink/storage/spans.py)."""
+    from meterlink.storage import spans
+
     spans.create(db.conn)
 
 def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
@@ -130,6 +131,8 @@ def _schema_v4_epochs(db: sqlite_utils.Database) -> None:
                "boot INTEGER, started_utc REAL NOT NULL, reason TEXT NOT NULL, device_id INTEGER "
                "REFERENCES devices(id))")
     db.execute("CREATE INDEX epochs_session ON epochs (session_id)")
+    from meterlink.storage import spans
+
     spans.add_epochs(db.conn)
     db.execute("ALTER TABLE spectra ADD COLUMN epoch INTEGER NOT NULL DEFAULT 0")
     db.execute("DROP INDEX IF EXISTS idx_spectra_session_id_boot_seq")

@@ -25,6 +25,7 @@ from meterlink.storage.schema import _SLOW_MIGRATIONS, APP_ID, MIGRATIONS, SCHEM
 from meterlink.storage.batch import BatchWriter  # noqa: F401 (re-exported)
 from meterlink.storage.files import (DamagedDatabaseError, SQLITE_HEADER, StorageError,  # noqa: F401 (re-exported)
                                      check_database_file, describe_sqlite_error, open_readonly)
+from meterlink.storage import listing
 from meterlink.storage.queries import SessionQueries
 from meterlink.storage.rows import (READING_COLUMNS, SEVERITIES, ReadingArrays,  # noqa: F401 (re-exported)
                                     epoch_row, event_row, seq_ranges)
@@ -100,18 +101,7 @@ class Store(ReadingWriter, SessionQueries):
     # -- schema --------------------------------------------------------------------------------
     def _prepare(self) -> None:
         db = self.db
-        tables = set(db.table_names())
-        if tables and "meta" not in tables:
-            raise StorageError(f"{str(self.path)!r} is an SQLite file but not a meterlink database")
-        version = 0
-        if "meta" in tables:
-            meta = {r["key"]: r["value"] for r in db["meta"].rows}
-            if meta.get("app") != APP_ID:
-                raise StorageError(f"{str(self.path)!r} is an SQLite file but not a meterlink database")
-            version = int(meta.get("schema_version", 0))
-            if version > SCHEMA_VERSION:
-                raise StorageError(f"{str(self.path)!r} has schema version {version}, newer than this "
-                                   f"meterlink ({SCHEMA_VERSION}): upgrade meterlink")
+        version = listing.schema_version(db.conn, self.path)   # refuses other SQLite files and newer schemas
         if self.readonly:
             if version < SCHEMA_VERSION:
                 self._upgrade_then_reopen(version)
