@@ -130,7 +130,7 @@ def test_brief_exposure_energy_density(capsys):
     assert main(["limits", "3.5GHz", "--standard", "icnirp-2020", "--tier", "public", "--brief", "60", "--json"]) == 0
     brief = json.loads(capsys.readouterr().out)["brief_exposure"]
     k = 0.36 * (0.05 + 0.95 * math.sqrt(60 / 360))
-    assert brief[0]["u_j_per_m2"] == pytest.approx(40e3 * k, rel=1e-9)
+    assert brief[0]["u_j_per_m2"] == pytest.approx(40e3 * k, rel=1e-4)   # JSON: 5 significant digits
     assert brief[0]["status"] == "not yet checked against the primary text"
     assert main(["limits", "3.5GHz", "--standard", "icnirp-2020", "--tier", "public", "--brief", "360", "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["brief_exposure"][0]["u_j_per_m2"] == pytest.approx(40 * 360)
