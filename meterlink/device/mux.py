@@ -191,11 +191,21 @@ class PortMux:
                 continue
             if link._mux_paused_since is not None:
                 continue
-            try:
-                link._check_silence(now)
-            except Exception as exc:  # noqa: BLE001 - the port silent: the link's thread reconnects
-                self._hand_back(link, exc, now)
-                continue
+            if now - link._last_frame_mono > link.min_silence_s:
+                # silent only after a read that brings nothing, as on the link's own thread: a port
+                # resting (read pause) or not yet served by this thread may have frames waiting
+                try:
+                    data = link._link.read_ready(16384 if link.batched else 4096)
+                    link._last_read_n = len(data)
+                    if data:
+                        link._pump_data(data, now)
+                    else:
+                        link._check_silence(now)
+                except Exception as exc:  # noqa: BLE001 - lost, silent or restarted: the link's thread goes on
+                    self._hand_back(link, exc, now)
+                    continue
+                if id(link) not in self._links:
+                    continue
             if now >= link._next_drift:
                 link._next_drift = now + link.drift_report_s
                 link._report_drift()
