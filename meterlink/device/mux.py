@@ -1,4 +1,4 @@
-"""One reader thread for many meter links: their ports waited on together with selectors (epoll/poll).
+"""One reader thread for many meter links: their ports waited on together (epoll, or poll).
 
 A MeterLink given a ``PortMux`` connects and handshakes on its own thread as always; once it
 streams on a port with a descriptor (a local serial port, socket://), it hands the port to the mux
@@ -19,7 +19,7 @@ from __future__ import annotations
 import heapq
 import itertools
 import os
-import selectors
+import select
 import threading
 import time
 
@@ -30,12 +30,13 @@ class PortMux:
     def __init__(self, sweep_s: float = 0.25, name: str = "meterlink-mux"):
         self.sweep_s = float(sweep_s)      # silence, drift and stop checks this often (as a link's read timeout)
         self.name = name
-        self._sel = selectors.DefaultSelector()
+        self._sel = _Poller()
         self._wake_r, self._wake_w = os.pipe()
         os.set_blocking(self._wake_r, False)
         os.set_blocking(self._wake_w, False)
-        self._sel.register(self._wake_r, selectors.EVENT_READ, None)
+        self._sel.register(self._wake_r, None)
         self._lock = threading.Lock()
+        self._closed = False
         self._incoming: list = []          # links handed over, not yet taken in by the mux thread
         self._links: dict[int, object] = {}    # id(link) -> link, every link the mux holds
         self._paused: list = []            # heap of (due monotonic, n, link, gen): not read until then
@@ -52,14 +53,22 @@ class PortMux:
     def add(self, link) -> None:
         """Take over reading a streaming link (called from the link's own thread, which then ends)."""
         with self._lock:
-            self._incoming.append(link)
+            closed = self._closed
+            if not closed:
+                self._incoming.append(link)
+        if closed:                       # the mux has ended: the link reads on its own thread
+            link._leave_mux(None)
+            return
         self.wake()
 
     def wake(self) -> None:
-        try:
-            os.write(self._wake_w, b"x")
-        except BlockingIOError:      # the pipe is full: the mux is being woken anyway
-            pass
+        with self._lock:
+            if self._closed:
+                return
+            try:
+                os.write(self._wake_w, b"x")
+            except BlockingIOError:      # the pipe is full: the mux is being woken anyway
+                pass
 
     def stop(self, timeout_s: float = 10.0) -> None:
         """Finish every link still held (as each link's stop would) and end the thread."""
@@ -85,9 +94,11 @@ class PortMux:
             for link in late:
                 link._leave_mux(f"{type(exc).__name__}: {exc}")
         finally:
-            self._sel.close()
-            os.close(self._wake_r)
-            os.close(self._wake_w)
+            with self._lock:
+                self._closed = True
+                self._sel.close()
+                os.close(self._wake_r)
+                os.close(self._wake_w)
 
     def _loop(self) -> None:
         next_sweep = time.monotonic() + self.sweep_s
@@ -97,8 +108,7 @@ class PortMux:
             due = min(next_sweep, self._paused[0][0]) if self._paused else next_sweep
             events = self._sel.select(max(0.0, due - now))
             now = time.monotonic()
-            for key, _ in events:
-                link = key.data
+            for link in events:
                 if link is None:
                     self._drain_wake()
                 elif id(link) in self._links:
@@ -139,7 +149,7 @@ class PortMux:
             link._mux_paused_since = None
             link._mux_gen += 1
             self._links[id(link)] = link
-            self._sel.register(fd, selectors.EVENT_READ, link)
+            self._sel.register(fd, link)
             if link._stop.is_set():
                 self._finish(link, now)
 
@@ -181,7 +191,7 @@ class PortMux:
             link.stats.backpressure_s += now - link._mux_paused_since
             link._mux_paused_since = None
             link._last_frame_mono = now     # waiting on the consumer is not the port going silent
-        self._sel.register(link._mux_fd, selectors.EVENT_READ, link)
+        self._sel.register(link._mux_fd, link)
 
     def _sweep(self, now: float) -> None:
         """Per link: stop asked, the port silent too long, a drift report due."""
@@ -216,10 +226,7 @@ class PortMux:
         if link._mux_paused_since is not None:
             link.stats.backpressure_s += now - link._mux_paused_since
             link._mux_paused_since = None
-        try:
-            self._sel.unregister(link._mux_fd)
-        except (KeyError, ValueError):   # paused: not registered just now
-            pass
+        self._sel.unregister(link._mux_fd)   # paused: not registered just now, nothing to do
 
     def _hand_back(self, link, exc: BaseException, now: float) -> None:
         self._drop(link, now)
@@ -228,3 +235,42 @@ class PortMux:
     def _finish(self, link, now: float | None = None) -> None:
         self._drop(link, time.monotonic() if now is None else now)
         link._finish()
+
+
+class _Poller:
+    """Wait for input on many descriptors: epoll where there is one (Linux), else poll(); the plain
+    calls, without the selectors module's bookkeeping (a paused port is taken out and put back
+    several hundred times a second at 500 meters)."""
+
+    def __init__(self):
+        self._ep = getattr(select, "epoll", None)
+        self._p = self._ep() if self._ep is not None else select.poll()
+        self._mask = select.EPOLLIN if self._ep is not None else select.POLLIN
+        self._data: dict[int, object] = {}
+
+    def register(self, fd: int, data) -> None:
+        self._p.register(fd, self._mask)
+        self._data[fd] = data
+
+    def unregister(self, fd: int) -> None:
+        if self._data.pop(fd, _NONE) is not _NONE:
+            try:
+                self._p.unregister(fd)
+            except OSError:     # closed already (a port lost): epoll has forgotten it by itself
+                pass
+
+    def select(self, timeout_s: float) -> list:
+        """The data of every descriptor ready to read (or hung up) within timeout_s."""
+        if self._ep is not None:
+            ready = self._p.poll(timeout_s, max(1, len(self._data)))
+        else:
+            ready = self._p.poll(int(timeout_s * 1000) + (timeout_s > 0))
+        get = self._data.get
+        return [get(fd) for fd, _ in ready if fd in self._data]
+
+    def close(self) -> None:
+        if self._ep is not None:
+            self._p.close()
+
+
+_NONE = object()
