@@ -12,7 +12,7 @@ from __future__ import annotations
 import queue
 import threading
 import time
-from typing import Any, Callable
+from typing import TYPE_CHECKING, Any, Callable
 
 from meterlink.device.clock import DeviceClock
 from meterlink.errors import LinkError
@@ -25,6 +25,9 @@ from meterlink.device.items import (  # noqa: F401 (re-exported: what the link d
 )
 from meterlink.device.transport import Link, SerialLink
 
+if TYPE_CHECKING:
+    from meterlink.device.mux import PortMux
+
 
 def safe_text(s: str) -> str:
     """A device string made safe to print (control and bidi characters escaped): meterlink.safetext."""
@@ -33,6 +36,10 @@ def safe_text(s: str) -> str:
 
 class _Restart(Exception):
     """Internal: the device restarted; handshake again."""
+
+
+class _Continue(Exception):
+    """Internal: the link's own thread takes over reading from the mux, streaming as it was."""
 
 
 class _Fatal(Exception):
@@ -47,7 +54,7 @@ class MeterLink(FrameIntake):
                  backoff_initial_s: float = 0.1, backoff_max_s: float = 5.0, who_retries: int = 5,
                  reply_timeout_s: float = 0.5, min_silence_s: float = 3.0, drift_report_s: float = 10.0,
                  queue_max: int = 20_000, read_timeout_s: float = 0.25, wake: threading.Event | None = None,
-                 batched: bool = False, read_pause_s: float = 0.0):
+                 batched: bool = False, read_pause_s: float = 0.0, mux: "PortMux | None" = None):
         if link_factory is None:
             if not port:
                 raise LinkError("no serial port given")
@@ -72,6 +79,15 @@ class MeterLink(FrameIntake):
         # is followed by this pause, so that the next one gathers several frames (fewer wake-ups)
         self.batched, self.read_pause_s = bool(batched), float(read_pause_s)
         self._last_read_n = 0
+        # mux: once streaming on a port with a descriptor, one shared thread reads it (meterlink/device/mux.py)
+        # and this link's own thread ends; it comes back for a reconnect or a handshake
+        self._mux = mux
+        self.mux_headroom = min(2048, max(1, queue_max // 4))  # the mux leaves the port unread this near full
+        self._mux_fd: int | None = None
+        self._mux_paused_since: float | None = None
+        self._mux_gen = 0
+        self._attempts, self._delay = 0, backoff_initial_s     # reconnection state (whichever thread reads)
+        self._next_drift = 0.0
         self.stats = LinkStats()
         self.clock = DeviceClock()
         self.ident: Ident | None = None
@@ -94,15 +110,21 @@ class MeterLink(FrameIntake):
             link = self._factory()
             link.open()
             self._link = link
-        self._thread = threading.Thread(target=self._run, name=f"meterlink-link-{self.port}", daemon=True)
-        self._thread.start()
+        self._next_drift = time.monotonic() + self.drift_report_s
+        self._resume_thread(None)
         return self
 
     def stop(self, timeout_s: float = 5.0) -> None:
         """Stop the thread, tell the device to stop streaming (best effort) and close the port."""
-        self._stop.set()
+        self.request_stop()
         if self._thread is not None:
-            self._thread.join(timeout_s)
+            self.finished.wait(timeout_s)
+
+    def request_stop(self) -> None:
+        """Ask the link to stop without waiting (stop() waits): many links are stopped together this way."""
+        self._stop.set()
+        if self._mux is not None:
+            self._mux.wake()
 
     def get(self, timeout_s: float = 0.1):
         """Next item from the link, or None if nothing arrived within timeout_s."""
@@ -120,62 +142,107 @@ class MeterLink(FrameIntake):
         self.stop()
 
     # -- thread --------------------------------------------------------------------------------
-    def _run(self) -> None:
-        attempts, delay = 0, self.backoff_initial_s
-        next_drift = time.monotonic() + self.drift_report_s
+    def _resume_thread(self, after: BaseException | None) -> None:
+        """(Re)start the link's own thread: at start, or when the mux hands the link back (after: why)."""
+        self._thread = threading.Thread(target=self._run, args=(after,), name=f"meterlink-link-{self.port}",
+                                        daemon=True)
+        self._thread.start()
+
+    def _run(self, after: BaseException | None = None) -> None:
+        """Connect, handshake, stream; reconnect with back-off. after: where the mux left off (a LinkError:
+        the port lost or silent; _Restart: the device restarted; another exception: a bug)."""
+        handed = False
         try:
             while not self._stop.is_set():
                 try:
-                    if self._link is None or not self._link.is_open:
-                        link = self._factory()
-                        link.open()
-                        self._link, self._reader = link, FrameReader()
-                    self._handshake()
-                    if attempts:
-                        self.stats.reconnects += 1
-                        self._event("reconnected", "info", f"link to {self.port} re-established after "
-                                    f"{attempts} attempt(s)", attempts=attempts)
-                    attempts, delay = 0, self.backoff_initial_s
-                    while not self._stop.is_set():
-                        try:
-                            self._pump(self.read_timeout_s)
-                        except _Restart:
+                    if after is None:
+                        self._connect()
+                    else:
+                        exc, after = after, None
+                        if isinstance(exc, _Restart):
                             self._handshake()
-                        if self.read_pause_s and self._last_read_n < 1024:
-                            self._stop.wait(self.read_pause_s)
-                        if time.monotonic() >= next_drift:
-                            next_drift = time.monotonic() + self.drift_report_s
-                            self._report_drift()
+                        elif not isinstance(exc, _Continue):
+                            raise exc
+                    if self._hand_over():
+                        handed = True
+                        return
+                    self._stream()
                 except LinkError as exc:
                     self._close_link()
                     if self._stop.is_set():
                         break
-                    attempts += 1
-                    if attempts == 1:
+                    self._attempts += 1
+                    if self._attempts == 1:
                         self.stats.port_losses += 1
                         self._event("port_lost", "error", str(exc), port=self.port)
-                    if self.max_reconnects is not None and attempts > self.max_reconnects:
-                        self._event("gave_up", "error", f"no link to {self.port} after {attempts - 1} "
-                                    f"reconnection attempt(s)", attempts=attempts - 1)
+                    if self.max_reconnects is not None and self._attempts > self.max_reconnects:
+                        self._event("gave_up", "error", f"no link to {self.port} after {self._attempts - 1} "
+                                    f"reconnection attempt(s)", attempts=self._attempts - 1)
                         break
-                    self._stop.wait(delay)
-                    delay = min(delay * 2, self.backoff_max_s)
+                    self._stop.wait(self._delay)
+                    self._delay = min(self._delay * 2, self.backoff_max_s)
         except _Fatal as exc:
             self._event("handshake", "error", str(exc))
         except Exception as exc:  # a bug must not kill acquisition silently
             self._event("internal_error", "error", f"link thread stopped: {type(exc).__name__}: {exc}")
         finally:
-            self._report_drift()
-            if self.stats.backpressure_waits:
-                self._event("backpressure", "warning", f"the consumer fell behind {self.stats.backpressure_waits} "
-                            f"time(s); reading from {self.port} paused for {self.stats.backpressure_s:.1f} s in all "
-                            "(frames the device could not hand over meanwhile are in seq_gap events)",
-                            waits=self.stats.backpressure_waits, paused_s=round(self.stats.backpressure_s, 3))
-            self._say_stop()
-            self._close_link()
-            self.finished.set()
-            if self._wake is not None:
-                self._wake.set()
+            if not handed:
+                self._finish()
+
+    def _leave_mux(self, why: str | None) -> None:
+        """Read on the link's own thread from now on (the mux failed: why), streaming as it was."""
+        self._mux = None
+        if why:
+            self._event("internal_error", "error", f"port reader stopped: {why}; {self.port} is read on its own "
+                        "thread from now on")
+        self._resume_thread(_Continue() if self._link is not None and self._link.is_open else None)
+
+    def _connect(self) -> None:
+        """Open the port if needed and handshake; a reconnection after failed attempts is an event."""
+        if self._link is None or not self._link.is_open:
+            link = self._factory()
+            link.open()
+            self._link, self._reader = link, FrameReader()
+        self._handshake()
+        if self._attempts:
+            self.stats.reconnects += 1
+            self._event("reconnected", "info", f"link to {self.port} re-established after "
+                        f"{self._attempts} attempt(s)", attempts=self._attempts)
+        self._attempts, self._delay = 0, self.backoff_initial_s
+
+    def _hand_over(self) -> bool:
+        """Give a streaming port with a descriptor to the mux (True: this thread's part is done)."""
+        if self._mux is None or self._stop.is_set() or self._link is None or self._link.fileno() is None:
+            return False
+        self._mux.add(self)
+        return True
+
+    def _stream(self) -> None:
+        """Read on this thread until stopped (a port without a descriptor, or no mux)."""
+        while not self._stop.is_set():
+            try:
+                self._pump(self.read_timeout_s)
+            except _Restart:
+                self._handshake()
+            if self.read_pause_s and self._last_read_n < 1024:
+                self._stop.wait(self.read_pause_s)
+            if time.monotonic() >= self._next_drift:
+                self._next_drift = time.monotonic() + self.drift_report_s
+                self._report_drift()
+
+    def _finish(self) -> None:
+        """The link's end (whichever thread reads it): last drift, back-pressure summary, STOP, close."""
+        self._report_drift()
+        if self.stats.backpressure_waits:
+            self._event("backpressure", "warning", f"the consumer fell behind {self.stats.backpressure_waits} "
+                        f"time(s); reading from {self.port} paused for {self.stats.backpressure_s:.1f} s in all "
+                        "(frames the device could not hand over meanwhile are in seq_gap events)",
+                        waits=self.stats.backpressure_waits, paused_s=round(self.stats.backpressure_s, 3))
+        self._say_stop()
+        self._close_link()
+        self.finished.set()
+        if self._wake is not None:
+            self._wake.set()
 
     def _close_link(self) -> None:
         if self._link is not None:
@@ -197,13 +264,25 @@ class MeterLink(FrameIntake):
         now = time.monotonic()
         self._last_read_n = len(data)
         if not data:
-            silence = now - self._last_frame_mono
-            ratio = self.clock.rate_ratio() or 1.0
-            limit = max(self.min_silence_s, 30.0 / max(ratio, 1.0))  # STATUS comes at least every 10 s device time
-            if silence > limit:
-                self._event("port_silent", "warning", f"no frames from {self.port} for {silence:.1f} s",
-                            silence_s=round(silence, 3))
-                raise LinkError(f"port {self.port!r} silent for {silence:.1f} s")
+            self._check_silence(now)
+            return []
+        return self._pump_data(data, now)
+
+    def _check_silence(self, now: float) -> None:
+        """No frames for too long: a port_silent event and a LinkError (the link reconnects)."""
+        silence = now - self._last_frame_mono
+        if silence <= self.min_silence_s:     # the limit is never below it: no need for the clock's estimate
+            return
+        ratio = self.clock.rate_ratio() or 1.0
+        limit = max(self.min_silence_s, 30.0 / max(ratio, 1.0))  # STATUS comes at least every 10 s device time
+        if silence > limit:
+            self._event("port_silent", "warning", f"no frames from {self.port} for {silence:.1f} s",
+                        silence_s=round(silence, 3))
+            raise LinkError(f"port {self.port!r} silent for {silence:.1f} s")
+
+    def _pump_data(self, data: bytes, now: float) -> list[tuple[Frame, Any]]:
+        """Handle bytes read at now: frames checked and delivered, junk counted; _Restart on a restart."""
+        if not data:
             return []
         junk: dict[str, int] = {}
         handled = []

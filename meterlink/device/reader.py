@@ -241,11 +241,39 @@ class AxesBatch:
                                                        self.raw.tolist())]
 
 
+# Up to this many frames (what a port read every few seconds holds at 10 readings/s), the CRCs are taken
+# frame by frame in C (binascii, as framing.crc16) instead of in numpy: a numpy pass has a fixed cost
+# per byte pair (13 array steps) that dominates short runs; the same CRC either way.
+_SMALL_RUN = 128
+
+
+def _axes_run_small(buf: bytearray, pos: int, avail: int) -> AxesBatch | None:
+    data = bytes(buf[pos : pos + avail * AXES_FRAME_LEN])
+    rec = np.frombuffer(data, _AXES_DT)
+    good = ((rec["sync"] == _SYNC_U16) & (rec["ver"] == PROTOCOL_MAJOR) & (rec["type"] == FrameType.AXES)
+            & (rec["len"] == 14))
+    n = avail if good.all() else int(np.argmin(good))
+    crc_hqx, view = binascii.crc_hqx, memoryview(data)
+    end = AXES_FRAME_LEN - CRC_LEN
+    for i, want in enumerate(rec["crc"][:n].tolist()):
+        o = i * AXES_FRAME_LEN
+        if crc_hqx(view[o + 2 : o + end], 0xFFFF) != want:
+            n = i
+            break
+    if not n:
+        return None
+    r = rec[:n]
+    return AxesBatch(r["seq"].astype(np.int64), r["tick"].astype(np.int64), r["flags"].astype(np.int64),
+                     r["range"].astype(np.int64), r["xyz"].astype(np.int64))
+
+
 def _axes_run(buf: bytearray, pos: int) -> AxesBatch | None:
     """The run of clean AXES frames starting at pos (None if the frame there is not one)."""
     avail = (len(buf) - pos) // AXES_FRAME_LEN
     if avail == 0 or buf[pos : pos + 2] != SYNC or buf[pos + 2 : pos + 5] != _AXES_HEAD:
         return None
+    if avail <= _SMALL_RUN:
+        return _axes_run_small(buf, pos, avail)
     parts, k, step = [], 0, 16  # growing windows: the work spent past a damaged frame stays small
     while k < avail:
         m = min(step, avail - k)

@@ -32,6 +32,14 @@ class Link:
     def close(self) -> None:
         raise NotImplementedError
 
+    def fileno(self) -> int | None:
+        """The descriptor a poller can wait on for this link's input, or None (read it from a thread)."""
+        return None
+
+    def read_ready(self, max_bytes: int) -> bytes:
+        """After the poller saw fileno() readable: what is there (b"" if nothing after all)."""
+        raise NotImplementedError
+
     @property
     def is_open(self) -> bool:
         raise NotImplementedError
@@ -97,6 +105,10 @@ def _poll_write(fd: int, data: bytes, timeout_s: float) -> None:
         left = deadline - time.monotonic()
         if left <= 0 or not p.poll(int(left * 1000) + 1):
             raise OSError("write timeout")
+
+
+# pyserial classes whose fileno() is the very descriptor their read() reads from (non-blocking)
+_FD_MODULES = ("serial.serialposix", "serial.urlhandler.protocol_socket")
 
 
 def _one_line(exc: BaseException) -> str:
@@ -178,6 +190,40 @@ class SerialLink(Link):
 
     def close(self) -> None:
         self._drop()
+
+    def fileno(self) -> int | None:
+        """The descriptor of a local port (pyserial opens it non-blocking) or of a socket:// URL; None for
+        the URL handlers that have none (loop://, spy://, rfc2217://, which wrap their own reads)."""
+        ser = self._ser
+        if ser is None or type(ser).__module__ not in _FD_MODULES:
+            return None
+        try:
+            fd = ser.fileno()
+        except Exception:  # noqa: BLE001 - a handler without a usable descriptor: read it from a thread
+            return None
+        return fd if isinstance(fd, int) and fd >= 0 else None
+
+    def read_ready(self, max_bytes: int) -> bytes:
+        """One non-blocking read of the descriptor; the other end gone is a LinkError as in read()."""
+        import os
+
+        if self._extra:
+            return self.read(max_bytes, 0.0)
+        fd = self.fileno()
+        if fd is None:
+            raise LinkError(f"port {self.port!r} is not open")
+        try:
+            data = os.read(fd, max_bytes)
+        except BlockingIOError:
+            return b""
+        except OSError as exc:   # worded as pyserial's read words it
+            self._drop()
+            raise LinkError(f"port {self.port!r} lost: read failed: {_one_line(exc)}") from None
+        if not data:   # readable yet empty: end of file, as pyserial's own read reports it
+            self._drop()
+            raise LinkError(f"port {self.port!r} lost: device reports readiness to read but returned no data "
+                            "(device disconnected or multiple access on port?)")
+        return data
 
     @property
     def is_open(self) -> bool:

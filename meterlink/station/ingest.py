@@ -194,7 +194,11 @@ class Ingest:
             self._readings(ms, item.boot, one(item.seq), one(item.tick_ms), np.array([self._t_of(ms, item)], float),
                            np.array([[a.x, a.y, a.z]], np.int64), one(a.flags), one(a.range_index))
         elif isinstance(item, StatusReport):
-            self._calibrate_pending(ms)     # readings before it keep the temperature they were taken at
+            # readings before it keep the temperature they were taken at: calibrated first if it changes
+            # (the only part of a STATUS calibration uses; not calibrating at every STATUS keeps the
+            # batches of a large station as long as calibrate_s)
+            if item.status.temp_centi_c / 100.0 != ms.status.get("temperature_degc"):
+                self._calibrate_pending(ms)
             self._status(ms, item)
         elif isinstance(item, Connected):
             self._connected(ms, item)

@@ -1,6 +1,7 @@
 """The monitoring daemon: acquire from every meter of a station, store, derive, alarm, watch health.
 
-One ``MeterLink`` reader thread per meter (reconnecting for ever with back-off) feeds a queue;
+One ``MeterLink`` per meter (reconnecting for ever with back-off) feeds a queue; each connects on its
+own thread, then one shared reader thread (``PortMux``, meterlink/device/mux.py) reads every streaming port;
 one ingest thread (``Monitor.run``) calibrates in batches, updates the derived series and alarm
 machines and commits readings, events, derived rows and alarm state in ONE transaction at most
 ``commit_s`` apart, so after a crash or power loss everything stored is mutually consistent and
@@ -14,6 +15,7 @@ import threading
 import time
 
 from meterlink.device.link import MeterLink
+from meterlink.device.mux import PortMux
 from meterlink.network import syncd
 from meterlink.physics.certificate import load_certificate
 from meterlink.station.health import Health
@@ -118,6 +120,7 @@ class Monitor(Ingest, Persistence, Health):
     # -- main loop -----------------------------------------------------------------------------
     def run(self) -> None:
         """Acquire until stop(); commits at most commit_s apart; always leaves a consistent database."""
+        self._mux = PortMux().start()
         for ms in self.meters:
             # while the file cannot be written, up to max_keep readings per meter wait in memory (about
             # 0.1 GB; 2.3 days at one reading a second); beyond, the oldest go, each drop an event
@@ -126,7 +129,7 @@ class Monitor(Ingest, Persistence, Health):
             factory = None if self._link_factory is None else (lambda p=ms.cfg.port: self._link_factory(p))
             ms.link = MeterLink(ms.cfg.port, int(round(ms.cfg.interval_s * 1000)), link_factory=factory,
                                 backoff_max_s=self._backoff_max_s, wake=self._wake, batched=True,
-                                read_pause_s=self.read_pause_s)
+                                read_pause_s=self.read_pause_s, mux=self._mux)
             ms.link.start(require_open=False)
         next_commit = time.monotonic() + self.commit_s
         self.notify.ready(f"monitoring {self.st.name}: {len(self.meters)} meter(s)")
@@ -158,7 +161,10 @@ class Monitor(Ingest, Persistence, Health):
         finally:
             self.notify.stopping(f"stopping {self.st.name}")
             for ms in self.meters:
+                ms.link.request_stop()       # all at once: each then only waits for its own end
+            for ms in self.meters:
                 ms.link.stop()
+            self._mux.stop()
             for ms in self.meters:
                 while (item := ms.link.get(0.0)) is not None:
                     self._handle(ms, item)
