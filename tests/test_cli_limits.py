@@ -17,6 +17,12 @@ import pytest
 from meterlink.cli import SAFETY_LINE, main
 
 
+
+@pytest.fixture(autouse=True)
+def _wide_terminal(monkeypatch):
+    """The tables as on a wide terminal unless a test asks for 80 columns (pytest-xdist workers get 80)."""
+    monkeypatch.setenv("COLUMNS", "200")
+
 def _flat(text: str) -> str:
     return " ".join(text.split())
 
@@ -49,8 +55,9 @@ def test_every_row_shows_its_check_status_in_text(capsys):
     assert keys and all(f"check {k}:" in out for k in keys)
 
 
-def test_derived_cells_are_marked(capsys):
+def test_derived_cells_are_marked(capsys, monkeypatch):
     # 47 CFR 1.1310 Table 1 (B) gives only S = 1.0 mW/cm2 at 1900 MHz; E is sqrt(10*Z0) = 61.38 V/m.
+    monkeypatch.setenv("COLUMNS", "200")
     assert main(["limits", "1.9GHz", "--standard", "fcc-1310", "--tier", "public"]) == 0
     out = _flat(capsys.readouterr().out)
     assert "~61.38" in out and "derived" in out and "general population/uncontrolled" in out
@@ -147,3 +154,14 @@ def test_chart_is_written_as_png(tmp_path, capsys):
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and out.stat().st_size > 10_000
     assert main(["limits", "900MHz", "--chart", str(tmp_path / "no" / "dir.png")]) == 2
     assert "cannot write chart" in capsys.readouterr().err
+
+
+def test_an_80_column_terminal_gets_every_number_whole_and_no_line_too_long(capsys, monkeypatch):
+    """On 80 columns the table names tiers by id and sources by a key explained below; no number is cut."""
+    monkeypatch.setenv("COLUMNS", "80")
+    assert main(["limits", "900MHz"]) == 0
+    out = capsys.readouterr().out
+    assert max(len(line.rstrip()) for line in out.splitlines()) <= 80
+    # ICNIRP 2020 Table 5, 400-2000 MHz whole body: 1.375 f^0.5 = 41.25 V/m at 900 MHz (public)
+    assert "41.25" in out and "icnirp-2020" in out and "…" not in out
+    assert "FCC 47 CFR 1.1310, Table 1 (B)" in _flat(out)

@@ -232,7 +232,7 @@ CASES = [
 
 
 @pytest.mark.parametrize("kind,path,value,word", CASES,
-                         ids=[f"{c[0]}-{'.'.join(map(str, c[1]))}={c[2]!r}" for c in CASES])
+                         ids=[f"{c[0]}-{'.'.join(map(str, c[1]))}={'<deleted>' if c[2] is _DELETE else repr(c[2])}" for c in CASES])
 def test_a_bad_entry_is_refused_naming_file_and_key(tmp_path, kind, path, value, word):
     load, error, base = LOADERS[kind]
     p = _write(tmp_path, kind, changed(base(), path, value))

@@ -64,32 +64,79 @@ def check_keys(statuses: list[str]) -> dict[str, str]:
     return keys
 
 
-def render_table(levels: list, freq_hz: float):
+#: below this console width the table names tiers by their short id and sources by a letter explained
+#: under it, so that no word is folded mid-word on an 80-column terminal
+NARROW_COLUMNS = 150
+
+
+def source_keys(levels: list) -> dict[tuple[str, str], str]:
+    """A letter per distinct (source, check status), in order of first appearance (narrow tables)."""
+    keys: dict[tuple[str, str], str] = {}
+    for lv in levels:
+        keys.setdefault((lv.source, lv.status), "abcdefghijklmnopqrstuvwxyz"[len(keys) % 26])
+    return keys
+
+
+def render_table(levels: list, freq_hz: float, width: int = 200):
     """A rich Table of the levels (pure: builds, does not print); the check column holds a key
-    explained by render_check_keys."""
+    explained by render_check_keys. Narrower than NARROW_COLUMNS: short tier ids, compact bands and
+    one letter per source and check status, explained under the table (render_narrow_keys)."""
+    from rich import box
     from rich.table import Table
     from rich.text import Text
 
     from meterlink.physics.units import format_frequency
 
-    table = Table(title=f"Reference levels at {format_frequency(freq_hz)}", title_justify="left",
-                  header_style="bold", show_lines=False, pad_edge=False)
-    for name, justify in (("standard", "left"), ("tier", "left"), ("kind", "left"),
-                          ("band", "left"), ("E V/m", "right"), ("H A/m", "right"),
-                          ("S W/m2", "right"), ("averaging", "right"), ("source", "left"),
-                          ("check", "left")):
-        table.add_column(name, justify=justify, overflow="fold")
+    narrow = width < NARROW_COLUMNS
+    title = f"Reference levels at {format_frequency(freq_hz)}"
+    if narrow:
+        table = Table(title=title, title_justify="left", header_style="bold", box=box.SIMPLE_HEAD,
+                      padding=(0, 1), collapse_padding=True, pad_edge=False)
+        cols = (("tier", "left"), ("kind", "left"), ("band", "left"), ("E V/m", "right"),
+                ("H A/m", "right"), ("S W/m2", "right"), ("avg", "right"), ("key", "left"))
+    else:
+        table = Table(title=title, title_justify="left", header_style="bold", show_lines=False, pad_edge=False)
+        cols = (("standard", "left"), ("tier", "left"), ("kind", "left"), ("band", "left"), ("E V/m", "right"),
+                ("H A/m", "right"), ("S W/m2", "right"), ("averaging", "right"), ("source", "left"),
+                ("check", "left"))
+    for name, justify in cols:
+        # numbers, names and keys never break or get cut; kind and source wrap at spaces
+        table.add_column(name, justify=justify, no_wrap=name not in ("kind", "source", "tier"),
+                         min_width=max(len(lv.standard) for lv in levels) if narrow and name == "tier" else None)
     keys = check_keys([lv.status for lv in levels])
+    src = source_keys(levels)
+    standard = None
     for lv in levels:
         s_text = _num(lv.s_w_per_m2, lv.s_derived)
         if lv.s_h_w_per_m2 is not None and lv.s_h_w_per_m2 != lv.s_w_per_m2:
             s_text += f" (H: {_num(lv.s_h_w_per_m2, False)})"
-        band = f"{format_frequency(lv.band_lo_hz)}-{format_frequency(lv.band_hi_hz)}"
-        table.add_row(lv.standard, lv.tier_label, lv.kind.replace("_", " "), band,
-                      _num(lv.e_v_per_m, lv.e_derived), _num(lv.h_a_per_m, lv.h_derived), s_text,
-                      _avg(lv.averaging_time_s), lv.source,
-                      Text(keys[lv.status], style="green" if lv.fully_checked else "yellow"))
+        lo, hi = format_frequency(lv.band_lo_hz), format_frequency(lv.band_hi_hz)
+        values = (_num(lv.e_v_per_m, lv.e_derived), _num(lv.h_a_per_m, lv.h_derived), s_text,
+                  _avg(lv.averaging_time_s))
+        style = "green" if lv.fully_checked else "yellow"
+        if narrow:      # the standard as a heading row over its levels (no column of its own)
+            if lv.standard != standard:
+                standard = lv.standard
+                table.add_row(Text(standard, style="bold"), *[""] * 7)
+            table.add_row(lv.tier, lv.kind.replace("_", " "), f"{lo}-{hi}".replace(" ", ""), *values,
+                          Text(src[(lv.source, lv.status)], style=style))
+        else:
+            table.add_row(lv.standard, lv.tier_label, lv.kind.replace("_", " "), f"{lo}-{hi}", *values, lv.source,
+                          Text(keys[lv.status], style=style))
     return table
+
+
+def render_narrow_keys(levels: list):
+    """The lines under a narrow table: each key's source and check status."""
+    from rich.text import Text
+
+    from meterlink.physics.limits import CHECKED_PREFIX
+
+    out = []
+    for (source, status), key in source_keys(levels).items():
+        out.append(Text(f"{key}: {source}; {status}", style="green" if status.startswith(CHECKED_PREFIX)
+                        else "yellow"))
+    return out
 
 
 def render_check_keys(levels: list):
@@ -201,9 +248,9 @@ def run(args) -> int:
             doc["brief_exposure"] = brief
         print(digits.dumps(doc, indent=2))
         return 0
-    console = Console(width=max(shutil.get_terminal_size((160, 24)).columns, 100), highlight=False)
-    console.print(render_table(levels, freq_hz))
-    for line in render_check_keys(levels):
+    console = Console(width=shutil.get_terminal_size((160, 24)).columns, highlight=False)
+    console.print(render_table(levels, freq_hz, console.width))
+    for line in render_narrow_keys(levels) if console.width < NARROW_COLUMNS else render_check_keys(levels):
         console.print(line)
     if any(lv.e_derived or lv.h_derived or lv.s_derived for lv in levels):
         console.print(DERIVED_NOTE)
