@@ -177,11 +177,11 @@ def test_interrupted_check_restores_the_meter(tmp_path):
                 time.sleep(0.02)
             assert m.stats["commands_received"] >= n0 + 12 and p.poll() is None
             p.send_signal(signal.SIGINT)
-            _, err = p.communicate(timeout=30)
+            _, err = p.communicate(timeout=90)     # restoring the settings on a loaded machine can take a while
         finally:
             if p.poll() is None:
                 p.kill()
-                p.wait()
+                p.communicate()                    # reaps it and closes the pipes
         assert p.returncode == 130 and "interrupted" in err and "Traceback" not in err
         link = open_link(m.port)
         try:

@@ -24,7 +24,7 @@ from meterlink.simulators.truth import read_truth
 
 ROOT = Path(__file__).resolve().parents[1]
 KILLS = 20
-LOSS_WINDOW_S = 1.0      # one commit interval (0.5 s) + calibration and handling latency
+LOSS_WINDOW_S = 2.0      # one commit interval (0.5 s) + calibration and handling latency, on a loaded machine
 
 STATION = """
 format = "meterlink-station/1"
