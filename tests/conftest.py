@@ -1,6 +1,7 @@
 """Shared test helpers: waiting on a condition with a monotonic deadline, and leak checks."""
 
 import os
+import signal
 import threading
 import time
 from pathlib import Path
@@ -8,6 +9,12 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
+
+# pytest-xdist's workers ignore SIGINT, and an ignored signal stays ignored across exec: the meterlink
+# processes the tests start would never see the Ctrl-C some tests send. A handler is reset to the default
+# on exec, so the children get SIGINT as from a terminal.
+if signal.getsignal(signal.SIGINT) is signal.SIG_IGN:
+    signal.signal(signal.SIGINT, signal.default_int_handler)
 
 
 def wait_until(predicate, timeout_s: float = 5.0, poll_s: float = 0.01) -> bool:
