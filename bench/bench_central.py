@@ -14,7 +14,6 @@ from __future__ import annotations
 import concurrent.futures
 import multiprocessing
 import os
-import platform
 import signal
 import sqlite3
 import statistics
@@ -190,15 +189,6 @@ def _wait_health(url: str, proc) -> None:
     raise SystemExit("the ingest service did not come up")
 
 
-def cpu_model() -> str:
-    try:
-        for line in open("/proc/cpuinfo", encoding="utf-8"):
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
-
 
 def main(argv=None) -> int:
     ap = _common.parser(__doc__)
@@ -219,7 +209,7 @@ def main(argv=None) -> int:
         tmp = Path(d)
         rows = args.stations * args.blocks
         print(f"{args.stations} station files x {args.blocks} blocks = {rows} rows; {args.rounds} interleaved rounds; "
-              f"{args.threads} stations at once; load average {os.getloadavg()[0]:.2f}; CPU {cpu_model()}; "
+              f"{args.threads} stations at once; load average {os.getloadavg()[0]:.2f}; CPU {_common.cpu_model()}; "
               f"{os.cpu_count()} cores")
         sync_s, copy_s = [], []
         for r in range(args.rounds):
@@ -252,7 +242,7 @@ def main(argv=None) -> int:
                    f"PostgreSQL COPY of the same rows into the same partitioned table: {base:,.0f} rows/s (spread "
                    f"{rows / max(copy_s):,.0f}-{rows / min(copy_s):,.0f})",
                    ratio, f"{ratio:.2f}x COPY", ">= 0.3x COPY", ratio >= 0.3, args.json,
-                   rows=rows, stations=args.stations, load_avg=os.getloadavg()[0], cpu=cpu_model())
+                   rows=rows, stations=args.stations, load_avg=os.getloadavg()[0], cpu=_common.cpu_model())
     return 0
 
 

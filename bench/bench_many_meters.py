@@ -17,7 +17,6 @@ behind, and CPU per reading offered would then flatter it.
 from __future__ import annotations
 
 import os
-import platform
 import resource
 import statistics
 import tempfile
@@ -47,15 +46,6 @@ def baseline_us_per_reading(n: int = 100_000, rounds: int = 3) -> list[float]:
             out.append(1e6 * (_common.cpu_s() - c0) / n)
     return out
 
-
-def cpu_model() -> str:
-    try:
-        for line in open("/proc/cpuinfo"):
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "?"
 
 
 def main(argv=None) -> dict:
@@ -90,7 +80,7 @@ def main(argv=None) -> dict:
         f"whole run to the monitor's exit: {us_whole:.1f} us CPU per reading stored "
         f"({whole['readings'] if whole else 0:,} readings); "
         f"loss against the truth {r['loss']} (missing+extra+altered); fd soft limit {r['fd_soft_limit']}; "
-        f"load average {load0[0]:.1f} -> {load1[0]:.1f} on {os.cpu_count()} x {cpu_model()}",
+        f"load average {load0[0]:.1f} -> {load1[0]:.1f} on {os.cpu_count()} x {_common.cpu_model()}",
         f"batched path in-process (decode, calibrate, store, blocks) {base_med:.2f} us/reading "
         f"({min(base):.2f}..{max(base):.2f}, {len(base)} rounds)",
         ratio, f"{ratio:.1f}x the batched path's CPU per reading",

@@ -14,7 +14,6 @@ from __future__ import annotations
 import asyncio
 import io
 import os
-import platform
 import signal
 import socket
 import statistics
@@ -35,15 +34,6 @@ ADMIN = "host=127.0.0.1 port=5432 user=postgres dbname=postgres"
 TOKEN = "bench-operator-token-0123456789"
 T_END = 1_780_000_200.0 + 30 * 86400.0       # the newest block boundary of the seeded data (a multiple of 360 s)
 
-
-def cpu_model() -> str:
-    try:
-        for line in open("/proc/cpuinfo", encoding="utf-8"):
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def seed(dsn: str, stations: int, days: float) -> tuple[list[str], int]:
@@ -242,7 +232,7 @@ def main() -> int:
             proc.wait(30)
         with psycopg.connect(ADMIN, autocommit=True) as c:
             c.execute(f"DROP DATABASE IF EXISTS {name} WITH (FORCE)")
-    la, cpu = os.getloadavg()[0], cpu_model()
+    la, cpu = os.getloadavg()[0], _common.cpu_model()
     s95, h95 = statistics.median(st_p95), statistics.median(he_p95)
     full = args.stations >= 500 and args.clients >= 20
     _common.report("pages_status", f"/status with {args.stations} stations, {args.clients} concurrent clients: "

@@ -12,7 +12,6 @@ k = 2.5 (practice, no single published source; analysers quote k between about 2
 from __future__ import annotations
 
 import os
-import platform
 import statistics
 import time
 
@@ -27,16 +26,6 @@ POINTS = 100_001
 START_HZ, STOP_HZ, RBW_HZ = 9e3, 6e9, 100e3
 K_SWEEP = 2.5
 
-
-def cpu_model() -> str:
-    try:
-        with open("/proc/cpuinfo", encoding="utf-8") as f:
-            for line in f:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def ours(freq, level, bands, cert):
@@ -101,7 +90,7 @@ def main(argv=None) -> dict:
         m_ours / m_base, f"{m_ours / m_base:.2f}x the numpy pass; {100 * frac:.3f} % of the estimated sweep time "
         f"{sweep_s:.2f} s (k={K_SWEEP} span/RBW^2, RBW {RBW_HZ / 1e3:g} kHz)",
         "< 1 % of the instrument's own sweep time", frac < 0.01, args.json,
-        load_average=[round(x, 2) for x in load], cpu=cpu_model(), rounds=rounds)
+        load_average=[round(x, 2) for x in load], cpu=_common.cpu_model(), rounds=rounds)
 
 
 if __name__ == "__main__":
