@@ -1,7 +1,7 @@
 """Every place a reference level is shown also shows what it was checked against: ``assess`` (text
 and JSON), the recorded-session report and the survey report, over the simulated meter on a pty.
 
-Levels come from 47 CFR 1.1310 Table 1 (B) (checked: read in a published reproduction; 30-300 MHz
+Levels come from 47 CFR 1.1310 Table 1 (B) (checked: read in the e-CFR text; 30-300 MHz
 general population E = 27.5 V/m) and from tables not yet checked, which must say so in neutral
 words ("not yet checked against the primary text") and never in developer notes.
 """
@@ -99,7 +99,7 @@ def test_multi_frequency_status_names_levels_and_rule():
     from meterlink.physics.exposure import multi_frequency
 
     res = multi_frequency([94.3e6, 101.8e6], standard="fcc-1310", tier="public", e_v_per_m=[1.0, 2.0])
-    assert res.status == ("levels: checked against 47 CFR 1.1310 Table 1 (B), via a published reproduction; "
-                          f"summation rule: {NOT_CHECKED}")
+    assert res.status == ("levels: checked against 47 CFR 1.1310 Table 1 (B), (ii) in the 2020 e-CFR text, "
+                          f"via the LII mirror; summation rule: {NOT_CHECKED}")
     # 30-300 MHz: E_L = 27.5 V/m, so the power-term sum is (1^2 + 2^2) / 27.5^2 (hand-worked).
     assert res.total == pytest.approx(5 / 27.5**2)

@@ -1,6 +1,6 @@
 """The ``meterlink limits`` command, through meterlink.cli.main and once as a subprocess.
 
-Expected numbers are typed from 47 CFR 1.1310 Table 1 (read in a published reproduction) and
+Expected numbers are typed from 47 CFR 1.1310 Table 1 (read in the e-CFR text) and
 ICNIRP 2020 Table 6 (read in a handbook reproduction), as in tests/test_limits.py; values of
 tables not yet checked against a primary text are only used to show that they say so.
 """

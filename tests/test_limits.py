@@ -1,12 +1,13 @@
 """Reference-level tables against the published texts, plus properties of the data.
 
 CHECKED holds values typed from the published text itself, each with the document, table and
-row named beside it: 47 CFR 1.1310 Table 1 (read in a published reproduction of the table),
+row named beside it: 47 CFR 1.1310 Table 1 (read in the e-CFR text of 2020, via the LII mirror),
 ICNIRP 2020 Table 6 (read in a handbook reproduction, Health Phys 118:483-524) and the low E
 action level of Directive 2013/35/EU Annex II Table B1 (read as transposed in UK SI 2016/1026
 Table AL1) and the reference levels of Council Recommendation 1999/519/EC Annex III (read as
 transposed in the French decret 2002-775, annexe 2.2 A). Those values must also say, in the
-data, what they were checked against.
+data, what they were checked against. CFR_TABLE_1 types 47 CFR 1.1310 Table 1 once, row by row
+as printed, and every row is compared at its edges and in its middle.
 
 PINNED holds the values of tables no one has yet compared with a primary text. They are NOT
 checks against the published documents: they only pin today's data so an accidental edit
@@ -289,6 +290,84 @@ def test_checked_averaging_times(std, tier, kind, f, expected, doc, note):
     lv = limits.reference_level(std, tier, f, kind)
     assert lv.averaging_time_s == (None if expected is None else pytest.approx(expected, rel=1e-12))
     assert doc in lv.averaging_checked
+
+
+# 47 CFR 1.1310, "Table 1 to 1.1310(e)(1) - Limits for Maximum Permissible Exposure (MPE)", typed
+# once as printed in the e-CFR text [85 FR 18145, Apr. 1, 2020] (read in the LII mirror). Notes under
+# the table: "f = frequency in MHz. * = Plane-wave equivalent power density." Empty cells (E and H
+# above 300 MHz) are None. S is in mW/cm2 as printed; 1 mW/cm2 = 10 W/m2. Averaging time as printed:
+# "<= 6" (first occupational row) and "<6" minutes in part (i), "<30" minutes in part (ii).
+# (range as printed, f_lo MHz, f_hi MHz, E V/m, H A/m, S mW/cm2), each a function of f in MHz
+CFR_TABLE_1 = {
+    ("occupational", "(i) Limits for Occupational/Controlled Exposure", 6): [
+        ("0.3-3.0", 0.3, 3.0, lambda f: 614, lambda f: 1.63, lambda f: 100),
+        ("3.0-30", 3.0, 30, lambda f: 1842 / f, lambda f: 4.89 / f, lambda f: 900 / f**2),
+        ("30-300", 30, 300, lambda f: 61.4, lambda f: 0.163, lambda f: 1.0),
+        ("300-1,500", 300, 1500, None, None, lambda f: f / 300),
+        ("1,500-100,000", 1500, 100_000, None, None, lambda f: 5),
+    ],
+    ("public", "(ii) Limits for General Population/Uncontrolled Exposure", 30): [
+        ("0.3-1.34", 0.3, 1.34, lambda f: 614, lambda f: 1.63, lambda f: 100),
+        ("1.34-30", 1.34, 30, lambda f: 824 / f, lambda f: 2.19 / f, lambda f: 180 / f**2),
+        ("30-300", 30, 300, lambda f: 27.5, lambda f: 0.073, lambda f: 0.2),
+        ("300-1,500", 300, 1500, None, None, lambda f: f / 1500),
+        ("1,500-100,000", 1500, 100_000, None, None, lambda f: 1.0),
+    ],
+}
+
+
+def _cfr_cases():
+    for (tier, part, minutes), rows in CFR_TABLE_1.items():
+        for i, (rng, lo, hi, e, h, s) in enumerate(rows):
+            # Just above the printed lower limit (the limit itself too on the first row), the
+            # geometric middle and the printed upper limit, which the range includes.
+            points = ([lo] if i == 0 else []) + [lo * (1 + 1e-9), math.sqrt(lo * hi), hi]
+            for f_mhz in points:
+                yield tier, part, minutes, rng, f_mhz, e, h, s
+
+
+CFR_CASES = list(_cfr_cases())
+
+
+@pytest.mark.parametrize("tier,part,minutes,rng,f_mhz,e,h,s", CFR_CASES,
+                         ids=[f"{c[0]}-{c[3]}-{c[4]:.9g}MHz" for c in CFR_CASES])
+def test_fcc_table_1_as_printed_in_the_cfr(tier, part, minutes, rng, f_mhz, e, h, s):
+    lv = limits.reference_level("fcc-1310", tier, f_mhz * MHz)
+    assert lv.s_w_per_m2 == pytest.approx(s(f_mhz) * 10, rel=1e-9) and not lv.s_derived
+    if e is None:  # printed empty: E and H are the plane-wave equivalents of S, and say so
+        assert lv.e_derived and lv.h_derived
+    else:
+        assert (lv.e_v_per_m, lv.h_a_per_m) == (pytest.approx(e(f_mhz), rel=1e-9), pytest.approx(h(f_mhz), rel=1e-9))
+        assert not lv.e_derived and not lv.h_derived
+    assert lv.averaging_time_s == minutes * 60
+    assert lv.fully_checked and part[:4] in lv.status and "47 CFR 1.1310 Table 1" in lv.status
+
+
+@pytest.mark.parametrize("tier", ["occupational", "public"])
+def test_fcc_table_1_printed_rows_meet_at_shared_limits(tier):
+    """The printed ranges share their end points ("0.3-3.0", "3.0-30"); meterlink takes the lower
+    row there. Both printed rows give the same value to within the table's rounding (0.3 %), so the
+    choice does not change a result: 824/1.34 = 614.9 against 614 is the widest."""
+    rows = next(r for (t, _p, _m), r in CFR_TABLE_1.items() if t == tier)
+    for below, above in zip(rows, rows[1:]):
+        fb = below[2]
+        assert fb == above[1]
+        lv = limits.reference_level("fcc-1310", tier, fb * MHz)
+        assert lv.s_w_per_m2 == pytest.approx(below[5](fb) * 10, rel=1e-9)  # the lower row
+        assert above[5](fb) == pytest.approx(below[5](fb), rel=3e-3)
+        for cell, value in ((3, lv.e_v_per_m), (4, lv.h_a_per_m)):
+            if below[cell] is not None:
+                assert value == pytest.approx(below[cell](fb), rel=1e-9)
+                if above[cell] is not None:
+                    assert above[cell](fb) == pytest.approx(below[cell](fb), rel=3e-3)
+
+
+@pytest.mark.parametrize("tier", ["occupational", "public"])
+@pytest.mark.parametrize("f_mhz", [0.3 * (1 - 1e-6), 100_000 * (1 + 1e-6)])
+def test_fcc_table_1_covers_0_3_to_100000_mhz_only(tier, f_mhz):
+    # The printed table starts at 0.3 MHz and ends at 100,000 MHz; outside it there is no level.
+    with pytest.raises(MeterlinkError, match="outside"):
+        limits.reference_level("fcc-1310", tier, f_mhz * MHz)
 
 
 # Pins of averaging times not yet checked against a primary text (not checks; see the docstring).

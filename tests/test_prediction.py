@@ -4,7 +4,7 @@ sources and hand-worked physics, each named beside its check.
 Sources used and how far each was read:
 - scipy.constants (mu_0, epsilon_0, CODATA): Z0 = sqrt(mu_0/epsilon_0) for E = sqrt(Z0*S).
 - 47 CFR 1.1310 Table 1 (B), general population: 300-1500 MHz S = f/1500 mW/cm2, 1.5-100 GHz
-  S = 1.0 mW/cm2 (as packaged in fcc-1310.toml, checked there against a published reproduction).
+  S = 1.0 mW/cm2 (as packaged in fcc-1310.toml, checked there against the e-CFR text).
 - FCC OET Bulletin 65, Edition 97-01: the far-field equation S = P*G/(4*pi*R^2), the ground
   reflection factor 1.6 in field (1.6^2 = 2.56 in power density) and the cylindrical model for
   collinear arrays are the forms that bulletin uses; its worked examples could not be read (only
