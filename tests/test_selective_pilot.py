@@ -202,3 +202,45 @@ def test_pilot_method_without_pilot_stops_before_any_sweep(tmp_path):
     lines = p.stderr.strip().splitlines()
     assert len(lines) == 1 and "swept channel power" in lines[0] and "ex.toml" in lines[0]
     assert analyser.sweeps == 0 and not (tmp_path / "p.jsonl").exists()
+
+
+def test_pilot_in_a_survey_plan_end_to_end(tmp_path):
+    """A plan's selective point with a declared CPICH pilot, measured during the survey (simulated meter on a pty,
+    simulated analyser on loopback TCP): stored, judged at maximum with the pilot, and the report shows the pilot
+    and its instrument beside the factor."""
+    import re
+
+    from meterlink.simulators.pty_meter import SimulatedMeter
+    from meterlink.survey.report import write_report
+    from meterlink.survey.run import run_plan
+
+    site = SiteAntenna(load_scenario("demo"), POINT_M, antenna="isotropic")
+    truth = {t["name"]: t["e_v_per_m"] for t in site.truth()}
+    bands = tmp_path / "bands.toml"
+    bands.write_text(BANDS_TEXT, encoding="utf-8")
+    # the UMTS carrier at half its maximum now (20 W of 40 W, CPICH 2 W): CPICH field E * sqrt(2 / 20)
+    pilot = truth["Pole UMTS 2100"] * math.sqrt(2 / 20)
+    d = {"survey": {"standard": "icnirp-2020", "tier": "public", "rule": "guarded", "certificate": "demo-probe",
+                    "settle_s": 1, "spot_s": 2},
+         "site": {"name": "Brannock Tor transmitting site"},
+         "point": [{"label": "mast foot", "x_m": POINT_M[0], "y_m": POINT_M[1], "height_m": POINT_M[2],
+                    "mode": "selective", "bands": str(bands), "antenna_cert": "demo-dipole",
+                    "extrapolation": {"Pole UMTS 2100": {
+                        "method": "umts-cpich", "p_max_w": 40.0, "p_cpich_w": 2.0, "pilot_e_v_per_m": pilot,
+                        "pilot_u_db": 2.0, "pilot_instrument": "decoder-capable analyser (simulated)"}}}]}
+    db = tmp_path / "s.db"
+    with ScpiServer(Analyzer(site, seed=8)) as srv, \
+            SimulatedMeter("demo", sensor="probe", seed=4, speed=100.0) as sim:
+        sid = run_plan(sim.port, d, db, mover=sim.move_to, analyser=srv.address)
+    con = sqlite3.connect(db)
+    (e_max, ex_json), = con.execute("select e_at_max_v_per_m, extrapolation_json from sel_bands "
+                                    "where name = 'Pole UMTS 2100'").fetchall()
+    # F = 40 / 2 = 20: E_max = pilot * sqrt(20) = E * sqrt(2)
+    assert e_max == pytest.approx(truth["Pole UMTS 2100"] * math.sqrt(2), rel=1e-9)
+    assert json.loads(ex_json)["inputs"]["pilot_instrument"] == "decoder-capable analyser (simulated)"
+    (r, r_x), = con.execute("select exposure_ratio, exposure_ratio_extrapolated from survey_points "
+                            "where session_id = ?", [sid]).fetchall()
+    assert r_x > r
+    text = re.sub(r"<[^>]+>", " ", write_report(db, sid, tmp_path / "report").read_text(encoding="utf-8"))
+    assert "decoder-capable analyser (simulated)" in text and "pilot_u_db = 2.0" in text
+    assert "decoder-capable instrument and declared with the point" in text and "do not replace" in text
