@@ -157,3 +157,42 @@ def test_method_belongs_to_dipole_af(capsys):
     assert main(["lab", "run", "--method", "substitution", "--quick"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "belongs to dipole-af" in err[0]
+
+
+def test_cli_substitution_bench_failure_keeps_the_readings(tmp_path, capsys, monkeypatch):
+    """A real bench (--bench): the operator is asked to mount each antenna (RF off); the power meter starts
+    reporting SCPI errors part-way through the antenna under test: one line, RF off, every reading kept with
+    exact counts."""
+    import json
+
+    from meterlink.cli import main
+
+    prompts = []
+    monkeypatch.setattr("builtins.input", lambda text="": prompts.append(text) or "")
+    with AfRig(seed=5) as rig:
+        bench = tmp_path / "b.toml"
+        bench.write_text(rig.bench_toml(freqs_hz=(300e6, 1e9, 3e9)), encoding="utf-8")
+        real, reads = rig.pm.command, []
+
+        def command(h, arg, query):     # per frequency 5 reads (1 to set the field, 2 per repeat): errors after 20
+            if h == "READ" and query:
+                reads.append(1)
+                if len(reads) >= 20:
+                    rig.pm.faults.scpi_error = True
+            return real(h, arg, query)
+        rig.pm.command = command
+        rig.swap("reference")           # what is mounted is the operator's doing: the prompt is answered here
+        out = tmp_path / "o"
+        code = main(["lab", "run", "dipole-af", "--method", "substitution", "--bench", str(bench), "--repeats", "2",
+                     "--out", str(out)])
+        assert rig.gen.on is False
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and "\n" not in err and "readings measured, kept in" in err
+    assert len(prompts) == 2 and "reference antenna" in prompts[0] and "under calibration" in prompts[1]
+    assert all(p.startswith("RF is off") for p in prompts)
+    lines = (out / "af-journal.csv").read_text(encoding="utf-8").splitlines()[1:]
+    ev = json.loads((out / "partial-event.json").read_text())
+    # the reference antenna at 3 frequencies x 2 repeats, then the antenna under test at the first frequency
+    assert [ln.split(",")[0] for ln in lines] == ["reference"] * 6 + ["dut"] * 2
+    assert ev["readings_measured"] == 8 and ev["readings_not_measured"] == 4
+    assert not (out / "certificate.toml").exists()

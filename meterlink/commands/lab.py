@@ -397,7 +397,7 @@ def _dipole_af(args, console, journal_in=None) -> int:
                         what = "the reference antenna" if phase == "reference" else "the antenna under calibration"
                         try:        # the generator's RF is off between the phases
                             input(f"RF is off: mount {what} at the measuring place and press Enter ")
-                        except EOFError:
+                        except (EOFError, OSError):     # no terminal to answer
                             raise MeterlinkError("--method substitution on a bench asks the operator to swap the "
                                                  "antennas: run it at a terminal") from None
                 readings = afcal.run_substitution(bench, sub, journal, swap, repeats=args.repeats)
