@@ -149,6 +149,13 @@ def test_cli_substitution_certificate_states_the_method(tmp_path, capsys):
     assert "positioning" in html and "mismatch, antenna under test" in html
     lines = (out / "af-journal.csv").read_text(encoding="utf-8").splitlines()
     assert len(lines) == 1 + 2 * 2 * len(f) and {ln.split(",")[0] for ln in lines[1:]} == {"reference", "dut"}
+    # the journal alone makes the same certificate again (lab import knows a substitution journal by its header)
+    assert main(["lab", "import", str(out / "af-journal.csv"), "--af-bench", str(out / "simulated-bench.toml"),
+                 "--json", "--out", str(tmp_path / "imported")]) == 0
+    again = json.loads(capsys.readouterr().out)
+    assert again["method"] == "substitution"
+    assert load_certificate(tmp_path / "imported" / "certificate.toml").af_db_per_m == cert.af_db_per_m
+    assert (tmp_path / "imported" / "af-journal.csv").read_text(encoding="utf-8").splitlines() == lines
 
 
 def test_method_belongs_to_dipole_af(capsys):

@@ -27,7 +27,8 @@ def add_arguments(parser) -> None:
     imp.add_argument("csv", help="readings file (columns in docs/lab.md), or with --af-bench a dipole-af journal")
     imp.add_argument("--af-bench", metavar="FILE",
                      help="the csv is an af-journal.csv of 'lab run dipole-af' (e.g. of a stopped run) measured on "
-                          "this standard-field bench: build the dipole certificate from its readings")
+                          "this standard-field bench: build the dipole certificate from its readings (a "
+                          "substitution journal, first column antenna, also takes the bench's [substitution] table)")
     bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method",
                          description="Show the GUM uncertainty budget of the lab session's method: each contribution "
                                      "with its distribution, divisor and sensitivity, the combined standard "
@@ -350,7 +351,8 @@ def _dipole_af(args, console, journal_in=None) -> int:
     afcal_report.check_base(session, base)
     bench_path = args.af_bench if journal_in is not None else args.bench
     bench = afcal.load_af_bench(bench_path) if bench_path else None
-    substitution = getattr(args, "method", "standard-field") == "substitution"
+    substitution = getattr(args, "method", "standard-field") == "substitution" or (
+        journal_in is not None and afcal.is_sub_journal(journal_in))     # an imported journal says its method
     sub = afcal.load_substitution(bench_path) if substitution and bench_path else None
     if bench is not None:
         afcal.check_plan(bench)
@@ -358,12 +360,18 @@ def _dipole_af(args, console, journal_in=None) -> int:
             afcal.check_substitution(bench, sub)
     taken = None
     if journal_in is not None:
-        taken = afcal.read_journal(journal_in)
+        if substitution:
+            taken_sub = afcal.read_sub_journal(journal_in)
+            taken = afcal.pair_substitution(taken_sub)
+        else:
+            taken = afcal.read_journal(journal_in)
         freqs = tuple(sorted({r.freq_hz for r in taken}))
         if sum(1 for f in freqs if sum(r.freq_hz == f for r in taken) >= 2) < 2:
             raise MeterlinkError(f"{journal_in}: fewer than two frequencies with two or more repeats; an "
                                  "antenna-factor table needs two or more")
         afcal.check_plan(dataclasses.replace(bench, freq_hz=freqs))   # in the far field and the bench's tables
+        if substitution:
+            afcal.check_substitution(dataclasses.replace(bench, freq_hz=freqs), sub)
     out = Path(args.out)
     reg_path = Path(args.register) if args.register else register.default_register(out)
     template_dir(args.template_dir)
@@ -374,8 +382,12 @@ def _dipole_af(args, console, journal_in=None) -> int:
     rig = None
     try:
         if taken is not None:                  # imported: the readings are copied into the new journal
-            for r in taken:
-                journal.add(r)
+            if substitution:
+                for antenna, r in taken_sub:
+                    journal.add(antenna, r)
+            else:
+                for r in taken:
+                    journal.add(r)
             readings = taken
         else:
             if bench is None:                  # the simulated standard-field bench on loopback TCP

@@ -362,6 +362,36 @@ class SubJournal(Journal):
         self.count += 1
 
 
+def is_sub_journal(path) -> bool:
+    """Whether a journal file is a substitution journal (its header starts with the antenna column)."""
+    try:
+        with open(path, encoding="utf-8", errors="replace") as fh:
+            return fh.readline().strip() == ",".join(SubJournal.COLUMNS)
+    except OSError:
+        return False            # read_journal says what is wrong with it
+
+
+def read_sub_journal(path) -> list[tuple[str, AfReading]]:
+    """The (antenna, reading) pairs of a substitution journal (one-line LabError on a malformed line)."""
+    p = Path(path)
+    rows = list(csv.reader(read_input_text(p, "journal", LabError).splitlines()))
+    if not rows or tuple(rows[0]) != SubJournal.COLUMNS:
+        raise LabError(f"{p}: line 1: expected the columns {','.join(SubJournal.COLUMNS)}")
+    out = []
+    for i, row in enumerate(rows[1:], start=2):
+        try:
+            antenna, f, rep, a, b, v = row
+            r = AfReading(float(f), int(rep), float(a), float(b), float(v))
+        except ValueError:
+            raise LabError(f"{p}: line {i}: expected the antenna and five numbers") from None
+        if antenna not in SUB_PHASES:
+            raise LabError(f"{p}: line {i}: antenna {antenna!r} is not one of {', '.join(SUB_PHASES)}")
+        if not all(math.isfinite(x) for x in (r.freq_hz, r.net_before_dbm, r.net_after_dbm, r.analyser_dbm)):
+            raise LabError(f"{p}: line {i}: not a finite number")
+        out.append((antenna, r))
+    return out
+
+
 def pair_substitution(taken) -> list[SubReading]:
     """SubReadings from (antenna, AfReading) pairs: repeat i of the reference with repeat i of the antenna under
     test at each frequency; a frequency or repeat measured with one antenna only is left out (a stopped run)."""
