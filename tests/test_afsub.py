@@ -147,6 +147,7 @@ def test_cli_substitution_certificate_states_the_method(tmp_path, capsys):
     html = (out / "certificate.html").read_text(encoding="utf-8")
     assert "substitution: a reference antenna" in html and "REF-AF-0001 (invented)" in html
     assert "positioning" in html and "mismatch, antenna under test" in html
+    assert "by substitution against a reference antenna" in html and "standard-field" not in html
     lines = (out / "af-journal.csv").read_text(encoding="utf-8").splitlines()
     assert len(lines) == 1 + 2 * 2 * len(f) and {ln.split(",")[0] for ln in lines[1:]} == {"reference", "dut"}
     # the journal alone makes the same certificate again (lab import knows a substitution journal by its header)

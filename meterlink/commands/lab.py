@@ -346,13 +346,13 @@ def _dipole_af(args, console, journal_in=None) -> int:
         raise MeterlinkError("dipole-af: --temperatures and --drift-db belong to the probe procedures")
     if journal_in is None and args.repeats < 2:
         raise MeterlinkError("--repeats must be at least 2 (Type A needs repeats)")
-    session = _session(args.session, "af-session.toml")
+    substitution = getattr(args, "method", "standard-field") == "substitution" or (
+        journal_in is not None and afcal.is_sub_journal(journal_in))     # an imported journal says its method
+    session = _session(args.session, "af-sub-session.toml" if substitution else "af-session.toml")
     base = load_certificate(args.previous or "demo-dipole")
     afcal_report.check_base(session, base)
     bench_path = args.af_bench if journal_in is not None else args.bench
     bench = afcal.load_af_bench(bench_path) if bench_path else None
-    substitution = getattr(args, "method", "standard-field") == "substitution" or (
-        journal_in is not None and afcal.is_sub_journal(journal_in))     # an imported journal says its method
     sub = afcal.load_substitution(bench_path) if substitution and bench_path else None
     if bench is not None:
         afcal.check_plan(bench)
