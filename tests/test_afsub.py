@@ -91,14 +91,16 @@ def test_substitution_over_scpi_within_u_of_the_truth(tmp_path):
     lines = (tmp_path / "j.csv").read_text(encoding="utf-8").splitlines()
     assert lines[0] == "antenna,freq_hz,repeat,net_before_dbm,net_after_dbm,analyser_dbm" and len(lines) == 1 + 12
     assert [(r.freq_hz, r.repeat) for r in readings] == [(f, i) for f in bench.freq_hz for i in (1, 2)]
+    errs = []
     for f in bench.freq_hz:
         p = sub_point([r for r in readings if r.freq_hz == f], float(sub.ref_af_db_per_m(f)))
         b, _ = sub_budget(p, SubBudgetInputs())
-        err = p.af_db_per_m - truth[f]
-        assert abs(err) <= b.u_expanded_db, (f, err, b.u_expanded_db)
-        # the reference antenna's own error (its true AF is REF_AF_ERROR_DB off its certificate) passes into the
-        # result with the opposite sign: err = -REF_AF_ERROR_DB within the analyser's scatter
-        assert err == pytest.approx(-REF_AF_ERROR_DB, abs=0.1)
+        errs.append(p.af_db_per_m - truth[f])
+        assert abs(errs[-1]) <= b.u_expanded_db, (f, errs[-1], b.u_expanded_db)
+    # the reference antenna's own error (its true AF is REF_AF_ERROR_DB off its certificate) passes into the
+    # result with the opposite sign: the mean error is -REF_AF_ERROR_DB within the analyser's scatter (0.05 dB rms
+    # a sweep: about 0.03 dB on the mean of 3 frequencies x 2 repeats x 2 antennas)
+    assert sum(errs) / len(errs) == pytest.approx(-REF_AF_ERROR_DB, abs=0.1)
 
 
 def test_substitution_bench_mistakes_are_one_line_before_any_rf(tmp_path):
