@@ -31,6 +31,10 @@ TX_GAIN_ERROR_DB = 0.15       # its true gain is this much above the certificate
 RX_CABLE_TABLE = ((200e6, 0.3), (1e9, 0.8), (3e9, 1.5), (6e9, 2.3))
 RX_CABLE_ERROR_DB = 0.03
 FREQS_HZ = (200e6, 300e6, 500e6, 700e6, 1e9, 1.5e9, 2e9, 2.5e9, 3e9, 4e9, 5e9, 6e9)
+#: The reference antenna of the substitution method: its certificate's antenna factor (invented, dB/m) and how
+#: far its true AF lies from that (inside the certificate's stated 0.6 dB, k = 2).
+REF_AF_TABLE = ((200e6, 11.0), (500e6, 17.5), (1e9, 23.2), (3e9, 32.6), (6e9, 38.4))
+REF_AF_ERROR_DB = -0.12
 
 
 def af_deviation_db(freq_hz):
@@ -49,11 +53,22 @@ class AfRig:
         self.pm = _Pm(self, seed)
         self.analyser = Analyzer(SimpleNamespace(input_power_w=self._analyser_input), seed=seed + 1)
         self.servers: list[ScpiServer] = []
+        self.mounted = "dut"        # which antenna stands at the measuring place: "dut" or "reference"
 
     # the physics -------------------------------------------------------------------------------
     def true_af_db_per_m(self, freq_hz):
         """The simulated dipole's true antenna factor (the truth a test compares with)."""
         return true_antenna_factor_db_per_m(self.receiver, freq_hz) + af_deviation_db(freq_hz)
+
+    def true_ref_af_db_per_m(self, freq_hz) -> float:
+        """The reference antenna's true antenna factor: its certificate's, off by REF_AF_ERROR_DB."""
+        return float(_interp_logf(REF_AF_TABLE, freq_hz)) + REF_AF_ERROR_DB
+
+    def swap(self, phase: str) -> None:
+        """Mount the reference antenna ("reference") or the antenna under test ("dut") at the measuring place."""
+        if phase not in ("reference", "dut"):
+            raise ValueError(f"no antenna {phase!r}")
+        self.mounted = phase
 
     def net_power_dbm(self) -> float | None:
         return self.gen.level_dbm + AMPLIFIER_GAIN_DB - CABLE_LOSS_DB if self.gen.on else None
@@ -73,7 +88,8 @@ class AfRig:
             return [], np.zeros(0)
         f = self.gen.freq_hz
         loss = float(_interp_logf(RX_CABLE_TABLE, f)) + RX_CABLE_ERROR_DB
-        v = e / 10 ** (float(self.true_af_db_per_m(f)) / 20) / 10 ** (loss / 20)
+        af = float(self.true_af_db_per_m(f)) if self.mounted == "dut" else self.true_ref_af_db_per_m(f)
+        v = e / 10 ** (af / 20) / 10 ** (loss / 20)
         return [SimpleNamespace(freq_hz=f, technology="CW")], np.array([v * v / 50.0])
 
     def update(self) -> None:      # the generator's hook (scpi_lab._Gen): the field is computed when asked
@@ -97,7 +113,11 @@ class AfRig:
                 f'tx_gain_freq_hz = [{fmt(repr(f) for f, _ in TX_GAIN_TABLE)}]\n'
                 f'tx_gain_dbi = [{fmt(repr(g) for _, g in TX_GAIN_TABLE)}]\n'
                 f'rx_cable_freq_hz = [{fmt(repr(f) for f, _ in RX_CABLE_TABLE)}]\n'
-                f'rx_cable_db = [{fmt(repr(x) for _, x in RX_CABLE_TABLE)}]\n')
+                f'rx_cable_db = [{fmt(repr(x) for _, x in RX_CABLE_TABLE)}]\n\n'
+                f'[substitution]\nref_name = "reference dipole (simulated)"\n'
+                f'ref_certificate = "REF-AF-0001 (invented)"\n'
+                f'ref_af_freq_hz = [{fmt(repr(f) for f, _ in REF_AF_TABLE)}]\n'
+                f'ref_af_db_per_m = [{fmt(repr(x) for _, x in REF_AF_TABLE)}]\n')
 
     def __enter__(self) -> "AfRig":
         self.servers = [ScpiServer(i).start() for i in (self.gen, self.pm, self.analyser)]
@@ -109,4 +129,5 @@ class AfRig:
         self.servers = []
 
 
-__all__ = ["AfRig", "af_deviation_db", "DISTANCE_M", "TX_GAIN_TABLE", "RX_CABLE_TABLE", "FREQS_HZ"]
+__all__ = ["AfRig", "af_deviation_db", "DISTANCE_M", "TX_GAIN_TABLE", "RX_CABLE_TABLE", "FREQS_HZ", "REF_AF_TABLE",
+           "REF_AF_ERROR_DB"]

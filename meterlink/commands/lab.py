@@ -27,7 +27,8 @@ def add_arguments(parser) -> None:
     imp.add_argument("csv", help="readings file (columns in docs/lab.md), or with --af-bench a dipole-af journal")
     imp.add_argument("--af-bench", metavar="FILE",
                      help="the csv is an af-journal.csv of 'lab run dipole-af' (e.g. of a stopped run) measured on "
-                          "this standard-field bench: build the dipole certificate from its readings")
+                          "this standard-field bench: build the dipole certificate from its readings (a "
+                          "substitution journal, first column antenna, also takes the bench's [substitution] table)")
     bud = sub.add_parser("budget", help="show the uncertainty budget of the session's method",
                          description="Show the GUM uncertainty budget of the lab session's method: each contribution "
                                      "with its distribution, divisor and sensitivity, the combined standard "
@@ -57,6 +58,10 @@ def add_arguments(parser) -> None:
                      help="drive a bench of SCPI instruments (generator, power meter, rotator by VISA address) and "
                           "the meter on its serial port, as named in this bench file (docs/instruments.md); "
                           "dipole-af: generator, power meter and analyser, and the standard-field set-up")
+    run.add_argument("--method", choices=("standard-field", "substitution"), default="standard-field",
+                     help="dipole-af: standard-field (default; a transmitting antenna of known gain) or substitution "
+                          "(a reference antenna of known antenna factor, named in the bench file's [substitution] "
+                          "table, measures the field; the dipole then replaces it)")
     run.add_argument("--temperatures", metavar="LIST",
                      help="also measure the temperature coefficient in a climatic chamber at these degC, "
                           "e.g. 5,15,23,30,40 (the simulated bench has one)")
@@ -236,6 +241,9 @@ def run(args) -> int:
     console = Console()
     if args.action == "run" and args.procedure == "dipole-af":
         return _dipole_af(args, console)
+    if args.action == "run" and args.method != "standard-field":
+        from meterlink.errors import MeterlinkError
+        raise MeterlinkError(f"--method {args.method} belongs to dipole-af")
     if args.action == "import" and args.af_bench:
         return _dipole_af(args, console, journal_in=args.csv)
     session = _session(args.session)
@@ -338,33 +346,48 @@ def _dipole_af(args, console, journal_in=None) -> int:
         raise MeterlinkError("dipole-af: --temperatures and --drift-db belong to the probe procedures")
     if journal_in is None and args.repeats < 2:
         raise MeterlinkError("--repeats must be at least 2 (Type A needs repeats)")
-    session = _session(args.session, "af-session.toml")
+    substitution = getattr(args, "method", "standard-field") == "substitution" or (
+        journal_in is not None and afcal.is_sub_journal(journal_in))     # an imported journal says its method
+    session = _session(args.session, "af-sub-session.toml" if substitution else "af-session.toml")
     base = load_certificate(args.previous or "demo-dipole")
     afcal_report.check_base(session, base)
     bench_path = args.af_bench if journal_in is not None else args.bench
     bench = afcal.load_af_bench(bench_path) if bench_path else None
+    sub = afcal.load_substitution(bench_path) if substitution and bench_path else None
     if bench is not None:
         afcal.check_plan(bench)
+        if sub is not None:
+            afcal.check_substitution(bench, sub)
     taken = None
     if journal_in is not None:
-        taken = afcal.read_journal(journal_in)
+        if substitution:
+            taken_sub = afcal.read_sub_journal(journal_in)
+            taken = afcal.pair_substitution(taken_sub)
+        else:
+            taken = afcal.read_journal(journal_in)
         freqs = tuple(sorted({r.freq_hz for r in taken}))
         if sum(1 for f in freqs if sum(r.freq_hz == f for r in taken) >= 2) < 2:
             raise MeterlinkError(f"{journal_in}: fewer than two frequencies with two or more repeats; an "
                                  "antenna-factor table needs two or more")
         afcal.check_plan(dataclasses.replace(bench, freq_hz=freqs))   # in the far field and the bench's tables
+        if substitution:
+            afcal.check_substitution(dataclasses.replace(bench, freq_hz=freqs), sub)
     out = Path(args.out)
     reg_path = Path(args.register) if args.register else register.default_register(out)
     template_dir(args.template_dir)
     if args.pdf and not pdf_available():
         raise MeterlinkError(PDF_HINT)
     _fresh_out(out)
-    journal = afcal.Journal(out / "af-journal.csv")
+    journal = (afcal.SubJournal if substitution else afcal.Journal)(out / "af-journal.csv")
     rig = None
     try:
         if taken is not None:                  # imported: the readings are copied into the new journal
-            for r in taken:
-                journal.add(r)
+            if substitution:
+                for antenna, r in taken_sub:
+                    journal.add(antenna, r)
+            else:
+                for r in taken:
+                    journal.add(r)
             readings = taken
         else:
             if bench is None:                  # the simulated standard-field bench on loopback TCP
@@ -376,9 +399,24 @@ def _dipole_af(args, console, journal_in=None) -> int:
                 except OSError as exc:
                     raise MeterlinkError(f"{out}: cannot write simulated-bench.toml ({exc.strerror})") from None
                 bench = afcal.load_af_bench(out / "simulated-bench.toml")
-            readings = afcal.run(bench, journal, repeats=args.repeats)
+                if substitution:
+                    sub = afcal.load_substitution(out / "simulated-bench.toml")
+            if substitution:
+                def swap(phase):
+                    if rig is not None:
+                        rig.swap(phase)
+                    else:
+                        what = "the reference antenna" if phase == "reference" else "the antenna under calibration"
+                        try:        # the generator's RF is off between the phases
+                            input(f"RF is off: mount {what} at the measuring place and press Enter ")
+                        except (EOFError, OSError):     # no terminal to answer
+                            raise MeterlinkError("--method substitution on a bench asks the operator to swap the "
+                                                 "antennas: run it at a terminal") from None
+                readings = afcal.run_substitution(bench, sub, journal, swap, repeats=args.repeats)
+            else:
+                readings = afcal.run(bench, journal, repeats=args.repeats)
     except MeterlinkError as exc:
-        planned = len(bench.freq_hz) * getattr(args, "repeats", 0) if bench else 0
+        planned = len(bench.freq_hz) * getattr(args, "repeats", 0) * (2 if substitution else 1) if bench else 0
         try:
             (out / "partial-event.json").write_text(json.dumps({
                 "event": "bench_stopped", "procedure": "dipole-af",
@@ -393,7 +431,8 @@ def _dipole_af(args, console, journal_in=None) -> int:
             rig.__exit__()
     with register.issue(reg_path, session.probe_serial, out / "certificate.toml", session.certificate_number) as no:
         session = dataclasses.replace(session, certificate_number=no)
-        cal = afcal_report.analyse(session, bench, readings, base)
+        cal = (afcal_report.analyse_substitution(session, bench, sub, readings, base) if substitution
+               else afcal_report.analyse(session, bench, readings, base))
         _fresh_out(out)
         try:
             (out / "certificate.toml").write_text(dump_certificate(cal.certificate), encoding="utf-8")

@@ -24,6 +24,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--label", default="selective point", help="label of the point in the database")
     parser.add_argument("--survey", type=int, metavar="SESSION", help="with --db: add the point to this survey "
                         "session (its standard and tier apply) instead of a new session of kind 'selective'")
+    parser.add_argument("--extrapolation", metavar="FILE", help="extrapolation to maximum traffic per band: a TOML "
+                        "file of [\"BAND NAME\"] tables (method and inputs, docs/selective.md); a pilot-based method "
+                        "takes the pilot as a decoder-capable instrument measured it")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
 
 
@@ -38,7 +41,7 @@ def run(args) -> int:
     from meterlink.physics.certificate import load_certificate
     from meterlink.physics.selective import ChainSpec
     from meterlink.survey.capture import is_dipole
-    from meterlink.survey.selective import Journal, assess_point, load_bands, measure_point
+    from meterlink.survey.selective import Journal, assess_point, load_bands, load_extrapolation, measure_point
 
     for name in ("sweep_time", "timeout"):
         if not 0 < getattr(args, name) <= 3600:
@@ -46,6 +49,7 @@ def run(args) -> int:
     if not 0 <= args.analyser_level_db <= 10:
         raise MeterlinkError(f"--analyser-level-db {args.analyser_level_db}: between 0 and 10 dB")
     bands = load_bands(args.bands)
+    factors = load_extrapolation(args.extrapolation, bands) if args.extrapolation else None
     cert = load_certificate(args.antenna_cert)
     if not is_dipole(cert):
         raise MeterlinkError(f"--antenna-cert {args.antenna_cert}: not an antenna (dipole-receiver) certificate")
@@ -73,7 +77,7 @@ def run(args) -> int:
             res = measure_point(SpectrumAnalyzer(s), bands, cert, antenna=args.antenna, orient=orient,
                                 chain=ChainSpec(analyser_level_db=args.analyser_level_db),
                                 sweep_time_s=args.sweep_time, journal=journal)
-        out = assess_point(res, args.standard, args.tier)
+        out = assess_point(res, args.standard, args.tier, factors)
         journal.write({"event": "result", **out})
         if store is not None:
             from meterlink.survey.selstore import store_point
@@ -96,6 +100,13 @@ def run(args) -> int:
         print(f"{b['name'][:18]:18s} {b['freq_hz'] / 1e6:9.3f} {b['e_v_per_m']:9.3f} {b['u_expanded_db']:6.2f} "
               f"{b['exposure_ratio']:8.4f} {100 * b['share']:5.1f}%")
     print(f"total exposure ratio ({args.standard} {args.tier}, summation rule): {out['total_exposure_ratio']:.4f}")
+    for b in out["bands"]:
+        if "extrapolation" in b:
+            x = b["extrapolation"]
+            print(f"at maximum: {b['name'][:18]:18s} {b['e_at_max_v_per_m']:9.3f} V/m  U {b['u_at_max_db']:.2f} dB  "
+                  f"({x['method']}, F = {x['power_factor']:.4g})")
+    if "total_exposure_ratio_at_max" in out:
+        print(f"total exposure ratio at maximum: {out['total_exposure_ratio_at_max']:.4f}")
     print(f"check status: {out['check_status']}")
     for m in out["messages"]:
         print(f"note: {m}")

@@ -30,7 +30,7 @@ import numpy as np
 
 from meterlink.errors import read_input_text
 from meterlink.lab.session import LabError
-from meterlink.physics.antenna_cal import AfReading, far_field_min_distance_m, standard_field_power_w
+from meterlink.physics.antenna_cal import AfReading, SubReading, far_field_min_distance_m, standard_field_power_w
 
 PROCEDURE = "dipole-af"
 JOURNAL_COLUMNS = ("freq_hz", "repeat", "net_before_dbm", "net_after_dbm", "analyser_dbm")
@@ -134,6 +134,8 @@ def check_plan(bench: AfBench) -> None:
 class Journal:
     """The readings as they are taken: CSV lines appended and flushed to disk one by one."""
 
+    COLUMNS = JOURNAL_COLUMNS
+
     def __init__(self, path):
         self.path = Path(path)
         try:
@@ -145,7 +147,7 @@ class Journal:
         except OSError as exc:
             raise LabError(f"{self.path}: cannot write the journal ({exc.strerror})") from None
         self.w = csv.writer(self.fh)
-        self.w.writerow(JOURNAL_COLUMNS)
+        self.w.writerow(self.COLUMNS)
         self._sync()
         self.count = 0
 
@@ -287,3 +289,141 @@ def run(bench: AfBench, journal: Journal, repeats: int = 3, progress=None) -> li
             if progress:
                 progress(k + 1, len(bench.freq_hz), f)
     return out
+
+
+# -- substitution (reference-antenna) method ------------------------------------------------------------------
+#
+# The same bench sets up a field at the antenna position (level set from the standard-field estimate, then not
+# relied on); the reference antenna measures it at every frequency, the operator mounts the antenna under test
+# in its place, and it measures the same frequencies. Per frequency and repeat the pair gives
+# AF_dut = AF_ref + (V_ref - P_ref) - (V_dut - P_dut) (meterlink.physics.antenna_cal.sub_point). Bench file: the
+# standard-field bench plus a [substitution] table: ref_name, ref_certificate, ref_af_freq_hz, ref_af_db_per_m.
+
+METHODS = ("standard-field", "substitution")
+SUB_PHASES = ("reference", "dut")
+
+
+@dataclass(frozen=True)
+class SubSpec:
+    """The reference antenna of a substitution: its identity, certificate and antenna-factor table."""
+
+    ref_name: str
+    ref_certificate: str
+    ref_af: tuple[tuple[float, float], ...]       # (freq_hz, dB/m)
+
+    def ref_af_db_per_m(self, freq_hz):
+        f, x = zip(*self.ref_af)
+        return np.interp(np.log10(freq_hz), np.log10(f), x)
+
+
+def load_substitution(path) -> SubSpec:
+    """The [substitution] table of a bench file; every problem names the file and the key."""
+    where = str(path)
+    try:
+        doc = tomllib.loads(read_input_text(path, "bench", LabError))
+    except tomllib.TOMLDecodeError as exc:
+        raise LabError(f"{where}: not valid TOML ({exc})".replace("\n", " ")) from None
+    t = doc.get("substitution")
+    if not isinstance(t, dict):
+        raise LabError(f"{where}: --method substitution needs a [substitution] table (ref_name, ref_certificate, "
+                       "ref_af_freq_hz, ref_af_db_per_m)")
+    for key in ("ref_name", "ref_certificate"):
+        if not isinstance(t.get(key), str) or not t[key].strip():
+            raise LabError(f"{where}: substitution.{key}: text naming the reference antenna and its certificate")
+    f, x = t.get("ref_af_freq_hz"), t.get("ref_af_db_per_m")
+    ok = (isinstance(f, list) and isinstance(x, list) and len(f) == len(x) >= 2
+          and all(not isinstance(v, bool) and isinstance(v, (int, float)) and math.isfinite(v) for v in f + x)
+          and all(9e3 <= v <= 3e11 for v in f) and all(b > a for a, b in zip(f, f[1:]))
+          and all(-20.0 <= v <= 80.0 for v in x))
+    if not ok:
+        raise LabError(f"{where}: substitution.ref_af_freq_hz / ref_af_db_per_m: two lists of the same length (2 or "
+                       "more), frequencies strictly increasing in 9e3..3e11 Hz, antenna factors in -20..80 dB/m")
+    return SubSpec(t["ref_name"].strip(), t["ref_certificate"].strip(),
+                   tuple(zip((float(v) for v in f), (float(v) for v in x))))
+
+
+def check_substitution(bench: AfBench, sub: SubSpec) -> None:
+    """Refuse, before any RF is on, a frequency outside the reference antenna's table."""
+    lo, hi = sub.ref_af[0][0], sub.ref_af[-1][0]
+    for f in bench.freq_hz:
+        if not lo <= f <= hi:
+            raise LabError(f"{f / 1e6:g} MHz: outside the reference antenna's table ({lo / 1e6:g}..{hi / 1e6:g} MHz)")
+
+
+class SubJournal(Journal):
+    """The substitution's readings as taken: which antenna was mounted, then the standard-field columns."""
+
+    COLUMNS = ("antenna",) + JOURNAL_COLUMNS
+
+    def add(self, antenna: str, r: AfReading) -> None:
+        self.w.writerow([antenna, repr(r.freq_hz), r.repeat, repr(r.net_before_dbm), repr(r.net_after_dbm),
+                         repr(r.analyser_dbm)])
+        self._sync()
+        self.count += 1
+
+
+def is_sub_journal(path) -> bool:
+    """Whether a journal file is a substitution journal (its header starts with the antenna column)."""
+    try:
+        with open(path, encoding="utf-8", errors="replace") as fh:
+            return fh.readline().strip() == ",".join(SubJournal.COLUMNS)
+    except OSError:
+        return False            # read_journal says what is wrong with it
+
+
+def read_sub_journal(path) -> list[tuple[str, AfReading]]:
+    """The (antenna, reading) pairs of a substitution journal (one-line LabError on a malformed line)."""
+    p = Path(path)
+    rows = list(csv.reader(read_input_text(p, "journal", LabError).splitlines()))
+    if not rows or tuple(rows[0]) != SubJournal.COLUMNS:
+        raise LabError(f"{p}: line 1: expected the columns {','.join(SubJournal.COLUMNS)}")
+    out = []
+    for i, row in enumerate(rows[1:], start=2):
+        try:
+            antenna, f, rep, a, b, v = row
+            r = AfReading(float(f), int(rep), float(a), float(b), float(v))
+        except ValueError:
+            raise LabError(f"{p}: line {i}: expected the antenna and five numbers") from None
+        if antenna not in SUB_PHASES:
+            raise LabError(f"{p}: line {i}: antenna {antenna!r} is not one of {', '.join(SUB_PHASES)}")
+        if not all(math.isfinite(x) for x in (r.freq_hz, r.net_before_dbm, r.net_after_dbm, r.analyser_dbm)):
+            raise LabError(f"{p}: line {i}: not a finite number")
+        out.append((antenna, r))
+    return out
+
+
+def pair_substitution(taken) -> list[SubReading]:
+    """SubReadings from (antenna, AfReading) pairs: repeat i of the reference with repeat i of the antenna under
+    test at each frequency; a frequency or repeat measured with one antenna only is left out (a stopped run)."""
+    by = {}
+    for antenna, r in taken:
+        by[(antenna, r.freq_hz, r.repeat)] = r
+    out = []
+    for (antenna, f, rep), ref in sorted(by.items(), key=lambda kv: (kv[0][1], kv[0][2])):
+        dut = by.get(("dut", f, rep))
+        if antenna != "reference" or dut is None:
+            continue
+        net = lambda r: 10 * math.log10((10 ** (r.net_before_dbm / 10) + 10 ** (r.net_after_dbm / 10)) / 2)  # noqa: E731
+        out.append(SubReading(f, rep, net(ref), ref.analyser_dbm, net(dut), dut.analyser_dbm))
+    return out
+
+
+def run_substitution(bench: AfBench, sub: SubSpec, journal: SubJournal, swap, repeats: int = 3,
+                     progress=None) -> list[SubReading]:
+    """The reference antenna at every planned frequency, then (after swap("dut")) the antenna under test at the
+    same ones; swap(phase) is called before each phase (the operator mounts that antenna). Each repeat goes to
+    the journal as taken."""
+    if repeats < 2:
+        raise LabError("--repeats must be at least 2 (Type A needs repeats)")
+    check_plan(bench)
+    check_substitution(bench, sub)
+    taken = []
+    with AfProcedure(bench) as proc:
+        for k, phase in enumerate(SUB_PHASES):
+            swap(phase)
+            for j, f in enumerate(bench.freq_hz):
+                for r in proc.measure(f, repeats, keep=lambda r, ph=phase: journal.add(ph, r)):
+                    taken.append((phase, r))
+                if progress:
+                    progress(k * len(bench.freq_hz) + j + 1, 2 * len(bench.freq_hz), f)
+    return pair_substitution(taken)

@@ -15,9 +15,10 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from meterlink.lab.afcal import AfBench
+from meterlink.lab.afcal import AfBench, SubSpec
 from meterlink.lab.session import LabError, LabSession
-from meterlink.physics.antenna_cal import AfBudgetInputs, AfPoint, af_budget, af_point
+from meterlink.physics.antenna_cal import (AfBudgetInputs, AfPoint, SubBudgetInputs, af_budget, af_point, sub_budget,
+                                           sub_point)
 from meterlink.physics.calibrate import af_db_per_m
 from meterlink.physics.certificate import KIND_DIPOLE, DipoleCertificate
 from meterlink.physics.uncertainty import Budget, Component
@@ -39,17 +40,20 @@ class AfCalibration:
     base: DipoleCertificate
     certificate: DipoleCertificate
     left_out_freq_hz: tuple[float, ...] = ()   # frequencies with a single repeat (a stopped run): no Type A
+    method: str = "standard-field"             # or "substitution" (points are then SubPoints)
+    sub: SubSpec | None = None                 # the reference antenna of a substitution
 
     @property
     def u_expanded_db(self) -> np.ndarray:
         return np.array([b.u_expanded_db for b in self.budgets])
 
 
-def budget_inputs(session: LabSession) -> AfBudgetInputs:
-    """The default inputs with the session's [budget] values of the same names."""
-    names = set(AfBudgetInputs.__dataclass_fields__)
+def budget_inputs(session: LabSession, cls=AfBudgetInputs):
+    """The default inputs (AfBudgetInputs, or SubBudgetInputs for a substitution) with the session's [budget]
+    values of the same names."""
+    names = set(cls.__dataclass_fields__)
     try:
-        return AfBudgetInputs().replace({k: v for k, v in session.budget.items() if k in names})
+        return cls().replace({k: v for k, v in session.budget.items() if k in names})
     except ValueError as exc:
         raise LabError(f"session budget: {exc}") from None
 
@@ -81,6 +85,35 @@ def analyse(session: LabSession, bench: AfBench, readings, base: DipoleCertifica
         b, notes = af_budget(p, inputs, bench.distance_m)
         pts.append(p)
         buds.append(b)
+    cert = _certificate(session, base, pts, buds)
+    return AfCalibration(session, bench, tuple(pts), tuple(buds), notes, base, cert, left_out)
+
+
+def analyse_substitution(session: LabSession, bench: AfBench, sub: SubSpec, readings, base: DipoleCertificate
+                         ) -> AfCalibration:
+    """Points, budgets and the new dipole certificate from substitution readings (SubReading)."""
+    check_base(session, base)
+    by_f: dict[float, list] = {}
+    for r in readings:
+        by_f.setdefault(r.freq_hz, []).append(r)
+    left_out = tuple(sorted(f for f, v in by_f.items() if len(v) < 2))
+    by_f = {f: v for f, v in by_f.items() if len(v) >= 2}
+    if len(by_f) < 2:
+        raise LabError(f"{len(by_f)} frequencies measured with both antennas and two or more repeats: an "
+                       "antenna-factor table needs two or more")
+    inputs = budget_inputs(session, SubBudgetInputs)
+    pts, buds, notes = [], [], ()
+    for f in sorted(by_f):
+        p = sub_point(by_f[f], float(sub.ref_af_db_per_m(f)))
+        b, notes = sub_budget(p, inputs)
+        pts.append(p)
+        buds.append(b)
+    cert = _certificate(session, base, pts, buds)
+    return AfCalibration(session, bench, tuple(pts), tuple(buds), notes, base, cert, left_out, "substitution", sub)
+
+
+def _certificate(session: LabSession, base: DipoleCertificate, pts, buds) -> DipoleCertificate:
+    """The new dipole certificate: the measured AF and its U; the rest carried from the base certificate."""
     f = tuple(p.freq_hz for p in pts)
     lo, hi = f[0], f[-1]
     if not (base.cable_freq_hz[0] <= lo and hi <= base.cable_freq_hz[-1]):
@@ -93,16 +126,19 @@ def analyse(session: LabSession, bench: AfBench, readings, base: DipoleCertifica
                    certificate_number=session.certificate_number, cal_date=session.cal_date,
                    due_date=session.due_date, freq_range_hz=(lo, hi), af_freq_hz=f,
                    af_db_per_m=tuple(round(p.af_db_per_m, 2) + 0.0 for p in pts), uncertainties=us, source="")
-    return AfCalibration(session, bench, tuple(pts), tuple(buds), notes, base, cert, left_out)
+    return cert
 
 
 def summary(cal: AfCalibration) -> dict:
     """The results as data (the CLI's --json)."""
     prev = af_db_per_m(cal.base, [p.freq_hz for p in cal.points])
-    return {"certificate_number": cal.certificate.certificate_number, "procedure": "dipole-af",
+    def extra(p):
+        if cal.method == "substitution":
+            return {"ref_af_db_per_m": p.af_ref_db_per_m, "ratio_db": p.ratio_db}
+        return {"e_v_per_m": p.e_v_per_m, "port_dbuv": p.port_dbuv}
+    return {"certificate_number": cal.certificate.certificate_number, "procedure": "dipole-af", "method": cal.method,
             "points": [{"freq_hz": p.freq_hz, "af_db_per_m": p.af_db_per_m, "u_expanded_db": b.u_expanded_db,
-                        "k": b.k, "u_a_db": p.u_a_db, "e_v_per_m": p.e_v_per_m, "port_dbuv": p.port_dbuv,
-                        "previous_af_db_per_m": float(pv)}
+                        "k": b.k, "u_a_db": p.u_a_db, **extra(p), "previous_af_db_per_m": float(pv)}
                        for p, b, pv in zip(cal.points, cal.budgets, prev)],
             "u_antenna_factor_db": next(c.value for c in cal.certificate.uncertainties if c.name == "antenna_factor"),
             "base_certificate": cal.base.certificate_number, "left_out_freq_hz": list(cal.left_out_freq_hz)}
@@ -157,11 +193,12 @@ def render(cal: AfCalibration, template_dir=None) -> str:
                    *([("condition on receipt", s.item_condition)] if s.item_condition else []),
                    *([("received", s.received_date.isoformat())] if s.received_date else [])],
         method_rows=[
-            ("method", "standard field: transmitting antenna of known gain, net power measured, far field"),
-            ("relation", f"E = sqrt(Z0 P G / (4 pi)) / d, Z0 = {Z0_OHM:.3f} ohm; AF = E / V into 50 ohm"),
-            ("distance", f"{bn.distance_m:g} m on boresight; far field taken as d >= 2 D^2 / lambda and d >= lambda, "
-                         f"D = {bn.largest_dimension_m:g} m"),
-            ("field", f"about {bn.field_v_per_m:g} V/m at each frequency (set from the net power, then measured)"),
+            *(_method_rows(cal) if cal.method == "substitution" else [
+                ("method", "standard field: transmitting antenna of known gain, net power measured, far field"),
+                ("relation", f"E = sqrt(Z0 P G / (4 pi)) / d, Z0 = {Z0_OHM:.3f} ohm; AF = E / V into 50 ohm"),
+                ("distance", f"{bn.distance_m:g} m on boresight; far field taken as d >= 2 D^2 / lambda and d >= "
+                             f"lambda, D = {bn.largest_dimension_m:g} m"),
+                ("field", f"about {bn.field_v_per_m:g} V/m at each frequency (set from the net power, then measured)")]),
             ("analyser", f"RBW {bn.rbw_hz:g} Hz, span {bn.span_hz:g} Hz, {bn.points} points, rms detector; "
                          "the tone's level at its peak"),
             *([("procedure", s.procedure)] if s.procedure else []),
@@ -189,16 +226,39 @@ def render(cal: AfCalibration, template_dir=None) -> str:
                           f"approximately {coverage_probability_pct(wb.k):.0f} %, evaluated following JCGM 100:2008 "
                           f"(GUM). The certificate file states U = {u_af:.2f} dB for the antenna factor, the largest "
                           f"over the frequencies. The budget at {cal.points[worst].freq_hz / 1e6:g} MHz (the largest U) "
-                          "follows; at the other frequencies only the repeatability and the generator stability "
-                          "differ."),
+                          + ("follows; at the other frequencies only the repeatability differs."
+                             if cal.method == "substitution" else
+                             "follows; at the other frequencies only the repeatability and the generator stability "
+                             "differ.")),
         budget_rows=[(r.name, f"{r.value:.3f}", r.distribution, f"{r.divisor:.3f}", f"{r.sensitivity:g}",
                       f"{r.u_db:.3f}", n) for r, n in zip(wb.rows, cal.notes)]
         + [("combined standard uncertainty u_c", "", "", "", "", f"{wb.u_c_db:.3f}", ""),
            (f"expanded uncertainty U (k = {wb.k:g})", "", "", "", "", f"{wb.u_expanded_db:.3f}",
             f"coverage probability about {coverage_probability_pct(wb.k):.0f} %")],
-        traceability_text=("The standard field was set from the net power measured with the reference standards below "
-                           "and the transmitting antenna's calibrated gain. Each was calibrated under the certificate "
-                           "named and was within its calibration period on the date of calibration; through them the "
-                           "results are metrologically traceable to the International System of Units (SI)."),
+        traceability_text=(
+            (f"The field was measured with the reference antenna {cal.sub.ref_name} (certificate "
+             f"{cal.sub.ref_certificate}) and the antenna under calibration was compared with it in the same field; "
+             "the net power was monitored with the reference standards below. Each was calibrated under the "
+             "certificate named and was within its calibration period on the date of calibration; through them the "
+             "results are metrologically traceable to the International System of Units (SI).")
+            if cal.method == "substitution" else
+            ("The standard field was set from the net power measured with the reference standards below "
+             "and the transmitting antenna's calibrated gain. Each was calibrated under the certificate "
+             "named and was within its calibration period on the date of calibration; through them the "
+             "results are metrologically traceable to the International System of Units (SI).")),
         reference_rows=[(r.name, r.certificate_number, r.calibrated_by or "-", r.due_date.isoformat())
                         for r in s.references])
+
+
+def _method_rows(cal: AfCalibration) -> list[tuple[str, str]]:
+    """The method table of a substitution certificate."""
+    bn, sub = cal.bench, cal.sub
+    return [
+        ("method", "substitution: a reference antenna of known antenna factor measures the field, then the antenna "
+                   "under calibration replaces it at the same place in the same field"),
+        ("relation", "AF = AF_ref * V_ref / V (into 50 ohm), each voltage referred to the net power into the "
+                     "transmitting antenna read with it; both antennas through the same cable to the analyser"),
+        ("reference antenna", f"{sub.ref_name}, certificate {sub.ref_certificate}; its antenna factor interpolated "
+                              "linearly in log-frequency"),
+        ("set-up", f"transmitting antenna at {bn.distance_m:g} m; about {bn.field_v_per_m:g} V/m at each frequency "
+                   "(set from the net power, not relied on)")]

@@ -160,3 +160,113 @@ def af_budget(point: AfPoint, inputs: AfBudgetInputs, distance_m: float, k: floa
          f"Type A, s(mean) of {point.n} repeats (JCGM 100:2008 4.2.3)"),
     ]
     return combine([c for c, _ in rows], k=k), tuple(n for _, n in rows)
+
+
+# -- substitution (reference-antenna) method ------------------------------------------------------------------
+#
+# A reference antenna of known antenna factor stands in a field and its port voltage V_ref is read; the antenna
+# under test then replaces it at the same place in the same field and gives V_dut: AF_dut = AF_ref * V_ref / V_dut,
+# in dB AF_dut = AF_ref + V_ref - V_dut. Both antennas feed the analyser through the same cable, so its loss
+# cancels. The field is the same only as far as the net power into the transmitting antenna is the same: each
+# voltage is referred to the net power read with it (E ~ sqrt(P), so a field in dB moves as the power in dB):
+# AF_dut = AF_ref + (V_ref - P_ref) - (V_dut - P_dut), all in dB.
+
+
+@dataclass(frozen=True)
+class SubReading:
+    """One repeat of the substitution at one frequency: the reference antenna's and the antenna under test's
+    tone levels (dBm at the analyser) and the net power into the transmitting antenna with each (dBm)."""
+
+    freq_hz: float
+    repeat: int
+    ref_net_dbm: float
+    ref_dbm: float
+    dut_net_dbm: float
+    dut_dbm: float
+
+
+def substitution_af_db_per_m(af_ref_db_per_m, ref_dbm, dut_dbm, ref_net_dbm=0.0, dut_net_dbm=0.0):
+    """AF of the antenna under test from the reference antenna's: AF_ref + (V_ref - P_ref) - (V_dut - P_dut), dB."""
+    return (np.asarray(af_ref_db_per_m, dtype=float) + (np.asarray(ref_dbm, dtype=float) - ref_net_dbm)
+            - (np.asarray(dut_dbm, dtype=float) - dut_net_dbm))
+
+
+@dataclass(frozen=True)
+class SubPoint:
+    """The substituted antenna factor at one frequency from its repeats."""
+
+    freq_hz: float
+    n: int
+    af_ref_db_per_m: float      # the reference antenna's AF used (from its certificate)
+    ratio_db: float             # mean of V_ref - V_dut, each referred to its net power (dB)
+    power_change_db: float      # largest |P_dut - P_ref| over the repeats (how far the field moved, corrected)
+    af_db_per_m: float          # mean of the repeats' AF
+    u_a_db: float               # experimental standard deviation of the mean (JCGM 100:2008 4.2.3)
+
+
+def sub_point(readings, af_ref_db_per_m: float) -> SubPoint:
+    """AF at one frequency from the repeats of the substitution."""
+    rs = list(readings)
+    if not rs or len({r.freq_hz for r in rs}) != 1:
+        raise ValueError("sub_point needs one or more readings at one frequency")
+    ratio = np.array([(r.ref_dbm - r.ref_net_dbm) - (r.dut_dbm - r.dut_net_dbm) for r in rs])
+    af = af_ref_db_per_m + ratio
+    n = len(rs)
+    u_a = float(np.std(af, ddof=1) / math.sqrt(n)) if n > 1 else float("nan")
+    change = max(abs(r.dut_net_dbm - r.ref_net_dbm) for r in rs)
+    return SubPoint(rs[0].freq_hz, n, float(af_ref_db_per_m), float(np.mean(ratio)), float(change),
+                    float(np.mean(af)), u_a)
+
+
+@dataclass(frozen=True)
+class SubBudgetInputs:
+    """The lab's stated uncertainties of the substitution set-up (example values; a lab states its own)."""
+
+    ref_af_db: float = 0.6                 # reference antenna's AF, expanded (k = 2), from its certificate
+    positioning_db: float = 0.3            # one antenna replacing the other at the same place: rectangular half-width
+    gamma_ref_antenna: float = 0.2         # |reflection coefficient| of the reference antenna
+    gamma_dut_antenna: float = 0.3         # of the antenna under test
+    gamma_analyser: float = 0.1            # of the analyser input (with its attenuator)
+    analyser_linearity_db: float = 0.1     # the analyser's error on the ratio of two levels: rectangular half-width
+    power_normalisation_db: float = 0.02   # the power meter's error on the ratio of the two net powers: rectangular
+
+    def replace(self, overrides: dict) -> "SubBudgetInputs":
+        """These inputs with the named ones replaced; unknown names are refused (ValueError)."""
+        from dataclasses import fields, replace
+
+        known = {f.name for f in fields(self)}
+        bad = sorted(set(overrides) - known)
+        if bad:
+            raise ValueError(f"unknown budget input(s) {', '.join(bad)} (known: {', '.join(sorted(known))})")
+        for k, v in overrides.items():
+            if not (math.isfinite(v) and v >= 0):
+                raise ValueError(f"budget input {k} = {v!r}: must be a finite number >= 0")
+        return replace(self, **{k: float(v) for k, v in overrides.items()})
+
+
+def sub_budget(point: SubPoint, inputs: SubBudgetInputs, k: float = 2.0) -> tuple[Budget, tuple[str, ...]]:
+    """GUM budget (JCGM 100:2008) of one substituted AF value, in dB with a note per row.
+
+    The model in dB is a sum, AF_dut = AF_ref + (V_ref - P_ref) - (V_dut - P_dut), so every input stated in dB
+    has sensitivity +/-1 (5.1.3) and the contributions add in quadrature (5.1.2). The two mismatches are
+    separate terms (each antenna meets the analyser input on its own); the cable's loss cancels and is not a
+    term; the analyser's absolute level accuracy cancels too, leaving its linearity over the ratio.
+    """
+    v = inputs
+    rows = [
+        (Component("reference antenna factor", v.ref_af_db, "dB", "normal", 2.0),
+         "from the reference antenna's certificate (k = 2); c = 1"),
+        (Component("repeatability", point.u_a_db if math.isfinite(point.u_a_db) else 0.0, "dB", "normal", 1.0),
+         f"Type A, s(mean) of {point.n} repeats (JCGM 100:2008 4.2.3)"),
+        (Component("positioning", v.positioning_db, "dB", "rectangular"),
+         "the antenna under test at the reference antenna's place: field non-uniformity and placement"),
+        (Component("mismatch, reference antenna", mismatch_limit_db(v.gamma_ref_antenna, v.gamma_analyser),
+                   "dB", "u-shaped"), f"|G| {v.gamma_ref_antenna:g} and {v.gamma_analyser:g}"),
+        (Component("mismatch, antenna under test", mismatch_limit_db(v.gamma_dut_antenna, v.gamma_analyser),
+                   "dB", "u-shaped"), f"|G| {v.gamma_dut_antenna:g} and {v.gamma_analyser:g}"),
+        (Component("analyser linearity", v.analyser_linearity_db, "dB", "rectangular"),
+         "on the ratio V_ref / V_dut (the absolute level cancels)"),
+        (Component("net power normalisation", v.power_normalisation_db, "dB", "rectangular"),
+         f"power meter on the ratio P_dut / P_ref; the field moved {point.power_change_db:.3f} dB at most"),
+    ]
+    return combine([c for c, _ in rows], k=k), tuple(n for _, n in rows)

@@ -119,7 +119,8 @@ def _selective(c: _Ctx, d: dict, what: str) -> SelectiveSpec:
     except MeterlinkError as exc:
         c.fail(what, str(exc))
     return SelectiveSpec(str(p), c.text(d, "antenna_cert", what, required=True), antenna, c.text(d, "analyser", what),
-                         tuple((k, tuple(sorted(v.items()))) for k, v in ex.items()),
+                         tuple((k, tuple(sorted((kk, tuple(vv) if isinstance(vv, list) else vv) for kk, vv in v.items())))
+                               for k, v in ex.items()),
                          c.num(d, "analyser_level_db", what, default=0.5, lo=0.0, hi=10.0),
                          c.num(d, "sweep_time_s", what, default=0.1, positive=True, hi=3600.0))
 

@@ -80,15 +80,83 @@ def load_bands(path) -> list[Band]:
 #: extrapolation methods a plan may declare for a swept band, and the inputs each takes
 _METHODS = {"gsm-bcch": ({"n_trx"}, {"actual_max_factor", "actual_max_source"}),
             "power-ratio": ({"p_max_w", "p_measured_w", "source"}, set())}
-#: pilot-based methods that need the pilot's own level (a decoder), which a swept channel power does not give
-_PILOT = {"umts-cpich": "the CPICH code power", "lte-rs": "the reference signal per resource element",
-          "nr-ssb": "the SSS per resource element of the SS/PBCH block"}
+#: pilot-based methods: they scale the pilot's own level, which needs a decoder and which a swept channel power is
+#: not; they apply only with that level declared as measured by a decoder-capable instrument (PILOT_KEYS)
+_PILOT = {"umts-cpich": ("UMTS", "the CPICH code power", {"p_max_w", "p_cpich_w"}, set()),
+          "lte-rs": ("LTE", "the reference signal per resource element", {"n_subcarriers"}, {"data_to_rs_db"}),
+          "nr-ssb": ("NR", "the SSS per resource element of the SS/PBCH block", {"n_subcarriers"},
+                     {"data_to_sss_db", "tdd_downlink_fraction", "beam_gain_ratio_db"})}
+#: the pilot as a decoder-capable instrument measured it at the point: its field (V/m; for lte-rs one value per
+#: transmitting antenna port may be given, added in power), its expanded uncertainty (k = 2, dB) and the instrument
+PILOT_KEYS = {"pilot_e_v_per_m", "pilot_u_db", "pilot_instrument"}
+_ACTUAL_MAX = {"actual_max_factor", "actual_max_source"}
+PILOT_CAVEAT = ("the maximum is the pilot's field, measured by a decoder-capable instrument and declared with the "
+                "point, scaled by the factor; the swept channel power is the field measured now")
+LTE_SUBCARRIER_HZ = 15e3
 CARRIER_MAX_HZ = 300e3
+
+
+def _pilot_inputs(d: dict, where: str, method: str) -> dict:
+    """The declared pilot measurement, checked: positive field(s), an uncertainty in (0, 20] dB, the instrument."""
+    from meterlink.physics.extrapolation import ExtrapolationError
+
+    e = d["pilot_e_v_per_m"]
+    many = isinstance(e, (list, tuple))
+    if many and method != "lte-rs":
+        raise ExtrapolationError(f"{where}: pilot_e_v_per_m is one field for {method} (a list is for the "
+                                 "antenna ports of lte-rs)")
+    vals = e if many else [e]
+    if not vals or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or not
+                       0 < v < 1e4 for v in vals):
+        raise ExtrapolationError(f"{where}: pilot_e_v_per_m must be a field in V/m above 0 (or, for lte-rs, a "
+                                 "list of one per antenna port)")
+    u = d["pilot_u_db"]
+    if isinstance(u, bool) or not isinstance(u, (int, float)) or not math.isfinite(u) or not 0 < u <= 20:
+        raise ExtrapolationError(f"{where}: pilot_u_db (expanded uncertainty of the pilot, k = 2) must be in 0..20 dB")
+    who = d["pilot_instrument"]
+    if not isinstance(who, str) or not who.strip():
+        raise ExtrapolationError(f"{where}: pilot_instrument must name the decoder-capable instrument (and its "
+                                 "calibration) that measured the pilot")
+    total = math.sqrt(sum(float(v) ** 2 for v in vals))
+    out = {"pilot_e_v_per_m": total, "pilot_u_db": float(u), "pilot_instrument": who.strip()[:200]}
+    if many:
+        out["pilot_e_per_port_v_per_m"] = [float(v) for v in vals]
+    return out
+
+
+def _pilot_factor(band: Band, method: str, d: dict, where: str):
+    from dataclasses import replace
+
+    from meterlink.physics.extrapolation import ExtrapolationError, lte_crs, nr_ssb, umts_cpich
+
+    tech = _PILOT[method][0]
+    if band.technology and band.technology.upper() != tech:
+        raise ExtrapolationError(f"{where}: {method} is for {tech}, and the band file gives technology "
+                                 f"{band.technology!r}")
+    am = {"actual_max_factor": d.get("actual_max_factor"), "actual_max_source": str(d.get("actual_max_source", ""))}
+    if method == "umts-cpich":
+        f = umts_cpich(d["p_max_w"], d["p_cpich_w"], **am)
+    elif method == "lte-rs":
+        n = d["n_subcarriers"]
+        if band.bandwidth_hz > 0 and n * LTE_SUBCARRIER_HZ > band.bandwidth_hz * 1.0001:
+            raise ExtrapolationError(f"{where}: {n} subcarriers of 15 kHz ({n * LTE_SUBCARRIER_HZ / 1e6:g} MHz) do not "
+                                     f"fit in the band's {band.bandwidth_hz / 1e6:g} MHz")
+        f = lte_crs(n, data_to_rs_db=float(d.get("data_to_rs_db", 0.0)), **am)
+    else:
+        f = nr_ssb(d["n_subcarriers"], data_to_sss_db=float(d.get("data_to_sss_db", 0.0)),
+                   tdd_downlink_fraction=float(d.get("tdd_downlink_fraction", 1.0)),
+                   beam_gain_ratio_db=float(d.get("beam_gain_ratio_db", 0.0)), **am)
+    return replace(f, method=f.method + " (pilot from a decoder-capable instrument)",
+                   inputs={**f.inputs, **_pilot_inputs(d, where, method)}, caveats=f.caveats + (PILOT_CAVEAT,))
 
 
 def check_extrapolation(spec: dict, bands) -> dict:
     """Band name -> ExtrapolationFactor from a plan's declarations; a one-line error names the band and the
-    problem (unknown band or method, missing or unknown input, a method the swept band cannot support)."""
+    problem (unknown band or method, missing or unknown input, a method the swept band cannot support).
+
+    A pilot-based method (umts-cpich, lte-rs, nr-ssb) applies only with the pilot's level declared as measured by
+    a decoder-capable instrument (PILOT_KEYS); its factor then holds that pilot, and the band's field at maximum
+    is the pilot's field scaled by the factor (assess_point)."""
     from meterlink.physics.extrapolation import ExtrapolationError, gsm_bcch, power_ratio
 
     by_name = {b.name: b for b in bands}
@@ -98,20 +166,27 @@ def check_extrapolation(spec: dict, bands) -> dict:
         if name not in by_name:
             raise ExtrapolationError(f"{where}: no such band in the band file (bands: {', '.join(by_name)})")
         method = d.get("method")
-        if method in _PILOT:
-            raise ExtrapolationError(f"{where}: {method} scales {_PILOT[method]}, which a swept channel power does "
-                                     "not give (it needs a decoder); declare method \"power-ratio\" with the "
-                                     "operator's powers instead")
-        if method not in _METHODS:
-            raise ExtrapolationError(f"{where}: method {method!r} is not one of {', '.join(_METHODS)}")
-        need, optional = _METHODS[method]
         keys = set(d) - {"method"}
+        if method in _PILOT:
+            if not keys & PILOT_KEYS:
+                raise ExtrapolationError(f"{where}: {method} scales {_PILOT[method][1]}, which a swept channel power "
+                                         "does not give (it needs a decoder): declare the pilot as a decoder-capable "
+                                         "instrument measured it (pilot_e_v_per_m, pilot_u_db, pilot_instrument), or "
+                                         "method \"power-ratio\" with the operator's powers")
+            need, optional = _PILOT[method][2] | PILOT_KEYS, _PILOT[method][3] | _ACTUAL_MAX
+        elif method in _METHODS:
+            need, optional = _METHODS[method]
+        else:
+            raise ExtrapolationError(f"{where}: method {method!r} is not one of "
+                                     f"{', '.join(list(_METHODS) + list(_PILOT))}")
         if need - keys or keys - need - optional:
             bad = sorted(need - keys) or sorted(keys - need - optional)
             raise ExtrapolationError(f"{where}: {'missing' if need - keys else 'unknown'} input {bad[0]!r} "
                                      f"(method {method} takes {', '.join(sorted(need | optional))})")
         try:
-            if method == "gsm-bcch":
+            if method in _PILOT:
+                out[name] = _pilot_factor(by_name[name], method, d, where)
+            elif method == "gsm-bcch":
                 if by_name[name].bandwidth_hz > CARRIER_MAX_HZ:
                     raise ExtrapolationError(f"{where}: gsm-bcch needs the BCCH carrier swept alone (bandwidth at "
                                              f"most {CARRIER_MAX_HZ / 1e3:g} kHz), not a {by_name[name].bandwidth_hz / 1e6:g} MHz band")
@@ -122,6 +197,22 @@ def check_extrapolation(spec: dict, bands) -> dict:
         except (TypeError, ValueError):
             raise ExtrapolationError(f"{where}: inputs must be numbers (and the source text)") from None
     return out
+
+
+def load_extrapolation(path, bands) -> dict:
+    """check_extrapolation of a TOML file of [\"BAND NAME\"] tables (the same tables as a plan's
+    [point.extrapolation."BAND NAME"]); each failure is one line naming the file."""
+    where = str(path)
+    try:
+        doc = tomllib.loads(read_input_text(path, "extrapolation", BandFileError))
+    except tomllib.TOMLDecodeError as exc:
+        raise BandFileError(f"{where}: not valid TOML ({exc})".replace("\n", " ")) from None
+    if not doc or not all(isinstance(v, dict) for v in doc.values()):
+        raise BandFileError(f"{where}: expected one table per band name, e.g. [\"Pole LTE 800\"] with method = ...")
+    try:
+        return check_extrapolation(doc, bands)
+    except MeterlinkError as exc:
+        raise BandFileError(f"{where}: {exc}") from None
 
 
 @dataclass
@@ -233,9 +324,33 @@ def measure_point(analyser, bands, cert, *, antenna: str = "isotropic", orient=N
     return results
 
 
+def field_at_max(r: BandResult, f) -> tuple[float, float, list[str]]:
+    """A band's field at maximum, the expanded uncertainty (dB) it carries, and notes.
+
+    With a declared pilot (a pilot-based method) the maximum is the pilot's field times sqrt(F), with the pilot's
+    own uncertainty; it is never taken below the channel field measured now (a load cannot go above the maximum),
+    and a pilot above the whole channel beyond both uncertainties is flagged (another cell, another point, or a
+    mistyped value). Otherwise the measured channel field times sqrt(F), with the band's own uncertainty."""
+    if "pilot_e_v_per_m" not in f.inputs:
+        return r.e_v_per_m * f.field_factor, r.u_expanded_db, []
+    pilot, u_p = float(f.inputs["pilot_e_v_per_m"]), float(f.inputs["pilot_u_db"])
+    notes = []
+    if not r.e_v_per_m > 0 or 20 * math.log10(pilot / r.e_v_per_m) > r.u_expanded_db + u_p:
+        notes.append(f"{r.name}: the declared pilot ({pilot:.4g} V/m) exceeds the channel field swept here "
+                     f"({r.e_v_per_m:.4g} V/m) beyond both uncertainties: check the pilot's cell, point and value")
+    e_max = pilot * f.field_factor
+    if e_max < r.e_v_per_m:
+        notes.append(f"{r.name}: the pilot scaled to maximum ({e_max:.4g} V/m) is below the channel field measured "
+                     f"now ({r.e_v_per_m:.4g} V/m); the measured field is kept as the maximum (check the declared "
+                     "inputs)")
+        return r.e_v_per_m, r.u_expanded_db, notes
+    return e_max, u_p, notes
+
+
 def assess_point(results: list[BandResult], standard: str, tier: str, factors=None) -> dict:
     """Per-band E and exposure ratio, total by the standard's summation rule, shares; with extrapolation
-    factors (name -> ExtrapolationFactor) the same at maximum traffic beside the measured values."""
+    factors (name -> ExtrapolationFactor) the same at maximum traffic beside the measured values (a band with a
+    declared pilot takes its maximum from the pilot, field_at_max)."""
     from meterlink.physics.exposure import multi_frequency
 
     f = np.array([r.freq_hz for r in results])
@@ -246,9 +361,15 @@ def assess_point(results: list[BandResult], standard: str, tier: str, factors=No
            "total_exposure_ratio": mf.total, "governing": list(mf.governing) if mf.governing else None,
            "messages": list(mf.messages), "cautions": SAFETY_LINE, "bands": []}
     ex = None
+    at_max = {}
     if factors:
-        fe = np.array([factors[n].field_factor if n in factors else 1.0 for n in names])
-        ex = multi_frequency(f, standard=standard, tier=tier, e_v_per_m=e * fe, labels=names)
+        for r in results:
+            if r.name in factors:
+                e_x, u_x, notes = field_at_max(r, factors[r.name])
+                at_max[r.name] = (e_x, u_x)
+                out["messages"].extend(notes)
+        e_x = np.array([at_max[n][0] if n in at_max else e[i] for i, n in enumerate(names)])
+        ex = multi_frequency(f, standard=standard, tier=tier, e_v_per_m=e_x, labels=names)
         out["total_exposure_ratio_at_max"] = ex.total
     for i, r in enumerate(results):
         row = {k: v for k, v in asdict(r).items() if k != "traces"}
@@ -258,7 +379,7 @@ def assess_point(results: list[BandResult], standard: str, tier: str, factors=No
         row["e_interval_v_per_m"] = [r.e_v_per_m * 10 ** (-u / 20), r.e_v_per_m * 10 ** (u / 20)]
         if ex is not None and r.name in factors:
             row["extrapolation"] = factors[r.name].record()
-            row["e_at_max_v_per_m"] = r.e_v_per_m * factors[r.name].field_factor
+            row["e_at_max_v_per_m"], row["u_at_max_db"] = at_max[r.name]
             row["exposure_ratio_at_max"] = float(ex.emitter_ratio[i])
         out["bands"].append(row)
     return out

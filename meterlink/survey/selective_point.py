@@ -35,9 +35,10 @@ def point_result(plan: SurveyPlan, p: Point, assessed: dict, ref, warnings=(), t
     e = np.array([b["e_v_per_m"] for b in bands])
     e_x = np.array([b.get("e_at_max_v_per_m", b["e_v_per_m"]) for b in bands])
     u = max(b["u_expanded_db"] for b in bands)
+    u_x = max(b.get("u_at_max_db", b["u_expanded_db"]) for b in bands)   # a declared pilot carries its own
     ratio = float(assessed["total_exposure_ratio"])
     ratio_x = float(assessed.get("total_exposure_ratio_at_max", ratio))
-    ver, ver_x = decide_ratio(ratio, u, plan.rule), decide_ratio(ratio_x, u, plan.rule)
+    ver, ver_x = decide_ratio(ratio, u, plan.rule), decide_ratio(ratio_x, u_x, plan.rule)
     ems = tuple(Emitter(b["name"], float(b["freq_hz"]), float(b["e_v_per_m"]),
                         float(b.get("e_at_max_v_per_m", b["e_v_per_m"])), float(b["exposure_ratio"]), float(b["share"]))
                 for b in bands)
