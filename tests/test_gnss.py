@@ -167,3 +167,15 @@ def test_offset_is_the_median_and_its_spread_the_scaled_mad():
     off = estimate_offset([0.30, 0.31, 0.29, 0.32, 2.5])
     assert off.offset_s == pytest.approx(0.31) and off.spread_s == pytest.approx(0.014826) and off.n == 5
     assert estimate_offset([]) is None
+
+
+def test_a_jump_between_fixes_is_not_interpolated():
+    # 100 m in 1 s is faster than the 30 m/s a carrier is taken to move: a reading 0.25 s after the
+    # first fix is placed at it, not 25 m along; accuracy hypot(4.5, 0.25 x 100) = 25.4018 m (by hand)
+    track = [_fix(1000.0, 0.0, 0.0), _fix(1001.0, 100.0, 0.0)]
+    p = position_on_track(track, 1000.25, max_gap_s=2.0)
+    x, _ = to_local_m(p.lat_deg, p.lon_deg, 0.0, 0.0)
+    assert float(x) == pytest.approx(0.0, abs=1e-6) and p.accuracy_m == pytest.approx(25.4018, abs=1e-4)
+    p = position_on_track(track, 1000.8, max_gap_s=2.0)
+    x, _ = to_local_m(p.lat_deg, p.lon_deg, 0.0, 0.0)
+    assert float(x) == pytest.approx(100.0, abs=1e-6) and p.accuracy_m == pytest.approx(20.5, abs=1e-6)   # hypot(4.5, 20)

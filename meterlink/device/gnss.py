@@ -40,6 +40,10 @@ _MAX_LINE = 256          # NMEA 0183 allows 82 characters; anything longer witho
 #: The fastest a surveyor carrying the probe is taken to move (a brisk walk), m/s: between two fixes
 #: the carrier may stray from the straight line by at most this speed x the time to the nearer fix.
 CARRY_SPEED_M_S = 2.0
+#: Two fixes farther apart than this speed allows (108 km/h) are a jump, not a walk or a drive: a
+#: receiver's outlier, or a probe put down elsewhere: a reading between them is not placed on the
+#: straight line but at the nearer fix, m/s.
+JUMP_SPEED_M_S = 30.0
 #: Fixes (arrival - fix time) kept for the offset estimate: the last two minutes at 1 Hz.
 OFFSET_WINDOW = 120
 #: |offset| above which a survey says in an event that GNSS time and the readings' time disagree, s.
@@ -110,11 +114,14 @@ def _max_opt(a, b):
 
 
 def position_on_track(track, t_s: float, *, max_gap_s: float, timing_u_s: float = 0.0,
-                      carry_speed_m_s: float = CARRY_SPEED_M_S) -> Position | None:
+                      carry_speed_m_s: float = CARRY_SPEED_M_S,
+                      jump_speed_m_s: float = JUMP_SPEED_M_S) -> Position | None:
     """The position at GNSS time t_s from fixes sorted by fix_utc (pure).
 
-    Between two fixes at most max_gap_s apart: linear interpolation. Else the nearer fix, if it is
-    at most max_gap_s / 2 away. Else None: a position that far from any fix is not given out.
+    Between two fixes at most max_gap_s apart: linear interpolation, unless they lie farther apart
+    than jump_speed_m_s allows (a jump): then the nearer of the two, its accuracy grown by the share
+    of the jump it may be off. Else the nearer fix, if it is at most max_gap_s / 2 away. Else
+    None: a position that far from any fix is not given out.
     The accuracy combines (root sum of squares) the larger of the fixes' own estimates, how far the
     carrier may have strayed from the straight line (carry_speed_m_s x time to the nearer fix), and
     the timing: the speed between the fixes x timing_u_s (the spread of the offset estimate)."""
@@ -134,8 +141,13 @@ def position_on_track(track, t_s: float, *, max_gap_s: float, timing_u_s: float 
         else:
             alt = f1.alt_m if f1.alt_m is not None else f2.alt_m
         x, y = to_local_m(f2.lat_deg, f2.lon_deg, f1.lat_deg, f1.lon_deg)
-        speed = math.hypot(float(x), float(y)) / dt if dt > 0 else 0.0
+        d = math.hypot(float(x), float(y))
+        speed = d / dt if dt > 0 else 0.0
         near = min(t_s - f1.fix_utc, f2.fix_utc - t_s)
+        if speed > jump_speed_m_s:       # the nearer fix; wrong by the jump if the other side holds
+            f = f1 if w <= 0.5 else f2
+            u = None if f.accuracy_m is None else math.hypot(f.accuracy_m, min(w, 1.0 - w) * d)
+            return Position(f.lat_deg, f.lon_deg, f.alt_m, u, t_s, f.quality, f.n_sats, f.hdop, dt)
         acc = _max_opt(f1.accuracy_m, f2.accuracy_m)
         u = None if acc is None else math.sqrt(acc ** 2 + (carry_speed_m_s * near) ** 2 + (speed * timing_u_s) ** 2)
         return Position(lat, lon, alt, u, t_s, min(f1.quality, f2.quality), _min_opt(f1.n_sats, f2.n_sats),
