@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import json
 import math
+import textwrap
 from dataclasses import dataclass, field
 
 from meterlink.cautions import SAFETY_LINE
@@ -107,9 +108,21 @@ def _nice(span_m: float) -> float:
     return next(m * p for m in (5, 2, 1) if m * p <= raw)
 
 
+#: characters of an 8.5 pt title line that fit above the map's axes (8 in figure, colour bar beside)
+_TITLE_CHARS = 90
+
+
 def _safe(s, n: int = 28) -> str:
     s = str(s)
     return (s[:n - 1] + "…" if len(s) > n else s).replace("$", r"\$")
+
+
+def map_title(sv: dict, fr: SiteFrame) -> str:
+    """The map's title: the survey's title (or site name) and the origin note, wrapped to the width
+    of the map (_TITLE_CHARS): a line wider than the figure would run past its edges."""
+    head = sv.get("title") or (sv.get("site") or {}).get("name") or "survey"
+    return "\n".join(textwrap.wrap(_safe(head, 160), _TITLE_CHARS)
+                     + textwrap.wrap(f"{fr.origin_note}; equirectangular projection, local metres", _TITLE_CHARS))
 
 
 def survey_map_png(sv: dict, frame: SiteFrame | None = None) -> bytes | None:
@@ -180,7 +193,6 @@ def survey_map_png(sv: dict, frame: SiteFrame | None = None) -> bytes | None:
                Line2D([], [], marker="^", ls="", color="#1b2f5c", label="declared source"),
                Line2D([], [], marker="+", ls="", color="black", label="origin")]
     ax.legend(handles=handles, loc="upper left", fontsize=7, framealpha=0.85)
-    ax.set_title(_safe(sv["title"] or sv["site"].get("name", "survey"), 80)
-                 + f"\n{fr.origin_note}; equirectangular projection, local metres", fontsize=8.5)
+    ax.set_title(map_title(sv, fr), fontsize=8.5)
     fig.text(0.01, -0.01, SAFETY_LINE, fontsize=6.5, wrap=True, va="top")
     return figure_png(fig)
