@@ -41,7 +41,7 @@ class SiteFrame:
     lon0: float | None
     origin_note: str
     points: list[MapPoint] = field(default_factory=list)
-    track: list[tuple[float, float, float | None, int]] = field(default_factory=list)  # x, y, percent, point_no
+    track: list[tuple[float, float, float | None, int, int]] = field(default_factory=list)  # x, y, percent, point_no, used
     track_geo: list[tuple[float, float, float | None, float | None, float | None]] = field(default_factory=list)
     sources: list = field(default_factory=list)   # physics.prediction.Source, local metres
     declared: dict | None = None
@@ -97,7 +97,7 @@ def site_frame(sv: dict) -> SiteFrame:
         x, y = to_local_m(t["lat_deg"], t["lon_deg"], lat0, lon0)
         e = t["e_v_per_m"]
         pct = 100.0 * (e / e_ref) ** 2 if e is not None and math.isfinite(e) else None
-        fr.track.append((float(x), float(y), pct, t["point_no"]))
+        fr.track.append((float(x), float(y), pct, t["point_no"], int(t.get("used") or 0)))
         fr.track_geo.append((t["lat_deg"], t["lon_deg"], t.get("alt_m"), t.get("fix_utc"), pct))
     return fr
 
@@ -142,11 +142,12 @@ def survey_map_png(sv: dict, frame: SiteFrame | None = None) -> bytes | None:
     xs = [p.x_m for p in fr.points] + [t[0] for t in fr.track] + [s.x_m for s in fr.sources]
     ys = [p.y_m for p in fr.points] + [t[1] for t in fr.track] + [s.y_m for s in fr.sources]
     if fr.track:
-        seg: list = []           # the line joins the readings of one point; the walk between points is unknown
-        for i, t in enumerate(fr.track):
+        seg: list = []           # the line joins the used readings of one point; the walk between points is
+        for i, t in enumerate(fr.track):     # unknown, and a settling reading may still be from the last place
             seg.append(t)
-            if i + 1 == len(fr.track) or fr.track[i + 1][3] != t[3]:
-                ax.plot([u[0] for u in seg], [u[1] for u in seg], "-", color="#c8c8c8", lw=0.8, zorder=1)
+            if i + 1 == len(fr.track) or fr.track[i + 1][3:5] != t[3:5]:
+                if t[4]:
+                    ax.plot([u[0] for u in seg], [u[1] for u in seg], "-", color="#c8c8c8", lw=0.8, zorder=1)
                 seg = []
         ax.scatter([t[0] for t in fr.track], [t[1] for t in fr.track],
                    c=[percent_colour(t[2]) for t in fr.track], s=9, zorder=2, linewidths=0)
