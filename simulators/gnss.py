@@ -1,8 +1,9 @@
 """A simulated GNSS receiver on a second pty: GGA and RMC at 1 Hz of device time, walking the
 invented site in step with the simulated meter's probe.
 
-Positions come from a callable giving the probe's local site metres (x east, y north, z up); they
-are turned into latitude/longitude about an invented origin (equirectangular, the same formula as
+Positions come from a callable giving the probe's local site metres (x east, y north, z up) at the
+fix's own time (or now, for a callable without arguments); they are turned into latitude/longitude
+about an invented origin (equirectangular, the same formula as
 meterlink.device.gnss.from_local_m). Fault switches: garbage (bad checksums and noise), no_fix
 (quality 0, RMC status V), and vanish (the port disappears; it may come back after down_s).
 """
@@ -65,8 +66,10 @@ class SimulatedGnss:
     ties both to a SimulatedMeter so that the receiver is where the probe is."""
 
     def __init__(self, position, clock, *, origin=DEMO_ORIGIN, utc0: float | None = None, seed: int = 0,
-                 schedule=()):
+                 schedule=(), position_at=None, speed: float = 1.0):
         self.position, self.clock = position, clock
+        self.position_at = position_at      # t_s -> (x, y, z): where the receiver was at a fix's time
+        self.speed = float(speed)           # simulated seconds per host second, to wake in time for each fix
         self.lat0, self.lon0, self.alt0 = (float(v) for v in origin)
         self.utc0 = time.time() if utc0 is None else float(utc0)
         self.rng = np.random.default_rng(seed)
@@ -88,7 +91,7 @@ class SimulatedGnss:
         """A receiver carried with the probe of a SimulatedMeter, on that meter's device clock."""
         def pos():
             return meter.fw.spec.scene.path.position(meter.sim_time_s())
-        return cls(pos, meter.sim_time_s, **kw)
+        return cls(pos, meter.sim_time_s, position_at=meter.probe_position_at, speed=meter.speed, **kw)
 
     # -- lifecycle -----------------------------------------------------------------------------
     def start(self) -> "SimulatedGnss":
@@ -159,7 +162,8 @@ class SimulatedGnss:
                 setattr(self, kind, bool(e.get("on", True)))
 
     def _run(self) -> None:
-        while not self._stop.wait(0.005):
+        wait = 0.005
+        while not self._stop.wait(wait):
             with self._lock:
                 if self._master is None and self._up_at is not None and time.monotonic() >= self._up_at:
                     self._plug()
@@ -177,9 +181,11 @@ class SimulatedGnss:
                     except OSError as exc:
                         if exc.errno not in (errno.EAGAIN, errno.EIO):
                             raise
+                # a receiver sends its fix right after the epoch: wake then (at most every 5 ms of host time)
+                wait = min(0.005, max(0.0005, (self._next_s - float(self.clock())) / self.speed))
 
     def _epoch(self, t_s: float) -> bytes:
-        lat, lon, alt = self.geo(self.position())
+        lat, lon, alt = self.geo(self.position_at(t_s) if self.position_at is not None else self.position())
         data = gga_rmc(self.utc0 + t_s, lat, lon, alt, fix=not self.no_fix)
         self.sent["no_fix" if self.no_fix else "fixes"] += 1
         if self.garbage:

@@ -7,6 +7,7 @@ as a replugged USB adapter would. A background thread runs the firmware on an ac
 
 from __future__ import annotations
 
+import bisect
 import dataclasses
 import errno
 import os
@@ -56,6 +57,8 @@ class SimulatedMeter:
         self._up_at = None  # real monotonic time at which a disconnected port returns
         self._thread = None
         self._t0 = None
+        self._path0 = getattr(self.fw.spec.scene, "path", None)
+        self._moves: list[tuple[float, Path]] = []      # (simulated s, path from then on), for probe_position_at
         self._lost_bytes = 0
 
     # ----------------------------------------------------------------- lifecycle
@@ -133,7 +136,21 @@ class SimulatedMeter:
             self._walk = base
             path = base if position_m is None else Path.fixed([float(v) for v in position_m])
             self.fw.spec = dataclasses.replace(spec, scene=dataclasses.replace(spec.scene, path=path))
+            self._moves.append((self.fw.now_ms / 1000, path))     # the truth: this path from this instant on
             return int(self.fw.boot_count), int(self.fw.seq)
+
+    def probe_position_at(self, t_s: float):
+        """Where the probe was at simulated time t_s (x, y, z site metres): the scenario's path, or the
+        place of the last move_to before t_s. The truth a positioned reading is checked against."""
+        with self._lock:
+            moves = self._moves
+            i = bisect.bisect_right([m[0] for m in moves], float(t_s))
+            path = moves[i - 1][1] if i > 0 else self._path0
+            return path.position(float(t_s)) if path is not None else None
+
+    def sim_time_of_tick(self, tick_ms: int) -> float:
+        """Simulated seconds of a TICK of the current boot (readings' t_device_s x 1000)."""
+        return (int(tick_ms) - self.fw.tick_base + self.fw.boot_world_ms) / 1000
 
     @property
     def connected(self) -> bool:

@@ -105,3 +105,15 @@ def test_new_boot_never_maps_before_times_already_given_out():
     assert clock.utc_of(clock.unwrap(1010)) == 1501.0
     fresh = DeviceClock()
     assert fresh.sync(1, 0, 1000.0).utc0_s == 1000.0  # nothing given out yet: host time as it is
+
+
+def test_utc_at_host_inverts_the_fitted_arrivals_and_ignores_a_late_one():
+    # a device clock running 100 times faster than the host (a simulator), mapped at the handshake to
+    # utc0 = 1e9 s at tick 0; frames of device second d arrive at host second 10 + d/100, one of
+    # them 0.5 s late. Hand-worked: host 10.5 s is device second 50, so 1e9 + 50 s.
+    c = DeviceClock()
+    c.sync(1, 0, 1e9)
+    for d in range(0, 60, 2):
+        c.observe(10.0 + d / 100.0 + (0.5 if d == 30 else 0.0), d * 1000)
+    assert c.utc_at_host(10.5) == pytest.approx(1e9 + 50.0, abs=0.05)
+    assert DeviceClock().utc_at_host(10.0) is None          # no mapping yet

@@ -205,3 +205,15 @@ def test_kml_and_gpx_are_well_formed_with_their_namespaces(surveyed):
     pts = gpx.findall("g:trk/g:trkseg/g:trkpt", g)
     assert len(pts) >= 25 and all(p.find("g:time", g) is not None for p in pts)
     assert SAFETY_LINE in gpx.find("g:metadata/g:desc", g).text
+
+
+def test_map_title_lines_fit_the_map():
+    # a long survey title and the long origin note (no site position) are wrapped, not cut: every
+    # line fits the map's width and every word is there
+    from meterlink.survey.map import _TITLE_CHARS, SiteFrame, map_title
+    title = "Annual walk-round of the Brannock Tor transmitting site (invented), after the band III antenna change"
+    note = "origin: first GNSS position (50.651560, -3.813551); the plan gives no site latitude/longitude"
+    text = map_title({"title": title, "site": {"name": "x"}}, SiteFrame(50.65156, -3.813551, note))
+    lines = text.split("\n")
+    assert len(lines) >= 3 and all(len(line) <= _TITLE_CHARS for line in lines)
+    assert " ".join(lines) == f"{title} {note}; equirectangular projection, local metres"

@@ -8,8 +8,8 @@ import time
 
 import pytest
 
-from meterlink.device.gnss import (EARTH_RADIUS_M, GnssLink, SentenceError, UERE_M, from_local_m, nmea_checksum,
-                                   parse_sentence, to_local_m)
+from meterlink.device.gnss import (EARTH_RADIUS_M, Fix, GnssLink, SentenceError, UERE_M, estimate_offset,
+                                   from_local_m, nmea_checksum, parse_sentence, position_on_track, to_local_m)
 from meterlink.errors import LinkError
 from meterlink.simulators.gnss import SimulatedGnss
 
@@ -131,3 +131,51 @@ def test_missing_port_is_a_one_line_error(tmp_path):
     with pytest.raises(LinkError, match="GNSS receiver: cannot open port") as e:
         GnssLink(str(tmp_path / "no-such-receiver")).start()
     assert "\n" not in str(e.value)
+
+
+def _fix(t_s, x_m, y_m):
+    lat, lon = from_local_m(x_m, y_m, 0.0, 0.0)
+    return Fix(t_s, float(lat), float(lon), 100.0 + t_s - 1000.0, 1, 8, 0.9, 0.0)
+
+
+def test_position_interpolated_between_the_fixes_around_a_time():
+    track = [_fix(1000.0, 0.0, 0.0), _fix(1001.0, 2.0, 0.0), _fix(1004.0, 2.0, 6.0)]
+    # 2 m east in 1 s: at 1000.25 s a quarter of the way, 0.5 m east, altitude 100.25 m; accuracy
+    # sqrt((0.9 x 5)^2 + (2 m/s x 0.25 s)^2 + (2 m/s x 0.1 s)^2) = sqrt(20.25 + 0.25 + 0.04) = 4.53211 m
+    p = position_on_track(track, 1000.25, max_gap_s=2.0, timing_u_s=0.1)
+    x, y = to_local_m(p.lat_deg, p.lon_deg, 0.0, 0.0)
+    assert float(x) == pytest.approx(0.5, abs=1e-6) and float(y) == pytest.approx(0.0, abs=1e-6)
+    assert p.alt_m == pytest.approx(100.25) and p.fix_utc == 1000.25 and p.gap_s == 1.0
+    assert p.accuracy_m == pytest.approx(4.53211, abs=1e-5)
+    # on a fix: that fix, its own accuracy 4.5 m
+    p = position_on_track(track, 1001.0, max_gap_s=2.0, timing_u_s=0.1)
+    assert p.accuracy_m == pytest.approx(4.5) and p.gap_s == 0.0
+    # the fixes 3 s apart bridge no more than 2 s: 0.4 s after one, that fix, hypot(4.5, 2 x 0.4) =
+    # 4.57056 m; 1.5 s from both, no position; 0.5 s before the first, the first (hypot(4.5, 1) = 4.60977)
+    p = position_on_track(track, 1001.4, max_gap_s=2.0)
+    x, y = to_local_m(p.lat_deg, p.lon_deg, 0.0, 0.0)
+    assert float(x) == pytest.approx(2.0, abs=1e-6) and p.accuracy_m == pytest.approx(4.57056, abs=1e-5)
+    assert position_on_track(track, 1002.5, max_gap_s=2.0) is None
+    assert position_on_track(track, 999.5, max_gap_s=2.0).accuracy_m == pytest.approx(4.60977, abs=1e-5)
+    assert position_on_track(track, 1006.0, max_gap_s=2.0) is None
+    assert position_on_track([], 1000.0, max_gap_s=2.0) is None
+
+
+def test_offset_is_the_median_and_its_spread_the_scaled_mad():
+    # arrivals minus fix times 0.30, 0.31, 0.29, 0.32, 2.5 (one late): median 0.31; absolute
+    # deviations 0.01, 0, 0.02, 0.01, 2.19 -> MAD 0.01, spread 1.4826 x 0.01 = 0.014826 s
+    off = estimate_offset([0.30, 0.31, 0.29, 0.32, 2.5])
+    assert off.offset_s == pytest.approx(0.31) and off.spread_s == pytest.approx(0.014826) and off.n == 5
+    assert estimate_offset([]) is None
+
+
+def test_a_jump_between_fixes_is_not_interpolated():
+    # 100 m in 1 s is faster than the 30 m/s a carrier is taken to move: a reading 0.25 s after the
+    # first fix is placed at it, not 25 m along; accuracy hypot(4.5, 0.25 x 100) = 25.4018 m (by hand)
+    track = [_fix(1000.0, 0.0, 0.0), _fix(1001.0, 100.0, 0.0)]
+    p = position_on_track(track, 1000.25, max_gap_s=2.0)
+    x, _ = to_local_m(p.lat_deg, p.lon_deg, 0.0, 0.0)
+    assert float(x) == pytest.approx(0.0, abs=1e-6) and p.accuracy_m == pytest.approx(25.4018, abs=1e-4)
+    p = position_on_track(track, 1000.8, max_gap_s=2.0)
+    x, _ = to_local_m(p.lat_deg, p.lon_deg, 0.0, 0.0)
+    assert float(x) == pytest.approx(100.0, abs=1e-6) and p.accuracy_m == pytest.approx(20.5, abs=1e-6)   # hypot(4.5, 20)

@@ -195,13 +195,21 @@ def test_two_sources_at_half_their_limits_sum_to_one():
 def test_grid_equals_pointwise_and_hand_value():
     srcs = [Source("a", 50.0, 15.0, 900e6, 0.0, 0.0, 5.0, 45.0, Pattern(65.0, 10.0, 3.0, 2.0)),
             Source("b", 20.0, 8.0, 2.1e9, 12.0, -3.0, 4.0, 200.0, Pattern(90.0, None)),
-            Source("c", 25.0, 6.0, 156.8e6, -6.0, 4.0, 6.0, array_length_m=3.0)]
+            Source("c", 25.0, 6.0, 156.8e6, -6.0, 4.0, 6.0, array_length_m=3.0),
+            Source("d", 30.0, 8.0, 450e6, 10.0, 10.0, 2.0, array_length_m=3.0),   # grid height: cylindrical
+            Source("e", 40.0, 12.0, 1.8e9, -10.0, -10.0, 1.0, 90.0, Pattern(65.0, None), array_length_m=2.0)]
     g = exposure_grid(srcs, standard="fcc-1310", tier="public", half_width_m=20.0, step_m=0.5, z_m=1.5)
     assert g.percent.shape == (81, 81)
     rng = np.random.default_rng(7)
     for iy, ix in zip(rng.integers(0, 81, 12), rng.integers(0, 81, 12)):
         p = predict_exposure(srcs, g.x_m[ix], g.y_m[iy], 1.5, standard="fcc-1310", tier="public")
         assert g.percent[iy, ix] == pytest.approx(100 * float(p.total), rel=1e-12)
+    # every point, by the pointwise path on the whole mesh at once: among them the point straight
+    # below the tilted sector "a" (no horizontal distance) and the collinear "c"'s cylindrical zone
+    full = predict_exposure(srcs, g.x_m[None, :], g.y_m[:, None], 1.5, standard="fcc-1310", tier="public")
+    assert np.allclose(g.percent, 100 * full.total, rtol=1e-12, atol=0)
+    n_cyl = np.count_nonzero(full.cylindrical)
+    assert n_cyl > 0 and g.cylindrical_fraction == pytest.approx(n_cyl / g.percent.size)
     # a single isotropic source: percent at 10 m horizontally, same height, by hand:
     # S = 1000/(4*pi*100) = 0.795775 W/m^2 against 6 W/m^2 (FCC Table 1 (B), 900 MHz) = 13.2629 %
     one = [Source("iso", 1000.0, 0.0, 900e6, 0.0, 0.0, 1.5)]

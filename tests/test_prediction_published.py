@@ -2,7 +2,10 @@
 where it was read and how far that reading goes (see also tests/test_prediction.py, whose checks
 are hand-worked from the formulas).
 
-What could be read, and what could not (searched in the stored public corpora, 2026-12-03):
+What could be read, and what could not (searched in the stored public corpora, 2026-12-03, and
+again, wider, 2026-12-04: the pages, docs and code corpora, for OET 65's own examples, its
+Supplement A FM model, K.52's appendices, Safety Code 6 / RSS-102 / GL-01, Ofcom, ARPANSA and
+equipment-authorisation exhibits):
 
 - FCC OET Bulletin 65, Edition 97-01 (August 1997), section 2, equations (5)-(7), pp. 19-21:
   EIRP = 1.64 x ERP (5); 100 % ground reflection, a factor of 4 in power density (6);
@@ -25,7 +28,29 @@ What could be read, and what could not (searched in the stored public corpora, 2
   for determining the installation category" (B.1 inherently compliant sources, B.2 normally
   compliant installations), Appendix II "Example of simple evaluation of EMF exposure" and
   Appendix III "Example of EIRPth calculation"; the text of those appendices could not be read,
-  so no K.52 example value is checked (k52_class rests on declared thresholds).
+  so no K.52 example value is checked (k52_class rests on declared thresholds). Searched again
+  (2026-12-04): the stored copies of the 12/2004 and 01/2018 editions show only their front
+  matter and contents; the appendices' text and numbers could not be read.
+- FCC equipment-authorisation RF-exposure exhibits, which apply OET 65's far-field equation (they
+  quote it as "Equation from page 18 of OET Bulletin 65, Edition 97-01", S = PG/(4 pi R^2)) and
+  print every input and result: read and typed below, with the stored address of each (a module's
+  user manual page, and exhibits of FCC IDs XXMJN5189M16, RI7UC864G, KA2MG112AA1, 2AQSN-A19-WCC,
+  2ABCB-RPI32). They check S at a distance, the largest gain (EIRP) a limit allows at a distance,
+  the margin, the 47 CFR 1.1310 level at 824 MHz and a distance from ERP. One more exhibit read
+  (FCC ID X2U-SHAMU-M2M: 23.95 dBm, 0.8 dBi and 24.04 dBm, 3.0 dBi at 20 cm printed as 0.0494 and
+  0.0504 mW/cm^2) is NOT used: its printed results do not follow from its printed inputs
+  (S = PG/(4 pi R^2) gives 0.0594 and 0.1004 mW/cm^2).
+- OET 65's own worked examples (section 2 and Appendix B) and Supplement A's FM tables: the
+  bulletin is stored only as word-processor files (oet65.wp, oet65b.wp) whose stored text is
+  their style tables; not read, nothing typed.
+- Health Canada Safety Code 6, ISED RSS-102 and GL-01: RSS-102's exemption thresholds (e.i.r.p.
+  against frequency) and GL-01's measurement guidance were found, but no worked prediction with
+  numbers; nothing typed. Ofcom: the calculator's description and a forum user's two results,
+  not a published worked example with its inputs; not used. ARPANSA: the prediction methodology
+  report is cited by title in stored pages, its text with examples was not stored; nothing typed.
+- The cylindrical model: its formula is printed in a radio repeater manual's EME appendix, but
+  no example with numbers was found anywhere stored; its checks stay hand-worked
+  (tests/test_prediction.py).
 """
 
 from __future__ import annotations
@@ -44,10 +69,12 @@ from meterlink.physics.prediction import (
     erp_from_eirp_w,
     far_field_distance_for_s_m,
     far_field_s,
+    field_from_s,
     gain_dbi_from_dbd,
 )
 from meterlink.physics.prediction_compliance import compliance_distance, max_eirp_w
-from meterlink.physics.units import mw_per_cm2_to_w_per_m2
+from meterlink.physics.limits import reference_level
+from meterlink.physics.units import mw_per_cm2_to_w_per_m2, w_per_m2_to_mw_per_cm2
 from meterlink.planning.sourcefile import SourceFileError, parse_site
 
 FT_M = 0.3048   # the international foot, exactly (NIST SP 811, appendix B)
@@ -160,3 +187,74 @@ def test_far_field_distance_for_s_is_the_inverse_of_far_field_s():
     assert r == pytest.approx(4.513517, rel=1e-6)
     assert far_field_s(1000.0, 1.0, r, ground_factor=2.56) == pytest.approx(10.0, rel=1e-12)
     assert math.isclose(r / float(far_field_distance_for_s_m(1000.0, 10.0)), 1.6, rel_tol=1e-12)
+
+
+# ------------------------------------------------------------------ equipment-authorisation exhibits
+#
+# Radio equipment filed for FCC authorisation carries an RF-exposure exhibit that predicts the power
+# density at 20 cm with OET 65's far-field equation (quoted as "Equation from page 18 of OET
+# Bulletin 65, Edition 97-01": S = PG/(4 pi R^2)) and, in the common worksheet layout, inverts it for
+# the largest antenna gain the limit allows. The numbers below are typed from the stored copies of
+# those exhibits (addresses beside each row); S in mW/cm^2 as printed, compared at half a unit of
+# the last printed digit. P is derived from the printed dBm value as the worksheets do.
+
+EXHIBITS = [
+    # (where, P dBm, duty factor, G dBi, R cm, f MHz, printed S mW/cm^2, S digits, printed max gain dBi, its digits)
+    ("user manual of a 2.4 GHz radio module, p. 12 'Prediction of MPE limit at a given distance' "
+     "(http://38.142.81.21:8001/manual/sensicast-systems/oem200/user-manual-english/page-14.html)",
+     16.00, 1.0, 0.0, 20.0, 2400.0, 0.007920, 6, 21.0, 1),
+    ("FCC ID XXMJN5189M16, exhibit 'RF exposure information' (https://fcc.report/FCC-ID/XXMJN5189M16/4304587)",
+     20.37, 1.0, 2.0, 20.0, 2405.0, 0.034334, 6, 16.64269855, 8),
+    ("FCC ID RI7UC864G, exhibit 'MPE 1' (https://fcc.report/FCC-ID/RI7UC864G/944564); GPRS duty cycle 1/4",
+     32.13, 0.25, 3.0, 20.0, 824.0, 0.162058, 6, 8.301657993, 9),
+]
+
+
+@pytest.mark.parametrize("where,p_dbm,duty,g_dbi,r_cm,f_mhz,s_printed,s_digits,gmax_printed,g_digits", EXHIBITS,
+                         ids=["module-manual", "XXMJN5189M16", "RI7UC864G"])
+def test_mpe_worksheets_power_density_and_maximum_gain(where, p_dbm, duty, g_dbi, r_cm, f_mhz, s_printed, s_digits,
+                                                       gmax_printed, g_digits):
+    p_w = 10 ** (p_dbm / 10) / 1000 * duty
+    s = far_field_s(p_w, 10 ** (g_dbi / 10), r_cm / 100)
+    assert w_per_m2_to_mw_per_cm2(s) == pytest.approx(s_printed, abs=0.5 * 10 ** -s_digits)
+    # the largest gain the packaged FCC general-population level allows at that distance: the
+    # largest EIRP for the distance, over the power at the antenna
+    eirp = max_eirp_w(r_cm / 100, f_mhz * 1e6, standard="fcc-1310", tier="public")
+    assert 10 * math.log10(eirp / p_w) == pytest.approx(gmax_printed, abs=0.5 * 10 ** -g_digits + 1e-9)
+
+
+def test_mpe_worksheet_824_mhz_limit_margin_and_w_per_m2():
+    # RI7UC864G prints the limit at 824 MHz as 0.549333333 mW/cm^2 (f/1500, 47 CFR 1.1310 Table 1
+    # general population), S also as 1.620579 W/m^2, and the margin of compliance 5.301657993 dB
+    lvl = reference_level("fcc-1310", "public", 824e6)
+    assert w_per_m2_to_mw_per_cm2(lvl.s_w_per_m2) == pytest.approx(0.549333333, abs=5e-10)
+    p_w = 10 ** (32.13 / 10) / 1000 / 4
+    assert p_w * 1000 == pytest.approx(408.262987, abs=5e-7)        # printed "408.262987 (mW)"
+    s = far_field_s(p_w, 10 ** 0.3, 0.2)
+    assert s == pytest.approx(1.620579, abs=5e-7)
+    margin_db = 10 * math.log10(lvl.s_w_per_m2 / s)
+    assert margin_db == pytest.approx(5.301657993, abs=5e-9)
+
+
+@pytest.mark.parametrize("where,p_mw,g_dbi,s_printed,digits", [
+    ("FCC ID KA2MG112AA1, 'MPE Calculation Method': E = sqrt(30 P G)/d, Pd = E^2/377, d = 0.2 m "
+     "(https://fcc.report/FCC-ID/KA2MG112AA1/2555923)", 406.4, 3.0, 0.16, 2),
+    ("FCC ID 2AQSN-A19-WCC, the same method (https://fcc.report/FCC-ID/2AQSN-A19-WCC/4059121)",
+     52.24, 1.2, 0.0137, 4),
+], ids=["KA2MG112AA1", "2AQSN-A19-WCC"])
+def test_mpe_exhibits_by_field_strength_at_20_cm(where, p_mw, g_dbi, s_printed, digits):
+    # 30 P G / (377 d^2) is P G/(4 pi d^2) with 120 pi rounded to 377 (0.005 % apart): the far-field
+    # S at 0.2 m through E = sqrt(Z0 S) and back gives the printed power density
+    s = far_field_s(p_mw / 1000, 10 ** (g_dbi / 10), 0.2)
+    e = float(field_from_s(s))
+    assert e ** 2 / 377.0 / 10 == pytest.approx(s_printed, abs=0.5 * 10 ** -digits)
+    assert w_per_m2_to_mw_per_cm2(s) == pytest.approx(s_printed, abs=0.5 * 10 ** -digits)
+
+
+def test_mpe_exhibit_distance_for_an_erp_declared_device():
+    # FCC ID 2ABCB-RPI32, test report section 19 (https://fcc.report/FCC-ID/2ABCB-RPI32/2912429):
+    # S = 1.64 ERP/(4 pi R^2) rearranged for R; ERP 118.89 mW at 2462 MHz, its chosen limit
+    # 0.6 mW/cm^2 -> printed "5.1" cm
+    eirp = float(eirp_from_erp_w(118.89e-3))
+    r = float(far_field_distance_for_s_m(eirp, mw_per_cm2_to_w_per_m2(0.6)))
+    assert r * 100 == pytest.approx(5.1, abs=0.05)

@@ -113,6 +113,35 @@ class DeviceClock:
         """Record that unwrapped tick_ms arrived at host_monotonic_s, for the drift estimate."""
         self._pairs.append((float(host_monotonic_s), tick_ms / 1000.0))
 
+    def utc_at_host(self, host_monotonic_s: float) -> float | None:
+        """The readings' UTC (this boot's mapping) of the instant host_monotonic_s: the host time is
+        fitted against device time over the recent pairs (host = a + b x device; least squares for
+        b, since the host's arrival times carry the noise and the device's ticks do not, refitted
+        without the arrivals more than 3 robust deviations off the line; the median for a, so that
+        a few late reads do not move it), then inverted. It lags the device by the
+        link's median delivery delay. None before a mapping or with fewer than 3 pairs."""
+        m = self.mapping
+        pairs = tuple(self._pairs)          # one copy: the link thread appends meanwhile
+        if m is None or len(pairs) < 3:
+            return None
+        arr = np.array(pairs, dtype=float)
+        host, dev = arr[:, 0], arr[:, 1]
+        b = drift_ratio(dev, host)          # host seconds per device second
+        if b is None or not b > 0:
+            return None
+        res = host - b * dev                # a late read pulls the slope: refit without the far-off ones
+        dev_abs = np.abs(res - np.median(res))
+        keep = dev_abs <= max(3.0 * 1.4826 * float(np.median(dev_abs)), 1e-6)
+        if 3 <= int(keep.sum()) < keep.size:
+            host, dev = host[keep], dev[keep]
+            b = drift_ratio(dev, host)
+            if b is None or not b > 0:
+                return None
+        d0 = float(dev.mean())
+        a = float(np.median(host - b * (dev - d0)))
+        dev_s = d0 + (float(host_monotonic_s) - a) / b
+        return m.utc0_s + (dev_s * 1000.0 - m.tick0_ms) / 1000.0
+
     @property
     def n_pairs(self) -> int:
         return len(self._pairs)

@@ -8,6 +8,13 @@ used. Positions are WGS 84 latitude/longitude in degrees and altitude above mean
 Accuracy: a receiver's GGA gives HDOP, not an error in metres. The estimate kept with every fix is
 HDOP x UERE_M (a user-equivalent range error of 5 m, 1 sigma: common practice for a standalone
 single-frequency receiver, no single published source), a rough 1-sigma horizontal error.
+
+Time: every fix is kept in a short track keyed by its own UTC (GGA time, RMC date). A reading is
+placed on that track by time, not by when the host happened to handle it: the offset between
+GNSS time and the readings' time scale is estimated as the median of (arrival - fix time) over
+recent fixes, the arrival expressed in the readings' time scale (frame_clock; the host's UTC when
+none is given), and position_on_track() interpolates between the two fixes that bracket the
+reading's time.
 """
 
 from __future__ import annotations
@@ -16,8 +23,10 @@ import datetime as _dt
 import math
 import threading
 import time
+from bisect import bisect_right
 from collections import deque
 from dataclasses import dataclass
+from typing import Callable
 
 from meterlink.device.link import LinkEvent
 from meterlink.device.transport import Link, SerialLink
@@ -28,6 +37,17 @@ UERE_M = 5.0
 #: Mean Earth radius R1 = (2a + b)/3 of WGS 84, m (the IUGG mean radius).
 EARTH_RADIUS_M = 6_371_008.8
 _MAX_LINE = 256          # NMEA 0183 allows 82 characters; anything longer without a newline is garbage
+#: The fastest a surveyor carrying the probe is taken to move (a brisk walk), m/s: between two fixes
+#: the carrier may stray from the straight line by at most this speed x the time to the nearer fix.
+CARRY_SPEED_M_S = 2.0
+#: Two fixes farther apart than this speed allows (108 km/h) are a jump, not a walk or a drive: a
+#: receiver's outlier, or a probe put down elsewhere: a reading between them is not placed on the
+#: straight line but at the nearer fix, m/s.
+JUMP_SPEED_M_S = 30.0
+#: Fixes (arrival - fix time) kept for the offset estimate: the last two minutes at 1 Hz.
+OFFSET_WINDOW = 120
+#: |offset| above which a survey says in an event that GNSS time and the readings' time disagree, s.
+OFFSET_LARGE_S = 2.0
 
 
 @dataclass(frozen=True)
@@ -42,11 +62,104 @@ class Fix:
     n_sats: int | None
     hdop: float | None
     t_host: float            # host monotonic time the sentence arrived
+    t_frame: float | None = None   # the arrival in the readings' time scale (see GnssLink.frame_clock)
 
     @property
     def accuracy_m(self) -> float | None:
         """Rough 1-sigma horizontal error: HDOP x UERE_M (see the module note)."""
         return None if self.hdop is None else self.hdop * UERE_M
+
+
+@dataclass(frozen=True)
+class Position:
+    """Where the receiver was at one instant of GNSS time, from the fixes around it."""
+
+    lat_deg: float
+    lon_deg: float
+    alt_m: float | None
+    accuracy_m: float | None   # rough 1-sigma horizontal error: fixes' estimate, gap and timing (see position_on_track)
+    fix_utc: float             # the GNSS time the position is for
+    quality: int               # the poorer fix quality of the fixes used
+    n_sats: int | None         # the fewer satellites of the fixes used
+    hdop: float | None         # the larger HDOP of the fixes used
+    gap_s: float               # interval between the bracketing fixes, or to the one fix used
+
+
+@dataclass(frozen=True)
+class TimeOffset:
+    """Readings' time minus GNSS time: median of (arrival - fix time), with its robust spread."""
+
+    offset_s: float
+    spread_s: float            # 1.4826 x median absolute deviation: the scatter of one arrival, s
+    n: int
+
+
+def estimate_offset(samples) -> TimeOffset | None:
+    """Median and robust spread of (arrival - fix time) samples; None without any."""
+    import numpy as np
+
+    a = np.asarray([v for v in samples if v is not None and math.isfinite(v)], dtype=float)
+    if a.size == 0:
+        return None
+    med = float(np.median(a))
+    return TimeOffset(med, float(1.4826 * np.median(np.abs(a - med))), int(a.size))
+
+
+def _min_opt(a, b):
+    return b if a is None else a if b is None else min(a, b)
+
+
+def _max_opt(a, b):
+    return b if a is None else a if b is None else max(a, b)
+
+
+def position_on_track(track, t_s: float, *, max_gap_s: float, timing_u_s: float = 0.0,
+                      carry_speed_m_s: float = CARRY_SPEED_M_S,
+                      jump_speed_m_s: float = JUMP_SPEED_M_S) -> Position | None:
+    """The position at GNSS time t_s from fixes sorted by fix_utc (pure).
+
+    Between two fixes at most max_gap_s apart: linear interpolation, unless they lie farther apart
+    than jump_speed_m_s allows (a jump): then the nearer of the two, its accuracy grown by the share
+    of the jump it may be off. Else the nearer fix, if it is at most max_gap_s / 2 away. Else
+    None: a position that far from any fix is not given out.
+    The accuracy combines (root sum of squares) the larger of the fixes' own estimates, how far the
+    carrier may have strayed from the straight line (carry_speed_m_s x time to the nearer fix), and
+    the timing: the speed between the fixes x timing_u_s (the spread of the offset estimate)."""
+    times = [f.fix_utc for f in track]
+    i = bisect_right(times, t_s)
+    f1 = track[i - 1] if i > 0 else None
+    f2 = track[i] if i < len(track) else None
+    if f1 is not None and f1.fix_utc == t_s:
+        f2 = f1
+    if f1 is not None and f2 is not None and f2.fix_utc - f1.fix_utc <= max_gap_s:
+        dt = f2.fix_utc - f1.fix_utc
+        w = (t_s - f1.fix_utc) / dt if dt > 0 else 0.0
+        lat = f1.lat_deg + w * (f2.lat_deg - f1.lat_deg)
+        lon = f1.lon_deg + w * (f2.lon_deg - f1.lon_deg)
+        if f1.alt_m is not None and f2.alt_m is not None:
+            alt = f1.alt_m + w * (f2.alt_m - f1.alt_m)
+        else:
+            alt = f1.alt_m if f1.alt_m is not None else f2.alt_m
+        x, y = to_local_m(f2.lat_deg, f2.lon_deg, f1.lat_deg, f1.lon_deg)
+        d = math.hypot(float(x), float(y))
+        speed = d / dt if dt > 0 else 0.0
+        near = min(t_s - f1.fix_utc, f2.fix_utc - t_s)
+        if speed > jump_speed_m_s:       # the nearer fix; wrong by the jump if the other side holds
+            f = f1 if w <= 0.5 else f2
+            u = None if f.accuracy_m is None else math.hypot(f.accuracy_m, min(w, 1.0 - w) * d)
+            return Position(f.lat_deg, f.lon_deg, f.alt_m, u, t_s, f.quality, f.n_sats, f.hdop, dt)
+        acc = _max_opt(f1.accuracy_m, f2.accuracy_m)
+        u = None if acc is None else math.sqrt(acc ** 2 + (carry_speed_m_s * near) ** 2 + (speed * timing_u_s) ** 2)
+        return Position(lat, lon, alt, u, t_s, min(f1.quality, f2.quality), _min_opt(f1.n_sats, f2.n_sats),
+                        _max_opt(f1.hdop, f2.hdop), dt)
+    near = [f for f in (f1, f2) if f is not None and abs(f.fix_utc - t_s) <= max_gap_s / 2]
+    if not near:
+        return None
+    f = min(near, key=lambda g: abs(g.fix_utc - t_s))
+    d = abs(f.fix_utc - t_s)
+    acc = f.accuracy_m
+    u = None if acc is None else math.hypot(acc, carry_speed_m_s * d)
+    return Position(f.lat_deg, f.lon_deg, f.alt_m, u, t_s, f.quality, f.n_sats, f.hdop, d)
 
 
 @dataclass
@@ -148,7 +261,16 @@ class GnssLink:
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self.finished = threading.Event()
-        self._keep = keep_fixes
+        self._track: deque[Fix] = deque(maxlen=keep_fixes)     # fixes in time order, for position_on_track
+        self._offsets: deque[float] = deque(maxlen=OFFSET_WINDOW)
+        self._arrivals: deque[float] = deque(maxlen=16)          # host arrival of recent fixes
+        #: host monotonic s -> the readings' UTC of that instant (the meter's clock mapping); the
+        #: default is the host's own UTC. Set it before start().
+        self.frame_clock: Callable[[float], float | None] = lambda mono: time.time() - time.monotonic() + mono
+        #: () -> anything that changes when frame_clock's time scale does (a meter's new clock mapping
+        #: after a restart): the offsets gathered before are dropped then.
+        self.frame_key: Callable[[], object] = lambda: None
+        self._key = None
 
     # -- public --------------------------------------------------------------------------------
     def start(self, require_open: bool = True) -> "GnssLink":
@@ -177,6 +299,42 @@ class GnssLink:
         if f is None or (max_age_s is not None and time.monotonic() - f.t_host > max_age_s):
             return None
         return f
+
+    def time_offset(self) -> TimeOffset | None:
+        """Readings' time minus GNSS time over the recent fixes (median of arrival - fix time)."""
+        with self._lock:
+            samples = list(self._offsets)
+        return estimate_offset(samples)
+
+    def track(self, t_from_s: float, t_to_s: float) -> list[Fix]:
+        """The kept fixes whose GNSS time lies in [t_from_s, t_to_s], in time order."""
+        with self._lock:
+            out = []
+            for f in reversed(self._track):
+                if f.fix_utc < t_from_s:
+                    break
+                if f.fix_utc <= t_to_s:
+                    out.append(f)
+        out.reverse()
+        return out
+
+    def newest_fix_utc(self) -> float | None:
+        with self._lock:
+            return self._track[-1].fix_utc if self._track else None
+
+    def last_arrival_host(self) -> float:
+        """Host monotonic time the newest valid fix arrived (-inf before any)."""
+        with self._lock:
+            return self._arrivals[-1] if self._arrivals else -math.inf
+
+    def fix_interval_host_s(self) -> float | None:
+        """Median host time between recent fix arrivals (how long the next one should take)."""
+        with self._lock:
+            a = list(self._arrivals)
+        if len(a) < 3:
+            return None
+        d = sorted(b - c for b, c in zip(a[1:], a[:-1]))
+        return d[len(d) // 2]
 
     def events(self) -> list[LinkEvent]:
         """Events since the last call (port lost, reconnected, fix lost/regained, bad sentences)."""
@@ -308,11 +466,27 @@ class GnssLink:
         if isinstance(t, _dt.time):
             day = self._date or _dt.datetime.now(_dt.timezone.utc).date()
             fix_utc = _dt.datetime.combine(day, t.replace(tzinfo=_dt.timezone.utc)).timestamp()
+            last = self._track[-1].fix_utc if self._track else None
+            if last is not None and fix_utc < last - 43200.0:
+                fix_utc += 86400.0      # past midnight, before this epoch's RMC brought the new date
         sats = _f(msg.numSV)
+        mono = time.monotonic()
+        try:
+            frame, key = self.frame_clock(mono), self.frame_key()
+        except Exception:  # noqa: BLE001 - a clock not ready (no handshake yet) gives no offset sample
+            frame = key = None
         fix = Fix(fix_utc, lat, lon, _f(msg.alt), q, None if sats is None else int(sats), _f(msg.HDOP),
-                  time.monotonic())
+                  mono, frame)
         with self._lock:
             self._latest = fix
+            self._arrivals.append(mono)
+            if fix_utc is not None and (not self._track or fix_utc > self._track[-1].fix_utc):
+                self._track.append(fix)
+                if frame is not None:
+                    if key is not self._key:
+                        self._offsets.clear()          # the readings' time scale was mapped anew
+                        self._key = key
+                    self._offsets.append(frame - fix_utc)
         self.stats.fixes += 1
         self._set_fix(True)
 

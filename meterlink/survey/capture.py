@@ -74,21 +74,22 @@ class View:
 
 @dataclass(frozen=True)
 class Geo:
-    """A sample's GNSS position: mean of its readings' fixes, with an accuracy estimate."""
+    """A sample's GNSS position: mean of its readings' positions, with an accuracy estimate."""
 
     lat_deg: float
     lon_deg: float
     alt_m: float | None
-    u_m: float | None          # sqrt(largest HDOP-based estimate^2 + RMS scatter^2), m
-    fix_utc: float | None      # the middle fix
+    u_m: float | None          # sqrt(largest per-reading estimate^2 + RMS scatter^2), m
+    fix_utc: float | None      # the GNSS time of the middle positioned reading
     n_positioned: int
 
 
-def geo_of(fixes) -> Geo | None:
-    """Combine the fixes of a sample's readings (None entries: readings without a position)."""
+def geo_of(positions) -> Geo | None:
+    """Combine the positions of a sample's readings (None entries: readings without a position);
+    anything with lat_deg, lon_deg, alt_m, accuracy_m and fix_utc will do."""
     from meterlink.device.gnss import to_local_m
 
-    got = [f for f in fixes if f is not None]
+    got = [f for f in positions if f is not None]
     if not got:
         return None
     lat = sum(f.lat_deg for f in got) / len(got)
@@ -102,6 +103,16 @@ def geo_of(fixes) -> Geo | None:
     return Geo(lat, lon, sum(alts) / len(alts) if alts else None, u, mid.fix_utc, len(got))
 
 
+def _row_position(row: dict):
+    """The position stored on a trace row, or None."""
+    if row.get("lat_deg") is None:
+        return None
+    from meterlink.device.gnss import Position
+
+    return Position(row["lat_deg"], row["lon_deg"], row["alt_m"], row["pos_u_m"], row["fix_utc"],
+                    row["fix_quality"], row["n_sats"], row["hdop"], 0.0)
+
+
 class Interrupted(Exception):
     """The capture was stopped (stop event or Ctrl-C); what was collected is still used."""
 
@@ -112,7 +123,7 @@ class Capture:
     def __init__(self, link, writer, cert, *, standard: str, tier: str, e_ref_v_per_m: float,
                  freq_hz=None, band_hz=None, settle_s: float = 2.0, on_view: Callable[[View], None] | None = None,
                  stop_event: threading.Event | None = None, names=None, followup_v_per_m=None, gnss=None,
-                 gnss_max_age_s: float = 2.0):
+                 gnss_max_gap_s: float = 2.0):
         self.link, self.writer, self.cert = link, writer, cert
         self.standard, self.tier, self.e_ref = standard, tier, float(e_ref_v_per_m)
         self.freq = freq_hz if freq_hz is not None else band_hz
@@ -121,7 +132,10 @@ class Capture:
         self.stop_event = stop_event or threading.Event()
         self.names = names or (lambda f: f"{f / 1e6:.1f} MHz")
         self.followup = followup_v_per_m
-        self.gnss, self.gnss_max_age_s = gnss, float(gnss_max_age_s)
+        self.gnss = gnss
+        self.gnss_max_gap_s = float(gnss_max_gap_s)   # GNSS seconds between fixes a position may bridge
+        self._unplaced: list[dict] = []      # trace rows not yet given a position (the fix after them not in)
+        self.offset = None                   # the latest GNSS TimeOffset used (readings' time - GNSS time)
         self.connected: Connected | None = None
         self.epoch = 0          # a resumed survey (a re-measurement later) stores its readings in a new epoch
         self.temp_c: float | None = None
@@ -263,18 +277,67 @@ class Capture:
             tot += (e / self._lim[f]) ** 2
         return tot
 
-    def _trace(self, v: Value, point_no, sample_no, used):
-        """Keep one value in the trace with the probe's position and the GNSS fix; returns the fix."""
+    def _trace(self, v: Value, point_no, sample_no, used) -> dict:
+        """Keep one value in the trace with the probe's position; its GNSS position comes in place()."""
         pos = self.position or (None, None, None)
-        fix = self.gnss.latest(self.gnss_max_age_s) if self.gnss is not None else None
         row = {"point_no": point_no, "sample_no": sample_no, "boot": v.boot, "seq": v.seq,
                "t_utc": v.t_utc, "t_device_s": v.t_s, "e_v_per_m": v.e_v_per_m,
                "x_m": pos[0], "y_m": pos[1], "z_m": pos[2], "used": int(bool(used))}
-        if fix is not None:
-            row.update(lat_deg=fix.lat_deg, lon_deg=fix.lon_deg, alt_m=fix.alt_m, pos_u_m=fix.accuracy_m,
-                       fix_utc=fix.fix_utc, fix_quality=fix.quality, n_sats=fix.n_sats, hdop=fix.hdop)
         self.trace.append(row)
-        return fix
+        if self.gnss is not None:
+            self._unplaced.append(row)
+        return row
+
+    def place(self, final: bool = True) -> None:
+        """Give the trace rows waiting for one their GNSS position, by time: each reading's UTC less
+        the estimated offset (readings' time - GNSS time) is its GNSS time, and the position there is
+        interpolated between the fixes that bracket it (device.gnss.position_on_track). A row whose
+        later fix has not arrived yet waits, unless final: then the receiver is given a little while
+        (a few fix intervals of host time) to send it, and the row is placed with what there is."""
+        rows = self._unplaced
+        if self.gnss is None or not rows:
+            return
+        from meterlink.device.gnss import position_on_track
+
+        if final:
+            self._await_fix_after(max(r["t_utc"] for r in rows))
+        off = self.gnss.time_offset()
+        if off is None:                  # no fix with a time yet
+            if final:
+                self._unplaced = []
+            return
+        self.offset = off
+        tq = [r["t_utc"] - off.offset_s for r in rows]
+        track = self.gnss.track(min(tq) - self.gnss_max_gap_s, max(tq) + self.gnss_max_gap_s)
+        newest = track[-1].fix_utc if track else -math.inf
+        keep = []
+        for r, t in zip(rows, tq):
+            if not final and t > newest:
+                keep.append(r)
+                continue
+            p = position_on_track(track, t, max_gap_s=self.gnss_max_gap_s, timing_u_s=off.spread_s)
+            if p is not None:
+                r.update(lat_deg=p.lat_deg, lon_deg=p.lon_deg, alt_m=p.alt_m, pos_u_m=p.accuracy_m,
+                         fix_utc=p.fix_utc, fix_quality=p.quality, n_sats=p.n_sats, hdop=p.hdop)
+        self._unplaced = keep
+
+    def _await_fix_after(self, t_utc: float) -> None:
+        """Wait (host time, bounded) for a fix at or after the GNSS time of t_utc; the meter's
+        readings wait in the link's queue meanwhile. No wait when the receiver has no fix."""
+        interval = self.gnss.fix_interval_host_s()
+        if interval is None:
+            return
+        wait_s = min(3.0, max(0.1, 4 * interval))
+        deadline = time.monotonic() + wait_s
+        while time.monotonic() < deadline:
+            off, newest = self.gnss.time_offset(), self.gnss.newest_fix_utc()
+            if off is None or newest is None or self.gnss.latest(None) is None:
+                return
+            if newest >= t_utc - off.offset_s:
+                return
+            if time.monotonic() - self.gnss.last_arrival_host() > wait_s:
+                return                   # fixes stopped coming (garbage on the line): do not wait for one
+            time.sleep(min(0.01, max(0.002, interval / 4)))
 
     def _view(self, base: dict, v: Value, t0, dur, es, phase) -> None:
         if self.on_view is None:
@@ -311,13 +374,15 @@ class Capture:
             t_end = v.t_s + self.settle_s if t_end is None else t_end
             self._view({**base}, v, None, 0.0, [], "settling")
             if v.t_s >= t_end:
+                self.place(final=False)
                 return
+        self.place(final=False)
 
     def collect(self, duration_s: float, base: dict, point_no: int, sample_no: int, *, height_m: float,
                 walk=None, mover=None, host_timeout_s: float | None = None) -> tuple[Sample, bool]:
         """Collect values over duration_s of device time; returns (sample, interrupted)."""
         vals: list[Value] = []
-        fixes = []
+        rows = []
         host_timeout_s = host_timeout_s if host_timeout_s is not None else 2 * duration_s + 30
         host_deadline = time.monotonic() + host_timeout_s
         interrupted = False
@@ -333,7 +398,7 @@ class Capture:
                     break
                 vals.append(v)
                 t0 = vals[0].t_s if t0 is None else t0
-                fixes.append(self._trace(v, point_no, sample_no, True))
+                rows.append(self._trace(v, point_no, sample_no, True))
                 if walk is not None and mover is not None:
                     self.position = walk(min(1.0, (v.t_s - t0) / duration_s), height_m)
                     mover(self.position)
@@ -350,8 +415,9 @@ class Capture:
         floor = (lambda f: math.sqrt(3.0) * self.floor_v_per_m(f)) if is_dipole(self.cert) else None
         temps = ([] if t_before is None else [t_before]) + self.temps_c[i_temp:]
         s = _sample(vals, duration_s, height_m, self.position, floor)
+        self.place(final=True)
         return dataclasses.replace(s, temp_span_c=(min(temps), max(temps)) if temps else None,
-                                   geo=geo_of(fixes)), interrupted
+                                   geo=geo_of([_row_position(r) for r in rows])), interrupted
 
 
 def _step(vals) -> float:

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import json
 import math
+import textwrap
 from dataclasses import dataclass, field
 
 from meterlink.cautions import SAFETY_LINE
@@ -40,7 +41,7 @@ class SiteFrame:
     lon0: float | None
     origin_note: str
     points: list[MapPoint] = field(default_factory=list)
-    track: list[tuple[float, float, float | None, int]] = field(default_factory=list)  # x, y, percent, point_no
+    track: list[tuple[float, float, float | None, int, int]] = field(default_factory=list)  # x, y, percent, point_no, used
     track_geo: list[tuple[float, float, float | None, float | None, float | None]] = field(default_factory=list)
     sources: list = field(default_factory=list)   # physics.prediction.Source, local metres
     declared: dict | None = None
@@ -96,7 +97,7 @@ def site_frame(sv: dict) -> SiteFrame:
         x, y = to_local_m(t["lat_deg"], t["lon_deg"], lat0, lon0)
         e = t["e_v_per_m"]
         pct = 100.0 * (e / e_ref) ** 2 if e is not None and math.isfinite(e) else None
-        fr.track.append((float(x), float(y), pct, t["point_no"]))
+        fr.track.append((float(x), float(y), pct, t["point_no"], int(t.get("used") or 0)))
         fr.track_geo.append((t["lat_deg"], t["lon_deg"], t.get("alt_m"), t.get("fix_utc"), pct))
     return fr
 
@@ -107,9 +108,21 @@ def _nice(span_m: float) -> float:
     return next(m * p for m in (5, 2, 1) if m * p <= raw)
 
 
+#: characters of an 8.5 pt title line that fit above the map's axes (8 in figure, colour bar beside)
+_TITLE_CHARS = 90
+
+
 def _safe(s, n: int = 28) -> str:
     s = str(s)
     return (s[:n - 1] + "…" if len(s) > n else s).replace("$", r"\$")
+
+
+def map_title(sv: dict, fr: SiteFrame) -> str:
+    """The map's title: the survey's title (or site name) and the origin note, wrapped to the width
+    of the map (_TITLE_CHARS): a line wider than the figure would run past its edges."""
+    head = sv.get("title") or (sv.get("site") or {}).get("name") or "survey"
+    return "\n".join(textwrap.wrap(_safe(head, 160), _TITLE_CHARS)
+                     + textwrap.wrap(f"{fr.origin_note}; equirectangular projection, local metres", _TITLE_CHARS))
 
 
 def survey_map_png(sv: dict, frame: SiteFrame | None = None) -> bytes | None:
@@ -129,11 +142,12 @@ def survey_map_png(sv: dict, frame: SiteFrame | None = None) -> bytes | None:
     xs = [p.x_m for p in fr.points] + [t[0] for t in fr.track] + [s.x_m for s in fr.sources]
     ys = [p.y_m for p in fr.points] + [t[1] for t in fr.track] + [s.y_m for s in fr.sources]
     if fr.track:
-        seg: list = []           # the line joins the readings of one point; the walk between points is unknown
-        for i, t in enumerate(fr.track):
+        seg: list = []           # the line joins the used readings of one point; the walk between points is
+        for i, t in enumerate(fr.track):     # unknown, and a settling reading may still be from the last place
             seg.append(t)
-            if i + 1 == len(fr.track) or fr.track[i + 1][3] != t[3]:
-                ax.plot([u[0] for u in seg], [u[1] for u in seg], "-", color="#c8c8c8", lw=0.8, zorder=1)
+            if i + 1 == len(fr.track) or fr.track[i + 1][3:5] != t[3:5]:
+                if t[4]:
+                    ax.plot([u[0] for u in seg], [u[1] for u in seg], "-", color="#c8c8c8", lw=0.8, zorder=1)
                 seg = []
         ax.scatter([t[0] for t in fr.track], [t[1] for t in fr.track],
                    c=[percent_colour(t[2]) for t in fr.track], s=9, zorder=2, linewidths=0)
@@ -180,7 +194,6 @@ def survey_map_png(sv: dict, frame: SiteFrame | None = None) -> bytes | None:
                Line2D([], [], marker="^", ls="", color="#1b2f5c", label="declared source"),
                Line2D([], [], marker="+", ls="", color="black", label="origin")]
     ax.legend(handles=handles, loc="upper left", fontsize=7, framealpha=0.85)
-    ax.set_title(_safe(sv["title"] or sv["site"].get("name", "survey"), 80)
-                 + f"\n{fr.origin_note}; equirectangular projection, local metres", fontsize=8.5)
+    ax.set_title(map_title(sv, fr), fontsize=8.5)
     fig.text(0.01, -0.01, SAFETY_LINE, fontsize=6.5, wrap=True, va="top")
     return figure_png(fig)

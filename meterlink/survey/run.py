@@ -51,6 +51,7 @@ class Survey:
     def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
                  on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
                  link_factory=None, gnss_port: str | None = None, gnss_factory=None, gnss_max_age_s: float = 2.0,
+                 gnss_max_gap_s: float = 2.0,
                  declared=None, analyser: str | None = None, journal_dir=None, orient: Callable | None = None,
                  analyser_timeout_s: float = 5.0, resume: int | None = None, **link_options):
         self.store, self.port, self.plan = store, port, plan
@@ -62,7 +63,9 @@ class Survey:
         self.gnss_port = gnss_port
         self.declared = declared      # planning Site of the plan's sources file (read by the caller), or None
         self.gnss = None
-        self.gnss_max_age_s = gnss_max_age_s    # host seconds a fix stays current (tests at speed: shorter)
+        self.gnss_max_age_s = gnss_max_age_s    # host seconds a fix counts as current, for the first fix
+        self.gnss_max_gap_s = gnss_max_gap_s    # GNSS seconds between fixes a reading's position may bridge
+        self._offset_said = False
         self.n_positioned = self.n_unpositioned = 0     # survey_trace rows stored with and without a position
         if gnss_port is not None or gnss_factory is not None:
             from meterlink.device.gnss import GnssLink
@@ -74,6 +77,9 @@ class Survey:
         self.mover, self.ready = mover, ready
         self.on_view = on_view
         self.link = MeterLink(port, plan.interval_ms, link_factory=link_factory, **link_options)
+        if self.gnss is not None:       # fix arrivals in the readings' time scale: the meter's clock mapping
+            self.gnss.frame_clock = self.link.clock.utc_at_host
+            self.gnss.frame_key = lambda: self.link.clock.mapping
         self.session_id: int | None = None
         self.results: list[PointResult] = []
         self._numbers: dict[str, int] = {}      # point label -> point_no, for re-measurements
@@ -116,7 +122,7 @@ class Survey:
                 names=lambda f: next((n for sf, n in names.items() if abs(sf - f) <= 0.005 * sf),
                                      f"{f / 1e6:.1f} MHz"),
                 followup_v_per_m=plan.followup.threshold_v_per_m(self.ref.e_v_per_m), gnss=self.gnss,
-                gnss_max_age_s=self.gnss_max_age_s)
+                gnss_max_gap_s=self.gnss_max_gap_s)
             if self.resume is not None:     # from the first reading on: never among the earlier ones
                 row = epoch_row(self.session_id, None, "re-measurement")
                 self._writer.add_epoch(row)
@@ -209,11 +215,33 @@ class Survey:
         st = self.gnss.summary()
         n_all = self.n_positioned + self.n_unpositioned
         sev = "info" if self.n_unpositioned == 0 else "warning"
+        off = self.capture.offset
+        said = "" if off is None else (f"; readings' time - GNSS time {off.offset_s:+.3f} s (median of {off.n} "
+                                       f"fixes, spread {off.spread_s:.3f} s)")
         self._writer.add_event(
             "gnss_summary", sev, f"GNSS on {self.gnss.port}: {self.n_positioned} of {n_all} stored value(s) "
             f"positioned, {self.n_unpositioned} without position; {st['bad_checksum']} sentence(s) with a bad "
-            f"checksum and {st['malformed']} malformed not used; receiver lost {st['port_losses']} time(s)",
-            positioned=self.n_positioned, unpositioned=self.n_unpositioned, **st)
+            f"checksum and {st['malformed']} malformed not used; receiver lost {st['port_losses']} time(s)" + said,
+            positioned=self.n_positioned, unpositioned=self.n_unpositioned,
+            offset_s=None if off is None else off.offset_s, offset_spread_s=None if off is None else off.spread_s,
+            offset_n=None if off is None else off.n, **st)
+
+    def _say_offset(self) -> None:
+        """Once per survey, when the readings' time and GNSS time differ by more than OFFSET_LARGE_S:
+        the event says so (a host clock off UTC, or a meter clock mapped long ago); positions are
+        matched after correcting for it either way."""
+        from meterlink.device.gnss import OFFSET_LARGE_S
+
+        off = self.capture.offset if self.capture is not None else None
+        if off is None or self._offset_said or abs(off.offset_s) <= OFFSET_LARGE_S:
+            return
+        self._offset_said = True
+        self._writer.add_event(
+            "gnss_time_offset", "warning", f"the readings' time and GNSS time differ by {off.offset_s:+.3f} s "
+            f"(median of {off.n} fixes, spread {off.spread_s:.3f} s): positions are matched to readings after "
+            "correcting for it; check the host's clock against UTC (a simulated meter running faster than real "
+            "time shows such an offset too)", offset_s=off.offset_s,
+            spread_s=off.spread_s, n=off.n)
 
     # -- points --------------------------------------------------------------------------------
     def _duration(self, p: Point) -> float:
@@ -282,6 +310,8 @@ class Survey:
                      temperatures=point_temperatures(tuple(samples), self.cert.temp_range_c))
         self._writer.flush()
         if self.gnss is not None:
+            cap.place(final=True)        # rows from before the settle (drained late) get theirs too
+            self._say_offset()
             n_pos = sum(1 for t in cap.trace if t.get("lat_deg") is not None)
             self.n_positioned += n_pos
             self.n_unpositioned += len(cap.trace) - n_pos
