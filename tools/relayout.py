@@ -15,7 +15,7 @@ ROOT = Path(__file__).resolve().parent.parent
 LAYOUT = {
     "physics": ["units", "interp", "uncertainty", "calibrate", "certificate", "limits", "averaging",
                 "exposure", "verdict", "assessment"],
-    "device": ["protocol", "transport", "link", "mux", "commander", "clock", "conformance"],
+    "device": ["protocol", "transport", "link", "handshake", "mux", "commander", "clock", "conformance"],
     "storage": ["schema", ("storage", "store"), "spans", "salvage", "recorder", "processing", "files", "rows", "batch",
                 "writing", "queries", "recording", "streamed", "listing"],
     "station": [("station", "stationfile"), "monitor", "derived", "spectral", "alarms", "stats", "publish",
