@@ -21,7 +21,7 @@ LAYOUT = {
     "station": [("station", "stationfile"), "monitor", "derived", "spectral", "alarms", "stats", "publish",
                 "hooks", "lock", "notify", "retention", "ingest", "persist", "health", "meterwriter",
                 "period_report"],
-    "reports": ["render", "htmlpage", "session_report", "digits"],
+    "reports": ["render", "htmlpage", "session_report", "digits", "termtable"],
 }
 MAP = {}  # old flat module -> new dotted path below meterlink
 for _pkg, _mods in LAYOUT.items():
