@@ -105,7 +105,7 @@ class Table:
         out = [paint(line, "italic") for line in _wrap(self.title, width)] if self.title else []
         heads = [_wrap(c.header, w) if c.wrap else [c.header] for c, w in zip(self.columns, widths)]
         for k in range(max(len(h) for h in heads)):     # a wrapped header: its words over several lines
-            out.append(GAP.join(paint(_pad(h[k] if k < len(h) else "", w, c.justify), "bold")
+            out.append(GAP.join(_pad(h[k] if k < len(h) else "", w, c.justify, paint, "bold")
                                 for c, h, w in zip(self.columns, heads, widths)).rstrip())
         out.append(GAP.join("─" * w for w in widths))
         for i, row in enumerate(self.rows):
@@ -117,7 +117,7 @@ class Table:
             for cell, col, w in zip(row, self.columns, widths):
                 parts = [(ln, style) for part, style in _lines(cell)
                          for ln in (_wrap(part, w) if col.wrap else [part])]
-                cells.append(([paint(_pad(p, w, col.justify), style) for p, style in parts], w))
+                cells.append(([_pad(p, w, col.justify, paint, style) for p, style in parts], w))
             height = max(len(c) for c, _ in cells)
             for k in range(height):
                 out.append(GAP.join(c[k] if k < len(c) else " " * w for c, w in cells).rstrip())
@@ -163,8 +163,11 @@ def _text(cell) -> tuple[str, str]:
     return ("" if cell is None else str(cell)), ""
 
 
-def _pad(text: str, width: int, justify: str) -> str:
+def _pad(text: str, width: int, justify: str, paint=None, style: str = "") -> str:
+    """text padded to width (the style's codes around the text only, not the padding)."""
     fill = " " * max(0, width - cell_width(text))
+    if paint is not None:
+        text = paint(text, style)
     return fill + text if justify == "right" else text + fill
 
 
