@@ -2,6 +2,10 @@
 repeatedly in fresh interpreters (hyperfine-like: warm-up runs, then the commands and the baseline taken in
 turn), against a bare `python -c pass` of the same venv Python; also which heavy modules each loads.
 
+The `limits` command is also run through the console script pip generates for `meterlink` (the
+[project.scripts] entry point, beside the venv's python), to show the entry point adds nothing to
+`python -m meterlink`: the script imports meterlink.cli directly, no importlib.metadata look-up.
+
 Baseline: `python -c pass`, the floor every Python command pays (interpreter and site start-up). A
 `python -c 'import numpy'` baseline would hide exactly the cost that lazy imports avoid, so it is not used.
 Each child's CPU time (user + system, from its rusage) is printed beside the wall time: on a loaded machine it
@@ -68,6 +72,9 @@ def main(argv=None) -> list[dict]:
                 "limits": py + ["-m", "meterlink", "limits", "900MHz"],
                 "sessions": py + ["-m", "meterlink", "sessions", "--db", str(db)],
                 "help": py + ["-m", "meterlink", "--help"]}
+        script = Path(sys.executable).with_name("meterlink")
+        if script.is_file():        # installed (pip install -e . or a wheel): the generated entry point
+            cmds["script"] = [str(script), "limits", "900MHz"]
         r, c = run_in_turn(cmds, n, 3, env)
         heavy = {k: loaded(cmds[k][3:], env) for k in ("limits", "sessions", "help")}
         peak = {k: _common.child_peak_rss_mib(cmds[k], cwd=_common.ROOT, env=env) for k in heavy}
@@ -87,6 +94,16 @@ def main(argv=None) -> list[dict]:
             args.json, peak_mb=peak[k], seconds=r[k]["median"], baseline_s=bare["median"], runs=r[k]["runs"],
             baseline_runs=bare["runs"], heavy_loaded=heavy[k], cpu_s=c[k]["median"], cpu_runs=c[k]["runs"],
             baseline_cpu_s=c["bare"]["median"]))
+    if "script" in r:
+        ratio = r["script"]["median"] / r["limits"]["median"]
+        out.append(_common.report(
+            "cli_script", f"the console script `meterlink limits 900MHz`: {_common.timing_text(r['script'], 'ms')}, "
+            f"CPU {c['script']['median'] * 1000:.0f} ms", f"python -m meterlink limits 900MHz (same run) "
+            f"{_common.timing_text(r['limits'], 'ms')}, CPU {c['limits']['median'] * 1000:.0f} ms", ratio,
+            f"{ratio:.2f}x python -m meterlink", "<= 1.1x python -m meterlink (nothing extra for the entry point)",
+            ratio <= 1.1, args.json, seconds=r["script"]["median"], baseline_s=r["limits"]["median"],
+            runs=r["script"]["runs"], baseline_runs=r["limits"]["runs"], cpu_s=c["script"]["median"],
+            baseline_cpu_s=c["limits"]["median"]))
     return out
 
 

@@ -90,3 +90,61 @@ def test_relayout_rewrites_old_names_once(old, new):
     rewrite = _relayout().rewrite
     assert rewrite(old) == new
     assert rewrite(new) == new  # idempotent: new-layout text is left alone
+
+
+# -- a house a newcomer can read ---------------------------------------------------------------------
+
+MAX_CLASS_LINES = 300    # issue 15: modules a newcomer reads in one sitting, no class over about 300 lines
+
+
+def test_no_class_is_longer_than_a_sitting():
+    import ast
+
+    long = []
+    for path in sorted((ROOT / "meterlink").rglob("*.py")) + sorted((ROOT / "simulators").rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.ClassDef) and node.end_lineno - node.lineno + 1 > MAX_CLASS_LINES:
+                long.append(f"{path.relative_to(ROOT)}:{node.lineno} {node.name}: "
+                            f"{node.end_lineno - node.lineno + 1} lines")
+    assert long == [], long
+
+
+def _module_map() -> dict[str, set[str]]:
+    """DEVELOPERS.md's layout tree: the words of each package's line, by the package's name."""
+    import re
+
+    text = (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
+    tree = text.split("## Layout", 1)[1].split("```\nmeterlink/\n", 1)[1].split("```", 1)[0]
+    lines = {}
+    for line in tree.splitlines():
+        m = re.match(r"[├└]── (\S+?)/?\s", line)
+        assert m, f"not a line of the tree: {line!r}"
+        lines["" if m.group(1).endswith(".py,") else m.group(1)] = set(re.findall(r"\w+(?:\.py)?", line))
+    return lines
+
+
+def _unlisted(lines: dict[str, set[str]]) -> list[str]:
+    """Packages without a line in the map, and modules not named on their package's line."""
+    folders = {p.parent for p in (ROOT / "meterlink").glob("*/__init__.py")} | {ROOT / "simulators"}
+    missing = []
+    for folder in sorted(folders):
+        words = lines.get(folder.name)
+        if words is None:
+            missing.append(f"package {folder.name}/ has no line")
+            continue
+        missing += [f"{folder.name}/{m.name}" for m in sorted(folder.glob("*.py"))
+                    if m.name != "__init__.py" and m.stem not in words]
+    missing += [f"meterlink/{m.name}" for m in sorted((ROOT / "meterlink").glob("*.py")) if m.name not in lines[""]]
+    return missing
+
+
+def test_the_module_map_in_developers_md_names_every_package_and_module():
+    assert _unlisted(_module_map()) == []
+
+
+def test_the_module_map_check_finds_what_is_left_out():
+    lines = _module_map()
+    lines["device"] = lines["device"] - {"handshake"}
+    lines[""] = lines[""] - {"cautions.py"}
+    del lines["planning"]
+    assert _unlisted(lines) == ["device/handshake.py", "package planning/ has no line", "meterlink/cautions.py"]

@@ -246,3 +246,26 @@ def test_lab_import_writes_the_certificate_pdf_beside_the_page(tmp_path, capsys)
     from meterlink.lab.html import RESULTS_STATEMENT
     check_pdf(out / "certificate.pdf", (out / "certificate.html").read_text(encoding="utf-8"),
               "Calibration certificate LAB-CLI-1", RESULTS_STATEMENT)
+
+
+def test_one_command_renders_a_survey_and_a_lab_folder_to_pdf(survey_db, tmp_path, capsys):
+    # `meterlink render` is the one command for every report: the survey and the lab certificate as PDF too
+    # (the session report through render is test_session_report_pdf above), each checked on its layout
+    from test_lab_cli import _readings
+
+    from meterlink.lab.html import RESULTS_STATEMENT
+
+    db, sid = survey_db
+    assert main(["render", str(db), "--session", str(sid), "--format", "pdf", "--out", str(tmp_path / "s")]) == 0
+    html = (tmp_path / "s" / "report.html").read_text(encoding="utf-8")
+    assert check_pdf(tmp_path / "s" / "report.pdf", html, f"survey session {sid}") >= 2
+    _readings(tmp_path)
+    issued = tmp_path / "issued"
+    assert main(["lab", "import", str(tmp_path / "hand.csv"), "--session", str(tmp_path / "session.toml"),
+                 "--out", str(issued), "--register", str(tmp_path / "reg.tsv"), "--json"]) == 0
+    assert main(["render", str(issued), "--lab-session", str(tmp_path / "session.toml"), "--format", "pdf",
+                 "--out", str(tmp_path / "c")]) == 0
+    assert "certificate.pdf" in capsys.readouterr().out
+    html = (tmp_path / "c" / "certificate.html").read_text(encoding="utf-8")
+    assert html == (issued / "certificate.html").read_text(encoding="utf-8")
+    check_pdf(tmp_path / "c" / "certificate.pdf", html, "Calibration certificate LAB-CLI-1", RESULTS_STATEMENT)

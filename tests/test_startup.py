@@ -5,6 +5,7 @@ Speed itself is measured in bench/bench_cli.py; here the check is which modules 
 
 from __future__ import annotations
 
+import re
 import subprocess
 import sys
 
@@ -21,9 +22,9 @@ def imported(*argv: str, cwd=None) -> set[str]:
 
 
 @pytest.mark.parametrize("argv", [("limits", "900MHz"), ("limits", "2.45GHz", "--json"), ("--help",)])
-def test_limits_and_help_load_no_scipy_numpy_matplotlib_or_sqlite(argv):
+def test_limits_and_help_load_no_scipy_numpy_matplotlib_sqlite_or_rich(argv):
     got = imported(*argv)
-    assert not got & {"scipy", "matplotlib", "sqlite_utils", "numpy", "sqlite3", "serial"}, got
+    assert not got & {"scipy", "matplotlib", "sqlite_utils", "numpy", "sqlite3", "serial", "rich"}, got
 
 
 @pytest.mark.parametrize("extra", [(), ("--json",), ("--events", "1", "--json")])
@@ -34,7 +35,47 @@ def test_sessions_reads_on_plain_sqlite3_without_numpy_or_the_store(tmp_path, ex
         s.begin_session("record", "sim")
     got = imported("sessions", "--db", str(db), *extra)
     assert "sqlite3" in got           # it reads a database: the probe sees real imports
-    assert not got & {"numpy", "scipy", "sqlite_utils", "matplotlib", "serial"}, got
+    assert not got & {"numpy", "scipy", "sqlite_utils", "matplotlib", "serial", "rich"}, got
+
+
+def test_at_a_terminal_limits_and_sessions_draw_styled_tables_without_rich(tmp_path):
+    """stdout on a real pty: the same plain tables, styled with ANSI codes, and still no rich (nor numpy)."""
+    import os
+    import select
+
+    from meterlink.storage.store import Store
+
+    db = tmp_path / "m.db"
+    with Store(db) as s:
+        s.begin_session("record", "sim")
+    for argv, expect in ((("limits", "900MHz"), "Reference levels at 900 MHz"),
+                         (("sessions", "--db", str(db)), "sessions in")):
+        master, slave = os.openpty()
+        env = {k: v for k, v in os.environ.items() if k != "NO_COLOR"} | {"COLUMNS": "100", "TERM": "xterm"}
+        p = subprocess.Popen([sys.executable, "-X", "importtime", "-m", "meterlink", *argv], stdout=slave,
+                             stderr=subprocess.PIPE, text=True, env=env)
+        os.close(slave)
+        out = b""
+        while True:               # drain the pty while the command writes (its buffer is small)
+            if select.select([master], [], [], 60)[0]:
+                try:
+                    chunk = os.read(master, 65536)
+                except OSError:   # EIO: the far side closed
+                    break
+                if not chunk:
+                    break
+                out += chunk
+            elif p.poll() is not None:
+                break
+        err = p.communicate(timeout=60)[1]
+        os.close(master)
+        assert p.returncode == 0, err[-2000:]
+        names = {ln.rsplit("|", 1)[1].strip().split(".")[0] for ln in err.splitlines() if ln.startswith("import time:")}
+        assert not names & {"rich", "numpy", "scipy", "sqlite_utils"}, names
+        text = out.decode()
+        assert expect in text and "\x1b[1m" in text          # bold header: styled at a terminal
+        plain = re.sub(r"\x1b\[[0-9;]*m", "", text).replace("\r\n", "\n")
+        assert max(len(ln) for ln in plain.splitlines()) <= 100
 
 
 def test_a_database_error_is_still_one_line(tmp_path):

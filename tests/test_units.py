@@ -17,6 +17,16 @@ def test_z0_from_scipy_constants_not_120_pi():
     assert abs(units.Z0_OHM - 120 * math.pi) > 0.25
 
 
+def test_the_literal_constants_are_scipys_codata_values():
+    # units.py types mu_0, epsilon_0 and c as literals (no scipy import at start-up); each must be
+    # scipy.constants' value: CODATA 2022 (scipy >= 1.15) or 2018, which differ from the 10th digit on
+    # (mu_0 1.256 637 061 27e-6 against 1.256 637 062 12e-6 N/A^2), so rel 1e-9 accepts either and no typo.
+    # c is exact (SI definition of the metre).
+    assert units.MU_0_N_PER_A2 == pytest.approx(constants.mu_0, rel=1e-9)
+    assert units.EPSILON_0_F_PER_M == pytest.approx(constants.epsilon_0, rel=1e-9)
+    assert units.C_M_PER_S == constants.c == 299792458.0
+
+
 def test_plane_wave_power_density_s_equals_e2_over_z0_equals_e_times_h():
     # Plane-wave relations S = E^2/Z0 = E*H = Z0*H^2 (e.g. ICNIRP 2020 Guidelines, Health Phys 118(5),
     # Appendix A definitions; any electromagnetics text).

@@ -15,13 +15,13 @@ ROOT = Path(__file__).resolve().parent.parent
 LAYOUT = {
     "physics": ["units", "interp", "uncertainty", "calibrate", "certificate", "limits", "averaging",
                 "exposure", "verdict", "assessment"],
-    "device": ["protocol", "transport", "link", "mux", "commander", "clock", "conformance"],
+    "device": ["protocol", "transport", "link", "handshake", "mux", "commander", "clock", "conformance"],
     "storage": ["schema", ("storage", "store"), "spans", "salvage", "recorder", "processing", "files", "rows", "batch",
                 "writing", "queries", "recording", "streamed", "listing"],
     "station": [("station", "stationfile"), "monitor", "derived", "spectral", "alarms", "stats", "publish",
                 "hooks", "lock", "notify", "retention", "ingest", "persist", "health", "meterwriter",
                 "period_report"],
-    "reports": ["render", "htmlpage", "session_report", "digits"],
+    "reports": ["render", "htmlpage", "session_report", "digits", "termtable"],
 }
 MAP = {}  # old flat module -> new dotted path below meterlink
 for _pkg, _mods in LAYOUT.items():

@@ -78,31 +78,22 @@ def source_keys(levels: list) -> dict[tuple[str, str], str]:
 
 
 def render_table(levels: list, freq_hz: float, width: int = 200):
-    """A rich Table of the levels (pure: builds, does not print); the check column holds a key
-    explained by render_check_keys. Narrower than NARROW_COLUMNS: short tier ids, compact bands and
-    one letter per source and check status, explained under the table (render_narrow_keys)."""
-    from rich import box
-    from rich.table import Table
-    from rich.text import Text
-
+    """A table of the levels (meterlink.reports.termtable; pure: builds, does not print); the check column
+    holds a key explained by render_check_keys. Narrower than NARROW_COLUMNS: short tier ids, compact bands
+    and one letter per source and check status, explained under the table (render_narrow_keys)."""
     from meterlink.physics.units import format_frequency
+    from meterlink.reports.termtable import Column, Styled, Table
 
     narrow = width < NARROW_COLUMNS
-    title = f"Reference levels at {format_frequency(freq_hz)}"
+    numbers = [Column("E V/m", "right"), Column("H A/m", "right"), Column("S W/m2", "right")]
     if narrow:
-        table = Table(title=title, title_justify="left", header_style="bold", box=box.SIMPLE_HEAD,
-                      padding=(0, 1), collapse_padding=True, pad_edge=False)
-        cols = (("tier", "left"), ("kind", "left"), ("band", "left"), ("E V/m", "right"),
-                ("H A/m", "right"), ("S W/m2", "right"), ("avg", "right"), ("key", "left"))
+        # the standard as a heading row over its levels (no column of its own)
+        cols = [Column("tier", wrap=True), Column("kind", wrap=True), Column("band"), *numbers,
+                Column("avg", "right"), Column("key")]
     else:
-        table = Table(title=title, title_justify="left", header_style="bold", show_lines=False, pad_edge=False)
-        cols = (("standard", "left"), ("tier", "left"), ("kind", "left"), ("band", "left"), ("E V/m", "right"),
-                ("H A/m", "right"), ("S W/m2", "right"), ("averaging", "right"), ("source", "left"),
-                ("check", "left"))
-    for name, justify in cols:
-        # numbers, names and keys never break or get cut; kind and source wrap at spaces
-        table.add_column(name, justify=justify, no_wrap=name not in ("kind", "source", "tier"),
-                         min_width=max(len(lv.standard) for lv in levels) if narrow and name == "tier" else None)
+        cols = [Column("standard"), Column("tier", wrap=True), Column("kind", wrap=True), Column("band"), *numbers,
+                Column("averaging", "right"), Column("source", wrap=True), Column("check")]
+    table = Table(cols, title=f"Reference levels at {format_frequency(freq_hz)}")
     keys = check_keys([lv.status for lv in levels])
     src = source_keys(levels)
     standard = None
@@ -114,41 +105,46 @@ def render_table(levels: list, freq_hz: float, width: int = 200):
         values = (_num(lv.e_v_per_m, lv.e_derived), _num(lv.h_a_per_m, lv.h_derived), s_text,
                   _avg(lv.averaging_time_s))
         style = "green" if lv.fully_checked else "yellow"
-        if narrow:      # the standard as a heading row over its levels (no column of its own)
+        if narrow:
             if lv.standard != standard:
                 standard = lv.standard
-                table.add_row(Text(standard, style="bold"), *[""] * 7)
+                table.add_heading(Styled(standard, "bold"))
             table.add_row(lv.tier, lv.kind.replace("_", " "), f"{lo}-{hi}".replace(" ", ""), *values,
-                          Text(src[(lv.source, lv.status)], style=style))
+                          Styled(src[(lv.source, lv.status)], style))
         else:
             table.add_row(lv.standard, lv.tier_label, lv.kind.replace("_", " "), f"{lo}-{hi}", *values, lv.source,
-                          Text(keys[lv.status], style=style))
+                          Styled(keys[lv.status], style))
     return table
 
 
-def render_narrow_keys(levels: list):
-    """The lines under a narrow table: each key's source and check status."""
-    from rich.text import Text
-
+def render_narrow_keys(levels: list) -> list:
+    """The lines under a narrow table: each key's source and check status (Styled text)."""
     from meterlink.physics.limits import CHECKED_PREFIX
+    from meterlink.reports.termtable import Styled
 
-    out = []
-    for (source, status), key in source_keys(levels).items():
-        out.append(Text(f"{key}: {source}; {status}", style="green" if status.startswith(CHECKED_PREFIX)
-                        else "yellow"))
-    return out
+    return [Styled(f"{key}: {source}; {status}", "green" if status.startswith(CHECKED_PREFIX) else "yellow")
+            for (source, status), key in source_keys(levels).items()]
 
 
-def render_check_keys(levels: list):
-    """The lines explaining the check keys of render_table, one per distinct status."""
-    from rich.text import Text
-
+def render_check_keys(levels: list) -> list:
+    """The lines explaining the check keys of render_table, one per distinct status (Styled text)."""
     from meterlink.physics.limits import CHECKED_PREFIX
+    from meterlink.reports.termtable import Styled
 
-    out = []
-    for status, key in check_keys([lv.status for lv in levels]).items():
-        out.append(Text(f"check {key}: {status}", style="green" if status.startswith(CHECKED_PREFIX) else "yellow"))
-    return out
+    return [Styled(f"check {key}: {status}", "green" if status.startswith(CHECKED_PREFIX) else "yellow")
+            for status, key in check_keys([lv.status for lv in levels]).items()]
+
+
+def brief_table(brief: list[dict], duration_s: float):
+    """The brief-exposure levels as a table (meterlink.reports.termtable)."""
+    from meterlink.reports.termtable import Column, Table
+
+    table = Table([Column("standard"), Column("tier"), Column("U J/m2", "right"),
+                   Column("same as a mean S over the exposure, W/m2", "right", wrap=True), Column("check", wrap=True)],
+                  title=f"Brief exposure of {duration_s:g} s (incident energy density, local)")
+    for b in brief:
+        table.add_row(b["standard"], b["tier"], f"{b['u_j_per_m2']:.4g}", f"{b['mean_s_w_per_m2']:.4g}", b["status"])
+    return table
 
 
 def levels_to_json(levels: list, freq_hz: float) -> dict:
@@ -221,16 +217,13 @@ def draw_chart(path: str, freq_hz: float, standard: str | None, tier: str | None
 
 
 def run(args) -> int:
+    import sys
 
-    from meterlink.reports import digits
-    import shutil
-
-    from rich.console import Console
-
-    from meterlink.physics import limits
     from meterlink.cli import SAFETY_LINE
+    from meterlink.physics import limits
     from meterlink.physics.limits import LimitsError
     from meterlink.physics.units import parse_frequency_hz
+    from meterlink.reports.termtable import Styled, colour_wanted, paint_lines, terminal_width
 
     if args.frequency.strip().startswith("-"):
         raise LimitsError(f"FREQUENCY {args.frequency!r}: a frequency must be positive (e.g. 5MHz)")
@@ -243,29 +236,24 @@ def run(args) -> int:
     if args.chart:
         draw_chart(args.chart, freq_hz, args.standard, args.tier)
     if args.json:
+        from meterlink.reports import digits
+
         doc = levels_to_json(levels, freq_hz)
         if brief is not None:
             doc["brief_exposure"] = brief
         print(digits.dumps(doc, indent=2))
         return 0
-    console = Console(width=shutil.get_terminal_size((160, 24)).columns, highlight=False)
-    console.print(render_table(levels, freq_hz, console.width))
-    for line in render_narrow_keys(levels) if console.width < NARROW_COLUMNS else render_check_keys(levels):
-        console.print(line)
+    width = terminal_width(160)
+    colour = colour_wanted(sys.stdout)
+    lines = render_table(levels, freq_hz, width).lines(width, colour)
+    notes: list = render_narrow_keys(levels) if width < NARROW_COLUMNS else render_check_keys(levels)
     if any(lv.e_derived or lv.h_derived or lv.s_derived for lv in levels):
-        console.print(DERIVED_NOTE)
+        notes.append(DERIVED_NOTE)
     if any(not lv.fully_checked for lv in levels) or any(b["status"] == limits.NOT_CHECKED for b in brief or []):
-        console.print(UNCHECKED_NOTE)
+        notes.append(UNCHECKED_NOTE)
+    lines += paint_lines(notes, width, colour)
     if brief:
-        from rich.table import Table
-
-        bt = Table(title=f"Brief exposure of {args.brief:g} s (incident energy density, local)", title_justify="left",
-                   pad_edge=False)
-        for name in ("standard", "tier", "U J/m2", "same as a mean S over the exposure, W/m2", "check"):
-            bt.add_column(name, justify="right" if "/" in name else "left")
-        for b in brief:
-            bt.add_row(b["standard"], b["tier"], f"{b['u_j_per_m2']:.4g}", f"{b['mean_s_w_per_m2']:.4g}", b["status"])
-        console.print(bt)
-    console.print(PERCENT_NOTE)
-    console.print(SAFETY_LINE)
+        lines += brief_table(brief, args.brief).lines(width, colour)
+    lines += paint_lines([PERCENT_NOTE, Styled(SAFETY_LINE, "bold")], width, colour)
+    print("\n".join(lines))
     return 0

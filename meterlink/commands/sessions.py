@@ -28,10 +28,13 @@ def run(args) -> int:
     if args.json:
         print(json.dumps(rows, indent=2, default=str))
         return 0
-    from rich.console import Console
+    # a plain table (meterlink.reports.termtable), not rich: listing what a file holds starts fast
+    import sys
 
-    con = Console()
-    con.print(_events_table(rows, args.events) if args.events is not None else _sessions_table(rows, args.db))
+    from meterlink.reports.termtable import colour_wanted, terminal_width
+
+    table = _events_table(rows, args.events) if args.events is not None else _sessions_table(rows, args.db)
+    print("\n".join(table.lines(terminal_width(80), colour_wanted(sys.stdout))))
     return 0
 
 
@@ -134,7 +137,7 @@ def _salvage(args) -> int:
 
 _SENSOR = {1: "E probe", 2: "H probe", 3: "dipole + receiver"}
 _OUTCOME_STYLE = {"compliant": "green", "not compliant": "red", "undecided": "yellow",
-                  "conditional pass": "yellow", "conditional fail": "dark_orange", "not assessable": "grey50"}
+                  "conditional pass": "yellow", "conditional fail": "orange", "not assessable": "grey"}
 
 
 def _short_time(t):
@@ -146,25 +149,17 @@ def _short_time(t):
 
 
 def _sessions_table(rows, db):
-    from rich.markup import escape
-    from rich.table import Table
-
+    from meterlink.physics.units import format_frequency
+    from meterlink.reports.termtable import Column, Styled, Table
     from meterlink.safetext import clean_text
 
-    from meterlink.physics.units import format_frequency
-
-    from rich import box
-
-    t = Table(title=f"sessions in {escape(str(db))}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False,
-              padding=(0, 1, 0, 0))
-    for col, just in (("id", "right"), ("kind", "left"), ("instrument", "left"), ("start UTC", "left"),
-                      ("span", "right"), ("data", "right"), ("events", "right"), ("verdict", "left")):
-        t.add_column(col, justify=just, no_wrap=col != "instrument",
-                     min_width={"instrument": 11, "verdict": 16}.get(col))
+    t = Table([Column("id", "right"), Column("kind"), Column("instrument", wrap=True, min_width=11),
+               Column("start UTC"), Column("span", "right"), Column("data", "right"), Column("events", "right"),
+               Column("verdict", min_width=16)], title=f"sessions in {clean_text(str(db))}")
     for r in rows:
-        inst = escape(clean_text(r["model"] or "(no handshake)"))     # device strings: no control codes
+        inst = clean_text(r["model"] or "(no handshake)")     # device strings: no control codes
         if r["sensor_kind"]:
-            inst += f"\n{_SENSOR.get(r['sensor_kind'], '?')} {escape(clean_text(r['probe_serial'] or ''))}"
+            inst += f"\n{_SENSOR.get(r['sensor_kind'], '?')} {clean_text(r['probe_serial'] or '')}"
         if r["freq_hz"]:
             inst += f"\nat {format_frequency(r['freq_hz'])}"
         elif r["band_lo_hz"] and r["band_hi_hz"]:
@@ -172,29 +167,27 @@ def _sessions_table(rows, db):
         span = (r["last_utc"] - r["first_utc"]) if r["first_utc"] is not None else None
         data = f"{r['readings']} rd" if r["readings"] else (f"{r['spectra']} sp" if r["spectra"] else "-")
         data += f"\n{r['calibrations']} cal" if r["calibrations"] else ""
-        ev = str(r["events"]) + (f"\n[yellow]{r['warnings']} warn[/]" if r["warnings"] else "") + \
-            (f"\n[red]{r['errors']} err[/]" if r["errors"] else "")
+        events = [str(r["events"])] + ([Styled(f"{r['warnings']} warn", "yellow")] if r["warnings"] else []) + \
+            ([Styled(f"{r['errors']} err", "red")] if r["errors"] else [])
         outcome = r["last_outcome"] or "-"
-        t.add_row(str(r["id"]), r["kind"], inst, _short_time(r["first_utc"] or r["started_utc"]).replace(" ", "\n"),
-                  "-" if span is None else f"{span / 60:.1f} min", data, ev,
-                  f"[{_OUTCOME_STYLE.get(outcome, 'default')}]{escape(outcome)}[/]")
+        t.add_row(str(r["id"]), clean_text(r["kind"]), inst,
+                  _short_time(r["first_utc"] or r["started_utc"]).replace(" ", "\n"),
+                  "-" if span is None else f"{span / 60:.1f} min", data, events,
+                  Styled(clean_text(outcome), _OUTCOME_STYLE.get(outcome, "")))
     t.caption = ("rd readings, sp spectra, cal calibrations applied; times by each device's clock.\n"
                  "A session's events: meterlink sessions --events ID")
     return t
 
 
 def _events_table(rows, sid):
-    from rich.markup import escape
-    from rich.table import Table
-
+    from meterlink.reports.termtable import Column, Styled, Table
     from meterlink.safetext import clean_text
 
-    t = Table(title=f"events of session {sid}", title_justify="left")
-    for col in ("time", "severity", "kind", "message"):
-        t.add_column(col)
+    t = Table([Column("time"), Column("severity"), Column("kind", wrap=True), Column("message", wrap=True)],
+              title=f"events of session {sid}")
     style = {"warning": "yellow", "error": "red"}
     for e in rows:
         sev = e["severity"]
-        t.add_row(_short_time(e["t_utc"]), f"[{style.get(sev, 'default')}]{escape(sev)}[/]", escape(clean_text(e["kind"])),
-                  escape(clean_text(e["message"] or "")))
+        t.add_row(_short_time(e["t_utc"]), Styled(clean_text(sev), style.get(sev, "")), clean_text(e["kind"]),
+                  clean_text(e["message"] or ""))
     return t

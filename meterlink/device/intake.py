@@ -1,29 +1,98 @@
-"""Frames in: how the link checks and delivers what the meter sends (a part of MeterLink, kept apart).
+"""Frames in: how the link reads, checks and delivers what the meter sends (a part of MeterLink, kept apart).
 
-Every frame is parsed (a malformed payload becomes an event, never a reading), its sequence number
+Each read of the port is deframed (bytes that are no frame, or fail their CRC, are counted and
+reported as events; a port silent for too long is a LinkError, so the link reconnects). Every frame is parsed (a malformed payload becomes an event, never a reading), its sequence number
 checked against the last (repeats, gaps with exact counts, a step backwards), a device restart
 recognised (BOOT, or the sequence falling back to near 0 while the device clock goes back), FAULT
 frames turned into events, and data frames timed by the device clock and queued. Runs of clean,
 consecutive AXES frames are delivered as one ReadingBatch. MeterLink (meterlink/device/link.py)
-supplies the state and the queue; this mixin only holds the logic.
+supplies the state and the queue; this mixin only holds the logic. The port is read by the link's
+own thread or by the shared reader thread (meterlink/device/mux.py), which calls _pump_data.
 """
 
 from __future__ import annotations
+
+import time
+from typing import Any
 
 import numpy as np
 
 from meterlink.device.clock import HALF_TICK
 from meterlink.device.items import Reading, ReadingBatch, SpectrumReading, StatusReport
-from meterlink.device.protocol import (Axes, AxesBatch, Boot, Fault, FaultCode, Frame, Ident, Spectrum, Status,
+from meterlink.device.protocol import (Axes, AxesBatch, Boot, Fault, FaultCode, Frame, Ident, Junk, Spectrum, Status,
                                        parse_payload, seq_delta)
-from meterlink.errors import ProtocolError
+from meterlink.errors import LinkError, ProtocolError
 from meterlink.safetext import clean_text
 
 RESTART_SEQ_MAX = 64  # seq this close to 0 with the tick going back = the device restarted
 
 
+class DeviceRestarted(Exception):
+    """Internal: the device restarted (raised after the bytes read have all been handled); handshake again."""
+
+
 class FrameIntake:
-    """The frames-in half of MeterLink: sequence and restart checks, faults, delivery of data."""
+    """The frames-in half of MeterLink: reading, sequence and restart checks, faults, delivery of data."""
+
+    def _pump(self, timeout_s: float = 0.05) -> list[tuple[Frame, Any]]:
+        """Read once, handle everything that arrived; return (frame, message) pairs handled."""
+        assert self._link is not None
+        data = self._link.read(16384 if self.batched else 4096, timeout_s)
+        now = time.monotonic()
+        self._last_read_n = len(data)
+        if not data:
+            self._check_silence(now)
+            return []
+        return self._pump_data(data, now)
+
+    def _check_silence(self, now: float) -> None:
+        """No frames for too long: a port_silent event and a LinkError (the link reconnects)."""
+        silence = now - self._last_frame_mono
+        if silence <= self.min_silence_s:     # the limit is never below it: no need for the clock's estimate
+            return
+        ratio = self.clock.rate_ratio() or 1.0
+        limit = max(self.min_silence_s, 30.0 / max(ratio, 1.0))  # STATUS comes at least every 10 s device time
+        if silence > limit:
+            self._event("port_silent", "warning", f"no frames from {self.port} for {silence:.1f} s",
+                        silence_s=round(silence, 3))
+            raise LinkError(f"port {self.port!r} silent for {silence:.1f} s")
+
+    def _pump_data(self, data: bytes, now: float) -> list[tuple[Frame, Any]]:
+        """Handle bytes read at now: frames checked and delivered, junk counted; DeviceRestarted on a restart."""
+        if not data:
+            return []
+        junk: dict[str, int] = {}
+        handled = []
+        items = self._reader.feed_batched(data) if self.batched else self._reader.feed(data)
+        for item in items:
+            if isinstance(item, AxesBatch):
+                self._last_frame_mono = now
+                if not self._deliver_batch(item, now):   # not a plain run: frame by frame, as feed() gives it
+                    for frame in item.frames():
+                        msg = self._handle(frame, now)
+                        if msg is not None:
+                            handled.append((frame, msg))
+                continue
+            if isinstance(item, Junk):
+                junk[item.kind] = junk.get(item.kind, 0) + item.n_bytes
+                if item.kind == "crc":
+                    self.stats.crc_errors += 1
+                elif item.kind == "length":
+                    self.stats.length_errors += 1
+                else:
+                    self.stats.garbage_bytes += item.n_bytes
+                continue
+            self._last_frame_mono = now
+            msg = self._handle(item, now)
+            if msg is not None:
+                handled.append((item, msg))
+        for kind, n in junk.items():
+            name = {"crc": "crc_error", "length": "length_error"}.get(kind, "garbage")
+            self._event(name, "warning", f"{n} byte(s) skipped ({kind})", n_bytes=n)
+        if self._restart_pending:
+            self._restart_pending = False
+            raise DeviceRestarted
+        return handled
 
     def _handle(self, frame: Frame, now: float):
         """Check one frame's sequence and deliver it; returns the parsed message or None."""

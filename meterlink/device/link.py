@@ -1,10 +1,18 @@
-"""The meter link: handshake, one reader thread, reconnection; sequence and restart checks in intake.py.
+"""The meter link: one reader thread that connects, streams and reconnects with back-off.
 
 ``MeterLink`` owns a transport and a background thread that deframes, parses and checks every
-frame (the frames-in logic is meterlink.device.intake.FrameIntake, which MeterLink takes in), then
-hands typed items (meterlink.device.items: Connected, Reading, ReadingBatch, SpectrumReading,
+frame, then hands typed items (meterlink.device.items: Connected, Reading, ReadingBatch, SpectrumReading,
 StatusReport, LinkEvent) to consumers through a queue. A frame with a bad CRC or a malformed payload is never delivered as
 a reading; it becomes a LinkEvent. Device strings are untrusted data.
+
+It is read in three parts, one file each:
+
+- this file: the settings and state, the public calls (start, stop, get), the thread that connects,
+  streams and reconnects (or hands a streaming port to the shared reader, meterlink/device/mux.py),
+  and the way out (events, the bounded queue with back-pressure);
+- meterlink/device/handshake.py (CommandExchange): commands and their replies, the handshake, STOP;
+- meterlink/device/intake.py (FrameIntake): frames in: reading the port, sequence and restart checks,
+  faults, delivery of data.
 """
 
 from __future__ import annotations
@@ -12,18 +20,18 @@ from __future__ import annotations
 import queue
 import threading
 import time
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Callable
 
 from meterlink.device.clock import DeviceClock
-from meterlink.errors import LinkError
-from meterlink.safetext import clean_text
-from meterlink.device.protocol import (Ack, AxesBatch, Empty, Fault, Frame, FrameReader, FrameType, Ident,
-                                Junk, PROTOCOL_MAJOR, SetInterval, Status, encode_message)
-from meterlink.device.intake import RESTART_SEQ_MAX, FrameIntake  # noqa: F401 (RESTART_SEQ_MAX re-exported)
+from meterlink.device.handshake import CommandExchange, WrongProtocol
+from meterlink.device.intake import RESTART_SEQ_MAX, DeviceRestarted, FrameIntake  # noqa: F401 (re-exported)
 from meterlink.device.items import (  # noqa: F401 (re-exported: what the link delivers)
     Connected, LinkEvent, LinkStats, Reading, ReadingBatch, SpectrumReading, StatusReport,
 )
+from meterlink.device.protocol import FrameReader, Ident
 from meterlink.device.transport import Link, SerialLink
+from meterlink.errors import LinkError
+from meterlink.safetext import clean_text
 
 if TYPE_CHECKING:
     from meterlink.device.mux import PortMux
@@ -34,19 +42,11 @@ def safe_text(s: str) -> str:
     return clean_text(s)
 
 
-class _Restart(Exception):
-    """Internal: the device restarted; handshake again."""
-
-
 class _Continue(Exception):
     """Internal: the link's own thread takes over reading from the mux, streaming as it was."""
 
 
-class _Fatal(Exception):
-    """Internal: the device cannot be used (wrong protocol major version)."""
-
-
-class MeterLink(FrameIntake):
+class MeterLink(CommandExchange, FrameIntake):
     """Acquire from one meter on a background thread; consumers call get()."""
 
     def __init__(self, port: str | None = None, interval_ms: int = 1000, *,
@@ -150,7 +150,7 @@ class MeterLink(FrameIntake):
 
     def _run(self, after: BaseException | None = None) -> None:
         """Connect, handshake, stream; reconnect with back-off. after: where the mux left off (a LinkError:
-        the port lost or silent; _Restart: the device restarted; another exception: a bug)."""
+        the port lost or silent; DeviceRestarted: the device restarted; another exception: a bug)."""
         handed = False
         try:
             while not self._stop.is_set():
@@ -159,7 +159,7 @@ class MeterLink(FrameIntake):
                         self._connect()
                     else:
                         exc, after = after, None
-                        if isinstance(exc, _Restart):
+                        if isinstance(exc, DeviceRestarted):
                             self._handshake()
                         elif not isinstance(exc, _Continue):
                             raise exc
@@ -181,7 +181,7 @@ class MeterLink(FrameIntake):
                         break
                     self._stop.wait(self._delay)
                     self._delay = min(self._delay * 2, self.backoff_max_s)
-        except _Fatal as exc:
+        except WrongProtocol as exc:
             self._event("handshake", "error", str(exc))
         except Exception as exc:  # a bug must not kill acquisition silently
             self._event("internal_error", "error", f"link thread stopped: {type(exc).__name__}: {exc}")
@@ -222,7 +222,7 @@ class MeterLink(FrameIntake):
         while not self._stop.is_set():
             try:
                 self._pump(self.read_timeout_s)
-            except _Restart:
+            except DeviceRestarted:
                 self._handshake()
             if self.read_pause_s and self._last_read_n < 1024:
                 self._stop.wait(self.read_pause_s)
@@ -248,149 +248,6 @@ class MeterLink(FrameIntake):
         if self._link is not None:
             self._link.close()
         self._link = None
-
-    def _say_stop(self) -> None:
-        if self._link is not None and self._link.is_open:
-            try:
-                self._send(FrameType.STOP, Empty())
-            except LinkError:
-                pass
-
-    # -- frames in -----------------------------------------------------------------------------
-    def _pump(self, timeout_s: float = 0.05) -> list[tuple[Frame, Any]]:
-        """Read once, handle everything that arrived; return (frame, message) pairs handled."""
-        assert self._link is not None
-        data = self._link.read(16384 if self.batched else 4096, timeout_s)
-        now = time.monotonic()
-        self._last_read_n = len(data)
-        if not data:
-            self._check_silence(now)
-            return []
-        return self._pump_data(data, now)
-
-    def _check_silence(self, now: float) -> None:
-        """No frames for too long: a port_silent event and a LinkError (the link reconnects)."""
-        silence = now - self._last_frame_mono
-        if silence <= self.min_silence_s:     # the limit is never below it: no need for the clock's estimate
-            return
-        ratio = self.clock.rate_ratio() or 1.0
-        limit = max(self.min_silence_s, 30.0 / max(ratio, 1.0))  # STATUS comes at least every 10 s device time
-        if silence > limit:
-            self._event("port_silent", "warning", f"no frames from {self.port} for {silence:.1f} s",
-                        silence_s=round(silence, 3))
-            raise LinkError(f"port {self.port!r} silent for {silence:.1f} s")
-
-    def _pump_data(self, data: bytes, now: float) -> list[tuple[Frame, Any]]:
-        """Handle bytes read at now: frames checked and delivered, junk counted; _Restart on a restart."""
-        if not data:
-            return []
-        junk: dict[str, int] = {}
-        handled = []
-        items = self._reader.feed_batched(data) if self.batched else self._reader.feed(data)
-        for item in items:
-            if isinstance(item, AxesBatch):
-                self._last_frame_mono = now
-                if not self._deliver_batch(item, now):   # not a plain run: frame by frame, as feed() gives it
-                    for frame in item.frames():
-                        msg = self._handle(frame, now)
-                        if msg is not None:
-                            handled.append((frame, msg))
-                continue
-            if isinstance(item, Junk):
-                junk[item.kind] = junk.get(item.kind, 0) + item.n_bytes
-                if item.kind == "crc":
-                    self.stats.crc_errors += 1
-                elif item.kind == "length":
-                    self.stats.length_errors += 1
-                else:
-                    self.stats.garbage_bytes += item.n_bytes
-                continue
-            self._last_frame_mono = now
-            msg = self._handle(item, now)
-            if msg is not None:
-                handled.append((item, msg))
-        for kind, n in junk.items():
-            name = {"crc": "crc_error", "length": "length_error"}.get(kind, "garbage")
-            self._event(name, "warning", f"{n} byte(s) skipped ({kind})", n_bytes=n)
-        if self._restart_pending:
-            self._restart_pending = False
-            raise _Restart
-        return handled
-
-    # -- commands ------------------------------------------------------------------------------
-    def _send(self, ftype: int, msg) -> int:
-        assert self._link is not None
-        seq = self._host_seq
-        self._host_seq = (self._host_seq + 1) % (1 << 32)
-        self._link.write(encode_message(msg, seq, 0, ftype))
-        return seq
-
-    def _command(self, ftype: int, msg, want: type, timeout_s: float | None = None):
-        """Send one command and wait for its reply; a FAULT for it is returned too. None on timeout."""
-        seq = self._send(ftype, msg)
-        deadline = time.monotonic() + (timeout_s or self.reply_timeout_s)
-        while time.monotonic() < deadline and not self._stop.is_set():
-            for frame, reply in self._pump(min(0.05, max(0.0, deadline - time.monotonic()))):
-                if isinstance(reply, Fault) and reply.cmd_seq == seq:
-                    return reply
-                if isinstance(reply, want) and (not isinstance(reply, Ack) or reply.cmd_seq == seq):
-                    return reply
-        return None
-
-    def _handshake(self) -> None:
-        """WHO -> IDENT (retried), STATUS_QUERY, SET_INTERVAL, START -> ACK; restarts on BOOT."""
-        for _ in range(5):
-            try:
-                self._handshake_once()
-                return
-            except _Restart:
-                continue
-        raise LinkError(f"device on {self.port!r} keeps restarting during the handshake")
-
-    def _handshake_once(self) -> None:
-        self._last_frame_mono = time.monotonic()
-        ident = None
-        for _ in range(self.who_retries):
-            if self._stop.is_set():
-                return
-            ident = self._command(FrameType.WHO, Empty(), Ident)
-            if isinstance(ident, Ident):
-                break
-        if not isinstance(ident, Ident):
-            raise LinkError(f"no IDENT from the device on {self.port!r} after {self.who_retries} WHO")
-        t_utc = time.time()
-        if ident.proto_major != PROTOCOL_MAJOR:
-            raise _Fatal(f"device speaks protocol {ident.proto_major}.{ident.proto_minor}, this host {PROTOCOL_MAJOR}")
-        ident_tick = self._last_tick if self._last_tick is not None else 0
-        new_boot = self._boot != ident.boot_count or self.clock.mapping is None
-        if new_boot:
-            self.clock.sync(ident.boot_count, ident_tick, t_utc)
-        self._boot = ident.boot_count
-        self.ident = ident
-        status = self._command(FrameType.STATUS_QUERY, Empty(), Status)
-        if self._stop.is_set():
-            return
-        interval = min(max(self.interval_ms, ident.min_interval_ms), ident.max_interval_ms)
-        if interval != self.interval_ms:
-            self._event("interval_clamped", "warning", f"interval {self.interval_ms} ms outside the device's "
-                        f"{ident.min_interval_ms}..{ident.max_interval_ms} ms; using {interval} ms",
-                        requested_ms=self.interval_ms, used_ms=interval)
-        reply = self._command(FrameType.SET_INTERVAL, SetInterval(interval), Ack)
-        if not isinstance(reply, Ack):
-            self._event("handshake", "warning", f"SET_INTERVAL {interval} ms not accepted", interval_ms=interval)
-            interval = status.interval_ms if isinstance(status, Status) else interval
-        reply = self._command(FrameType.START, Empty(), Ack)
-        if self._stop.is_set():
-            return
-        if reply is None:
-            raise LinkError(f"device on {self.port!r} did not acknowledge START")
-        self.stats.handshakes += 1
-        assert self.clock.mapping is not None
-        self._event("handshake", "info", f"connected to {safe_text(ident.model)} serial {safe_text(ident.serial)} "
-                    f"on {self.port} (boot {ident.boot_count}, interval {interval} ms)",
-                    boot=ident.boot_count, interval_ms=interval, new_boot=new_boot)
-        self._put(Connected(ident, status if isinstance(status, Status) else None, ident.boot_count, interval,
-                            self.clock.mapping, self.port))
 
     # -- out -----------------------------------------------------------------------------------
     def _report_drift(self) -> None:

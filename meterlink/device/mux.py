@@ -3,8 +3,8 @@
 A MeterLink given a ``PortMux`` connects and handshakes on its own thread as always; once it
 streams on a port with a descriptor (a local serial port, socket://), it hands the port to the mux
 and that thread ends. The mux then reads every such port as it becomes readable and runs the
-link's own frame handling (``MeterLink._pump_data``), so what is delivered, and every event, is
-the link's. Anything that needs the link's thread (the port lost or silent, a device restart)
+link's own frame handling (``_pump_data``, meterlink/device/intake.py), so what is delivered, and
+every event, is the link's. Anything that needs the link's thread (the port lost or silent, a device restart)
 hands the link back: a new thread carries on exactly where the old loop would have (reconnect
 with back-off, handshake again). The link's ``read_pause_s`` (let frames gather between reads),
 drift reports, silence watchdog and back-pressure (its queue full: the port is left unread, the

@@ -19,10 +19,10 @@ one-line summary every caller prints beside a level.
 from __future__ import annotations
 
 import math
+import os
 import tomllib
 from dataclasses import dataclass
 from functools import lru_cache
-from importlib import resources
 
 from meterlink.errors import MeterlinkError
 from meterlink.physics.units import C_M_PER_S, Z0_OHM, format_frequency
@@ -253,17 +253,19 @@ def _row(spec: dict, where: str, table_checked: str, table_avg, table_avg_checke
     return row
 
 
-def _resource(name: str):
-    return resources.files("meterlink.physics.data.limits").joinpath(name)
+#: The packaged tables (package data of meterlink.physics.data.limits), read as plain files beside this
+#: module: importlib.resources would cost the start-up of every command that shows a level (zipfile & co.)
+_DATA_DIR = os.path.join(os.path.dirname(os.path.abspath(__file__)), "data", "limits")
 
 
 @lru_cache(maxsize=None)
 def _raw(standard: str) -> dict:
-    path = _resource(f"{standard}.toml")
-    if not path.is_file():
+    path = os.path.join(_DATA_DIR, f"{standard}.toml")
+    if os.sep in standard or not os.path.isfile(path):
         raise LimitsError(f"unknown standard {standard!r} (known: {', '.join(standards())})")
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        with open(path, encoding="utf-8") as fh:
+            data = tomllib.loads(fh.read())
     except tomllib.TOMLDecodeError as exc:
         raise _bad(f"{standard}.toml", str(exc)) from None
     if data.get("id") != standard:
@@ -404,7 +406,7 @@ def _level(table: _Table, row: _Row, freq_hz: float) -> ReferenceLevel:
 
 @lru_cache(maxsize=None)
 def _standard_ids() -> tuple[str, ...]:
-    names = [p.name for p in resources.files("meterlink.physics.data.limits").iterdir()]
+    names = os.listdir(_DATA_DIR)
     return tuple(sorted(n[: -len(".toml")] for n in names if n.endswith(".toml")))
 
 
