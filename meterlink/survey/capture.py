@@ -26,6 +26,7 @@ from meterlink.device.link import Connected, LinkEvent, Reading, SpectrumReading
 from meterlink.device.protocol import AXIS_OVER_X, AXIS_OVER_Y, AXIS_OVER_Z, STATUS_BATTERY_LOW, STATUS_OVERRANGE
 from meterlink.storage.recorder import reading_row, spectrum_row, status_row
 from meterlink.survey.model import Sample
+from meterlink.survey.positions import Placing
 
 _OVER = AXIS_OVER_X | AXIS_OVER_Y | AXIS_OVER_Z
 
@@ -117,7 +118,7 @@ class Interrupted(Exception):
     """The capture was stopped (stop event or Ctrl-C); what was collected is still used."""
 
 
-class Capture:
+class Capture(Placing):
     """Consume one MeterLink for a survey session: calibrate, store, and collect samples."""
 
     def __init__(self, link, writer, cert, *, standard: str, tier: str, e_ref_v_per_m: float,
@@ -174,12 +175,6 @@ class Capture:
         self.gnss_events()
         w.flush_if_due()
         return None
-
-    def gnss_events(self) -> None:
-        """Store what the GNSS receiver reported (lost, back, no fix, bad sentences) as events."""
-        if self.gnss is not None:
-            for e in self.gnss.events():
-                self.writer.add_event(e.kind, e.severity, e.message, e.t_utc, **e.detail)
 
     def _probe(self, r: Reading) -> Value:
         a = r.axes
@@ -287,57 +282,6 @@ class Capture:
         if self.gnss is not None:
             self._unplaced.append(row)
         return row
-
-    def place(self, final: bool = True) -> None:
-        """Give the trace rows waiting for one their GNSS position, by time: each reading's UTC less
-        the estimated offset (readings' time - GNSS time) is its GNSS time, and the position there is
-        interpolated between the fixes that bracket it (device.gnss.position_on_track). A row whose
-        later fix has not arrived yet waits, unless final: then the receiver is given a little while
-        (a few fix intervals of host time) to send it, and the row is placed with what there is."""
-        rows = self._unplaced
-        if self.gnss is None or not rows:
-            return
-        from meterlink.device.gnss import position_on_track
-
-        if final:
-            self._await_fix_after(max(r["t_utc"] for r in rows))
-        off = self.gnss.time_offset()
-        if off is None:                  # no fix with a time yet
-            if final:
-                self._unplaced = []
-            return
-        self.offset = off
-        tq = [r["t_utc"] - off.offset_s for r in rows]
-        track = self.gnss.track(min(tq) - self.gnss_max_gap_s, max(tq) + self.gnss_max_gap_s)
-        newest = track[-1].fix_utc if track else -math.inf
-        keep = []
-        for r, t in zip(rows, tq):
-            if not final and t > newest:
-                keep.append(r)
-                continue
-            p = position_on_track(track, t, max_gap_s=self.gnss_max_gap_s, timing_u_s=off.spread_s)
-            if p is not None:
-                r.update(lat_deg=p.lat_deg, lon_deg=p.lon_deg, alt_m=p.alt_m, pos_u_m=p.accuracy_m,
-                         fix_utc=p.fix_utc, fix_quality=p.quality, n_sats=p.n_sats, hdop=p.hdop)
-        self._unplaced = keep
-
-    def _await_fix_after(self, t_utc: float) -> None:
-        """Wait (host time, bounded) for a fix at or after the GNSS time of t_utc; the meter's
-        readings wait in the link's queue meanwhile. No wait when the receiver has no fix."""
-        interval = self.gnss.fix_interval_host_s()
-        if interval is None:
-            return
-        wait_s = min(3.0, max(0.1, 4 * interval))
-        deadline = time.monotonic() + wait_s
-        while time.monotonic() < deadline:
-            off, newest = self.gnss.time_offset(), self.gnss.newest_fix_utc()
-            if off is None or newest is None or self.gnss.latest(None) is None:
-                return
-            if newest >= t_utc - off.offset_s:
-                return
-            if time.monotonic() - self.gnss.last_arrival_host() > wait_s:
-                return                   # fixes stopped coming (garbage on the line): do not wait for one
-            time.sleep(min(0.01, max(0.002, interval / 4)))
 
     def _view(self, base: dict, v: Value, t0, dur, es, phase) -> None:
         if self.on_view is None:

@@ -20,6 +20,7 @@ from meterlink.survey.assess import assess, broadband_reference, point_temperatu
 from meterlink.survey.capture import Capture, View
 from meterlink.survey.model import Point, PointResult, SurveyPlan
 from meterlink.survey.plan import load_plan
+from meterlink.survey.positions import GnssNotes
 
 CONNECT_TIMEOUT_S = 15.0
 
@@ -45,7 +46,7 @@ def walk_path(waypoints, fallback):
     return at
 
 
-class Survey:
+class Survey(GnssNotes):
     """One survey session over one meter; use as a context manager, then measure() points."""
 
     def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
@@ -191,57 +192,6 @@ class Survey:
             if "survey" in self.store.db.table_names() and self.store.db["survey"].count_where(
                     "session_id = ?", [self.session_id]):
                 sstore.end_survey(self.store, self.session_id)
-
-    def _first_fix(self, wait_s: float = 5.0) -> None:
-        """Give the receiver up to wait_s (host seconds) for a first fix; without one the survey
-        goes on and the event says so."""
-        if self.gnss is None:
-            return
-        deadline = time.monotonic() + wait_s
-        while self.gnss.latest(self.gnss_max_age_s) is None and time.monotonic() < deadline:
-            item = self.link.get(0.01)          # keep storing what the meter sends meanwhile
-            if item is not None:
-                self.capture._item(item)
-        if self.gnss.latest(self.gnss_max_age_s) is None:
-            self._writer.add_event("gnss_no_fix_at_start", "warning", f"no GNSS fix from {self.gnss.port} within "
-                                   f"{wait_s:g} s: the survey starts without positions")
-
-    def _gnss_summary(self) -> None:
-        """One closing event with exact counts: values with and without a position, sentences used
-        and rejected, losses of the receiver."""
-        if self.gnss is None or self.capture is None:
-            return
-        self.capture.gnss_events()
-        st = self.gnss.summary()
-        n_all = self.n_positioned + self.n_unpositioned
-        sev = "info" if self.n_unpositioned == 0 else "warning"
-        off = self.capture.offset
-        said = "" if off is None else (f"; readings' time - GNSS time {off.offset_s:+.3f} s (median of {off.n} "
-                                       f"fixes, spread {off.spread_s:.3f} s)")
-        self._writer.add_event(
-            "gnss_summary", sev, f"GNSS on {self.gnss.port}: {self.n_positioned} of {n_all} stored value(s) "
-            f"positioned, {self.n_unpositioned} without position; {st['bad_checksum']} sentence(s) with a bad "
-            f"checksum and {st['malformed']} malformed not used; receiver lost {st['port_losses']} time(s)" + said,
-            positioned=self.n_positioned, unpositioned=self.n_unpositioned,
-            offset_s=None if off is None else off.offset_s, offset_spread_s=None if off is None else off.spread_s,
-            offset_n=None if off is None else off.n, **st)
-
-    def _say_offset(self) -> None:
-        """Once per survey, when the readings' time and GNSS time differ by more than OFFSET_LARGE_S:
-        the event says so (a host clock off UTC, or a meter clock mapped long ago); positions are
-        matched after correcting for it either way."""
-        from meterlink.device.gnss import OFFSET_LARGE_S
-
-        off = self.capture.offset if self.capture is not None else None
-        if off is None or self._offset_said or abs(off.offset_s) <= OFFSET_LARGE_S:
-            return
-        self._offset_said = True
-        self._writer.add_event(
-            "gnss_time_offset", "warning", f"the readings' time and GNSS time differ by {off.offset_s:+.3f} s "
-            f"(median of {off.n} fixes, spread {off.spread_s:.3f} s): positions are matched to readings after "
-            "correcting for it; check the host's clock against UTC (a simulated meter running faster than real "
-            "time shows such an offset too)", offset_s=off.offset_s,
-            spread_s=off.spread_s, n=off.n)
 
     # -- points --------------------------------------------------------------------------------
     def _duration(self, p: Point) -> float:
