@@ -86,6 +86,9 @@ def envelope_svg(points: list[tuple], t0: float, t1: float, bucket_s: float, uni
         out.append(f'<line x1="{L}" x2="{L + pw}" y1="{y(reference):.1f}" y2="{y(reference):.1f}" stroke="#b3261e" '
                    f'stroke-dasharray="6 4"/><text x="{L + pw - 4}" y="{y(reference) - 4:.1f}" text-anchor="end" '
                    f'font-size="11" fill="#b3261e">reference level</text>')
+    elif reference is not None:             # the values are far below it: say where the line would be
+        out.append(f'<text x="{L + pw - 4}" y="{T + 14}" text-anchor="end" font-size="11" fill="#b3261e">'
+                   f'reference level ({_fmt(reference)}) is above this scale</text>')
     if not points:
         out.append(f'<text x="{L + pw / 2}" y="{T + ph / 2}" text-anchor="middle" font-size="13" fill="#55666b">'
                    f'no 6-minute values in this period</text>')
