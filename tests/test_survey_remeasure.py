@@ -138,7 +138,7 @@ def test_cli_measures_a_point_of_a_stored_survey_again_with_its_reason_and_photo
     assert [p["label"] for p in sv["points"]] == ["gate", "far"] and sv["standard"] == before["standard"]
     # the new capture's readings are in a new epoch of the same session, the earlier ones untouched
     assert ("re-measurement",) in epochs and n_epoch >= gate["n_readings"]
-    assert sv["photos"][1][0][0] == "gate.png"
+    assert sv["photos"][1][0]["name"] == "gate.png"
     html = render_html(sv, {})
     assert "gate &lt;i&gt;misread&lt;/i&gt;" in html and "<i>misread</i>" not in html
 
