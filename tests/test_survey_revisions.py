@@ -215,3 +215,30 @@ def test_draft_issue_reissue_refuse_and_revise(survey, capsys):
     assert rc == 2 and "--as-issued" in err[0]
     rc, doc, _ = _render(tmp, "old", "--revision", "0", "--as-issued", capsys=capsys)
     assert rc == 0 and doc["revision_state"] == "as issued" and (tmp / "old" / "report.html").read_bytes() == r0
+
+
+def test_a_version_11_file_gains_the_revision_table_and_keeps_its_photos(tmp_path):
+    import sqlite_utils
+
+    from meterlink.storage.schema import MIGRATIONS
+    from meterlink.storage.store import Store
+
+    path = tmp_path / "v11.db"
+    db = sqlite_utils.Database(path)
+    for v in range(1, 12):
+        MIGRATIONS[v](db)
+    db["meta"].upsert({"key": "schema_version", "value": "11"}, pk="key")
+    png = io.BytesIO()
+    Image.new("RGB", (4, 4)).save(png, "PNG")
+    db.execute("INSERT INTO sessions (id, kind, started_utc) VALUES (1, 'survey', 1.0e9)")
+    db.execute("INSERT INTO survey (session_id, standard, tier, decision_rule, created_utc) VALUES "
+               "(1, 'icnirp-2020', 'public', 'simple', 1.0e9)")
+    db.execute("INSERT INTO survey_photos (session_id, point_no, name, mime, data, sha256, added_utc) VALUES "
+               "(1, 1, 'old.png', 'image/png', ?, 'x', 1.0e9)", [png.getvalue()])
+    db.conn.commit()
+    db.close()
+    with Store(path) as store:
+        assert store.schema_version == 12 and "survey_revisions" in store.db.table_names()
+        (entry,) = ph.stored_photos(store.db, 1)[1]
+    assert entry["name"] == "old.png" and entry["caption"] == "" and entry["direction_deg"] is None
+    assert entry["taken"] is None and entry["uri"].endswith(base64.b64encode(png.getvalue()).decode())

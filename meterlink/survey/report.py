@@ -318,7 +318,8 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
     else:
         made = _dt.datetime.now(_dt.timezone.utc).timestamp()
         html = render_html(sv, figures, template_dir, meta, comparisons=comparisons, gis_files=gis_files,
-                           made_utc=made, revisions=rv.history(rows, full_meta, made, draft=not issue),
+                           made_utc=made, revisions=rv.history(rows, full_meta, made, draft=not issue)
+                           if full_meta["number"] else [],
                            draft=not issue)
         if issue:
             with Store(db_path) as store:
