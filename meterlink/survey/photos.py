@@ -111,8 +111,10 @@ def upright(mime: str, data: bytes) -> tuple[str, bytes]:
 
 def photo_entry(name: str, mime: str, data: bytes, caption=None, direction_deg=None, taken=None,
                 taken_from=None) -> dict:
-    """What the report shows of one photo: file name, data: URI (upright), caption, direction, time."""
-    return {"name": name, "uri": data_uri(*upright(mime, data)), "caption": caption or "",
+    """What the report shows of one photo: file name, data: URI (upright), SHA-256 of the bytes as
+    stored, caption, direction, time."""
+    return {"name": name, "uri": data_uri(*upright(mime, data)), "sha256": hashlib.sha256(data).hexdigest(),
+            "caption": caption or "",
             "direction_deg": direction_deg, "taken": taken, "taken_from": taken_from}
 
 

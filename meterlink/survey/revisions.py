@@ -41,7 +41,11 @@ def content_digest(sv: dict, meta: dict) -> str:
         if hasattr(v, "tolist"):
             return v.tolist()
         return repr(v)
-    doc = {"survey": plain(sv), "signoff": {k: meta.get(k, "") for k in SIGNOFF_KEYS}}
+    # a photo by the checksum of its stored bytes, not by the upright copy embedded (which another Pillow
+    # version may encode differently)
+    shown = {no: [{k: v for k, v in e.items() if k != "uri"} for e in entries]
+             for no, entries in (sv.get("photos") or {}).items()}
+    doc = {"survey": plain({**sv, "photos": shown}), "signoff": {k: meta.get(k, "") for k in SIGNOFF_KEYS}}
     text = json.dumps(doc, sort_keys=True, ensure_ascii=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
 
