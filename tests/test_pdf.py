@@ -158,6 +158,21 @@ def test_a_long_wide_table_wraps_repeats_its_header_and_keeps_rows_whole(survey_
     pages, problems = layout_problems(html)
     assert problems == [] and pages >= 3
     assert repeated_header_rows(html) >= 2           # the points and the extrapolation tables span pages
+    # the points table: ten columns at 8 pt or more (it was twelve at 7 pt), and each point's second line
+    # (follow-up, notes) on the page of its first
+    doc = weasyprint.HTML(string=html).render()
+    sizes, point_on = set(), defaultdict(set)
+    for i, page in enumerate(doc.pages):
+        for table in (b for b in page._page_box.descendants() if isinstance(b, boxes.TableBox)
+                      and "points" in (b.element.get("class") or "").split()):
+            sizes |= {b.style["font_size"] for b in table.descendants() if isinstance(b, boxes.TextBox)}
+            for group in (b for b in table.descendants() if isinstance(b, boxes.TableRowGroupBox) and not b.is_header):
+                point_on[group.element].add(i)
+                assert len(group.element.findall("tr")) == 2            # every point here has notes
+            assert len(table.element.find("thead").findall("tr/th")) == 10
+    assert sizes and min(sizes) >= 8 * 96 / 72                            # CSS px: 96 per inch, 72 pt per inch
+    assert len(point_on) == 40 and max(len(p) for p in point_on.values()) == 1
+    assert len(set().union(*point_on.values())) >= 2                      # and the table does span pages
 
 
 def test_the_check_finds_a_table_past_the_page_without_print_css(survey_db, tmp_path):
