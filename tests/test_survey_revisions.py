@@ -177,6 +177,9 @@ def test_draft_issue_reissue_refuse_and_revise(survey, capsys):
     rc, doc, _ = _render(tmp, "again", "--format", "pdf", capsys=capsys)
     assert rc == 0 and doc["revision_state"] == "as issued"
     assert (tmp / "again" / "report.html").read_bytes() == r0 and (tmp / "again" / "report.pdf").is_file()
+    # the footer of every page names the report and revision; the draft's also says DRAFT
+    assert "report SR-&lt;5&gt; rev. 0, survey session" in r0.decode()
+    assert "report SR-&lt;5&gt; rev. 0 DRAFT, survey session" in draft
 
     # the same number and revision with another sign-off: one line, nothing written
     rc, _, err = _render(tmp, "x1", "--reviewer", "B. Reviewer", capsys=capsys)

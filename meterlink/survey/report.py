@@ -133,7 +133,9 @@ def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, meta: di
         sv["created_utc"], _dt.timezone.utc).date()
     meta = report_meta(sv, meta)
     made_utc = _dt.datetime.now(_dt.timezone.utc).timestamp() if made_utc is None else made_utc
-    number = f"report {meta['number']} rev. {meta['revision']}, " if meta["number"] else ""
+    # on every printed page: a draft cannot pass for the issued revision
+    number = (f"report {meta['number']} rev. {meta['revision']}{' DRAFT' if draft else ''}, " if meta["number"]
+              else "")
     conditions = {"weather": "", "temperature_degc": None, "humidity_percent": None, "transmitter": None,
                   **site_conditions(_plan_doc(sv), sv.get("plan_path") or "the stored plan")}
     return render("survey.html", template_dir, sv=sv, ses=sv["session"], pts=sv["points"], title=title,
