@@ -142,7 +142,9 @@ def test_survey_report_pdf_pages_footer_and_tables_within_the_page(survey_db, tm
     assert pages >= 2            # the survey report of two points does not fit one A4 page
     # the long unbroken label is wrapped over several lines of its cell, whole, not cut
     cells = wrapped_cells(html)
-    assert cells.get(f"long-{LONG}", 0) >= 3 and cells.get(LONG, 0) >= 3
+    assert cells.get(f"long-{LONG}", 0) >= 3
+    # the notes: on the point's second line (after its follow-up), across nine of the ten columns, wrapped whole
+    assert [n for text, n in cells.items() if text.endswith("; " + LONG) or text.endswith(";" + LONG)] >= [2]
 
 
 def test_a_long_wide_table_wraps_repeats_its_header_and_keeps_rows_whole(survey_db):
@@ -156,6 +158,21 @@ def test_a_long_wide_table_wraps_repeats_its_header_and_keeps_rows_whole(survey_
     pages, problems = layout_problems(html)
     assert problems == [] and pages >= 3
     assert repeated_header_rows(html) >= 2           # the points and the extrapolation tables span pages
+    # the points table: ten columns at 8 pt or more (it was twelve at 7 pt), and each point's second line
+    # (follow-up, notes) on the page of its first
+    doc = weasyprint.HTML(string=html).render()
+    sizes, point_on = set(), defaultdict(set)
+    for i, page in enumerate(doc.pages):
+        for table in (b for b in page._page_box.descendants() if isinstance(b, boxes.TableBox)
+                      and "points" in (b.element.get("class") or "").split()):
+            sizes |= {b.style["font_size"] for b in table.descendants() if isinstance(b, boxes.TextBox)}
+            for group in (b for b in table.descendants() if isinstance(b, boxes.TableRowGroupBox) and not b.is_header):
+                point_on[group.element].add(i)
+                assert len(group.element.findall("tr")) == 2            # every point here has notes
+            assert len(table.element.find("thead").findall("tr/th")) == 10
+    assert sizes and min(sizes) >= 8 * 96 / 72                            # CSS px: 96 per inch, 72 pt per inch
+    assert len(point_on) == 40 and max(len(p) for p in point_on.values()) == 1
+    assert len(set().union(*point_on.values())) >= 2                      # and the table does span pages
 
 
 def test_the_check_finds_a_table_past_the_page_without_print_css(survey_db, tmp_path):

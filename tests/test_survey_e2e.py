@@ -136,7 +136,9 @@ def test_dipole_survey_emitters_and_total_exposure_ratio(tmp_path):
 def test_interactive_survey_scripted_answers(tmp_path):
     answers = iter(["Brannock Tor transmitting site", "A. Example", "icnirp-1998", "public", "simple",
                     "demo-probe", "25",
-                    "", "", "",            # declared frequency: the certificate's range; no sources; no report number
+                    "", "",                # declared frequency: the certificate's range; no sources
+                    "", "", "", "",        # conditions not recorded (weather, temperature, humidity), state not confirmed
+                    "",                    # no report number
                     "walk-in point", "spot", "1.5", "", "4", "by the gate",   # label, mode, height, position,
                     "",                                                   # duration, notes; no photo
                     "",                                                   # ready prompt: Enter

@@ -43,12 +43,25 @@ technology = "LTE"
 power_w = 250.0
 max_power_w = 400.0
 
+[conditions]
+weather = "overcast, <dry>"
+temperature_degc = 11.5
+humidity_percent = 55.0
+
+[transmitter]
+confirmed_with = "N. Operator & desk"
+confirmed_at = "2027-03-30 09:40"
+state = "all sectors on air at <typical> load"
+
 [report]
 number = "SR-<7>"
 assessor = "A. Assessor"
 qualification = "RF safety assessor"
 organisation = "Org & Co"
 date = "2027-04-01"
+reviewer = "C. <Checker>"
+reviewer_qualification = "senior assessor"
+review_date = "2027-04-02"
 
 [[point]]
 label = "gate <x>"
@@ -56,7 +69,7 @@ x_m = -60.0
 y_m = 40.0
 height_m = 1.5
 duration_s = 4.0
-photos = ["gate.png"]
+photos = [{file = "gate.png", caption = "looking <in> from the gate", direction_deg = 250.0}]
 
 [[point]]
 label = "mast"
@@ -89,18 +102,26 @@ def _answers(tmp):
             ("Source 1 name", "Pole <LTE>"), ("frequency (MHz)", "806"), ("technology", "LTE"),
             ("power during the survey", "oops"), ("power during the survey", "250"),   # a slip is asked again
             ("maximum power", "400"), ("Source 2 name", ""),
+            ("Weather", "overcast, <dry>"), ("air temperature", "11.5"), ("relative humidity", "120"),
+            ("relative humidity", "55"),                                  # out of range: asked again
+            ("Transmitter state confirmed with", "N. Operator & desk"), ("confirmed when", "2027-03-30 09:40"),
+            ("state confirmed", "all sectors on air at <typical> load"),
             ("Report number", "SR-<7>"), ("Assessor", "A. Assessor"), ("qualification", "RF safety assessor"),
-            ("Organisation", "Org & Co"), ("Report date", "2027-04-01")]
+            ("Organisation", "Org & Co"), ("Report date", "2027-04-01"), ("Checked by", "C. <Checker>"),
+            ("reviewer's qualification", "senior assessor"), ("review date", "2027-04-02")]
 
     def point(n, label, xy, notes, photos):
         return ([(f"Point {n} label", label), ("Mode", "spot"), ("Height", "1.5"), ("Position", xy),
-                 ("Duration", "4"), ("Notes", notes)] + [("Photo of", p) for p in photos] + [("Photo of", "")]
+                 ("Duration", "4"), ("Notes", notes)] + [a for p in photos for a in p] + [("Photo of", "")]
                 )                              # positions given: the mover places the probe, no "hold" prompt
-    return (head + point(1, "gate <x>", "-60, 40", "", [str(tmp / "missing.png"), str(tmp / "gate.png")])
+    gate = [("Photo of", str(tmp / "missing.png")), ("Photo of", str(tmp / "gate.png")),
+            ("caption", "looking <in> from the gate"), ("direction", "400"), ("direction", "250")]
+    return (head + point(1, "gate <x>", "-60, 40", "", [gate])
             + [("Measure a point again", "")]
             + point(2, "mast", "4, -4", "by the <fence>", [])
             + [("Measure a point again", "r"), ("Reason", "  "), ("Reason", REASON),
-               ("Photo of 'mast'", str(tmp / "mast.png")), ("Photo of 'mast'", ""),
+               ("Photo of 'mast'", str(tmp / "mast.png")), ("caption", ""), ("direction", ""),
+               ("Photo of 'mast'", ""),
                ("Measure a point again", ""), ("Point 3 label", "")])
 
 
@@ -148,6 +169,12 @@ def test_the_same_answers_give_the_same_report_sections(both):
                        ("id='basis'", "id='points'"), ("id='signoff'", "id='cautions'")):
         assert _section(hs, start, end) == _section(hi, start, end), start
     assert "Report SR-&lt;7&gt;, revision 0" in hs and "Report SR-&lt;7&gt;, revision 0" in hi
+    basis = _section(hi, "id='basis'", "id='points'")
+    assert "overcast, &lt;dry&gt;; air temperature 11.5 °C; relative humidity 55 %" in basis
+    assert "confirmed with N. Operator &amp; desk, 2027-03-30 09:40: all sectors on air at &lt;typical&gt; load" in basis
+    assert "C. &lt;Checker&gt;" in _section(hi, "id='signoff'", "id='cautions'")
+    # extrapolated to 400 W, with the transmitter state confirmed: no warning that it was not
+    assert "not confirmed with the operator" not in hi and "at the maximum\npower declared" in hi
     for key in ("standard", "tier", "decision_rule", "e_ref_v_per_m", "band_lo_hz", "band_hi_hz", "followup_percent",
                 "certificate_sha256"):
         assert svs[key] == svi[key], key
@@ -193,7 +220,11 @@ def test_report_concludes_on_the_new_capture_lists_the_old_and_embeds_moved_phot
     photos = _section(html, "id='photos'", "id='signoff'")
     for f in ("gate-moved.png", "moved-away.png"):
         assert "data:image/png;base64," + base64.b64encode((tmp / f).read_bytes()).decode() in photos
-    assert "point 1\ngate &lt;x&gt;: gate.png" in photos
+    assert "point 1\ngate &lt;x&gt;: gate.png: looking &lt;in&gt; from the gate." in photos
+    # 250 degrees from north: west-south-west on the 16-point compass (247.5 to 270 less half a point)
+    assert "Looking 250° from north (WSW)." in photos
+    assert "Direction of view not given." in photos                      # the mast photo: none entered
+    assert "at the latest (file modification time; the photo holds no EXIF time)" in photos
     # the PDF: every page numbered and identified, the conclusion and the replaced capture in it
     ident = "Survey of Test <i>ground</i>, report SR-<7> rev. 0"
     pages = check_pdf(pdf, html, ident)

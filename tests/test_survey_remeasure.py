@@ -122,7 +122,7 @@ def test_cli_measures_a_point_of_a_stored_survey_again_with_its_reason_and_photo
     sim.move_to((4.0, -4.0, 1.5))          # the technician stands where the plan meant: near the mast
     assert main(["survey", "--port", sim.port, "--db", str(tmp / "s.db"), "--session", str(sid),
                  "--remeasure", "1", "--reason", "gate <i>misread</i>", "--photo", str(tmp / "gate.png"),
-                 "--json"]) == 0
+                 "--photo-caption", "gate from the <lane>", "--photo-direction", "180", "--json"]) == 0
     out = json.loads(capsys.readouterr().out)
     assert out["point"]["label"] == "gate" and out["reason"] == "gate <i>misread</i>"
     with Store(tmp / "s.db", readonly=True) as store:
@@ -138,8 +138,10 @@ def test_cli_measures_a_point_of_a_stored_survey_again_with_its_reason_and_photo
     assert [p["label"] for p in sv["points"]] == ["gate", "far"] and sv["standard"] == before["standard"]
     # the new capture's readings are in a new epoch of the same session, the earlier ones untouched
     assert ("re-measurement",) in epochs and n_epoch >= gate["n_readings"]
-    assert sv["photos"][1][0][0] == "gate.png"
+    (photo,) = sv["photos"][1]
+    assert photo["name"] == "gate.png" and photo["caption"] == "gate from the <lane>" and photo["direction_deg"] == 180
     html = render_html(sv, {})
+    assert "gate.png: gate from the &lt;lane&gt;.\nLooking 180° from north (S)." in html
     assert "gate &lt;i&gt;misread&lt;/i&gt;" in html and "<i>misread</i>" not in html
 
 
@@ -150,6 +152,9 @@ def test_cli_measures_a_point_of_a_stored_survey_again_with_its_reason_and_photo
     (["--session", "SID", "--remeasure", "gate"], "needs its reason"),
     (["--session", "SID", "--reason", "r"], "go with --remeasure POINT"),
     (["--session", "SID", "--remeasure", "gate", "--reason", "r", "--photo", "nowhere.jpg"], "nowhere.jpg"),
+    (["--session", "SID", "--remeasure", "gate", "--reason", "r", "--photo", "a.jpg", "--photo-direction", "north"],
+     "--photo-direction 'north' is not 0 to 360 degrees from north"),
+    (["--session", "SID", "--remeasure", "gate", "--reason", "r", "--photo-caption", "c"], "more --photo-caption"),
 ])
 def test_cli_remeasure_bad_input_is_one_line_before_the_meter(stored, capsys, args, message):
     from meterlink.cli import main

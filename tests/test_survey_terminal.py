@@ -131,7 +131,9 @@ def test_interactive_survey_ctrl_d_at_the_next_label_keeps_the_point_measured(tm
     term = Terminal("survey", "--port", meter.port, "--db", db)
     for prompt, answer in (("Site name", b"Harrow Common\r"), ("Technician", b"\r"), ("Standard", b"\r"),
                            ("Tier", b"\r"), ("Decision rule", b"\r"), ("Certificate", b"\r"), ("Follow-up", b"\r"),
-                           ("Declared frequency", b"\r"), ("Source 1 name", b"\r"), ("Sources file", b"\r"),
+                           ("Declared frequency", b"\r"), ("Source 1 name", b"\r"), ("Weather", b"\r"),
+                           ("air temperature", b"\r"), ("relative humidity", b"\r"),
+                           ("Transmitter state confirmed with", b"\r"), ("Sources file", b"\r"),
                            ("Report number", b"\r"), ("Point 1 label", b"stile\r"), ("Mode", b"\r"), ("Height", b"\r"),
                            ("Position", b"\r"), ("Duration", b"3\r"), ("Notes", b"\r"), ("Photo of", b"\r")):
         term.expect(prompt)
@@ -172,7 +174,9 @@ def test_interactive_ctrl_d_at_the_hold_prompt_ends_cleanly(tmp_path, meter):
     term = Terminal("survey", "--port", meter.port, "--db", db)
     for prompt, answer in (("Site name", b"Harrow Common\r"), ("Technician", b"\r"), ("Standard", b"\r"),
                            ("Tier", b"\r"), ("Decision rule", b"\r"), ("Certificate", b"\r"), ("Follow-up", b"\r"),
-                           ("Declared frequency", b"\r"), ("Source 1 name", b"\r"), ("Sources file", b"\r"),
+                           ("Declared frequency", b"\r"), ("Source 1 name", b"\r"), ("Weather", b"\r"),
+                           ("air temperature", b"\r"), ("relative humidity", b"\r"),
+                           ("Transmitter state confirmed with", b"\r"), ("Sources file", b"\r"),
                            ("Report number", b"\r"), ("Point 1 label", b"stile\r"), ("Mode", b"\r"), ("Height", b"\r"),
                            ("Position", b"\r"), ("Duration", b"3\r"), ("Notes", b"\r"), ("Photo of", b"\r")):
         term.expect(prompt)

@@ -34,6 +34,15 @@ def add_arguments(parser) -> None:
     parser.add_argument("--report-number", metavar="TEXT", help="survey: report number (default: the plan's [report] "
                         "number)")
     parser.add_argument("--revision", metavar="TEXT", help="survey: report revision (default: the plan's, else 0)")
+    parser.add_argument("--revision-note", metavar="TEXT", help="survey: what this revision changed (needed to issue "
+                        "a revision after the first; default: the plan's [report] revision_note)")
+    parser.add_argument("--reviewer", metavar="NAME", help="survey: who checked the report (default: the plan's)")
+    parser.add_argument("--reviewer-qualification", metavar="TEXT", help="survey: the reviewer's qualification")
+    parser.add_argument("--review-date", metavar="DATE", help="survey: the date the report was checked")
+    parser.add_argument("--as-issued", action="store_true", help="survey: write the kept copy of an issued "
+                        "--revision, even when the survey or the sign-off changed since")
+    parser.add_argument("--issue", action="store_true", help="survey: issue this revision: keep it in the database "
+                        "so that it renders again unchanged and its number and revision cannot carry other content")
     parser.add_argument("--lab-session", metavar="TOML", help="lab folder: the session file the certificate was made "
                         "with (default: the invented demo session of 'lab run')")
     parser.add_argument("--previous", metavar="CERT", help="lab folder: the previous certificate it was compared with")
@@ -129,6 +138,8 @@ def _database(kind, sid, out, args, pdf):
     from meterlink.errors import MeterlinkError
     from meterlink.reports.templating import write_outputs
 
+    if kind != "survey" and (args.issue or args.as_issued):
+        raise MeterlinkError("--issue and --as-issued apply to a survey report only")
     if kind != "station" and args.period:
         raise MeterlinkError("--period applies to a monitoring station database only")
     if kind == "station" and args.period:
@@ -154,8 +165,14 @@ def _database(kind, sid, out, args, pdf):
     elif kind == "survey":
         from meterlink.survey.report import write_report
 
-        html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf,
-                            meta={"number": args.report_number, "revision": args.revision})
+        info = {}
+        html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf, issue=args.issue,
+                            as_issued=args.as_issued, info=info,
+                            meta={"number": args.report_number, "revision": args.revision,
+                                  "revision_note": args.revision_note, "reviewer": args.reviewer,
+                                  "reviewer_qualification": args.reviewer_qualification,
+                                  "review_date": args.review_date})
+        args.revision_state = info["revision_state"]
         files = [html, *([html.with_suffix(".pdf")] if pdf else []), *sorted(html.parent.glob("*.csv"))]
     else:
         from meterlink.reports.session_report import write_session_report
@@ -203,12 +220,16 @@ def run(args) -> int:
         kind, sid = _kind(args.db, args.session)
         files = _database(kind, sid, out, args, pdf)
     if args.json:
-        print(json.dumps({"kind": kind, "session": sid, "files": [str(f) for f in files], "safety": SAFETY_LINE},
-                         indent=2))
+        doc = {"kind": kind, "session": sid, "files": [str(f) for f in files], "safety": SAFETY_LINE}
+        if getattr(args, "revision_state", None):
+            doc["revision_state"] = args.revision_state
+        print(json.dumps(doc, indent=2))
     else:
         what = {"station": f"station period report {args.period}" if args.period else "station page",
                 "lab": "lab certificate",
                 "stations": f"period report of {len(dbs)} stations"}.get(kind, f"{kind} session {sid}")
-        print(f"{what}: " + ", ".join(str(f) for f in files if f.suffix in (".html", ".pdf")))
+        state = {"draft": " (draft: not issued)", "issued": " (issued)",
+                 "as issued": " (the issued revision, unchanged)"}.get(getattr(args, "revision_state", None), "")
+        print(f"{what}{state}: " + ", ".join(str(f) for f in files if f.suffix in (".html", ".pdf")))
         print(SAFETY_LINE)
     return 0

@@ -25,6 +25,31 @@ def add_arguments(parser) -> None:
     again.add_argument("--reason", metavar="TEXT", help="why the point is measured again (shown in the report)")
     again.add_argument("--photo", metavar="FILE", action="append", default=[],
                        help="a PNG or JPEG photo of the point, copied into the database (repeatable)")
+    again.add_argument("--photo-caption", metavar="TEXT", action="append", default=[],
+                       help="what the photo shows: the first --photo-caption goes with the first --photo, ...")
+    again.add_argument("--photo-direction", metavar="DEG", action="append", default=[],
+                       help="direction of view of the photo in degrees from north (0 to 360), in --photo order")
+
+
+def _photos(args) -> list:
+    """--photo files with their --photo-caption and --photo-direction, matched in order."""
+    from meterlink.errors import MeterlinkError
+    from meterlink.survey.model import Photo
+
+    if len(args.photo_caption) > len(args.photo) or len(args.photo_direction) > len(args.photo):
+        raise MeterlinkError(f"{len(args.photo)} --photo given: more --photo-caption or --photo-direction than photos")
+    out = []
+    for i, f in enumerate(args.photo):
+        direction = None
+        if i < len(args.photo_direction):
+            try:
+                direction = float(args.photo_direction[i])
+            except ValueError:
+                direction = -1.0
+            if not 0 <= direction <= 360:
+                raise MeterlinkError(f"--photo-direction {args.photo_direction[i]!r} is not 0 to 360 degrees from north")
+        out.append(Photo(f, args.photo_caption[i] if i < len(args.photo_caption) else "", direction))
+    return out
 
 
 def result_dict(r) -> dict:
@@ -51,7 +76,8 @@ def run(args) -> int:
 
     if not args.port:
         raise MeterlinkError("no --port given (see 'meterlink ports')")
-    if args.remeasure is not None or args.session is not None or args.reason is not None or args.photo:
+    if args.remeasure is not None or args.session is not None or args.reason is not None or args.photo \
+            or args.photo_caption or args.photo_direction:
         return _remeasure(args)
     console = None if args.json else Console()
     if args.plan:
@@ -112,7 +138,7 @@ def _remeasure(args) -> int:
     from meterlink.survey.remeasure import remeasure
 
     if args.remeasure is None or args.session is None:
-        raise MeterlinkError("--session, --reason and --photo go with --remeasure POINT: give the survey "
+        raise MeterlinkError("--session, --reason and --photo (with its caption and direction) go with --remeasure POINT: give the survey "
                              "(--session ID) and the point to measure again")
     if args.plan:
         raise MeterlinkError("--remeasure measures a point of a stored survey: it takes no --plan")
@@ -129,7 +155,7 @@ def _remeasure(args) -> int:
         def ready(point, height_m):
             ask(f"Hold the probe at {point.label!r}, {height_m:.2f} m, then press Enter", default="")
     try:
-        res = remeasure(args.port, args.db, sid, args.remeasure, args.reason or "", photos=args.photo,
+        res = remeasure(args.port, args.db, sid, args.remeasure, args.reason or "", photos=_photos(args),
                         console=console, ready=ready, gnss_port=args.gps)
     except EOFError:
         raise MeterlinkError("input ended before the point was measured again: the survey is unchanged") from None

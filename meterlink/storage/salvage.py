@@ -38,7 +38,7 @@ _GLOBAL_EVENTS = "events of no session"
 _ORDER = ("devices", "sessions", "readings", "reading_spans", "spectra", "spectrum_lines", "status", "events",
           "calibrations", "field_values", "field_spans", "spectrum_values", "survey", "survey_sources", "survey_points",
           "survey_samples", "survey_emitters", "survey_trace", "sel_points", "sel_bands", "sel_traces",
-          "survey_photos")
+          "survey_photos", "survey_revisions")
 
 
 @dataclass

@@ -12,7 +12,7 @@ if TYPE_CHECKING:      # annotations only: the version constants below are read 
     import sqlite_utils
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 11
+SCHEMA_VERSION = 12
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -298,12 +298,29 @@ def _schema_v11_photos(db: sqlite_utils.Database) -> None:
                "UNIQUE (session_id, point_no, sha256))")
 
 
+def _schema_v12_signed(db: sqlite_utils.Database) -> None:
+    """Survey reports a person signs: each issued revision kept whole (its sign-off, what changed, a digest
+    of what it says and the HTML itself), so that an issued revision renders again unchanged and its
+    number cannot be reused for other content; and what a photo shows (caption, direction of view,
+    when it was taken and where that time came from). ADD COLUMN: no photo row rewritten."""
+    db.execute("CREATE TABLE survey_revisions (id INTEGER PRIMARY KEY, session_id INTEGER NOT NULL "
+               "REFERENCES survey(session_id), report_number TEXT NOT NULL, revision TEXT NOT NULL, "
+               "issued_utc REAL NOT NULL, revision_date TEXT, change TEXT NOT NULL, issued_by TEXT, "
+               "meta_json TEXT NOT NULL, content_sha256 TEXT NOT NULL, html TEXT NOT NULL, software_version TEXT, "
+               "UNIQUE (report_number, revision))")
+    db.execute("ALTER TABLE survey_photos ADD COLUMN caption TEXT")
+    db.execute("ALTER TABLE survey_photos ADD COLUMN direction_deg REAL")
+    db.execute("ALTER TABLE survey_photos ADD COLUMN taken TEXT")
+    db.execute("ALTER TABLE survey_photos ADD COLUMN taken_from TEXT")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
                                                                    5: _schema_v5_monitoring, 6: _schema_v6_sync,
                                                                    7: _schema_v7_positions, 8: _schema_v8_field_spans,
                                                                    9: _schema_v9_remeasure,
                                                                    10: _schema_v10_selective,
-                                                                   11: _schema_v11_photos}
+                                                                   11: _schema_v11_photos,
+                                                                   12: _schema_v12_signed}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

@@ -125,8 +125,18 @@ def _sources_ok(d: dict) -> None:
                "source": [{k: v for k, v in d.items() if v is not None}]}, check_photos=False)
 
 
-def ask_photos(ask, label: str, console=None) -> list[str]:
-    """Photo files of a point until an empty entry; each must exist and be a PNG or JPEG image."""
+def _direction(text: str):
+    if not text.strip():
+        return None
+    v = float(text)
+    if not 0 <= v <= 360:
+        raise ValueError(f"direction {text!r} must be from 0 to 360 degrees")
+    return v
+
+
+def ask_photos(ask, label: str, console=None) -> list[dict]:
+    """Photos of a point until an empty entry, as plan entries {file, caption, direction_deg}; each file
+    must exist and be a PNG or JPEG image."""
     from pathlib import Path
 
     from meterlink.survey.photos import read_photo
@@ -138,8 +148,59 @@ def ask_photos(ask, label: str, console=None) -> list[str]:
         return str(Path(text.strip()).resolve())
     out = []
     while (f := _until(ask, console, f"Photo of {label!r} (image file; empty: no more)", photo, "")) is not None:
-        out.append(f)
+        d = {"file": f, "caption": ask("  caption: what it shows (empty: none)", default="").strip() or None,
+             "direction_deg": _until(ask, console, "  direction of view, degrees from north (empty: not noted)",
+                                     _direction, "")}
+        out.append({k: v for k, v in d.items() if v is not None})
     return out
+
+
+def _photo(d: dict):
+    from meterlink.survey.model import Photo
+
+    return Photo(d["file"], d.get("caption", ""), d.get("direction_deg"))
+
+
+def _temperature(text: str):
+    if not text.strip():
+        return None
+    v = float(text)
+    if not -60 <= v <= 70:
+        raise ValueError(f"air temperature {text!r} must be from -60 to 70 degC")
+    return v
+
+
+def _percent(text: str):
+    if not text.strip():
+        return None
+    v = float(text)
+    if not 0 <= v <= 100:
+        raise ValueError(f"relative humidity {text!r} must be from 0 to 100 %")
+    return v
+
+
+def ask_conditions(ask, console=None) -> dict:
+    """Weather and site conditions, and the transmitter state confirmed with the operator, as the plan's
+    [conditions] and [transmitter] tables (absent when nothing was given)."""
+    cond = {"weather": ask("Weather and site conditions (empty: not recorded)", default="").strip() or None,
+            "temperature_degc": _until(ask, console, "  air temperature (degC; empty: not noted)", _temperature, ""),
+            "humidity_percent": _until(ask, console, "  relative humidity (%; empty: not noted)", _percent, "")}
+    out = {}
+    if any(v is not None for v in cond.values()):
+        out["conditions"] = {k: v for k, v in cond.items() if v is not None}
+    who = ask("Transmitter state confirmed with (operator's contact; empty: not confirmed)", default="").strip()
+    if who:
+        out["transmitter"] = {"confirmed_with": who,
+                              "confirmed_at": _until(ask, console, "  confirmed when (date and time)", _nonempty, ""),
+                              "state": _until(ask, console, "  state confirmed (e.g. maximum power, all sectors on "
+                                              "air)", _nonempty, "")}
+    return out
+
+
+def _nonempty(text: str) -> str:
+    if not text.strip():
+        raise MeterlinkError("interactive entry: this needs an answer")
+    return text.strip()
 
 
 def ask_plan(ask, ident=None, console=None, load_declared=None) -> dict:
@@ -169,6 +230,7 @@ def ask_plan(ask, ident=None, console=None, load_declared=None) -> dict:
     sources = ask_sources(ask, console)
     if sources:
         doc["source"] = sources
+    doc.update(ask_conditions(ask, console))
     if load_declared is not None:
         def sources_file(text):
             if not text.strip():
@@ -185,10 +247,16 @@ def ask_plan(ask, ident=None, console=None, load_declared=None) -> dict:
     if number.strip():
         doc["report"] = {"number": number}
         for key, prompt in (("assessor", "Assessor"), ("qualification", "Assessor's qualification"),
-                            ("organisation", "Organisation"), ("date", "Report date")):
+                            ("organisation", "Organisation"), ("date", "Report date"),
+                            ("reviewer", "Checked by (reviewer; empty: not yet)")):
             v = ask(prompt, default="")
             if v:
                 doc["report"][key] = v
+        if doc["report"].get("reviewer"):
+            for key, prompt in (("reviewer_qualification", "  reviewer's qualification"), ("review_date", "  review date")):
+                v = ask(prompt, default="")
+                if v:
+                    doc["report"][key] = v
     return doc
 
 
@@ -233,9 +301,9 @@ def _ask_point(ask, n: int, console=None):
                 d["notes"] = notes
             p = _point(_Ctx("interactive entry"), d, n)
             photos = ask_photos(ask, label, console)
-            if photos:
-                d["photos"] = photos
-            return dataclasses.replace(p, photos=tuple(photos)), d
+            if photos:       # a photo with neither caption nor direction stays a plain file name
+                d["photos"] = [ph if len(ph) > 1 else ph["file"] for ph in photos]
+            return dataclasses.replace(p, photos=tuple(_photo(ph) for ph in photos)), d
         except ValueError as exc:
             msg = f"interactive entry: {exc}" if "position" in str(exc) else "interactive entry: expected a number"
         except MeterlinkError as exc:
@@ -270,7 +338,7 @@ def ask_redo(ask, measured: dict, console=None):
             raise MeterlinkError(f"point {label!r}: a re-measurement needs its reason")
         return text.strip()
     why = _until(ask, console, f"Reason for measuring {label!r} again", reason, "")
-    return label, why, ask_photos(ask, label, console)
+    return label, why, [_photo(ph) for ph in ask_photos(ask, label, console)]
 
 
 def run_interactive(port: str, db_path, *, console=None, ask=None, mover=None, load_declared=None,

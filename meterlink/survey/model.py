@@ -63,6 +63,19 @@ class SelectiveSpec:
 
 
 @dataclass(frozen=True)
+class Photo:
+    """A photo of a point: its file (a path-like, so code that only copies files takes it as a path),
+    what it shows and the direction the camera looked, degrees clockwise from north."""
+
+    path: str
+    caption: str = ""
+    direction_deg: float | None = None
+
+    def __fspath__(self) -> str:
+        return self.path
+
+
+@dataclass(frozen=True)
 class Point:
     """One measurement point of the plan; x/y are local site metres, lat/lon optional."""
 
@@ -79,7 +92,7 @@ class Point:
     scheme: Scheme | None = None        # spatial mode only
     walk_m: tuple[tuple[float, float], ...] = ()   # sweep mode: x/y waypoints walked at height_m
     selective: SelectiveSpec | None = None         # selective mode only
-    photos: tuple[str, ...] = ()        # image files (paths as resolved when the plan was read)
+    photos: tuple[str | Photo, ...] = ()   # image files (paths as resolved when the plan was read)
 
     def position_m(self, height_m: float | None = None) -> tuple[float, float, float] | None:
         """(x, y, z) of the probe at this point, or None without a local position."""

@@ -10,10 +10,13 @@ import tomllib
 from pathlib import Path
 
 from meterlink.errors import MeterlinkError, read_input_text
-from meterlink.survey.model import MODES, FollowUp, Point, SelectiveSpec, Site, Source, SurveyPlan
+from meterlink.survey.model import MODES, FollowUp, Photo, Point, SelectiveSpec, Site, Source, SurveyPlan
 from meterlink.survey.spatial import SCHEMES, scheme_from
 
-_TOP = {"survey", "site", "source", "point", "report"}   # [report]: read by survey/report.py
+_TOP = {"survey", "site", "source", "point", "report", "conditions", "transmitter"}   # [report]: survey/report.py
+_CONDITIONS = {"weather", "temperature_degc", "humidity_percent"}
+_TRANSMITTER = {"confirmed_with", "confirmed_at", "state"}
+_PHOTO = {"file", "caption", "direction_deg"}
 _SURVEY = {"title", "standard", "tier", "rule", "certificate", "interval_ms", "freq_hz", "band_hz",
            "followup_v_per_m", "followup_percent", "settle_s", "spot_s", "sweep_s", "sources_file",
            "prediction_u_db"}
@@ -163,10 +166,7 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
             isinstance(w, list) and len(w) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
                                                          and abs(v) <= MAX_SITE_M for v in w) for w in walk):
         c.fail(what, "walk_m must be a list of [x, y] pairs in metres")
-    photos = d.get("photos", [])
-    if isinstance(photos, str) or not isinstance(photos, list) or not all(
-            isinstance(f, str) and f.strip() for f in photos):
-        c.fail(what, "photos must be a list of file names")
+    photos = _photos(c, d.get("photos", []), what)
     near = d.get("near_field", False)
     if not isinstance(near, bool):
         c.fail(what, f"near_field must be true or false, got {near!r}")
@@ -179,7 +179,39 @@ def _point(c: _Ctx, d: dict, i: int) -> Point:
                  near_field=near, duration_s=c.num(d, "duration_s", what, positive=True, hi=MAX_DURATION_S),
                  scheme=scheme,
                  walk_m=tuple((float(a), float(b)) for a, b in walk), selective=sel,
-                 photos=tuple(str(c.base / f) for f in photos))
+                 photos=photos)
+
+
+def _photos(c: _Ctx, photos, what: str) -> tuple[Photo, ...]:
+    """A point's photos: file names, or tables {file, caption, direction_deg} (degrees from north)."""
+    if isinstance(photos, str) or not isinstance(photos, list):
+        c.fail(what, "photos must be a list of file names or {file, caption, direction_deg} tables")
+    out = []
+    for i, f in enumerate(photos, 1):
+        if isinstance(f, str):
+            f = {"file": f}
+        c.known(f, _PHOTO, f"{what}: photo {i}")
+        name = c.text(f, "file", f"{what}: photo {i}", required=True)
+        out.append(Photo(str(c.base / name), c.text(f, "caption", f"{what}: photo {i}"),
+                         c.num(f, "direction_deg", f"{what}: photo {i}", lo=0.0, hi=360.0)))
+    return tuple(out)
+
+
+def site_conditions(doc: dict, where: str = "<dict>") -> dict:
+    """The plan's [conditions] (weather as text, air temperature in degC, relative humidity in percent)
+    and [transmitter] (the state confirmed with the operator: with whom, when, what), checked; each
+    key present only when given ("transmitter" absent when nothing was confirmed)."""
+    c = _Ctx(where)
+    cond, tx = doc.get("conditions", {}), doc.get("transmitter", {})
+    c.known(cond, _CONDITIONS, "[conditions]")
+    c.known(tx, _TRANSMITTER, "[transmitter]")
+    out = {"weather": c.text(cond, "weather", "[conditions]"),
+           "temperature_degc": c.num(cond, "temperature_degc", "[conditions]", lo=-60.0, hi=70.0),
+           "humidity_percent": c.num(cond, "humidity_percent", "[conditions]", lo=0.0, hi=100.0)}
+    out = {k: v for k, v in out.items() if v not in (None, "")}
+    if tx:
+        out["transmitter"] = {k: c.text(tx, k, "[transmitter]", required=True) for k in sorted(_TRANSMITTER)}
+    return out
 
 
 def load_plan(path_or_dict, *, check_photos: bool = True) -> SurveyPlan:
@@ -246,6 +278,7 @@ def load_plan(path_or_dict, *, check_photos: bool = True) -> SurveyPlan:
                     read_photo(f, p.label)
                 except MeterlinkError as exc:
                     raise PlanError(f"plan {where}: {exc}") from None
+    site_conditions(doc, where)
     interval = c.num(sv, "interval_ms", "[survey]", default=1000, lo=10, hi=3_600_000)
     return SurveyPlan(
         site=site, standard=std, tier=tier, rule=rule,
@@ -284,6 +317,8 @@ def _toml_value(v) -> str:
         return json.dumps(v, ensure_ascii=False).replace("\x7f", "\\u007f")
     if isinstance(v, (list, tuple)):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):     # an inline table (a photo with its caption)
+        return "{" + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items() if x is not None) + "}"
     raise ValueError(f"cannot write {v!r} to a plan")
 
 

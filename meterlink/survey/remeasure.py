@@ -110,7 +110,10 @@ def prepare(db_path, session_id: int, point: str, reason: str, photos=()) -> tup
     plan = stored_plan(sv)
     check_basis(sv, plan)
     import dataclasses
-    return plan, dataclasses.replace(stored_point(sv, row), photos=tuple(str(Path(f).resolve()) for f in photos))
+    from meterlink.survey.model import Photo
+    kept = tuple(dataclasses.replace(f, path=str(Path(f).resolve())) if isinstance(f, Photo) else str(Path(f).resolve())
+                 for f in photos)
+    return plan, dataclasses.replace(stored_point(sv, row), photos=kept)
 
 
 def remeasure(port: str, db_path, session_id: int, point: str, reason: str, *, photos=(), console=None,

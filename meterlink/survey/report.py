@@ -28,7 +28,8 @@ CAUTIONS = (
 
 #: Site outcomes, worst first: the site takes the worst outcome of its assessable points.
 _WORST_FIRST = ("not compliant", "conditional fail", "conditional pass", "compliant")
-_REPORT_KEYS = {"number", "revision", "assessor", "qualification", "organisation", "date"}
+_REPORT_KEYS = {"number", "revision", "assessor", "qualification", "organisation", "date", "reviewer",
+                "reviewer_qualification", "review_date", "revision_note"}
 
 
 def site_outcome(verdicts) -> str:
@@ -66,8 +67,10 @@ def _plan_doc(sv: dict) -> dict:
 
 
 def report_meta(sv: dict, overrides: dict | None = None) -> dict:
-    """Report number, revision and sign-off (assessor, qualification, organisation, date) from the
-    plan's [report] table, options overriding; every value is text ("" when not given)."""
+    """Report number, revision, sign-off (assessor, qualification, organisation, date), the person who
+    checked it (reviewer, reviewer_qualification, review_date) and what this revision changed
+    (revision_note) from the plan's [report] table, options overriding; every value is text ("" when
+    not given)."""
     rep = _plan_doc(sv).get("report", {})
     where = sv.get("plan_path") or "the stored plan"
     if not isinstance(rep, dict):
@@ -86,27 +89,39 @@ def point_photos(sv: dict) -> dict[str, list[tuple[str, str]]]:
     the point was measured, schema version 11); for a point with none kept (a survey recorded before),
     read from the files the plan names (relative to the plan's folder), a missing or non-image file
     being a one-line error."""
-    from meterlink.survey.photos import data_uri, read_photo
+    from meterlink.survey.photos import photo_entry, read_photo, time_taken
+
+    from meterlink.survey.plan import _Ctx, _photos
 
     kept = sv.get("photos") or {}
     out = {p["label"]: kept[p["point_no"]] for p in sv["points"] if p["point_no"] in kept}
     base = Path(sv.get("plan_path") or ".").parent
     for i, pt in enumerate(_plan_doc(sv).get("point", []), 1):
-        names = pt.get("photos", []) if isinstance(pt, dict) else []
-        if isinstance(names, str) or not isinstance(names, list) or not all(isinstance(n, str) for n in names):
-            raise MeterlinkError(f"plan {sv.get('plan_path')}: point {i}: photos must be a list of file names")
-        if pt.get("label") in out:
+        if not isinstance(pt, dict) or pt.get("label") in out:
             continue
-        for name in names:
-            mime, data = read_photo(base / name, pt.get("label"))
-            out.setdefault(pt.get("label"), []).append((name, data_uri(mime, data)))
+        for ph in _photos(_Ctx(str(sv.get("plan_path")), base), pt.get("photos", []), f"point {i}"):
+            mime, data = read_photo(ph, pt.get("label"))
+            out.setdefault(pt.get("label"), []).append(
+                photo_entry(Path(ph.path).name, mime, data, ph.caption, ph.direction_deg, *time_taken(data, ph.path)))
     return out
 
 
+def compass(deg) -> str:
+    """A direction of view as degrees from north with its 16-point compass name: '250 deg (WSW)'."""
+    if deg is None:
+        return ""
+    names = ("N", "NNE", "NE", "ENE", "E", "ESE", "SE", "SSE", "S", "SSW", "SW", "WSW", "W", "WNW", "NW", "NNW")
+    return f"{deg:g}\u00b0 from north ({names[int((deg % 360) / 22.5 + 0.5) % 16]})"
+
+
 def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, meta: dict | None = None, *,
-                comparisons=(), gis_files=(), positions=None) -> str:
+                comparisons=(), gis_files=(), positions=None, made_utc: float | None = None,
+                revisions: list | None = None, draft: bool = True) -> str:
     """The report as one HTML string from a loaded survey (meterlink.survey.store.load_survey),
-    laid out by the survey.html template (restyled from template_dir when given)."""
+    laid out by the survey.html template (restyled from template_dir when given); revisions is the
+    revision history (meterlink.survey.revisions.history), draft whether this one is not issued."""
+    from meterlink.survey.plan import site_conditions
+
     from meterlink.physics.limits import describe_standard
     from meterlink.physics.verdict import get_rule
     from meterlink.reports.templating import render
@@ -117,11 +132,17 @@ def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, meta: di
     expired = bool(due) and _dt.date.fromisoformat(due) < _dt.datetime.fromtimestamp(
         sv["created_utc"], _dt.timezone.utc).date()
     meta = report_meta(sv, meta)
-    number = f"report {meta['number']} rev. {meta['revision']}, " if meta["number"] else ""
+    made_utc = _dt.datetime.now(_dt.timezone.utc).timestamp() if made_utc is None else made_utc
+    # on every printed page: a draft cannot pass for the issued revision
+    number = (f"report {meta['number']} rev. {meta['revision']}{' DRAFT' if draft else ''}, " if meta["number"]
+              else "")
+    conditions = {"weather": "", "temperature_degc": None, "humidity_percent": None, "transmitter": None,
+                  **site_conditions(_plan_doc(sv), sv.get("plan_path") or "the stored plan")}
     return render("survey.html", template_dir, sv=sv, ses=sv["session"], pts=sv["points"], title=title,
                   ident=f"{title}, {number}survey session {int(sv['session_id'])}", expired=expired,
                   meta=meta, conclusion=conclusion(sv), photos=point_photos(sv),
-                  made_utc=_dt.datetime.now(_dt.timezone.utc).timestamp(),
+                  made_utc=made_utc, conditions=conditions, revisions=revisions or [], draft=draft,
+                  compass=compass,
                   site_rows=[(k.replace("_", " "), v) for k, v in site.items() if v not in (None, "")],
                   std=describe_standard(sv["standard"]), rule=get_rule(sv["decision_rule"]),
                   check_status=_check_status(sv), followup=_followup(sv), heights=_heights,
@@ -238,9 +259,16 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
 
 
 def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: bool = False,
-                 meta: dict | None = None) -> Path:
+                 meta: dict | None = None, issue: bool = False, as_issued: bool = False,
+                 info: dict | None = None) -> Path:
     """Write report.html (and report.pdf when asked) and the CSV files of a survey session into
-    out_dir; returns the HTML path. meta overrides the plan's [report] (number, revision, sign-off)."""
+    out_dir; returns the HTML path. meta overrides the plan's [report] (number, revision, sign-off).
+
+    An issued number and revision (meterlink.survey.revisions) is written as issued when the content is
+    the same, refused when it differs; issue=True keeps this revision as issued; as_issued=True writes the
+    kept copy of an issued revision whatever the survey holds now. info, when given, gets
+    "revision_state": "draft", "issued" (issued now) or "as issued" (the kept copy written again)."""
+    from meterlink.survey import revisions as rv
     from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir as checked_dir, write_outputs
     from meterlink.storage.store import Store
     from meterlink.survey import plots
@@ -256,8 +284,17 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise MeterlinkError(f"cannot create report directory {str(out)!r}: {exc.strerror}") from None
-    with Store(db_path, readonly=True) as store:      # a report only reads
+    with Store(db_path, readonly=True) as store:      # a draft only reads; issuing adds one row below
         sv = load_survey(store, int(session_id))
+        full_meta = report_meta(sv, meta)
+        rows = rv.issued(store.db, full_meta["number"])
+    digest = rv.content_digest(sv, full_meta)
+    if as_issued and issue:
+        raise MeterlinkError("--as-issued writes a revision already issued: leave out --issue")
+    kept = rv.as_issued(rows, full_meta) if as_issued else rv.check(rows, int(session_id), full_meta, digest,
+                                                                     issue=issue)
+    if info is not None:
+        info["revision_state"] = "as issued" if kept else "issued" if issue else "draft"
     pts = sv["points"]
     thr = [v for v in (sv["followup_v_per_m"], None if sv["followup_percent"] is None
                        else sv["followup_percent"] / 100 * sv["e_ref_v_per_m"]) if v is not None]
@@ -278,7 +315,17 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
     comparisons = predicted.compare(sv, frame)
     gis_files = [p.name for p in gis.write_gis(sv, frame, out)]
     html_path = out / "report.html"
-    write_outputs(render_html(sv, figures, template_dir, meta, comparisons=comparisons, gis_files=gis_files),
-                  html_path, pdf)
+    if kept:              # the issued revision, unchanged: same content, same page
+        html = kept["html"]
+    else:
+        made = _dt.datetime.now(_dt.timezone.utc).timestamp()
+        html = render_html(sv, figures, template_dir, meta, comparisons=comparisons, gis_files=gis_files,
+                           made_utc=made, revisions=rv.history(rows, full_meta, made, draft=not issue)
+                           if full_meta["number"] else [],
+                           draft=not issue)
+        if issue:
+            with Store(db_path) as store:
+                rv.record(store, int(session_id), full_meta, digest, html, made)
+    write_outputs(html, html_path, pdf)
     write_csv(sv, out)
     return html_path
