@@ -41,7 +41,8 @@ def run(args) -> int:
     from meterlink.physics.certificate import load_certificate
     from meterlink.physics.selective import ChainSpec
     from meterlink.survey.capture import is_dipole
-    from meterlink.survey.selective import Journal, assess_point, load_bands, load_extrapolation, measure_point
+    from meterlink.survey.selective import (Journal, assess_point, check_bands_in_range, load_bands, load_extrapolation,
+                                           measure_point)
 
     for name in ("sweep_time", "timeout"):
         if not 0 < getattr(args, name) <= 3600:
@@ -53,6 +54,7 @@ def run(args) -> int:
     cert = load_certificate(args.antenna_cert)
     if not is_dipole(cert):
         raise MeterlinkError(f"--antenna-cert {args.antenna_cert}: not an antenna (dipole-receiver) certificate")
+    check_bands_in_range(bands, cert, args.antenna_cert)
 
     def orient(axis):
         if args.antenna == "three":
