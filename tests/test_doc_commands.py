@@ -85,3 +85,24 @@ def test_documented_command_parses(where, text, argv, capsys):
         err = capsys.readouterr().err.strip().splitlines()
         pytest.fail(f"{where}: `meterlink {' '.join(argv)}` does not parse (exit {exc.code}): "
                     f"{err[-1] if err else ''}")
+
+
+def test_every_command_and_action_says_what_it_does_and_every_option_has_help():
+    """`meterlink X --help` and `meterlink X ACTION --help` open with a line of what it does, and no
+    option is listed bare (the practitioner's only reference at the terminal)."""
+    import argparse
+
+    missing = []
+
+    def walk(parser, path):
+        if not parser.description:
+            missing.append(f"{path}: no description")
+        for action in parser._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                for name, sub in action.choices.items():
+                    walk(sub, f"{path} {name}")
+            elif not isinstance(action, argparse._HelpAction) and not action.help:
+                missing.append(f"{path} {'/'.join(action.option_strings) or action.dest}: no help")
+
+    walk(build_parser(), "meterlink")
+    assert not missing, missing

@@ -11,7 +11,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--out", metavar="DIR", default=DEFAULT_DIR,
                         help=f"folder for the database and the report (default ./{DEFAULT_DIR})")
     parser.add_argument("--standard", metavar="NAME", default="icnirp-2020", help="reference levels (default icnirp-2020)")
-    parser.add_argument("--tier", choices=("public", "occupational"), default="public")
+    parser.add_argument("--tier", choices=("public", "occupational"), default="public", help="tier (default public)")
     parser.add_argument("--rule", metavar="NAME", default="guarded", help="decision rule (default guarded)")
     parser.add_argument("--seed", metavar="N", type=int, default=7, help="simulator seed (default 7)")
     parser.add_argument("--minutes", metavar="M", type=float, default=35.0,
