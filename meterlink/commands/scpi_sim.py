@@ -47,7 +47,7 @@ def run(args) -> int:
     for fault in ("timeout", "garbage", "scpi_error", "disconnect"):
         setattr(analyser.faults, fault, getattr(args, fault))
     gen = Generator()
-    insts = [("analyser", analyser), ("generator", gen), ("power-meter", PowerMeterSim(gen)), ("rotator", RotatorSim())]
+    insts = [("analyser", analyser), ("generator", gen), ("power_meter", PowerMeterSim(gen)), ("rotator", RotatorSim())]
     servers = []
     try:
         for i, (_, inst) in enumerate(insts):
