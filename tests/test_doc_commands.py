@@ -106,3 +106,20 @@ def test_every_command_and_action_says_what_it_does_and_every_option_has_help():
 
     walk(build_parser(), "meterlink")
     assert not missing, missing
+
+
+def test_documented_lab_runs_write_new_folders():
+    """Typed in order, each documented `lab run` / `lab import` of a file writes its own --out folder:
+    an issued certificate is never overwritten, so a second run into the same folder stops (exit 2)."""
+    clashes = []
+    for path in DOCS:
+        seen = {}
+        for where, _text, argv in COMMANDS:
+            if not where.startswith(path.name + ":") or argv[:2] not in (["lab", "run"], ["lab", "import"]):
+                continue
+            args = build_parser("lab").parse_args(argv)
+            out = args.out.rstrip("/")
+            if out in seen:
+                clashes.append(f"{where} writes {out}/ as {seen[out]} did")
+            seen[out] = where
+    assert not clashes, clashes
