@@ -36,7 +36,7 @@ tier = "public"
 band = ["80 MHz", "4 GHz"]
 convention = "power"
 interval_s = 10
-windows_s = [360, 1800]
+windows_s = [360, 1800, 86400]
 [[meter]]
 name = "mast-foot"
 port = "PORT"
@@ -257,3 +257,17 @@ def test_status_and_stats_share_one_coverage_definition(db, capsys):
     assert main(["status", "--db", str(db)]) == 0
     out = " ".join(capsys.readouterr().out.split())
     assert "cov 24h = coverage: seconds covered" in out and COVERAGE_NOTE.split(":")[0] in out
+
+
+def test_stats_table_fits_80_columns(db, capsys, monkeypatch):
+    """The day, week and month tables keep every header whole on an 80-column terminal: the 24-hour
+    running maximum is headed '24h %' (not '1440min %', which pushed the day table past 80 columns)."""
+    monkeypatch.setenv("COLUMNS", "80")
+    assert main(["stats", "--db", str(db)]) == 0
+    out = capsys.readouterr().out
+    heads = [ln for ln in out.splitlines() if ln.split()[:2] in (["day", "cover"], ["week", "cover"],
+                                                               ["month", "cover"])]
+    assert len(heads) == 3, out
+    for ln in heads:
+        assert "…" not in ln and len(ln.rstrip()) <= 80, ln
+        assert ln.split()[-6:] == ["6min", "%", "30min", "%", "24h", "%"], ln

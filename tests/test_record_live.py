@@ -42,3 +42,10 @@ def test_live_field_and_percent_while_recording(tmp_path):
     # ICNIRP 2020 Table 5, public, 30-400 MHz: E_L = 27.7 V/m; percent of the power-density level = (E/E_L)^2
     assert abs(pct_live - 100 * (e_last / 27.7) ** 2) <= 0.05 + 1e-6
     assert m.group(1) == style_power(pct_live / 100)
+    # on an 80-column terminal nothing is cut: the bar and device time on one line, the field on the next
+    narrow = Console(file=io.StringIO(), width=80, color_system=None)
+    narrow.print(*prog.bar.get_renderables())
+    lines = [x.rstrip() for x in narrow.file.getvalue().splitlines() if x.strip()]
+    assert lines[0].startswith("recording") and re.search(r"\d+ s device time, \d+ readings \d:\d\d:\d\d$", lines[0])
+    assert lines[1] == f"E {m.group(2)} V/m  {m.group(3)} % of the power-density level (icnirp-2020 public)"
+    assert "…" not in "".join(lines)

@@ -44,6 +44,8 @@ def sim(request):
 
 def test_selective_point_over_the_cli(sim, tmp_path):
     addrs = sim()
+    # the names docs/instruments.md gives; power_meter as in the bench files and the benches' own lines
+    assert list(addrs) == ["analyser", "generator", "power_meter", "rotator"]
     journal = tmp_path / "p.jsonl"
     r = subprocess.run([*CMD, "selective", addrs["analyser"], "--bands", BANDS, "--journal", str(journal), "--json"],
                        capture_output=True, text=True, timeout=120)

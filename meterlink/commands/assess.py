@@ -10,7 +10,8 @@ def add_arguments(parser) -> None:
     parser.add_argument("--session", metavar="ID", type=int, help="session id (default: the newest)")
     parser.add_argument("--standard", metavar="NAME", required=True,
                         help="reference-level set, e.g. icnirp-2020, fcc-1310 (see 'meterlink limits')")
-    parser.add_argument("--tier", choices=("public", "occupational"), required=True)
+    parser.add_argument("--tier", choices=("public", "occupational"), required=True,
+                        help="general public or occupational (workers) reference levels")
     parser.add_argument("--rule", metavar="NAME", default="guarded",
                         help="decision rule, recorded before the assessment: simple, guarded (default), conservative")
     parser.add_argument("--certificate", metavar="FILE", help="apply this certificate first (a new calibration)")

@@ -84,10 +84,18 @@ def run(args) -> int:
             if args.json:
                 print(json.dumps(rows, indent=2, default=str))
             for r in [] if args.json else rows:
-                e = r["e_rms_v_per_m"]
-                print(f"{r['name']:<24} {r['station_uuid']}  newest block "
-                      f"{'-' if r['t_start_utc'] is None else r['t_start_utc']:>14}  "
+                e, t = r["e_rms_v_per_m"], r["t_start_utc"]
+                # the store keeps epoch seconds; a person reads ISO 8601 UTC (docs/formats.md)
+                when = "-" if t is None else _iso_utc(t)
+                print(f"{r['name']:<24} {r['station_uuid']}  newest block {when:>20}  "
                       f"{'-' if e is None else f'{e:.4g} V/m'}")
     finally:
         conn.close()
     return 0
+
+
+def _iso_utc(t: float) -> str:
+    """Epoch seconds as ISO 8601 UTC to the second (a block start), e.g. 2026-12-04T16:48:00Z."""
+    import datetime as dt
+
+    return dt.datetime.fromtimestamp(t, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")

@@ -11,7 +11,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--out", metavar="DIR", default=DEFAULT_DIR,
                         help=f"folder for the database and the report (default ./{DEFAULT_DIR})")
     parser.add_argument("--standard", metavar="NAME", default="icnirp-2020", help="reference levels (default icnirp-2020)")
-    parser.add_argument("--tier", choices=("public", "occupational"), default="public")
+    parser.add_argument("--tier", choices=("public", "occupational"), default="public", help="tier (default public)")
     parser.add_argument("--rule", metavar="NAME", default="guarded", help="decision rule (default guarded)")
     parser.add_argument("--seed", metavar="N", type=int, default=7, help="simulator seed (default 7)")
     parser.add_argument("--minutes", metavar="M", type=float, default=35.0,
@@ -88,13 +88,15 @@ def _run_steps(con, db, out, args, rule):
     band = (87.5e6, 3.8e9)   # the operator declares the site's band for the broadband probe
     res = {"database": str(db), "standard": args.standard, "tier": args.tier, "rule": rule}
     con.rule("meterlink demo: Brannock Tor transmitting site (invented), simulated meter")
-    with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed:.0f}/{task.total:.0f} s device time"),
-                  TimeElapsedColumn(), console=con) as progress:
+    # fits 80 columns: a wider line lost its bar and was cut in the elapsed time
+    with Progress(TextColumn("{task.description}"), BarColumn(bar_width=10),
+                  TextColumn("{task.completed:.0f}/{task.total:.0f} s device"), TimeElapsedColumn(),
+                  console=con) as progress:
         probe = _record({"sensor": "probe", "seed": args.seed}, db, args.minutes * 60.0, band, progress,
                         "probe: walking the site")
         # far enough from the mast that the FM carriers stay inside the receiver's calibrated range
         dipole = _record({"sensor": "dipole", "seed": args.seed + 1}, db, args.minutes * 60.0, None, progress,
-                         "dipole + receiver at the lay-by, 360 m from the mast", position_m=(-300.0, 200.0, 1.5))
+                         "dipole at the lay-by, 360 m from the mast", position_m=(-300.0, 200.0, 1.5))
     with Store(db) as store:
         fs = calibrated_series(store, probe.session_id, band=band)
         a_probe = assess_field(fs, args.standard, args.tier, rule, band=band)

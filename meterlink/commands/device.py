@@ -24,12 +24,15 @@ def add_arguments(parser) -> None:
                            help=f"database where the change is logged (default: {DEFAULT_DB})")
         p.add_argument("--json", action="store_true", help="print machine-readable JSON")
 
-    common(sub.add_parser("show", help="identification, status and every setting"), db=False)
-    p = sub.add_parser("set", help=f"write one setting: {', '.join(WRITABLE)}")
+    text = "identification, status and every setting"
+    common(sub.add_parser("show", help=text, description=text), db=False)
+    text = f"write one setting: {', '.join(WRITABLE)}"
+    p = sub.add_parser("set", help=text, description=text)
     p.add_argument("key", metavar="KEY", help=", ".join(WRITABLE))
     p.add_argument("value", metavar="VALUE", help="a whole number, or text of printable ASCII up to 32 characters")
     common(p, db=True)
-    p = sub.add_parser("clock", help="report the device clock's offset from host UTC; --set to set it first")
+    text = "report the device clock's offset from host UTC; --set to set it first"
+    p = sub.add_parser("clock", help=text, description=text)
     p.add_argument("--set", action="store_true", help="set the device clock to host UTC (CLOCK_SET), then check")
     common(p, db=True)
 

@@ -33,13 +33,14 @@ def add_arguments(parser) -> None:
                          description="Show the GUM uncertainty budget of the lab session's method: each contribution "
                                      "with its distribution, divisor and sensitivity, the combined standard "
                                      "uncertainty and the expanded uncertainty with its coverage factor.")
-    bud.add_argument("--type-a-db", type=float, default=0.02, help="Type A part to show (default 0.02 dB)")
+    bud.add_argument("--type-a-db", type=float, default=0.02, metavar="DB", help="Type A part to show (default 0.02 dB)")
     for p in (run, imp, bud):
         p.add_argument("--session", metavar="TOML", help="lab session file (default: an invented demo session)")
         p.add_argument("--json", action="store_true", help="print the result as JSON")
     for p in (run, imp):
-        p.add_argument("--out", default="lab-out", help="new folder for certificate.toml/.html, readings.csv "
-                                                         "(an issued certificate is never overwritten)")
+        p.add_argument("--out", default="lab-out", metavar="DIR",
+                       help="new folder for certificate.toml/.html, readings.csv (default lab-out; an issued "
+                            "certificate is never overwritten)")
         p.add_argument("--previous", metavar="CERT", help="previous certificate: as-found / as-left comparison "
                                                           "(dipole-af: the antenna's previous certificate, which "
                                                           "also gives the receiver and cable; default demo-dipole)")
@@ -49,11 +50,12 @@ def add_arguments(parser) -> None:
                                                           '"meterlink[pdf]")')
         p.add_argument("--template-dir", metavar="DIR", help="folder of templates or stylesheets replacing the "
                                                              "packaged ones of the same name (e.g. certificate.html)")
-    run.add_argument("--speed", type=float, default=100.0, help="simulated device ms per real ms (default 100)")
-    run.add_argument("--seed", type=int, default=0)
-    run.add_argument("--repeats", type=int, default=5, help="readings per step (default 5)")
+    run.add_argument("--speed", type=float, default=100.0, metavar="X", help="simulated device ms per real ms (default 100)")
+    run.add_argument("--seed", type=int, default=0, metavar="N", help="seed of the simulated bench's noise (default 0)")
+    run.add_argument("--repeats", type=int, default=5, metavar="N", help="readings per step (default 5)")
     run.add_argument("--quick", action="store_true", help="fewer frequencies, levels and angles")
-    run.add_argument("--drift-db", type=float, default=0.0, help="simulate a sensitivity change of axis x (dB)")
+    run.add_argument("--drift-db", type=float, default=0.0, metavar="DB",
+                     help="simulate a sensitivity change of axis x (dB)")
     run.add_argument("--bench", metavar="FILE",
                      help="drive a bench of SCPI instruments (generator, power meter, rotator by VISA address) and "
                           "the meter on its serial port, as named in this bench file (docs/instruments.md); "

@@ -13,7 +13,7 @@ UNCHECKED_NOTE = ("Values marked 'not yet checked against the primary text' have
 
 def add_arguments(parser) -> None:
     parser.add_argument("frequency", metavar="FREQUENCY", help="e.g. 900MHz, 2.45GHz or 100e6 (Hz)")
-    parser.add_argument("--standard", metavar="ID", help="one standard (default: all that cover FREQUENCY)")
+    parser.add_argument("--standard", metavar="NAME", help="one standard (default: all that cover FREQUENCY)")
     parser.add_argument("--tier", metavar="TIER", help="public or occupational (default: both)")
     parser.add_argument("--kind", metavar="KIND", help="whole_body, local or peak (default: all)")
     parser.add_argument("--brief", metavar="SECONDS", type=float,

@@ -10,8 +10,9 @@ DEFAULT_STANDARD = "icnirp-2020"
 
 def add_arguments(parser) -> None:
     parser.add_argument("sources", metavar="SOURCES", help="sources file (TOML, see docs/sources.md)")
-    parser.add_argument("--standard", metavar="ID", help=f"standard (default: the file's, else {DEFAULT_STANDARD})")
-    parser.add_argument("--tier", choices=("public", "occupational", "both"), default="both")
+    parser.add_argument("--standard", metavar="NAME", help=f"standard (default: the file's, else {DEFAULT_STANDARD})")
+    parser.add_argument("--tier", choices=("public", "occupational", "both"), default="both",
+                        help="tier of the distances and zones (default both)")
     parser.add_argument("--at", metavar="X,Y,Z", action="append", default=[],
                         help="a point in local metres (x east, y north, z above ground); repeatable")
     parser.add_argument("--grid", metavar="HALF_WIDTH_M", type=float,

@@ -233,10 +233,20 @@ class _progress:
             return None
         from rich.console import Console
         from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+        from rich.text import Text
 
-        self.bar = Progress(TextColumn("recording"), BarColumn(), TextColumn("{task.fields[what]}"),
-                            TimeElapsedColumn(), TextColumn("{task.fields[field]}"),
-                            console=self.console or Console(stderr=True), transient=True)
+        class TwoLines(Progress):
+            """The bar and device time on one line, the live field on the next: on one line of an
+            80-column terminal both were cut short (the field lost its standard and tier)."""
+
+            def get_renderables(self):
+                yield self.make_tasks_table(self.tasks)
+                for task in self.tasks:
+                    if task.fields.get("field"):
+                        yield Text.from_markup(task.fields["field"], overflow="fold")
+
+        self.bar = TwoLines(TextColumn("recording"), BarColumn(bar_width=20), TextColumn("{task.fields[what]}"),
+                            TimeElapsedColumn(), console=self.console or Console(stderr=True), transient=True)
         self.bar.start()
         self.task = self.bar.add_task("rec", total=self.duration_s, what="", field="")
         self.n = 0

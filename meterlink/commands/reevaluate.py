@@ -32,7 +32,7 @@ def run(args) -> int:
     if not Path(args.db).is_file():
         raise MeterlinkError(f"database {args.db!r} does not exist")
     with Store(args.db, readonly=True) as store:
-        rows = reevaluate(store, args.point, cert)
+        rows = reevaluate(store, args.point, cert, args.antenna_cert)
         sp = dict(next(store.db["sel_points"].rows_where("id = ?", [args.point])))
     f = np.array([r["freq_hz"] for r in rows])
     mf = multi_frequency(f, standard=sp["standard"], tier=sp["tier"], e_v_per_m=np.array([r["e_v_per_m"] for r in rows]),

@@ -12,7 +12,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--antenna", choices=("isotropic", "x", "y", "z"), default="isotropic",
                         help="the simulated antenna: isotropic, or a dipole along a site axis")
     parser.add_argument("--port", type=int, default=0, help="first TCP port (default: free ports)")
-    parser.add_argument("--seed", type=int, default=0, help="seed of the analyser's sweep scatter")
+    parser.add_argument("--seed", type=int, default=0, metavar="N", help="seed of the analyser's sweep scatter (default 0)")
     for fault in ("timeout", "garbage", "scpi-error", "disconnect"):
         parser.add_argument(f"--{fault}", action="store_true", help=f"analyser fault switch: {fault}")
     parser.add_argument("--lab-bench", metavar="FILE",
@@ -47,7 +47,7 @@ def run(args) -> int:
     for fault in ("timeout", "garbage", "scpi_error", "disconnect"):
         setattr(analyser.faults, fault, getattr(args, fault))
     gen = Generator()
-    insts = [("analyser", analyser), ("generator", gen), ("power-meter", PowerMeterSim(gen)), ("rotator", RotatorSim())]
+    insts = [("analyser", analyser), ("generator", gen), ("power_meter", PowerMeterSim(gen)), ("rotator", RotatorSim())]
     servers = []
     try:
         for i, (_, inst) in enumerate(insts):

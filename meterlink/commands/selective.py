@@ -12,8 +12,8 @@ def add_arguments(parser) -> None:
                         help="antenna certificate (meterlink-cert/1, kind dipole-receiver) with AF and cable loss")
     parser.add_argument("--antenna", choices=("isotropic", "three"), default="isotropic",
                         help="isotropic antenna, or a single-axis antenna turned to three orthogonal orientations")
-    parser.add_argument("--standard", default="icnirp-2020", help="standard of the summation rule (default icnirp-2020)")
-    parser.add_argument("--tier", default="public", choices=("public", "occupational"))
+    parser.add_argument("--standard", metavar="NAME", default="icnirp-2020", help="standard of the summation rule (default icnirp-2020)")
+    parser.add_argument("--tier", default="public", choices=("public", "occupational"), help="tier (default public)")
     parser.add_argument("--journal", required=True, metavar="FILE", help="JSON-lines file each band is written to as measured")
     parser.add_argument("--analyser-level-db", type=float, default=0.5, metavar="DB",
                         help="analyser absolute level accuracy, half-width in dB (datasheet; default 0.5)")
@@ -41,7 +41,8 @@ def run(args) -> int:
     from meterlink.physics.certificate import load_certificate
     from meterlink.physics.selective import ChainSpec
     from meterlink.survey.capture import is_dipole
-    from meterlink.survey.selective import Journal, assess_point, load_bands, load_extrapolation, measure_point
+    from meterlink.survey.selective import (Journal, assess_point, check_bands_in_range, load_bands, load_extrapolation,
+                                           measure_point)
 
     for name in ("sweep_time", "timeout"):
         if not 0 < getattr(args, name) <= 3600:
@@ -53,6 +54,7 @@ def run(args) -> int:
     cert = load_certificate(args.antenna_cert)
     if not is_dipole(cert):
         raise MeterlinkError(f"--antenna-cert {args.antenna_cert}: not an antenna (dipole-receiver) certificate")
+    check_bands_in_range(bands, cert, args.antenna_cert)
 
     def orient(axis):
         if args.antenna == "three":

@@ -8,9 +8,9 @@ HELP = "run a simulated meter on a pseudo-terminal and print its port path"
 def add_arguments(parser) -> None:
     parser.add_argument("--scenario", default="demo", help="packaged scenario name or a TOML file (default demo)")
     parser.add_argument("--sensor", choices=("probe", "dipole"), default="probe", help="sensor the meter carries")
-    parser.add_argument("--meter", type=int, default=0, help="which meter of the scenario (default 0)")
-    parser.add_argument("--speed", type=float, default=1.0, help="device milliseconds per real millisecond")
-    parser.add_argument("--seed", type=int, default=0, help="seed of the noise and fault generator")
+    parser.add_argument("--meter", type=int, default=0, metavar="N", help="which meter of the scenario (default 0)")
+    parser.add_argument("--speed", type=float, default=1.0, metavar="X", help="device milliseconds per real millisecond (default 1)")
+    parser.add_argument("--seed", type=int, default=0, metavar="N", help="seed of the noise and fault generator (default 0)")
     parser.add_argument("--truth", metavar="FILE", help="write the ground-truth JSON-lines log here")
     parser.add_argument("--drop", type=float, default=0.0, metavar="P", help="probability a reading is lost")
     parser.add_argument("--corrupt", type=float, default=0.0, metavar="P", help="probability a reading is damaged")

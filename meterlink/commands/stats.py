@@ -98,7 +98,7 @@ def run(args) -> int:
                   f"S_ref {m['s_ref_w_per_m2']:.4g} W/m2)")
         for period in ("day", "week", "month"):
             # short headers, nothing cut: fits an 80-column terminal (running maxima as "6min %", "30min %")
-            runs_h = [f"{int(k.split('_')[1].rstrip('s')) // 60}min %" if k.split("_")[1].rstrip("s").isdigit()
+            runs_h = [_window_header(int(k.split('_')[1].rstrip('s'))) if k.split("_")[1].rstrip("s").isdigit()
                       else k.replace("_max_e_v_per_m", "").replace("running_", "run ") + " max %"
                       for k in (m[period][0] if m[period] else {}) if k.endswith("_max_e_v_per_m")]
             t = Table(*(Column(h, no_wrap=True, justify="left" if i == 0 else "right") for i, h in enumerate(
@@ -109,7 +109,8 @@ def run(args) -> int:
                 t.add_row(r["period"], f"{r['coverage']:.1%}", f(r.get("max_pct")), f(r.get("min_pct")),
                           f(r.get("median_pct")), f(r.get("p95_pct")), f(r.get("max_e_v_per_m")), *runs)
             con.print(t)
-        con.print("[dim]max/min/med/p95 %: of the 6-minute blocks; 6min %, 30min %: highest running mean[/dim]")
+        con.print("[dim]max/min/med/p95 %: of the 6-minute blocks; 6min %, 30min %, 24h %: highest running mean "
+                  "over that window[/dim]")
         hours = [h["mean_pct"] for h in m["hour_of_day"]]
         con.print(f"hour-of-day profile (mean % of reference, 00..23): |{sparkline(hours)}|  peak "
                   f"{f(max((h for h in hours if h is not None), default=None))} %")
@@ -120,3 +121,11 @@ def run(args) -> int:
     con.print(f"[dim]{COVERAGE_NOTE}[/dim]", overflow="fold")
     con.print(SAFETY_LINE)
     return 0
+
+
+def _window_header(window_s: int) -> str:
+    """Column header of a running-average window: minutes below an hour, else hours when whole
+    (86400 s is '24h %', not '1440min %', so that the day table fits 80 columns)."""
+    if window_s >= 3600 and window_s % 3600 == 0:
+        return f"{window_s // 3600}h %"
+    return f"{window_s // 60}min %"

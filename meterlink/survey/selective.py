@@ -282,6 +282,21 @@ def _sweep_band(analyser, band: Band, sweep_time_s: float):
     return sw, (lo, hi)
 
 
+def check_bands_in_range(bands, cert, cert_name) -> None:
+    """Refuse, in one line, a band that the antenna certificate does not cover (range.freq_hz): its antenna
+    factor and cable loss there would be the table's edge or an extrapolation, with no uncertainty for it.
+    ``bands`` holds objects or dicts with freq_hz and bandwidth_hz."""
+    lo, hi = cert.freq_range_hz
+    for b in bands:
+        get = b.get if isinstance(b, dict) else lambda k, b=b: getattr(b, k)
+        f, bw, name = float(get("freq_hz")), float(get("bandwidth_hz") or 0.0), get("name")
+        if f - bw / 2 < lo or f + bw / 2 > hi:
+            span = f"{f / 1e6:g} MHz" if bw == 0 else f"{(f - bw / 2) / 1e6:g}-{(f + bw / 2) / 1e6:g} MHz"
+            raise MeterlinkError(f"band {name!r} ({span}) lies outside the range of the antenna certificate "
+                                 f"{cert_name} ({lo / 1e6:g}-{hi / 1e6:g} MHz): its antenna factor there is not "
+                                 "calibrated; use a certificate that covers every band")
+
+
 def measure_point(analyser, bands, cert, *, antenna: str = "isotropic", orient=None, chain: ChainSpec = ChainSpec(),
                   sweep_time_s: float = 0.1, journal: Journal | None = None) -> list[BandResult]:
     """Sweep every band in every orientation (orient(axis) is called before each orientation's sweeps),

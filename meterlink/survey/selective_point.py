@@ -62,13 +62,15 @@ def measure_selective_point(store, session_id: int, point_no: int, plan: SurveyP
     from meterlink.instruments.session import open_session
     from meterlink.physics.certificate import certificate_status
     from meterlink.physics.selective import ChainSpec
-    from meterlink.survey.selective import Journal, assess_point, check_extrapolation, load_bands, measure_point
+    from meterlink.survey.selective import (Journal, assess_point, check_bands_in_range, check_extrapolation, load_bands,
+                                           measure_point)
     from meterlink.survey.selstore import store_point
 
     spec = p.selective
     bands = load_bands(spec.bands_path)
     factors = check_extrapolation({k: dict(v) for k, v in spec.extrapolation}, bands)
     cert = antenna_certificate(spec.antenna_cert)
+    check_bands_in_range(bands, cert, spec.antenna_cert)
     if spec.antenna == "three" and orient is None:
         raise MeterlinkError(f"point {p.label!r}: antenna \"three\" needs someone to turn the antenna; "
                              "run the survey at a terminal")

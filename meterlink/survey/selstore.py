@@ -90,7 +90,7 @@ def load_points(store: Store, session_id: int) -> list[dict]:
     return pts
 
 
-def reevaluate(store: Store, point_id: int, cert) -> list[dict]:
+def reevaluate(store: Store, point_id: int, cert, cert_name: str | None = None) -> list[dict]:
     """Each band of a stored point computed again from its stored sweeps with another antenna certificate
     (its antenna factor and cable loss at the band centre): channel power per orientation, field, orientations
     combined. Per band: name, e_stored_v_per_m, e_v_per_m (new), af and cable of both certificates."""
@@ -103,6 +103,9 @@ def reevaluate(store: Store, point_id: int, cert) -> list[dict]:
             raise StorageError(f"{str(store.path)!r} holds no selective point {point_id}")
         bands = list(db["sel_bands"].rows_where("point_id = ?", [point_id], order_by="band_no"))
         traces = {b["id"]: list(db["sel_traces"].rows_where("band_id = ?", [b["id"]], order_by="id")) for b in bands}
+    from meterlink.survey.selective import check_bands_in_range
+
+    check_bands_in_range(bands, cert, cert_name or cert.certificate_number)
     out = []
     for b in bands:
         if not traces[b["id"]]:
