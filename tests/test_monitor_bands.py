@@ -101,18 +101,27 @@ def test_band_blocks_and_exposure_ratio_against_truth(tmp_path):
         assert e_true.max() > 0.01, band      # each band has a transmitter in it
         ref = averaging.block_averages(t, e_true, 360.0, max_hold_s=hold)
         want = {round(a): v for a, v, ok in zip(ref.t_start_s, ref.value, ref.complete) if ok}
-        rows = conn.execute("SELECT t_start_utc, e_rms_v_per_m, complete FROM mon_block WHERE band=? "
+        rows = conn.execute("SELECT t_start_utc, e_rms_v_per_m, complete, n_overrange FROM mon_block WHERE band=? "
                             "ORDER BY t_start_utc", (band,)).fetchall()
         assert len(rows) >= BLOCKS - 1
         u = conn.execute("SELECT u_expanded_db FROM mon_meter").fetchone()[0]
         assert 0.5 < u < 6.0
         u_db[band] = u
-        for t0, v, ok in rows:
+        for t0, v, ok, n_over in rows:
             if ok and round(t0) in want:
                 checked += 1
+                err_db = 20 * math.log10(v / want[round(t0)])
+                if n_over:
+                    # a line above the receiver's calibrated level range (the FM carriers on the z dipole here:
+                    # up to 125 dBuV against a range ending at 120) is calibrated at the top of the range, so
+                    # the band value is a lower bound: it may fall short of the truth, never exceed it beyond U
+                    assert err_db <= u, (band, t0, v, want[round(t0)])
+                    continue
                 # within the stated expanded uncertainty of the dipole certificate's budget (k = 2)
-                assert abs(20 * math.log10(v / want[round(t0)])) <= u, (band, t0, v, want[round(t0)])
+                assert abs(err_db) <= u, (band, t0, v, want[round(t0)])
     assert checked >= 4 * (BLOCKS - 2)
+    # the scene drives the z dipole past the receiver's range on the FM carriers: those blocks say so
+    assert conn.execute("SELECT count(*) FROM mon_block WHERE band='fm' AND n_overrange > 0").fetchone()[0] >= 1
     # the bands are disjoint and hold every transmitter of the scene: their power adds up to the total
     tot = dict(conn.execute("SELECT t_start_utc, energy FROM mon_block WHERE band='total'").fetchall())
     parts: dict = {}
@@ -125,13 +134,15 @@ def test_band_blocks_and_exposure_ratio_against_truth(tmp_path):
                        for s in srcs])
     ref = averaging.block_averages_s(t, r_true, 360.0, max_hold_s=hold)
     want = {round(a): v for a, v, ok in zip(ref.t_start_s, ref.value, ref.complete) if ok}
-    rows = conn.execute("SELECT t_start_utc, energy / covered_s, complete FROM mon_block "
+    rows = conn.execute("SELECT t_start_utc, energy / covered_s, complete, n_overrange FROM mon_block "
                         "WHERE band='exposure_ratio'").fetchall()
     n = 0
-    for t0, ratio, ok in rows:
+    for t0, ratio, ok, n_over in rows:
         if ok and round(t0) in want:
             n += 1
-            assert abs(10 * math.log10(ratio / want[round(t0)])) <= u_db["total"], (t0, ratio, want[round(t0)])
+            err_db = 10 * math.log10(ratio / want[round(t0)])
+            # with an over-range line in the sweep the ratio is a lower bound, as the band values above
+            assert (err_db if n_over else abs(err_db)) <= u_db["total"], (t0, ratio, want[round(t0)])
     assert n >= BLOCKS - 2
     # running averages are kept per band too
     assert conn.execute("SELECT count(*) FROM mon_running WHERE band='fm' AND window_s=360").fetchone()[0] >= BLOCKS - 1

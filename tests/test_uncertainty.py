@@ -95,3 +95,30 @@ def test_dipole_budget_terms():
     assert 0.5 < b.u_expanded_db < 2.5
     extra = measurement_budget(cert, 300e6, extra=[Component("site", 1.0, "dB", "rectangular")])
     assert extra.u_c_db == pytest.approx(math.hypot(b.u_c_db, 1 / math.sqrt(3)))
+
+
+def _dipole_with_af_table(cert, freq_hz, af_db):
+    import dataclasses
+
+    return dataclasses.replace(cert, af_freq_hz=tuple(freq_hz), af_db_per_m=tuple(af_db))
+
+
+def _af_interp_term(budget):
+    return next(r for r in budget.rows if r.name == "antenna factor interpolation")
+
+
+def test_af_interpolation_follows_the_antenna_factor_relation_not_its_20_log_f_rise():
+    # AF = 9.73 / (lambda sqrt(G)) for a 50-ohm receiver (the antenna-factor relation; in dB
+    # AF = 20 log10(f_MHz) - 29.77 - G_dBi, as units.antenna_factor_db_per_m states it): an antenna of constant
+    # gain has an AF that rises 15.56 dB from 1 to 6 GHz (20 log10 6), which interpolation in log f follows
+    # exactly. Half that step (7.78 dB) was taken as the half-width before; the gain did not change, so 0.
+    from meterlink.physics.units import antenna_factor_db_per_m
+
+    cert = load_certificate("demo-dipole")
+    f = [1e9, 6e9]
+    const_gain = _dipole_with_af_table(cert, f, [antenna_factor_db_per_m(2.15, x) for x in f])
+    assert const_gain.af_db_per_m[1] - const_gain.af_db_per_m[0] == pytest.approx(20 * math.log10(6), abs=1e-9)
+    assert _af_interp_term(measurement_budget(const_gain, 3.5e9)).value == pytest.approx(0.0, abs=1e-9)
+    # the gain falls by 2 dB between the points (2.15 dBi -> 0.15 dBi): half of that, 1 dB, is the half-width
+    falling = _dipole_with_af_table(cert, f, [antenna_factor_db_per_m(2.15, 1e9), antenna_factor_db_per_m(0.15, 6e9)])
+    assert _af_interp_term(measurement_budget(falling, 3.5e9)).value == pytest.approx(1.0, abs=1e-9)

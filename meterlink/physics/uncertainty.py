@@ -177,7 +177,13 @@ def measurement_budget(cert, freq_hz=None, level=None, temp_c=None, k: float = K
         comps.append(Component("temperature", t_hw, "dB", "rectangular"))
     else:
         if band is None:
-            hw = _interp_halfwidth_db(cert.af_freq_hz, cert.af_db_per_m, float(freq_hz))
+            # AF = 9.73/(lambda sqrt(G)) for 50 ohm: in dB, 20 log10 f less the realised gain. The table is
+            # interpolated linearly in log f (calibrate.af_db_per_m), which follows the 20 log10 f part
+            # exactly, so what interpolation can miss is the change of gain between the table points: half
+            # of that step is the half-width (not half the AF step, which is mostly the known 20 log f rise).
+            f_tab = np.asarray(cert.af_freq_hz, dtype=float)
+            gain_part_db = np.asarray(cert.af_db_per_m, dtype=float) - 20.0 * np.log10(f_tab)
+            hw = _interp_halfwidth_db(f_tab, gain_part_db, float(freq_hz))
             comps.append(Component("antenna factor interpolation", hw, "dB", "rectangular"))
         else:
             af = np.asarray(cert.af_db_per_m)
