@@ -113,6 +113,11 @@ class DeviceClock:
         """Record that unwrapped tick_ms arrived at host_monotonic_s, for the drift estimate."""
         self._pairs.append((float(host_monotonic_s), tick_ms / 1000.0))
 
+    def observe_many(self, host_monotonic_s: float, ticks_ms: list[int]) -> None:
+        """As observe() for each unwrapped tick in turn, all arrived at host_monotonic_s (one read)."""
+        h = float(host_monotonic_s)
+        self._pairs.extend([(h, tk / 1000.0) for tk in ticks_ms])
+
     @property
     def n_pairs(self) -> int:
         return len(self._pairs)

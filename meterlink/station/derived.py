@@ -54,9 +54,7 @@ class SlidingWindow:
         cut = t_last - self.window_s
         segs = self._segs
         q = list(islice(segs, 0, _count_before(segs, cut)))   # old segments the batch's windows leave
-        qa = np.array([s[0] for s in q], float)
-        qb = np.array([s[1] for s in q], float)
-        qp = np.array([s[2] for s in q], float)
+        qa, qb, qp = np.array(q, float).reshape(-1, 3).T          # one conversion, then its columns
         aa, ab, ap = np.concatenate((qa, a)), np.concatenate((qb, b)), np.concatenate((qp, p))
         ce = np.concatenate(([0.0], np.cumsum(ap * (ab - aa))))
         cc = np.concatenate(([0.0], np.cumsum(ab - aa)))

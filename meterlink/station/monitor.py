@@ -188,14 +188,21 @@ class Monitor(Ingest, Persistence, Health):
 
     def _tick(self, closing: bool = False) -> None:
         now_data = self.now_utc()
+        now_mono = time.monotonic()
+        limits = []
+        due = []
         for ms in self.meters:
             limit = max(self.st.health.max_gap_s, 3 * ms.cfg.interval_s) * 2
             # with an accelerated simulator, a host that is merely a little behind is not a silent meter
             limit = max(limit, 2.0 * self.time_scale) if self.time_scale != 1.0 else limit
-            if closing or (ms.pending and ((time.monotonic() - ms.pending_mono) * self.time_scale >= self.calibrate_s
+            limits.append(limit)
+            if closing or (ms.pending and ((now_mono - ms.pending_mono) * self.time_scale >= self.calibrate_s
                                            or ms.n_pending >= 4096
                                            or (ms.last_t is not None and now_data - ms.last_t > limit))):
-                self._calibrate_pending(ms)
+                due.append(ms)
+        # the meters due are calibrated together (one call per certificate, frequency and temperature)
+        self._calibrate_pending_many(due)
+        for ms, limit in zip(self.meters, limits):
             if not closing:
                 silent = ms.last_t is not None and now_data - ms.last_t > limit
                 if silent:
