@@ -68,7 +68,7 @@ class Monitor(Ingest, Persistence, Health):
         spread_s = 0.01 * n if n > 50 else 0.0
         self.store_s = max(commit_s, spread_s)
         self.calibrate_s = max(calibrate_s, 2.0 * spread_s * self.time_scale)
-        self.read_pause_s = min(2.0, 0.004 * n) if n > 50 else min(0.05, 0.001 * n)
+        self.read_pause_s = min(2.5, 0.005 * n) if n > 50 else min(0.05, 0.001 * n)
         self.loop_s = min(0.1, 0.0002 * n)           # the main loop gathers this long after a wake-up
         self._wake = threading.Event()      # set by the links when an item is queued, and by stop()
         self.log = log or (lambda line: None)
