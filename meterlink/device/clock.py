@@ -8,6 +8,7 @@ so one late read by the host does not move it. A device restart resets the mappi
 from __future__ import annotations
 
 from collections import deque
+from itertools import chain
 from dataclasses import dataclass
 
 import numpy as np
@@ -124,9 +125,11 @@ class DeviceClock:
 
     def rate_ratio(self) -> float | None:
         """Device seconds per host second (1.0 = perfect); None until enough pairs."""
-        if len(self._pairs) < 3:
+        n = len(self._pairs)
+        if n < 3:
             return None
-        arr = np.array(self._pairs)
+        # the pairs flattened in one pass (np.array over a deque of tuples costs about 3x as much)
+        arr = np.fromiter(chain.from_iterable(self._pairs), float, 2 * n).reshape(n, 2)
         return drift_ratio(arr[:, 0], arr[:, 1])
 
     def drift_ppm(self) -> float | None:
