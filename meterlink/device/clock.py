@@ -8,6 +8,7 @@ so one late read by the host does not move it. A device restart resets the mappi
 from __future__ import annotations
 
 from collections import deque
+from itertools import chain
 from dataclasses import dataclass
 
 import numpy as np
@@ -142,15 +143,22 @@ class DeviceClock:
         dev_s = d0 + (float(host_monotonic_s) - a) / b
         return m.utc0_s + (dev_s * 1000.0 - m.tick0_ms) / 1000.0
 
+    def observe_many(self, host_monotonic_s: float, ticks_ms: list[int]) -> None:
+        """As observe() for each unwrapped tick in turn, all arrived at host_monotonic_s (one read)."""
+        h = float(host_monotonic_s)
+        self._pairs.extend([(h, tk / 1000.0) for tk in ticks_ms])
+
     @property
     def n_pairs(self) -> int:
         return len(self._pairs)
 
     def rate_ratio(self) -> float | None:
         """Device seconds per host second (1.0 = perfect); None until enough pairs."""
-        if len(self._pairs) < 3:
+        n = len(self._pairs)
+        if n < 3:
             return None
-        arr = np.array(self._pairs)
+        # the pairs flattened in one pass (np.array over a deque of tuples costs about 3x as much)
+        arr = np.fromiter(chain.from_iterable(self._pairs), float, 2 * n).reshape(n, 2)
         return drift_ratio(arr[:, 0], arr[:, 1])
 
     def drift_ppm(self) -> float | None:

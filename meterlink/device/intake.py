@@ -215,8 +215,7 @@ class FrameIntake:
         self.clock.utc_of(int(ticks[-1]))        # the latest time given out (a later boot starts after it)
         m = self.clock.mapping
         t_utc = m.utc0_s + (ticks - m.tick0_ms) / 1000.0
-        for tk in ticks[-256:].tolist():         # the drift estimate keeps the last 256 pairs anyway
-            self.clock.observe(now, tk)
+        self.clock.observe_many(now, ticks[-256:].tolist())   # the drift estimate keeps the last 256 pairs anyway
         self._last_seq, self._last_tick = int(seq[-1]), int(tick[-1])
         self._put(ReadingBatch(self._boot, seq, ticks, t_utc, b.flags, b.range_index, b.raw))
         return True

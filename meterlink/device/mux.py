@@ -18,10 +18,14 @@ from __future__ import annotations
 
 import heapq
 import itertools
+import math
 import os
 import select
 import threading
 import time
+
+
+PAUSE_GRID_S = 0.05     # read pauses end on multiples of this (monotonic seconds)
 
 
 class PortMux:
@@ -180,6 +184,9 @@ class PortMux:
         return bool(q.maxsize) and q.qsize() > q.maxsize - link.mux_headroom
 
     def _pause(self, link, due: float) -> None:
+        # due rounded up to the next PAUSE_GRID_S: the ports paused about the same time come out of
+        # their pause together, and are read in one pass of the loop (one wake-up, not one each)
+        due = math.ceil(due / PAUSE_GRID_S) * PAUSE_GRID_S
         self._sel.unregister(link._mux_fd)
         heapq.heappush(self._paused, (due, next(self._n), link, link._mux_gen))
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 from collections import deque
 from dataclasses import dataclass, field
-from itertools import islice
+from itertools import chain, islice
 
 import numpy as np
 
@@ -54,9 +54,7 @@ class SlidingWindow:
         cut = t_last - self.window_s
         segs = self._segs
         q = list(islice(segs, 0, _count_before(segs, cut)))   # old segments the batch's windows leave
-        qa = np.array([s[0] for s in q], float)
-        qb = np.array([s[1] for s in q], float)
-        qp = np.array([s[2] for s in q], float)
+        qa, qb, qp = np.fromiter(chain.from_iterable(q), float, 3 * len(q)).reshape(-1, 3).T  # one pass, then columns
         aa, ab, ap = np.concatenate((qa, a)), np.concatenate((qb, b)), np.concatenate((qp, p))
         ce = np.concatenate(([0.0], np.cumsum(ap * (ab - aa))))
         cc = np.concatenate(([0.0], np.cumsum(ab - aa)))
