@@ -91,3 +91,23 @@ def test_a_gap_is_never_merged_over():
         # the day window: covered = 199.9 s of record less the 2.7-s gap (hand count), over 86400 s
         _, cov = s.windows[86400.0].value(t[-1])
         assert abs(cov * 86400.0 - (199.9 - 2.7)) < 1e-5, path
+
+
+def test_push_and_push_many_merge_alike():
+    # 20 readings/s for 800 s, windows of 360 and 720 s (bins of 0.1 and 0.2 s: runs of readings merge)
+    # and a 2-s gap: the per-reading and batched paths hold the same bins and
+    # give the same running values to rounding (an equivalence of the two paths, not a physics value)
+    t, e = _record(20.0, 800.0 / 86400.0, (300.0, 302.0), seed=3)
+    loop, batch = (derived.Series(0.15, windows_s=(360.0, 720.0)) for _ in range(2))
+    got_loop = np.array([[r.e_rms_v_per_m for r in loop.push(ti, ei)[1]] for ti, ei in zip(t.tolist(), e.tolist())]).T
+    parts, k = [], 0
+    for n in (1, 37, 500, 3, 2000) * 2:       # then 546 s in one call, longer than a window
+        parts.append(batch.push_many(t[k:k + n], e[k:k + n])[1].e_rms_v_per_m)
+        k += n
+    parts.append(batch.push_many(t[k:], e[k:])[1].e_rms_v_per_m)
+    got_batch = np.concatenate(parts, axis=1)
+    assert np.allclose(got_loop, got_batch, rtol=1e-9, atol=0, equal_nan=True)
+    for ws in (360.0, 720.0):
+        a, b = list(loop.windows[ws]._segs), list(batch.windows[ws]._segs)
+        assert len(a) == len(b) and np.allclose(a, b, rtol=1e-12, atol=0)
+    assert len(loop.windows[720.0]._segs) < 0.5 * 14400       # merged: fewer segments than readings held

@@ -82,21 +82,25 @@ class SlidingWindow:
         if not a.size:
             return a, b, p, False
         w = self.bin_s
-        edge = (np.floor(a / w) + 1.0) * w          # the end of each segment's bin
+        edge = a / w                                # the end of each segment's bin, (floor(a / w) + 1) * w
+        np.floor(edge, out=edge)
+        edge += 1.0
+        edge *= w
         # a segment joins the run before it when it continues it and ends within the same bin (the run,
         # contiguous up to it, then lies in that bin too); one that crosses an edge stays alone
-        same = (a[1:] == b[:-1]) & (b[1:] <= edge[1:]) & (edge[1:] == edge[:-1])
+        e1 = edge[1:]
+        same = a[1:] == b[:-1]
+        same &= b[1:] <= e1
+        same &= e1 == edge[:-1]
         joined = False
         if tail is not None:
             s0, s1, sp = tail
             joined = bool(s1 == a[0] and b[0] <= edge[0] and edge[0] == (math.floor(s0 / w) + 1) * w)
         if not joined and not same.any():
             return a, b, p, False
-        starts = np.flatnonzero(np.concatenate(([True], ~same)))
-        ends = np.empty_like(starts)
-        ends[:-1] = starts[1:] - 1
-        ends[-1] = a.size - 1
-        ga, gb = a[starts], b[ends]
+        np.logical_not(same, out=same)
+        starts = np.flatnonzero(np.concatenate(((True,), same)))
+        ga, gb = a[starts], b[np.concatenate((same, (True,)))]
         en = np.add.reduceat(p * (b - a), starts)
         if joined:
             ga[0] = s0
