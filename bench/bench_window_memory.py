@@ -39,12 +39,13 @@ def _before_module():
                              check=True, capture_output=True, text=True).stdout
     except (OSError, subprocess.CalledProcessError) as e:
         sys.exit(f"bench_window_memory: cannot read the 'before' code from git ({BEFORE}): {e}")
-    path = Path(tempfile.mkdtemp()) / "derived_before.py"
-    path.write_text(src)
-    spec = importlib.util.spec_from_file_location("derived_before", path)
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules["derived_before"] = mod
-    spec.loader.exec_module(mod)
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "derived_before.py"
+        path.write_text(src)
+        spec = importlib.util.spec_from_file_location("derived_before", path)
+        mod = importlib.util.module_from_spec(spec)
+        sys.modules["derived_before"] = mod
+        spec.loader.exec_module(mod)
     return mod
 
 
