@@ -28,10 +28,27 @@ def ensure_schema(conn) -> None:
 
 
 class SlidingWindow:
-    """Energy and covered time of held segments within (t_end - window_s, t_end]."""
+    """Energy and covered time of held segments within (t_end - window_s, t_end], in bounded memory.
+
+    Contiguous held segments are merged as they are stored into bins of width
+    ``bin_s = window_s / 3600`` (24 s for a day, 0.5 s for 30 min, 0.1 s for 6 min): a stored segment
+    is either one held segment that crosses a bin edge, or the run of contiguous segments lying within
+    one bin, kept as (t0, t1, p) with p = energy / (t1 - t0), so its energy (sum of p dt) and covered
+    time are those of the run. A gap is never merged over: uncovered time stays a gap, never a zero.
+    A window therefore holds at most about 2 x 3600 segments (plus one per gap) whatever the reading
+    rate. Totals stay exact (to rounding); only the part cut off the one segment straddling the window
+    start (t_end - window_s) is taken pro rata, which moves the window's energy by at most
+    bin_s x p_max, p_max the largest value held in that bin. The relative error of the window mean is
+    therefore at most ``bin_s / covered_s x p_max / p_mean`` (``bin_s / window_s x p_max / p_mean`` at
+    full coverage; half that for the RMS field), p_mean the window mean; a window start on a bin edge,
+    or in a segment that crosses one, is exact.
+    """
+
+    BINS = 3600
 
     def __init__(self, window_s: float):
         self.window_s = float(window_s)
+        self.bin_s = self.window_s / self.BINS
         self._segs: deque[tuple[float, float, float]] = deque()
         self._energy = 0.0
         self._covered = 0.0
@@ -41,57 +58,115 @@ class SlidingWindow:
         """Add the segment [t0, t1) holding power-like value p (E^2 or S)."""
         if t1 <= t0:
             return
-        self._segs.append((t0, t1, p))
+        segs = self._segs
+        w = self.bin_s
+        edge = (math.floor(t0 / w) + 1) * w
+        if segs and t1 <= edge:            # within one bin: merge with the stored run it continues
+            s0, s1, sp = segs[-1]
+            if s1 == t0 and (math.floor(s0 / w) + 1) * w == edge:
+                segs[-1] = (s0, t1, (sp * (s1 - s0) + p * (t1 - t0)) / (t1 - s0))
+            else:
+                segs.append((t0, t1, p))
+        else:
+            segs.append((t0, t1, p))
         self._energy += p * (t1 - t0)
         self._covered += t1 - t0
         self._adds += 1
         if self._adds % 20000 == 0:      # re-sum now and then so rounding never accumulates
-            self._energy = sum(s[2] * (s[1] - s[0]) for s in self._segs)
-            self._covered = sum(s[1] - s[0] for s in self._segs)
+            self._energy = sum(s[2] * (s[1] - s[0]) for s in segs)
+            self._covered = sum(s[1] - s[0] for s in segs)
+
+    def _merge(self, a, b, p, tail):
+        """Merge sorted segments (after the stored tail, if any) as add() would: starts, ends, p, joined
+        (the first merged segment includes the tail, which it replaces)."""
+        if not a.size:
+            return a, b, p, False
+        w = self.bin_s
+        edge = a / w                                # the end of each segment's bin, (floor(a / w) + 1) * w
+        np.floor(edge, out=edge)
+        edge += 1.0
+        edge *= w
+        # a segment joins the run before it when it continues it and ends within the same bin (the run,
+        # contiguous up to it, then lies in that bin too); one that crosses an edge stays alone
+        e1 = edge[1:]
+        same = a[1:] == b[:-1]
+        same &= b[1:] <= e1
+        same &= e1 == edge[:-1]
+        joined = False
+        if tail is not None:
+            s0, s1, sp = tail
+            joined = bool(s1 == a[0] and b[0] <= edge[0] and edge[0] == (math.floor(s0 / w) + 1) * w)
+        if not joined and not same.any():
+            return a, b, p, False
+        np.logical_not(same, out=same)
+        starts = np.flatnonzero(np.concatenate(((True,), same)))
+        ga, gb = a[starts], b[np.concatenate((same, (True,)))]
+        en = np.add.reduceat(p * (b - a), starts)
+        if joined:
+            ga[0] = s0
+            en[0] += sp * (s1 - s0)
+        return ga, gb, en / (gb - ga), joined
 
     def _extend(self, a, b, p, x, t_last: float) -> tuple[np.ndarray, np.ndarray]:
         """Add segments (sorted, after all held ones) and give value() at each x as if added in order."""
         cut = t_last - self.window_s
         segs = self._segs
-        q = list(islice(segs, 0, _count_before(segs, cut)))   # old segments the batch's windows leave
-        qa, qb, qp = np.fromiter(chain.from_iterable(q), float, 3 * len(q)).reshape(-1, 3).T  # one pass, then columns
+        n_old = len(segs)
+        nq = _count_before(segs, cut)
+        q = list(islice(segs, 0, nq))   # old segments the batch's windows leave
+        qa, qb, qp = np.fromiter(chain.from_iterable(q), float, 3 * nq).reshape(-1, 3).T  # one pass, then columns
+        # the batch's segments merged among themselves and with the stored tail, as add() merges them
+        ga, gb, gp, joined = self._merge(a, b, p, segs[-1] if segs else None)
+        # exact side (window ends): the stored segments and the batch's own; all of them end by any x
         aa, ab, ap = np.concatenate((qa, a)), np.concatenate((qb, b)), np.concatenate((qp, p))
         ce = np.concatenate(([0.0], np.cumsum(ap * (ab - aa))))
         cc = np.concatenate(([0.0], np.cumsum(ab - aa)))
-        nq = len(q)
+        # window starts: the merged segments, as value() sees them (a run straddling a start is final by then)
+        nq2 = nq - 1 if joined and nq == n_old else nq         # the tail, if replaced by its merged run
+        n_old2 = n_old - 1 if joined else n_old
+        if nq < n_old or (not joined and ga.size == a.size):
+            # no window start reaches the batch or the tail (all at or before the first stored segment
+            # left in the window), or nothing merged: the same segments as far as the starts go
+            ma, mb, mp, me, mc = aa, ab, ap, ce, cc
+        else:
+            ma, mb, mp = (np.concatenate((qa[:nq2], ga)), np.concatenate((qb[:nq2], gb)),
+                          np.concatenate((qp[:nq2], gp)))
+            me = np.concatenate(([0.0], np.cumsum(mp * (mb - ma))))
+            mc = np.concatenate(([0.0], np.cumsum(mb - ma)))
         base_e, base_c = self._energy - ce[nq], self._covered - cc[nq]
 
-        def upto(y):  # integral of held p and of covered time from the earliest segment to y
-            if not aa.size:
+        def upto(y, sa, sb, sp, se, sc):  # integral of held p and of covered time from the earliest segment to y
+            if not sa.size:
                 return np.zeros_like(y), np.zeros_like(y)
-            i = np.searchsorted(aa, y, side="right") - 1
+            i = np.searchsorted(sa, y, side="right") - 1
             j = np.maximum(i, 0)
-            d = np.clip(y - aa[j], 0.0, ab[j] - aa[j])
-            return np.where(i < 0, 0.0, ce[j] + ap[j] * d), np.where(i < 0, 0.0, cc[j] + d)
+            d = np.clip(y - sa[j], 0.0, sb[j] - sa[j])
+            return np.where(i < 0, 0.0, se[j] + sp[j] * d), np.where(i < 0, 0.0, sc[j] + d)
 
-        e1, c1 = upto(x)
-        e0, c0 = upto(x - self.window_s)
+        e1, c1 = upto(x, aa, ab, ap, ce, cc)
+        e0, c0 = upto(x - self.window_s, ma, mb, mp, me, mc)
         energy = base_e + e1 - e0
         covered = base_c + c1 - c0
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = np.where(covered <= 1e-9, np.nan, np.maximum(energy, 0.0) / covered)
         cov = np.where(covered <= 1e-9, 0.0, np.minimum(covered / self.window_s, 1.0))
         # the state a push loop leaves: new segments held, those ending at or before the last cut dropped
-        n_old = len(segs)
         add_e, add_c = ce[-1] - ce[nq], cc[-1] - cc[nq]
-        drop = int(np.searchsorted(ab, cut, side="right"))
-        if drop > nq and n_old > nq:
-            drop = nq                                          # later old segments still in the window
-        self._energy += add_e - ce[drop]
-        self._covered += add_c - cc[drop]
-        if drop <= n_old:
+        drop = int(np.searchsorted(mb, cut, side="right"))
+        if drop > nq2 and n_old2 > nq2:
+            drop = nq2                                         # later old segments still in the window
+        self._energy += add_e - me[drop]
+        self._covered += add_c - mc[drop]
+        if joined:
+            segs.pop()
+        if drop <= n_old2:
             for _ in range(drop):
                 segs.popleft()
-            segs.extend(zip(a.tolist(), b.tolist(), p.tolist()))
+            segs.extend(zip(ga.tolist(), gb.tolist(), gp.tolist()))
         else:
             segs.clear()
-            k = drop - n_old
-            segs.extend(zip(a[k:].tolist(), b[k:].tolist(), p[k:].tolist()))
+            k = drop - n_old2
+            segs.extend(zip(ga[k:].tolist(), gb[k:].tolist(), gp[k:].tolist()))
         before = self._adds
         self._adds += a.size
         if self._adds // 20000 != before // 20000 and segs:   # the loop's periodic re-sum, in numpy
