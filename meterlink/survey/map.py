@@ -151,18 +151,24 @@ def survey_map_png(sv: dict, frame: SiteFrame | None = None) -> bytes | None:
                 seg = []
         ax.scatter([t[0] for t in fr.track], [t[1] for t in fr.track],
                    c=[percent_colour(t[2]) for t in fr.track], s=9, zorder=2, linewidths=0)
+    near_m = 0.05 * max(max(xs + [0.0]) - min(xs + [0.0]), max(ys + [0.0]) - min(ys + [0.0]), 20.0)
+    placed: list = []            # points already labelled: a label near one of them goes a line lower
     for p in fr.points:
         ax.scatter([p.x_m], [p.y_m], s=70, c=[percent_colour(p.percent)], edgecolors="black",
                    linewidths=1.0 if p.gnss else 0.0, marker="o" if p.gnss else "s", zorder=4)
-        ax.annotate(f"{p.point_no} {_safe(p.label)}", (p.x_m, p.y_m), textcoords="offset points", xytext=(7, 5),
-                    fontsize=7.5, zorder=5)
+        k = sum(1 for q in placed if math.hypot(q[0] - p.x_m, q[1] - p.y_m) < near_m)
+        placed.append((p.x_m, p.y_m))
+        ax.annotate(f"{p.point_no} {_safe(p.label)}", (p.x_m, p.y_m), textcoords="offset points",
+                    xytext=(7, 5 - 10 * k), fontsize=7.5, zorder=5)
     at: dict = {}                # sources on one mast share a marker and a label
     for s in fr.sources:
         at.setdefault((round(s.x_m, 1), round(s.y_m, 1)), []).append(s.name)
     for (x, y), names in at.items():
         ax.plot(x, y, marker="^", color="#1b2f5c", ms=9, ls="", zorder=3)
         lab = _safe(names[0]) + (f" +{len(names) - 1}" if len(names) > 1 else "")
-        ax.annotate(lab, (x, y), textcoords="offset points", xytext=(6, -11), fontsize=7, color="#1b2f5c")
+        # to the left of the marker: point labels go to the right, so a source beside a point stays legible
+        ax.annotate(lab, (x, y), textcoords="offset points", xytext=(-6, -11), ha="right", fontsize=7,
+                    color="#1b2f5c")
     ax.plot(0, 0, marker="+", color="black", ms=11, zorder=3)
     x0, x1, y0, y1 = min(xs + [0.0]), max(xs + [0.0]), min(ys + [0.0]), max(ys + [0.0])
     span = max(x1 - x0, y1 - y0, 20.0) * 1.25
