@@ -41,3 +41,13 @@ def read_input_text(path, what: str, error: type[MeterlinkError] = MeterlinkErro
     if "\x00" in text:
         raise error(f"{p}: not a {what} file: it holds NUL bytes; a {what} file is TOML text") from None
     return text
+
+
+def read_input_toml(path, what: str, error: type[MeterlinkError] = MeterlinkError) -> dict:
+    """An input file read by read_input_text and parsed as TOML; a syntax error is `error` naming the file."""
+    import tomllib
+
+    try:
+        return tomllib.loads(read_input_text(path, what, error))
+    except tomllib.TOMLDecodeError as exc:
+        raise error(f"{path}: not valid TOML ({exc})".replace("\n", " ")) from None

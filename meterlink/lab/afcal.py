@@ -22,13 +22,12 @@ from __future__ import annotations
 import csv
 import math
 import os
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from meterlink.errors import read_input_text
+from meterlink.errors import read_input_text, read_input_toml
 from meterlink.lab.session import LabError
 from meterlink.physics.antenna_cal import AfReading, SubReading, far_field_min_distance_m, standard_field_power_w
 
@@ -36,6 +35,12 @@ PROCEDURE = "dipole-af"
 JOURNAL_COLUMNS = ("freq_hz", "repeat", "net_before_dbm", "net_after_dbm", "analyser_dbm")
 MIN_TONE_OVER_FLOOR_DB = 20.0      # the tone must stand this far above the trace's median (noise floor)
 COARSE_LEVEL_DB = 0.5              # the field is set to within this of the wanted one (it is measured anyway)
+
+
+def _logf_interp(pairs, freq_hz):
+    """A (freq_hz, value) table read at freq_hz, linear in log-frequency (as the certificates' tables)."""
+    f, x = zip(*pairs)
+    return np.interp(np.log10(freq_hz), np.log10(f), x)
 
 
 @dataclass(frozen=True)
@@ -61,21 +66,16 @@ class AfBench:
 
     def tx_gain_dbi(self, freq_hz):
         """The transmitting antenna's gain from its certificate, linear in log-frequency."""
-        f, g = zip(*self.tx_gain)
-        return np.interp(np.log10(freq_hz), np.log10(f), g)
+        return _logf_interp(self.tx_gain, freq_hz)
 
     def rx_cable_db(self, freq_hz):
-        f, x = zip(*self.rx_cable)
-        return np.interp(np.log10(freq_hz), np.log10(f), x)
+        return _logf_interp(self.rx_cable, freq_hz)
 
 
 def load_af_bench(path) -> AfBench:
     """Read a standard-field bench file; every problem names the file and the key."""
     where = str(path)
-    try:
-        doc = tomllib.loads(read_input_text(path, "bench", LabError))
-    except tomllib.TOMLDecodeError as exc:
-        raise LabError(f"{where}: not valid TOML ({exc})".replace("\n", " ")) from None
+    doc = read_input_toml(path, "bench", LabError)
     inst, chain, sf = doc.get("instruments"), doc.get("chain"), doc.get("standard_field")
     if not all(isinstance(t, dict) for t in (inst, chain, sf)):
         raise LabError(f"{where}: needs [instruments], [chain] and [standard_field] tables")
@@ -312,17 +312,13 @@ class SubSpec:
     ref_af: tuple[tuple[float, float], ...]       # (freq_hz, dB/m)
 
     def ref_af_db_per_m(self, freq_hz):
-        f, x = zip(*self.ref_af)
-        return np.interp(np.log10(freq_hz), np.log10(f), x)
+        return _logf_interp(self.ref_af, freq_hz)
 
 
 def load_substitution(path) -> SubSpec:
     """The [substitution] table of a bench file; every problem names the file and the key."""
     where = str(path)
-    try:
-        doc = tomllib.loads(read_input_text(path, "bench", LabError))
-    except tomllib.TOMLDecodeError as exc:
-        raise LabError(f"{where}: not valid TOML ({exc})".replace("\n", " ")) from None
+    doc = read_input_toml(path, "bench", LabError)
     t = doc.get("substitution")
     if not isinstance(t, dict):
         raise LabError(f"{where}: --method substitution needs a [substitution] table (ref_name, ref_certificate, "

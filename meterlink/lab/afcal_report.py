@@ -67,17 +67,23 @@ def check_base(session: LabSession, base) -> None:
                        f"{session.probe_serial}: give the antenna's own previous certificate (--previous)")
 
 
-def analyse(session: LabSession, bench: AfBench, readings, base: DipoleCertificate) -> AfCalibration:
-    """Points, budgets and the new dipole certificate."""
-    check_base(session, base)
+def _repeats(readings, with_what: str) -> tuple[dict, tuple]:
+    """The readings by frequency where there are two or more repeats, and the frequencies left out."""
     by_f: dict[float, list] = {}
     for r in readings:
         by_f.setdefault(r.freq_hz, []).append(r)
     left_out = tuple(sorted(f for f, v in by_f.items() if len(v) < 2))
     by_f = {f: v for f, v in by_f.items() if len(v) >= 2}
     if len(by_f) < 2:
-        raise LabError(f"{len(by_f)} frequencies measured with two or more repeats: an antenna-factor table "
-                       "needs two or more")
+        raise LabError(f"{len(by_f)} frequencies measured with {with_what}two or more repeats: an antenna-factor "
+                       "table needs two or more")
+    return by_f, left_out
+
+
+def analyse(session: LabSession, bench: AfBench, readings, base: DipoleCertificate) -> AfCalibration:
+    """Points, budgets and the new dipole certificate."""
+    check_base(session, base)
+    by_f, left_out = _repeats(readings, "")
     inputs = budget_inputs(session)
     pts, buds, notes = [], [], ()
     for f in sorted(by_f):
@@ -93,14 +99,7 @@ def analyse_substitution(session: LabSession, bench: AfBench, sub: SubSpec, read
                          ) -> AfCalibration:
     """Points, budgets and the new dipole certificate from substitution readings (SubReading)."""
     check_base(session, base)
-    by_f: dict[float, list] = {}
-    for r in readings:
-        by_f.setdefault(r.freq_hz, []).append(r)
-    left_out = tuple(sorted(f for f, v in by_f.items() if len(v) < 2))
-    by_f = {f: v for f, v in by_f.items() if len(v) >= 2}
-    if len(by_f) < 2:
-        raise LabError(f"{len(by_f)} frequencies measured with both antennas and two or more repeats: an "
-                       "antenna-factor table needs two or more")
+    by_f, left_out = _repeats(readings, "both antennas and ")
     inputs = budget_inputs(session, SubBudgetInputs)
     pts, buds, notes = [], [], ()
     for f in sorted(by_f):

@@ -17,10 +17,9 @@ Bench file (TOML, docs/instruments.md):
 from __future__ import annotations
 
 import math
-import tomllib
 from dataclasses import dataclass
 
-from meterlink.errors import read_input_text
+from meterlink.errors import read_input_toml
 from meterlink.instruments.bench import PowerMeter, Rotator, SignalGenerator
 from meterlink.instruments.session import open_session
 from meterlink.lab.session import LabError
@@ -46,10 +45,7 @@ class BenchFile:
 def load_bench(path) -> BenchFile:
     """Read a bench file; every problem names the file and the key."""
     where = str(path)
-    try:
-        doc = tomllib.loads(read_input_text(path, "bench", LabError))
-    except tomllib.TOMLDecodeError as exc:
-        raise LabError(f"{where}: not valid TOML ({exc})".replace("\n", " ")) from None
+    doc = read_input_toml(path, "bench", LabError)
     inst, chain = doc.get("instruments"), doc.get("chain")
     if not isinstance(inst, dict) or not isinstance(chain, dict):
         raise LabError(f"{where}: needs [instruments] and [chain] tables")

@@ -112,16 +112,22 @@ class AfBudgetInputs:
 
     def replace(self, overrides: dict) -> "AfBudgetInputs":
         """These inputs with the named ones replaced; unknown names are refused (ValueError)."""
-        from dataclasses import fields, replace
+        return _with_overrides(self, overrides)
 
-        known = {f.name for f in fields(self)}
-        bad = sorted(set(overrides) - known)
-        if bad:
-            raise ValueError(f"unknown budget input(s) {', '.join(bad)} (known: {', '.join(sorted(known))})")
-        for k, v in overrides.items():
-            if not (math.isfinite(v) and v >= 0):
-                raise ValueError(f"budget input {k} = {v!r}: must be a finite number >= 0")
-        return replace(self, **{k: float(v) for k, v in overrides.items()})
+
+def _with_overrides(inputs, overrides: dict):
+    """A budget-inputs dataclass with the named fields replaced; unknown names and values that are not
+    finite numbers >= 0 are refused (ValueError)."""
+    from dataclasses import fields, replace
+
+    known = {f.name for f in fields(inputs)}
+    bad = sorted(set(overrides) - known)
+    if bad:
+        raise ValueError(f"unknown budget input(s) {', '.join(bad)} (known: {', '.join(sorted(known))})")
+    for k, v in overrides.items():
+        if not (math.isfinite(v) and v >= 0):
+            raise ValueError(f"budget input {k} = {v!r}: must be a finite number >= 0")
+    return replace(inputs, **{k: float(v) for k, v in overrides.items()})
 
 
 def mismatch_limit_db(gamma_a: float, gamma_b: float) -> float:
@@ -232,16 +238,7 @@ class SubBudgetInputs:
 
     def replace(self, overrides: dict) -> "SubBudgetInputs":
         """These inputs with the named ones replaced; unknown names are refused (ValueError)."""
-        from dataclasses import fields, replace
-
-        known = {f.name for f in fields(self)}
-        bad = sorted(set(overrides) - known)
-        if bad:
-            raise ValueError(f"unknown budget input(s) {', '.join(bad)} (known: {', '.join(sorted(known))})")
-        for k, v in overrides.items():
-            if not (math.isfinite(v) and v >= 0):
-                raise ValueError(f"budget input {k} = {v!r}: must be a finite number >= 0")
-        return replace(self, **{k: float(v) for k, v in overrides.items()})
+        return _with_overrides(self, overrides)
 
 
 def sub_budget(point: SubPoint, inputs: SubBudgetInputs, k: float = 2.0) -> tuple[Budget, tuple[str, ...]]:

@@ -12,14 +12,13 @@ from __future__ import annotations
 import json
 import math
 import time
-import tomllib
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from meterlink.cautions import SAFETY_LINE
-from meterlink.errors import MeterlinkError, read_input_text
+from meterlink.errors import MeterlinkError, read_input_toml
 from meterlink.instruments.session import InstrumentError
 from meterlink.physics.calibrate import af_db_per_m, cable_loss_db
 from meterlink.physics.selective import (ChainSpec, channel_power_w, combine_orientations,
@@ -53,10 +52,7 @@ class Band:
 def load_bands(path) -> list[Band]:
     """Bands from a TOML file; each failure names the file, the band and the key."""
     where = str(path)
-    try:
-        doc = tomllib.loads(read_input_text(path, "band", BandFileError))
-    except tomllib.TOMLDecodeError as exc:
-        raise BandFileError(f"{where}: not valid TOML ({exc})".replace("\n", " ")) from None
+    doc = read_input_toml(path, "band", BandFileError)
     rows = doc.get("band")
     if not isinstance(rows, list) or not rows:
         raise BandFileError(f"{where}: no [[band]] tables")
@@ -203,10 +199,7 @@ def load_extrapolation(path, bands) -> dict:
     """check_extrapolation of a TOML file of [\"BAND NAME\"] tables (the same tables as a plan's
     [point.extrapolation."BAND NAME"]); each failure is one line naming the file."""
     where = str(path)
-    try:
-        doc = tomllib.loads(read_input_text(path, "extrapolation", BandFileError))
-    except tomllib.TOMLDecodeError as exc:
-        raise BandFileError(f"{where}: not valid TOML ({exc})".replace("\n", " ")) from None
+    doc = read_input_toml(path, "extrapolation", BandFileError)
     if not doc or not all(isinstance(v, dict) for v in doc.values()):
         raise BandFileError(f"{where}: expected one table per band name, e.g. [\"Pole LTE 800\"] with method = ...")
     try:
