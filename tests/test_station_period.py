@@ -195,3 +195,72 @@ def test_status_fits_an_80_column_terminal_without_cutting_names_or_times(statio
     whole = [x for x in lines if "roof-east" in x]
     assert len(whole) == 2 and stamp in whole[0]                    # the name and the time on one line each
     assert any("cert due" in x for x in lines) and "(" in whole[1]  # the certificate's due date with days left
+
+
+def _status_lines(db, columns):
+    import os
+    import subprocess
+    import sys
+
+    p = subprocess.run([sys.executable, "-m", "meterlink", "status", "--db", str(db)], capture_output=True, text=True,
+                       env={**os.environ, "COLUMNS": str(columns)}, timeout=60)
+    assert p.returncode == 0, p.stderr
+    return p.stdout.splitlines()
+
+
+LONG_NAME = "Brannock-Tor-north-mast-roof-east-sector-A"
+
+
+@pytest.fixture(scope="module")
+def long_named(station, tmp_path_factory):
+    """The station's file with its meter renamed to a long hyphenated name (a real SQLite copy)."""
+    _, db, _ = station
+    copy = tmp_path_factory.mktemp("longname") / "st.db"
+    src = sqlite3.connect(db)
+    dst = sqlite3.connect(copy)
+    src.backup(dst)
+    src.close()
+    dst.execute("UPDATE mon_meter SET meter = ?", (LONG_NAME,))
+    dst.commit()
+    dst.close()
+    return copy
+
+
+def test_status_at_80_columns_breaks_a_long_name_between_its_parts_never_inside_one(long_named):
+    lines = _status_lines(long_named, 80)
+    assert max(len(x) for x in lines) <= 80
+    # the name's lines, first cell of each row block: rejoined they give the whole name in both tables
+    heads = [i for i, x in enumerate(lines) if x.startswith("meter ")]
+    assert len(heads) == 2
+    for h in heads:
+        cells = []
+        for x in lines[h + 1:]:
+            cell = x.split("  ")[0].strip()
+            if not cell or not (LONG_NAME.startswith("".join(cells) + cell)):
+                break
+            cells.append(cell)
+        assert "".join(cells) == LONG_NAME, cells
+        assert len(cells) > 1 and all(c.endswith("-") for c in cells[:-1])   # broken after a hyphen each time
+        assert not any("\u2026" in c for c in cells)                          # so nothing needed cutting
+
+
+def test_status_on_a_wide_terminal_keeps_the_long_name_on_one_line(long_named):
+    lines = _status_lines(long_named, 200)
+    assert max(len(x) for x in lines) <= 200
+    assert sum(LONG_NAME in x for x in lines) == 1
+
+
+def test_status_marks_a_cut_in_a_name_without_break_opportunities(long_named, tmp_path):
+    import shutil
+
+    db = tmp_path / "st.db"
+    shutil.copy(long_named, db)
+    conn = sqlite3.connect(db)
+    conn.execute("UPDATE mon_meter SET meter = ?", ("X" * 40,))
+    conn.commit()
+    conn.close()
+    lines = _status_lines(db, 80)
+    assert max(len(x) for x in lines) <= 80
+    cut = [x.split("  ")[0] for x in lines if x.startswith("X")]
+    assert cut and all(c.endswith("\u2026") for c in cut[:2])           # a visible mark where it was cut
+    assert "".join(c.rstrip("\u2026") for c in cut[: len(cut) // 2]) == "X" * 40

@@ -72,3 +72,14 @@ def test_wide_characters_take_two_columns():
     # Unicode Standard Annex #11 (East Asian Width): U+6F22 and U+5B57 are W (wide), two terminal cells each;
     # U+0301 COMBINING ACUTE ACCENT takes none
     assert cell_width("\u6f22\u5b57") == 4 and cell_width("e\u0301") == 1 and cell_width("abc") == 3
+
+
+def test_wrap_words_breaks_after_hyphens_and_marks_any_cut():
+    from meterlink.reports.termtable import wrap_words
+
+    assert wrap_words("roof-east-sector-A", 10) == ["roof-east-", "sector-A"]
+    assert wrap_words("north mast roof", 10) == ["north mast", "roof"]
+    assert wrap_words("roof-east", 20) == ["roof-east"]
+    got = wrap_words("ABCDEFGHIJKLMNOPQRST", 8)
+    assert got == ["ABCDEFG\u2026", "HIJKLMN\u2026", "OPQRST"]              # every cut line carries the mark
+    assert all(len(x) <= 8 for x in got)

@@ -77,13 +77,14 @@ def run(args) -> int:
     # a narrow terminal (80 columns) gets two tables, values then health, instead of one that cuts names and times
     heads = list(cols)
     groups = [heads] if con.width >= 160 else [[h for h in heads[:7] if h != "link"], ["meter", "link", *heads[7:]]]
+    name_w, alarm_w = _text_widths(s["meters"], cols, groups, con.width)
     for group in groups:
         t = Table(*group, box=None if len(groups) > 1 else box.HEAVY_HEAD, pad_edge=len(groups) == 1)
-        for name in group:
-            t.columns[group.index(name)].overflow = "fold"
-            t.columns[group.index(name)].no_wrap = name in ("last seen (UTC)", "cert due", "E V/m", "U dB")
+        for column in t.columns:          # every cell fits its column: nothing for rich to fold mid-word
+            column.no_wrap, column.overflow = True, "ellipsis"
         for m in s["meters"]:
-            t.add_row(*(cols[name](m) for name in group))
+            t.add_row(*(_wrapped(cols[name](m), name_w if name == "meter" else alarm_w) if name in ("meter", "alarms")
+                        else cols[name](m) for name in group))
         con.print(t)
     from meterlink.station.publish import COVERAGE_NOTE
 
@@ -93,3 +94,39 @@ def run(args) -> int:
                   overflow="fold")
     con.print(SAFETY_LINE)
     return 0
+
+
+def _wrapped(markup: str, width: int) -> str:
+    """A cell's text (rich markup, escaped) in lines of at most width columns, broken between words and
+    after - _ . / : (termtable.wrap_words): a name is never cut silently."""
+    from rich.markup import escape, render
+
+    from meterlink.reports.termtable import wrap_words
+
+    return "\n".join(escape(line) for line in wrap_words(render(markup).plain, width))
+
+
+def _text_widths(meters: list[dict], cols: dict, groups: list[list[str]], width: int) -> tuple[int, int]:
+    """Widths for the meter name and alarms columns so that each table fits width: the other columns keep
+    their whole width (times, values, dates), the name gets what is left, the alarms the rest of theirs."""
+    from rich.markup import render
+
+    def natural(name: str) -> int:
+        return max([len(name)] + [len(line) for m in meters for line in render(cols[name](m)).plain.split("\n")])
+
+    def longest_word(name: str) -> int:
+        return max([len(name)] + [len(w) for m in meters for w in render(cols[name](m)).plain.split()])
+
+    name_w = natural("meter")
+    alarm_w = natural("alarms")
+    for group in groups:
+        overhead = 2 * (len(group) - 1) if len(groups) > 1 else 3 * len(group) + 1
+        fixed = sum(natural(h) for h in group if h not in ("meter", "alarms"))
+        room = width - overhead - fixed
+        if "alarms" in group:
+            keep = min(alarm_w, max(longest_word("alarms"), room // 3))
+            name_w = min(name_w, room - keep)
+            alarm_w = max(room - min(name_w, natural("meter")), longest_word("alarms") if room > 0 else 6)
+        else:
+            name_w = min(name_w, room)
+    return max(8, name_w), max(6, min(alarm_w, natural("alarms")))

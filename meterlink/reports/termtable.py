@@ -177,6 +177,51 @@ def _wrap(text: str, width: int) -> list[str]:
     return textwrap.wrap(text, width, break_long_words=False, break_on_hyphens=False) or [""]
 
 
+_BREAK_AFTER = "-_./:"
+
+
+def wrap_words(text: str, width: int, mark: str = "\u2026") -> list[str]:
+    """text (a name, a list of rules) in lines of at most width columns, broken at spaces and after
+    - _ . / : (so 'roof-east-sector' breaks as 'roof-east-' 'sector'); a piece still wider than width is
+    cut with mark at the end of each cut line, so a cut is never silent and the whole text stays."""
+    width = max(2, width)
+    pieces, cur = [], ""
+    for ch in text:                               # pieces: words ending at a space or after a break character
+        if ch.isspace():
+            if cur:
+                pieces.append(cur)
+            cur = ""
+            pieces.append(" ")
+            continue
+        cur += ch
+        if ch in _BREAK_AFTER:
+            pieces.append(cur)
+            cur = ""
+    if cur:
+        pieces.append(cur)
+    lines, line = [], ""
+    for piece in pieces:
+        if piece == " ":
+            if line and not line.endswith(" "):
+                line += " "
+            continue
+        if cell_width(line + piece) <= width:
+            line += piece
+            continue
+        if line.strip():
+            lines.append(line.rstrip())
+        line = piece
+        while cell_width(line) > width:           # no break opportunity left: cut, with the mark
+            k = width - cell_width(mark)
+            while cell_width(line[:k]) > width - cell_width(mark):
+                k -= 1
+            lines.append(line[:k] + mark)
+            line = line[k:]
+    if line.strip() or not lines:
+        lines.append(line.rstrip())
+    return lines
+
+
 def _painter(colour: bool):
     def paint(text: str, style: str) -> str:
         if not colour or not style or not text.strip():
