@@ -25,6 +25,8 @@ def run(args) -> int:
     if args.verify:
         return _verify(args)
     rows = _listing(args)
+    if args.events is None:
+        _survey_outcomes(rows)
     if args.json:
         print(json.dumps(rows, indent=2, default=str))
         return 0
@@ -65,6 +67,22 @@ def _listing(args) -> list[dict]:
             conn.close()
     except sqlite3.DatabaseError as exc:    # a damaged page met while reading
         raise describe_sqlite_error(args.db, exc) from None
+
+
+def _survey_outcomes(rows: list[dict]) -> None:
+    """Each survey's site outcome as measured (survey_outcome) and at the maximum declared power
+    (survey_outcome_extrapolated), by the rule of the survey report's conclusion (meterlink.survey.outcome)
+    from the outcomes its points' current captures stored; None for other sessions. They replace the raw
+    lists the listing read."""
+    from meterlink.survey.outcome import extrapolated_outcome, site_outcome
+
+    for r in rows:
+        verdicts = r.pop("survey_point_verdicts", None)
+        extrap = r.pop("survey_point_verdicts_extrapolated", None)
+        has_max = r.pop("survey_max_power", None)
+        r["survey_outcome"] = None if verdicts is None else site_outcome(json.loads(verdicts))
+        r["survey_outcome_extrapolated"] = (None if verdicts is None else
+                                            extrapolated_outcome(json.loads(extrap), bool(has_max)))
 
 
 def _verify(args) -> int:
@@ -169,12 +187,17 @@ def _sessions_table(rows, db):
         data += f"\n{r['calibrations']} cal" if r["calibrations"] else ""
         events = [str(r["events"])] + ([Styled(f"{r['warnings']} warn", "yellow")] if r["warnings"] else []) + \
             ([Styled(f"{r['errors']} err", "red")] if r["errors"] else [])
-        outcome = r["last_outcome"] or "-"
+        outcome = r["survey_outcome"] or r["last_outcome"] or "-"     # a survey: its site's, as its report states
+        verdict = [Styled(clean_text(outcome), _OUTCOME_STYLE.get(outcome, ""))]
+        at_max = r["survey_outcome_extrapolated"]
+        if at_max:
+            verdict += ["at max power:", Styled(at_max, _OUTCOME_STYLE.get(at_max, ""))]
         t.add_row(str(r["id"]), clean_text(r["kind"]), inst,
                   _short_time(r["first_utc"] or r["started_utc"]).replace(" ", "\n"),
                   "-" if span is None else f"{span / 60:.1f} min", data, events,
-                  Styled(clean_text(outcome), _OUTCOME_STYLE.get(outcome, "")))
-    t.caption = ("rd readings, sp spectra, cal calibrations applied; times by each device's clock.\n"
+                  verdict)
+    t.caption = ("rd readings, sp spectra, cal calibrations applied; times by each device's clock; a survey's "
+                 "verdict is its site's outcome, as its report concludes.\n"
                  "A session's events: meterlink sessions --events ID")
     return t
 

@@ -26,7 +26,14 @@ OVERVIEW_SQL = """
            (select count(*) from events e where e.session_id = s.id and e.severity = 'error') as errors,
            (select count(*) from calibrations c where c.session_id = s.id) as calibrations,
            (select json_extract(e.detail, '$.outcome') from events e where e.session_id = s.id
-              and e.kind = 'assessment' order by e.t_utc desc, e.id desc limit 1) as last_outcome
+              and e.kind = 'assessment' order by e.t_utc desc, e.id desc limit 1) as last_outcome,
+           case when s.kind = 'survey' then (select json_group_array(p.verdict) from survey_points p
+              where p.session_id = s.id and p.replaced_by is null) end as survey_point_verdicts,
+           case when s.kind = 'survey' then (select json_group_array(p.verdict_extrapolated) from survey_points p
+              where p.session_id = s.id and p.replaced_by is null) end as survey_point_verdicts_extrapolated,
+           case when s.kind = 'survey' then (exists (select 1 from survey_sources c where c.session_id = s.id)
+              or exists (select 1 from sel_bands b join sel_points q on q.id = b.point_id
+                         where q.session_id = s.id and b.extrapolation_json is not null)) end as survey_max_power
     from sessions s left join devices d on d.id = s.device_id order by s.id"""
 
 
@@ -71,7 +78,10 @@ def open_current(path: str | Path) -> sqlite3.Connection | None:
 
 def session_overview(conn: sqlite3.Connection) -> list[dict]:
     """One row per session with its device, span and counts of readings, spectra, events by severity
-    and calibrations, and the outcome of its latest assessment (if any)."""
+    and calibrations, and the outcome of its latest assessment (if any); for a survey, the outcomes of
+    its points' current captures as measured and at maximum power (survey_point_verdicts[_extrapolated],
+    JSON lists) and whether a maximum power was declared (survey_max_power): the site's outcomes are read
+    from them by meterlink.survey.outcome, the rule of the survey report's conclusion)."""
     return _dicts(conn.execute(OVERVIEW_SQL))
 
 

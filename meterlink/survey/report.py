@@ -26,17 +26,10 @@ CAUTIONS = (
     "value is compared with the most restrictive reference level in its band. Keep clear of energised "
     "antennas and observe the site's access rules, barriers and signage at all times.")
 
-#: Site outcomes, worst first: the site takes the worst outcome of its assessable points.
-_WORST_FIRST = ("not compliant", "conditional fail", "conditional pass", "compliant")
+from meterlink.survey.outcome import WORST_FIRST as _WORST_FIRST, extrapolated_outcome, site_outcome
+
 _REPORT_KEYS = {"number", "revision", "assessor", "qualification", "organisation", "date", "reviewer",
                 "reviewer_qualification", "review_date", "revision_note"}
-
-
-def site_outcome(verdicts) -> str:
-    """The site's outcome: the worst of the points' outcomes that carry a conformity statement,
-    "not assessable" when none does."""
-    present = [v for v in verdicts if v in _WORST_FIRST]
-    return min(present, key=_WORST_FIRST.index) if present else "not assessable"
 
 
 def conclusion(sv: dict) -> dict:
@@ -46,12 +39,11 @@ def conclusion(sv: dict) -> dict:
     pts = sv["points"]
     measured = [p for p in pts if p["percent_power"] is not None]
     top = max(measured, key=lambda p: p["percent_power"], default=None)
-    extrap = [p["verdict_extrapolated"] for p in pts if p["verdict_extrapolated"]]
     # a selective point at the label of a broadband point above the threshold is that point's follow-up
     selective = {p["label"] for p in pts if p["mode"] == "selective"}
     has_max = bool(sv["sources"]) or any(b["extrapolation"] for s in sv.get("selective", []) for b in s["bands"])
     return {"outcome": site_outcome(p["verdict"] for p in pts),
-            "outcome_extrapolated": site_outcome(extrap) if extrap and has_max else None,
+            "outcome_extrapolated": extrapolated_outcome((p["verdict_extrapolated"] for p in pts), has_max),
             "n_points": len(pts), "top": top, "n_selective": len(selective),
             "followup": [p for p in pts if p["followup"] and p["label"] not in selective],
             "followup_done": [p for p in pts if p["followup"] and p["label"] in selective],
