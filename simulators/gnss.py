@@ -4,7 +4,8 @@ invented site in step with the simulated meter's probe.
 Positions come from a callable giving the probe's local site metres (x east, y north, z up) at the
 fix's own time (or now, for a callable without arguments); they are turned into latitude/longitude
 about an invented origin (equirectangular, the same formula as
-meterlink.device.gnss.from_local_m). Fault switches: garbage (bad checksums and noise), no_fix
+meterlink.device.gnss.from_local_m). A real receiver sends a fix's sentences some time after the
+fix's epoch: output_delay_s (device seconds, default 0) sets that delay. Fault switches: garbage (bad checksums and noise), no_fix
 (quality 0, RMC status V), and vanish (the port disappears; it may come back after down_s).
 """
 
@@ -66,10 +67,11 @@ class SimulatedGnss:
     ties both to a SimulatedMeter so that the receiver is where the probe is."""
 
     def __init__(self, position, clock, *, origin=DEMO_ORIGIN, utc0: float | None = None, seed: int = 0,
-                 schedule=(), position_at=None, speed: float = 1.0):
+                 schedule=(), position_at=None, speed: float = 1.0, output_delay_s: float = 0.0):
         self.position, self.clock = position, clock
         self.position_at = position_at      # t_s -> (x, y, z): where the receiver was at a fix's time
         self.speed = float(speed)           # simulated seconds per host second, to wake in time for each fix
+        self.output_delay_s = float(output_delay_s)   # device s from a fix's epoch to sending its sentences
         self.lat0, self.lon0, self.alt0 = (float(v) for v in origin)
         self.utc0 = time.time() if utc0 is None else float(utc0)
         self.rng = np.random.default_rng(seed)
@@ -172,7 +174,7 @@ class SimulatedGnss:
                 if self._next_s is None:
                     self._next_s = math.floor(t)
                 out = bytearray()
-                while self._next_s <= t:
+                while self._next_s + self.output_delay_s <= t:
                     out += self._epoch(self._next_s)
                     self._next_s += 1.0
                 if self._master is not None and out:
@@ -181,8 +183,8 @@ class SimulatedGnss:
                     except OSError as exc:
                         if exc.errno not in (errno.EAGAIN, errno.EIO):
                             raise
-                # a receiver sends its fix right after the epoch: wake then (at most every 5 ms of host time)
-                wait = min(0.005, max(0.0005, (self._next_s - float(self.clock())) / self.speed))
+                # a receiver sends its fix output_delay_s after the epoch: wake then (at most every 5 ms of host time)
+                wait = min(0.005, max(0.0005, (self._next_s + self.output_delay_s - float(self.clock())) / self.speed))
 
     def _epoch(self, t_s: float) -> bytes:
         lat, lon, alt = self.geo(self.position_at(t_s) if self.position_at is not None else self.position())

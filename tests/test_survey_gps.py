@@ -166,3 +166,60 @@ def test_missing_sources_file_is_refused_before_the_meter_is_touched(tmp_path):
                        capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "Traceback" not in r.stderr and len(r.stderr.strip().splitlines()) == 1
     assert "absent-sources.toml" in r.stderr and not (tmp_path / "x.db").exists()
+
+
+def _sweep_survey(tmp_path, name, delay_s, declared_s):
+    """A sweep walked at about 2 m/s with a receiver that sends each fix delay_s (device s) after its
+    epoch; declared_s is the plan's gnss_output_delay_s (None: not declared). The sweep's trace rows'
+    horizontal errors against the truth, the rows, and the gnss_summary event's detail."""
+    db = tmp_path / f"{name}.db"
+    survey = {**PLAN["survey"], "settle_s": 3, "interval_ms": 200}
+    if declared_s is not None:
+        survey["gnss_output_delay_s"] = declared_s
+    plan = {**PLAN, "survey": survey, "point": [PLAN["point"][3]]}
+    with SimulatedMeter("demo", seed=1, speed=25.0) as sim, \
+            SimulatedGnss.following(sim, output_delay_s=delay_s) as gnss:
+        sid = run_plan(sim.port, plan, db, mover=sim.move_to, gnss_port=gnss.port)
+        trace = rows(db, "select * from survey_trace where session_id = ? and used = 1", sid)
+        errs = [_truth_error_m(sim, t)[0] for t in trace]
+    ev = rows(db, "select detail from events where session_id = ? and kind = 'gnss_summary'", sid)
+    return db, sid, errs, trace, json.loads(ev[0]["detail"])
+
+
+def test_a_declared_receiver_output_delay_is_taken_out_and_an_undeclared_one_biases_positions(tmp_path):
+    # The simulated receiver sends every fix 1 s (device time) after its epoch, as a real one does some
+    # 50-500 ms after (receiver-dependent; 1 s here so that the lag, 2 m, stands well clear of the
+    # scatter of the accelerated timing). The truth is where the probe was at each reading's device
+    # time; the carrier walks the fence at about 2 m/s (39.8 m in 20 s).
+    delay = 1.0
+    db, sid, errs, trace, summ = _sweep_survey(tmp_path, "declared", delay, delay)
+    assert len(errs) >= 95 and sorted(errs)[len(errs) // 2] <= 0.6         # as with a receiver without delay
+    assert all(e <= 2 * t["pos_u_m"] for e, t in zip(errs, trace))        # within the stated accuracy
+    assert summ["output_delay_s"] == delay and summ["output_delay_from"] == "plan"
+    _, _, errs_u, _, summ_u = _sweep_survey(tmp_path, "undeclared", delay, None)
+    # undeclared, the delay is taken for clock offset: each position is the one 1 s before, some 2 m back
+    assert summ_u["output_delay_s"] is None
+    median_u = sorted(errs_u)[len(errs_u) // 2]
+    assert median_u >= 1.2 and median_u == pytest.approx(2.0 * delay, abs=0.5)
+    # the report's positions note says how readings were matched in time, with the declared delay
+    from meterlink.survey.report import write_report
+
+    html = write_report(db, sid, tmp_path / "rep").read_text(encoding="utf-8")
+    assert "output delay (from a fix&#39;s epoch to its sentences) was declared as 1.000 s" in html
+
+
+def test_a_bad_output_delay_is_one_line(tmp_path, capsys):
+    from meterlink.cli import main
+    from meterlink.survey.plan import PlanError, load_plan
+
+    with pytest.raises(PlanError, match=r"gnss_output_delay_s = 3 must be at least 0 and at most 2") as exc:
+        load_plan({**PLAN, "survey": {**PLAN["survey"], "gnss_output_delay_s": 3}})
+    assert "\n" not in str(exc.value)
+    for value, says in (("-0.1", "is not a number of seconds from 0 to 2"), ("soon", "is not a number of seconds")):
+        rc = main(["survey", "--port", "/dev/null", "--gps", "/dev/null", "--gps-output-delay", value,
+                   "--db", str(tmp_path / "x.db"), "--plan", "none.toml"])
+        err = capsys.readouterr().err
+        assert rc == 2 and says in err and len(err.strip().splitlines()) == 1
+    rc = main(["survey", "--port", "/dev/null", "--gps-output-delay", "0.2", "--db", str(tmp_path / "x.db")])
+    assert rc == 2 and "goes with --gps" in capsys.readouterr().err
+    assert not (tmp_path / "x.db").exists()

@@ -18,6 +18,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--start-tick", type=int, default=0, metavar="MS", help="device tick at power-up")
     parser.add_argument("--gps", action="store_true", help="also serve a simulated GNSS receiver (NMEA GGA/RMC, "
                         "1 Hz of device time) that follows the probe; its port is printed on the second line")
+    parser.add_argument("--gps-output-delay", type=float, default=0.0, metavar="SECONDS",
+                        help="with --gps: the receiver sends each fix this many device seconds after its epoch, "
+                             "as a real receiver does (default 0)")
     parser.add_argument("--json", action="store_true", help="print the final stats as JSON")
 
 
@@ -35,6 +38,8 @@ def run(args) -> int:
             raise MeterlinkError(f"--{name} {p}: a probability must be between 0 and 1")
     if not args.speed > 0:
         raise MeterlinkError(f"--speed {args.speed}: must be positive")
+    if not 0.0 <= args.gps_output_delay <= 2.0:
+        raise MeterlinkError(f"--gps-output-delay {args.gps_output_delay}: must be 0 to 2 s")
     faults = {"drop": args.drop, "corrupt": args.corrupt, "garbage": args.garbage}
     try:
         meter = SimulatedMeter(args.scenario, sensor=args.sensor, meter=args.meter, seed=args.seed, speed=args.speed,
@@ -51,7 +56,7 @@ def run(args) -> int:
             gnss = None
             if args.gps:
                 from meterlink.simulators.gnss import SimulatedGnss
-                gnss = SimulatedGnss.following(meter).start()
+                gnss = SimulatedGnss.following(meter, output_delay_s=args.gps_output_delay).start()
                 print(gnss.port, flush=True)
             try:
                 while not done.wait(0.2):

@@ -15,6 +15,9 @@ def add_arguments(parser) -> None:
                         help=f"database file, created if missing (default: {DEFAULT_DB})")
     parser.add_argument("--gps", metavar="PORT", help="serial device or pyserial URL of a GNSS receiver (NMEA 0183 "
                         "GGA/RMC): every sample is stored with its position (docs/gps.md)")
+    parser.add_argument("--gps-output-delay", metavar="SECONDS", help="the GNSS receiver's output delay: time from "
+                        "a fix's epoch to its NMEA sentences (receiver-dependent, often 0.05 to 0.5 s; see its manual), "
+                        "taken out when matching positions to readings (overrides the plan's gnss_output_delay_s)")
     parser.add_argument("--analyser", metavar="ADDRESS", help="VISA address of the spectrum analyser for the plan's "
                         "selective points (overrides their analyser = ...), e.g. TCPIP::192.0.2.7::5025::SOCKET")
     parser.add_argument("--json", action="store_true", help="no live readout; print the point results as JSON")
@@ -52,6 +55,26 @@ def _photos(args) -> list:
     return out
 
 
+def _output_delay(args) -> float | None:
+    """--gps-output-delay in seconds (None when not given); one line for a value that is not 0 to 2 s or
+    given without --gps."""
+    from meterlink.errors import MeterlinkError
+    from meterlink.survey.plan import MAX_GNSS_OUTPUT_DELAY_S
+
+    if args.gps_output_delay is None:
+        return None
+    if not args.gps:
+        raise MeterlinkError("--gps-output-delay goes with --gps PORT (the receiver it describes)")
+    try:
+        v = float(args.gps_output_delay)
+    except ValueError:
+        v = float("nan")
+    if not 0 <= v <= MAX_GNSS_OUTPUT_DELAY_S:
+        raise MeterlinkError(f"--gps-output-delay {args.gps_output_delay!r} is not a number of seconds from 0 to "
+                             f"{MAX_GNSS_OUTPUT_DELAY_S:g}")
+    return v
+
+
 def result_dict(r) -> dict:
     """A PointResult as plain JSON-able data."""
     return {"label": r.point.label, "mode": r.point.mode, "scheme": r.scheme, "e_v_per_m": r.e_v_per_m,
@@ -76,6 +99,7 @@ def run(args) -> int:
 
     if not args.port:
         raise MeterlinkError("no --port given (see 'meterlink ports')")
+    args.gnss_output_delay_s = _output_delay(args)
     if args.remeasure is not None or args.session is not None or args.reason is not None or args.photo \
             or args.photo_caption or args.photo_direction:
         return _remeasure(args)
@@ -102,13 +126,15 @@ def run(args) -> int:
             def orient(axis):
                 input(f"turn the antenna to orientation {axis} and press Enter ")
         sid = run_plan(args.port, args.plan, args.db, console=console, ready=ready, gnss_port=args.gps,
-                       declared=declared, analyser=args.analyser, orient=orient)
+                       declared=declared, analyser=args.analyser, orient=orient,
+                       gnss_output_delay_s=args.gnss_output_delay_s)
     else:
         if args.json:
             raise MeterlinkError("--json needs --plan (the interactive survey asks at the terminal)")
         from meterlink.planning.sourcefile import load_site
         from meterlink.survey.interactive import run_interactive
-        sid = run_interactive(args.port, args.db, console=console, gnss_port=args.gps, load_declared=load_site)
+        sid = run_interactive(args.port, args.db, console=console, gnss_port=args.gps, load_declared=load_site,
+                              gnss_output_delay_s=args.gnss_output_delay_s)
     with Store(args.db) as store:
         sv = load_survey(store, sid)
     if args.json:
@@ -156,7 +182,8 @@ def _remeasure(args) -> int:
             ask(f"Hold the probe at {point.label!r}, {height_m:.2f} m, then press Enter", default="")
     try:
         res = remeasure(args.port, args.db, sid, args.remeasure, args.reason or "", photos=_photos(args),
-                        console=console, ready=ready, gnss_port=args.gps)
+                        console=console, ready=ready, gnss_port=args.gps,
+                        gnss_output_delay_s=args.gnss_output_delay_s)
     except EOFError:
         raise MeterlinkError("input ended before the point was measured again: the survey is unchanged") from None
     if args.json:

@@ -13,8 +13,10 @@ Time: every fix is kept in a short track keyed by its own UTC (GGA time, RMC dat
 placed on that track by time, not by when the host happened to handle it: the offset between
 GNSS time and the readings' time scale is estimated as the median of (arrival - fix time) over
 recent fixes, the arrival expressed in the readings' time scale (frame_clock; the host's UTC when
-none is given), and position_on_track() interpolates between the two fixes that bracket the
-reading's time.
+none is given), less the receiver's output delay when one is declared (output_delay_s: a receiver
+sends a fix's sentences some 50-500 ms after the fix's epoch, receiver-dependent; undeclared, that
+delay is taken for clock offset and every position is the one from that long before), and
+position_on_track() interpolates between the two fixes that bracket the reading's time.
 """
 
 from __future__ import annotations
@@ -87,7 +89,8 @@ class Position:
 
 @dataclass(frozen=True)
 class TimeOffset:
-    """Readings' time minus GNSS time: median of (arrival - fix time), with its robust spread."""
+    """Readings' time minus GNSS time: median of (arrival - fix time - declared output delay), with its
+    robust spread."""
 
     offset_s: float
     spread_s: float            # 1.4826 x median absolute deviation: the scatter of one arrival, s
@@ -271,6 +274,9 @@ class GnssLink:
         #: after a restart): the offsets gathered before are dropped then.
         self.frame_key: Callable[[], object] = lambda: None
         self._key = None
+        #: the receiver's declared output delay, s: from a fix's epoch to its sentences' arrival; taken
+        #: out of every (arrival - fix time) sample. Set it before start().
+        self.output_delay_s = 0.0
 
     # -- public --------------------------------------------------------------------------------
     def start(self, require_open: bool = True) -> "GnssLink":
@@ -301,7 +307,8 @@ class GnssLink:
         return f
 
     def time_offset(self) -> TimeOffset | None:
-        """Readings' time minus GNSS time over the recent fixes (median of arrival - fix time)."""
+        """Readings' time minus GNSS time over the recent fixes (median of arrival - fix time - the
+        declared output delay)."""
         with self._lock:
             samples = list(self._offsets)
         return estimate_offset(samples)
@@ -486,7 +493,7 @@ class GnssLink:
                     if key is not self._key:
                         self._offsets.clear()          # the readings' time scale was mapped anew
                         self._key = key
-                    self._offsets.append(frame - fix_utc)
+                    self._offsets.append(frame - fix_utc - self.output_delay_s)
         self.stats.fixes += 1
         self._set_fix(True)
 

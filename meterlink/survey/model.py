@@ -137,6 +137,7 @@ class SurveyPlan:
     source_path: str = ""
     sources_file: str = ""          # declared sources (docs/sources.md) for the predicted values
     prediction_u_db: float = 3.0    # declared expanded uncertainty (k = 2) of a predicted field, dB
+    gnss_output_delay_s: float | None = None   # GNSS receiver's output delay (fix epoch to its NMEA), s; None: not declared
 
 
 @dataclass(frozen=True)

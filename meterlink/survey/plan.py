@@ -19,7 +19,7 @@ _TRANSMITTER = {"confirmed_with", "confirmed_at", "state"}
 _PHOTO = {"file", "caption", "direction_deg"}
 _SURVEY = {"title", "standard", "tier", "rule", "certificate", "interval_ms", "freq_hz", "band_hz",
            "followup_v_per_m", "followup_percent", "settle_s", "spot_s", "sweep_s", "sources_file",
-           "prediction_u_db"}
+           "prediction_u_db", "gnss_output_delay_s"}
 _SITE = {"name", "address", "operator", "technician", "latitude_deg", "longitude_deg", "notes"}
 _SOURCE = {"name", "freq_hz", "technology", "power_w", "max_power_w", "notes"}
 _POINT = {"label", "mode", "height_m", "x_m", "y_m", "lat_deg", "lon_deg", "notes", "near_field",
@@ -35,6 +35,8 @@ MAX_FREQ_HZ = 3e12
 MAX_DURATION_S = 86400.0
 MAX_SITE_M = 1e5
 MAX_POWER_W = 1e9
+#: A GNSS receiver's output delay (fix epoch to its NMEA sentences) is some 50-500 ms; more than this is a mistake, s.
+MAX_GNSS_OUTPUT_DELAY_S = 2.0
 
 
 class PlanError(MeterlinkError):
@@ -291,7 +293,8 @@ def load_plan(path_or_dict, *, check_photos: bool = True) -> SurveyPlan:
         sweep_s=c.num(sv, "sweep_s", "[survey]", default=60.0, positive=True, hi=MAX_DURATION_S),
         source_text=text, source_path=where if where != "<dict>" else "",
         sources_file=_sources_file(c, sv, where),
-        prediction_u_db=c.num(sv, "prediction_u_db", "[survey]", default=3.0, positive=True, hi=60.0))
+        prediction_u_db=c.num(sv, "prediction_u_db", "[survey]", default=3.0, positive=True, hi=60.0),
+        gnss_output_delay_s=c.num(sv, "gnss_output_delay_s", "[survey]", lo=0.0, hi=MAX_GNSS_OUTPUT_DELAY_S))
 
 
 def _sources_file(c: _Ctx, sv: dict, where: str) -> str:

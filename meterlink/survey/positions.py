@@ -102,13 +102,17 @@ class GnssNotes:
         off = self.capture.offset
         said = "" if off is None else (f"; readings' time - GNSS time {off.offset_s:+.3f} s (median of {off.n} "
                                        f"fixes, spread {off.spread_s:.3f} s)")
+        delay, source = self.gnss.output_delay_s, self.gnss_delay_from
+        said += (f"; receiver output delay {delay:.3f} s declared ({'--gps-output-delay' if source == 'option' else 'plan'})"
+                 ", taken out of the offset" if source else "; no receiver output delay declared (the offset includes it)")
         self._writer.add_event(
             "gnss_summary", sev, f"GNSS on {self.gnss.port}: {self.n_positioned} of {n_all} stored value(s) "
             f"positioned, {self.n_unpositioned} without position; {st['bad_checksum']} sentence(s) with a bad "
             f"checksum and {st['malformed']} malformed not used; receiver lost {st['port_losses']} time(s)" + said,
             positioned=self.n_positioned, unpositioned=self.n_unpositioned,
             offset_s=None if off is None else off.offset_s, offset_spread_s=None if off is None else off.spread_s,
-            offset_n=None if off is None else off.n, **st)
+            offset_n=None if off is None else off.n, output_delay_s=delay if source else None,
+            output_delay_from=source, **st)
 
     def _say_offset(self) -> None:
         """Once per survey, when the readings' time and GNSS time differ by more than OFFSET_LARGE_S:

@@ -144,15 +144,32 @@ def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, meta: di
                   predicted_u_db=_prediction_u(sv), declared_name=_declared_name(sv))
 
 
-def _positions(sv) -> dict:
-    """Rows of the positions table and the GNSS summary line (empty without a receiver)."""
+def _positions(sv, summary: dict | None = None) -> dict:
+    """Rows of the positions table, the GNSS port and how readings were matched to fixes in time (from the
+    survey's closing gnss_summary event detail, when given; empty without a receiver)."""
     rows = []
     for p in sv["points"]:
         for s in p["samples"]:
             rows.append([p["point_no"], p["label"], s["sample_no"], num(s.get("lat_deg"), "{:.6f}"),
                          num(s.get("lon_deg"), "{:.6f}"), num(s.get("alt_m"), "{:.1f}"), num(s.get("pos_u_m"), "{:.1f}"),
                          s.get("fix_utc"), f"{s.get('n_positioned') or 0} of {s['n_readings']}"])
-    return {"port": sv.get("gnss_port"), "rows": rows}
+    return {"port": sv.get("gnss_port"), "rows": rows, "timing": _timing_note(summary or {})}
+
+
+def _timing_note(d: dict) -> str:
+    """How positions were matched to readings in time: the offset between the readings' time and GNSS
+    time and the receiver's output delay, declared (and taken out) or not."""
+    if d.get("offset_s") is None:
+        return ""
+    text = (f"Each reading was given the position at its own time on the receiver's track: readings' time "
+            f"minus GNSS time was {d['offset_s']:+.3f} s (median of {d.get('offset_n')} fixes, spread "
+            f"{d.get('offset_spread_s') or 0:.3f} s). ")
+    if d.get("output_delay_s") is not None:
+        where = "--gps-output-delay" if d.get("output_delay_from") == "option" else "the plan's gnss_output_delay_s"
+        return text + (f"The receiver's output delay (from a fix's epoch to its sentences) was declared as "
+                       f"{d['output_delay_s']:.3f} s ({where}) and taken out of that offset.")
+    return text + ("No output delay of the receiver was declared: the offset includes it, so positions may "
+                   "lag the readings by that delay (often 0.05 to 0.5 s) times the walking speed.")
 
 
 def _prediction_u(sv):
@@ -280,6 +297,7 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
         sv = load_survey(store, int(session_id))
         full_meta = report_meta(sv, meta)
         rows = rv.issued(store.db, full_meta["number"])
+        gnss = store.events(int(session_id), "gnss_summary")
     digest = rv.content_digest(sv, full_meta)
     if as_issued and issue:
         raise MeterlinkError("--as-issued writes a revision already issued: leave out --issue")
@@ -312,7 +330,8 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
     else:
         made = _dt.datetime.now(_dt.timezone.utc).timestamp()
         html = render_html(sv, figures, template_dir, meta, comparisons=comparisons, gis_files=gis_files,
-                           made_utc=made, revisions=rv.history(rows, full_meta, made, draft=not issue)
+                           positions=_positions(sv, gnss[-1]["detail"] if gnss else None), made_utc=made,
+                           revisions=rv.history(rows, full_meta, made, draft=not issue)
                            if full_meta["number"] else [],
                            draft=not issue)
         if issue:

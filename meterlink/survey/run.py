@@ -52,7 +52,7 @@ class Survey(GnssNotes):
     def __init__(self, store: Store, port: str, plan: SurveyPlan, *, mover: Callable | None = None,
                  on_view: Callable[[View], None] | None = None, ready: Callable[[Point, float], None] | None = None,
                  link_factory=None, gnss_port: str | None = None, gnss_factory=None, gnss_max_age_s: float = 2.0,
-                 gnss_max_gap_s: float = 2.0,
+                 gnss_max_gap_s: float = 2.0, gnss_output_delay_s: float | None = None,
                  declared=None, analyser: str | None = None, journal_dir=None, orient: Callable | None = None,
                  analyser_timeout_s: float = 5.0, resume: int | None = None, **link_options):
         self.store, self.port, self.plan = store, port, plan
@@ -64,6 +64,7 @@ class Survey(GnssNotes):
         self.gnss_port = gnss_port
         self.declared = declared      # planning Site of the plan's sources file (read by the caller), or None
         self.gnss = None
+        self.gnss_delay_from = None     # where the receiver's declared output delay came from: "option", "plan" or None
         self.gnss_max_age_s = gnss_max_age_s    # host seconds a fix counts as current, for the first fix
         self.gnss_max_gap_s = gnss_max_gap_s    # GNSS seconds between fixes a reading's position may bridge
         self._offset_said = False
@@ -71,6 +72,11 @@ class Survey(GnssNotes):
         if gnss_port is not None or gnss_factory is not None:
             from meterlink.device.gnss import GnssLink
             self.gnss = GnssLink(gnss_port or "gnss", link_factory=gnss_factory)
+            # the receiver's output delay: the option's, else the plan's, else none declared
+            delay = gnss_output_delay_s if gnss_output_delay_s is not None else plan.gnss_output_delay_s
+            self.gnss.output_delay_s = delay or 0.0
+            self.gnss_delay_from = ("option" if gnss_output_delay_s is not None else
+                                    "plan" if plan.gnss_output_delay_s is not None else None)
         self.cert = load_certificate(plan.certificate)
         self.dipole = isinstance(self.cert, DipoleCertificate)
         band = plan.freq_hz if plan.freq_hz is not None else (plan.band_hz or self.cert.freq_range_hz)
