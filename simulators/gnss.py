@@ -5,8 +5,9 @@ Positions come from a callable giving the probe's local site metres (x east, y n
 fix's own time (or now, for a callable without arguments); they are turned into latitude/longitude
 about an invented origin (equirectangular, the same formula as
 meterlink.device.gnss.from_local_m). A real receiver sends a fix's sentences some time after the
-fix's epoch: output_delay_s (device seconds, default 0) sets that delay. Fault switches: garbage (bad checksums and noise), no_fix
-(quality 0, RMC status V), and vanish (the port disappears; it may come back after down_s).
+fix's epoch: output_delay_s (device seconds, default 0) sets that delay. Fault switches: garbage (bad
+checksums and noise), no_fix (quality 0, RMC status V), and vanish (the port disappears; it may come
+back after down_s).
 """
 
 from __future__ import annotations

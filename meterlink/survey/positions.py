@@ -103,8 +103,9 @@ class GnssNotes:
         said = "" if off is None else (f"; readings' time - GNSS time {off.offset_s:+.3f} s (median of {off.n} "
                                        f"fixes, spread {off.spread_s:.3f} s)")
         delay, source = self.gnss.output_delay_s, self.gnss_delay_from
-        said += (f"; receiver output delay {delay:.3f} s declared ({'--gps-output-delay' if source == 'option' else 'plan'})"
-                 ", taken out of the offset" if source else "; no receiver output delay declared (the offset includes it)")
+        where = "--gps-output-delay" if source == "option" else "plan"
+        said += (f"; receiver output delay {delay:.3f} s declared ({where}), taken out of the offset" if source
+                 else "; no receiver output delay declared (the offset includes it)")
         self._writer.add_event(
             "gnss_summary", sev, f"GNSS on {self.gnss.port}: {self.n_positioned} of {n_all} stored value(s) "
             f"positioned, {self.n_unpositioned} without position; {st['bad_checksum']} sentence(s) with a bad "
