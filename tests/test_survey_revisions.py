@@ -245,3 +245,59 @@ def test_a_version_11_file_gains_the_revision_table_and_keeps_its_photos(tmp_pat
         (entry,) = ph.stored_photos(store.db, 1)[1]
     assert entry["name"] == "old.png" and entry["caption"] == "" and entry["direction_deg"] is None
     assert entry["taken"] is None and entry["uri"].endswith(base64.b64encode(png.getvalue()).decode())
+
+
+def test_site_conditions_given_at_render_are_said_kept_with_the_issue_and_checked(survey, tmp_path, capsys):
+    import shutil
+
+    src, _ = survey
+    shutil.copy(src / "s.db", tmp_path / "s.db")       # its own copy: the other tests issue in the fixture's file
+    num = ("--report-number", "SC-1")
+
+    def basis(name):
+        html = (tmp_path / name / "report.html").read_text(encoding="utf-8")
+        return html[html.index("id='basis'"):html.index("id='points'")]
+
+    # a draft with the weather and temperature given now: over the plan's "light rain"
+    rc, doc, err = _render(tmp_path, "d", *num, "--weather", "overcast, dry", "--temperature-degc", "7.5",
+                           capsys=capsys)
+    assert rc == 0, err
+    b = basis("d")
+    assert "overcast, dry; air temperature 7.5 °C" in b and "light rain" not in b
+    # issued with a conditions file (the transmitter state confirmed): kept with the revision
+    (tmp_path / "cond.toml").write_text('[conditions]\nhumidity_percent = 81\n[transmitter]\n'
+                                        'confirmed_with = "N. Operator"\nconfirmed_at = "2027-04-01 10:05"\n'
+                                        'state = "all carriers at full power"\n', encoding="utf-8")
+    rc, doc, err = _render(tmp_path, "r0", *num, "--issue", "--conditions", str(tmp_path / "cond.toml"),
+                           "--weather", "overcast, dry", capsys=capsys)
+    assert rc == 0 and doc["revision_state"] == "issued", err
+    b = basis("r0")
+    assert "overcast, dry; relative humidity 81 %" in b and "confirmed with N. Operator, 2027-04-01 10:05" in b
+    con = sqlite3.connect(tmp_path / "s.db")
+    kept = json.loads(con.execute("select meta_json from survey_revisions where report_number = 'SC-1'").fetchone()[0])
+    con.close()
+    assert kept["conditions"] == {"weather": "overcast, dry", "humidity_percent": 81.0, "transmitter": {
+        "confirmed_with": "N. Operator", "confirmed_at": "2027-04-01 10:05", "state": "all carriers at full power"}}
+    # rendered again without them: the issued revision, unchanged (it says them)
+    rc, doc, _ = _render(tmp_path, "again", *num, capsys=capsys)
+    assert rc == 0 and doc["revision_state"] == "as issued"
+    assert (tmp_path / "again" / "report.html").read_bytes() == (tmp_path / "r0" / "report.html").read_bytes()
+    # other conditions under the issued revision: refused in one line; a new revision says them
+    rc, _, err = _render(tmp_path, "x", *num, "--weather", "sunny", capsys=capsys)
+    assert rc == 2 and len(err) == 1 and "SC-1 revision 0 was issued" in err[0]
+    rc, doc, err = _render(tmp_path, "r1", *num, "--revision", "1", "--revision-note", "weather corrected",
+                           "--weather", "sunny", "--issue", capsys=capsys)
+    assert rc == 0, err
+    b = basis("r1")
+    assert "sunny; relative humidity 81 %" in b and "N. Operator" in b      # the rest as issued before
+    # bad input: one line each, nothing written
+    (tmp_path / "bad.toml").write_text("[conditions]\nwind = 3\n", encoding="utf-8")
+    for opts, says in ((("--humidity-percent", "130"), "--humidity-percent '130' is not a number from 0 to 100"),
+                       (("--temperature-degc", "warm"), "--temperature-degc 'warm' is not a number"),
+                       (("--weather", " "), "--weather is empty"),
+                       (("--conditions", str(tmp_path / "bad.toml")), "[conditions]: unknown key 'wind'"),
+                       (("--conditions", str(tmp_path / "none.toml")), "no such conditions file"),
+                       (("--as-issued", "--weather", "fog"), "leave out the site conditions")):
+        rc, _, err = _render(tmp_path, "bad", *num, *opts, capsys=capsys)
+        assert rc == 2 and len(err) == 1 and says in err[0], (opts, err)
+    assert not (tmp_path / "bad" / "report.html").exists()

@@ -39,6 +39,13 @@ def add_arguments(parser) -> None:
     parser.add_argument("--reviewer", metavar="NAME", help="survey: who checked the report (default: the plan's)")
     parser.add_argument("--reviewer-qualification", metavar="TEXT", help="survey: the reviewer's qualification")
     parser.add_argument("--review-date", metavar="DATE", help="survey: the date the report was checked")
+    parser.add_argument("--conditions", metavar="TOML", help="survey: a file with the site conditions to state, in "
+                        "the plan's form: [conditions] weather, temperature_degc, humidity_percent and [transmitter] "
+                        "confirmed_with, confirmed_at, state (over the plan's; kept with an issued revision)")
+    parser.add_argument("--weather", metavar="TEXT", help="survey: the weather during the survey (over the plan's "
+                        "and --conditions')")
+    parser.add_argument("--temperature-degc", metavar="C", help="survey: air temperature during the survey, °C")
+    parser.add_argument("--humidity-percent", metavar="PCT", help="survey: relative humidity during the survey, %%")
     parser.add_argument("--as-issued", action="store_true", help="survey: write the kept copy of an issued "
                         "--revision, even when the survey or the sign-off changed since")
     parser.add_argument("--issue", action="store_true", help="survey: issue this revision: keep it in the database "
@@ -47,6 +54,39 @@ def add_arguments(parser) -> None:
                         "with (default: the invented demo session of 'lab run')")
     parser.add_argument("--previous", metavar="CERT", help="lab folder: the previous certificate it was compared with")
     parser.add_argument("--json", action="store_true", help="print the kind of record and the files written as JSON")
+
+
+def _conditions(args) -> dict | None:
+    """The site conditions given to render (--conditions file, then --weather, --temperature-degc,
+    --humidity-percent over it), checked as the plan's are; None when none is given; one-line errors."""
+    from meterlink.errors import MeterlinkError, read_input_toml
+    from meterlink.survey.plan import site_conditions
+
+    out = {}
+    if args.conditions:
+        doc = read_input_toml(args.conditions, "conditions")
+        extra = sorted(set(doc) - {"conditions", "transmitter"})
+        if extra:
+            raise MeterlinkError(f"conditions file {args.conditions}: unknown table {extra[0]!r} (known: conditions, "
+                                 "transmitter)")
+        out = site_conditions(doc, args.conditions, kind="conditions file")
+    if args.weather is not None:
+        if not args.weather.strip():
+            raise MeterlinkError("--weather is empty: say what the weather was")
+        out["weather"] = args.weather
+    for option, key, lo, hi in (("--temperature-degc", "temperature_degc", -60.0, 70.0),
+                                ("--humidity-percent", "humidity_percent", 0.0, 100.0)):
+        given = getattr(args, key)
+        if given is None:
+            continue
+        try:
+            v = float(given)
+        except ValueError:
+            v = float("nan")
+        if not lo <= v <= hi:
+            raise MeterlinkError(f"{option} {given!r} is not a number from {lo:g} to {hi:g}")
+        out[key] = v
+    return out or None
 
 
 def _station_database(path: str) -> str:
@@ -140,6 +180,9 @@ def _database(kind, sid, out, args, pdf):
 
     if kind != "survey" and (args.issue or args.as_issued):
         raise MeterlinkError("--issue and --as-issued apply to a survey report only")
+    if kind != "survey" and args.site_conditions:
+        raise MeterlinkError("--conditions, --weather, --temperature-degc and --humidity-percent apply to a survey "
+                             "report only")
     if kind != "station" and args.period:
         raise MeterlinkError("--period applies to a monitoring station database only")
     if kind == "station" and args.period:
@@ -167,7 +210,7 @@ def _database(kind, sid, out, args, pdf):
 
         info = {}
         html = write_report(args.db, sid, out, template_dir=args.template_dir, pdf=pdf, issue=args.issue,
-                            as_issued=args.as_issued, info=info,
+                            as_issued=args.as_issued, info=info, conditions=args.site_conditions,
                             meta={"number": args.report_number, "revision": args.revision,
                                   "revision_note": args.revision_note, "reviewer": args.reviewer,
                                   "reviewer_qualification": args.reviewer_qualification,
@@ -193,6 +236,7 @@ def run(args) -> int:
 
     pdf = args.format == "pdf"
     template_dir(args.template_dir)                       # bad input first, before anything is read
+    args.site_conditions = _conditions(args)
     if pdf and not pdf_available():
         raise MeterlinkError(PDF_HINT)
     out = Path(args.out)

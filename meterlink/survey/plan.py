@@ -44,12 +44,12 @@ class PlanError(MeterlinkError):
 
 
 class _Ctx:
-    def __init__(self, where: str, base: Path | None = None):
-        self.where = where
+    def __init__(self, where: str, base: Path | None = None, kind: str = "plan"):
+        self.where, self.kind = where, kind
         self.base = base if base is not None else Path(".")   # folder that relative photo names start from
 
     def fail(self, what: str, problem: str):
-        raise PlanError(f"plan {self.where}: {what}: {problem}")
+        raise PlanError(f"{self.kind} {self.where}: {what}: {problem}")
 
     def known(self, d, allowed, what):
         if not isinstance(d, dict):
@@ -199,11 +199,12 @@ def _photos(c: _Ctx, photos, what: str) -> tuple[Photo, ...]:
     return tuple(out)
 
 
-def site_conditions(doc: dict, where: str = "<dict>") -> dict:
+def site_conditions(doc: dict, where: str = "<dict>", kind: str = "plan") -> dict:
     """The plan's [conditions] (weather as text, air temperature in degC, relative humidity in percent)
     and [transmitter] (the state confirmed with the operator: with whom, when, what), checked; each
-    key present only when given ("transmitter" absent when nothing was confirmed)."""
-    c = _Ctx(where)
+    key present only when given ("transmitter" absent when nothing was confirmed). kind names the
+    document in errors (a plan, or the conditions file given to render)."""
+    c = _Ctx(where, kind=kind)
     cond, tx = doc.get("conditions", {}), doc.get("transmitter", {})
     c.known(cond, _CONDITIONS, "[conditions]")
     c.known(tx, _TRANSMITTER, "[transmitter]")

@@ -108,10 +108,11 @@ def compass(deg) -> str:
 
 def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, meta: dict | None = None, *,
                 comparisons=(), gis_files=(), positions=None, made_utc: float | None = None,
-                revisions: list | None = None, draft: bool = True) -> str:
+                revisions: list | None = None, draft: bool = True, conditions: dict | None = None) -> str:
     """The report as one HTML string from a loaded survey (meterlink.survey.store.load_survey),
     laid out by the survey.html template (restyled from template_dir when given); revisions is the
-    revision history (meterlink.survey.revisions.history), draft whether this one is not issued."""
+    revision history (meterlink.survey.revisions.history), draft whether this one is not issued;
+    conditions (plan.site_conditions' form) the site conditions given at render, over the plan's."""
     from meterlink.survey.plan import site_conditions
 
     from meterlink.physics.limits import describe_standard
@@ -129,7 +130,7 @@ def render_html(sv: dict, figures: dict[str, bytes], template_dir=None, meta: di
     number = (f"report {meta['number']} rev. {meta['revision']}{' DRAFT' if draft else ''}, " if meta["number"]
               else "")
     conditions = {"weather": "", "temperature_degc": None, "humidity_percent": None, "transmitter": None,
-                  **site_conditions(_plan_doc(sv), sv.get("plan_path") or "the stored plan")}
+                  **site_conditions(_plan_doc(sv), sv.get("plan_path") or "the stored plan"), **(conditions or {})}
     return render("survey.html", template_dir, sv=sv, ses=sv["session"], pts=sv["points"], title=title,
                   ident=f"{title}, {number}survey session {int(sv['session_id'])}", expired=expired,
                   meta=meta, conclusion=conclusion(sv), photos=point_photos(sv),
@@ -269,14 +270,19 @@ def write_csv(sv: dict, out: Path) -> list[Path]:
 
 def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: bool = False,
                  meta: dict | None = None, issue: bool = False, as_issued: bool = False,
-                 info: dict | None = None) -> Path:
+                 info: dict | None = None, conditions: dict | None = None) -> Path:
     """Write report.html (and report.pdf when asked) and the CSV files of a survey session into
     out_dir; returns the HTML path. meta overrides the plan's [report] (number, revision, sign-off).
 
     An issued number and revision (meterlink.survey.revisions) is written as issued when the content is
     the same, refused when it differs; issue=True keeps this revision as issued; as_issued=True writes the
     kept copy of an issued revision whatever the survey holds now. info, when given, gets
-    "revision_state": "draft", "issued" (issued now) or "as issued" (the kept copy written again)."""
+    "revision_state": "draft", "issued" (issued now) or "as issued" (the kept copy written again).
+
+    conditions: site conditions given now (plan.site_conditions' form), key by key over the plan's
+    [conditions] ([transmitter] as a whole) and over those given for the latest issued revision of the
+    number (which a later render says too). They are kept with an issued revision and count in its
+    content digest."""
     from meterlink.survey import revisions as rv
     from meterlink.reports.templating import PDF_HINT, pdf_available, template_dir as checked_dir, write_outputs
     from meterlink.storage.store import Store
@@ -298,7 +304,10 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
         full_meta = report_meta(sv, meta)
         rows = rv.issued(store.db, full_meta["number"])
         gnss = store.events(int(session_id), "gnss_summary")
-    digest = rv.content_digest(sv, full_meta)
+    if as_issued and conditions:
+        raise MeterlinkError("--as-issued writes the revision as it was issued: leave out the site conditions")
+    conditions = {**(rv.recorded_conditions(rows) or {}), **(conditions or {})} or None
+    digest = rv.content_digest(sv, full_meta, conditions)
     if as_issued and issue:
         raise MeterlinkError("--as-issued writes a revision already issued: leave out --issue")
     kept = rv.as_issued(rows, full_meta) if as_issued else rv.check(rows, int(session_id), full_meta, digest,
@@ -333,10 +342,10 @@ def write_report(db_path, session_id: int, out_dir, *, template_dir=None, pdf: b
                            positions=_positions(sv, gnss[-1]["detail"] if gnss else None), made_utc=made,
                            revisions=rv.history(rows, full_meta, made, draft=not issue)
                            if full_meta["number"] else [],
-                           draft=not issue)
+                           draft=not issue, conditions=conditions)
         if issue:
             with Store(db_path) as store:
-                rv.record(store, int(session_id), full_meta, digest, html, made)
+                rv.record(store, int(session_id), full_meta, digest, html, made, conditions)
     write_outputs(html, html_path, pdf)
     write_csv(sv, out)
     return html_path

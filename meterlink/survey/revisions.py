@@ -25,10 +25,11 @@ class RevisionError(MeterlinkError):
     """An issued report number and revision that cannot be used for this content."""
 
 
-def content_digest(sv: dict, meta: dict) -> str:
+def content_digest(sv: dict, meta: dict, conditions: dict | None = None) -> str:
     """SHA-256 of what the report says: every stored row of the survey (points, samples, captures
-    replaced, selective bands, sources, trace, plan text, photos as shown) and the sign-off; not the
-    layout, the software's wording or the time the report was made."""
+    replaced, selective bands, sources, trace, plan text, photos as shown), the sign-off and the site
+    conditions given when rendering (if any); not the layout, the software's wording or the time the
+    report was made."""
     def plain(v):
         if isinstance(v, dict):
             return {str(k): plain(x) for k, x in v.items()}
@@ -46,6 +47,8 @@ def content_digest(sv: dict, meta: dict) -> str:
     shown = {no: [{k: v for k, v in e.items() if k != "uri"} for e in entries]
              for no, entries in (sv.get("photos") or {}).items()}
     doc = {"survey": plain({**sv, "photos": shown}), "signoff": {k: meta.get(k, "") for k in SIGNOFF_KEYS}}
+    if conditions:       # only then: a revision issued without them keeps its digest
+        doc["conditions"] = plain(conditions)
     text = json.dumps(doc, sort_keys=True, ensure_ascii=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
 
@@ -55,6 +58,16 @@ def issued(db, number: str) -> list[dict]:
     if not number or "survey_revisions" not in db.table_names():
         return []
     return list(db["survey_revisions"].rows_where("report_number = ?", [number], order_by="issued_utc, id"))
+
+
+def recorded_conditions(rows: list[dict]) -> dict | None:
+    """The site conditions given when the latest issued revision that has them was rendered (kept in its
+    meta_json), so that a later render of the report says them too; None if none was given."""
+    for r in reversed(rows):
+        kept = json.loads(r["meta_json"] or "{}").get("conditions")
+        if kept:
+            return kept
+    return None
 
 
 def revision_date(meta: dict, t_utc: float) -> str:
@@ -108,9 +121,10 @@ def as_issued(rows: list[dict], meta: dict) -> dict:
     return same
 
 
-def record(store, session_id: int, meta: dict, digest: str, html: str, issued_utc: float) -> None:
+def record(store, session_id: int, meta: dict, digest: str, html: str, issued_utc: float,
+           conditions: dict | None = None) -> None:
     """Keep an issued revision (one transaction; the UNIQUE number + revision guards against a
-    second writer issuing the same one meanwhile)."""
+    second writer issuing the same one meanwhile), with the site conditions given when rendering."""
     import sqlite3
 
     from meterlink import __version__
@@ -118,7 +132,8 @@ def record(store, session_id: int, meta: dict, digest: str, html: str, issued_ut
     row = {"session_id": session_id, "report_number": meta["number"], "revision": meta["revision"],
            "issued_utc": issued_utc, "change": history_change(meta, store), "issued_by": meta["assessor"],
            "revision_date": revision_date(meta, issued_utc),
-           "meta_json": json.dumps({k: meta.get(k, "") for k in SIGNOFF_KEYS}, sort_keys=True),
+           "meta_json": json.dumps({k: meta.get(k, "") for k in SIGNOFF_KEYS}
+                                   | ({"conditions": conditions} if conditions else {}), sort_keys=True),
            "content_sha256": digest, "html": html, "software_version": __version__}
     try:
         with store.write():
