@@ -29,7 +29,7 @@ import numpy as np
 import _common
 from meterlink.physics.assessment import assess_field, assess_field_stats, averaging_time_s
 from meterlink.physics.calibrate import calibrate_axes, expected_counts
-from meterlink.physics.certificate import load_certificate
+from meterlink.physics.certificate import dump_certificate, load_certificate
 from meterlink.reports.session_report import write_session_report
 from meterlink.storage import streamed as S
 from meterlink.storage.processing import field_series
@@ -77,9 +77,10 @@ def _ranges(conn, sid, rows):
             yield a, min(a + rows - 1, hi)
 
 
-def _baseline_calibration(conn, sid) -> int:
-    cal = conn.execute("insert into calibrations (session_id, certificate_name, applied_utc) values (?, 'baseline', ?)",
-                       [sid, time.time()]).lastrowid
+def _baseline_calibration(conn, sid, cert) -> int:
+    """A calibrations row for a baseline's values (with the certificate, so that the file reads back)."""
+    cal = conn.execute("insert into calibrations (session_id, certificate_name, certificate_text, applied_utc) "
+                       "values (?, 'baseline', ?, ?)", [sid, dump_certificate(cert), time.time()]).lastrowid
     conn.commit()
     return cal
 
@@ -98,7 +99,7 @@ def baseline_recalibrate_rows(path: Path, sid: int, cert) -> int:
     reading into field_values (every column of a calibration's values), by the streamed path's chunks."""
     conn = sqlite3.connect(path)
     conn.execute("PRAGMA synchronous=NORMAL")     # as the Store's connection: no fsync per commit in WAL mode
-    cal = _baseline_calibration(conn, sid)
+    cal = _baseline_calibration(conn, sid, cert)
     for ids, _t, raw in _raw_chunks(conn, sid):
         res = calibrate_axes(cert, raw, FREQ_HZ, None)
         conn.executemany("insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
@@ -118,7 +119,7 @@ def baseline_recalibrate_packed(path: Path, sid: int, cert) -> int:
     demo certificate being an E probe used in the far field, so that H = E / Z0)."""
     conn = sqlite3.connect(path)
     conn.execute("PRAGMA synchronous=NORMAL")
-    cal = _baseline_calibration(conn, sid)
+    cal = _baseline_calibration(conn, sid, cert)
     for ids, t, raw in _raw_chunks(conn, sid):
         res = calibrate_axes(cert, raw, FREQ_HZ, None)
         u, fl = res.u_expanded_db, res.flags
@@ -280,7 +281,7 @@ import collections, sys, tempfile
 from pathlib import Path
 import numpy as np
 from meterlink.physics.calibrate import expected_counts
-from meterlink.physics.certificate import load_certificate
+from meterlink.physics.certificate import dump_certificate, load_certificate
 from meterlink.reports.session_report import write_session_report
 from meterlink.storage.processing import apply_certificate
 from meterlink.storage.store import Store
