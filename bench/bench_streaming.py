@@ -29,7 +29,7 @@ import numpy as np
 import _common
 from meterlink.physics.assessment import assess_field, assess_field_stats, averaging_time_s
 from meterlink.physics.calibrate import calibrate_axes, expected_counts
-from meterlink.physics.certificate import load_certificate
+from meterlink.physics.certificate import dump_certificate, load_certificate
 from meterlink.reports.session_report import write_session_report
 from meterlink.storage import streamed as S
 from meterlink.storage.processing import field_series
@@ -77,54 +77,92 @@ def _ranges(conn, sid, rows):
             yield a, min(a + rows - 1, hi)
 
 
-def baseline_recalibrate(path: Path, sid: int, cert) -> int:
-    """Streamed select of raw counts, numpy calibration, executemany of the per-reading rows (field_values)
-    and of the packed rows (field_spans) the streamed path writes beside them: the same output, so that
-    the comparison is fair (without the packed rows the baseline would write about a third less).
-
-    Packed rows, as docs/schema.md gives them: one per chunk, each column's little-endian bytes; the id
-    column empty when the ids run without a hole, uncertainty and flags one element when constant."""
-    conn = sqlite3.connect(path)
-    conn.execute("PRAGMA synchronous=NORMAL")     # as the Store's connection: no fsync per commit in WAL mode
-    cal = conn.execute("insert into calibrations (session_id, certificate_name, applied_utc) values (?, 'baseline', ?)",
-                       [sid, time.time()]).lastrowid
+def _baseline_calibration(conn, sid, cert) -> int:
+    """A calibrations row for a baseline's values (with the certificate, so that the file reads back)."""
+    cal = conn.execute("insert into calibrations (session_id, certificate_name, certificate_text, applied_utc) "
+                       "values (?, 'baseline', ?, ?)", [sid, dump_certificate(cert), time.time()]).lastrowid
     conn.commit()
+    return cal
+
+
+def _raw_chunks(conn, sid):
+    """(ids, t_utc, counts) of a session by the streamed path's chunks: select of the raw columns by id range."""
     for lo, hi in list(_ranges(conn, sid, CHUNK_ROWS)):
         a = np.array(conn.execute("select id, t_utc, raw_x, raw_y, raw_z from readings where id between ? and ? and "
                                   "session_id = ? order by id", [lo, hi, sid]).fetchall(), dtype=np.float64)
-        if not a.size:
-            continue
-        ids, t = a[:, 0].astype(np.int64), a[:, 1]
-        res = calibrate_axes(cert, a[:, 2:5].astype(np.int64), FREQ_HZ, None)
+        if a.size:
+            yield a[:, 0].astype(np.int64), a[:, 1], a[:, 2:5].astype(np.int64)
+
+
+def baseline_recalibrate_rows(path: Path, sid: int, cert) -> int:
+    """The issue's baseline: streamed select of raw counts, numpy calibration, executemany of one row per
+    reading into field_values (every column of a calibration's values), by the streamed path's chunks."""
+    conn = sqlite3.connect(path)
+    conn.execute("PRAGMA synchronous=NORMAL")     # as the Store's connection: no fsync per commit in WAL mode
+    cal = _baseline_calibration(conn, sid, cert)
+    for ids, _t, raw in _raw_chunks(conn, sid):
+        res = calibrate_axes(cert, raw, FREQ_HZ, None)
         conn.executemany("insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
                          "ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?)",
                          zip(ids.tolist(), itertools.repeat(cal), res.e_v_per_m.tolist(),
                              *(res.axes_v_per_m[:, j].tolist() for j in range(3)), res.h_a_per_m.tolist(),
                              res.s_w_per_m2.tolist(), res.u_expanded_db.tolist(), res.flags.tolist()))
-        u, fl = res.u_expanded_db, res.flags
-        conn.execute("insert into field_spans (calibration_id, id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, "
-                     "e_v_per_m, axes_v_per_m, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?,?,?)",
-                     [cal, int(ids[0]), int(ids[-1]), ids.size, float(t.min()), float(t.max()),
-                      b"" if ids[-1] - ids[0] + 1 == ids.size else ids.astype("<i8").tobytes(),
-                      t.astype("<f8").tobytes(), res.e_v_per_m.astype("<f8").tobytes(),
-                      res.axes_v_per_m.astype("<f8").tobytes(),
-                      (u[:1] if np.all(u == u[0]) else u).astype("<f8").tobytes(),
-                      (fl[:1] if np.all(fl == fl[0]) else fl).astype("<i8").tobytes()])
         conn.commit()
     conn.close()
     return cal
 
 
-def same_calibration(path: Path, cal_a: int, cal_b: int) -> bool:
-    """Whether two calibrations hold the same values: field_values rows and field_spans rows alike."""
+def baseline_recalibrate_packed(path: Path, sid: int, cert) -> int:
+    """The same-output baseline: streamed select of raw counts, numpy calibration, one packed field_spans
+    row per chunk as docs/schema.md gives it (each column's little-endian bytes; the id column empty when
+    the ids run without a hole, uncertainty and flags one element when constant; H an empty blob, the
+    demo certificate being an E probe used in the far field, so that H = E / Z0)."""
+    conn = sqlite3.connect(path)
+    conn.execute("PRAGMA synchronous=NORMAL")
+    cal = _baseline_calibration(conn, sid, cert)
+    for ids, t, raw in _raw_chunks(conn, sid):
+        res = calibrate_axes(cert, raw, FREQ_HZ, None)
+        u, fl = res.u_expanded_db, res.flags
+        conn.execute("insert into field_spans (calibration_id, id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, "
+                     "e_v_per_m, axes_v_per_m, u_expanded_db, flags, h_a_per_m) values (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+                     [cal, int(ids[0]), int(ids[-1]), ids.size, float(t.min()), float(t.max()),
+                      b"" if ids[-1] - ids[0] + 1 == ids.size else ids.astype("<i8").tobytes(),
+                      t.astype("<f8").tobytes(), res.e_v_per_m.astype("<f8").tobytes(),
+                      res.axes_v_per_m.astype("<f8").tobytes(),
+                      (u[:1] if np.all(u == u[0]) else u).astype("<f8").tobytes(),
+                      (fl[:1] if np.all(fl == fl[0]) else fl).astype("<i8").tobytes(), b""])
+        conn.commit()
+    conn.close()
+    return cal
+
+
+def same_packed(path: Path, cal_a: int, cal_b: int) -> bool:
+    """Whether two calibrations hold the same field_spans rows, byte for byte."""
     conn = sqlite3.connect(path)
     try:
-        cols = ("reading_id, e_v_per_m, ex_v_per_m, ey_v_per_m, ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, "
-                "flags")
-        packed = "id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, e_v_per_m, axes_v_per_m, u_expanded_db, flags"
-        return all(conn.execute(f"select {c} from {tab} where calibration_id = ? order by {key}", [cal_a]).fetchall()
-                   == conn.execute(f"select {c} from {tab} where calibration_id = ? order by {key}", [cal_b]).fetchall()
-                   for tab, c, key in (("field_values", cols, "reading_id"), ("field_spans", packed, "id_lo")))
+        cols = "id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, e_v_per_m, axes_v_per_m, u_expanded_db, flags, h_a_per_m"
+        return (conn.execute(f"select {cols} from field_spans where calibration_id = ? order by id_lo", [cal_a]).fetchall()
+                == conn.execute(f"select {cols} from field_spans where calibration_id = ? order by id_lo",
+                                [cal_b]).fetchall())
+    finally:
+        conn.close()
+
+
+def same_values(path: Path, cal_a: int, cal_b: int) -> bool:
+    """Whether two calibrations give the same values through Store.field_values (every column, H and S
+    included), whichever way each is stored: here per reading against packed."""
+    with Store(path, readonly=True) as store:
+        a, b = store.field_values(cal_a), store.field_values(cal_b)
+    return all(np.array_equal(a[k], b[k], equal_nan=True) for k in a) and a.keys() == b.keys()
+
+
+def used_bytes(path: Path) -> int:
+    """Bytes of the file's pages in use, after a checkpoint ((page_count - freelist_count) * page_size)."""
+    conn = sqlite3.connect(path)
+    try:
+        conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        return ((conn.execute("PRAGMA page_count").fetchone()[0] - conn.execute("PRAGMA freelist_count").fetchone()[0])
+                * conn.execute("PRAGMA page_size").fetchone()[0])
     finally:
         conn.close()
 
@@ -202,6 +240,17 @@ def paired(runs: int, mine, base):
     return statistics.median(m), statistics.median(b), ratios
 
 
+def interleaved(runs: int, fns):
+    """Per-function lists of times of runs made back to back, the order rotating every run, so that each
+    function goes first, second, ... equally often; the ratios are taken per run."""
+    times = [[] for _ in fns]
+    for k in range(runs):
+        for j in range(len(fns)):
+            i = (j + k) % len(fns)
+            times[i].append(fns[i]())
+    return times
+
+
 def spread(ratios) -> str:
     return f"{min(ratios):.2f}..{max(ratios):.2f}"
 
@@ -232,7 +281,7 @@ import collections, sys, tempfile
 from pathlib import Path
 import numpy as np
 from meterlink.physics.calibrate import expected_counts
-from meterlink.physics.certificate import load_certificate
+from meterlink.physics.certificate import dump_certificate, load_certificate
 from meterlink.reports.session_report import write_session_report
 from meterlink.storage.processing import apply_certificate
 from meterlink.storage.store import Store
@@ -303,33 +352,48 @@ def main(argv=None) -> list[dict]:
         d = Path(d)
         db = d / "month.db"
         t_build, sid = timed(build, db, n)
+        # the report's baseline selects per-reading rows, which calibrations no longer write (schema 13):
+        # an older calibration of the same values stored per reading, made by baseline (a)
+        rows_cal = baseline_recalibrate_rows(db, sid, cert) if want("report") else None
         streamed_recalibrate(db, sid, cert)          # the calibration in force for assess and report
         host = machine()
 
         if want("recalibrate"):
-            # 1. recalibrate: streamed vs select + numpy + executemany, streamed too
-            def mine():
-                t, cal = timed(streamed_recalibrate, db, sid, cert)
-                drop_calibration(db, cal)
-                return t
+            # 1. recalibrate: streamed vs (a) select + numpy + executemany of per-reading rows (the issue's
+            # baseline) and (b) select + numpy + the same packed rows (the same output), streamed by the same chunks
+            def run(f):
+                def go():
+                    t, cal = timed(f, db, sid, cert)
+                    drop_calibration(db, cal)
+                    return t
+                return go
 
-            def base():
-                t, cal = timed(baseline_recalibrate, db, sid, cert)
+            sizes, cals = {}, {}
+            for name, f in (("mine", streamed_recalibrate), ("rows", baseline_recalibrate_rows),
+                            ("packed", baseline_recalibrate_packed)):
+                before = used_bytes(db)
+                cals[name] = f(db, sid, cert)
+                sizes[name] = (used_bytes(db) - before) / n
+            same_a, same_b = same_values(db, cals["mine"], cals["rows"]), same_packed(db, cals["mine"], cals["packed"])
+            for cal in cals.values():
                 drop_calibration(db, cal)
-                return t
-
-            cal_m, cal_b = streamed_recalibrate(db, sid, cert), baseline_recalibrate(db, sid, cert)
-            same = same_calibration(db, cal_m, cal_b)
-            drop_calibration(db, cal_b)
-            drop_calibration(db, cal_m)
-            m, b, r = paired(args.runs, mine, base)
-            ratio = m / b
+            tm, ta, tb = interleaved(args.runs, [run(streamed_recalibrate), run(baseline_recalibrate_rows),
+                                                 run(baseline_recalibrate_packed)])
+            m, b, b2 = statistics.median(tm), statistics.median(ta), statistics.median(tb)
+            r, r2 = [x / y for x, y in zip(tm, ta)], [x / y for x, y in zip(tm, tb)]
+            ratio, ratio2 = m / b, m / b2
             recs.append(_common.report(
-                "streaming-recalibrate", f"recalibrate {days:g} days at 1 Hz ({n} readings), streamed: {m:.2f} s "
-                f"(median of {args.runs})", f"select + numpy + executemany of the per-reading rows and the packed rows, "
-                f"streamed by the same chunks: {b:.2f} s; same values in both tables: {'yes' if same else 'NO'}", ratio, f"{ratio:.2f}x the baseline (pairs {spread(r)})", "<= 1.0x the baseline",
-                ratio <= 1.0, args.json, recalibrate_s=m, baseline_s=b, pair_ratios=r, build_s=t_build, same_output=same,
-                **host))
+                "streaming-recalibrate", f"recalibrate {days:g} days at 1 Hz ({n} readings), streamed, values stored "
+                f"packed per span: {m:.2f} s (median of {args.runs}); {sizes['mine']:.1f} database bytes per reading",
+                f"(a) select + numpy + executemany of one row per reading (field_values), streamed by the same chunks: "
+                f"{b:.2f} s, {sizes['rows']:.1f} bytes per reading, same values: {'yes' if same_a else 'NO'}; "
+                f"(b) select + numpy + the same packed rows: {b2:.2f} s, same rows: {'yes' if same_b else 'NO'}, "
+                f"{ratio2:.2f}x (pairs {spread(r2)})", ratio,
+                f"{ratio:.2f}x baseline (a) (pairs {spread(r)}); {ratio2:.2f}x the same-output baseline (b)",
+                "<= 1.0x baseline (a)", ratio <= 1.0 and same_a and same_b, args.json, recalibrate_s=m,
+                baseline_rows_s=b, baseline_packed_s=b2, pair_ratios=r, pair_ratios_packed=r2, ratio_packed=ratio2,
+                bytes_per_reading=sizes, build_s=t_build, same_values_rows=same_a, same_rows_packed=same_b,
+                load_avg_1m_end=round(os.getloadavg()[0], 2), **host))
 
         if want("assess"):
             # 2. assess: streamed vs the in-memory path (whole series loaded)
@@ -346,8 +410,7 @@ def main(argv=None) -> list[dict]:
 
         if want("report"):
             # 3. report: streamed (assess + CSV + envelope plot + HTML) vs select + csv of the same rows
-            with Store(db, readonly=True) as store:
-                cal = store.calibrations(sid)[-1]["id"]
+            cal = rows_cal
             runs = itertools.count()
 
             def mine_report():

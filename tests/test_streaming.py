@@ -87,7 +87,7 @@ def test_streamed_recalibration_stores_exactly_the_in_memory_values(session):
             np.testing.assert_array_equal(x, y)
         assert done.n_values == len(mem) == 2800
         assert done.e_rms_v_per_m == pytest.approx(math.sqrt(np.mean(mem.e_v_per_m ** 2)), rel=1e-12)
-        # the packed copy (field_spans) hands back the same values as the per-reading rows
+        # Recording.values (the streamed reader) hands back the same values as Store.field_values
         rec = load_recording(store, sid)
         assert rec.calibration["id"] == done.calibration_id and rec.packed_n == 2800
         chunks = list(rec.values(rows=SMALL))
@@ -130,21 +130,37 @@ def test_streamed_assessment_equals_the_in_memory_one(session, rows):
 
 
 def test_values_read_through_the_per_reading_rows_when_nothing_is_packed(session):
-    """A calibration made before schema 8 has no field_spans rows: values come from field_values."""
+    """A calibration made before schema 8 has no field_spans rows, only per-reading rows in field_values
+    (written here with plain SQL inserts, as an old file holds them): values come from field_values.
+    Equivalence of two code paths: the same values stored the old way and the new way read back alike."""
     path, sid, cert = session
     with Store(path) as store:
         if not store.calibrations(sid):
             apply_certificate(store, sid, cert)
-        cal = store.calibrations(sid)[-1]["id"]
+        new = store.calibrations(sid)[-1]
         packed = [c.e_v_per_m for c in load_recording(store, sid).values(rows=SMALL)]
+        v = store.field_values(new["id"])
         with store.write() as conn:
-            conn.execute("delete from field_spans where calibration_id = ?", [cal])
+            old = conn.execute("insert into calibrations (session_id, certificate_name, certificate_sha256, "
+                               "certificate_text, applied_utc, freq_hz, software_version) values (?,?,?,?,?,?,?)",
+                               [sid, new["certificate_name"], new["certificate_sha256"], new["certificate_text"],
+                                new["applied_utc"], new["freq_hz"], "0.0.old"]).lastrowid
+            conn.executemany("insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, "
+                             "ey_v_per_m, ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values "
+                             "(?,?,?,?,?,?,?,?,?,?)",
+                             [(int(i), old, float(e), *map(float, ax), float(h), float(s_), float(u), int(f))
+                              for i, e, ax, h, s_, u, f in zip(v["reading_id"], v["e_v_per_m"], v["axes_v_per_m"],
+                                                               v["h_a_per_m"], v["s_w_per_m2"], v["u_expanded_db"],
+                                                               v["flags"])])
         rec = load_recording(store, sid)
-        assert rec.packed_n == 0
+        assert rec.calibration["id"] == old and rec.packed_n == 0
         rows = [c.e_v_per_m for c in rec.values(rows=SMALL)]
         np.testing.assert_array_equal(np.concatenate(rows), np.concatenate(packed))
         _, s, mem, got = _assessments(store, sid, SMALL)
         assert got.value_v_per_m == pytest.approx(mem.value_v_per_m, rel=1e-12)
+        with store.write() as conn:          # leave the session's latest calibration a packed one
+            conn.execute("delete from field_values where calibration_id = ?", [old])
+            conn.execute("delete from calibrations where id = ?", [old])
 
 
 def test_streamed_report_writes_the_same_csv_and_verdict(session, tmp_path):
@@ -205,7 +221,8 @@ def test_accumulator_matches_running_average_on_an_irregular_record():
 def test_packed_rows_round_trip_with_holes_and_varying_columns():
     """Ids with holes (two meters in one file), a varying uncertainty and flags, NaN values: the packed
     form gives back exactly what went in; contiguous ids and constant columns take the short form."""
-    from meterlink.storage.queries import PACKED_ROWS, _packed_rows, _unpack
+    from meterlink.physics import units
+    from meterlink.storage.queries import PACKED_ROWS, _packed_rows, _rebuilt_h, _unpack
 
     rng = np.random.default_rng(3)
     n = PACKED_ROWS + 500
@@ -216,17 +233,23 @@ def test_packed_rows_round_trip_with_holes_and_varying_columns():
     axes = rng.uniform(0, 3, (n, 3))
     u = np.where(np.arange(n) < PACKED_ROWS, 1.5, rng.uniform(1, 2, n))
     flags = rng.choice([0, 1], size=n)
-    for ids_, fl in ((ids, flags), (np.arange(n) + 7, np.zeros(n, np.int64))):
-        rows = _packed_rows(9, ids_, t, e, axes, u, fl)
+    s = units.e_to_s(e)
+    cases = ((ids, flags, units.e_to_h(e), True), (np.arange(n) + 7, np.zeros(n, np.int64), e / 376.0, False))
+    for ids_, fl, h, derived in cases:
+        rows = _packed_rows(9, ids_, t, e, axes, h, s, u, fl)
         assert len(rows) == 2 and [r[3] for r in rows] == [PACKED_ROWS, 500]
         back = [_unpack((r[1], r[2], r[3], *r[6:])) for r in rows]   # as selected: no t_lo, t_hi
         got = {k: np.concatenate([b[k] for b in back]) for k in back[0]}
         np.testing.assert_array_equal(got["reading_id"], ids_)
         for k, want in (("t_utc", t), ("e_v_per_m", e), ("axes_v_per_m", axes), ("u_expanded_db", u), ("flags", fl)):
             np.testing.assert_array_equal(got[k], want)
+        np.testing.assert_array_equal(np.concatenate([_rebuilt_h(b["e_v_per_m"], r[12]) for b, r in zip(back, rows)]),
+                                      h)
         contiguous = bool(np.all(np.diff(ids_) == 1))
         assert (rows[0][6] == b"") == contiguous
         assert len(rows[0][10]) == 8          # the first row's uncertainty is constant: one element
+        # H is stored only where it is not E / Z0 to the last bit (here: E / 376 in the second case)
+        assert all((r[12] == b"") == derived for r in rows)
 
 
 def test_a_clock_step_back_takes_the_in_memory_path_with_one_calibration(tmp_path, capsys):

@@ -1,8 +1,9 @@
 """Retention of a station database: every table that grows is thinned to its own age, a chunk at a time.
 
 Tables and their limits (station file ``[retention]``, docs/station-file.md):
-- raw readings and spectra (with their calibrated values): ``raw_days``, and never past the newest
-  stored 6-minute block less the longest window and the hold (a restart replays from there);
+- raw readings and spectra (with their calibrated values, per reading and packed): ``raw_days``, and
+  never past the newest stored 6-minute block less the longest window and the hold (a restart
+  replays from there);
 - ``status`` rows (battery, temperature: the context of the raw readings): ``status_days``;
 - ``events`` of the station and its meters' sessions: ``events_days``;
 - the derived series ``mon_block`` and ``mon_running``: ``derived_days``, 0 keeps them for ever.
@@ -90,6 +91,7 @@ def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) 
     conn = store.db.conn
     with store.write():
         gone = spans.delete_before(conn, session_id, before_utc, limit, dependents=[("field_values", "reading_id")])
+        _drop_packed_before(conn, session_id)
         left = limit - gone
         sp = [r[0] for r in conn.execute("SELECT id FROM spectra WHERE session_id=? AND t_utc < ? LIMIT ?",
                                          (session_id, before_utc, left))] if left > 0 else []
@@ -100,6 +102,15 @@ def thin_readings(store: Store, session_id: int, before_utc: float, limit: int) 
             conn.execute(f"DELETE FROM spectrum_lines WHERE spectrum_id IN ({marks})", sp)
             conn.execute(f"DELETE FROM spectra WHERE id IN ({marks})", sp)
     return gone + len(sp)
+
+
+def _drop_packed_before(conn, session_id: int) -> None:
+    """Delete the packed values (field_spans) of the session's calibrations that lie wholly before its
+    first remaining reading; a row cut only in part stays until it is wholly cut (readers keep only
+    the readings still stored)."""
+    first = conn.execute("SELECT min(id_lo) FROM reading_spans WHERE session_id = ?", (session_id,)).fetchone()[0]
+    conn.execute("DELETE FROM field_spans WHERE calibration_id IN (SELECT id FROM calibrations WHERE session_id = ?) "
+                 "AND id_hi < ?", (session_id, (1 << 63) - 1 if first is None else first))
 
 
 def _thin_by_time(store: Store, table: str, cond: str, args: tuple, before_utc: float, limit: int,

@@ -6,6 +6,8 @@ from typing import Any, Callable, Mapping
 
 import numpy as np
 
+from meterlink.physics import units
+from meterlink.physics.calibrate import NEAR_FIELD
 from meterlink.storage import listing, spans
 from meterlink.storage.files import StorageError
 from meterlink.storage.rows import ReadingArrays
@@ -88,46 +90,21 @@ class SessionQueries:
             return list(self.db["calibrations"].rows_where("session_id = ?", [session_id], order_by="id"))
 
     def add_field_values(self, calibration_id: int, reading_ids, e_v_per_m, axes_v_per_m, h_a_per_m,
-                         s_w_per_m2, u_expanded_db, flags, t_utc=None) -> None:
-        """Store one calibration's values for many readings in one transaction (NaN stored as NULL);
-        given the readings' times too, also packed per run of readings (field_spans, for streaming)."""
-        axes = np.asarray(axes_v_per_m, dtype=float).reshape(-1, 3)
-        cols = [np.asarray(reading_ids, dtype=np.int64).tolist()]
-        for c in (e_v_per_m, axes[:, 0], axes[:, 1], axes[:, 2], h_a_per_m, s_w_per_m2, u_expanded_db):
-            a = np.asarray(c, dtype=float)
-            lst = a.tolist()
-            if not np.isfinite(a).all():   # NULL for NaN, as before; infinities stay numbers
-                lst = [None if x != x else x for x in lst]
-            cols.append(lst)
-        cols.append(np.asarray(flags, dtype=np.int64).tolist())
-        packed = [] if t_utc is None else _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes,
-                                                         u_expanded_db, flags)
-        cal = int(calibration_id)            # goes into the statement: one value fewer to bind per row
-        conn = self.db.conn
-        with self._lock:
-            own = not conn.in_transaction    # the pragma is a no-op inside a transaction
-            if own:
-                # as in _session_tx: no per-row foreign-key checks (reading and calibration) in this bulk
-                # insert; the calibration is checked once here, the reading ids were read from readings
-                conn.execute("PRAGMA foreign_keys=OFF")
-            try:
-                with self.write():
-                    if conn.execute("select 1 from calibrations where id = ?", [cal]).fetchone() is None:
-                        raise StorageError(f"no calibration {cal} in {str(self.path)!r}")
-                    self._insert_values(conn, cal, cols, packed)
-            finally:
-                if own:
-                    conn.execute("PRAGMA foreign_keys=ON")
+                         s_w_per_m2, u_expanded_db, flags, t_utc) -> None:
+        """Store one calibration's values for many readings in one transaction, packed per run of
+        readings (field_spans; schema 13: no per-reading rows, storage/streamed.py says why).
 
-    @staticmethod
-    def _insert_values(conn, cal: int, cols: list, packed: list) -> None:
-        conn.executemany(
-            "insert into field_values (reading_id, calibration_id, e_v_per_m, ex_v_per_m, ey_v_per_m, "
-            f"ez_v_per_m, h_a_per_m, s_w_per_m2, u_expanded_db, flags) values (?,{cal},?,?,?,?,?,?,?,?)", zip(*cols))
-        if packed:
+        H is packed only where it is not exactly E / Z0, and S is rebuilt from E on reading, so S must
+        be E^2 / Z0 (NaN in near-field rows) as physics.calibrate gives it: other values are refused."""
+        packed = _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes_v_per_m, h_a_per_m, s_w_per_m2,
+                              u_expanded_db, flags)
+        cal = int(calibration_id)
+        with self.write() as conn:
+            if conn.execute("select 1 from calibrations where id = ?", [cal]).fetchone() is None:
+                raise StorageError(f"no calibration {cal} in {str(self.path)!r}")
             conn.executemany(
                 "insert into field_spans (calibration_id, id_lo, id_hi, n, t_lo, t_hi, reading_id, t_utc, e_v_per_m, "
-                "axes_v_per_m, u_expanded_db, flags) values (?,?,?,?,?,?,?,?,?,?,?,?)", packed)
+                "axes_v_per_m, u_expanded_db, flags, h_a_per_m) values (?,?,?,?,?,?,?,?,?,?,?,?,?)", packed)
 
     def packed_count(self, calibration_id: int) -> int:
         """How many readings a calibration holds packed in field_spans (0: none, read field_values)."""
@@ -193,8 +170,12 @@ class SessionQueries:
                     yield got
 
     def field_values(self, calibration_id: int) -> dict[str, np.ndarray]:
-        """One calibration's values joined with reading times, ordered by time (NULL -> NaN)."""
+        """One calibration's values with their reading times, ordered by time (NULL -> NaN): from its
+        packed rows (schema 13 on, readings since removed left out), else its per-reading rows."""
         with self._lock:
+            got = _packed_field_values(self.db.conn, calibration_id)
+            if got is not None:
+                return got
             rows = self.db.execute(
                 "select v.reading_id, r.t_utc, v.e_v_per_m, v.ex_v_per_m, v.ey_v_per_m, v.ez_v_per_m, "
                 "v.h_a_per_m, v.s_w_per_m2, v.u_expanded_db, v.flags from field_values v "
@@ -240,30 +221,83 @@ class SessionQueries:
 PACKED_ROWS = 16384
 
 
-def _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes, u_expanded_db, flags) -> list[tuple]:
+def _rebuilt_h(e, h_blob) -> np.ndarray:
+    """H of a packed row: E / Z0 where the row stores none (empty blob), else the stored array."""
+    if not h_blob:
+        return units.e_to_h(e)
+    h = np.frombuffer(h_blob, "<f8")
+    return np.broadcast_to(h, e.shape) if h.size == 1 and e.size != 1 else h
+
+
+def _rebuilt_s(e, flags) -> np.ndarray:
+    """S of a packed row: E^2 / Z0 as physics.calibrate computes it, NaN in near-field rows."""
+    return np.where((np.asarray(flags) & NEAR_FIELD) != 0, np.nan, units.e_to_s(e))
+
+
+def _same_bits(a: np.ndarray, b: np.ndarray) -> bool:
+    return a.shape == b.shape and np.ascontiguousarray(a, "<f8").tobytes() == np.ascontiguousarray(b, "<f8").tobytes()
+
+
+def _packed_rows(calibration_id, reading_ids, t_utc, e_v_per_m, axes, h_a_per_m, s_w_per_m2, u_expanded_db,
+                 flags) -> list[tuple]:
     """field_spans rows of one calibration's values: sorted by reading id, PACKED_ROWS at a time.
 
     Ids that run without a hole (id_hi - id_lo + 1 == n, one meter per file) are stored as an empty
-    blob, and an uncertainty or flags column that is the same for the whole row as one element."""
+    blob, H as an empty blob where it is E / Z0 to the last bit, and an uncertainty, flags or H
+    column that is the same for the whole row as one element. S is not stored: it must be what
+    _rebuilt_s gives back, bit for bit (else StorageError)."""
     ids = np.asarray(reading_ids, dtype=np.int64)
+    n = ids.size
+    e = np.asarray(e_v_per_m, dtype="<f8").reshape(n)
+    fl_all = np.asarray(flags, dtype="<i8").reshape(n)
+    if not _same_bits(np.asarray(s_w_per_m2, dtype="<f8").reshape(n), _rebuilt_s(e, fl_all)):
+        raise StorageError(f"calibration {calibration_id}: power density is not E^2/Z0 (NaN in near field), "
+                           f"which the packed values rebuild; not stored")
     order = np.argsort(ids, kind="stable") if np.any(np.diff(ids) < 0) else slice(None)
-    cols = [ids[order], np.asarray(t_utc, dtype="<f8")[order], np.asarray(e_v_per_m, dtype="<f8")[order],
-            np.asarray(axes, dtype="<f8")[order], np.asarray(u_expanded_db, dtype="<f8")[order],
-            np.asarray(flags, dtype="<i8")[order]]
+    cols = [ids[order], np.asarray(t_utc, dtype="<f8")[order], e[order],
+            np.asarray(axes, dtype="<f8").reshape(n, 3)[order], np.asarray(u_expanded_db, dtype="<f8")[order],
+            fl_all[order], np.asarray(h_a_per_m, dtype="<f8").reshape(n)[order]]
     out = []
-    for a in range(0, ids.size, PACKED_ROWS):
+    for a in range(0, n, PACKED_ROWS):
         part = [np.ascontiguousarray(c[a:a + PACKED_ROWS]) for c in cols]
         i, t = part[0], part[1]
         lo, hi = int(i[0]), int(i[-1])
         if hi - lo + 1 == i.size:
             part[0] = part[0][:0]
-        for k in (4, 5):
+        if _same_bits(part[6], units.e_to_h(part[2])):
+            part[6] = part[6][:0]
+        for k in (4, 5, 6):
             c = part[k]
-            if c.size and (np.all(c == c[0]) if k == 5 else np.array_equal(c, np.full(c.size, c[0]), equal_nan=True)):
+            if c.size and (np.all(c == c[0]) if k == 5 else _same_bits(c, np.full(c.size, c[0]))):
                 part[k] = c[:1]
         out.append((calibration_id, lo, hi, int(i.size), float(np.min(t)), float(np.max(t)),
                     *(c.tobytes() for c in part)))
     return out
+
+
+def _packed_field_values(conn, calibration_id: int) -> dict[str, np.ndarray] | None:
+    """Store.field_values from a calibration's packed rows, None if it has none written from schema 13
+    on (rows written before hold no H: their H and S are read from field_values)."""
+    got = conn.execute("select session_id from calibrations where id = ?", [calibration_id]).fetchone()
+    if got is None:
+        return None
+    ranges = spans.id_ranges(conn, got[0])
+    parts = []
+    for r in conn.execute("select id_lo, id_hi, n, reading_id, t_utc, e_v_per_m, axes_v_per_m, u_expanded_db, flags, "
+                          "h_a_per_m from field_spans where calibration_id = ? order by id_lo", [calibration_id]):
+        if r[9] is None:
+            return None
+        d = _unpack(r)
+        d["h_a_per_m"] = _rebuilt_h(d["e_v_per_m"], r[9])
+        d["s_w_per_m2"] = _rebuilt_s(d["e_v_per_m"], d["flags"])
+        keep = spans.in_ranges(ranges, d["reading_id"])
+        parts.append({k: v[keep] for k, v in d.items()})
+    if not parts:
+        return None
+    d = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+    order = np.lexsort((d["reading_id"], d["t_utc"]))     # by time, ties by id: as the join's order by
+    return {k: d[k][order] for k in ("reading_id", "t_utc", "e_v_per_m", "axes_v_per_m", "h_a_per_m",
+                                     "s_w_per_m2", "u_expanded_db", "flags")}
 
 
 def _unpack(r) -> dict:

@@ -18,6 +18,7 @@ import numpy as np
 from meterlink.device.protocol import SensorKind
 from meterlink.errors import MeterlinkError
 from meterlink.storage.rows import ReadingArrays
+from meterlink.storage.spans import in_ranges
 
 #: Readings per chunk handed out by the generators (a few MB of Python rows at a time).
 CHUNK_ROWS = 16384
@@ -143,10 +144,11 @@ class Recording:
 
     def values(self, calibration_id: int | None = None, rows: int = CHUNK_ROWS) -> Iterator[ValueChunk]:
         """Stored calibrated values of a calibration (the one in force by default), chunk by chunk:
-        from the packed copy (field_spans) when it holds every reading, else from field_values."""
+        from its packed rows (field_spans) when it has any, else from its per-reading rows (field_values,
+        calibrations made before schema 8). Readings recorded after the calibration have no value in it."""
         cid = self._calibration_id(calibration_id)
         packed = self.packed_n if calibration_id is None else self.store.packed_count(cid)
-        if packed and packed >= self.n_readings:
+        if packed:
             yield from self._packed_values(cid, rows)
             return
         sid = self.session_id
@@ -160,22 +162,15 @@ class Recording:
 
     def _packed_values(self, cid: int, rows: int) -> Iterator[ValueChunk]:
         """Packed rows, keeping only readings still in the span index (retention may have removed some)."""
-        ranges = np.array(self.id_ranges, dtype=np.int64).reshape(-1, 2)
-        n = 0
+        ranges = self.id_ranges
         for d in self.store.packed_chunks(cid):
-            ids = d["reading_id"]
-            k = np.searchsorted(ranges[:, 0], ids, side="right") - 1
-            keep = (k >= 0) & (ids <= ranges[np.maximum(k, 0), 1])
+            keep = in_ranges(ranges, d["reading_id"])
             if not keep.all():
                 d = {name: a[keep] for name, a in d.items()}
             m = d["reading_id"].size
-            n += m
             for a in range(0, m, rows):
                 yield ValueChunk(*(d[k][a:a + rows] for k in ("reading_id", "t_utc", "e_v_per_m", "axes_v_per_m",
                                                               "u_expanded_db", "flags")))
-        if n != self.n_readings:
-            raise MeterlinkError(f"session {self.session_id}: calibration {cid} holds {n} packed values for "
-                                 f"{self.n_readings} readings")
 
     def _calibration_id(self, calibration_id: int | None) -> int:
         if calibration_id is not None:

@@ -12,7 +12,7 @@ if TYPE_CHECKING:      # annotations only: the version constants below are read 
     import sqlite_utils
 
 APP_ID = "meterlink"
-SCHEMA_VERSION = 12
+SCHEMA_VERSION = 13
 
 
 def _schema_v1(db: sqlite_utils.Database) -> None:
@@ -314,6 +314,13 @@ def _schema_v12_signed(db: sqlite_utils.Database) -> None:
     db.execute("ALTER TABLE survey_photos ADD COLUMN taken_from TEXT")
 
 
+def _schema_v13_packed_only(db: sqlite_utils.Database) -> None:
+    """Calibrations are stored packed only (field_spans; no more per-reading rows in field_values): H is
+    packed too where it is not exactly E/Z0 (an H probe, a near-field row). Rows written before keep
+    NULL there, which tells readers that their H and S are in field_values. ADD COLUMN: no row rewritten."""
+    db.execute("ALTER TABLE field_spans ADD COLUMN h_a_per_m BLOB")
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1, 2: _schema_v2_survey,
                                                                    3: _schema_v3_spans, 4: _schema_v4_epochs,
                                                                    5: _schema_v5_monitoring, 6: _schema_v6_sync,
@@ -321,6 +328,7 @@ MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _schema_v1,
                                                                    9: _schema_v9_remeasure,
                                                                    10: _schema_v10_selective,
                                                                    11: _schema_v11_photos,
-                                                                   12: _schema_v12_signed}
+                                                                   12: _schema_v12_signed,
+                                                                   13: _schema_v13_packed_only}
 # migrations that read every reading (about 1 s per million here): announced on stderr
 _SLOW_MIGRATIONS = {3: "building the readings' span index, about a second per million readings"}

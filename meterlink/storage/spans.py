@@ -268,6 +268,13 @@ def id_ranges(conn: sqlite3.Connection, session_id: int, t0: float | None = None
     return [(lo, hi) for lo, hi in out]
 
 
+def in_ranges(ranges: Sequence[tuple[int, int]], ids: np.ndarray) -> np.ndarray:
+    """Which of ``ids`` lie in one of the disjoint, ascending [lo, hi] ``ranges`` (as id_ranges gives)."""
+    r = np.asarray(ranges, dtype=np.int64).reshape(-1, 2)
+    k = np.searchsorted(r[:, 0], ids, side="right") - 1
+    return (k >= 0) & (ids <= r[np.maximum(k, 0), 1]) if r.size else np.zeros(np.shape(ids), dtype=bool)
+
+
 def select(conn: sqlite3.Connection, columns: str, session_id: int, t0: float | None = None,
            t1: float | None = None) -> list[tuple]:
     """Rows (the given columns) of a session's readings with t0 <= t_utc < t1, in id order."""

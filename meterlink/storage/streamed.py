@@ -4,13 +4,25 @@ The in-memory functions of processing.py load a whole session; these read it chu
 through a Recording (recording.py) and give the same results: calibrating is elementwise, and the
 running averages carry their state across chunks (physics.streaming).
 
-Where calibrated values live (schema 8): per reading in field_values as before (the record other
-tools, retention and salvage use), and packed per run of readings in field_spans, written in the
-same transaction. Measured on 30 days at 1 Hz (2.59 M readings): reading the per-reading rows back
-through the join with readings took 9.5 s, recomputing the values from the raw counts 3.7 s (the
-select alone 3.3 s), the packed copy 0.3 s. Recomputing on demand would also lose provenance:
-stored values are those computed once, under the software version and certificate status of the
-day they were applied.
+Where calibrated values live (schema 13): packed per run of readings in field_spans, and nowhere
+else (Store.add_field_values). E, the axes and the times are float64 arrays; uncertainty and flags
+one element when constant; H is packed only where it is not E / Z0 to the last bit (an H probe, a
+near-field row), and S never: the readers rebuild H = E / Z0 and S = E^2 / Z0 (NaN in near-field
+rows) bit for bit. Calibrations made before schema 13 keep their per-reading rows in field_values
+and are read from there. Why, measured on 2026-12-04 (shared 2-core machine, load average 3-8):
+- size, used pages of the file before and after one recalibrate of 7 days at 1 Hz (604,800
+  readings): 132 bytes per reading when values went both per reading and packed, 40 bytes now;
+  the per-reading rows alone take 94 (bench_streaming.py, 30 days);
+- time, 30 days at 1 Hz (2.59 M readings, bench_streaming.py --only recalibrate --runs 5): 4.8 s,
+  against 15.3 s for the issue's baseline (select + numpy + executemany of the per-reading rows,
+  0.31x) and 5.3 s for a baseline writing the same packed rows (0.92x, pairs 0.65-1.50); on 7 days,
+  2.7 s before (both tables) and 1.5 s now (medians of 3, not paired);
+- reading back, 7 days: Recording.values 0.02-0.04 s from the packed rows, 2.0 s through the join of
+  per-reading rows with readings; Store.field_values (the in-memory path) 0.14 s against 3.5 s.
+No reader looks a value up by reading: assess and the session report stream whole runs, the in-memory
+path loads a whole calibration. Recomputing from the raw counts on demand (measured on 30 days under schema 8: 3.7 s, the select alone 3.3 s,
+against 0.3 s for the packed rows) would also lose provenance: stored values are those computed
+once, under the software version and certificate status of the day they were applied.
 """
 
 from __future__ import annotations
