@@ -97,6 +97,9 @@ def test_copy_path_stores_what_the_on_conflict_path_stores(db, monkeypatch):
     # the float column holds 2**53 + 1 rounded to the nearest double (IEEE 754 binary64: 53-bit significand)
     assert odd == ("m\t1", "b\\and\n2 µ", T0, 360.0, 0.1, 5e-324, 36, float(2**53), None, False, -2**31)
     assert [r[9] for r in got_a if r[0] == "m1"][:3] == [False, True, False]     # 0/1 sent, boolean stored
+    bands = "SELECT meter, band, first_t_utc, last_t_utc FROM bands WHERE station_uuid = %s ORDER BY meter"
+    assert db.execute(bands, (a,)).fetchall() == db.execute(bands, (b,)).fetchall() == [
+        ("m\t1", "b\\and\n2 µ", T0, T0), ("m1", "total", T0, T0 + 360.0 * 499)]
 
 
 def test_a_resent_batch_after_copy_is_a_no_op(db, monkeypatch):
@@ -122,6 +125,8 @@ def test_a_batch_overlapping_stored_rows_takes_only_the_new_ones(db):
     ack = _apply(db, su, first[80:], fu, batch_no=2)
     assert (ack["new"], ack["duplicate"], ack["conflicts"]) == (80, 40, 0)
     assert _stored(db, su) == [tuple(r[:9]) + (bool(r[9]), r[10]) for r in first]
+    assert db.execute("SELECT meter, band, first_t_utc, last_t_utc FROM bands WHERE station_uuid = %s",
+                      (su,)).fetchall() == [("m1", "total", T0, T0 + 360.0 * 199)]
 
 
 def test_a_row_stored_by_another_session_undoes_only_the_copy(db, monkeypatch):

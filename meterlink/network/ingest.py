@@ -12,6 +12,7 @@ import hashlib
 import json
 import secrets
 import time
+from operator import itemgetter
 
 from meterlink.network.batch import TABLES, TIME_COLUMN, BadBatch
 from meterlink.network.central_schema import Partitions
@@ -208,10 +209,15 @@ class Ingest:
             new = conn.execute(f"INSERT INTO {table} ({cols}) {select} ON CONFLICT DO NOTHING", args).rowcount
         if source == "mon_block":
             spans: dict = {}
-            for r in rows:
-                k = (r[0], r[1])
-                lo, hi = spans.get(k, (r[2], r[2]))
-                spans[k] = (min(lo, r[2]), max(hi, r[2]))
+            pairs = set(map(itemgetter(0, 1), rows))
+            if len(pairs) == 1:           # one meter and band (the usual batch): no per-row loop
+                times = list(map(itemgetter(2), rows))
+                spans[pairs.pop()] = (min(times), max(times))
+            else:
+                for r in rows:
+                    k = (r[0], r[1])
+                    lo, hi = spans.get(k, (r[2], r[2]))
+                    spans[k] = (min(lo, r[2]), max(hi, r[2]))
             with conn.cursor() as cur:
                 cur.executemany("INSERT INTO bands VALUES (%s, %s, %s, %s, %s) ON CONFLICT (station_uuid, meter, band) "
                                 "DO UPDATE SET first_t_utc = least(bands.first_t_utc, EXCLUDED.first_t_utc), "
@@ -271,10 +277,13 @@ class Ingest:
                 vals = [v for v in (r[j] for r in rows) if v is not None]
                 if vals and (min(vals) < lo or max(vals) > hi):
                     return None
-        head = tuple(uuid.UUID(v) if oid == _UUID_OID else v for v, oid in zip(head, oids))
+        # the per-batch UUIDs go as their 16 bytes, dumped as they are (not re-encoded from uuid.UUID per row)
+        head = tuple(uuid.UUID(v).bytes if oid == _UUID_OID else v for v, oid in zip(head, oids))
+        cur = conn.cursor()
+        cur.adapters.register_dumper(None, _uuid_bytes_dumper())
         try:
             with conn.transaction():
-                with conn.cursor().copy(f"COPY {table} ({', '.join(tg['cols'])}) FROM STDIN (FORMAT BINARY)") as cp:
+                with cur.copy(f"COPY {table} ({', '.join(tg['cols'])}) FROM STDIN (FORMAT BINARY)") as cp:
                     cp.set_types(oids)
                     write = cp.write_row
                     for r in rows:
@@ -304,6 +313,26 @@ class Ingest:
                               b.get("table") if isinstance(b.get("table"), str) else None, status, reason[:500]))
         except Exception:  # noqa: BLE001 - the refusal is logged to stderr anyway
             pass
+
+
+_UUID_BYTES = []
+
+
+def _uuid_bytes_dumper():
+    """A binary COPY dumper for uuid columns that takes a UUID's 16 bytes as they are (made once)."""
+    if not _UUID_BYTES:
+        from psycopg.adapt import Dumper
+        from psycopg.pq import Format
+
+        class UUIDBytesDumper(Dumper):
+            format = Format.BINARY
+            oid = _UUID_OID
+
+            def dump(self, obj):
+                return obj
+
+        _UUID_BYTES.append(UUIDBytesDumper)
+    return _UUID_BYTES[0]
 
 
 def _uuid_or_none(v):
