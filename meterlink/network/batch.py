@@ -87,6 +87,18 @@ def _floats(values):
     return (v for v in values if type(v) is float)
 
 
+def _all_finite(values, types: set) -> bool:
+    """No NaN or infinity among a column's floats (one C-level pass when the column is all floats)."""
+    return all(map(math.isfinite, values if types == {float} else _floats(values)))
+
+
+def _all_int64(values, types: set) -> bool:
+    """Every int of a column fits a PostgreSQL bigint (min and max when the column is all ints)."""
+    if types == {int}:
+        return -2**63 <= min(values) and max(values) < 2**63
+    return all(-2**63 <= v < 2**63 for v in values if type(v) is int)
+
+
 def check(body) -> dict:
     """The batch if it is well formed, else BadBatch naming the first problem."""
     if not isinstance(body, dict):
@@ -152,15 +164,15 @@ def check(body) -> dict:
         if type(r) is not list or len(r) != width:
             raise BadBatch(f"rows[{i}]: expected a list of {width} values")
     if rows:
-        from meterlink.network.central_schema import valid_time
+        from meterlink.network.central_schema import valid_time, valid_times
 
         tname = TIME_COLUMN.get(table)
         for (name, kind), values in zip(spec, zip(*rows)):    # column by column: one pass of C-level checks each
             types = set(map(type, values))
-            if not types <= _ALLOWED[kind] or (float in types and not all(map(math.isfinite, _floats(values)))) \
-                    or (int in types and not all(-2**63 <= v < 2**63 for v in values if type(v) is int)) \
+            if not types <= _ALLOWED[kind] or (float in types and not _all_finite(values, types)) \
+                    or (int in types and not _all_int64(values, types)) \
                     or (kind[0] == "b" and not set(values) <= {0, 1}) \
-                    or (name == tname and not all(map(valid_time, values))):
+                    or (name == tname and not valid_times(values)):
                 i, v = next(((i, v) for i, v in enumerate(values) if not _ok(v, kind)
                              or (name == tname and not valid_time(v))), (0, values[0]))
                 if name == tname and _ok(v, kind):
