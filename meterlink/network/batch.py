@@ -9,8 +9,15 @@ again without change (a re-send after a lost acknowledgement).
 
 from __future__ import annotations
 
+import json
 import math
 import uuid
+from itertools import repeat
+
+try:        # a fast JSON library when installed (the central extra has it); a station needs only the stdlib
+    import orjson
+except ImportError:  # pragma: no cover - exercised where orjson is absent
+    orjson = None
 
 FORMAT = 1                 # batch format this meterlink writes and reads
 MAX_ROWS = 50_000          # rows per batch the service takes
@@ -42,6 +49,42 @@ METER_KEYS = {"meter": "s", "port": "s?", "certificate": "s?", "certificate_sha2
 CERT_KEYS = {"sha256": "s", "name": "s?", "text": "s"}
 ALARM_KEYS = {"rule": "s", "meter": "s", "band": "s", "state": "s", "t_on_utc": "f?", "peak_t_utc": "f?",
               "peak_value": "f?", "last_t_utc": "f?"}
+
+
+def encode(body: dict) -> bytes:
+    """A batch as compact JSON (UTF-8); ValueError on a NaN or an infinity, which JSON cannot carry.
+
+    orjson, when installed, writes the same JSON about ten times faster than the json module but
+    writes NaN and infinities as null; so its text is taken only when it holds exactly as many nulls as
+    the body holds None, otherwise (a non-finite float, or text containing "null") the json module
+    writes it, or refuses it, as before."""
+    if orjson is not None:
+        try:
+            out = orjson.dumps(body)
+        except TypeError:           # an int beyond 64 bits, a lone surrogate: the json module decides
+            out = None
+        if out is not None and out.count(b"null") == _nones(body):
+            return out
+    return json.dumps(body, separators=(",", ":"), allow_nan=False).encode()
+
+
+def decode(text: str):
+    """Parse a JSON text (orjson when installed: about twice as fast on a batch); json.JSONDecodeError if invalid."""
+    if orjson is not None:
+        return orjson.loads(text)          # orjson.JSONDecodeError is a json.JSONDecodeError
+    return json.loads(text)
+
+
+def _nones(obj) -> int:
+    """How many None values a body holds (a batch's rows, lists of scalars, counted by list.count)."""
+    if obj is None:
+        return 1
+    if isinstance(obj, dict):
+        return sum(sum(map(list.count, v, repeat(None))) if k == "rows" and isinstance(v, list)
+                   and all(type(r) is list for r in v) else _nones(v) for k, v in obj.items())
+    if isinstance(obj, (list, tuple)):
+        return sum(map(_nones, obj))
+    return 0
 
 
 class BadBatch(ValueError):
