@@ -100,3 +100,19 @@ def test_encode_keeps_text_holding_null_and_real_nulls():
 
     body = {**_body(_rows(10)), "software_version": "null, nullable"}
     assert json.loads(batch.encode(body)) == body
+
+
+def test_without_orjson_the_json_module_writes_and_reads_the_same(monkeypatch):
+    """Equivalence test of two code paths: a station without orjson sends the same JSON value."""
+    from meterlink.network import batch
+
+    body = _body(_rows(30))
+    fast = batch.encode(body)
+    monkeypatch.setattr(batch, "orjson", None)
+    slow = batch.encode(body)
+    assert json.loads(slow) == json.loads(fast) == body
+    assert batch.decode(slow.decode()) == body
+    rows = _rows(5)
+    rows[2][4] = float("inf")
+    with pytest.raises(ValueError, match="not JSON compliant"):
+        batch.encode(_body(rows))
