@@ -160,3 +160,22 @@ def test_an_integer_out_of_the_column_range_is_refused_not_wrapped(db):
         _apply(db, su, rows, str(uuid.uuid4()))
     db.rollback()
     assert _stored(db, su) == []
+
+
+def test_two_meters_next_batch_sharing_a_block_time_still_goes_by_copy(db, monkeypatch):
+    """A station with two meters logs their blocks interleaved, so one batch can end with meter A's block
+    at time t and the next begin with meter B's at t: the probe looks at each meter and band's own range,
+    so the next batch still takes COPY, and every block is stored once."""
+    su = _station(db, "two meters")
+    fu = str(uuid.uuid4())
+    rows = [[m, "total", T0 + 360.0 * k, 360.0, 1.0, 360.0, 36, 0.5, 0.6, 1, 0] for k in range(50) for m in ("a", "b")]
+    first, second = rows[:51], rows[51:]          # the first ends with meter a at k = 25, the second begins with b at 25
+    assert first[-1][:3] == ["a", "total", T0 + 360.0 * 25] and second[0][:3] == ["b", "total", T0 + 360.0 * 25]
+    _apply(db, su, first, fu, batch_no=1)
+    copies = _copies(monkeypatch)
+    ack = _apply(db, su, second, fu, batch_no=2)
+    assert any("FORMAT BINARY" in c for c in copies)
+    assert (ack["new"], ack["duplicate"]) == (49, 0) and len(_stored(db, su)) == 100
+    copies.clear()
+    ack = _apply(db, su, second, fu, batch_no=2)          # re-sent: the probe finds meter b's stored range
+    assert not any("FORMAT BINARY" in c for c in copies) and (ack["new"], ack["duplicate"]) == (0, 49)

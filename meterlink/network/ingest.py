@@ -195,7 +195,8 @@ class Ingest:
         cols = ", ".join(tg["cols"])
         extra = {"station_uuid": su, "file_uuid": body["file_uuid"], "received_utc": now, "first_seen_utc": now}
         head = tuple(extra[c] for c in tg["extra"])
-        new = self._copy_new(conn, source, head, rows)
+        spans = _spans(rows) if source == "mon_block" else None      # (meter, band) -> (first, last) block start
+        new = self._copy_new(conn, source, head, rows, spans)
         if new is None:
             exprs = ", ".join([_PARAM[c] for c in tg["extra"]]
                               + [_CAST[k[0]].format(i=i) for i, (_, k) in enumerate(TABLES[source])])
@@ -208,16 +209,6 @@ class Ingest:
                 select = f"SELECT {exprs} FROM jsonb_array_elements(%s::jsonb) AS e"
             new = conn.execute(f"INSERT INTO {table} ({cols}) {select} ON CONFLICT DO NOTHING", args).rowcount
         if source == "mon_block":
-            spans: dict = {}
-            pairs = set(map(itemgetter(0, 1), rows))
-            if len(pairs) == 1:           # one meter and band (the usual batch): no per-row loop
-                times = list(map(itemgetter(2), rows))
-                spans[pairs.pop()] = (min(times), max(times))
-            else:
-                for r in rows:
-                    k = (r[0], r[1])
-                    lo, hi = spans.get(k, (r[2], r[2]))
-                    spans[k] = (min(lo, r[2]), max(hi, r[2]))
             with conn.cursor() as cur:
                 cur.executemany("INSERT INTO bands VALUES (%s, %s, %s, %s, %s) ON CONFLICT (station_uuid, meter, band) "
                                 "DO UPDATE SET first_t_utc = least(bands.first_t_utc, EXCLUDED.first_t_utc), "
@@ -246,7 +237,7 @@ class Ingest:
             conflicts = len(found)
         return new, conflicts
 
-    def _copy_new(self, conn, source: str, head: tuple, rows: list) -> int | None:
+    def _copy_new(self, conn, source: str, head: tuple, rows: list, spans: dict | None = None) -> int | None:
         """COPY the rows into the target when none of their keys can be stored yet: the number copied, or
         None (the caller then inserts with ON CONFLICT DO NOTHING).
 
@@ -265,9 +256,16 @@ class Ingest:
 
         tg = TARGETS[source]
         table, (scope, key, i) = tg["table"], probe
-        keys = [r[i] for r in rows]
-        if conn.execute(f"SELECT EXISTS (SELECT 1 FROM {table} WHERE {scope} = %s AND {key} BETWEEN %s AND %s)",
-                        (head[tg["extra"].index(scope)], min(keys), max(keys))).fetchone()[0]:
+        at = head[tg["extra"].index(scope)]
+        if spans and len(spans) <= 64:       # blocks: each meter and band's own time range (the primary key's order)
+            ranges = " OR ".join(["(meter = %s AND band = %s AND t_start_utc BETWEEN %s AND %s)"] * len(spans))
+            sql = f"SELECT EXISTS (SELECT 1 FROM {table} WHERE {scope} = %s AND ({ranges}))"
+            args = (at, *(v for (m, b), (lo, hi) in spans.items() for v in (m, b, lo, hi)))
+        else:
+            keys = [r[i] for r in rows]
+            sql = f"SELECT EXISTS (SELECT 1 FROM {table} WHERE {scope} = %s AND {key} BETWEEN %s AND %s)"
+            args = (at, min(keys), max(keys))
+        if conn.execute(sql, args).fetchone()[0]:
             return None
         oids = self._oids(conn, table, tg["cols"])
         n_extra = len(head)
@@ -313,6 +311,20 @@ class Ingest:
                               b.get("table") if isinstance(b.get("table"), str) else None, status, reason[:500]))
         except Exception:  # noqa: BLE001 - the refusal is logged to stderr anyway
             pass
+
+
+def _spans(rows: list) -> dict:
+    """(meter, band) -> (first, last) block start of a batch of blocks."""
+    pairs = set(map(itemgetter(0, 1), rows))
+    if len(pairs) == 1:           # one meter and band: no per-row loop
+        times = list(map(itemgetter(2), rows))
+        return {pairs.pop(): (min(times), max(times))}
+    spans: dict = {}
+    for r in rows:
+        k = (r[0], r[1])
+        lo, hi = spans.get(k, (r[2], r[2]))
+        spans[k] = (min(lo, r[2]), max(hi, r[2]))
+    return spans
 
 
 _UUID_BYTES = []
