@@ -1,9 +1,10 @@
 """Central side of the sync: one checked batch applied to PostgreSQL in one transaction (docs/network.md).
 
-Rows go through COPY into a session-local staging table, then ``INSERT ... SELECT ... ON CONFLICT DO
-NOTHING`` into the (partitioned) target, so a re-sent row changes nothing. A staged row whose key is
-stored with other content is written to ``conflicts`` (once per distinct offered content) and the
-stored row stays as it was. Tokens are kept as SHA-256 hashes only.
+A batch none of whose keys is stored yet goes into the (partitioned) target with binary COPY; any
+other batch is unpacked by PostgreSQL from its JSON and inserted with ``INSERT ... SELECT ... ON
+CONFLICT DO NOTHING``, so a re-sent row changes nothing. A row whose key is stored with other content
+is written to ``conflicts`` (once per distinct offered content) and the stored row stays as it was.
+Tokens are kept as SHA-256 hashes only.
 """
 
 from __future__ import annotations
