@@ -278,10 +278,9 @@ class Ingest:
                     return None
         # the per-batch UUIDs go as their 16 bytes, dumped as they are (not re-encoded from uuid.UUID per row)
         head = tuple(uuid.UUID(v).bytes if oid == _UUID_OID else v for v, oid in zip(head, oids))
-        cur = conn.cursor()
-        cur.adapters.register_dumper(None, _uuid_bytes_dumper())
         try:
-            with conn.transaction():
+            with conn.transaction(), conn.cursor() as cur:
+                cur.adapters.register_dumper(None, _uuid_bytes_dumper())      # this cursor only
                 with cur.copy(f"COPY {table} ({', '.join(tg['cols'])}) FROM STDIN (FORMAT BINARY)") as cp:
                     cp.set_types(oids)
                     write = cp.write_row
