@@ -13,6 +13,7 @@ import json
 import logging
 import zlib
 
+from meterlink.network.batch import decode
 from meterlink.network.central import CentralConfig, CentralError, Pool
 from meterlink.network.ingest import Ingest, Refused, authenticate, check_or_refuse
 
@@ -118,7 +119,7 @@ def _decode(raw: bytes, encoding: str | None, limit: int):
         raise Refused(415, f"content encoding {enc[:20]!r} not supported (identity or gzip)")
     try:
         text = raw.decode("utf-8")
-        return json.loads(text), text
+        return decode(text), text
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise Refused(400, f"body is not valid JSON: {str(exc)[:120]}") from None
 

@@ -9,8 +9,15 @@ again without change (a re-send after a lost acknowledgement).
 
 from __future__ import annotations
 
+import json
 import math
 import uuid
+from itertools import repeat
+
+try:        # a fast JSON library when installed (the central extra has it); a station needs only the stdlib
+    import orjson
+except ImportError:  # pragma: no cover - exercised where orjson is absent
+    orjson = None
 
 FORMAT = 1                 # batch format this meterlink writes and reads
 MAX_ROWS = 50_000          # rows per batch the service takes
@@ -42,6 +49,42 @@ METER_KEYS = {"meter": "s", "port": "s?", "certificate": "s?", "certificate_sha2
 CERT_KEYS = {"sha256": "s", "name": "s?", "text": "s"}
 ALARM_KEYS = {"rule": "s", "meter": "s", "band": "s", "state": "s", "t_on_utc": "f?", "peak_t_utc": "f?",
               "peak_value": "f?", "last_t_utc": "f?"}
+
+
+def encode(body: dict) -> bytes:
+    """A batch as compact JSON (UTF-8); ValueError on a NaN or an infinity, which JSON cannot carry.
+
+    orjson, when installed, writes the same JSON about ten times faster than the json module but
+    writes NaN and infinities as null; so its text is taken only when it holds exactly as many nulls as
+    the body holds None, otherwise (a non-finite float, or text containing "null") the json module
+    writes it, or refuses it, as before."""
+    if orjson is not None:
+        try:
+            out = orjson.dumps(body)
+        except TypeError:           # an int beyond 64 bits, a lone surrogate: the json module decides
+            out = None
+        if out is not None and out.count(b"null") == _nones(body):
+            return out
+    return json.dumps(body, separators=(",", ":"), allow_nan=False).encode()
+
+
+def decode(text: str):
+    """Parse a JSON text (orjson when installed: about twice as fast on a batch); json.JSONDecodeError if invalid."""
+    if orjson is not None:
+        return orjson.loads(text)          # orjson.JSONDecodeError is a json.JSONDecodeError
+    return json.loads(text)
+
+
+def _nones(obj) -> int:
+    """How many None values a body holds (a batch's rows, lists of scalars, counted by list.count)."""
+    if obj is None:
+        return 1
+    if isinstance(obj, dict):
+        return sum(sum(map(list.count, v, repeat(None))) if k == "rows" and isinstance(v, list)
+                   and all(type(r) is list for r in v) else _nones(v) for k, v in obj.items())
+    if isinstance(obj, (list, tuple)):
+        return sum(map(_nones, obj))
+    return 0
 
 
 class BadBatch(ValueError):
@@ -85,6 +128,18 @@ _ALLOWED = {"s": {str}, "s?": {str, type(None)}, "i": {int}, "i?": {int, type(No
 
 def _floats(values):
     return (v for v in values if type(v) is float)
+
+
+def _all_finite(values, types: set) -> bool:
+    """No NaN or infinity among a column's floats (one C-level pass when the column is all floats)."""
+    return all(map(math.isfinite, values if types == {float} else _floats(values)))
+
+
+def _all_int64(values, types: set) -> bool:
+    """Every int of a column fits a PostgreSQL bigint (min and max when the column is all ints)."""
+    if types == {int}:
+        return -2**63 <= min(values) and max(values) < 2**63
+    return all(-2**63 <= v < 2**63 for v in values if type(v) is int)
 
 
 def check(body) -> dict:
@@ -152,15 +207,15 @@ def check(body) -> dict:
         if type(r) is not list or len(r) != width:
             raise BadBatch(f"rows[{i}]: expected a list of {width} values")
     if rows:
-        from meterlink.network.central_schema import valid_time
+        from meterlink.network.central_schema import valid_time, valid_times
 
         tname = TIME_COLUMN.get(table)
         for (name, kind), values in zip(spec, zip(*rows)):    # column by column: one pass of C-level checks each
             types = set(map(type, values))
-            if not types <= _ALLOWED[kind] or (float in types and not all(map(math.isfinite, _floats(values)))) \
-                    or (int in types and not all(-2**63 <= v < 2**63 for v in values if type(v) is int)) \
+            if not types <= _ALLOWED[kind] or (float in types and not _all_finite(values, types)) \
+                    or (int in types and not _all_int64(values, types)) \
                     or (kind[0] == "b" and not set(values) <= {0, 1}) \
-                    or (name == tname and not all(map(valid_time, values))):
+                    or (name == tname and not valid_times(values)):
                 i, v = next(((i, v) for i, v in enumerate(values) if not _ok(v, kind)
                              or (name == tname and not valid_time(v))), (0, values[0]))
                 if name == tname and _ok(v, kind):

@@ -143,3 +143,8 @@ class Partitions:
 def valid_time(t) -> bool:
     """A time a partition can hold (years 1..9999 of the calendar; a clock far off is still kept)."""
     return isinstance(t, (int, float)) and not isinstance(t, bool) and -62135596800.0 <= t < 253402300799.0
+
+
+def valid_times(values) -> bool:
+    """valid_time of every value of a column already checked to hold finite numbers only (min and max suffice)."""
+    return -62135596800.0 <= min(values) and max(values) < 253402300799.0

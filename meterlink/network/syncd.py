@@ -24,7 +24,7 @@ from pathlib import Path
 from meterlink import __version__
 from meterlink.errors import MeterlinkError
 from meterlink.network import outbox
-from meterlink.network.batch import FORMAT
+from meterlink.network.batch import FORMAT, encode
 
 
 class SyncError(MeterlinkError):
@@ -110,7 +110,7 @@ class Client:
         self.s = settings
 
     def post(self, body: dict) -> dict:
-        data = gzip.compress(json.dumps(body, separators=(",", ":"), allow_nan=False).encode(), 1)
+        data = gzip.compress(encode(body), 1)
         req = urllib.request.Request(self.s.url + "/api/v1/batches", data=data, method="POST", headers={
             "Content-Type": "application/json", "Content-Encoding": "gzip",
             "Authorization": f"Bearer {self.s.token}"})
