@@ -51,9 +51,9 @@ class SlidingWindow:
         self.bin_s = self.window_s / self.BINS
         # the held segments, oldest first, as flat float64 triples t0, t1, p in _buf[_h:_t]: 24 bytes a
         # segment (a deque of tuples took about 150). The oldest leave by moving _h; an append that finds
-        # no room at the end moves the held ones to the front, or grows the array by half when they fill
-        # more than 3/4 of it (_room). Its length therefore never shrinks and stops growing once the
-        # window is full: resident memory plateaus with the window, at most 2x what it holds.
+        # no room at the end moves the held ones to the front, or grows the array by a quarter when they
+        # fill more than 7/8 of it (_room). Its length therefore never shrinks and stops growing once the
+        # window is full: resident memory plateaus with the window, at most about 1.45x what it holds.
         self._buf = array("d")
         self._h = 0
         self._t = 0
@@ -207,15 +207,15 @@ class SlidingWindow:
 
     def _room(self, k: int) -> None:
         """Room for k more values at the end: the held ones moved to the front if they then fill at most
-        3/4 of the array (the next such move is a quarter of it away: amortised O(1)), else a copy into
-        an array half as long again (or as long as needed)."""
+        7/8 of the array (the next such move is an eighth of it away: amortised O(1), a memmove), else a
+        copy into an array a quarter as long again (or as long as needed)."""
         buf, h, t = self._buf, self._h, self._t
         n = t - h
-        if 4 * (n + k) <= 3 * len(buf):
+        if 8 * (n + k) <= 7 * len(buf):
             if h:
                 buf[0:n] = buf[h:t]
         else:
-            new = array("d", bytes(8 * max(3 * ((len(buf) // 2 + 2) // 3) + len(buf), n + k, 3 * 64)))
+            new = array("d", bytes(8 * max(3 * ((len(buf) // 4 + 2) // 3) + len(buf), n + k, 3 * 64)))
             new[0:n] = buf[h:t]
             self._buf = new
         self._h, self._t = 0, n
