@@ -20,6 +20,7 @@ then (the baseline) the same with meterlink/station/derived.py's SlidingWindow a
 
 from __future__ import annotations
 
+import argparse
 import gc
 import json
 import os
@@ -180,9 +181,9 @@ def main(argv=None) -> dict:
     ap.add_argument("--rate", type=float, default=1.0, help="readings per second per meter (1)")
     ap.add_argument("--piece-s", type=float, default=600.0, help="simulated seconds fed per tick (600)")
     ap.add_argument("--no-baseline", action="store_true", help="skip the deque-of-bins run")
-    ap.add_argument("--child", choices=("array", "deque"), help=argparse_hidden())
+    ap.add_argument("--child", choices=("array", "deque"), help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
-    n = args.meters or (20 if args.quick else 500)
+    n = args.meters if args.meters is not None else (20 if args.quick else 500)
     if args.child:
         child(args.child, n, args.hours, args.rate, args.piece_s)
         return {}
@@ -194,7 +195,7 @@ def main(argv=None) -> dict:
     if not args.no_baseline:
         runs["deque"] = run_child("deque", n, args.hours, args.rate, args.piece_s)
     load1 = os.getloadavg()
-    print(f"hour  " + "  ".join(f"{k:>12}" for k in runs) + "   (RSS, MiB)")
+    print("hour  " + "  ".join(f"{k:>12}" for k in runs) + "   (RSS, MiB)")
     for j, (h, _) in enumerate(runs["array"]["curve"]):
         print(f"{h:4g}  " + "  ".join(f"{r['curve'][j][1]:12.1f}" for r in runs.values()))
     out = {}
@@ -226,11 +227,6 @@ def main(argv=None) -> dict:
         meters=n, hours=args.hours, rate_hz=args.rate, piece_s=args.piece_s,
         load_avg_start=[round(x, 2) for x in load0], load_avg_end=[round(x, 2) for x in load1],
         runs={k: {kk: v for kk, v in r.items()} for k, r in out.items()})
-
-
-def argparse_hidden():
-    import argparse
-    return argparse.SUPPRESS
 
 
 if __name__ == "__main__":
