@@ -1,14 +1,17 @@
 """Memory held by the monitor's running-average windows, and CPU per Series.push_many call, before and
-after the windows kept merged bins instead of one segment per reading.
+after the windows kept merged bins instead of one segment per reading, and with the bins in a deque of
+tuples (the first bins) against the flat array of float64 triples held now.
 
 Usage: python bench/bench_window_memory.py [--quick] [--hours H] [--calls N] [--json]
 One meter and band (a derived.Series with the default 360, 1800 and 86400-s windows) is fed a
 simulated day of 10 readings/s (invented field, jittered times) in 10-s pieces, as the 500-meter
 monitor feeds it; "before" is meterlink/station/derived.py as of commit BEFORE (read with git show,
-one segment per reading), "after" is the working copy. Memory: tracemalloc, bytes allocated and still
+one segment per reading), "deque" as of commit DEQUE (bins held as a deque of tuples), "after" is the
+working copy. Memory: tracemalloc, bytes allocated and still
 held by the Series after the day (the input arrays are not counted) per reading fed. CPU: the two
-series, both holding the full day, are then fed the next readings one 10-s piece at a time, in
-turn (a block of calls of one, then of the other), process CPU time per call, median over blocks.
+series, all holding the full day, are then fed the next readings one 10-s piece at a time, in
+turn (a block of calls of one, then of the next, the order rotating), process CPU time per call,
+median over blocks.
 """
 
 from __future__ import annotations
@@ -29,22 +32,24 @@ import _common
 from meterlink.station import derived
 
 BEFORE = "a945b24"          # the last commit with one held segment per reading
+DEQUE = "ce3bd03"           # the last commit with the bins in a deque of tuples
 RATE_HZ = 10.0
 PIECE_S = 10.0
 
 
-def _before_module():
+def _before_module(commit: str = BEFORE, name: str = "derived_before"):
+    """meterlink/station/derived.py as of commit, imported as module name (read with git show)."""
     try:
-        src = subprocess.run(["git", "-C", str(_common.ROOT), "show", f"{BEFORE}:meterlink/station/derived.py"],
+        src = subprocess.run(["git", "-C", str(_common.ROOT), "show", f"{commit}:meterlink/station/derived.py"],
                              check=True, capture_output=True, text=True).stdout
     except (OSError, subprocess.CalledProcessError) as e:
-        sys.exit(f"bench_window_memory: cannot read the 'before' code from git ({BEFORE}): {e}")
+        sys.exit(f"bench_window_memory: cannot read the old code from git ({commit}): {e}")
     with tempfile.TemporaryDirectory() as tmp:
-        path = Path(tmp) / "derived_before.py"
+        path = Path(tmp) / f"{name}.py"
         path.write_text(src)
-        spec = importlib.util.spec_from_file_location("derived_before", path)
+        spec = importlib.util.spec_from_file_location(name, path)
         mod = importlib.util.module_from_spec(spec)
-        sys.modules["derived_before"] = mod
+        sys.modules[name] = mod
         spec.loader.exec_module(mod)
     return mod
 
@@ -87,12 +92,14 @@ def main(argv=None) -> dict:
     calls = args.calls or (400 if args.quick else 2000)
     _common.print_machine()
     before = _before_module()
+    deque_mod = _before_module(DEQUE, "derived_deque")
     t0 = 1.7e9
     t, e = readings(hours * 3600.0, t0, 1)
     n = t.size
     mem = {}
     series = {}
-    for name, mod in (("before", before), ("after", derived)):
+    names = ("before", "deque", "after")
+    for name, mod in (("before", before), ("deque", deque_mod), ("after", derived)):
         held, s, _ = held_bytes(mod, t, e)
         mem[name] = held
         series[name] = s
@@ -104,12 +111,13 @@ def main(argv=None) -> dict:
     step = int(PIECE_S * RATE_HZ)
     pieces = [(tn[k:k + step], en[k:k + step]) for k in range(0, tn.size, step)]
     block = 20
-    cpu = {"before": [], "after": []}
+    cpu = {k: [] for k in names}
     worst = 0.0
     gc.collect()
     for j in range(0, len(pieces), block):
         got = {}
-        for name in ("before", "after") if (j // block) % 2 == 0 else ("after", "before"):
+        r = (j // block) % 3
+        for name in names[r:] + names[:r]:
             s = series[name]
             c0 = time.process_time()
             out = [s.push_many(a, b)[1].e_rms_v_per_m for a, b in pieces[j:j + block]]
@@ -117,28 +125,37 @@ def main(argv=None) -> dict:
             got[name] = np.concatenate(out, axis=1)
         rel = np.abs(got["after"] / got["before"] - 1.0)
         worst = max(worst, float(np.nanmax(rel)))
+        same = np.array_equal(got["after"], got["deque"], equal_nan=True)   # the same bins, held otherwise
+        if not same:
+            sys.exit("bench_window_memory: the array-held bins give other running values than the deque's")
     med = {k: statistics.median(v) for k, v in cpu.items()}
     mean = {k: statistics.fmean(v) for k, v in cpu.items()}
-    for k in ("before", "after"):
+    for k in names:
         v = sorted(cpu[k])
         print(f"{k}: {med[k] * 1e6:.0f} us CPU per push_many call of {step} readings "
               f"(median of {len(v)} blocks of {block}, range {v[0] * 1e6:.0f}-{v[-1] * 1e6:.0f} us; "
               f"mean {mean[k] * 1e6:.0f} us, with the periodic re-sums)", flush=True)
     print(f"running values after/before: largest relative difference {worst:.2e} "
-          f"(stated bound: bin_s/window_s x p_max/p_mean = 1/3600 x p_max/p_mean)")
+          f"(stated bound: bin_s/window_s x p_max/p_mean = 1/3600 x p_max/p_mean); after/deque: identical")
     mem_ratio = mem["after"] / mem["before"]
     cpu_ratio = med["after"] / med["before"]
+    deque_cpu = med["after"] / med["deque"]
+    print(f"against the deque of bins (git {DEQUE}): memory {mem['after'] / mem['deque']:.3f}x "
+          f"({mem['deque'] / 2**20:.2f} MiB -> {mem['after'] / 2**20:.2f} MiB per series), CPU per call {deque_cpu:.2f}x")
     return _common.report(
         "window_memory",
         f"{mem['after'] / n:.2f} B per reading held after {hours:g} h at 10/s (was {mem['before'] / n:.0f} B); "
-        f"{med['after'] * 1e6:.0f} us CPU per push_many call (was {med['before'] * 1e6:.0f} us)",
+        f"{med['after'] * 1e6:.0f} us CPU per push_many call (was {med['before'] * 1e6:.0f} us; "
+        f"deque of bins {mem['deque'] / n:.2f} B, {med['deque'] * 1e6:.0f} us)",
         f"the same Series before the change (git {BEFORE}), same readings, same run",
         cpu_ratio,
-        f"memory {mem_ratio:.4f}x, CPU per call {cpu_ratio:.2f}x",
+        f"memory {mem_ratio:.4f}x, CPU per call {cpu_ratio:.2f}x (vs deque {deque_cpu:.2f}x)",
         "memory bounded by bins, CPU per call <= 1.1x",
         cpu_ratio <= 1.1,
         args.json,
         bytes_per_reading_before=mem["before"] / n, bytes_per_reading_after=mem["after"] / n,
+        bytes_per_reading_deque=mem["deque"] / n, bytes_per_series_deque=mem["deque"],
+        bytes_per_series_after=mem["after"], cpu_us_deque=med["deque"] * 1e6, cpu_ratio_vs_deque=deque_cpu,
         cpu_us_before=med["before"] * 1e6, cpu_us_after=med["after"] * 1e6,
         cpu_us_mean_before=mean["before"] * 1e6, cpu_us_mean_after=mean["after"] * 1e6, max_rel_diff=worst)
 

@@ -15,7 +15,8 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 BENCHES = ["bench_parse", "bench_ingest", "bench_averaging", "bench_stats", "bench_report", "bench_monitor",
            "bench_many_meters", "bench_cli", "bench_predict", "bench_central",
-           "bench_selective", "bench_streaming", "bench_pages", "bench_window_memory"]
+           "bench_selective", "bench_streaming", "bench_pages", "bench_window_memory",
+           "bench_monitor_day"]
 TAG = "BENCH_JSON "
 
 

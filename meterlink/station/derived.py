@@ -11,9 +11,9 @@ transaction as the readings they come from, so a crash leaves them consistent.
 from __future__ import annotations
 
 import math
-from collections import deque
+from array import array
+from bisect import bisect_left
 from dataclasses import dataclass, field
-from itertools import chain, islice
 
 import numpy as np
 
@@ -49,32 +49,53 @@ class SlidingWindow:
     def __init__(self, window_s: float):
         self.window_s = float(window_s)
         self.bin_s = self.window_s / self.BINS
-        self._segs: deque[tuple[float, float, float]] = deque()
+        # the held segments, oldest first, as flat float64 triples t0, t1, p in _buf[_h:_t]: 24 bytes a
+        # segment (a deque of tuples took about 150). The oldest leave by moving _h; an append that finds
+        # no room at the end moves the held ones to the front, or grows the array by a quarter when they
+        # fill more than 7/8 of it (_room). Its length therefore never shrinks and stops growing once the
+        # window is full: resident memory plateaus with the window, at most about 1.45x what it holds.
+        self._buf = array("d")
+        self._h = 0
+        self._t = 0
         self._energy = 0.0
         self._covered = 0.0
         self._adds = 0
+
+    @property
+    def _segs(self) -> list[tuple[float, float, float]]:
+        """The held segments as (t0, t1, p) tuples, oldest first: a copy, for tests and benchmarks."""
+        v = self._buf[self._h:self._t]
+        return list(zip(v[0::3], v[1::3], v[2::3]))
 
     def add(self, t0: float, t1: float, p: float) -> None:
         """Add the segment [t0, t1) holding power-like value p (E^2 or S)."""
         if t1 <= t0:
             return
-        segs = self._segs
+        buf = self._buf
         w = self.bin_s
         edge = (math.floor(t0 / w) + 1) * w
-        if segs and t1 <= edge:            # within one bin: merge with the stored run it continues
-            s0, s1, sp = segs[-1]
+        t = self._t
+        merged = False
+        if t > self._h and t1 <= edge:     # within one bin: merge with the stored run it continues
+            s0, s1, sp = buf[t - 3], buf[t - 2], buf[t - 1]
             if s1 == t0 and (math.floor(s0 / w) + 1) * w == edge:
-                segs[-1] = (s0, t1, (sp * (s1 - s0) + p * (t1 - t0)) / (t1 - s0))
-            else:
-                segs.append((t0, t1, p))
-        else:
-            segs.append((t0, t1, p))
+                buf[t - 2] = t1
+                buf[t - 1] = (sp * (s1 - s0) + p * (t1 - t0)) / (t1 - s0)
+                merged = True
+        if not merged:
+            if t + 3 > len(buf):
+                self._room(3)
+                buf, t = self._buf, self._t
+            buf[t], buf[t + 1], buf[t + 2] = t0, t1, p
+            self._t = t + 3
         self._energy += p * (t1 - t0)
         self._covered += t1 - t0
         self._adds += 1
         if self._adds % 20000 == 0:      # re-sum now and then so rounding never accumulates
-            self._energy = sum(s[2] * (s[1] - s[0]) for s in segs)
-            self._covered = sum(s[1] - s[0] for s in segs)
+            v = buf[self._h:self._t]
+            a, b, q = v[0::3], v[1::3], v[2::3]
+            self._energy = sum(pi * (bi - ai) for ai, bi, pi in zip(a, b, q))
+            self._covered = sum(bi - ai for ai, bi in zip(a, b))
 
     def _merge(self, a, b, p, tail):
         """Merge sorted segments (after the stored tail, if any) as add() would: starts, ends, p, joined
@@ -110,13 +131,12 @@ class SlidingWindow:
     def _extend(self, a, b, p, x, t_last: float) -> tuple[np.ndarray, np.ndarray]:
         """Add segments (sorted, after all held ones) and give value() at each x as if added in order."""
         cut = t_last - self.window_s
-        segs = self._segs
-        n_old = len(segs)
-        nq = _count_before(segs, cut)
-        q = list(islice(segs, 0, nq))   # old segments the batch's windows leave
-        qa, qb, qp = np.fromiter(chain.from_iterable(q), float, 3 * nq).reshape(-1, 3).T  # one pass, then columns
+        buf, h, t = self._buf, self._h, self._t
+        n_old = (t - h) // 3
+        nq = _count_before(buf, h, n_old, cut)
+        qa, qb, qp = _rows(buf, h, nq).T    # (a copy of) the old segments the batch's windows leave
         # the batch's segments merged among themselves and with the stored tail, as add() merges them
-        ga, gb, gp, joined = self._merge(a, b, p, segs[-1] if segs else None)
+        ga, gb, gp, joined = self._merge(a, b, p, (buf[t - 3], buf[t - 2], buf[t - 1]) if n_old else None)
         # exact side (window ends): the stored segments and the batch's own; all of them end by any x
         aa, ab, ap = np.concatenate((qa, a)), np.concatenate((qb, b)), np.concatenate((qp, p))
         ce = np.concatenate(([0.0], np.cumsum(ap * (ab - aa))))
@@ -158,34 +178,61 @@ class SlidingWindow:
         self._energy += add_e - me[drop]
         self._covered += add_c - mc[drop]
         if joined:
-            segs.pop()
+            self._t -= 3
         if drop <= n_old2:
-            for _ in range(drop):
-                segs.popleft()
-            segs.extend(zip(ga.tolist(), gb.tolist(), gp.tolist()))
+            self._h += 3 * drop
+            self._append(ga, gb, gp)
         else:
-            segs.clear()
+            self._h = self._t = 0
             k = drop - n_old2
-            segs.extend(zip(ga[k:].tolist(), gb[k:].tolist(), gp[k:].tolist()))
+            self._append(ga[k:], gb[k:], gp[k:])
         before = self._adds
         self._adds += a.size
-        if self._adds // 20000 != before // 20000 and segs:   # the loop's periodic re-sum, in numpy
-            g = np.array(segs, dtype=float)
+        if self._adds // 20000 != before // 20000 and self._t > self._h:   # the loop's periodic re-sum, in numpy
+            g = _rows(self._buf, self._h, (self._t - self._h) // 3)
             self._energy = float(np.sum(g[:, 2] * (g[:, 1] - g[:, 0])))
             self._covered = float(np.sum(g[:, 1] - g[:, 0]))
         return mean, cov
 
+    def _append(self, a: np.ndarray, b: np.ndarray, p: np.ndarray) -> None:
+        """Append segments (t0 = a, t1 = b, p) after the held ones."""
+        k = 3 * a.size
+        if not k:
+            return
+        if self._t + k > len(self._buf):
+            self._room(k)
+        v = np.frombuffer(self._buf, float, k, 8 * self._t).reshape(-1, 3)    # a view, gone on return
+        v[:, 0], v[:, 1], v[:, 2] = a, b, p
+        self._t += k
+
+    def _room(self, k: int) -> None:
+        """Room for k more values at the end: the held ones moved to the front if they then fill at most
+        7/8 of the array (the next such move is an eighth of it away: amortised O(1), a memmove), else a
+        copy into an array a quarter as long again (or as long as needed)."""
+        buf, h, t = self._buf, self._h, self._t
+        n = t - h
+        if 8 * (n + k) <= 7 * len(buf):
+            if h:
+                buf[0:n] = buf[h:t]
+        else:
+            new = array("d", bytes(8 * max(3 * ((len(buf) // 4 + 2) // 3) + len(buf), n + k, 3 * 64)))
+            new[0:n] = buf[h:t]
+            self._buf = new
+        self._h, self._t = 0, n
+
     def value(self, t_end: float) -> tuple[float, float]:
         """(mean of p over the covered time, coverage 0..1) of the window ending at t_end."""
         cut = t_end - self.window_s
-        segs = self._segs
-        while segs and segs[0][1] <= cut:
-            t0, t1, p = segs.popleft()
+        buf, h, n = self._buf, self._h, self._t
+        while h < n and buf[h + 1] <= cut:
+            t0, t1, p = buf[h], buf[h + 1], buf[h + 2]
             self._energy -= p * (t1 - t0)
             self._covered -= t1 - t0
+            h += 3
+        self._h = h
         energy, covered = self._energy, self._covered
-        if segs and segs[0][0] < cut:    # the oldest segment straddles the window start
-            t0, _, p = segs[0]
+        if h < n and buf[h] < cut:    # the oldest segment straddles the window start
+            t0, p = buf[h], buf[h + 2]
             energy -= p * (cut - t0)
             covered -= cut - t0
         if covered <= 1e-9:
@@ -214,14 +261,18 @@ def _split(a, b, p, bs):
     return tuple(x[order] for x in cat)
 
 
-def _count_before(segs: deque, cut: float) -> int:
-    """How many leading segments start before cut (they may leave the window during a batch)."""
-    n = 0
-    for s in segs:
-        if s[0] >= cut:
-            break
-        n += 1
-    return n
+def _count_before(buf: array, h: int, n: int, cut: float) -> int:
+    """How many of the n held segments from index h start before cut (they may leave the window during
+    a batch); the starts rise, so a bisection."""
+    return bisect_left(range(n), cut, key=lambda i: buf[h + 3 * i])
+
+
+def _rows(buf: array, h: int, n: int) -> np.ndarray:
+    """A copy of n held segments from index h as an (n, 3) array (no view of buf outlives the call,
+    so buf stays resizable)."""
+    if n <= 0:
+        return np.zeros((0, 3))
+    return np.frombuffer(buf, float, 3 * n, 8 * h).reshape(n, 3).copy()
 
 
 @dataclass
