@@ -1,8 +1,9 @@
 """Stored raw readings -> calibrated series, with provenance (which certificate made which values).
 
 Raw counts are never changed: applying a certificate adds a `calibrations` row (name, SHA-256 and
-full text of the certificate, declared frequency) and one derived row per reading, so a session
-can be recomputed with a later certificate and the earlier results stay in the database.
+full text of the certificate, declared frequency) and its values, packed per run of readings
+(field_spans; storage/streamed.py says why), so a session can be recomputed with a later certificate
+and the earlier results stay in the database.
 """
 
 from __future__ import annotations
